@@ -1,0 +1,6 @@
+//! The offline commands of the `switchyard` binary; each takes its parsed options and the
+//! standard streams, so tests can drive them without a process.
+
+pub mod embed;
+pub mod generate;
+pub mod similarity;

@@ -1,0 +1,5 @@
+//! switchyard's server crate: the model runtimes ([`model`]) and the commands the `switchyard`
+//! binary exposes ([`commands`]). `main.rs` only parses flags and calls into here.
+
+pub mod commands;
+pub mod model;

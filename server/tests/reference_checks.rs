@@ -1,0 +1,468 @@
+//! The runtimes against references computed outside this project: sentence-transformers for
+//! MiniLM embeddings, transformers' own LlamaForCausalLM for the tiny decoders, and plain torch
+//! math `W0 + (alpha / r) B A` for every adapter. The fixtures and the script that made them
+//! are in tests/reference/ (see its README for library versions).
+
+use std::path::Path;
+use std::sync::{Arc, OnceLock};
+
+use candle_core::Tensor;
+use serde_json::Value;
+use switchyard_adapters::Adapter;
+use switchyard_server::model::embedder::Embedder;
+use switchyard_server::model::generator::{GenerateRequest, Generator};
+use switchyard_server::model::linear::{MergedWeights, RowAdapters};
+use switchyard_server::model::load_adapter;
+use switchyard_server::model::sampling::SamplingParams;
+use switchyard_tests::{base_model_dir, fixtures, read_json};
+
+fn embedder() -> &'static Embedder {
+    static E: OnceLock<Embedder> = OnceLock::new();
+    E.get_or_init(|| Embedder::load(&base_model_dir()).expect("load the MiniLM base model"))
+}
+
+fn embeddings_fixture() -> &'static Value {
+    static V: OnceLock<Value> = OnceLock::new();
+    V.get_or_init(|| read_json(&fixtures().join("minilm-embeddings.json")))
+}
+
+fn matrix(v: &Value) -> Vec<Vec<f32>> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|row| {
+            row.as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_f64().unwrap() as f32)
+                .collect()
+        })
+        .collect()
+}
+
+fn ids(v: &Value) -> Vec<u32> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_u64().unwrap() as u32)
+        .collect()
+}
+
+fn cosine(a: &[f32], b: &[f32]) -> f64 {
+    let dot: f64 = a.iter().zip(b).map(|(x, y)| *x as f64 * *y as f64).sum();
+    let na: f64 = a.iter().map(|x| (*x as f64).powi(2)).sum::<f64>().sqrt();
+    let nb: f64 = b.iter().map(|x| (*x as f64).powi(2)).sum::<f64>().sqrt();
+    dot / (na * nb)
+}
+
+fn max_abs(a: &[Vec<f32>], b: &[Vec<f32>]) -> f32 {
+    assert_eq!(a.len(), b.len(), "row counts differ");
+    a.iter()
+        .zip(b)
+        .flat_map(|(x, y)| {
+            assert_eq!(x.len(), y.len(), "row widths differ");
+            x.iter().zip(y).map(|(p, q)| (p - q).abs())
+        })
+        .fold(0.0, f32::max)
+}
+
+/// The bar for embeddings: cosine >= 0.99999 and max abs difference <= 1e-4, row by row.
+fn assert_embeddings_match(got: &[Vec<f32>], want: &[Vec<f32>], what: &str) {
+    for (i, (g, w)) in got.iter().zip(want).enumerate() {
+        let c = cosine(g, w);
+        assert!(c >= 0.99999, "{what}: sentence {i} cosine {c} < 0.99999");
+    }
+    let d = max_abs(got, want);
+    assert!(d <= 1e-4, "{what}: max abs difference {d} > 1e-4");
+}
+
+fn sentences() -> Vec<String> {
+    embeddings_fixture()["sentences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s.as_str().unwrap().to_owned())
+        .collect()
+}
+
+fn minilm_adapter(name: &str) -> Arc<Adapter> {
+    let file = embeddings_fixture()["adapters"][name]["file"]
+        .as_str()
+        .unwrap();
+    load_adapter(&fixtures().join(file), embedder().spec()).unwrap()
+}
+
+#[test]
+fn minilm_tokenisation_matches_the_reference_token_ids() {
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let got = embedder().tokenize(&refs).unwrap();
+    let want: Vec<Vec<u32>> = embeddings_fixture()["token_ids"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(ids)
+        .collect();
+    assert_eq!(got, want);
+}
+
+#[test]
+fn minilm_fingerprint_matches_the_python_computation() {
+    assert_eq!(
+        embedder().spec().fingerprint,
+        embeddings_fixture()["base_fingerprint"].as_str().unwrap()
+    );
+}
+
+#[test]
+fn minilm_base_embeddings_match_sentence_transformers() {
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let got = embedder().embed(&refs, &vec![None; refs.len()]).unwrap();
+    assert_embeddings_match(&got, &matrix(&embeddings_fixture()["embeddings"]), "base");
+}
+
+#[test]
+fn minilm_adapted_embeddings_match_torch_merged_weights() {
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    for name in ["minilm-qv-a", "minilm-qv-b", "minilm-all"] {
+        let adapter = minilm_adapter(name);
+        let want = matrix(&embeddings_fixture()["adapters"][name]["embeddings"]);
+        let got = embedder()
+            .embed(&refs, &vec![Some(adapter.clone()); refs.len()])
+            .unwrap();
+        assert_embeddings_match(&got, &want, name);
+        // The adapter must actually move the embeddings, or the check above proves nothing.
+        let base = matrix(&embeddings_fixture()["embeddings"]);
+        assert!(
+            cosine(&got[0], &base[0]) < 0.99,
+            "{name} barely changes the embedding"
+        );
+    }
+}
+
+#[test]
+fn minilm_merged_and_unmerged_paths_agree() {
+    let e = embedder();
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let tokens = e.tokenize(&refs).unwrap();
+    for name in ["minilm-qv-a", "minilm-all"] {
+        let adapter = minilm_adapter(name);
+        let unmerged = e
+            .embed_ids(&tokens, &vec![Some(adapter.clone()); tokens.len()])
+            .unwrap();
+        let merged =
+            Arc::new(MergedWeights::build(&adapter, |s| e.model().base_weight(s)).unwrap());
+        let merged_out =
+            embed_with_rows(e, &tokens, |rows| RowAdapters::merged(merged.clone(), rows));
+        let d = max_abs(&unmerged, &merged_out);
+        assert!(
+            d <= 1e-4,
+            "{name}: merged vs unmerged max abs difference {d}"
+        );
+    }
+}
+
+/// Runs the encoder over `tokens` with a caller-built row assignment (for the merged path).
+fn embed_with_rows(
+    e: &Embedder,
+    tokens: &[Vec<u32>],
+    rows: impl Fn(usize) -> RowAdapters,
+) -> Vec<Vec<f32>> {
+    let dev = candle_core::Device::Cpu;
+    let b = tokens.len();
+    let t = tokens.iter().map(Vec::len).max().unwrap();
+    let mut flat = vec![0u32; b * t];
+    let mut mask = vec![0u32; b * t];
+    for (i, seq) in tokens.iter().enumerate() {
+        flat[i * t..i * t + seq.len()].copy_from_slice(seq);
+        mask[i * t..i * t + seq.len()].fill(1);
+    }
+    let ids = Tensor::from_vec(flat, (b, t), &dev).unwrap();
+    let mask = Tensor::from_vec(mask, (b, t), &dev).unwrap();
+    let hidden = e.model().forward(&ids, &mask, &rows(b * t)).unwrap();
+    switchyard_server::model::bert::mean_pool_normalise(&hidden, &mask)
+        .unwrap()
+        .to_vec2()
+        .unwrap()
+}
+
+#[test]
+fn unmerge_of_merge_restores_every_targeted_minilm_weight() {
+    let e = embedder();
+    let adapter = minilm_adapter("minilm-all");
+    for (site, lr) in adapter.sites() {
+        let w0 = e.model().base_weight(site).unwrap();
+        let back = lr.unmerge(&lr.merge(&w0).unwrap()).unwrap();
+        let d = (back - &w0)
+            .unwrap()
+            .abs()
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .max(0)
+            .unwrap();
+        let d = d.to_scalar::<f32>().unwrap();
+        assert!(d <= 1e-5, "{site}: unmerge(merge(W)) differs from W by {d}");
+    }
+}
+
+#[test]
+fn minilm_batch_mixing_four_adapters_and_base_rows_equals_each_row_alone() {
+    let e = embedder();
+    let fourth = random_adapter(e, 99);
+    let adapters = [
+        Some(minilm_adapter("minilm-qv-a")),
+        None,
+        Some(minilm_adapter("minilm-qv-b")),
+        Some(minilm_adapter("minilm-all")),
+        Some(fourth),
+        None,
+        Some(minilm_adapter("minilm-qv-a")),
+        Some(minilm_adapter("minilm-all")),
+    ];
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let mixed = e.embed(&refs, &adapters).unwrap();
+    for (i, adapter) in adapters.iter().enumerate() {
+        let alone = e
+            .embed(&refs[i..=i], std::slice::from_ref(adapter))
+            .unwrap();
+        let d = max_abs(&mixed[i..=i], &alone);
+        assert!(
+            d <= 1e-5,
+            "row {i}: mixed batch differs from the row alone by {d}"
+        );
+    }
+}
+
+/// A seeded random (uniform in ±0.15) rank-2 adapter on attn.k and mlp.up of every layer, built in memory.
+fn random_adapter(e: &Embedder, seed: u64) -> Arc<Adapter> {
+    use rand::{Rng, SeedableRng};
+    use switchyard_adapters::{AdapterPackage, Module, PackageMeta, Site, Task};
+    let dev = candle_core::Device::Cpu;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let mut uniform = |shape: (usize, usize)| {
+        let values: Vec<f32> = (0..shape.0 * shape.1)
+            .map(|_| rng.random_range(-0.15..0.15))
+            .collect();
+        Tensor::from_vec(values, shape, &dev).unwrap()
+    };
+    let spec = e.spec();
+    let mut factors = std::collections::BTreeMap::new();
+    for layer in 0..spec.num_layers {
+        for m in [Module::AttnK, Module::MlpUp] {
+            let site = Site::new(layer, m);
+            let (out, inp) = spec.shape(&site).unwrap();
+            let a = uniform((2, inp));
+            let b = uniform((out, 2));
+            factors.insert(site, (a, b));
+        }
+    }
+    let pkg = AdapterPackage {
+        meta: PackageMeta {
+            base_fingerprint: spec.fingerprint.clone(),
+            rank: 2,
+            alpha: 4.0,
+            task: Task::Embed,
+            labels: Vec::new(),
+            description: "random test adapter".to_owned(),
+        },
+        factors,
+        head: None,
+    };
+    Arc::new(Adapter::from_package("random@test".to_owned(), pkg).unwrap())
+}
+
+// ---- the tiny Llama-family decoders -------------------------------------------------------
+
+struct Decoder {
+    generator: Generator,
+    reference: Value,
+    dir: &'static str,
+}
+
+fn decoder(dir: &'static str) -> Decoder {
+    let generator = Generator::load(&fixtures().join(dir)).expect("load the tiny decoder fixture");
+    let reference = read_json(&fixtures().join(format!("{dir}-reference.json")));
+    Decoder {
+        generator,
+        reference,
+        dir,
+    }
+}
+
+impl Decoder {
+    fn adapter(&self, name: &str) -> Arc<Adapter> {
+        let file = self.reference["adapters"][name]["file"].as_str().unwrap();
+        load_adapter(&fixtures().join(file), self.generator.spec()).unwrap()
+    }
+
+    fn adapter_names(&self) -> Vec<String> {
+        self.reference["adapters"]
+            .as_object()
+            .unwrap()
+            .keys()
+            .cloned()
+            .collect()
+    }
+
+    /// Full-sequence logits `[len, vocab]` for `tokens` with one row assignment.
+    fn logits(&self, tokens: &[u32], rows: RowAdapters) -> Vec<Vec<f32>> {
+        let model = self.generator.model();
+        let mut cache = model.new_cache();
+        let hidden = model
+            .forward_hidden(&[tokens], &mut [&mut cache], &rows)
+            .unwrap();
+        model.logits(&hidden).unwrap().to_vec2().unwrap()
+    }
+
+    fn greedy(&self, adapter: Option<Arc<Adapter>>) -> Vec<u32> {
+        let prompt_ids = ids(&self.reference["prompt_ids"]);
+        self.generator
+            .generate(&[GenerateRequest {
+                prompt_ids,
+                adapter,
+                limit: 16,
+                sampling: SamplingParams::default(),
+                stop_at_eos: false,
+            }])
+            .unwrap()
+            .remove(0)
+    }
+
+    fn check_against_transformers(&self) {
+        let dir = self.dir;
+        assert_eq!(
+            self.generator.spec().fingerprint,
+            self.reference["base_fingerprint"].as_str().unwrap(),
+            "{dir}: fingerprint"
+        );
+        let input = ids(&self.reference["input_ids"]);
+        assert_eq!(
+            self.generator
+                .encode(self.reference["input_text"].as_str().unwrap())
+                .unwrap(),
+            input
+        );
+        let got = self.logits(&input, RowAdapters::base(input.len()));
+        let d = max_abs(&got, &matrix(&self.reference["logits"]));
+        assert!(d <= 1e-3, "{dir}: base logits differ by {d} > 1e-3");
+        assert_eq!(
+            self.greedy(None),
+            ids(&self.reference["greedy"]),
+            "{dir}: greedy tokens"
+        );
+        for name in self.adapter_names() {
+            let adapter = self.adapter(&name);
+            let want = &self.reference["adapters"][&name];
+            let got = self.logits(
+                &input,
+                RowAdapters::uniform(Some(adapter.clone()), input.len()),
+            );
+            let d = max_abs(&got, &matrix(&want["logits"]));
+            assert!(d <= 1e-3, "{dir} + {name}: logits differ by {d} > 1e-3");
+            assert_eq!(
+                self.greedy(Some(adapter.clone())),
+                ids(&want["greedy"]),
+                "{dir} + {name}: greedy"
+            );
+
+            let merged = Arc::new(
+                MergedWeights::build(&adapter, |s| self.generator.model().base_weight(s)).unwrap(),
+            );
+            let via_merged = self.logits(&input, RowAdapters::merged(merged, input.len()));
+            let d = max_abs(&got, &via_merged);
+            assert!(
+                d <= 1e-4,
+                "{dir} + {name}: merged vs unmerged differ by {d}"
+            );
+        }
+    }
+}
+
+#[test]
+fn tiny_llama_matches_transformers_with_and_without_adapters() {
+    decoder("tiny-llama").check_against_transformers();
+}
+
+#[test]
+fn tiny_llama_with_biases_tied_embeddings_and_top_level_rope_theta_matches_transformers() {
+    decoder("tiny-llama-bias-tied").check_against_transformers();
+}
+
+#[test]
+fn batched_decode_of_different_lengths_and_adapters_equals_each_sequence_alone() {
+    let d = decoder("tiny-llama");
+    let prompt = ids(&d.reference["prompt_ids"]);
+    let input = ids(&d.reference["input_ids"]);
+    let qv = d.adapter("tiny-llama-qv");
+    let all = d.adapter("tiny-llama-all");
+    let requests: Vec<GenerateRequest> = [
+        (prompt.clone(), None, 16),
+        (input.clone(), Some(qv.clone()), 9),
+        (prompt[..5].to_vec(), Some(all.clone()), 12),
+        (input[..3].to_vec(), Some(qv), 16),
+        (prompt[3..].to_vec(), None, 4),
+    ]
+    .into_iter()
+    .map(|(prompt_ids, adapter, limit)| GenerateRequest {
+        prompt_ids,
+        adapter,
+        limit,
+        sampling: SamplingParams::default(),
+        stop_at_eos: false,
+    })
+    .collect();
+    let together = d.generator.generate(&requests).unwrap();
+    for (i, req) in requests.iter().enumerate() {
+        let alone = d
+            .generator
+            .generate(std::slice::from_ref(req))
+            .unwrap()
+            .remove(0);
+        assert_eq!(together[i], alone, "sequence {i}");
+        assert_eq!(together[i].len(), req.limit);
+    }
+    // The first request is the reference prompt with no adapter: it must give the reference.
+    assert_eq!(together[0], ids(&d.reference["greedy"]));
+}
+
+#[test]
+fn sampling_with_a_seed_is_repeatable_and_stays_in_vocabulary() {
+    let d = decoder("tiny-llama");
+    let req = GenerateRequest {
+        prompt_ids: ids(&d.reference["prompt_ids"]),
+        adapter: None,
+        limit: 24,
+        sampling: SamplingParams {
+            temperature: Some(0.9),
+            top_p: 0.9,
+            seed: 42,
+        },
+        stop_at_eos: false,
+    };
+    let a = d.generator.generate(std::slice::from_ref(&req)).unwrap();
+    let b = d.generator.generate(std::slice::from_ref(&req)).unwrap();
+    assert_eq!(a, b);
+    let vocab = d.generator.model().config.vocab_size as u32;
+    assert!(a[0].iter().all(|&t| t < vocab));
+    let mut other = req.clone();
+    other.sampling.seed = 43;
+    assert_ne!(d.generator.generate(&[other]).unwrap()[0], a[0]);
+}
+
+#[test]
+fn an_adapter_for_another_base_is_refused_naming_the_fingerprint_rule() {
+    let d = decoder("tiny-llama");
+    let path = fixtures().join("minilm-qv-a.safetensors");
+    let err = load_adapter(Path::new(&path), d.generator.spec())
+        .unwrap_err()
+        .to_string();
+    assert!(
+        err.contains("base fingerprint") && err.contains("minilm-qv-a"),
+        "{err}"
+    );
+}

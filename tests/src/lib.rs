@@ -1,0 +1,72 @@
+//! Helpers for the integration tests: find the built `switchyard` binary, the reference
+//! fixtures and the base model, each with a message that says how to get it when it is missing.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+
+/// The workspace root.
+pub fn workspace_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .unwrap()
+        .to_owned()
+}
+
+/// The committed reference fixtures.
+pub fn fixtures() -> PathBuf {
+    workspace_root().join("tests/reference/fixtures")
+}
+
+/// The embedded default base model; panics with instructions when it is not there.
+pub fn base_model_dir() -> PathBuf {
+    let dir = std::env::var_os("SWITCHYARD_BASE_MODEL_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| workspace_root().join("models/all-minilm-l6-v2"));
+    assert!(
+        dir.join("model.safetensors").is_file(),
+        "the base model is not at {}: run scripts/fetch-base-model.sh (the test command does)",
+        dir.display()
+    );
+    dir
+}
+
+/// The `switchyard` binary built next to the running test executable.
+pub fn switchyard_bin() -> PathBuf {
+    let exe = std::env::current_exe().unwrap();
+    let profile_dir = exe.parent().unwrap().parent().unwrap();
+    let bin = profile_dir.join(format!("switchyard{}", std::env::consts::EXE_SUFFIX));
+    assert!(
+        bin.is_file(),
+        "{} is missing: build it first with `cargo build -p switchyard-server` (scripts/test does)",
+        bin.display()
+    );
+    bin
+}
+
+/// Runs `switchyard` with `args` in `cwd`, feeding `stdin`, and returns what it did.
+pub fn run_switchyard(args: &[&str], stdin: &str, cwd: &Path) -> Output {
+    use std::io::Write;
+    let mut child = Command::new(switchyard_bin())
+        .args(args)
+        .current_dir(cwd)
+        .env_remove("SWITCHYARD_MODEL_DIR")
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start switchyard");
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(stdin.as_bytes())
+        .unwrap();
+    child.wait_with_output().unwrap()
+}
+
+/// Reads a JSON fixture.
+pub fn read_json(path: &Path) -> serde_json::Value {
+    let text = std::fs::read_to_string(path)
+        .unwrap_or_else(|e| panic!("reading fixture {}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap()
+}
