@@ -7,6 +7,7 @@
 pub mod adapter;
 pub mod fingerprint;
 pub mod lowrank;
+pub mod merged;
 pub mod package;
 pub mod params;
 pub mod site;
@@ -14,5 +15,6 @@ pub mod site;
 pub use adapter::{Adapter, TaskHead};
 pub use fingerprint::{BaseSpec, base_fingerprint};
 pub use lowrank::LowRank;
+pub use merged::MergedWeights;
 pub use package::{AdapterPackage, PackageError, PackageMeta, Task};
 pub use site::{Module, Site};

@@ -6,11 +6,10 @@
 //! whole batch runs one merged variant, the merged weight replaces `W0` and no low-rank term is
 //! computed.
 
-use std::collections::HashMap;
 use std::sync::Arc;
 
 use candle_core::{D, DType, Device, Result, Tensor};
-use switchyard_adapters::{Adapter, LowRank, Site};
+use switchyard_adapters::{Adapter, LowRank, MergedWeights, Site};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
 #[derive(Debug, Clone)]
@@ -111,39 +110,6 @@ impl RowAdapters {
     }
 }
 
-/// The targeted matrices of one adapter merged into the base (`W0 + s B A`); every other matrix is
-/// shared with the base.
-#[derive(Debug)]
-pub struct MergedWeights {
-    pub adapter_id: String,
-    weights: HashMap<Site, Tensor>,
-}
-
-impl MergedWeights {
-    /// Builds the merged variant of `adapter` from the base weights it targets.
-    pub fn build(adapter: &Adapter, base_weight: impl Fn(&Site) -> Option<Tensor>) -> Result<Self> {
-        let mut weights = HashMap::new();
-        for (site, lr) in adapter.sites() {
-            let w0 = base_weight(site).ok_or_else(|| {
-                candle_core::Error::Msg(format!("base model has no matrix {site}"))
-            })?;
-            weights.insert(*site, lr.merge(&w0)?);
-        }
-        Ok(Self {
-            adapter_id: adapter.id.clone(),
-            weights,
-        })
-    }
-
-    /// Bytes held by the merged matrices.
-    pub fn resident_bytes(&self) -> usize {
-        self.weights
-            .values()
-            .map(|w| w.elem_count() * w.dtype().size_in_bytes())
-            .sum()
-    }
-}
-
 /// A projection `y = W0 x (+ bias)` that knows its site, so each row's adapter can add its term.
 #[derive(Debug, Clone)]
 pub struct AdaptedLinear {
@@ -198,7 +164,7 @@ impl AdaptedLinear {
         let weight = adapters
             .merged
             .as_ref()
-            .and_then(|m| m.weights.get(&self.site))
+            .and_then(|m| m.weight(&self.site))
             .unwrap_or(&self.weight);
         let mut y = x2.matmul(&weight.t()?)?;
         if let Some(bias) = &self.bias {

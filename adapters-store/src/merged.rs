@@ -1,0 +1,48 @@
+//! A merged variant: the matrices one adapter targets with `W0 + s B A` materialised, so a batch
+//! that runs only that adapter pays no low-rank term at all. Every matrix the adapter does not
+//! target is shared with the base and not copied.
+
+use std::collections::HashMap;
+
+use candle_core::{Result, Tensor};
+
+use crate::adapter::Adapter;
+use crate::site::Site;
+
+/// The targeted matrices of one adapter merged into the base (`W0 + s B A`); every other matrix is
+/// shared with the base.
+#[derive(Debug)]
+pub struct MergedWeights {
+    pub adapter_id: String,
+    weights: HashMap<Site, Tensor>,
+}
+
+impl MergedWeights {
+    /// Builds the merged variant of `adapter` from the base weights it targets.
+    pub fn build(adapter: &Adapter, base_weight: impl Fn(&Site) -> Option<Tensor>) -> Result<Self> {
+        let mut weights = HashMap::new();
+        for (site, lr) in adapter.sites() {
+            let w0 = base_weight(site).ok_or_else(|| {
+                candle_core::Error::Msg(format!("base model has no matrix {site}"))
+            })?;
+            weights.insert(*site, lr.merge(&w0)?);
+        }
+        Ok(Self {
+            adapter_id: adapter.id.clone(),
+            weights,
+        })
+    }
+
+    /// Bytes held by the merged matrices.
+    pub fn resident_bytes(&self) -> usize {
+        self.weights
+            .values()
+            .map(|w| w.elem_count() * w.dtype().size_in_bytes())
+            .sum()
+    }
+
+    /// The merged matrix at `site`, if the adapter targets it.
+    pub fn weight(&self, site: &Site) -> Option<&Tensor> {
+        self.weights.get(site)
+    }
+}
