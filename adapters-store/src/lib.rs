@@ -3,18 +3,37 @@
 //! math that applies, merges and unmerges a factor pair ([`lowrank`]), the base-model fingerprint
 //! that ties a package to its base ([`fingerprint`]), and parameter counting for capacity planning
 //! ([`params`]).
+//!
+//! Around the format sit the parts that keep many adapters live: the rules for adapter names
+//! ([`names`]), the on-disk store of versions with its live pointer ([`store`]), the registry
+//! that resolves a name to a resident version, loads lazily and keeps two byte-bounded caches
+//! ([`registry`]), the watcher that follows another process's changes to the store ([`watcher`]),
+//! and the swap events the server turns into metrics ([`events`]). For the commands, [`spectrum`]
+//! measures the numerical rank of an update and [`rename`] maps foreign tensor names onto ours.
 
 pub mod adapter;
+pub mod events;
 pub mod fingerprint;
+pub mod kernels;
 pub mod lowrank;
 pub mod merged;
+pub mod names;
 pub mod package;
 pub mod params;
+pub mod registry;
+pub mod rename;
 pub mod site;
+pub mod spectrum;
+pub mod store;
+mod sync;
+pub mod watcher;
 
 pub use adapter::{Adapter, TaskHead};
 pub use fingerprint::{BaseSpec, base_fingerprint};
 pub use lowrank::LowRank;
 pub use merged::MergedWeights;
-pub use package::{AdapterPackage, PackageError, PackageMeta, Task};
+pub use names::{AdapterName, NameError};
+pub use package::{AdapterPackage, PackageBytes, PackageError, PackageMeta, Task};
+pub use registry::{AdapterHandle, MergedHandle, Registry, RegistryConfig, RegistryError};
 pub use site::{Module, Site};
+pub use store::{Store, StoreError};

@@ -1,21 +1,24 @@
 //! The low-rank math of one adapted matrix (Hu et al., 2021): for a frozen `W0 [out, in]`, an
 //! adapter holds `A [r, in]` and `B [out, r]` and a scale `s = alpha / r`, and the adapted layer
-//! computes `W0 x + s B (A x)`. [`LowRank`] keeps the factors in the layout the forward pass wants
-//! (transposed, with `s` folded into B) so that applying them costs two small matmuls and nothing
-//! else.
+//! computes `W0 x + s B (A x)`.
+//!
+//! The hot operations run through [`crate::kernels`] straight on the factors' memory: the
+//! low-rank term is accumulated onto the base output in place (`y += s (x A^T) B^T`, with one
+//! `[rows, r]` scratch buffer), and merging adds `s B A` into a weight in place. Nothing is
+//! transposed or copied per call.
 
 use candle_core::{DType, Result, Tensor};
+
+use crate::kernels::{MatRef, matmul_into, parallelism_for, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
 pub struct LowRank {
+    /// `A [r, in]`, contiguous f32.
     a: Tensor,
+    /// `B [out, r]`, contiguous f32.
     b: Tensor,
     scale: f64,
-    /// `A^T`, `[in, r]`, contiguous.
-    a_t: Tensor,
-    /// `(s B)^T`, `[r, out]`, contiguous.
-    scaled_b_t: Tensor,
 }
 
 impl LowRank {
@@ -28,15 +31,7 @@ impl LowRank {
         if r != rb {
             candle_core::bail!("factor ranks differ: A has {r} rows, B has {rb} columns");
         }
-        let a_t = a.t()?.contiguous()?;
-        let scaled_b_t = (b.t()? * scale)?.contiguous()?;
-        Ok(Self {
-            a,
-            b,
-            scale,
-            a_t,
-            scaled_b_t,
-        })
+        Ok(Self { a, b, scale })
     }
 
     pub fn rank(&self) -> usize {
@@ -68,29 +63,125 @@ impl LowRank {
         self.rank() * (self.in_features() + self.out_features())
     }
 
-    /// Bytes the resident factors take, counting both layouts kept.
+    /// Bytes the resident factors take.
     pub fn resident_bytes(&self) -> usize {
-        2 * self.parameters() * std::mem::size_of::<f32>()
+        self.parameters() * std::mem::size_of::<f32>()
+    }
+
+    /// Adds the low-rank term to an output in place: `y[rows, out] += s (x A^T) B^T` for
+    /// `x [rows, in]` (row-major), with `y` rows `y_row_stride` apart. `scratch` is reused
+    /// across calls to hold `x A^T`.
+    pub fn add_delta_into(
+        &self,
+        x: &[f32],
+        rows: usize,
+        y: &mut [f32],
+        y_row_stride: usize,
+        scratch: &mut Vec<f32>,
+    ) -> Result<()> {
+        let (r, inp, out) = (self.rank(), self.in_features(), self.out_features());
+        if x.len() < rows * inp {
+            candle_core::bail!(
+                "activation holds {} values, expected {rows} x {inp}",
+                x.len()
+            );
+        }
+        scratch.clear();
+        scratch.resize(rows * r, 0.0);
+        with_f32(&self.a, |a| {
+            matmul_into(
+                scratch,
+                r,
+                MatRef::row_major(x, rows, inp),
+                MatRef::transposed(a, inp, r),
+                false,
+                1.0,
+                parallelism_for(rows, r, inp),
+            )
+        })?;
+        with_f32(&self.b, |b| {
+            matmul_into(
+                y,
+                y_row_stride,
+                MatRef::row_major(scratch, rows, r),
+                MatRef::transposed(b, r, out),
+                true,
+                self.scale as f32,
+                parallelism_for(rows, out, r),
+            )
+        })
     }
 
     /// The low-rank term `s B (A x)` for rows `x [n, in]`, giving `[n, out]`.
     pub fn delta(&self, x: &Tensor) -> Result<Tensor> {
-        x.matmul(&self.a_t)?.matmul(&self.scaled_b_t)
+        let x = x.to_dtype(DType::F32)?.contiguous()?;
+        let (rows, _) = x.dims2()?;
+        let out = self.out_features();
+        let mut y = vec![0f32; rows * out];
+        let mut scratch = Vec::new();
+        with_f32(&x, |xs| {
+            self.add_delta_into(xs, rows, &mut y, out, &mut scratch)
+        })??;
+        Tensor::from_vec(y, (rows, out), x.device())
+    }
+
+    /// Adds `sign * s B A` to a row-major `[out, in]` weight in place.
+    fn accumulate_update(&self, w: &mut [f32], sign: f32) -> Result<()> {
+        let (r, inp, out) = (self.rank(), self.in_features(), self.out_features());
+        if w.len() != out * inp {
+            candle_core::bail!("weight holds {} values, expected {out} x {inp}", w.len());
+        }
+        with_f32(&self.b, |b| {
+            with_f32(&self.a, |a| {
+                matmul_into(
+                    w,
+                    inp,
+                    MatRef::row_major(b, out, r),
+                    MatRef::row_major(a, r, inp),
+                    true,
+                    sign * self.scale as f32,
+                    parallelism_for(out, inp, r),
+                )
+            })
+        })?
+    }
+
+    /// `W += s B A` in place, for a row-major `[out, in]` weight.
+    pub fn merge_in_place(&self, w: &mut [f32]) -> Result<()> {
+        self.accumulate_update(w, 1.0)
+    }
+
+    /// `W -= s B A` in place: the inverse of [`LowRank::merge_in_place`] up to rounding.
+    pub fn unmerge_in_place(&self, w: &mut [f32]) -> Result<()> {
+        self.accumulate_update(w, -1.0)
     }
 
     /// The full update `s B A`, `[out, in]`.
     pub fn update(&self) -> Result<Tensor> {
-        self.b.matmul(&self.a)? * self.scale
+        let mut w = vec![0f32; self.out_features() * self.in_features()];
+        self.merge_in_place(&mut w)?;
+        Tensor::from_vec(
+            w,
+            (self.out_features(), self.in_features()),
+            self.a.device(),
+        )
     }
 
-    /// `W0 + s B A`.
+    /// `W0 + s B A` as a new tensor (one copy of `W0`, then an in-place merge).
     pub fn merge(&self, w0: &Tensor) -> Result<Tensor> {
-        w0.add(&self.update()?.to_dtype(w0.dtype())?)
+        self.apply_to_copy(w0, 1.0)
     }
 
-    /// `W - s B A`, the inverse of [`LowRank::merge`] up to rounding.
+    /// `W - s B A` as a new tensor.
     pub fn unmerge(&self, w: &Tensor) -> Result<Tensor> {
-        w.sub(&self.update()?.to_dtype(w.dtype())?)
+        self.apply_to_copy(w, -1.0)
+    }
+
+    fn apply_to_copy(&self, w: &Tensor, sign: f32) -> Result<Tensor> {
+        let dtype = w.dtype();
+        let mut data = w.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?;
+        self.accumulate_update(&mut data, sign)?;
+        Tensor::from_vec(data, w.dims(), w.device())?.to_dtype(dtype)
     }
 }
 
@@ -117,6 +208,13 @@ mod tests {
             .unwrap()
             .to_scalar::<f32>()
             .unwrap()
+    }
+
+    #[test]
+    fn update_equals_scaled_b_times_a_computed_by_candle() {
+        let lr = pair(4, 24, 40);
+        let want = (lr.b().matmul(lr.a()).unwrap() * 2.0).unwrap();
+        assert!(max_abs_diff(&lr.update().unwrap(), &want) < 1e-5);
     }
 
     #[test]

@@ -6,16 +6,26 @@
 //! `labels` (a JSON array, for a head) and `description`. The version of a package is a content
 //! hash of its bytes.
 //!
-//! Reading checks the structure of the file; [`AdapterPackage::validate`] checks it against a
-//! base model. Every refusal is a [`PackageError`] naming the file, the tensor where there is one,
-//! and the rule.
+//! Reading ([`AdapterPackage::read`] or [`AdapterPackage::load`] from a file,
+//! [`AdapterPackage::parse`] from [`PackageBytes`]) checks the structure of the file; [`AdapterPackage::validate`] checks it against a base model. Every
+//! refusal is a [`PackageError`] naming the file, the tensor where there is one, and the rule
+//! ([`RULES`] lists them). Writing is deterministic, so a package's bytes (and its version) depend
+//! on its content alone.
 
-use std::collections::{BTreeMap, HashMap};
+mod bytes;
+mod error;
+mod meta;
+mod write;
+
+pub use bytes::PackageBytes;
+pub use error::{PackageError, RULES};
+pub use meta::KNOWN_KEYS;
+
+use std::collections::BTreeMap;
 use std::fmt;
 use std::path::Path;
 
-use candle_core::{Device, Tensor};
-use safetensors::{Dtype, SafeTensors};
+use candle_core::Tensor;
 use sha2::{Digest, Sha256};
 
 use crate::fingerprint::BaseSpec;
@@ -103,86 +113,6 @@ pub struct AdapterPackage {
     pub head: Option<(Tensor, Tensor)>,
 }
 
-/// Why a package was refused. Every variant names the file it came from.
-#[derive(Debug, thiserror::Error)]
-pub enum PackageError {
-    #[error("{file}: cannot read the package: {source}")]
-    Io {
-        file: String,
-        source: std::io::Error,
-    },
-    #[error("{file}: file is {size} bytes, over the limit of {limit} bytes (rule: file size)")]
-    FileTooLarge { file: String, size: u64, limit: u64 },
-    #[error("{file}: header is {size} bytes, over the limit of {limit} bytes (rule: header size)")]
-    HeaderTooLarge {
-        file: String,
-        size: usize,
-        limit: usize,
-    },
-    #[error("{file}: not a readable safetensors file: {reason} (rule: safetensors structure)")]
-    NotSafetensors { file: String, reason: String },
-    #[error("{file}: metadata `{key}`: {problem} (rule: metadata)")]
-    Metadata {
-        file: String,
-        key: String,
-        problem: String,
-    },
-    #[error(
-        "{file}: tensor `{tensor}` is not a canonical name; expected layers.N.MODULE.A or .B with MODULE one of attn.q, attn.k, attn.v, attn.o, mlp.gate, mlp.up, mlp.down, or head.weight / head.bias (rule: tensor names)"
-    )]
-    UnknownTensor { file: String, tensor: String },
-    #[error("{file}: tensor `{tensor}` has dtype {dtype}, only F32 is accepted (rule: dtype)")]
-    Dtype {
-        file: String,
-        tensor: String,
-        dtype: String,
-    },
-    #[error(
-        "{file}: `{site}` has factor {present} but not its pair {missing} (rule: factor pairs)"
-    )]
-    MissingFactor {
-        file: String,
-        site: String,
-        present: String,
-        missing: String,
-    },
-    #[error("{file}: tensor `{tensor}` {problem} (rule: shapes)")]
-    Shape {
-        file: String,
-        tensor: String,
-        problem: String,
-    },
-    #[error("{file}: tensor `{tensor}`: rank {rank} {problem} (rule: rank)")]
-    Rank {
-        file: String,
-        tensor: String,
-        rank: usize,
-        problem: String,
-    },
-    #[error(
-        "{file}: tensor `{tensor}` holds a non-finite value at flat index {index} (rule: finite values)"
-    )]
-    NonFinite {
-        file: String,
-        tensor: String,
-        index: usize,
-    },
-    #[error(
-        "{file}: built for base model {found}, but the loaded base is {expected} (rule: base fingerprint)"
-    )]
-    Fingerprint {
-        file: String,
-        expected: String,
-        found: String,
-    },
-    #[error("{file}: the package holds no factor tensors (rule: tensor names)")]
-    Empty { file: String },
-    #[error(
-        "{file}: tensor `{tensor}` targets a matrix the base model does not have (rule: shapes)"
-    )]
-    NoSuchTarget { file: String, tensor: String },
-}
-
 /// Content hash used as a package version: first 16 hex digits of the sha256 of the file.
 pub fn content_version(bytes: &[u8]) -> String {
     Sha256::digest(bytes)
@@ -193,79 +123,39 @@ pub fn content_version(bytes: &[u8]) -> String {
 }
 
 impl AdapterPackage {
-    /// Reads and structurally checks a package file.
+    /// Reads and structurally checks a package file; returns it with its content version.
     pub fn read(path: &Path, limits: &Limits) -> Result<(Self, String), PackageError> {
+        let bytes = PackageBytes::read(path, limits)?;
+        let pkg = Self::parse(&bytes, &path.display().to_string(), limits)?;
+        Ok((pkg, bytes.version()))
+    }
+
+    /// Reads and structurally checks a package file without keeping its raw bytes or hashing
+    /// them: the cold load of a version whose name already is its hash.
+    pub fn load(path: &Path, limits: &Limits) -> Result<Self, PackageError> {
         let file = path.display().to_string();
-        let size = std::fs::metadata(path)
-            .map_err(|source| PackageError::Io {
-                file: file.clone(),
-                source,
-            })?
-            .len();
-        if size > limits.max_file_bytes {
-            return Err(PackageError::FileTooLarge {
-                file,
-                size,
-                limit: limits.max_file_bytes,
-            });
-        }
-        let bytes = std::fs::read(path).map_err(|source| PackageError::Io {
-            file: file.clone(),
-            source,
-        })?;
-        let pkg = Self::from_bytes(&bytes, &file, limits)?;
-        Ok((pkg, content_version(&bytes)))
+        let (f, size) = bytes::open_checked(path, limits)?;
+        Self::from_raw(bytes::read_raw(f, size, &file, limits)?, &file, limits)
     }
 
     /// Parses a package from its bytes; `file` names it in errors.
     pub fn from_bytes(bytes: &[u8], file: &str, limits: &Limits) -> Result<Self, PackageError> {
-        let not_st = |reason: String| PackageError::NotSafetensors {
-            file: file.to_owned(),
-            reason,
-        };
-        if bytes.len() as u64 > limits.max_file_bytes {
-            return Err(PackageError::FileTooLarge {
-                file: file.to_owned(),
-                size: bytes.len() as u64,
-                limit: limits.max_file_bytes,
-            });
-        }
-        if bytes.len() < 8 {
-            return Err(not_st(format!(
-                "{} bytes is too short for a header length",
-                bytes.len()
-            )));
-        }
-        let header_len = u64::from_le_bytes(bytes[..8].try_into().unwrap());
-        if header_len > limits.max_header_bytes as u64 {
-            return Err(PackageError::HeaderTooLarge {
-                file: file.to_owned(),
-                size: header_len.min(usize::MAX as u64) as usize,
-                limit: limits.max_header_bytes,
-            });
-        }
-        let (_, header) = SafeTensors::read_metadata(bytes).map_err(|e| not_st(e.to_string()))?;
-        let st = SafeTensors::deserialize(bytes).map_err(|e| not_st(e.to_string()))?;
-        let empty = HashMap::new();
-        let metadata = header.metadata().as_ref().unwrap_or(&empty);
-        let meta = parse_meta(metadata, file, limits)?;
+        let raw = bytes::read_raw(bytes, bytes.len() as u64, file, limits)?;
+        Self::from_raw(raw, file, limits)
+    }
 
+    /// Parses package bytes held for publishing.
+    pub fn parse(bytes: &PackageBytes, file: &str, limits: &Limits) -> Result<Self, PackageError> {
+        Self::from_bytes(bytes.as_bytes(), file, limits)
+    }
+
+    fn from_raw(raw: bytes::RawPackage, file: &str, limits: &Limits) -> Result<Self, PackageError> {
+        let meta = meta::parse_meta(&raw.metadata, file, limits)?;
         let mut a_parts: BTreeMap<Site, Tensor> = BTreeMap::new();
         let mut b_parts: BTreeMap<Site, Tensor> = BTreeMap::new();
         let mut head_w = None;
         let mut head_b = None;
-        let mut names: Vec<String> = st.names().into_iter().map(|n| n.to_string()).collect();
-        names.sort();
-        for name in names {
-            let view = st.tensor(&name).map_err(|e| not_st(e.to_string()))?;
-            if view.dtype() != Dtype::F32 {
-                return Err(PackageError::Dtype {
-                    file: file.to_owned(),
-                    tensor: name,
-                    dtype: format!("{:?}", view.dtype()),
-                });
-            }
-            let tensor = to_tensor(view.data(), view.shape(), file, &name)?;
+        for (name, tensor) in raw.tensors {
             match name.as_str() {
                 "head.weight" => head_w = Some(tensor),
                 "head.bias" => head_b = Some(tensor),
@@ -302,23 +192,16 @@ impl AdapterPackage {
                 file: file.to_owned(),
             });
         }
+        let head_err = |tensor: &str, problem: &str| PackageError::HeadShape {
+            file: file.to_owned(),
+            tensor: tensor.to_owned(),
+            problem: problem.to_owned(),
+        };
         let head = match (head_w, head_b) {
             (None, None) => None,
             (Some(w), Some(b)) => Some((w, b)),
-            (Some(_), None) => {
-                return Err(PackageError::Shape {
-                    file: file.to_owned(),
-                    tensor: "head.weight".to_owned(),
-                    problem: "comes without head.bias".to_owned(),
-                });
-            }
-            (None, Some(_)) => {
-                return Err(PackageError::Shape {
-                    file: file.to_owned(),
-                    tensor: "head.bias".to_owned(),
-                    problem: "comes without head.weight".to_owned(),
-                });
-            }
+            (Some(_), None) => return Err(head_err("head.weight", "comes without head.bias")),
+            (None, Some(_)) => return Err(head_err("head.bias", "comes without head.weight")),
         };
         let pkg = AdapterPackage {
             meta,
@@ -331,6 +214,11 @@ impl AdapterPackage {
 
     fn check_head(&self, file: &str) -> Result<(), PackageError> {
         let labels = self.meta.labels.len();
+        let head_err = |tensor: &str, problem: String| PackageError::HeadShape {
+            file: file.to_owned(),
+            tensor: tensor.to_owned(),
+            problem,
+        };
         match (&self.head, self.meta.task) {
             (None, Task::Classify) => Err(PackageError::Metadata {
                 file: file.to_owned(),
@@ -343,14 +231,9 @@ impl AdapterPackage {
                 problem: format!("is {task} but the package carries a classification head"),
             }),
             (Some((w, b)), _) => {
-                let shape_err = |tensor: &str, problem: String| PackageError::Shape {
-                    file: file.to_owned(),
-                    tensor: tensor.to_owned(),
-                    problem,
-                };
                 let dims = w.dims();
                 if dims.len() != 2 || dims[0] != labels {
-                    return Err(shape_err(
+                    return Err(head_err(
                         "head.weight",
                         format!(
                             "has shape {dims:?}, expected [{labels}, hidden] for {labels} labels"
@@ -358,7 +241,7 @@ impl AdapterPackage {
                     ));
                 }
                 if b.dims() != [labels] {
-                    return Err(shape_err(
+                    return Err(head_err(
                         "head.bias",
                         format!(
                             "has shape {:?}, expected [{labels}] for {labels} labels",
@@ -430,7 +313,7 @@ impl AdapterPackage {
         if let Some((w, _)) = &self.head {
             let hidden = w.dims()[1];
             if hidden != base.hidden_size {
-                return Err(PackageError::Shape {
+                return Err(PackageError::HeadShape {
                     file: file.to_owned(),
                     tensor: "head.weight".to_owned(),
                     problem: format!(
@@ -443,20 +326,25 @@ impl AdapterPackage {
         Ok(())
     }
 
-    /// Serialises the package to safetensors bytes with its metadata.
+    /// Serialises the package to safetensors bytes with its metadata. The same package always
+    /// gives the same bytes.
     pub fn to_bytes(&self) -> Result<Vec<u8>, PackageError> {
-        let mut named: Vec<(String, Vec<usize>, Vec<u8>)> = Vec::new();
+        let mut tensors = Vec::with_capacity(2 * self.factors.len() + 2);
         let mut push = |name: String, t: &Tensor| -> Result<(), PackageError> {
             let values = t
                 .flatten_all()
+                .and_then(|f| f.to_dtype(candle_core::DType::F32))
                 .and_then(|f| f.to_vec1::<f32>())
                 .map_err(|e| PackageError::Shape {
                     file: "<new package>".to_owned(),
                     tensor: name.clone(),
                     problem: format!("cannot be read as f32: {e}"),
                 })?;
-            let bytes = values.iter().flat_map(|v| v.to_le_bytes()).collect();
-            named.push((name, t.dims().to_vec(), bytes));
+            tensors.push(write::NamedTensor {
+                name,
+                shape: t.dims().to_vec(),
+                values,
+            });
             Ok(())
         };
         for (site, (a, b)) in &self.factors {
@@ -467,36 +355,7 @@ impl AdapterPackage {
             push("head.weight".to_owned(), w)?;
             push("head.bias".to_owned(), b)?;
         }
-        let views: Vec<(String, safetensors::tensor::TensorView<'_>)> = named
-            .iter()
-            .map(|(n, shape, bytes)| {
-                let view = safetensors::tensor::TensorView::new(Dtype::F32, shape.clone(), bytes)
-                    .expect("shape and byte length agree by construction");
-                (n.clone(), view)
-            })
-            .collect();
-        let mut info = HashMap::new();
-        info.insert("format_version".to_owned(), FORMAT_VERSION.to_string());
-        info.insert(
-            "base_fingerprint".to_owned(),
-            self.meta.base_fingerprint.clone(),
-        );
-        info.insert("rank".to_owned(), self.meta.rank.to_string());
-        info.insert("alpha".to_owned(), self.meta.alpha.to_string());
-        info.insert("task".to_owned(), self.meta.task.as_str().to_owned());
-        if !self.meta.labels.is_empty() {
-            info.insert(
-                "labels".to_owned(),
-                serde_json::to_string(&self.meta.labels).expect("strings serialise"),
-            );
-        }
-        info.insert("description".to_owned(), self.meta.description.clone());
-        safetensors::tensor::serialize(views, Some(info)).map_err(|e| {
-            PackageError::NotSafetensors {
-                file: "<new package>".to_owned(),
-                reason: e.to_string(),
-            }
-        })
+        Ok(write::serialize(&meta::meta_map(&self.meta), tensors))
     }
 
     /// Writes the package to `path` and returns its content version.
@@ -535,149 +394,36 @@ fn check_factor_shapes(
     b: &Tensor,
     rank: usize,
 ) -> Result<(), PackageError> {
-    let a_name = site.tensor_name(Factor::A);
-    let b_name = site.tensor_name(Factor::B);
     let shape_err = |tensor: String, problem: String| PackageError::Shape {
         file: file.to_owned(),
         tensor,
         problem,
     };
-    if a.dims().len() != 2 {
-        return Err(shape_err(
-            a_name,
-            format!("has shape {:?}, expected [r, in]", a.dims()),
-        ));
-    }
-    if b.dims().len() != 2 {
-        return Err(shape_err(
-            b_name,
-            format!("has shape {:?}, expected [out, r]", b.dims()),
-        ));
-    }
-    let (ra, _) = a.dims2().unwrap();
-    let (_, rb) = b.dims2().unwrap();
-    if ra != rank {
-        return Err(PackageError::Rank {
-            file: file.to_owned(),
-            tensor: a_name,
-            rank: ra,
-            problem: format!("(rows of A) differs from the declared rank {rank}"),
+    let (Ok((ra, _)), Ok((_, rb))) = (a.dims2(), b.dims2()) else {
+        return Err(if a.dims().len() != 2 {
+            shape_err(
+                site.tensor_name(Factor::A),
+                format!("has shape {:?}, expected [r, in]", a.dims()),
+            )
+        } else {
+            shape_err(
+                site.tensor_name(Factor::B),
+                format!("has shape {:?}, expected [out, r]", b.dims()),
+            )
         });
-    }
-    if rb != rank {
-        return Err(PackageError::Rank {
-            file: file.to_owned(),
-            tensor: b_name,
-            rank: rb,
-            problem: format!("(columns of B) differs from the declared rank {rank}"),
-        });
+    };
+    for (tensor, found, what) in [
+        (Factor::A, ra, "rows of A"),
+        (Factor::B, rb, "columns of B"),
+    ] {
+        if found != rank {
+            return Err(PackageError::Rank {
+                file: file.to_owned(),
+                tensor: site.tensor_name(tensor),
+                rank: found,
+                problem: format!("({what}) differs from the declared rank {rank}"),
+            });
+        }
     }
     Ok(())
-}
-
-fn to_tensor(data: &[u8], shape: &[usize], file: &str, name: &str) -> Result<Tensor, PackageError> {
-    let values: Vec<f32> = data
-        .chunks_exact(4)
-        .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
-        .collect();
-    if let Some(index) = values.iter().position(|v| !v.is_finite()) {
-        return Err(PackageError::NonFinite {
-            file: file.to_owned(),
-            tensor: name.to_owned(),
-            index,
-        });
-    }
-    Tensor::from_vec(values, shape, &Device::Cpu).map_err(|e| PackageError::Shape {
-        file: file.to_owned(),
-        tensor: name.to_owned(),
-        problem: format!("cannot be built: {e}"),
-    })
-}
-
-fn parse_meta(
-    md: &HashMap<String, String>,
-    file: &str,
-    limits: &Limits,
-) -> Result<PackageMeta, PackageError> {
-    let err = |key: &str, problem: String| PackageError::Metadata {
-        file: file.to_owned(),
-        key: key.to_owned(),
-        problem,
-    };
-    const KNOWN: [&str; 7] = [
-        "format_version",
-        "base_fingerprint",
-        "rank",
-        "alpha",
-        "task",
-        "labels",
-        "description",
-    ];
-    let mut keys: Vec<&String> = md.keys().collect();
-    keys.sort();
-    if let Some(unknown) = keys.into_iter().find(|k| !KNOWN.contains(&k.as_str())) {
-        return Err(err(
-            unknown,
-            format!("is not a known key (known: {})", KNOWN.join(", ")),
-        ));
-    }
-    let get = |key: &str| md.get(key).ok_or_else(|| err(key, "is missing".to_owned()));
-    let version = get("format_version")?;
-    if version.trim() != FORMAT_VERSION.to_string() {
-        return Err(err(
-            "format_version",
-            format!("is {version:?}, this build reads version {FORMAT_VERSION}"),
-        ));
-    }
-    let base_fingerprint = get("base_fingerprint")?.clone();
-    if base_fingerprint.is_empty() {
-        return Err(err("base_fingerprint", "is empty".to_owned()));
-    }
-    let rank_text = get("rank")?;
-    let rank: usize = rank_text
-        .trim()
-        .parse()
-        .map_err(|_| err("rank", format!("is {rank_text:?}, not a whole number")))?;
-    if rank == 0 {
-        return Err(err("rank", "is 0; the rank must be at least 1".to_owned()));
-    }
-    if rank > limits.max_rank {
-        return Err(PackageError::Rank {
-            file: file.to_owned(),
-            tensor: "(metadata)".to_owned(),
-            rank,
-            problem: format!("is above the configured maximum {}", limits.max_rank),
-        });
-    }
-    let alpha_text = get("alpha")?;
-    let alpha: f64 = alpha_text
-        .trim()
-        .parse()
-        .map_err(|_| err("alpha", format!("is {alpha_text:?}, not a number")))?;
-    if !alpha.is_finite() || alpha <= 0.0 {
-        return Err(err(
-            "alpha",
-            format!("is {alpha}; it must be finite and positive"),
-        ));
-    }
-    let task_text = get("task")?;
-    let task = Task::parse(task_text.trim()).ok_or_else(|| {
-        err(
-            "task",
-            format!("is {task_text:?}; expected generate, embed or classify"),
-        )
-    })?;
-    let labels = match md.get("labels") {
-        None => Vec::new(),
-        Some(text) => serde_json::from_str::<Vec<String>>(text)
-            .map_err(|e| err("labels", format!("is not a JSON array of strings: {e}")))?,
-    };
-    Ok(PackageMeta {
-        base_fingerprint,
-        rank,
-        alpha,
-        task,
-        labels,
-        description: md.get("description").cloned().unwrap_or_default(),
-    })
 }

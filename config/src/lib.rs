@@ -1,241 +1,421 @@
-//! Settings for switchyard, read raw from a TOML file and `SWITCHYARD_*` environment variables,
-//! then turned into one validated [`Settings`]. Precedence, lowest first: built-in defaults, the
-//! file, the environment, then whatever the caller (the CLI) overrides explicitly.
+//! Settings for switchyard, read raw from a TOML file, `SWITCHYARD_*` environment variables and
+//! command-line flags, then turned into one validated [`Settings`]. Precedence, lowest first:
+//! built-in defaults, the file, the environment, then the command line ([`Overrides`]).
 //!
-//! A refused value is reported as a [`ConfigError`] that names the key and the value.
+//! `read` knows where each key lives and which variable overrides it, and refuses unknown keys;
+//! [`rules`] holds the rules for names, adapter patterns and secrets; `tenants` reads
+//! `[[tenants]]`; `render` writes the effective settings back out as TOML. A refused value is a
+//! [`ConfigError`] that names the key and the value (for an API key or the admin token, only the
+//! key). Paths are kept as written: a relative one is relative to the working directory of the
+//! process, not to the file.
+
+mod error;
+mod read;
+mod render;
+pub mod rules;
+mod tenants;
 
 use std::collections::BTreeMap;
+use std::fmt;
+use std::net::{Ipv4Addr, SocketAddr};
 use std::path::{Path, PathBuf};
 
-use serde::Deserialize;
+pub use error::ConfigError;
+pub use read::{KEYS, SettingKey};
 
-/// Why a configuration was refused.
-#[derive(Debug, thiserror::Error)]
-pub enum ConfigError {
-    #[error("cannot read config file {path}: {source}")]
-    Read {
-        path: PathBuf,
-        source: std::io::Error,
-    },
-    #[error("config file {path} is not valid TOML for switchyard: {message}")]
-    Parse { path: PathBuf, message: String },
-    #[error("invalid value {value:?} for `{key}`: {rule}")]
-    Invalid {
-        key: String,
-        value: String,
-        rule: String,
-    },
-}
+use read::{Origin, Sources};
+use rules::secret_rule;
 
-/// Raw, optional settings exactly as a file spells them; unknown keys are refused.
-#[derive(Debug, Default, Deserialize)]
-#[serde(deny_unknown_fields)]
-struct RawSettings {
-    #[serde(default)]
-    model: RawModel,
-    #[serde(default)]
-    engine: RawEngine,
-}
+/// The largest batch a single forward pass accepts; beyond it one request could starve the rest.
+pub const MAX_BATCH_ROWS_LIMIT: usize = 4096;
 
-#[derive(Debug, Default, Deserialize)]
-#[serde(deny_unknown_fields)]
-struct RawModel {
-    dir: Option<PathBuf>,
-}
-
-#[derive(Debug, Default, Deserialize)]
-#[serde(deny_unknown_fields)]
-struct RawEngine {
-    threads: Option<i64>,
-    max_batch_rows: Option<i64>,
-}
+const KIB: u64 = 1024;
+const MIB: u64 = 1024 * KIB;
+const GIB: u64 = 1024 * MIB;
 
 /// The validated settings every part of switchyard reads.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Clone, PartialEq)]
 pub struct Settings {
+    /// Address the HTTP server binds (`[server] listen`).
+    pub listen: SocketAddr,
     /// Folder of the base model checkpoint (config.json, *.safetensors, tokenizer.json).
     pub model_dir: Option<PathBuf>,
+    /// Root of the adapter store (`<store>/<name>/<version>.safetensors`).
+    pub store_dir: Option<PathBuf>,
     /// Compute threads for the model; 0 means one per core.
     pub threads: usize,
     /// Most rows (sequences) one forward pass may carry.
     pub max_batch_rows: usize,
+    /// Requests admitted and waiting for the engine; one more is answered 429.
+    pub queue_depth: usize,
+    /// Deadline of one request, from admission to its last byte.
+    pub request_timeout_ms: u64,
+    /// Largest request body; uploads carry whole adapter packages.
+    pub max_body_bytes: usize,
+    /// Most tokens one input text may have.
+    pub max_input_tokens: usize,
+    /// Most tokens one generation may produce.
+    pub max_output_tokens: usize,
+    /// Most texts one embed or classify request may carry.
+    pub max_texts_per_request: usize,
+    /// Memory for resident adapter factors (A and B), least recently used evicted first.
+    pub factor_budget_bytes: usize,
+    /// Memory for merged variants; 0 turns merging off.
+    pub merged_budget_bytes: usize,
+    /// Share of the recent rows an adapter needs to earn a merged variant, in (0, 1].
+    pub promote_share: f64,
+    /// How many recent rows the promotion share is measured over.
+    pub promote_window_rows: usize,
+    /// Bearer token of the admin API; `None` disables the admin API.
+    pub admin_token: Option<String>,
+    /// API keys and the adapters each tenant may use; empty means open (no keys asked).
+    pub tenants: Vec<TenantSettings>,
+    pub log_format: LogFormat,
+    /// A tracing filter (`info`, `switchyard=debug,warn`, ...).
+    pub log_filter: String,
+    /// How long in-flight work may take to finish after SIGTERM.
+    pub shutdown_grace_ms: u64,
+}
+
+/// One `[[tenants]]` entry.
+#[derive(Clone, PartialEq, Eq)]
+pub struct TenantSettings {
+    pub name: String,
+    /// API keys, any of which identifies this tenant.
+    pub keys: Vec<String>,
+    /// Adapter (and split) name patterns, `*` matching any run of characters; `base` is always
+    /// allowed and need not be listed.
+    pub adapters: Vec<String>,
+}
+
+/// How log lines are written.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum LogFormat {
+    /// One readable line per event.
+    #[default]
+    Human,
+    /// One JSON object per line.
+    Json,
+}
+
+impl LogFormat {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            LogFormat::Human => "human",
+            LogFormat::Json => "json",
+        }
+    }
+}
+
+impl fmt::Display for LogFormat {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// Values given as command-line flags; they win over the file and the environment.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Overrides {
+    pub listen: Option<SocketAddr>,
+    pub model_dir: Option<PathBuf>,
+    pub store_dir: Option<PathBuf>,
 }
 
 impl Default for Settings {
     fn default() -> Self {
         Self {
+            listen: SocketAddr::from((Ipv4Addr::LOCALHOST, 7070)),
             model_dir: None,
+            store_dir: None,
             threads: 0,
             max_batch_rows: 32,
+            queue_depth: 256,
+            request_timeout_ms: 30_000,
+            max_body_bytes: (16 * MIB) as usize,
+            max_input_tokens: 256,
+            max_output_tokens: 256,
+            max_texts_per_request: 64,
+            factor_budget_bytes: GIB as usize,
+            merged_budget_bytes: (2 * GIB) as usize,
+            promote_share: 0.9,
+            promote_window_rows: 512,
+            admin_token: None,
+            tenants: Vec::new(),
+            log_format: LogFormat::Human,
+            log_filter: "info".to_owned(),
+            shutdown_grace_ms: 10_000,
         }
     }
 }
 
-/// The largest batch a single forward pass accepts; beyond it one request could starve the rest.
-pub const MAX_BATCH_ROWS_LIMIT: usize = 4096;
-
 impl Settings {
-    /// Reads settings from an optional TOML file and an environment map (for the process
-    /// environment, pass `std::env::vars()`); only `SWITCHYARD_*` keys are looked at.
+    /// Reads settings from an optional TOML file and an environment (for the process
+    /// environment, pass `std::env::vars()`); only `SWITCHYARD_*` variables are looked at.
     pub fn load(
         file: Option<&Path>,
         env: impl IntoIterator<Item = (String, String)>,
     ) -> Result<Self, ConfigError> {
-        let raw = match file {
+        Self::load_with(file, env, &Overrides::default())
+    }
+
+    /// [`Settings::load`], with command-line values that win over both the file and the
+    /// environment.
+    pub fn load_with(
+        file: Option<&Path>,
+        env: impl IntoIterator<Item = (String, String)>,
+        overrides: &Overrides,
+    ) -> Result<Self, ConfigError> {
+        let (text, path) = match file {
             Some(path) => {
                 let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
                     path: path.to_owned(),
                     source,
                 })?;
-                toml::from_str::<RawSettings>(&text).map_err(|e| ConfigError::Parse {
-                    path: path.to_owned(),
-                    message: e.message().to_owned(),
-                })?
+                (text, path)
             }
-            None => RawSettings::default(),
+            None => (String::new(), Path::new("")),
         };
+        Self::from_text(&text, path, env, overrides)
+    }
+
+    /// The work of [`Settings::load_with`] once the file is read; `path` only labels errors.
+    pub(crate) fn from_text(
+        text: &str,
+        path: &Path,
+        env: impl IntoIterator<Item = (String, String)>,
+        overrides: &Overrides,
+    ) -> Result<Self, ConfigError> {
+        let table = parse_toml(text, path)?;
         let env: BTreeMap<String, String> = env
             .into_iter()
             .filter(|(k, _)| k.starts_with("SWITCHYARD_"))
             .collect();
-        Self::from_raw(raw, &env)
+        Self::from_sources(&Sources::new(&table, &env)?, overrides)
     }
 
-    fn from_raw(raw: RawSettings, env: &BTreeMap<String, String>) -> Result<Self, ConfigError> {
-        let defaults = Settings::default();
-        let model_dir = env
-            .get("SWITCHYARD_MODEL_DIR")
-            .map(PathBuf::from)
-            .or(raw.model.dir);
-        let threads = match env.get("SWITCHYARD_ENGINE_THREADS") {
-            Some(v) => parse_int("engine.threads (SWITCHYARD_ENGINE_THREADS)", v)?,
-            None => raw.engine.threads.unwrap_or(defaults.threads as i64),
+    /// The base model folder, which `switchyard serve` cannot run without.
+    pub fn require_model_dir(&self) -> Result<&Path, ConfigError> {
+        self.model_dir.as_deref().ok_or_else(|| ConfigError::Missing {
+            key: read::MODEL_DIR.dotted(),
+            rule: format!(
+                "name the base model checkpoint folder in [{}] {} of the config file, in {}, or on the command line",
+                read::MODEL_DIR.section,
+                read::MODEL_DIR.name,
+                read::MODEL_DIR.env
+            ),
+        })
+    }
+
+    /// The effective settings as TOML text in the file's layout, API keys and the admin token
+    /// shown as `"<redacted, N chars>"`.
+    pub fn render_effective(&self) -> String {
+        render::render(self)
+    }
+
+    fn from_sources(src: &Sources<'_>, overrides: &Overrides) -> Result<Self, ConfigError> {
+        let d = Settings::default();
+        let listen = match overrides.listen {
+            Some(addr) => addr,
+            None => match src.text(&read::LISTEN, false)? {
+                Some((text, origin)) => text.trim().parse().map_err(|_| {
+                    ConfigError::invalid(
+                        origin.label(&read::LISTEN),
+                        text.as_str(),
+                        "expected an address and port, such as 127.0.0.1:7070 or [::1]:7070",
+                    )
+                })?,
+                None => d.listen,
+            },
         };
-        let max_batch_rows = match env.get("SWITCHYARD_ENGINE_MAX_BATCH_ROWS") {
-            Some(v) => parse_int(
-                "engine.max_batch_rows (SWITCHYARD_ENGINE_MAX_BATCH_ROWS)",
-                v,
+        let size = |n: u64| usize::try_from(n).unwrap_or(usize::MAX);
+        let tenants = tenants::read_tenants(src.tenants())?;
+        let admin_token = admin_token(src, &tenants)?;
+        Ok(Settings {
+            listen,
+            model_dir: dir(src, &read::MODEL_DIR, overrides.model_dir.as_deref())?,
+            store_dir: dir(src, &read::STORE_DIR, overrides.store_dir.as_deref())?,
+            threads: size(src.whole(&read::THREADS, d.threads as u64, 0..=1024)?),
+            max_batch_rows: size(src.whole(
+                &read::MAX_BATCH_ROWS,
+                d.max_batch_rows as u64,
+                1..=MAX_BATCH_ROWS_LIMIT as u64,
+            )?),
+            queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
+            // An hour: a deadline past that is a forgotten request, not a slow one.
+            request_timeout_ms: src.whole(
+                &read::REQUEST_TIMEOUT_MS,
+                d.request_timeout_ms,
+                1..=3_600_000,
             )?,
-            None => raw
-                .engine
-                .max_batch_rows
-                .unwrap_or(defaults.max_batch_rows as i64),
-        };
-        let settings = Settings {
-            model_dir,
-            threads: in_range("engine.threads", threads, 0, 1024)?,
-            max_batch_rows: in_range(
-                "engine.max_batch_rows",
-                max_batch_rows,
-                1,
-                MAX_BATCH_ROWS_LIMIT,
+            max_body_bytes: size(src.whole(
+                &read::MAX_BODY_BYTES,
+                d.max_body_bytes as u64,
+                KIB..=GIB,
+            )?),
+            max_input_tokens: size(src.whole(
+                &read::MAX_INPUT_TOKENS,
+                d.max_input_tokens as u64,
+                1..=131_072,
+            )?),
+            max_output_tokens: size(src.whole(
+                &read::MAX_OUTPUT_TOKENS,
+                d.max_output_tokens as u64,
+                1..=131_072,
+            )?),
+            max_texts_per_request: size(src.whole(
+                &read::MAX_TEXTS_PER_REQUEST,
+                d.max_texts_per_request as u64,
+                1..=10_000,
+            )?),
+            factor_budget_bytes: size(src.whole(
+                &read::FACTOR_BUDGET_BYTES,
+                d.factor_budget_bytes as u64,
+                MIB..=1024 * GIB,
+            )?),
+            merged_budget_bytes: size(src.whole(
+                &read::MERGED_BUDGET_BYTES,
+                d.merged_budget_bytes as u64,
+                0..=1024 * GIB,
+            )?),
+            promote_share: src.number(&read::PROMOTE_SHARE, d.promote_share, |x| {
+                (!(x > 0.0 && x <= 1.0)).then_some("must be above 0 and at most 1")
+            })?,
+            promote_window_rows: size(src.whole(
+                &read::PROMOTE_WINDOW_ROWS,
+                d.promote_window_rows as u64,
+                1..=1_000_000,
+            )?),
+            admin_token,
+            tenants,
+            log_format: match src.text(&read::LOG_FORMAT, false)? {
+                None => d.log_format,
+                Some((text, origin)) => match text.as_str() {
+                    "human" => LogFormat::Human,
+                    "json" => LogFormat::Json,
+                    _ => {
+                        return Err(ConfigError::invalid(
+                            origin.label(&read::LOG_FORMAT),
+                            text,
+                            "expected \"human\" or \"json\"",
+                        ));
+                    }
+                },
+            },
+            log_filter: match src.text(&read::LOG_FILTER, false)? {
+                Some((text, _)) => text,
+                None => d.log_filter,
+            },
+            shutdown_grace_ms: src.whole(
+                &read::SHUTDOWN_GRACE_MS,
+                d.shutdown_grace_ms,
+                0..=600_000,
             )?,
-        };
-        Ok(settings)
+        })
     }
 }
 
-fn parse_int(key: &str, value: &str) -> Result<i64, ConfigError> {
-    value.trim().parse().map_err(|_| ConfigError::Invalid {
-        key: key.to_owned(),
-        value: value.to_owned(),
-        rule: "expected a whole number".to_owned(),
+/// A folder from the command line, the environment or the file, in that order.
+fn dir(
+    src: &Sources<'_>,
+    key: &SettingKey,
+    command_line: Option<&Path>,
+) -> Result<Option<PathBuf>, ConfigError> {
+    if let Some(path) = command_line {
+        if path.as_os_str().is_empty() {
+            return Err(ConfigError::invalid(
+                Origin::CommandLine.label(key),
+                "",
+                "is empty; give a folder",
+            ));
+        }
+        return Ok(Some(path.to_owned()));
+    }
+    Ok(src.text(key, false)?.map(|(text, _)| PathBuf::from(text)))
+}
+
+/// The admin token follows the API key rule, and differs from every tenant's key: one string
+/// must not be both a tenant's key and the key to the admin API.
+fn admin_token(
+    src: &Sources<'_>,
+    tenants: &[TenantSettings],
+) -> Result<Option<String>, ConfigError> {
+    let Some((token, origin)) = src.text(&read::ADMIN_TOKEN, true)? else {
+        return Ok(None);
+    };
+    let label = origin.label(&read::ADMIN_TOKEN);
+    if let Some(rule) = secret_rule(&token) {
+        return Err(ConfigError::secret(label, rule));
+    }
+    for (i, tenant) in tenants.iter().enumerate() {
+        if let Some(j) = tenant.keys.iter().position(|k| *k == token) {
+            return Err(ConfigError::secret(
+                label,
+                format!(
+                    "is the same as `tenants[{i}].keys[{j}]`; the admin token must differ from every API key"
+                ),
+            ));
+        }
+    }
+    Ok(Some(token))
+}
+
+/// Parses the file into a table; a syntax error says where (line and column).
+fn parse_toml(text: &str, path: &Path) -> Result<toml::Table, ConfigError> {
+    text.parse::<toml::Table>().map_err(|e| {
+        let place = e.span().map(|span| {
+            let before = &text[..span.start.min(text.len())];
+            let line = before.matches('\n').count() + 1;
+            let column = before.rsplit('\n').next().unwrap_or("").chars().count() + 1;
+            format!("line {line}, column {column}: ")
+        });
+        ConfigError::Parse {
+            path: path.to_owned(),
+            message: format!("{}{}", place.unwrap_or_default(), e.message()),
+        }
     })
 }
 
-fn in_range(key: &str, value: i64, min: usize, max: usize) -> Result<usize, ConfigError> {
-    if value < min as i64 || value > max as i64 {
-        return Err(ConfigError::Invalid {
-            key: key.to_owned(),
-            value: value.to_string(),
-            rule: format!("must be between {min} and {max}"),
-        });
+/// Keeps secrets out of `{:?}`: a settings value is printed in logs and test failures.
+impl fmt::Debug for Settings {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("Settings")
+            .field("listen", &self.listen)
+            .field("model_dir", &self.model_dir)
+            .field("store_dir", &self.store_dir)
+            .field("threads", &self.threads)
+            .field("max_batch_rows", &self.max_batch_rows)
+            .field("queue_depth", &self.queue_depth)
+            .field("request_timeout_ms", &self.request_timeout_ms)
+            .field("max_body_bytes", &self.max_body_bytes)
+            .field("max_input_tokens", &self.max_input_tokens)
+            .field("max_output_tokens", &self.max_output_tokens)
+            .field("max_texts_per_request", &self.max_texts_per_request)
+            .field("factor_budget_bytes", &self.factor_budget_bytes)
+            .field("merged_budget_bytes", &self.merged_budget_bytes)
+            .field("promote_share", &self.promote_share)
+            .field("promote_window_rows", &self.promote_window_rows)
+            .field(
+                "admin_token",
+                &self.admin_token.as_deref().map(rules::redacted),
+            )
+            .field("tenants", &self.tenants)
+            .field("log_format", &self.log_format)
+            .field("log_filter", &self.log_filter)
+            .field("shutdown_grace_ms", &self.shutdown_grace_ms)
+            .finish()
     }
-    Ok(value as usize)
+}
+
+impl fmt::Debug for TenantSettings {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let keys: Vec<String> = self.keys.iter().map(|k| rules::redacted(k)).collect();
+        f.debug_struct("TenantSettings")
+            .field("name", &self.name)
+            .field("keys", &keys)
+            .field("adapters", &self.adapters)
+            .finish()
+    }
 }
 
 #[cfg(test)]
-mod tests {
-    use super::*;
-
-    fn write(text: &str) -> (tempfile_dir::Dir, PathBuf) {
-        let dir = tempfile_dir::Dir::new();
-        let path = dir.path().join("switchyard.toml");
-        std::fs::write(&path, text).unwrap();
-        (dir, path)
-    }
-
-    /// A tiny temporary directory, to keep this crate free of test-only dependencies.
-    mod tempfile_dir {
-        use std::path::{Path, PathBuf};
-        pub struct Dir(PathBuf);
-        impl Dir {
-            pub fn new() -> Self {
-                use std::sync::atomic::{AtomicUsize, Ordering};
-                static N: AtomicUsize = AtomicUsize::new(0);
-                let p = std::env::temp_dir().join(format!(
-                    "switchyard-config-test-{}-{}",
-                    std::process::id(),
-                    N.fetch_add(1, Ordering::SeqCst)
-                ));
-                std::fs::create_dir_all(&p).unwrap();
-                Dir(p)
-            }
-            pub fn path(&self) -> &Path {
-                &self.0
-            }
-        }
-        impl Drop for Dir {
-            fn drop(&mut self) {
-                let _ = std::fs::remove_dir_all(&self.0);
-            }
-        }
-    }
-
-    #[test]
-    fn defaults_apply_without_file_or_environment() {
-        let s = Settings::load(None, Vec::new()).unwrap();
-        assert_eq!(s, Settings::default());
-    }
-
-    #[test]
-    fn environment_overrides_file() {
-        let (_d, path) = write("[engine]\nmax_batch_rows = 8\nthreads = 2\n");
-        let env = vec![(
-            "SWITCHYARD_ENGINE_MAX_BATCH_ROWS".to_owned(),
-            "16".to_owned(),
-        )];
-        let s = Settings::load(Some(&path), env).unwrap();
-        assert_eq!(s.max_batch_rows, 16);
-        assert_eq!(s.threads, 2);
-    }
-
-    #[test]
-    fn out_of_range_value_names_key_and_value() {
-        let (_d, path) = write("[engine]\nmax_batch_rows = 0\n");
-        let err = Settings::load(Some(&path), Vec::new())
-            .unwrap_err()
-            .to_string();
-        assert!(err.contains("engine.max_batch_rows"), "{err}");
-        assert!(err.contains("\"0\""), "{err}");
-    }
-
-    #[test]
-    fn unknown_key_is_refused_with_its_name() {
-        let (_d, path) = write("[engine]\nmax_rows = 3\n");
-        let err = Settings::load(Some(&path), Vec::new())
-            .unwrap_err()
-            .to_string();
-        assert!(err.contains("max_rows"), "{err}");
-    }
-
-    #[test]
-    fn non_numeric_environment_value_is_refused() {
-        let env = vec![("SWITCHYARD_ENGINE_THREADS".to_owned(), "two".to_owned())];
-        let err = Settings::load(None, env).unwrap_err().to_string();
-        assert!(
-            err.contains("SWITCHYARD_ENGINE_THREADS") && err.contains("two"),
-            "{err}"
-        );
-    }
-}
+mod tests;

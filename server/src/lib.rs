@@ -2,4 +2,8 @@
 //! binary exposes ([`commands`]). `main.rs` only parses flags and calls into here.
 
 pub mod commands;
+pub mod engine;
+pub mod http;
+pub mod metrics;
 pub mod model;
+pub mod splits;

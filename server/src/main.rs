@@ -4,7 +4,12 @@ use std::io::{self, BufReader};
 use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
-use switchyard_server::commands::{embed, generate, similarity};
+
+/// A retaining allocator: model buffers of the same size come and go every forward pass, and a
+/// fresh large allocation from the system costs a page fault per 4 KB (shared/PERF-NOTES.md).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+use switchyard_server::commands::{adapter, embed, generate, plan, serve, similarity};
 use switchyard_server::model::sampling::SamplingParams;
 
 /// switchyard: one base model resident, many low-rank adapters served from it.
@@ -63,9 +68,75 @@ enum Command {
         #[arg(long = "adapter")]
         adapters: Vec<PathBuf>,
     },
+    /// Work with adapter packages and the adapter store: inspect, verify, pack, publish, list,
+    /// live, rollback, retire.
+    Adapter {
+        #[command(subcommand)]
+        command: adapter::AdapterCommand,
+    },
+    /// Plan memory: bytes of one adapter of a given rank and targets, unmerged and merged, and
+    /// how many fit in a budget; needs only the model's config.json.
+    Plan(plan::PlanArgs),
+    /// Serve the HTTP API: one base model resident, every adapter of the store routed to,
+    /// swapped live. Settings come from the config file, then SWITCHYARD_* variables, then these
+    /// flags. Prints `switchyard listening on http://ADDR` once bound; stops cleanly on SIGTERM or
+    /// Ctrl-C (readiness 503, in-flight work finishes within the grace period, exit 0).
+    Serve {
+        /// TOML settings file (see config/switchyard.example.toml).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Address to listen on, e.g. 127.0.0.1:7070 (port 0 picks a free port).
+        #[arg(long)]
+        listen: Option<std::net::SocketAddr>,
+        /// Base model checkpoint folder.
+        #[arg(long)]
+        model: Option<PathBuf>,
+        /// Adapter store folder (created if missing).
+        #[arg(long)]
+        store: Option<PathBuf>,
+    },
+    /// Work with config files.
+    Config {
+        #[command(subcommand)]
+        command: ConfigCommand,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+enum ConfigCommand {
+    /// Load FILE as `switchyard serve` would, with the SWITCHYARD_* environment on top, and print
+    /// the effective settings as TOML, secrets redacted; a refused setting is reported with its
+    /// key and value, and the exit status is 1.
+    #[command(after_long_help = switchyard_server::commands::config::environment_help())]
+    Check {
+        /// The TOML config file to check.
+        file: PathBuf,
+    },
 }
 
 fn main() {
+    let cli = Cli::parse();
+    if let Command::Serve {
+        config,
+        listen,
+        model,
+        store,
+    } = cli.command
+    {
+        let opts = serve::ServeOptions {
+            config,
+            overrides: switchyard_config::Overrides {
+                listen,
+                model_dir: model,
+                store_dir: store,
+            },
+        };
+        if let Err(e) = serve::run(&opts) {
+            eprintln!("switchyard: error: {e:#}");
+            std::process::exit(1);
+        }
+        return;
+    }
     tracing_subscriber::fmt()
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_env("SWITCHYARD_LOG")
@@ -73,7 +144,6 @@ fn main() {
         )
         .with_writer(io::stderr)
         .init();
-    let cli = Cli::parse();
     let result = match cli.command {
         Command::Embed {
             model,
@@ -117,6 +187,14 @@ fn main() {
             BufReader::new(io::stdin().lock()),
             io::stdout().lock(),
         ),
+        Command::Adapter { command } => adapter::run(&command, io::stdout().lock()),
+        Command::Plan(args) => plan::run(&args, io::stdout().lock()),
+        Command::Serve { .. } => unreachable!("handled above"),
+        Command::Config {
+            command: ConfigCommand::Check { file },
+        } => {
+            switchyard_server::commands::config::check(&file, std::env::vars(), io::stdout().lock())
+        }
     };
     if let Err(e) = result {
         eprintln!("switchyard: error: {e:#}");

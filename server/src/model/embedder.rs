@@ -12,11 +12,14 @@ use tokenizers::{Tokenizer, TruncationParams};
 
 use crate::model::bert::{BertConfig, BertModel, mean_pool_normalise};
 use crate::model::checkpoint::{Checkpoint, load_tokenizer};
+use crate::model::linear::RowAdapters;
 
 /// An encoder checkpoint ready to embed text.
 pub struct Embedder {
     model: BertModel,
     tokenizer: Tokenizer,
+    /// The same tokenizer without truncation, to measure inputs against request limits.
+    untruncated: Tokenizer,
     spec: BaseSpec,
     max_tokens: usize,
 }
@@ -33,6 +36,11 @@ impl Embedder {
         let fingerprint = base_fingerprint(ckpt.model_type(), &ckpt.tensor_shapes());
         let spec = model.spec(ckpt.model_type(), fingerprint);
         let max_tokens = sentence_max_tokens(dir).unwrap_or(cfg.max_position_embeddings);
+        let mut untruncated = load_tokenizer(&ckpt.tokenizer_path())?;
+        untruncated
+            .with_truncation(None)
+            .map_err(|e| anyhow::anyhow!("clearing truncation: {e}"))?;
+        untruncated.with_padding(None);
         let mut tokenizer = load_tokenizer(&ckpt.tokenizer_path())?;
         tokenizer
             .with_truncation(Some(TruncationParams {
@@ -44,6 +52,7 @@ impl Embedder {
         Ok(Self {
             model,
             tokenizer,
+            untruncated,
             spec,
             max_tokens,
         })
@@ -75,6 +84,23 @@ impl Embedder {
         Ok(encodings.iter().map(|e| e.get_ids().to_vec()).collect())
     }
 
+    /// Token ids of each text ready for the model (truncated as usual), with each text's token
+    /// count before truncation: what a request limit is measured against.
+    pub fn tokenize_counted(&self, texts: &[&str]) -> anyhow::Result<(Vec<Vec<u32>>, Vec<usize>)> {
+        let encodings = self
+            .untruncated
+            .encode_batch(texts.to_vec(), true)
+            .map_err(|e| anyhow::anyhow!("tokenising: {e}"))?;
+        let mut out: Vec<Vec<u32>> = encodings.iter().map(|e| e.get_ids().to_vec()).collect();
+        let counts = out.iter().map(Vec::len).collect();
+        for (i, ids) in out.iter_mut().enumerate() {
+            if ids.len() > self.max_tokens {
+                *ids = self.tokenize(&texts[i..=i])?.remove(0);
+            }
+        }
+        Ok((out, counts))
+    }
+
     /// One unit-length embedding per text; `adapters[i]` applies to `texts[i]` (all `None` for
     /// the base model).
     pub fn embed(
@@ -93,12 +119,30 @@ impl Embedder {
         adapters: &[Option<Arc<Adapter>>],
     ) -> anyhow::Result<Vec<Vec<f32>>> {
         anyhow::ensure!(ids.len() == adapters.len(), "one adapter slot per input");
+        let t = padded_len(ids);
+        let rows = crate::model::rows_for_sequences(adapters, &vec![t; ids.len()]);
+        self.embed_rows(ids, &rows)
+    }
+
+    /// Embeds token ids with a prepared row assignment (covering `ids.len()` sequences padded to
+    /// the longest): the engine uses it to run a merged variant.
+    pub fn embed_rows(
+        &self,
+        ids: &[Vec<u32>],
+        rows: &RowAdapters,
+    ) -> anyhow::Result<Vec<Vec<f32>>> {
         if ids.is_empty() {
             return Ok(Vec::new());
         }
         let dev = Device::Cpu;
         let b = ids.len();
-        let t = ids.iter().map(Vec::len).max().unwrap_or(0).max(1);
+        let t = padded_len(ids);
+        anyhow::ensure!(
+            rows.rows() == b * t,
+            "row assignment covers {} rows, batch has {}",
+            rows.rows(),
+            b * t
+        );
         let mut flat_ids = vec![0u32; b * t];
         let mut flat_mask = vec![0u32; b * t];
         for (row, seq) in ids.iter().enumerate() {
@@ -107,11 +151,15 @@ impl Embedder {
         }
         let ids_t = Tensor::from_vec(flat_ids, (b, t), &dev)?;
         let mask_t = Tensor::from_vec(flat_mask, (b, t), &dev)?;
-        let rows = crate::model::rows_for_sequences(adapters, &vec![t; b], &dev)?;
-        let hidden = self.model.forward(&ids_t, &mask_t, &rows)?;
+        let hidden = self.model.forward(&ids_t, &mask_t, rows)?;
         let pooled = mean_pool_normalise(&hidden, &mask_t)?;
         Ok(pooled.to_vec2::<f32>()?)
     }
+}
+
+/// The padded length of a batch: its longest sequence (at least 1).
+pub fn padded_len(ids: &[Vec<u32>]) -> usize {
+    ids.iter().map(Vec::len).max().unwrap_or(0).max(1)
 }
 
 /// sentence-transformers' `max_seq_length` where the folder has a sentence_bert_config.json.

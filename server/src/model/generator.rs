@@ -75,7 +75,6 @@ impl Generator {
     /// the live sequences advance one token per batched step until each reaches its limit (or
     /// its end-of-sequence token). Returns the new token ids of each request.
     pub fn generate(&self, requests: &[GenerateRequest]) -> anyhow::Result<Vec<Vec<u32>>> {
-        let dev = candle_core::Device::Cpu;
         let eos = self.model.config.eos_ids();
         let mut caches: Vec<KvCache> = requests.iter().map(|_| self.model.new_cache()).collect();
         let mut samplers: Vec<Sampler> =
@@ -90,11 +89,8 @@ impl Generator {
             if req.limit == 0 {
                 continue;
             }
-            let rows = rows_for_sequences(
-                std::slice::from_ref(&req.adapter),
-                &[req.prompt_ids.len()],
-                &dev,
-            )?;
+            let rows =
+                rows_for_sequences(std::slice::from_ref(&req.adapter), &[req.prompt_ids.len()]);
             let logits =
                 self.model
                     .forward_last(&[&req.prompt_ids], &mut [&mut caches[i]], &rows)?;
@@ -112,7 +108,7 @@ impl Generator {
             let tokens: Vec<&[u32]> = last.iter().map(|t| t.as_slice()).collect();
             let adapters: Vec<Option<Arc<Adapter>>> =
                 live.iter().map(|&i| requests[i].adapter.clone()).collect();
-            let rows = rows_for_sequences(&adapters, &vec![1; live.len()], &dev)?;
+            let rows = rows_for_sequences(&adapters, &vec![1; live.len()]);
             let mut cache_refs: Vec<&mut KvCache> = Vec::with_capacity(live.len());
             // Borrow the live sequences' caches mutably, in `live` order.
             let mut rest: &mut [KvCache] = &mut caches;

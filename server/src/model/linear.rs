@@ -1,15 +1,19 @@
 //! The one adapter-aware linear layer that every projection of every model family goes through.
 //!
 //! It computes `W0 x + s B (A x)` for a flat batch of rows where each row may carry a different
-//! adapter or none: the base matmul runs once over all rows, then each group of rows that shares
-//! an adapter gets that adapter's low-rank term (gathered, applied, scattered back). When the
-//! whole batch runs one merged variant, the merged weight replaces `W0` and no low-rank term is
-//! computed.
+//! adapter or none. The base matmul runs once over all rows, straight into the output buffer
+//! (with the bias, if any, as its starting value); then each run of consecutive rows that shares
+//! an adapter gets that adapter's low-rank term accumulated onto its slice of the output in place
+//! (no gather, no scatter, no temporary output). When the whole batch runs one merged variant,
+//! the merged weight replaces `W0` and no low-rank term is computed.
 
+use std::cell::RefCell;
+use std::ops::Range;
 use std::sync::Arc;
 
-use candle_core::{D, DType, Device, Result, Tensor};
-use switchyard_adapters::{Adapter, LowRank, MergedWeights, Site};
+use candle_core::{DType, Result, Tensor};
+use switchyard_adapters::kernels::{MatRef, matmul_into, parallelism_for, with_f32};
+use switchyard_adapters::{Adapter, MergedWeights, Site};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
 #[derive(Debug, Clone)]
@@ -19,11 +23,11 @@ pub struct RowAdapters {
     merged: Option<Arc<MergedWeights>>,
 }
 
+/// The rows of one adapter, as runs of consecutive rows.
 #[derive(Debug, Clone)]
 struct RowGroup {
     adapter: Arc<Adapter>,
-    /// Row indices as a u32 tensor, `None` when the group covers every row.
-    index: Option<Tensor>,
+    runs: Vec<Range<usize>>,
 }
 
 impl RowAdapters {
@@ -44,7 +48,7 @@ impl RowAdapters {
                 .into_iter()
                 .map(|adapter| RowGroup {
                     adapter,
-                    index: None,
+                    runs: std::iter::once(0..rows).collect(),
                 })
                 .collect(),
             merged: None,
@@ -61,43 +65,32 @@ impl RowAdapters {
     }
 
     /// Sequence `i` has `rows_per_seq[i]` consecutive rows and carries `adapters[i]`.
-    pub fn per_sequence(
-        adapters: &[Option<Arc<Adapter>>],
-        rows_per_seq: &[usize],
-        device: &Device,
-    ) -> Result<Self> {
+    pub fn per_sequence(adapters: &[Option<Arc<Adapter>>], rows_per_seq: &[usize]) -> Self {
         assert_eq!(adapters.len(), rows_per_seq.len());
-        let rows: usize = rows_per_seq.iter().sum();
-        let mut by_adapter: Vec<(Arc<Adapter>, Vec<u32>)> = Vec::new();
-        let mut start = 0u32;
+        let mut groups: Vec<RowGroup> = Vec::new();
+        let mut start = 0;
         for (adapter, &n) in adapters.iter().zip(rows_per_seq) {
             if let Some(adapter) = adapter {
-                let slot = match by_adapter.iter().position(|(a, _)| Arc::ptr_eq(a, adapter)) {
-                    Some(i) => i,
-                    None => {
-                        by_adapter.push((adapter.clone(), Vec::new()));
-                        by_adapter.len() - 1
-                    }
-                };
-                by_adapter[slot].1.extend(start..start + n as u32);
+                let run = start..start + n;
+                match groups.iter_mut().find(|g| Arc::ptr_eq(&g.adapter, adapter)) {
+                    Some(group) => match group.runs.last_mut() {
+                        // Neighbouring sequences of one adapter become one run.
+                        Some(last) if last.end == run.start => last.end = run.end,
+                        _ => group.runs.push(run),
+                    },
+                    None => groups.push(RowGroup {
+                        adapter: adapter.clone(),
+                        runs: vec![run],
+                    }),
+                }
             }
-            start += n as u32;
+            start += n;
         }
-        let mut groups = Vec::with_capacity(by_adapter.len());
-        for (adapter, idx) in by_adapter {
-            let index = if idx.len() == rows {
-                None
-            } else {
-                let n = idx.len();
-                Some(Tensor::from_vec(idx, n, device)?)
-            };
-            groups.push(RowGroup { adapter, index });
-        }
-        Ok(Self {
-            rows,
+        Self {
+            rows: start,
             groups,
             merged: None,
-        })
+        }
     }
 
     pub fn rows(&self) -> usize {
@@ -110,6 +103,11 @@ impl RowAdapters {
     }
 }
 
+thread_local! {
+    /// `x A^T` for one run of rows; reused so the low-rank term allocates nothing per call.
+    static SCRATCH: RefCell<Vec<f32>> = const { RefCell::new(Vec::new()) };
+}
+
 /// A projection `y = W0 x (+ bias)` that knows its site, so each row's adapter can add its term.
 #[derive(Debug, Clone)]
 pub struct AdaptedLinear {
@@ -119,8 +117,13 @@ pub struct AdaptedLinear {
 }
 
 impl AdaptedLinear {
-    pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Self {
-        Self { site, weight, bias }
+    pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Result<Self> {
+        let weight = weight.to_dtype(DType::F32)?.contiguous()?;
+        let bias = match bias {
+            Some(b) => Some(b.to_dtype(DType::F32)?.contiguous()?),
+            None => None,
+        };
+        Ok(Self { site, weight, bias })
     }
 
     /// Loads `weight [out, in]` and, where the checkpoint has one, `bias [out]`.
@@ -136,7 +139,7 @@ impl AdaptedLinear {
         } else {
             None
         };
-        Ok(Self::new(site, weight, bias))
+        Self::new(site, weight, bias)
     }
 
     pub fn site(&self) -> Site {
@@ -159,36 +162,65 @@ impl AdaptedLinear {
         let dims = x.dims().to_vec();
         let in_dim = *dims.last().expect("at least one dimension");
         let rows = x.elem_count() / in_dim.max(1);
-        debug_assert_eq!(rows, adapters.rows, "row count of activation and adapters");
-        let x2 = x.reshape((rows, in_dim))?;
+        if rows != adapters.rows {
+            candle_core::bail!(
+                "{}: activation has {rows} rows but the batch assigns {}",
+                self.site,
+                adapters.rows
+            );
+        }
+        let (out_dim, w_in) = self.shape();
+        if w_in != in_dim {
+            candle_core::bail!(
+                "{}: input has {in_dim} features, weight takes {w_in}",
+                self.site
+            );
+        }
+        let x2 = x
+            .reshape((rows, in_dim))?
+            .to_dtype(DType::F32)?
+            .contiguous()?;
         let weight = adapters
             .merged
             .as_ref()
             .and_then(|m| m.weight(&self.site))
             .unwrap_or(&self.weight);
-        let mut y = x2.matmul(&weight.t()?)?;
-        if let Some(bias) = &self.bias {
-            y = y.broadcast_add(bias)?;
-        }
-        for group in &adapters.groups {
-            let Some(lr) = group.adapter.factors(&self.site) else {
-                continue;
-            };
-            y = add_low_rank(y, &x2, lr, group.index.as_ref())?;
-        }
+        let mut y = match &self.bias {
+            Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
+            None => vec![0f32; rows * out_dim],
+        };
+        with_f32(&x2, |xs| -> Result<()> {
+            with_f32(weight, |w| {
+                matmul_into(
+                    &mut y,
+                    out_dim,
+                    MatRef::row_major(xs, rows, in_dim),
+                    MatRef::transposed(w, in_dim, out_dim),
+                    self.bias.is_some(),
+                    1.0,
+                    parallelism_for(rows, out_dim, in_dim),
+                )
+            })?;
+            SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
+                for group in &adapters.groups {
+                    let Some(lr) = group.adapter.factors(&self.site) else {
+                        continue;
+                    };
+                    for run in &group.runs {
+                        lr.add_delta_into(
+                            &xs[run.start * in_dim..run.end * in_dim],
+                            run.len(),
+                            &mut y[run.start * out_dim..run.end * out_dim],
+                            out_dim,
+                            scratch,
+                        )?;
+                    }
+                }
+                Ok(())
+            })
+        })??;
         let mut out_dims = dims;
-        *out_dims.last_mut().unwrap() = y.dim(D::Minus1)?;
-        y.reshape(out_dims)
-    }
-}
-
-fn add_low_rank(y: Tensor, x: &Tensor, lr: &LowRank, index: Option<&Tensor>) -> Result<Tensor> {
-    match index {
-        None => y + lr.delta(x)?,
-        Some(index) => {
-            let xs = x.index_select(index, 0)?;
-            let delta = lr.delta(&xs)?.to_dtype(DType::F32)?;
-            y.index_add(index, &delta, 0)
-        }
+        *out_dims.last_mut().unwrap() = out_dim;
+        Tensor::from_vec(y, out_dims, x.device())
     }
 }

@@ -3,6 +3,7 @@
 
 pub mod bert;
 pub mod checkpoint;
+pub mod classify;
 pub mod embedder;
 pub mod generator;
 pub mod linear;
@@ -13,7 +14,6 @@ use std::path::Path;
 use std::sync::Arc;
 
 use anyhow::Context;
-use candle_core::Device;
 use switchyard_adapters::package::Limits;
 use switchyard_adapters::{Adapter, AdapterPackage, BaseSpec};
 
@@ -24,8 +24,7 @@ use crate::model::linear::RowAdapters;
 pub fn rows_for_sequences(
     adapters: &[Option<Arc<Adapter>>],
     rows_per_seq: &[usize],
-    device: &Device,
-) -> candle_core::Result<RowAdapters> {
+) -> RowAdapters {
     let rows = rows_per_seq.iter().sum();
     let first = adapters.first().cloned().flatten();
     let uniform = adapters.iter().all(|a| match (a, &first) {
@@ -34,9 +33,9 @@ pub fn rows_for_sequences(
         _ => false,
     });
     if uniform {
-        Ok(RowAdapters::uniform(first, rows))
+        RowAdapters::uniform(first, rows)
     } else {
-        RowAdapters::per_sequence(adapters, rows_per_seq, device)
+        RowAdapters::per_sequence(adapters, rows_per_seq)
     }
 }
 

@@ -1,0 +1,431 @@
+//! The adapter store on local disk: every version of every adapter, and which version is live.
+//!
+//! ```text
+//! <store>/<name>/<version>.safetensors   one immutable file per version (version = content hash)
+//! <store>/<name>/live                    the pointer: live version and rollback history
+//! <store>/<name>/.lock                   advisory lock serialising writers of this adapter
+//! ```
+//!
+//! Writers (publish, set live, rollback, retire) take the adapter's lock, so two processes never
+//! interleave their steps; every file they write is replaced atomically ([`fsio`]), and a version
+//! file is in place and synced before any pointer names it. Readers take no lock: the rename
+//! guarantees they see one whole pointer, and the pointer only ever names versions on disk.
+//! Retiring the live version is refused, and retiring an older one drops it from the history.
+
+mod fsio;
+mod pointer;
+
+use std::path::{Path, PathBuf};
+use std::time::SystemTime;
+
+use crate::fingerprint::BaseSpec;
+use crate::names::{AdapterName, NameError, is_version};
+use crate::package::{AdapterPackage, Limits, PackageBytes, PackageError, PackageMeta};
+use crate::site::Site;
+
+pub use fsio::{LOCK_FILE, TEMP_PREFIX};
+pub use pointer::{HISTORY_LEN, Pointer};
+
+use fsio::{AdapterLock, remove_stale_temps, replace_atomically, sync_dir};
+
+/// Name of the pointer file in each adapter's folder.
+pub const POINTER_FILE: &str = "live";
+
+/// Extension of a version file.
+pub const VERSION_EXT: &str = "safetensors";
+
+/// Why a store operation was refused.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error(transparent)]
+    Name(#[from] NameError),
+    #[error(
+        "{version:?} is not a version; a version is 16 lowercase hex digits, as `switchyard adapter list` prints them"
+    )]
+    BadVersion { version: String },
+    #[error("the store folder {path} does not exist")]
+    NoStore { path: PathBuf },
+    #[error("no adapter {name:?} in the store {store}")]
+    UnknownAdapter { name: String, store: PathBuf },
+    #[error("adapter {name:?} has no version {version} in the store {store}")]
+    UnknownVersion {
+        name: String,
+        version: String,
+        store: PathBuf,
+    },
+    #[error("adapter {name:?} has no earlier live version to roll back to")]
+    NothingToRollBack { name: String },
+    #[error(
+        "version {version} of {name:?} is live; set another version live (or roll back) before retiring it"
+    )]
+    RetireLive { name: String, version: String },
+    #[error("pointer file {path}: line {line}: {problem}")]
+    CorruptPointer {
+        path: PathBuf,
+        line: usize,
+        problem: String,
+    },
+    #[error("{path}: {action}: {source}")]
+    Io {
+        path: PathBuf,
+        action: &'static str,
+        source: std::io::Error,
+    },
+    #[error(transparent)]
+    Package(#[from] PackageError),
+}
+
+/// What a publish did.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Published {
+    pub name: AdapterName,
+    pub version: String,
+    /// The version this one replaced as live; `None` when there was none, or when these bytes
+    /// were live already.
+    pub replaced: Option<String>,
+    /// False when these exact bytes were already stored (the file was not written again).
+    pub new_file: bool,
+}
+
+/// One stored version, as listed.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct VersionInfo {
+    pub version: String,
+    pub bytes: u64,
+    pub stored_at: SystemTime,
+    pub live: bool,
+    /// Position in the rollback history (0 = the next rollback's target).
+    pub history_index: Option<usize>,
+}
+
+/// One stored version with its package metadata.
+#[derive(Debug, Clone)]
+pub struct VersionDetails {
+    pub info: VersionInfo,
+    pub meta: PackageMeta,
+    pub targets: Vec<Site>,
+}
+
+/// The store rooted at one folder.
+#[derive(Debug, Clone)]
+pub struct Store {
+    root: PathBuf,
+    limits: Limits,
+}
+
+impl Store {
+    /// Opens an existing store folder.
+    pub fn open(root: &Path, limits: Limits) -> Result<Self, StoreError> {
+        if !root.is_dir() {
+            return Err(StoreError::NoStore {
+                path: root.to_owned(),
+            });
+        }
+        Ok(Self {
+            root: root.to_owned(),
+            limits,
+        })
+    }
+
+    /// Opens a store folder, creating it (and its parents) when missing.
+    pub fn create(root: &Path, limits: Limits) -> Result<Self, StoreError> {
+        std::fs::create_dir_all(root).map_err(|source| StoreError::Io {
+            path: root.to_owned(),
+            action: "creating the store folder",
+            source,
+        })?;
+        Self::open(root, limits)
+    }
+
+    pub fn root(&self) -> &Path {
+        &self.root
+    }
+
+    pub fn limits(&self) -> &Limits {
+        &self.limits
+    }
+
+    fn adapter_dir(&self, name: &AdapterName) -> PathBuf {
+        self.root.join(name.as_str())
+    }
+
+    fn pointer_path(&self, name: &AdapterName) -> PathBuf {
+        self.adapter_dir(name).join(POINTER_FILE)
+    }
+
+    /// Path of one version's file (which may not exist).
+    pub fn version_path(&self, name: &AdapterName, version: &str) -> Result<PathBuf, StoreError> {
+        check_version(version)?;
+        Ok(self
+            .adapter_dir(name)
+            .join(format!("{version}.{VERSION_EXT}")))
+    }
+
+    /// Validates and stores the package at `path` as a version of `name`, and makes it live.
+    /// With `base`, the package is also checked against that base model.
+    pub fn publish_file(
+        &self,
+        name: &AdapterName,
+        path: &Path,
+        base: Option<&BaseSpec>,
+    ) -> Result<Published, StoreError> {
+        let bytes = PackageBytes::read(path, &self.limits)?;
+        self.publish(name, bytes, &path.display().to_string(), base)
+    }
+
+    /// Validates and stores package bytes as a version of `name`, and makes it live; `source`
+    /// names the bytes in errors.
+    pub fn publish(
+        &self,
+        name: &AdapterName,
+        bytes: PackageBytes,
+        source: &str,
+        base: Option<&BaseSpec>,
+    ) -> Result<Published, StoreError> {
+        let version = bytes.version();
+        let pkg = AdapterPackage::parse(&bytes, source, &self.limits)?;
+        if let Some(base) = base {
+            pkg.validate(source, base, &self.limits)?;
+        }
+        drop(pkg);
+        let dir = self.adapter_dir(name);
+        if !dir.is_dir() {
+            std::fs::create_dir_all(&dir).map_err(|source| StoreError::Io {
+                path: dir.clone(),
+                action: "creating the adapter folder",
+                source,
+            })?;
+            sync_dir(&self.root)?;
+        }
+        let _lock = AdapterLock::acquire(&dir)?;
+        remove_stale_temps(&dir);
+        let target = self.version_path(name, &version)?;
+        let new_file = !target.is_file();
+        if new_file {
+            replace_atomically(&target, bytes.as_bytes())?;
+        }
+        let old = self.pointer(name)?;
+        let replaced = old
+            .as_ref()
+            .map(|p| p.live.clone())
+            .filter(|live| *live != version);
+        if old.as_ref().is_none_or(|p| p.live != version) {
+            let next = match &old {
+                Some(p) => p.flipped_to(&version),
+                None => Pointer {
+                    live: version.clone(),
+                    previous: Vec::new(),
+                },
+            };
+            self.write_pointer(name, &next)?;
+        }
+        tracing::info!(adapter = %name, %version, new_file, "published");
+        Ok(Published {
+            name: name.clone(),
+            version,
+            replaced,
+            new_file,
+        })
+    }
+
+    /// The adapter's pointer, or `None` when the adapter has never been published.
+    pub fn pointer(&self, name: &AdapterName) -> Result<Option<Pointer>, StoreError> {
+        let path = self.pointer_path(name);
+        match std::fs::read_to_string(&path) {
+            Ok(text) => Pointer::parse(&text, &path).map(Some),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(None),
+            Err(source) => Err(StoreError::Io {
+                path,
+                action: "reading the pointer",
+                source,
+            }),
+        }
+    }
+
+    /// The live version of `name`.
+    pub fn live(&self, name: &AdapterName) -> Result<String, StoreError> {
+        self.pointer(name)?
+            .map(|p| p.live)
+            .ok_or_else(|| self.unknown(name))
+    }
+
+    /// Makes a stored version live; the version live before heads the rollback history.
+    pub fn set_live(&self, name: &AdapterName, version: &str) -> Result<Pointer, StoreError> {
+        let dir = self.existing_dir(name)?;
+        let _lock = AdapterLock::acquire(&dir)?;
+        self.require_version(name, version)?;
+        let old = self.pointer(name)?;
+        let next = match old {
+            Some(p) if p.live == version => return Ok(p),
+            Some(p) => p.flipped_to(version),
+            None => Pointer {
+                live: version.to_owned(),
+                previous: Vec::new(),
+            },
+        };
+        self.write_pointer(name, &next)?;
+        Ok(next)
+    }
+
+    /// Makes the most recent earlier live version live again and drops it from the history.
+    pub fn rollback(&self, name: &AdapterName) -> Result<Pointer, StoreError> {
+        let dir = self.existing_dir(name)?;
+        let _lock = AdapterLock::acquire(&dir)?;
+        let old = self.pointer(name)?.ok_or_else(|| self.unknown(name))?;
+        let mut history = old.previous.into_iter();
+        let Some(target) = history.next() else {
+            return Err(StoreError::NothingToRollBack {
+                name: name.to_string(),
+            });
+        };
+        self.require_version(name, &target)?;
+        let next = Pointer {
+            live: target,
+            previous: history.collect(),
+        };
+        self.write_pointer(name, &next)?;
+        Ok(next)
+    }
+
+    /// Deletes a stored version that is not live, and drops it from the rollback history.
+    pub fn retire(&self, name: &AdapterName, version: &str) -> Result<(), StoreError> {
+        let dir = self.existing_dir(name)?;
+        let _lock = AdapterLock::acquire(&dir)?;
+        let path = self.require_version(name, version)?;
+        if let Some(p) = self.pointer(name)? {
+            if p.live == version {
+                return Err(StoreError::RetireLive {
+                    name: name.to_string(),
+                    version: version.to_owned(),
+                });
+            }
+            if p.previous.iter().any(|v| v == version) {
+                let next = Pointer {
+                    live: p.live.clone(),
+                    previous: p.previous.into_iter().filter(|v| v != version).collect(),
+                };
+                self.write_pointer(name, &next)?;
+            }
+        }
+        std::fs::remove_file(&path).map_err(|source| StoreError::Io {
+            path: path.clone(),
+            action: "removing the version file",
+            source,
+        })?;
+        sync_dir(&dir)
+    }
+
+    /// Every adapter with a pointer, in name order.
+    pub fn names(&self) -> Result<Vec<AdapterName>, StoreError> {
+        let entries = std::fs::read_dir(&self.root).map_err(|source| StoreError::Io {
+            path: self.root.clone(),
+            action: "listing the store",
+            source,
+        })?;
+        let mut names: Vec<AdapterName> = entries
+            .flatten()
+            .filter_map(|e| AdapterName::new(&e.file_name().to_string_lossy()).ok())
+            .filter(|n| self.pointer_path(n).is_file())
+            .collect();
+        names.sort();
+        Ok(names)
+    }
+
+    /// Every stored version of `name`, oldest first.
+    pub fn versions(&self, name: &AdapterName) -> Result<Vec<VersionInfo>, StoreError> {
+        let dir = self.existing_dir(name)?;
+        let pointer = self.pointer(name)?;
+        let entries = std::fs::read_dir(&dir).map_err(|source| StoreError::Io {
+            path: dir.clone(),
+            action: "listing the adapter's versions",
+            source,
+        })?;
+        let mut out = Vec::new();
+        for entry in entries.flatten() {
+            let file_name = entry.file_name().to_string_lossy().into_owned();
+            let Some(version) = file_name.strip_suffix(&format!(".{VERSION_EXT}")) else {
+                continue;
+            };
+            if !is_version(version) {
+                continue;
+            }
+            let Ok(md) = entry.metadata() else { continue };
+            out.push(VersionInfo {
+                version: version.to_owned(),
+                bytes: md.len(),
+                stored_at: md.modified().unwrap_or(SystemTime::UNIX_EPOCH),
+                live: pointer.as_ref().is_some_and(|p| p.live == version),
+                history_index: pointer
+                    .as_ref()
+                    .and_then(|p| p.previous.iter().position(|v| v == version)),
+            });
+        }
+        out.sort_by(|a, b| (a.stored_at, &a.version).cmp(&(b.stored_at, &b.version)));
+        Ok(out)
+    }
+
+    /// One stored version with its metadata and targets.
+    pub fn show(&self, name: &AdapterName, version: &str) -> Result<VersionDetails, StoreError> {
+        let path = self.require_version(name, version)?;
+        let info = self
+            .versions(name)?
+            .into_iter()
+            .find(|v| v.version == version)
+            .ok_or_else(|| self.unknown_version(name, version))?;
+        let (pkg, _) = AdapterPackage::read(&path, &self.limits)?;
+        Ok(VersionDetails {
+            info,
+            targets: pkg.targets(),
+            meta: pkg.meta,
+        })
+    }
+
+    fn write_pointer(&self, name: &AdapterName, pointer: &Pointer) -> Result<(), StoreError> {
+        replace_atomically(&self.pointer_path(name), pointer.render().as_bytes())?;
+        tracing::info!(adapter = %name, live = %pointer.live, "pointer flipped");
+        Ok(())
+    }
+
+    fn existing_dir(&self, name: &AdapterName) -> Result<PathBuf, StoreError> {
+        let dir = self.adapter_dir(name);
+        if dir.is_dir() {
+            Ok(dir)
+        } else {
+            Err(self.unknown(name))
+        }
+    }
+
+    fn require_version(&self, name: &AdapterName, version: &str) -> Result<PathBuf, StoreError> {
+        let path = self.version_path(name, version)?;
+        if path.is_file() {
+            Ok(path)
+        } else {
+            Err(self.unknown_version(name, version))
+        }
+    }
+
+    fn unknown(&self, name: &AdapterName) -> StoreError {
+        StoreError::UnknownAdapter {
+            name: name.to_string(),
+            store: self.root.clone(),
+        }
+    }
+
+    fn unknown_version(&self, name: &AdapterName, version: &str) -> StoreError {
+        StoreError::UnknownVersion {
+            name: name.to_string(),
+            version: version.to_owned(),
+            store: self.root.clone(),
+        }
+    }
+}
+
+fn check_version(version: &str) -> Result<(), StoreError> {
+    if is_version(version) {
+        Ok(())
+    } else {
+        Err(StoreError::BadVersion {
+            version: version.to_owned(),
+        })
+    }
+}

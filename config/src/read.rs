@@ -1,0 +1,368 @@
+//! Reading raw values: the table of scalar keys (where each lives in the file and which
+//! `SWITCHYARD_*` variable overrides it), the file's structure check (unknown sections and keys are
+//! refused, with a hint when the key exists in another section), and typed getters that give the
+//! environment precedence over the file and name the key and the value when they refuse.
+
+use std::collections::BTreeMap;
+use std::ops::RangeInclusive;
+
+use toml::{Table, Value};
+
+use crate::ConfigError;
+
+/// One scalar setting: its `[section]`, its name there, and the environment variable that
+/// overrides it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct SettingKey {
+    pub section: &'static str,
+    pub name: &'static str,
+    pub env: &'static str,
+}
+
+impl SettingKey {
+    const fn new(section: &'static str, name: &'static str, env: &'static str) -> Self {
+        Self { section, name, env }
+    }
+
+    /// `section.name`, as errors and the rendered settings spell it.
+    pub fn dotted(&self) -> String {
+        format!("{}.{}", self.section, self.name)
+    }
+}
+
+pub(crate) const LISTEN: SettingKey = SettingKey::new("server", "listen", "SWITCHYARD_LISTEN");
+pub(crate) const SHUTDOWN_GRACE_MS: SettingKey = SettingKey::new(
+    "server",
+    "shutdown_grace_ms",
+    "SWITCHYARD_SERVER_SHUTDOWN_GRACE_MS",
+);
+pub(crate) const MODEL_DIR: SettingKey = SettingKey::new("model", "dir", "SWITCHYARD_MODEL_DIR");
+pub(crate) const STORE_DIR: SettingKey = SettingKey::new("store", "dir", "SWITCHYARD_STORE_DIR");
+pub(crate) const THREADS: SettingKey =
+    SettingKey::new("engine", "threads", "SWITCHYARD_ENGINE_THREADS");
+pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
+    "engine",
+    "max_batch_rows",
+    "SWITCHYARD_ENGINE_MAX_BATCH_ROWS",
+);
+pub(crate) const QUEUE_DEPTH: SettingKey =
+    SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
+pub(crate) const REQUEST_TIMEOUT_MS: SettingKey = SettingKey::new(
+    "engine",
+    "request_timeout_ms",
+    "SWITCHYARD_ENGINE_REQUEST_TIMEOUT_MS",
+);
+pub(crate) const MAX_BODY_BYTES: SettingKey = SettingKey::new(
+    "limits",
+    "max_body_bytes",
+    "SWITCHYARD_LIMITS_MAX_BODY_BYTES",
+);
+pub(crate) const MAX_INPUT_TOKENS: SettingKey = SettingKey::new(
+    "limits",
+    "max_input_tokens",
+    "SWITCHYARD_LIMITS_MAX_INPUT_TOKENS",
+);
+pub(crate) const MAX_OUTPUT_TOKENS: SettingKey = SettingKey::new(
+    "limits",
+    "max_output_tokens",
+    "SWITCHYARD_LIMITS_MAX_OUTPUT_TOKENS",
+);
+pub(crate) const MAX_TEXTS_PER_REQUEST: SettingKey = SettingKey::new(
+    "limits",
+    "max_texts_per_request",
+    "SWITCHYARD_LIMITS_MAX_TEXTS_PER_REQUEST",
+);
+pub(crate) const FACTOR_BUDGET_BYTES: SettingKey = SettingKey::new(
+    "residency",
+    "factor_budget_bytes",
+    "SWITCHYARD_RESIDENCY_FACTOR_BUDGET_BYTES",
+);
+pub(crate) const MERGED_BUDGET_BYTES: SettingKey = SettingKey::new(
+    "residency",
+    "merged_budget_bytes",
+    "SWITCHYARD_RESIDENCY_MERGED_BUDGET_BYTES",
+);
+pub(crate) const PROMOTE_SHARE: SettingKey = SettingKey::new(
+    "residency",
+    "promote_share",
+    "SWITCHYARD_RESIDENCY_PROMOTE_SHARE",
+);
+pub(crate) const PROMOTE_WINDOW_ROWS: SettingKey = SettingKey::new(
+    "residency",
+    "promote_window_rows",
+    "SWITCHYARD_RESIDENCY_PROMOTE_WINDOW_ROWS",
+);
+pub(crate) const ADMIN_TOKEN: SettingKey =
+    SettingKey::new("admin", "token", "SWITCHYARD_ADMIN_TOKEN");
+pub(crate) const LOG_FORMAT: SettingKey = SettingKey::new("log", "format", "SWITCHYARD_LOG_FORMAT");
+pub(crate) const LOG_FILTER: SettingKey = SettingKey::new("log", "filter", "SWITCHYARD_LOG");
+
+/// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
+/// setting that is not scalar; it comes from the file only.
+pub const KEYS: &[SettingKey] = &[
+    LISTEN,
+    SHUTDOWN_GRACE_MS,
+    MODEL_DIR,
+    STORE_DIR,
+    THREADS,
+    MAX_BATCH_ROWS,
+    QUEUE_DEPTH,
+    REQUEST_TIMEOUT_MS,
+    MAX_BODY_BYTES,
+    MAX_INPUT_TOKENS,
+    MAX_OUTPUT_TOKENS,
+    MAX_TEXTS_PER_REQUEST,
+    FACTOR_BUDGET_BYTES,
+    MERGED_BUDGET_BYTES,
+    PROMOTE_SHARE,
+    PROMOTE_WINDOW_ROWS,
+    ADMIN_TOKEN,
+    LOG_FORMAT,
+    LOG_FILTER,
+];
+
+/// The top-level key that holds the array of tenant tables.
+pub(crate) const TENANTS: &str = "tenants";
+
+/// Where a value came from; it decides how an error labels the key.
+#[derive(Debug, Clone, Copy)]
+pub(crate) enum Origin {
+    File,
+    Env(&'static str),
+    CommandLine,
+}
+
+impl Origin {
+    pub(crate) fn label(self, key: &SettingKey) -> String {
+        match self {
+            Origin::File => key.dotted(),
+            Origin::Env(var) => format!("{} ({var})", key.dotted()),
+            Origin::CommandLine => format!("{} (command line)", key.dotted()),
+        }
+    }
+}
+
+/// A raw value as found: a TOML value from the file, or text from the environment.
+#[derive(Debug, Clone, Copy)]
+pub(crate) enum Raw<'a> {
+    Toml(&'a Value),
+    Text(&'a str),
+}
+
+impl Raw<'_> {
+    /// The value as an error message shows it: strings without TOML quoting, the rest as TOML.
+    pub(crate) fn shown(self) -> String {
+        match self {
+            Raw::Toml(Value::String(s)) => s.clone(),
+            Raw::Text(s) => s.to_owned(),
+            Raw::Toml(v) => v.to_string(),
+        }
+    }
+}
+
+/// TOML's name for the type of a value, for "expected X, found Y" messages.
+pub(crate) fn type_name(value: &Value) -> &'static str {
+    match value {
+        Value::String(_) => "a string",
+        Value::Integer(_) => "an integer",
+        Value::Float(_) => "a float",
+        Value::Boolean(_) => "a boolean",
+        Value::Datetime(_) => "a date-time",
+        Value::Array(_) => "an array",
+        Value::Table(_) => "a table",
+    }
+}
+
+/// The file (already structure-checked) and the `SWITCHYARD_*` environment, with getters that
+/// apply "environment over file" and turn raw values into typed ones.
+pub(crate) struct Sources<'a> {
+    file: &'a Table,
+    env: &'a BTreeMap<String, String>,
+}
+
+impl<'a> Sources<'a> {
+    /// Checks the file's shape: only known sections, each a table holding only known keys, and
+    /// `tenants` an array. Values are checked later, by the getters.
+    pub(crate) fn new(
+        file: &'a Table,
+        env: &'a BTreeMap<String, String>,
+    ) -> Result<Self, ConfigError> {
+        for (top, value) in file {
+            if top == TENANTS {
+                continue; // checked where tenants are read
+            }
+            if !KEYS.iter().any(|k| k.section == top) {
+                return Err(unknown(top, &hint_for_top_level(top)));
+            }
+            let Value::Table(section) = value else {
+                return Err(ConfigError::invalid(
+                    top.as_str(),
+                    Raw::Toml(value).shown(),
+                    format!(
+                        "expected a table (a [{top}] section), found {}",
+                        type_name(value)
+                    ),
+                ));
+            };
+            for name in section.keys() {
+                if !KEYS.iter().any(|k| k.section == top && k.name == name) {
+                    return Err(unknown(
+                        &format!("{top}.{name}"),
+                        &hint_in_section(top, name),
+                    ));
+                }
+            }
+        }
+        Ok(Self { file, env })
+    }
+
+    /// The `[[tenants]]` value of the file, if any.
+    pub(crate) fn tenants(&self) -> Option<&'a Value> {
+        self.file.get(TENANTS)
+    }
+
+    /// The raw value for `key`, from the environment if set there, else from the file.
+    pub(crate) fn find(&self, key: &SettingKey) -> Option<(Raw<'a>, Origin)> {
+        if let Some(text) = self.env.get(key.env) {
+            return Some((Raw::Text(text), Origin::Env(key.env)));
+        }
+        let value = self.file.get(key.section)?.as_table()?.get(key.name)?;
+        Some((Raw::Toml(value), Origin::File))
+    }
+
+    /// A whole number in `range`, or `default` when the key is set nowhere.
+    pub(crate) fn whole(
+        &self,
+        key: &SettingKey,
+        default: u64,
+        range: RangeInclusive<u64>,
+    ) -> Result<u64, ConfigError> {
+        let Some((raw, origin)) = self.find(key) else {
+            return Ok(default);
+        };
+        let refuse = |rule: String| ConfigError::invalid(origin.label(key), raw.shown(), rule);
+        let number: i64 = match raw {
+            Raw::Toml(Value::Integer(n)) => *n,
+            Raw::Toml(other) => {
+                return Err(refuse(format!(
+                    "expected a whole number, found {}",
+                    type_name(other)
+                )));
+            }
+            Raw::Text(text) => text
+                .trim()
+                .replace('_', "")
+                .parse()
+                .map_err(|_| refuse("expected a whole number".to_owned()))?,
+        };
+        match u64::try_from(number) {
+            Ok(n) if range.contains(&n) => Ok(n),
+            _ => Err(refuse(format!(
+                "must be between {} and {}",
+                range.start(),
+                range.end()
+            ))),
+        }
+    }
+
+    /// A number (a TOML float or integer), or `default` when the key is set nowhere; `check`
+    /// returns the rule the value breaks, if it breaks one.
+    pub(crate) fn number(
+        &self,
+        key: &SettingKey,
+        default: f64,
+        check: impl Fn(f64) -> Option<&'static str>,
+    ) -> Result<f64, ConfigError> {
+        let Some((raw, origin)) = self.find(key) else {
+            return Ok(default);
+        };
+        let refuse = |rule: String| ConfigError::invalid(origin.label(key), raw.shown(), rule);
+        let number = match raw {
+            Raw::Toml(Value::Float(x)) => *x,
+            Raw::Toml(Value::Integer(n)) => *n as f64,
+            Raw::Toml(other) => {
+                return Err(refuse(format!(
+                    "expected a number, found {}",
+                    type_name(other)
+                )));
+            }
+            Raw::Text(text) => text
+                .trim()
+                .parse()
+                .map_err(|_| refuse("expected a number".to_owned()))?,
+        };
+        match check(number) {
+            None => Ok(number),
+            Some(rule) => Err(refuse(rule.to_owned())),
+        }
+    }
+
+    /// Text for `key` with where it came from, `None` when the key is set nowhere. An empty
+    /// value is refused: leaving the key out is how to say "not set". With `secret`, errors
+    /// never repeat the value.
+    pub(crate) fn text(
+        &self,
+        key: &SettingKey,
+        secret: bool,
+    ) -> Result<Option<(String, Origin)>, ConfigError> {
+        let Some((raw, origin)) = self.find(key) else {
+            return Ok(None);
+        };
+        let refuse = |rule: String| {
+            if secret {
+                ConfigError::secret(origin.label(key), rule)
+            } else {
+                ConfigError::invalid(origin.label(key), raw.shown(), rule)
+            }
+        };
+        let text = match raw {
+            Raw::Toml(Value::String(s)) => s.as_str(),
+            Raw::Text(s) => s,
+            Raw::Toml(other) => {
+                return Err(refuse(format!(
+                    "expected a string, found {}",
+                    type_name(other)
+                )));
+            }
+        };
+        if text.is_empty() {
+            return Err(refuse(
+                "is empty; leave the key out (or unset the variable) to leave it unset".to_owned(),
+            ));
+        }
+        Ok(Some((text.to_owned(), origin)))
+    }
+}
+
+fn unknown(key: &str, hint: &str) -> ConfigError {
+    ConfigError::Unknown {
+        key: key.to_owned(),
+        hint: hint.to_owned(),
+    }
+}
+
+fn sections() -> Vec<&'static str> {
+    let mut sections: Vec<&str> = KEYS.iter().map(|k| k.section).collect();
+    sections.dedup();
+    sections.push(TENANTS);
+    sections
+}
+
+fn hint_for_top_level(top: &str) -> String {
+    match KEYS.iter().find(|k| k.name == top) {
+        Some(k) => format!("; did you mean `{}` (in [{}])?", k.dotted(), k.section),
+        None => format!("; known sections: {}", sections().join(", ")),
+    }
+}
+
+fn hint_in_section(section: &str, name: &str) -> String {
+    if let Some(k) = KEYS.iter().find(|k| k.name == name) {
+        return format!("; did you mean `{}`?", k.dotted());
+    }
+    let known: Vec<&str> = KEYS
+        .iter()
+        .filter(|k| k.section == section)
+        .map(|k| k.name)
+        .collect();
+    format!("; known keys in [{section}]: {}", known.join(", "))
+}

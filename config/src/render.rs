@@ -1,0 +1,104 @@
+//! The effective settings as TOML text, in the file's own layout, so `switchyard config check`
+//! shows what a server would run with. Secrets appear as their length only; a settings value with
+//! no secrets renders to text that loads back to the same settings.
+
+use std::fmt::Write;
+use std::path::Path;
+
+use crate::Settings;
+use crate::read::{self, SettingKey};
+use crate::rules::redacted;
+
+/// TOML string syntax (quoted and escaped) for `text`.
+fn quoted(text: &str) -> String {
+    toml::Value::String(text.to_owned()).to_string()
+}
+
+fn path(p: &Path) -> String {
+    quoted(&p.to_string_lossy())
+}
+
+/// Writes the text; one `line(key, value)` per scalar and a `# comment` for keys left unset.
+struct Page {
+    text: String,
+    section: &'static str,
+}
+
+impl Page {
+    fn line(&mut self, key: &SettingKey, value: impl std::fmt::Display) {
+        self.open(key);
+        let _ = writeln!(self.text, "{} = {value}", key.name);
+    }
+
+    fn unset(&mut self, key: &SettingKey, why: &str) {
+        self.open(key);
+        let _ = writeln!(self.text, "# {} is not set: {why}", key.name);
+    }
+
+    fn open(&mut self, key: &SettingKey) {
+        if self.section != key.section {
+            self.section = key.section;
+            let _ = writeln!(self.text, "\n[{}]", key.section);
+        }
+    }
+}
+
+pub(crate) fn render(s: &Settings) -> String {
+    let mut page = Page {
+        text: "# effective switchyard settings: defaults, then the file, then SWITCHYARD_* \
+               variables, then the command line\n"
+            .to_owned(),
+        section: "",
+    };
+    page.line(&read::LISTEN, quoted(&s.listen.to_string()));
+    page.line(&read::SHUTDOWN_GRACE_MS, s.shutdown_grace_ms);
+    match &s.model_dir {
+        Some(dir) => page.line(&read::MODEL_DIR, path(dir)),
+        None => page.unset(
+            &read::MODEL_DIR,
+            "`switchyard serve` refuses to start without it",
+        ),
+    }
+    match &s.store_dir {
+        Some(dir) => page.line(&read::STORE_DIR, path(dir)),
+        None => page.unset(&read::STORE_DIR, "no adapter store is configured"),
+    }
+    page.line(&read::THREADS, s.threads);
+    page.line(&read::MAX_BATCH_ROWS, s.max_batch_rows);
+    page.line(&read::QUEUE_DEPTH, s.queue_depth);
+    page.line(&read::REQUEST_TIMEOUT_MS, s.request_timeout_ms);
+    page.line(&read::MAX_BODY_BYTES, s.max_body_bytes);
+    page.line(&read::MAX_INPUT_TOKENS, s.max_input_tokens);
+    page.line(&read::MAX_OUTPUT_TOKENS, s.max_output_tokens);
+    page.line(&read::MAX_TEXTS_PER_REQUEST, s.max_texts_per_request);
+    page.line(&read::FACTOR_BUDGET_BYTES, s.factor_budget_bytes);
+    page.line(&read::MERGED_BUDGET_BYTES, s.merged_budget_bytes);
+    page.line(&read::PROMOTE_SHARE, toml::Value::Float(s.promote_share));
+    page.line(&read::PROMOTE_WINDOW_ROWS, s.promote_window_rows);
+    match &s.admin_token {
+        Some(token) => page.line(&read::ADMIN_TOKEN, quoted(&redacted(token))),
+        None => page.unset(&read::ADMIN_TOKEN, "the admin API is disabled"),
+    }
+    page.line(&read::LOG_FORMAT, quoted(s.log_format.as_str()));
+    page.line(&read::LOG_FILTER, quoted(&s.log_filter));
+
+    let mut text = page.text;
+    if s.tenants.is_empty() {
+        text.push_str(
+            "\n# no [[tenants]]: the server is open; every request is served as tenant \
+             \"default\", which may use every adapter\n",
+        );
+    }
+    for tenant in &s.tenants {
+        let keys: Vec<String> = tenant.keys.iter().map(|k| quoted(&redacted(k))).collect();
+        let adapters: Vec<String> = tenant.adapters.iter().map(|a| quoted(a)).collect();
+        let _ = write!(
+            text,
+            "\n[[tenants]]\nname = {}\nkeys = [{}]\nadapters = [{}]\n",
+            quoted(&tenant.name),
+            keys.join(", "),
+            adapters.join(", ")
+        );
+    }
+    text
+}

@@ -1,0 +1,261 @@
+//! `switchyard serve`: loads the settings, the base model and the adapter store, starts the
+//! registry's watcher, the engine thread and the HTTP server, and shuts down cleanly on SIGTERM
+//! or Ctrl-C: readiness turns 503, new work is refused, in-flight work gets the grace period to
+//! finish, and the process exits 0.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::time::{Duration, Instant};
+
+use anyhow::Context;
+use axum::extract::{Request, State};
+use axum::middleware::Next;
+use axum::response::{IntoResponse, Response};
+use switchyard_adapters::package::Limits;
+use switchyard_adapters::registry::{Registry, RegistryConfig};
+use switchyard_adapters::store::Store;
+use switchyard_config::{LogFormat, Overrides, Settings};
+
+use crate::engine::{Backbone, Engine, EngineConfig};
+use crate::http::auth::Tenants;
+use crate::http::error::ApiError;
+use crate::http::splits::SplitBook;
+use crate::http::{AppState, RequestLimits, SharedState, router};
+use crate::metrics::Metrics;
+use crate::model::embedder::Embedder;
+use crate::model::generator::Generator;
+
+#[derive(Debug, Clone, Default)]
+pub struct ServeOptions {
+    pub config: Option<PathBuf>,
+    pub overrides: Overrides,
+}
+
+/// Loads an encoder or a decoder, by the checkpoint's `model_type`.
+pub fn load_backbone(dir: &Path) -> anyhow::Result<Backbone> {
+    let config = dir.join("config.json");
+    let text = std::fs::read_to_string(&config)
+        .with_context(|| format!("reading {}", config.display()))?;
+    let v: serde_json::Value =
+        serde_json::from_str(&text).with_context(|| format!("parsing {}", config.display()))?;
+    let model_type = v.get("model_type").and_then(|m| m.as_str()).unwrap_or("");
+    match model_type {
+        "bert" => Ok(Backbone::Encoder(Embedder::load(dir)?)),
+        "llama" | "mistral" | "qwen2" => Ok(Backbone::Decoder(Generator::load(dir)?)),
+        other => anyhow::bail!(
+            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama and its relatives)",
+            config.display()
+        ),
+    }
+}
+
+fn base_weight(
+    backbone: &Backbone,
+    site: &switchyard_adapters::Site,
+) -> Option<candle_core::Tensor> {
+    match backbone {
+        Backbone::Encoder(e) => e.model().base_weight(site),
+        Backbone::Decoder(g) => g.model().base_weight(site),
+    }
+}
+
+fn init_logging(settings: &Settings) {
+    let filter = tracing_subscriber::EnvFilter::try_new(&settings.log_filter)
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match settings.log_format {
+        LogFormat::Json => builder.json().try_init(),
+        LogFormat::Human => builder.try_init(),
+    };
+}
+
+/// Counts requests in flight, and refuses new work once shutdown has begun.
+async fn track(
+    State(state): State<(SharedState, Arc<AtomicUsize>)>,
+    req: Request,
+    next: Next,
+) -> Response {
+    let (app, inflight) = state;
+    let path = req.uri().path();
+    let is_probe = path.starts_with("/health") || path == "/metrics";
+    if !is_probe && !app.ready.load(Ordering::SeqCst) {
+        return ApiError::new(
+            axum::http::StatusCode::SERVICE_UNAVAILABLE,
+            "shutting_down",
+            "the server is shutting down",
+        )
+        .into_response();
+    }
+    inflight.fetch_add(1, Ordering::SeqCst);
+    let resp = next.run(req).await;
+    inflight.fetch_sub(1, Ordering::SeqCst);
+    resp
+}
+
+pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
+    let settings = Settings::load_with(opts.config.as_deref(), std::env::vars(), &opts.overrides)?;
+    init_logging(&settings);
+    let model_dir = settings.require_model_dir()?.to_owned();
+    let store_dir = settings.store_dir.clone().ok_or_else(|| {
+        anyhow::anyhow!(
+            "store.dir is not set: give it in the config file, SWITCHYARD_STORE_DIR or --store"
+        )
+    })?;
+    if settings.threads > 0 {
+        // SAFETY-free: set before any rayon pool exists; candle and the kernels read it.
+        let _ = rayon_threads(settings.threads);
+    }
+    let started = Instant::now();
+    let backbone = Arc::new(load_backbone(&model_dir)?);
+    tracing::info!(model = %model_dir.display(), family = backbone.family(), fingerprint = %backbone.spec().fingerprint, secs = started.elapsed().as_secs_f64(), "base model loaded");
+    if !store_dir.exists() {
+        std::fs::create_dir_all(&store_dir)
+            .with_context(|| format!("creating the store folder {}", store_dir.display()))?;
+    }
+    let store = Store::open(&store_dir, Limits::default())
+        .with_context(|| format!("opening the store {}", store_dir.display()))?;
+    let weights = backbone.clone();
+    let registry = Registry::new(
+        store,
+        backbone.spec().clone(),
+        RegistryConfig {
+            factor_budget_bytes: settings.factor_budget_bytes,
+            merged_budget_bytes: settings.merged_budget_bytes,
+        },
+        Some(Box::new(move |site: &switchyard_adapters::Site| {
+            base_weight(&weights, site)
+        })),
+    );
+    let watcher = registry.start_watcher(Duration::from_millis(250));
+    let metrics = Arc::new(Metrics::new());
+    {
+        let events = registry.subscribe(1024);
+        let metrics = metrics.clone();
+        std::thread::Builder::new()
+            .name("switchyard-metrics".into())
+            .spawn(move || {
+                while let Ok(ev) = events.recv() {
+                    metrics.record_swap(&ev);
+                }
+            })
+            .context("starting the metrics thread")?;
+    }
+    let engine = Engine::start(
+        backbone.clone(),
+        Some(registry.clone()),
+        EngineConfig {
+            max_batch_rows: settings.max_batch_rows,
+            queue_depth: settings.queue_depth,
+            promote_share: settings.promote_share,
+            promote_window_rows: settings.promote_window_rows,
+        },
+        metrics.clone(),
+    );
+    let splits = SplitBook::open(Some(store_dir.join("splits.json")))?;
+    let state: SharedState = Arc::new(AppState {
+        engine,
+        backbone,
+        registry,
+        tenants: Tenants::new(&settings.tenants),
+        admin_token: settings.admin_token.clone(),
+        metrics,
+        splits,
+        limits: RequestLimits {
+            max_body_bytes: settings.max_body_bytes,
+            max_input_tokens: settings.max_input_tokens,
+            max_output_tokens: settings.max_output_tokens,
+            max_texts: settings.max_texts_per_request,
+            timeout: Duration::from_millis(settings.request_timeout_ms),
+        },
+        ready: AtomicBool::new(true),
+    });
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .thread_name("switchyard-http")
+        .build()
+        .context("starting the async runtime")?;
+    let grace = Duration::from_millis(settings.shutdown_grace_ms);
+    let listen = settings.listen;
+    let result = runtime.block_on(serve(state.clone(), listen, grace));
+    watcher.stop();
+    drop(runtime);
+    // The engine finishes what it holds, then its thread ends.
+    match Arc::try_unwrap(state) {
+        Ok(mut s) => s.engine.shutdown(),
+        Err(_) => tracing::warn!("requests still held the server state at exit"),
+    }
+    tracing::info!("stopped");
+    result
+}
+
+fn rayon_threads(n: usize) -> anyhow::Result<()> {
+    rayon::ThreadPoolBuilder::new()
+        .num_threads(n)
+        .build_global()
+        .map_err(|e| anyhow::anyhow!("setting {n} compute threads: {e}"))
+}
+
+async fn serve(state: SharedState, listen: SocketAddr, grace: Duration) -> anyhow::Result<()> {
+    let inflight = Arc::new(AtomicUsize::new(0));
+    let app = router(state.clone()).layer(axum::middleware::from_fn_with_state(
+        (state.clone(), inflight.clone()),
+        track,
+    ));
+    let listener = tokio::net::TcpListener::bind(listen)
+        .await
+        .with_context(|| format!("binding {listen}"))?;
+    let addr = listener.local_addr()?;
+    // The first line on stdout, so scripts (and tests using port 0) learn the address.
+    println!("switchyard listening on http://{addr}");
+    tracing::info!(%addr, "listening");
+    let stop = {
+        let state = state.clone();
+        async move {
+            shutdown_signal().await;
+            tracing::info!(
+                inflight = inflight.load(Ordering::SeqCst),
+                "shutdown requested: readiness is now 503, new work refused"
+            );
+            state.ready.store(false, Ordering::SeqCst);
+            let deadline = Instant::now() + grace;
+            while inflight.load(Ordering::SeqCst) > 0 && Instant::now() < deadline {
+                tokio::time::sleep(Duration::from_millis(20)).await;
+            }
+            let left = inflight.load(Ordering::SeqCst);
+            if left > 0 {
+                tracing::warn!(left, "grace period over with requests still in flight");
+            }
+        }
+    };
+    axum::serve(listener, app)
+        .with_graceful_shutdown(stop)
+        .await
+        .context("serving HTTP")?;
+    Ok(())
+}
+
+async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {},
+        _ = term => {},
+    }
+}

@@ -1,0 +1,641 @@
+//! The engine: one dedicated thread that owns the model and does all model compute, fed by a
+//! bounded queue that the HTTP handlers fill (a full queue is their 429).
+//!
+//! An encoder engine gathers queued embedding jobs into one batch up to the row limit, rows of
+//! different adapters side by side; a batch that uses only one adapter, when the promotion
+//! policy says that adapter dominates recent traffic, runs its merged variant instead. A decoder
+//! engine does continuous batching: new sequences are prefilled between decode steps and join
+//! the next step, every live sequence advances one token per step, and a sequence whose client
+//! went away is dropped with its KV cache at the next step.
+
+pub mod policy;
+
+use std::sync::Arc;
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant};
+
+use switchyard_adapters::registry::{AdapterHandle, MergedHandle, Registry};
+use switchyard_adapters::{Adapter, MergedWeights};
+use tokio::sync::{mpsc, oneshot};
+
+use crate::metrics::Metrics;
+use crate::model::embedder::{Embedder, padded_len};
+use crate::model::generator::Generator;
+use crate::model::linear::RowAdapters;
+use crate::model::llama::KvCache;
+use crate::model::rows_for_sequences;
+use crate::model::sampling::{Sampler, SamplingParams};
+use policy::PromotionPolicy;
+
+/// The model the engine owns: one family per server. Only one exists per process, so the size
+/// difference between the variants costs nothing.
+#[allow(clippy::large_enum_variant)]
+pub enum Backbone {
+    Encoder(Embedder),
+    Decoder(Generator),
+}
+
+impl Backbone {
+    pub fn spec(&self) -> &switchyard_adapters::BaseSpec {
+        match self {
+            Backbone::Encoder(e) => e.spec(),
+            Backbone::Decoder(g) => g.spec(),
+        }
+    }
+
+    pub fn family(&self) -> &'static str {
+        match self {
+            Backbone::Encoder(_) => "encoder",
+            Backbone::Decoder(_) => "decoder",
+        }
+    }
+}
+
+/// Engine settings.
+#[derive(Debug, Clone)]
+pub struct EngineConfig {
+    pub max_batch_rows: usize,
+    pub queue_depth: usize,
+    pub promote_share: f64,
+    pub promote_window_rows: usize,
+}
+
+/// Why the engine refused or failed a job.
+#[derive(Debug, Clone, thiserror::Error)]
+pub enum EngineError {
+    #[error("the queue is full ({0} jobs waiting); retry shortly")]
+    QueueFull(usize),
+    #[error("the engine is shutting down")]
+    ShuttingDown,
+    #[error("the request's deadline passed before it could run")]
+    DeadlineExceeded,
+    #[error("model computation failed: {0}")]
+    Compute(String),
+}
+
+/// Timings every answer reports.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Timings {
+    pub queue: Duration,
+    pub swap: Duration,
+    pub first_token: Option<Duration>,
+    pub total: Duration,
+}
+
+/// Embeddings of one job's texts.
+#[derive(Debug)]
+pub struct EmbedOutput {
+    pub embeddings: Vec<Vec<f32>>,
+    pub timings: Timings,
+    pub merged: bool,
+}
+
+pub struct EmbedJob {
+    pub ids: Vec<Vec<u32>>,
+    pub adapter: Option<AdapterHandle>,
+    pub admitted: Instant,
+    pub swap: Duration,
+    pub deadline: Instant,
+    pub reply: oneshot::Sender<Result<EmbedOutput, EngineError>>,
+}
+
+/// What a generation sends back, token by token.
+#[derive(Debug, Clone)]
+pub enum GenEvent {
+    Token {
+        id: u32,
+        text: String,
+    },
+    Done {
+        finish: &'static str,
+        prompt_tokens: usize,
+        output_tokens: usize,
+        timings: Timings,
+    },
+    Failed(EngineError),
+}
+
+pub struct GenerateJob {
+    pub prompt_ids: Vec<u32>,
+    pub adapter: Option<AdapterHandle>,
+    pub sampling: SamplingParams,
+    pub limit: usize,
+    pub admitted: Instant,
+    pub swap: Duration,
+    pub deadline: Instant,
+    pub events: mpsc::UnboundedSender<GenEvent>,
+}
+
+pub enum Job {
+    Embed(EmbedJob),
+    Generate(GenerateJob),
+}
+
+/// The handlers' side of the engine.
+pub struct Engine {
+    tx: Option<mpsc::Sender<Job>>,
+    depth: Arc<AtomicUsize>,
+    thread: Option<JoinHandle<()>>,
+    queue_depth: usize,
+}
+
+impl std::fmt::Debug for Engine {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Engine")
+            .field("queued", &self.queued())
+            .finish()
+    }
+}
+
+impl Engine {
+    /// Starts the engine thread.
+    pub fn start(
+        backbone: Arc<Backbone>,
+        registry: Option<Registry>,
+        config: EngineConfig,
+        metrics: Arc<Metrics>,
+    ) -> Engine {
+        let (tx, rx) = mpsc::channel(config.queue_depth.max(1));
+        let depth = Arc::new(AtomicUsize::new(0));
+        let worker = Worker {
+            backbone,
+            registry,
+            policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
+            config: config.clone(),
+            metrics,
+            depth: depth.clone(),
+        };
+        let thread = std::thread::Builder::new()
+            .name("switchyard-engine".to_owned())
+            .spawn(move || worker.run(rx))
+            .expect("spawn the engine thread");
+        Engine {
+            tx: Some(tx),
+            depth,
+            thread: Some(thread),
+            queue_depth: config.queue_depth,
+        }
+    }
+
+    /// Queues a job, or refuses it at once when the queue is full.
+    pub fn try_submit(&self, job: Job) -> Result<(), EngineError> {
+        let tx = self.tx.as_ref().ok_or(EngineError::ShuttingDown)?;
+        match tx.try_send(job) {
+            Ok(()) => {
+                self.depth.fetch_add(1, Ordering::SeqCst);
+                Ok(())
+            }
+            Err(mpsc::error::TrySendError::Full(_)) => {
+                Err(EngineError::QueueFull(self.queue_depth))
+            }
+            Err(mpsc::error::TrySendError::Closed(_)) => Err(EngineError::ShuttingDown),
+        }
+    }
+
+    /// Jobs waiting for the engine thread.
+    pub fn queued(&self) -> usize {
+        self.depth.load(Ordering::SeqCst)
+    }
+
+    /// Stops taking jobs, lets the engine finish what it holds, and waits for it.
+    pub fn shutdown(&mut self) {
+        self.tx.take();
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
+    }
+}
+
+impl Drop for Engine {
+    fn drop(&mut self) {
+        self.shutdown();
+    }
+}
+
+struct Worker {
+    backbone: Arc<Backbone>,
+    registry: Option<Registry>,
+    policy: PromotionPolicy,
+    config: EngineConfig,
+    metrics: Arc<Metrics>,
+    depth: Arc<AtomicUsize>,
+}
+
+fn adapter_key(h: &Option<AdapterHandle>) -> String {
+    h.as_ref()
+        .map(|h| h.id())
+        .unwrap_or_else(|| "base".to_owned())
+}
+
+impl Worker {
+    fn run(mut self, rx: mpsc::Receiver<Job>) {
+        let backbone = self.backbone.clone();
+        match &*backbone {
+            Backbone::Encoder(e) => self.run_encoder(e, rx),
+            Backbone::Decoder(g) => self.run_decoder(g, rx),
+        }
+        tracing::info!("engine stopped");
+    }
+
+    fn took(&self) {
+        self.depth.fetch_sub(1, Ordering::SeqCst);
+        self.metrics
+            .queue_depth
+            .set(self.depth.load(Ordering::SeqCst) as i64);
+    }
+
+    /// The merged variant to run a batch that uses only `handle`, when the policy promotes it.
+    fn merged_for(&mut self, handle: &AdapterHandle) -> Option<(MergedHandle, Duration)> {
+        if !self.policy.promotes(&handle.id()) {
+            return None;
+        }
+        let registry = self.registry.as_ref()?;
+        let start = Instant::now();
+        let before = registry.merge_count();
+        match registry.merged(handle) {
+            Ok(m) => {
+                let outcome = if registry.merge_count() > before {
+                    "miss"
+                } else {
+                    "hit"
+                };
+                self.metrics
+                    .cache_event(switchyard_adapters::events::Tier::Merged, outcome);
+                Some((m, start.elapsed()))
+            }
+            Err(e) => {
+                tracing::warn!(adapter = %handle.id(), error = %e, "merged variant unavailable; running unmerged");
+                None
+            }
+        }
+    }
+
+    fn run_encoder(&mut self, e: &Embedder, mut rx: mpsc::Receiver<Job>) {
+        let mut pending: Option<EmbedJob> = None;
+        loop {
+            let first = match pending.take() {
+                Some(j) => j,
+                None => match rx.blocking_recv() {
+                    Some(Job::Embed(j)) => {
+                        self.took();
+                        j
+                    }
+                    Some(Job::Generate(j)) => {
+                        self.took();
+                        let _ = j.events.send(GenEvent::Failed(EngineError::Compute(
+                            "this server's base model is an encoder; it cannot generate".into(),
+                        )));
+                        continue;
+                    }
+                    None => return,
+                },
+            };
+            let mut batch = vec![first];
+            let mut rows: usize = batch[0].ids.len();
+            while rows < self.config.max_batch_rows {
+                match rx.try_recv() {
+                    Ok(Job::Embed(j)) => {
+                        self.took();
+                        if rows + j.ids.len() > self.config.max_batch_rows {
+                            pending = Some(j);
+                            break;
+                        }
+                        rows += j.ids.len();
+                        batch.push(j);
+                    }
+                    Ok(Job::Generate(j)) => {
+                        self.took();
+                        let _ = j.events.send(GenEvent::Failed(EngineError::Compute(
+                            "this server's base model is an encoder; it cannot generate".into(),
+                        )));
+                    }
+                    Err(_) => break,
+                }
+            }
+            self.run_embed_batch(e, batch);
+        }
+    }
+
+    fn run_embed_batch(&mut self, e: &Embedder, batch: Vec<EmbedJob>) {
+        let now = Instant::now();
+        let (live, late): (Vec<EmbedJob>, Vec<EmbedJob>) =
+            batch.into_iter().partition(|j| now <= j.deadline);
+        for j in late {
+            let _ = j.reply.send(Err(EngineError::DeadlineExceeded));
+        }
+        if live.is_empty() {
+            return;
+        }
+        let _span = tracing::trace_span!("embed_batch", jobs = live.len()).entered();
+        let first_key = adapter_key(&live[0].adapter);
+        let uniform = live.iter().all(|j| adapter_key(&j.adapter) == first_key);
+        let merged = match (&live[0].adapter, uniform) {
+            (Some(h), true) => self.merged_for(h),
+            _ => None,
+        };
+        for j in &live {
+            self.policy.record(&adapter_key(&j.adapter), j.ids.len());
+        }
+        let ids: Vec<Vec<u32>> = live.iter().flat_map(|j| j.ids.iter().cloned()).collect();
+        let t = padded_len(&ids);
+        let start = Instant::now();
+        let max_rows = self.config.max_batch_rows.max(1);
+        let mut result: Result<Vec<Vec<f32>>, EngineError> = Ok(Vec::with_capacity(ids.len()));
+        // A single job larger than the row limit runs in chunks of at most the limit.
+        let mut per_row: Vec<Option<Arc<Adapter>>> = Vec::with_capacity(ids.len());
+        for j in &live {
+            per_row.extend(std::iter::repeat_n(
+                j.adapter.as_ref().map(|h| h.adapter().clone()),
+                j.ids.len(),
+            ));
+        }
+        for (chunk, adapters) in ids.chunks(max_rows).zip(per_row.chunks(max_rows)) {
+            let t_chunk = padded_len(chunk);
+            let rows = match &merged {
+                Some((m, _)) => RowAdapters::merged(
+                    Arc::<MergedWeights>::clone(m.weights()),
+                    chunk.len() * t_chunk,
+                ),
+                None => rows_for_sequences(adapters, &vec![t_chunk; chunk.len()]),
+            };
+            self.metrics.batch_rows.observe(chunk.len() as f64);
+            match e.embed_rows(chunk, &rows) {
+                Ok(v) => {
+                    if let Ok(all) = &mut result {
+                        all.extend(v);
+                    }
+                }
+                Err(err) => result = Err(EngineError::Compute(format!("{err:#}"))),
+            }
+        }
+        let _ = t;
+        let compute = start.elapsed();
+        let merge_time = merged.as_ref().map(|(_, d)| *d).unwrap_or_default();
+        match result {
+            Ok(mut all) => {
+                for j in live.into_iter().rev() {
+                    let mine = all.split_off(all.len() - j.ids.len());
+                    let queue = start
+                        .saturating_duration_since(j.admitted)
+                        .saturating_sub(merge_time);
+                    let timings = Timings {
+                        queue,
+                        swap: j.swap + merge_time,
+                        first_token: None,
+                        total: j.admitted.elapsed(),
+                    };
+                    let _ = compute;
+                    let _ = j.reply.send(Ok(EmbedOutput {
+                        embeddings: mine,
+                        timings,
+                        merged: merged.is_some(),
+                    }));
+                }
+            }
+            Err(err) => {
+                tracing::error!(error = %err, "embedding batch failed");
+                for j in live {
+                    let _ = j.reply.send(Err(err.clone()));
+                }
+            }
+        }
+    }
+
+    fn run_decoder(&mut self, g: &Generator, mut rx: mpsc::Receiver<Job>) {
+        let mut live: Vec<Sequence> = Vec::new();
+        let mut closed = false;
+        let eos = g.model().config.eos_ids();
+        loop {
+            // Admit: block only when nothing is running.
+            if live.is_empty() {
+                if closed {
+                    return;
+                }
+                match rx.blocking_recv() {
+                    Some(job) => {
+                        self.took();
+                        self.admit(g, job, &mut live, &eos);
+                    }
+                    None => return,
+                }
+            }
+            while !closed && live.len() < self.config.max_batch_rows {
+                match rx.try_recv() {
+                    Ok(job) => {
+                        self.took();
+                        self.admit(g, job, &mut live, &eos);
+                    }
+                    Err(mpsc::error::TryRecvError::Empty) => break,
+                    Err(mpsc::error::TryRecvError::Disconnected) => closed = true,
+                }
+            }
+            // Drop sequences whose client went away, or whose deadline passed.
+            let now = Instant::now();
+            live.retain_mut(|s| {
+                if s.job.events.is_closed() {
+                    tracing::debug!("client disconnected; generation stopped and its cache freed");
+                    false
+                } else if now > s.job.deadline {
+                    s.finish("deadline", &self.metrics);
+                    false
+                } else {
+                    true
+                }
+            });
+            if live.is_empty() {
+                continue;
+            }
+            self.decode_step(g, &mut live, &eos);
+        }
+    }
+
+    fn admit(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>, eos: &[u32]) {
+        let job = match job {
+            Job::Generate(j) => j,
+            Job::Embed(j) => {
+                let _ = j.reply.send(Err(EngineError::Compute(
+                    "this server's base model is a decoder; it cannot embed".into(),
+                )));
+                return;
+            }
+        };
+        if Instant::now() > job.deadline {
+            let _ = job
+                .events
+                .send(GenEvent::Failed(EngineError::DeadlineExceeded));
+            return;
+        }
+        let started = Instant::now();
+        let mut seq = Sequence {
+            cache: g.model().new_cache(),
+            sampler: Sampler::new(job.sampling),
+            out: Vec::new(),
+            sent_text: String::new(),
+            started,
+            first_token: None,
+            job,
+        };
+        let adapter = seq.job.adapter.as_ref().map(|h| h.adapter().clone());
+        let rows = rows_for_sequences(std::slice::from_ref(&adapter), &[seq.job.prompt_ids.len()]);
+        self.policy.record(&adapter_key(&seq.job.adapter), 1);
+        let prompt = seq.job.prompt_ids.clone();
+        match g
+            .model()
+            .forward_last(&[&prompt], &mut [&mut seq.cache], &rows)
+        {
+            Ok(logits) => match logits.get(0).and_then(|l| l.to_vec1::<f32>()) {
+                Ok(l) => {
+                    let token = seq.sampler.next(&l);
+                    if seq.push(g, token, eos, &self.metrics) {
+                        live.push(seq);
+                    }
+                }
+                Err(e) => seq.fail(e.to_string()),
+            },
+            Err(e) => seq.fail(e.to_string()),
+        }
+    }
+
+    fn decode_step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
+        let _span = tracing::trace_span!("decode_step", rows = live.len()).entered();
+        let tokens: Vec<[u32; 1]> = live
+            .iter()
+            .map(|s| [*s.out.last().expect("one token at admission")])
+            .collect();
+        let token_refs: Vec<&[u32]> = tokens.iter().map(|t| t.as_slice()).collect();
+        let first_key = adapter_key(&live[0].job.adapter);
+        let uniform = live
+            .iter()
+            .all(|s| adapter_key(&s.job.adapter) == first_key);
+        let merged = match (&live[0].job.adapter, uniform) {
+            (Some(h), true) => self.merged_for(h),
+            _ => None,
+        };
+        for s in live.iter() {
+            self.policy.record(&adapter_key(&s.job.adapter), 1);
+        }
+        let rows = match &merged {
+            Some((m, _)) => {
+                RowAdapters::merged(Arc::<MergedWeights>::clone(m.weights()), live.len())
+            }
+            None => {
+                let adapters: Vec<Option<Arc<Adapter>>> = live
+                    .iter()
+                    .map(|s| s.job.adapter.as_ref().map(|h| h.adapter().clone()))
+                    .collect();
+                rows_for_sequences(&adapters, &vec![1; live.len()])
+            }
+        };
+        self.metrics.batch_rows.observe(live.len() as f64);
+        let mut caches: Vec<&mut KvCache> = live.iter_mut().map(|s| &mut s.cache).collect();
+        let logits = g
+            .model()
+            .forward_last(&token_refs, &mut caches, &rows)
+            .and_then(|l| l.to_vec2::<f32>());
+        match logits {
+            Ok(rows) => {
+                let mut keep = Vec::with_capacity(live.len());
+                for (mut s, l) in live.drain(..).zip(rows) {
+                    let token = s.sampler.next(&l);
+                    if s.push(g, token, eos, &self.metrics) {
+                        keep.push(s);
+                    }
+                }
+                *live = keep;
+            }
+            Err(e) => {
+                tracing::error!(error = %e, "decode step failed");
+                for s in live.drain(..) {
+                    s.fail(e.to_string());
+                }
+            }
+        }
+    }
+}
+
+struct Sequence {
+    job: GenerateJob,
+    cache: KvCache,
+    sampler: Sampler,
+    out: Vec<u32>,
+    sent_text: String,
+    started: Instant,
+    first_token: Option<Duration>,
+}
+
+impl Sequence {
+    /// Records a new token, streams its text, and says whether the sequence goes on.
+    fn push(&mut self, g: &Generator, token: u32, eos: &[u32], metrics: &Metrics) -> bool {
+        if self.first_token.is_none() {
+            let d = self.job.admitted.elapsed();
+            self.first_token = Some(d);
+            metrics.first_token_seconds.observe(d.as_secs_f64());
+        }
+        metrics.generated_tokens.inc();
+        let is_eos = eos.contains(&token);
+        if !is_eos {
+            self.out.push(token);
+            let text = g.decode(&self.out).unwrap_or_default();
+            // Hold back a trailing partial character until the next token completes it.
+            let ready = if text.ends_with('\u{FFFD}') {
+                ""
+            } else {
+                text.as_str()
+            };
+            let delta = if ready.starts_with(&self.sent_text) {
+                ready[self.sent_text.len()..].to_owned()
+            } else {
+                String::new()
+            };
+            if !ready.is_empty() && ready.starts_with(&self.sent_text) {
+                self.sent_text = ready.to_owned();
+            }
+            if self
+                .job
+                .events
+                .send(GenEvent::Token {
+                    id: token,
+                    text: delta,
+                })
+                .is_err()
+            {
+                return false;
+            }
+        } else {
+            self.out.push(token);
+        }
+        if is_eos {
+            self.finish("eos", metrics);
+            return false;
+        }
+        if self.out.len() >= self.job.limit {
+            self.finish("limit", metrics);
+            return false;
+        }
+        true
+    }
+
+    fn finish(&self, reason: &'static str, metrics: &Metrics) {
+        let total = self.job.admitted.elapsed();
+        metrics.request_seconds.observe(total.as_secs_f64());
+        let _ = self.job.events.send(GenEvent::Done {
+            finish: reason,
+            prompt_tokens: self.job.prompt_ids.len(),
+            output_tokens: self.out.len(),
+            timings: Timings {
+                queue: self.started.saturating_duration_since(self.job.admitted),
+                swap: self.job.swap,
+                first_token: self.first_token,
+                total,
+            },
+        });
+    }
+
+    fn fail(self, message: String) {
+        let _ = self
+            .job
+            .events
+            .send(GenEvent::Failed(EngineError::Compute(message)));
+    }
+}

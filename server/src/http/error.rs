@@ -1,0 +1,102 @@
+//! The one API error type: every way a request is refused maps to a status and a stable
+//! machine code, and leaves as `{"error": {"code": "...", "message": "..."}}`.
+
+use axum::Json;
+use axum::http::{HeaderValue, StatusCode, header};
+use axum::response::{IntoResponse, Response};
+use serde_json::json;
+
+use crate::engine::EngineError;
+use crate::http::auth::AuthError;
+
+#[derive(Debug, Clone)]
+pub struct ApiError {
+    pub status: StatusCode,
+    pub code: &'static str,
+    pub message: String,
+    pub retry_after_s: Option<u32>,
+}
+
+impl ApiError {
+    pub fn new(status: StatusCode, code: &'static str, message: impl Into<String>) -> Self {
+        Self {
+            status,
+            code,
+            message: message.into(),
+            retry_after_s: None,
+        }
+    }
+
+    pub fn bad_request(code: &'static str, message: impl Into<String>) -> Self {
+        Self::new(StatusCode::BAD_REQUEST, code, message)
+    }
+
+    pub fn not_found(code: &'static str, message: impl Into<String>) -> Self {
+        Self::new(StatusCode::NOT_FOUND, code, message)
+    }
+
+    pub fn conflict(code: &'static str, message: impl Into<String>) -> Self {
+        Self::new(StatusCode::CONFLICT, code, message)
+    }
+
+    pub fn internal(message: impl Into<String>) -> Self {
+        Self::new(StatusCode::INTERNAL_SERVER_ERROR, "internal", message)
+    }
+
+    /// An unknown adapter or split, worded the same whether it exists for another tenant or not.
+    pub fn unknown_target(kind: &str, name: &str) -> Self {
+        Self::not_found(
+            "unknown_target",
+            format!("no {kind} named {name:?} is available to this key"),
+        )
+    }
+}
+
+impl From<AuthError> for ApiError {
+    fn from(e: AuthError) -> Self {
+        let (status, code) = match e {
+            AuthError::Missing => (StatusCode::UNAUTHORIZED, "missing_key"),
+            AuthError::Unknown => (StatusCode::UNAUTHORIZED, "unknown_key"),
+            AuthError::AdminRequired => (StatusCode::UNAUTHORIZED, "admin_token_required"),
+            AuthError::AdminWrong => (StatusCode::FORBIDDEN, "admin_token_wrong"),
+            AuthError::AdminDisabled => (StatusCode::FORBIDDEN, "admin_disabled"),
+        };
+        Self::new(status, code, e.to_string())
+    }
+}
+
+impl From<EngineError> for ApiError {
+    fn from(e: EngineError) -> Self {
+        match e {
+            EngineError::QueueFull(_) => Self {
+                retry_after_s: Some(1),
+                ..Self::new(StatusCode::TOO_MANY_REQUESTS, "queue_full", e.to_string())
+            },
+            EngineError::ShuttingDown => Self::new(
+                StatusCode::SERVICE_UNAVAILABLE,
+                "shutting_down",
+                e.to_string(),
+            ),
+            EngineError::DeadlineExceeded => Self::new(
+                StatusCode::GATEWAY_TIMEOUT,
+                "deadline_exceeded",
+                e.to_string(),
+            ),
+            EngineError::Compute(_) => Self::internal(e.to_string()),
+        }
+    }
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let body = json!({"error": {"code": self.code, "message": self.message}});
+        let mut resp = (self.status, Json(body)).into_response();
+        if let Some(s) = self.retry_after_s {
+            resp.headers_mut().insert(
+                header::RETRY_AFTER,
+                HeaderValue::from_str(&s.to_string()).expect("digits"),
+            );
+        }
+        resp
+    }
+}

@@ -1,0 +1,253 @@
+//! Prometheus metrics (text exposition format at `/metrics`), all prefixed `switchyard_`, in base
+//! units, with `_total` on counters. The engine and the handlers record into [`Metrics`]; a
+//! thread turns the registry's swap events into the swap and residency metrics.
+
+use std::sync::Mutex;
+use std::sync::atomic::AtomicU64;
+
+use prometheus_client::encoding::EncodeLabelSet;
+use prometheus_client::metrics::counter::Counter;
+use prometheus_client::metrics::family::Family;
+use prometheus_client::metrics::gauge::Gauge;
+use prometheus_client::metrics::histogram::{Histogram, exponential_buckets};
+use prometheus_client::registry::Registry;
+use switchyard_adapters::events::{SwapEvent, SwapKind, Tier};
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct RequestLabels {
+    pub endpoint: String,
+    pub adapter: String,
+    pub status: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct StageLabels {
+    pub stage: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct TierLabels {
+    pub tier: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct CacheLabels {
+    pub tier: String,
+    pub outcome: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ArmLabels {
+    pub split: String,
+    pub arm: String,
+}
+
+fn seconds_histogram() -> Histogram {
+    // 0.1 ms to ~13 s.
+    Histogram::new(exponential_buckets(0.0001, 2.0, 18))
+}
+
+/// Every metric switchyard exports.
+pub struct Metrics {
+    registry: Mutex<Registry>,
+    pub requests: Family<RequestLabels, Counter>,
+    pub swap_seconds: Family<StageLabels, Histogram, fn() -> Histogram>,
+    pub resident_bytes: Family<TierLabels, Gauge<i64, AtomicI64Compat>>,
+    pub cache: Family<CacheLabels, Counter>,
+    pub queue_depth: Gauge,
+    pub batch_rows: Histogram,
+    pub first_token_seconds: Histogram,
+    pub request_seconds: Histogram,
+    pub generated_tokens: Counter,
+    pub arm_requests: Family<ArmLabels, Counter>,
+    pub swap_events_dropped: Counter<u64, AtomicU64>,
+}
+
+type AtomicI64Compat = std::sync::atomic::AtomicI64;
+
+impl std::fmt::Debug for Metrics {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Metrics")
+    }
+}
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl Metrics {
+    pub fn new() -> Self {
+        let mut registry = Registry::with_prefix("switchyard");
+        let requests = Family::<RequestLabels, Counter>::default();
+        registry.register(
+            "requests",
+            "Requests by endpoint, adapter and status",
+            requests.clone(),
+        );
+        let swap_seconds =
+            Family::<StageLabels, Histogram, fn() -> Histogram>::new_with_constructor(
+                seconds_histogram,
+            );
+        registry.register(
+            "swap_seconds",
+            "Time to bring an adapter version in, by stage (read, validate, convert, load = the three together, merge)",
+            swap_seconds.clone(),
+        );
+        let resident_bytes = Family::<TierLabels, Gauge<i64, AtomicI64Compat>>::default();
+        registry.register(
+            "resident_bytes",
+            "Bytes held by each residency tier (factors, merged)",
+            resident_bytes.clone(),
+        );
+        let cache = Family::<CacheLabels, Counter>::default();
+        registry.register(
+            "cache_events",
+            "Cache hits, misses and evictions by tier",
+            cache.clone(),
+        );
+        let queue_depth = Gauge::default();
+        registry.register(
+            "queue_depth",
+            "Jobs waiting for the engine",
+            queue_depth.clone(),
+        );
+        let batch_rows = Histogram::new(exponential_buckets(1.0, 2.0, 12));
+        registry.register("batch_rows", "Rows per forward pass", batch_rows.clone());
+        let first_token_seconds = seconds_histogram();
+        registry.register(
+            "first_token_seconds",
+            "Time from admission to the first generated token",
+            first_token_seconds.clone(),
+        );
+        let request_seconds = seconds_histogram();
+        registry.register(
+            "request_seconds",
+            "Time from admission to the last byte of the answer",
+            request_seconds.clone(),
+        );
+        let generated_tokens = Counter::default();
+        registry.register(
+            "generated_tokens",
+            "Tokens generated",
+            generated_tokens.clone(),
+        );
+        let arm_requests = Family::<ArmLabels, Counter>::default();
+        registry.register(
+            "split_requests",
+            "Requests assigned to each arm of each split",
+            arm_requests.clone(),
+        );
+        let swap_events_dropped = Counter::<u64, AtomicU64>::default();
+        registry.register(
+            "swap_events_dropped",
+            "Swap events a slow metrics reader missed",
+            swap_events_dropped.clone(),
+        );
+        Self {
+            registry: Mutex::new(registry),
+            requests,
+            swap_seconds,
+            resident_bytes,
+            cache,
+            queue_depth,
+            batch_rows,
+            first_token_seconds,
+            request_seconds,
+            generated_tokens,
+            arm_requests,
+            swap_events_dropped,
+        }
+    }
+
+    /// The text exposition of every metric.
+    pub fn render(&self) -> String {
+        let mut out = String::new();
+        let registry = self.registry.lock().unwrap();
+        prometheus_client::encoding::text::encode(&mut out, &registry)
+            .expect("writing to a string");
+        out
+    }
+
+    pub fn count_request(&self, endpoint: &str, adapter: &str, status: u16) {
+        self.requests
+            .get_or_create(&RequestLabels {
+                endpoint: endpoint.to_owned(),
+                adapter: adapter.to_owned(),
+                status: status.to_string(),
+            })
+            .inc();
+    }
+
+    pub fn cache_event(&self, tier: Tier, outcome: &str) {
+        self.cache
+            .get_or_create(&CacheLabels {
+                tier: tier.as_str().to_owned(),
+                outcome: outcome.to_owned(),
+            })
+            .inc();
+    }
+
+    /// Records one swap event from the registry.
+    pub fn record_swap(&self, event: &SwapEvent) {
+        let stage = |s: &str, d: std::time::Duration| {
+            self.swap_seconds
+                .get_or_create(&StageLabels {
+                    stage: s.to_owned(),
+                })
+                .observe(d.as_secs_f64());
+        };
+        match &event.kind {
+            SwapKind::Loaded => {
+                stage("read", event.timings.read);
+                stage("validate", event.timings.validate);
+                stage("convert", event.timings.convert);
+                stage(
+                    "load",
+                    event.timings.read + event.timings.validate + event.timings.convert,
+                );
+            }
+            SwapKind::Merged => stage("merge", event.timings.merge),
+            SwapKind::Evicted { tier } => self.cache_event(*tier, "eviction"),
+            _ => {}
+        }
+        for (tier, r) in [
+            (Tier::Factors, &event.residency.factors),
+            (Tier::Merged, &event.residency.merged),
+        ] {
+            self.resident_bytes
+                .get_or_create(&TierLabels {
+                    tier: tier.as_str().to_owned(),
+                })
+                .set(r.bytes as i64);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn exposition_uses_our_prefix_and_total_suffix() {
+        let m = Metrics::new();
+        m.count_request("embed", "base", 200);
+        m.generated_tokens.inc_by(3);
+        let text = m.render();
+        assert!(
+            text.contains(
+                "switchyard_requests_total{endpoint=\"embed\",adapter=\"base\",status=\"200\"} 1"
+            ),
+            "{text}"
+        );
+        assert!(
+            text.contains("switchyard_generated_tokens_total 3"),
+            "{text}"
+        );
+        assert!(
+            text.contains("# TYPE switchyard_batch_rows histogram"),
+            "{text}"
+        );
+    }
+}

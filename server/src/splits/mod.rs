@@ -1,0 +1,22 @@
+//! A/B splits: one name that spreads requests over several arms, each an adapter (or the base
+//! model) with a weight, and the statistics that say which arm does better.
+//!
+//! [`assign`] holds the definition ([`SplitSpec`], validated into a [`Split`]) and picks an arm
+//! per request: sticky by subject key through a stable hash, otherwise at random. [`stats`] turns
+//! the outcomes callers report per arm ([`NumericTally`], [`BinaryTally`]) into a readout: each
+//! arm's mean or proportion with its 95% interval, and its difference to the first arm with an
+//! interval and a p-value. Neither part knows about HTTP or the registry; the HTTP layer keeps the
+//! splits and tallies and calls in here.
+
+pub mod assign;
+pub mod stats;
+
+pub use assign::{
+    ArmSpec, Assignment, BASE_MODEL, MAX_ARMS, MAX_NAME_LEN, NameProblem, Split, SplitError,
+    SplitSpec, check_name, subject_point,
+};
+pub use stats::{
+    BinaryArmReadout, BinarySummary, BinaryTally, CONFIDENCE_LEVEL, Interval, NumericArmReadout,
+    NumericSummary, NumericTally, OutcomeError, ProportionComparison, WelchComparison,
+    binary_readout, numeric_readout, proportion_comparison, welch_comparison,
+};
