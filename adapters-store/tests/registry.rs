@@ -308,3 +308,18 @@ fn the_watcher_thread_follows_a_flip_within_a_second() {
     }
     watcher.stop();
 }
+
+#[test]
+fn a_version_retired_before_the_registry_noticed_resolves_to_the_new_live_one() {
+    // Budget 0: nothing stays resident once released, so the next resolve must read the file.
+    let (_dir, store, registry) = registry(0, 0);
+    let v1 = publish(&store, "moving", 1.0);
+    assert_eq!(registry.resolve("moving").unwrap().version(), v1);
+    let v2 = publish(&store, "moving", 2.0);
+    store
+        .retire(&AdapterName::new("moving").unwrap(), &v1)
+        .unwrap();
+    // No poll yet: the registry still maps the name to v1, whose file is gone.
+    let h = registry.resolve("moving").unwrap();
+    assert_eq!((h.version(), whole_tag(&h)), (v2.as_str(), 2.0));
+}

@@ -7,7 +7,8 @@ use std::path::PathBuf;
 /// Why a configuration was refused.
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
-    #[error("cannot read config file {path}: {source}")]
+    /// The cause is in `source` (shown by `{:#}` with anyhow), not repeated in the message.
+    #[error("cannot read config file {path}")]
     Read {
         path: PathBuf,
         source: std::io::Error,

@@ -104,9 +104,11 @@ enum Command {
 
 #[derive(Subcommand, Debug)]
 enum ConfigCommand {
-    /// Load FILE as `switchyard serve` would, with the SWITCHYARD_* environment on top, and print
-    /// the effective settings as TOML, secrets redacted; a refused setting is reported with its
-    /// key and value, and the exit status is 1.
+    /// Print the effective settings of a config file, or refuse it naming the key and the value.
+    ///
+    /// Loads FILE as `switchyard serve` would, with the SWITCHYARD_* environment on top, and
+    /// prints the effective settings as TOML, secrets redacted. A refused setting is reported
+    /// with its key and value, and the exit status is 1.
     #[command(after_long_help = switchyard_server::commands::config::environment_help())]
     Check {
         /// The TOML config file to check.

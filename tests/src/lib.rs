@@ -1,5 +1,10 @@
 //! Helpers for the integration tests: find the built `switchyard` binary, the reference
 //! fixtures and the base model, each with a message that says how to get it when it is missing.
+//! [`server`] runs `switchyard serve` and talks HTTP to it; [`embeddings`] holds the reference
+//! embeddings and the closeness rule.
+
+pub mod embeddings;
+pub mod server;
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
@@ -69,4 +74,42 @@ pub fn read_json(path: &Path) -> serde_json::Value {
     let text = std::fs::read_to_string(path)
         .unwrap_or_else(|e| panic!("reading fixture {}: {e}", path.display()));
     serde_json::from_str(&text).unwrap()
+}
+
+/// Writes a safetensors file of f32 tensors, `(name, shape, values)`, laid out as the format
+/// describes (8-byte little-endian header length, JSON header padded to 8 bytes, data), so a
+/// test can make "foreign" files without any library.
+pub fn write_safetensors(path: &Path, tensors: &[(&str, &[usize], &[f32])]) {
+    let mut header = serde_json::Map::new();
+    let mut data: Vec<u8> = Vec::new();
+    for (name, shape, values) in tensors {
+        assert_eq!(shape.iter().product::<usize>(), values.len(), "{name}");
+        let begin = data.len();
+        data.extend(values.iter().flat_map(|v| v.to_le_bytes()));
+        header.insert(
+            (*name).to_owned(),
+            serde_json::json!({"dtype": "F32", "shape": shape, "data_offsets": [begin, data.len()]}),
+        );
+    }
+    let mut text = serde_json::Value::Object(header).to_string();
+    while !text.len().is_multiple_of(8) {
+        text.push(' ');
+    }
+    let mut bytes = (text.len() as u64).to_le_bytes().to_vec();
+    bytes.extend_from_slice(text.as_bytes());
+    bytes.extend_from_slice(&data);
+    std::fs::write(path, bytes).unwrap_or_else(|e| panic!("writing {}: {e}", path.display()));
+}
+
+/// Runs `switchyard` with `args` (no stdin) and returns stdout, panicking with stderr when it
+/// does not exit 0.
+pub fn switchyard_ok(args: &[&str], cwd: &Path) -> String {
+    let out = run_switchyard(args, "", cwd);
+    assert!(
+        out.status.success(),
+        "switchyard {} failed: {}",
+        args.join(" "),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap()
 }

@@ -5,7 +5,6 @@
 use std::io::Write;
 use std::path::Path;
 
-use anyhow::Context;
 use switchyard_config::{KEYS, Settings};
 
 /// Checks `file` under `env` (pass `std::env::vars()` for the process environment) and writes
@@ -15,8 +14,11 @@ pub fn check(
     env: impl IntoIterator<Item = (String, String)>,
     mut out: impl Write,
 ) -> anyhow::Result<()> {
-    let settings = Settings::load(Some(file), env)
-        .with_context(|| format!("{} is refused", file.display()))?;
+    let settings = Settings::load(Some(file), env).map_err(|e| match e.key() {
+        // A read or syntax error names the file already; a refused value names only its key.
+        None => anyhow::Error::new(e),
+        Some(_) => anyhow::Error::new(e).context(format!("{} is refused", file.display())),
+    })?;
     out.write_all(settings.render_effective().as_bytes())?;
     out.flush()?;
     Ok(())
@@ -27,9 +29,9 @@ pub fn check(
 pub fn environment_help() -> String {
     let mut text = String::from(
         "Precedence, lowest first: built-in defaults, the file, SWITCHYARD_* environment \
-         variables, command-line flags. Prints the effective settings as TOML (API keys and the \
-         admin token as their length only) and exits 0; a refused setting names its key and value \
-         and exits 1. An example lives in config/switchyard.example.toml.\n\nEnvironment:\n",
+         variables, command-line flags. API keys and the admin token are shown as their length \
+         only. An example with every key lives in config/switchyard.example.toml.\n\n\
+         Environment (variable, key it overrides):\n",
     );
     let width = KEYS.iter().map(|k| k.env.len()).max().unwrap_or(0);
     for key in KEYS {

@@ -12,7 +12,9 @@ use std::ops::Range;
 use std::sync::Arc;
 
 use candle_core::{DType, Result, Tensor};
-use switchyard_adapters::kernels::{MatRef, matmul_into, parallelism_for, with_f32};
+use switchyard_adapters::kernels::{
+    MatRef, SMALL_ROWS, matmul_into, parallelism_for, small_rows_matmul, with_f32,
+};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
@@ -191,15 +193,20 @@ impl AdaptedLinear {
         };
         with_f32(&x2, |xs| -> Result<()> {
             with_f32(weight, |w| {
-                matmul_into(
-                    &mut y,
-                    out_dim,
-                    MatRef::row_major(xs, rows, in_dim),
-                    MatRef::transposed(w, in_dim, out_dim),
-                    self.bias.is_some(),
-                    1.0,
-                    parallelism_for(rows, out_dim, in_dim),
-                )
+                if rows <= SMALL_ROWS {
+                    // Decode steps: one pass over the weight, no packing.
+                    small_rows_matmul(&mut y, xs, w, rows, in_dim, out_dim, self.bias.is_some());
+                } else {
+                    matmul_into(
+                        &mut y,
+                        out_dim,
+                        MatRef::row_major(xs, rows, in_dim),
+                        MatRef::transposed(w, in_dim, out_dim),
+                        self.bias.is_some(),
+                        1.0,
+                        parallelism_for(rows, out_dim, in_dim),
+                    )
+                }
             })?;
             SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
                 for group in &adapters.groups {
