@@ -338,7 +338,6 @@ impl Worker {
             self.policy.record(&adapter_key(&j.adapter), j.ids.len());
         }
         let ids: Vec<Vec<u32>> = live.iter().flat_map(|j| j.ids.iter().cloned()).collect();
-        let t = padded_len(&ids);
         let start = Instant::now();
         let max_rows = self.config.max_batch_rows.max(1);
         let mut result: Result<Vec<Vec<f32>>, EngineError> = Ok(Vec::with_capacity(ids.len()));
@@ -369,8 +368,6 @@ impl Worker {
                 Err(err) => result = Err(EngineError::Compute(format!("{err:#}"))),
             }
         }
-        let _ = t;
-        let compute = start.elapsed();
         let merge_time = merged.as_ref().map(|(_, d)| *d).unwrap_or_default();
         match result {
             Ok(mut all) => {
@@ -385,7 +382,6 @@ impl Worker {
                         first_token: None,
                         total: j.admitted.elapsed(),
                     };
-                    let _ = compute;
                     let _ = j.reply.send(Ok(EmbedOutput {
                         embeddings: mine,
                         timings,
@@ -624,7 +620,7 @@ impl Sequence {
             prompt_tokens: self.job.prompt_ids.len(),
             output_tokens: self.out.len(),
             timings: Timings {
-                queue: self.started.saturating_duration_since(self.job.admitted),
+                queue: self.started.saturating_duration_since(self.job.admitted + self.job.swap),
                 swap: self.job.swap,
                 first_token: self.first_token,
                 total,
