@@ -4,8 +4,8 @@
 //!    16-layer decoder shape (read + validate + convert, the registry's load path, and a full
 //!    cold `Registry::resolve`), against reading and parsing the same file raw (the bytes plus the
 //!    safetensors header, and candle's own loader, which also makes tensors);
-//! 2. merging that adapter into one 2048 × 2048 matrix with `LowRank::merge`, against `B · A`
-//!    alone.
+//! 2. merging one rank-16 pair into one 2048 × 2048 matrix, in place (`LowRank::merge_in_place`)
+//!    and into a new tensor (`LowRank::merge`), against `B · A` alone.
 //!
 //! Run: `cargo run --release -p switchyard-adapters --example load-bench` (add `-- --repeats N`).
 //! Every number is the median of the repeats; the measurements interleave so that machine noise
@@ -182,16 +182,24 @@ fn main() {
         2.0,
     )
     .unwrap();
-    let (mut merge, mut ba) = (vec![], vec![]);
+    let mut w = w0.flatten_all().unwrap().to_vec1::<f32>().unwrap();
+    let (mut merge, mut in_place, mut ba) = (vec![], vec![], vec![]);
     for _ in 0..repeats.max(5) {
         ba.push(time(|| lr.b().matmul(lr.a()).unwrap()));
         merge.push(time(|| lr.merge(&w0).unwrap()));
+        // Repeated merges accumulate into `w`; the cost does not depend on its values.
+        in_place.push(time(|| lr.merge_in_place(&mut w).unwrap()));
     }
-    let (merge, ba) = (median(merge), median(ba));
+    let (merge, in_place, ba) = (median(merge), median(in_place), median(ba));
     println!("merge: rank {RANK} into one {HIDDEN} x {HIDDEN} matrix");
     println!("  B . A alone                       {}", ms(ba));
     println!(
-        "  LowRank::merge (W0 + s B A)       {}   {:.2}x B.A",
+        "  LowRank::merge_in_place (W += sBA){}   {:.2}x B.A",
+        ms(in_place),
+        ratio(in_place, ba)
+    );
+    println!(
+        "  LowRank::merge (new W0 + s B A)   {}   {:.2}x B.A",
         ms(merge),
         ratio(merge, ba)
     );

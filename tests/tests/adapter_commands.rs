@@ -307,6 +307,84 @@ fn publish_list_live_rollback_and_retire_on_a_store() {
 }
 
 #[test]
+fn concurrent_publishing_processes_leave_a_whole_store() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    let files = [
+        "tiny-llama-qv.safetensors",
+        "tiny-llama-all.safetensors",
+        "tiny-llama-bias-tied-qv.safetensors",
+        "minilm-qv-a.safetensors",
+        "minilm-qv-b.safetensors",
+        "minilm-all.safetensors",
+    ];
+    // Six processes publish six different packages under one name at the same moment.
+    let children: Vec<_> = files
+        .iter()
+        .map(|f| {
+            std::process::Command::new(switchyard_tests::switchyard_bin())
+                .args(["adapter", "publish"])
+                .arg(fixtures().join(f))
+                .args(["--store", path(&store), "--name", "shared"])
+                .current_dir(dir.path())
+                .stdout(std::process::Stdio::piped())
+                .stderr(std::process::Stdio::piped())
+                .spawn()
+                .unwrap()
+        })
+        .collect();
+    for c in children {
+        let out = c.wait_with_output().unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let live = switchyard_ok(
+        &[
+            "adapter",
+            "live",
+            "--store",
+            path(&store),
+            "--name",
+            "shared",
+        ],
+        dir.path(),
+    );
+    let version = live.trim().strip_prefix("shared@").unwrap().to_owned();
+    let live_file = store.join("shared").join(format!("{version}.safetensors"));
+    let report = json(&switchyard_ok(
+        &["adapter", "inspect", path(&live_file), "--json"],
+        dir.path(),
+    ));
+    assert_eq!(
+        report["version"],
+        version.as_str(),
+        "the live file is whole"
+    );
+    let versions = switchyard_ok(
+        &[
+            "adapter",
+            "list",
+            "--store",
+            path(&store),
+            "--name",
+            "shared",
+        ],
+        dir.path(),
+    );
+    assert_eq!(versions.lines().count(), 1 + files.len(), "{versions}");
+    for entry in std::fs::read_dir(store.join("shared")).unwrap() {
+        let name = entry.unwrap().file_name().to_string_lossy().into_owned();
+        assert!(
+            !name.starts_with(".incoming-"),
+            "temporary file {name} left behind"
+        );
+    }
+}
+
+#[test]
 fn bad_adapter_names_are_refused_with_the_rule_they_break() {
     let dir = tempfile::tempdir().unwrap();
     let f = fixtures().join("minilm-qv-a.safetensors");
