@@ -155,7 +155,7 @@ pub fn matmul_into(
 
 /// Up to this many rows, `x W^T` runs as dot products against each weight row (see
 /// [`small_rows_matmul`]) instead of through gemm, which packs the whole weight first.
-pub const SMALL_ROWS: usize = 32;
+pub const SMALL_ROWS: usize = 16;
 
 /// `y[m, n] = (accumulate ? y : 0) + x[m, k] W[n, k]^T` for few rows (decode steps): every weight
 /// row is read from memory once and dotted with all `m` input rows while it sits in cache, so

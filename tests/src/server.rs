@@ -261,6 +261,19 @@ impl Server {
         format!("http://{}{path}", self.addr)
     }
 
+    /// A request to `path`, carrying the credential of `auth`.
+    fn builder(&self, method: &str, path: &str, auth: Auth<'_>) -> ureq::http::request::Builder {
+        let builder = ureq::http::Request::builder()
+            .method(method)
+            .uri(self.url(path));
+        let bearer = match auth {
+            Auth::None => return builder,
+            Auth::Bearer(token) => token,
+            Auth::Admin => ADMIN_TOKEN,
+        };
+        builder.header("Authorization", format!("Bearer {bearer}"))
+    }
+
     /// Sends one request; `body` is `(content type, bytes)`.
     pub fn request(
         &self,
@@ -269,17 +282,7 @@ impl Server {
         auth: Auth<'_>,
         body: Option<(&str, &[u8])>,
     ) -> Reply {
-        let mut builder = ureq::http::Request::builder()
-            .method(method)
-            .uri(self.url(path));
-        let bearer = match auth {
-            Auth::None => None,
-            Auth::Bearer(token) => Some(token),
-            Auth::Admin => Some(ADMIN_TOKEN),
-        };
-        if let Some(token) = bearer {
-            builder = builder.header("Authorization", format!("Bearer {token}"));
-        }
+        let builder = self.builder(method, path, auth);
         let result = match body {
             Some((content_type, bytes)) => self.agent.run(
                 builder
@@ -347,14 +350,10 @@ impl Server {
 
     /// `POST path` with a JSON body, read as a stream of server-sent events to its end.
     pub fn post_sse(&self, path: &str, auth: Auth<'_>, body: &Value) -> Vec<SseEvent> {
-        let mut builder = ureq::http::Request::builder()
-            .method("POST")
-            .uri(self.url(path))
+        let builder = self
+            .builder("POST", path, auth)
             .header("Content-Type", "application/json")
             .header("Accept", "text/event-stream");
-        if let Auth::Bearer(token) = auth {
-            builder = builder.header("Authorization", format!("Bearer {token}"));
-        }
         let resp = self
             .agent
             .run(builder.body(body.to_string()).unwrap())

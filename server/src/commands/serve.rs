@@ -232,10 +232,21 @@ async fn serve(state: SharedState, listen: SocketAddr, grace: Duration) -> anyho
             }
         }
     };
-    axum::serve(listener, app)
-        .with_graceful_shutdown(stop)
-        .await
-        .context("serving HTTP")?;
+    // Streams outlive their handlers, so the in-flight count above does not cover them: after
+    // the signal, open connections get one more grace period, then the server stops regardless.
+    let stopping = Arc::new(tokio::sync::Notify::new());
+    let signalled = stopping.clone();
+    let stop = async move {
+        stop.await;
+        signalled.notify_one();
+    };
+    let server = axum::serve(listener, app).with_graceful_shutdown(stop);
+    tokio::select! {
+        result = server => result.context("serving HTTP")?,
+        _ = async { stopping.notified().await; tokio::time::sleep(grace).await } => {
+            tracing::warn!("open connections outlived the grace period; stopping anyway");
+        }
+    }
     Ok(())
 }
 

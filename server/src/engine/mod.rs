@@ -620,7 +620,9 @@ impl Sequence {
             prompt_tokens: self.job.prompt_ids.len(),
             output_tokens: self.out.len(),
             timings: Timings {
-                queue: self.started.saturating_duration_since(self.job.admitted + self.job.swap),
+                queue: self
+                    .started
+                    .saturating_duration_since(self.job.admitted + self.job.swap),
                 swap: self.job.swap,
                 first_token: self.first_token,
                 total,

@@ -1,0 +1,196 @@
+//! A/B splits through the real server: weights hold over many subjects, a subject keeps its arm
+//! (also across a restart, since the split is saved in the store folder), and posted outcomes
+//! show up in the readout.
+
+use std::collections::BTreeMap;
+
+use serde_json::{Value, json};
+use switchyard_tests::fixtures;
+use switchyard_tests::server::{Auth, Server, ServerSetup};
+
+const SUBJECTS: usize = 2000;
+/// Client threads: enough for the engine to batch several rows per forward pass.
+const CLIENTS: usize = 8;
+/// Subjects asked again, within one run and after the restart.
+const RECHECKED: usize = 300;
+/// Outcomes posted per arm, numbers and yes/no each.
+const OUTCOMES_PER_ARM: usize = 30;
+
+/// One short text keeps each request cheap; the assignment does not depend on it.
+const TEXT: &str = "brake bleed";
+
+struct Served {
+    id: String,
+    arm: String,
+    served_by: String,
+}
+
+fn subject(i: usize) -> String {
+    format!("customer-{i:05}")
+}
+
+/// Sends one embed per subject in `subjects` through the split, from [`CLIENTS`] threads, and
+/// returns the answers in subject order.
+fn serve_subjects(server: &Server, subjects: &[usize]) -> Vec<Served> {
+    let chunks: Vec<&[usize]> = subjects.chunks(subjects.len().div_ceil(CLIENTS)).collect();
+    std::thread::scope(|s| {
+        let workers: Vec<_> = chunks
+            .iter()
+            .map(|chunk| {
+                s.spawn(move || {
+                    chunk
+                        .iter()
+                        .map(|&i| {
+                            let body = server
+                                .embed(
+                                    json!({"split": "intent-rollout", "subject": subject(i)}),
+                                    &[TEXT],
+                                )
+                                .ok_json();
+                            assert_eq!(body["split"]["split"], "intent-rollout", "{body}");
+                            Served {
+                                id: body["id"].as_str().unwrap().to_owned(),
+                                arm: body["split"]["arm"].as_str().unwrap().to_owned(),
+                                served_by: body["served_by"].as_str().unwrap().to_owned(),
+                            }
+                        })
+                        .collect::<Vec<_>>()
+                })
+            })
+            .collect();
+        workers
+            .into_iter()
+            .flat_map(|w| w.join().unwrap())
+            .collect()
+    })
+}
+
+fn arm_counts<'a>(served: impl IntoIterator<Item = &'a Served>) -> BTreeMap<&'a str, usize> {
+    let mut counts = BTreeMap::new();
+    for s in served {
+        *counts.entry(s.arm.as_str()).or_default() += 1;
+    }
+    counts
+}
+
+fn post_outcome(server: &Server, response_id: &str, value: Value) -> u16 {
+    server
+        .post(
+            "/outcomes",
+            Auth::None,
+            &json!({"response_id": response_id, "value": value}),
+        )
+        .status
+}
+
+#[test]
+fn split_weighted_80_20_over_2000_subjects_holds_its_weights_and_keeps_each_subjects_arm_across_a_restart()
+ {
+    let mut server = ServerSetup::encoder().start();
+    let v_a = server.publish("intent-a", &fixtures().join("minilm-qv-a.safetensors"));
+    let v_b = server.publish("intent-b", &fixtures().join("minilm-qv-b.safetensors"));
+    let put = server.request(
+        "PUT",
+        "/admin/splits/intent-rollout",
+        Auth::Admin,
+        Some((
+            "application/json",
+            json!({"arms": [
+                {"name": "incumbent", "adapter": "intent-a", "weight": 0.8},
+                {"name": "candidate", "adapter": "intent-b", "weight": 0.2},
+            ]})
+            .to_string()
+            .as_bytes(),
+        )),
+    );
+    assert_eq!(put.status, 201, "{}", put.body);
+
+    let all: Vec<usize> = (0..SUBJECTS).collect();
+    let first = serve_subjects(&server, &all);
+    let counts = arm_counts(&first);
+    let incumbent_share = counts["incumbent"] as f64 / SUBJECTS as f64;
+    assert!(
+        (0.77..=0.83).contains(&incumbent_share),
+        "incumbent got {incumbent_share} of {SUBJECTS} subjects, expected 0.80 ± 0.03 ({counts:?})"
+    );
+    assert_eq!(counts.len(), 2, "{counts:?}");
+    for s in &first {
+        let expected = match s.arm.as_str() {
+            "incumbent" => format!("intent-a@{v_a}"),
+            _ => format!("intent-b@{v_b}"),
+        };
+        assert_eq!(s.served_by, expected, "arm {}", s.arm);
+    }
+
+    let sample: Vec<usize> = (0..SUBJECTS).step_by(SUBJECTS / RECHECKED).collect();
+    let again = serve_subjects(&server, &sample);
+    for (&i, s) in sample.iter().zip(&again) {
+        assert_eq!(s.arm, first[i].arm, "{} changed arm", subject(i));
+    }
+
+    // Outcomes: a number for some responses of each arm, yes/no for others.
+    let mut posted: BTreeMap<&str, (Vec<f64>, usize)> = BTreeMap::new();
+    for (n, s) in first.iter().enumerate() {
+        let (numbers, yes_no) = posted.entry(s.arm.as_str()).or_default();
+        if numbers.len() < OUTCOMES_PER_ARM {
+            let value = (n % 7) as f64 + if s.arm == "candidate" { 0.5 } else { 0.0 };
+            assert_eq!(post_outcome(&server, &s.id, json!(value)), 200);
+            numbers.push(value);
+        } else if *yes_no < OUTCOMES_PER_ARM {
+            assert_eq!(post_outcome(&server, &s.id, json!(n % 3 == 0)), 200);
+            *yes_no += 1;
+        }
+    }
+    assert_eq!(
+        post_outcome(&server, &first[0].id, json!(1.0)),
+        409,
+        "a second outcome for one response"
+    );
+    let readout = server
+        .get("/admin/splits/intent-rollout/readout", Auth::Admin)
+        .ok_json();
+    let requests_now = arm_counts(first.iter().chain(&again));
+    let arms = readout["arms"].as_array().unwrap();
+    assert_eq!(arms.len(), 2, "{readout}");
+    for (i, arm) in arms.iter().enumerate() {
+        let name = arm["arm"].as_str().unwrap();
+        assert_eq!(arm["requests"], json!(requests_now[name]), "{name}: {arm}");
+        let numbers = &posted[name].0;
+        let numeric = &arm["numeric"];
+        assert_eq!(
+            numeric["summary"]["count"],
+            json!(OUTCOMES_PER_ARM),
+            "{arm}"
+        );
+        let mean = numbers.iter().sum::<f64>() / numbers.len() as f64;
+        let served_mean = numeric["summary"]["mean"].as_f64().unwrap();
+        assert!(
+            (served_mean - mean).abs() < 1e-9,
+            "{name}: mean {served_mean}, posted {mean}"
+        );
+        assert_eq!(
+            arm["yes_no"]["summary"]["count"],
+            json!(OUTCOMES_PER_ARM),
+            "{arm}"
+        );
+        if i == 0 {
+            assert!(numeric["versus_first"].is_null(), "{arm}");
+        } else {
+            for comparison in [&numeric["versus_first"], &arm["yes_no"]["versus_first"]] {
+                let p = comparison["p_value"].as_f64().unwrap_or(f64::NAN);
+                assert!((0.0..=1.0).contains(&p), "{name}: p-value {comparison}");
+            }
+        }
+    }
+
+    server.restart();
+    let after = serve_subjects(&server, &sample);
+    for (&i, s) in sample.iter().zip(&after) {
+        assert_eq!(
+            s.arm,
+            first[i].arm,
+            "{} changed arm after the restart",
+            subject(i)
+        );
+    }
+}
