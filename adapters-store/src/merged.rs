@@ -13,7 +13,8 @@ use crate::site::Site;
 /// shared with the base.
 #[derive(Debug)]
 pub struct MergedWeights {
-    pub adapter_id: String,
+    /// `name@version` of the adapter these weights were merged from.
+    pub source: String,
     weights: HashMap<Site, Tensor>,
 }
 
@@ -28,7 +29,7 @@ impl MergedWeights {
             weights.insert(*site, lr.merge(&w0)?);
         }
         Ok(Self {
-            adapter_id: adapter.id.clone(),
+            source: adapter.id.clone(),
             weights,
         })
     }

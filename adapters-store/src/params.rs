@@ -13,7 +13,7 @@ pub fn full_update_parameters(in_features: usize, out_features: usize) -> usize 
 
 /// Trainable parameters of an adapter of rank `rank` on `targets_per_layer` matrices of shape
 /// `[out, in]` in each of `layers` layers.
-pub fn adapter_parameters(
+pub fn trainable_parameters(
     rank: usize,
     layers: usize,
     shapes_per_layer: &[(usize, usize)],
@@ -36,9 +36,9 @@ mod tests {
     fn gpt3_budget_from_the_lora_paper() {
         let d = 12288;
         let sq = (d, d);
-        assert_eq!(adapter_parameters(8, 96, &[sq]), 18_874_368);
-        assert_eq!(adapter_parameters(4, 96, &[sq, sq]), 18_874_368);
-        assert_eq!(adapter_parameters(2, 96, &[sq, sq, sq, sq]), 18_874_368);
+        assert_eq!(trainable_parameters(8, 96, &[sq]), 18_874_368);
+        assert_eq!(trainable_parameters(4, 96, &[sq, sq]), 18_874_368);
+        assert_eq!(trainable_parameters(2, 96, &[sq, sq, sq, sq]), 18_874_368);
     }
 
     /// Textbook case (common practice, no source): a 100x100 matrix at r = 5.

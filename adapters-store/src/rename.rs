@@ -207,14 +207,14 @@ mod tests {
     #[test]
     fn first_matching_rule_wins() {
         let rules = [
-            RenameRule::parse("{x}.lora_a=layers.{x}.attn.q.A").unwrap(),
-            RenameRule::parse("{x}.lora_a=never").unwrap(),
+            RenameRule::parse("{x}.wq.down=layers.{x}.attn.q.A").unwrap(),
+            RenameRule::parse("{x}.wq.down=never").unwrap(),
         ];
         assert_eq!(
-            rename(&rules, "7.lora_a").as_deref(),
+            rename(&rules, "7.wq.down").as_deref(),
             Some("layers.7.attn.q.A")
         );
-        assert_eq!(rename(&rules, "7.lora_b"), None);
+        assert_eq!(rename(&rules, "7.wq.up"), None);
     }
 
     #[test]

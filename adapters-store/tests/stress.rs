@@ -110,7 +110,7 @@ fn eight_threads_resolve_and_evict_while_another_publishes_and_rolls_back() {
                     }
                     if rng.random_bool(0.2) {
                         let m = registry.merged(&held[0]).unwrap();
-                        assert_eq!(m.adapter_id, held[0].id());
+                        assert_eq!(m.source, held[0].id());
                         check_budget(registry);
                     }
                     std::thread::sleep(Duration::from_micros(rng.random_range(0..500)));

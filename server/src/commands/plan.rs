@@ -150,7 +150,7 @@ pub fn plan(shapes: &ConfigShapes, rank: usize, targets: &[Module]) -> anyhow::R
         unmerged_per_layer += lr.resident_bytes() as u64;
     }
     let layers = shapes.layers as u64;
-    let factor_parameters = params::adapter_parameters(rank, shapes.layers, &per_layer) as u64;
+    let factor_parameters = params::trainable_parameters(rank, shapes.layers, &per_layer) as u64;
     let full_update_parameters = layers
         * per_layer
             .iter()
