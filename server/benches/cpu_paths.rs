@@ -83,14 +83,12 @@ fn synthetic_adapter(
 }
 
 struct Report {
-    rows: Vec<(String, String)>,
     json: serde_json::Map<String, serde_json::Value>,
 }
 
 impl Report {
     fn add(&mut self, key: &str, label: String, value: f64) {
         println!("{label}");
-        self.rows.push((key.to_owned(), label));
         self.json.insert(key.to_owned(), serde_json::json!(value));
     }
 }
@@ -385,7 +383,6 @@ fn main() {
         .and_then(|v| v.parse().ok())
         .unwrap_or(5);
     let mut report = Report {
-        rows: Vec::new(),
         json: serde_json::Map::new(),
     };
     println!(
@@ -406,5 +403,4 @@ fn main() {
         serde_json::to_string_pretty(&report.json).unwrap(),
     )
     .unwrap();
-    let _ = report.rows.len();
 }

@@ -156,38 +156,19 @@ fn minilm_merged_and_unmerged_paths_agree() {
             .unwrap();
         let merged =
             Arc::new(MergedWeights::build(&adapter, |s| e.model().base_weight(s)).unwrap());
-        let merged_out =
-            embed_with_rows(e, &tokens, |rows| RowAdapters::merged(merged.clone(), rows));
+        let t = switchyard_server::model::embedder::padded_len(&tokens);
+        let merged_out = e
+            .embed_rows(
+                &tokens,
+                &RowAdapters::merged(merged.clone(), tokens.len() * t),
+            )
+            .unwrap();
         let d = max_abs(&unmerged, &merged_out);
         assert!(
             d <= 1e-4,
             "{name}: merged vs unmerged max abs difference {d}"
         );
     }
-}
-
-/// Runs the encoder over `tokens` with a caller-built row assignment (for the merged path).
-fn embed_with_rows(
-    e: &Embedder,
-    tokens: &[Vec<u32>],
-    rows: impl Fn(usize) -> RowAdapters,
-) -> Vec<Vec<f32>> {
-    let dev = candle_core::Device::Cpu;
-    let b = tokens.len();
-    let t = tokens.iter().map(Vec::len).max().unwrap();
-    let mut flat = vec![0u32; b * t];
-    let mut mask = vec![0u32; b * t];
-    for (i, seq) in tokens.iter().enumerate() {
-        flat[i * t..i * t + seq.len()].copy_from_slice(seq);
-        mask[i * t..i * t + seq.len()].fill(1);
-    }
-    let ids = Tensor::from_vec(flat, (b, t), &dev).unwrap();
-    let mask = Tensor::from_vec(mask, (b, t), &dev).unwrap();
-    let hidden = e.model().forward(&ids, &mask, &rows(b * t)).unwrap();
-    switchyard_server::model::bert::mean_pool_normalise(&hidden, &mask)
-        .unwrap()
-        .to_vec2()
-        .unwrap()
 }
 
 #[test]

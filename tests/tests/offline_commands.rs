@@ -2,27 +2,8 @@
 //! temporary directory, texts on stdin, JSON on stdout, checked against the reference fixtures
 //! (sentence-transformers embeddings, transformers greedy tokens; see tests/reference/README.md).
 
+use switchyard_tests::embeddings::{cosine, rows};
 use switchyard_tests::{base_model_dir, fixtures, read_json, run_switchyard};
-
-fn cosine(a: &[f64], b: &[f64]) -> f64 {
-    let dot: f64 = a.iter().zip(b).map(|(x, y)| x * y).sum();
-    dot / (a.iter().map(|x| x * x).sum::<f64>().sqrt()
-        * b.iter().map(|x| x * x).sum::<f64>().sqrt())
-}
-
-fn rows(v: &serde_json::Value) -> Vec<Vec<f64>> {
-    v.as_array()
-        .unwrap()
-        .iter()
-        .map(|r| {
-            r.as_array()
-                .unwrap()
-                .iter()
-                .map(|x| x.as_f64().unwrap())
-                .collect()
-        })
-        .collect()
-}
 
 fn embed(adapter: Option<&str>, batch: &str) -> (Vec<Vec<f64>>, String) {
     let fx = read_json(&fixtures().join("minilm-embeddings.json"));

@@ -222,6 +222,10 @@ struct Worker {
     depth: Arc<AtomicUsize>,
 }
 
+fn encoder_cannot_generate() -> EngineError {
+    EngineError::Compute("this server's base model is an encoder; it cannot generate".into())
+}
+
 fn adapter_key(h: &Option<AdapterHandle>) -> String {
     h.as_ref()
         .map(|h| h.id())
@@ -283,9 +287,7 @@ impl Worker {
                     }
                     Some(Job::Generate(j)) => {
                         self.took();
-                        let _ = j.events.send(GenEvent::Failed(EngineError::Compute(
-                            "this server's base model is an encoder; it cannot generate".into(),
-                        )));
+                        let _ = j.events.send(GenEvent::Failed(encoder_cannot_generate()));
                         continue;
                     }
                     None => return,
@@ -306,9 +308,7 @@ impl Worker {
                     }
                     Ok(Job::Generate(j)) => {
                         self.took();
-                        let _ = j.events.send(GenEvent::Failed(EngineError::Compute(
-                            "this server's base model is an encoder; it cannot generate".into(),
-                        )));
+                        let _ = j.events.send(GenEvent::Failed(encoder_cannot_generate()));
                     }
                     Err(_) => break,
                 }

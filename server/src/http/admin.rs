@@ -16,7 +16,8 @@ use crate::http::error::ApiError;
 use crate::http::extract::{ApiBytes, ApiJson};
 use crate::http::splits::authorization;
 
-fn require_admin(state: &SharedState, headers: &HeaderMap) -> Result<(), ApiError> {
+/// Refuses a request without the configured admin token.
+pub(crate) fn require_admin(state: &SharedState, headers: &HeaderMap) -> Result<(), ApiError> {
     crate::http::auth::check_admin(state.admin_token.as_deref(), authorization(headers))?;
     Ok(())
 }

@@ -14,6 +14,7 @@ use serde::Deserialize;
 use serde_json::{Value, json};
 
 use crate::http::SharedState;
+use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::splits::{
@@ -122,11 +123,6 @@ fn fresh_entry(split: Split) -> Entry {
         numeric: vec![NumericTally::new(); n],
         binary: vec![BinaryTally::new(); n],
     }
-}
-
-fn require_admin(state: &SharedState, headers: &HeaderMap) -> Result<(), ApiError> {
-    crate::http::auth::check_admin(state.admin_token.as_deref(), authorization(headers))?;
-    Ok(())
 }
 
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
