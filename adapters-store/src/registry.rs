@@ -116,12 +116,30 @@ struct State {
     factors: TierState<Adapter>,
     merged: TierState<MergedWeights>,
     pinned: HashSet<AdapterName>,
+    /// Versions that stay resident like live ones although they are not live (a split arm held
+    /// to one version names them), so each request to them is not a fresh load.
+    kept: HashSet<Key>,
     clock: u64,
 }
 
 impl State {
     fn is_live(&self, key: &Key) -> bool {
         self.live.get(&key.0) == Some(&key.1)
+    }
+
+    /// Live or kept: an entry of such a version is never freed as stale.
+    fn is_wanted(&self, key: &Key) -> bool {
+        self.is_live(key) || self.kept.contains(key)
+    }
+
+    /// Marks the entries of `name` in both tiers stale unless their version is `live` or kept.
+    fn restale(&mut self, name: &AdapterName, live: Option<&str>) {
+        self.factors.lru.restale(name.as_str(), live);
+        self.merged.lru.restale(name.as_str(), live);
+        for key in self.kept.iter().filter(|k| &k.0 == name) {
+            self.factors.lru.set_stale(key, false);
+            self.merged.lru.set_stale(key, false);
+        }
     }
 }
 
@@ -156,6 +174,7 @@ impl Registry {
                 flights: HashMap::new(),
             },
             pinned: HashSet::new(),
+            kept: HashSet::new(),
             clock: 0,
         };
         Self {
@@ -216,9 +235,17 @@ impl Registry {
         ))
     }
 
+    /// Whether merged variants may be built: a merged budget of 0 bytes turns merging off.
+    pub fn merging_enabled(&self) -> bool {
+        self.inner.base_weights.is_some() && self.inner.state.lock().merged.lru.budget() > 0
+    }
+
     /// The merged variant of the version `handle` holds, building it on first use.
     pub fn merged(&self, handle: &AdapterHandle) -> Result<MergedHandle, RegistryError> {
         let inner = &self.inner;
+        if !self.merging_enabled() {
+            return Err(RegistryError::MergingOff { id: handle.id() });
+        }
         let base = inner
             .base_weights
             .as_ref()
@@ -279,6 +306,26 @@ impl Registry {
         };
         drop(handle);
         result
+    }
+
+    /// Replaces the set of versions kept resident although not live: a version a client asks
+    /// for by name (an A/B split arm held to one version) would otherwise be freed as stale when
+    /// its last request ends and read from disk again on the next. Kept versions still count
+    /// against the tier budgets and are evicted as any other unpinned entry. Versions no longer
+    /// kept, and not live, are freed once unheld.
+    pub fn keep_versions(&self, versions: impl IntoIterator<Item = (AdapterName, String)>) {
+        let mut st = self.inner.state.lock();
+        let before: HashSet<Key> = std::mem::replace(&mut st.kept, versions.into_iter().collect());
+        let names: HashSet<AdapterName> = before
+            .iter()
+            .chain(st.kept.iter())
+            .map(|k| k.0.clone())
+            .collect();
+        for name in names {
+            let live = st.live.get(&name).cloned();
+            st.restale(&name, live.as_deref());
+        }
+        self.inner.trim(&mut st);
     }
 
     /// Lets `name` be evicted again.
@@ -446,8 +493,7 @@ impl Inner {
             return;
         }
         st.refused.retain(|k, _| &k.0 != name || k.1 == to);
-        st.factors.lru.restale(name.as_str(), Some(to));
-        st.merged.lru.restale(name.as_str(), Some(to));
+        st.restale(name, Some(to));
         let key = (name.clone(), to.to_owned());
         if st.pinned.contains(name) {
             let r = st.factors.lru.residency(|k| pinned_key(st, k));
@@ -500,8 +546,7 @@ impl Inner {
         st.live.remove(name);
         st.pinned.remove(name);
         st.refused.retain(|k, _| &k.0 != name);
-        st.factors.lru.restale(name.as_str(), None);
-        st.merged.lru.restale(name.as_str(), None);
+        st.restale(name, None);
         self.trim(&mut st);
     }
 
@@ -575,7 +620,7 @@ impl Inner {
             Ok(Ok((value, timings))) => {
                 let value = Arc::new(value);
                 let bytes = value.resident_bytes();
-                let stale = !st.is_live(key);
+                let stale = !st.is_wanted(key);
                 st.clock += 1;
                 let tick = st.clock;
                 pick(&mut st)

@@ -323,3 +323,53 @@ fn a_version_retired_before_the_registry_noticed_resolves_to_the_new_live_one() 
     let h = registry.resolve("moving").unwrap();
     assert_eq!((h.version(), whole_tag(&h)), (v2.as_str(), 2.0));
 }
+
+/// Regression: an A/B arm held to the previous version loaded it from disk on every request,
+/// because a version that is not live was freed as stale as soon as its request ended.
+#[test]
+fn a_kept_version_that_is_not_live_stays_resident_until_no_longer_kept() {
+    let (_dir, store, registry) = registry(1 << 20, 1 << 20);
+    let v1 = publish(&store, "trial", 1.0);
+    registry.resolve("trial").unwrap();
+    let v2 = publish(&store, "trial", 2.0);
+    registry.poll_once();
+    let name = AdapterName::new("trial").unwrap();
+    registry.keep_versions([(name.clone(), v1.clone())]);
+    let loads = registry.load_count();
+    for _ in 0..5 {
+        let old = registry.resolve_version("trial", &v1).unwrap();
+        assert_eq!(whole_tag(&old), 1.0);
+        let new = registry.resolve("trial").unwrap();
+        assert_eq!(new.version(), v2);
+    }
+    assert_eq!(
+        registry.load_count(),
+        loads + 1,
+        "v1 read once, then served from memory (v2 was already resident)"
+    );
+    assert_eq!(registry.entries().len(), 2);
+    // No longer kept: freed, as any version that is not live.
+    registry.keep_versions([]);
+    let entries = registry.entries();
+    assert_eq!(entries.len(), 1);
+    assert_eq!(entries[0].version, v2);
+}
+
+/// Regression: a merged budget of 0 bytes, documented as "merging off", still built a merged
+/// variant for every promoted batch (and freed it right after, so each batch paid a merge).
+#[test]
+fn a_merged_budget_of_zero_turns_merging_off() {
+    let (_dir, store, off) = registry(1 << 20, 0);
+    publish(&store, "solo", 1.0);
+    let h = off.resolve("solo").unwrap();
+    assert!(!off.merging_enabled());
+    assert!(matches!(
+        off.merged(&h),
+        Err(RegistryError::MergingOff { .. })
+    ));
+    assert_eq!(off.merge_count(), 0);
+    let (_dir2, store2, on) = registry(1 << 20, 1 << 20);
+    publish(&store2, "solo", 1.0);
+    assert!(on.merging_enabled());
+    assert!(on.merged(&on.resolve("solo").unwrap()).is_ok());
+}

@@ -1,5 +1,21 @@
-//! The workload side of switchyard's load tests: which adapter each request names (Zipf
-//! popularity over N adapters) and when it is sent (open-loop Poisson arrivals). The HTTP
-//! driver and the swap-overhead report build on these.
+//! switchyard's load generator, which speaks HTTP only. [`workload`] says which adapter each
+//! request names (Zipf popularity) and when it is sent (Poisson arrivals); [`mix`] which endpoint;
+//! [`driver`] sends the requests through [`client`] in a closed or an open loop, with the
+//! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
+//! [`synthetic`] builds adapters for a run; [`report`] writes JSON and HTML with [`charts`];
+//! [`overhead`] is the built-in swap-overhead scenario, which starts its own server ([`server`]).
 
+pub mod charts;
+pub mod cli;
+pub mod client;
+pub mod driver;
+pub mod mix;
+pub mod overhead;
+pub mod progress;
+pub mod report;
+pub mod results;
+pub mod scrape;
+pub mod server;
+pub mod stats;
+pub mod synthetic;
 pub mod workload;

@@ -46,20 +46,41 @@ impl Zipf {
 }
 
 /// Send times (seconds from the start) of an open-loop Poisson process at `rate` per second,
+/// drawn one at a time and without end; [`poisson_arrivals`] bounds them.
+#[derive(Debug, Clone)]
+pub struct PoissonArrivals {
+    rng: ChaCha8Rng,
+    rate: f64,
+    t: f64,
+}
+
+impl PoissonArrivals {
+    pub fn new(rate: f64, seed: u64) -> Self {
+        Self {
+            rng: ChaCha8Rng::seed_from_u64(seed),
+            rate,
+            t: 0.0,
+        }
+    }
+}
+
+impl Iterator for PoissonArrivals {
+    type Item = f64;
+
+    fn next(&mut self) -> Option<f64> {
+        let u: f64 = self.rng.random();
+        self.t += -(1.0 - u).ln() / self.rate;
+        Some(self.t)
+    }
+}
+
+/// Send times (seconds from the start) of an open-loop Poisson process at `rate` per second,
 /// up to `duration` seconds or `limit` requests, whichever comes first.
 pub fn poisson_arrivals(rate: f64, duration: f64, limit: usize, seed: u64) -> Vec<f64> {
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut t = 0.0;
-    let mut out = Vec::new();
-    while out.len() < limit {
-        let u: f64 = rng.random();
-        t += -(1.0 - u).ln() / rate;
-        if t > duration {
-            break;
-        }
-        out.push(t);
-    }
-    out
+    PoissonArrivals::new(rate, seed)
+        .take_while(|&t| t <= duration)
+        .take(limit)
+        .collect()
 }
 
 #[cfg(test)]

@@ -1,5 +1,6 @@
-//! switchyard's server crate: the model runtimes ([`model`]) and the commands the `switchyard`
-//! binary exposes ([`commands`]). `main.rs` only parses flags and calls into here.
+//! switchyard's server crate: the model runtimes ([`model`]), adapter training ([`train`]) and
+//! the commands the `switchyard` binary exposes ([`commands`]). `main.rs` only parses flags and
+//! calls into here.
 
 pub mod commands;
 pub mod engine;
@@ -7,3 +8,4 @@ pub mod http;
 pub mod metrics;
 pub mod model;
 pub mod splits;
+pub mod train;

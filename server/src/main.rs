@@ -9,7 +9,7 @@ use clap::{Parser, Subcommand};
 /// fresh large allocation from the system costs a page fault per 4 KB (shared/PERF-NOTES.md).
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
-use switchyard_server::commands::{adapter, embed, generate, plan, serve, similarity};
+use switchyard_server::commands::{adapter, embed, generate, plan, serve, similarity, tour};
 use switchyard_server::model::sampling::SamplingParams;
 
 /// switchyard: one base model resident, many low-rank adapters served from it.
@@ -95,6 +95,10 @@ enum Command {
         #[arg(long)]
         store: Option<PathBuf>,
     },
+    /// Walk through a running server, as the demo does: classify with each demo adapter, flip a
+    /// new version live under traffic, run an A/B split with outcomes, and show the swap metrics.
+    /// Exits 1 if any step gets an answer it did not expect.
+    Tour(tour::TourArgs),
     /// Work with config files.
     Config {
         #[command(subcommand)]
@@ -191,6 +195,7 @@ fn main() {
         ),
         Command::Adapter { command } => adapter::run(&command, io::stdout().lock()),
         Command::Plan(args) => plan::run(&args, io::stdout().lock()),
+        Command::Tour(args) => tour::run(&args, &mut io::stdout().lock()),
         Command::Serve { .. } => unreachable!("handled above"),
         Command::Config {
             command: ConfigCommand::Check { file },

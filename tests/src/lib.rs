@@ -37,12 +37,22 @@ pub fn base_model_dir() -> PathBuf {
 
 /// The `switchyard` binary built next to the running test executable.
 pub fn switchyard_bin() -> PathBuf {
+    built_bin("switchyard", "switchyard-server")
+}
+
+/// The `switchyard-load` binary (the load generator) built next to the running test executable.
+pub fn switchyard_load_bin() -> PathBuf {
+    built_bin("switchyard-load", "switchyard-load")
+}
+
+/// Binary `name` of package `package` in the profile folder of the running test executable.
+fn built_bin(name: &str, package: &str) -> PathBuf {
     let exe = std::env::current_exe().unwrap();
     let profile_dir = exe.parent().unwrap().parent().unwrap();
-    let bin = profile_dir.join(format!("switchyard{}", std::env::consts::EXE_SUFFIX));
+    let bin = profile_dir.join(format!("{name}{}", std::env::consts::EXE_SUFFIX));
     assert!(
         bin.is_file(),
-        "{} is missing: build it first with `cargo build -p switchyard-server` (scripts/test does)",
+        "{} is missing: build it first with `cargo build -p {package}` (scripts/test does)",
         bin.display()
     );
     bin

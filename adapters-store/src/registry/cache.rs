@@ -105,6 +105,13 @@ impl<T> ByteLru<T> {
         }
     }
 
+    /// Sets whether one entry, if present, is stale.
+    pub(crate) fn set_stale(&mut self, key: &Key, stale: bool) {
+        if let Some(e) = self.entries.get_mut(key) {
+            e.stale = stale;
+        }
+    }
+
     /// Removes entries nobody holds until the unheld bytes fit the budget: stale entries always,
     /// then the least recently used entry that is not pinned, repeatedly. Returns what it removed.
     pub(crate) fn trim(&mut self, pinned: impl Fn(&Key) -> bool) -> Vec<(Key, usize, Removal)> {

@@ -22,6 +22,8 @@ pub enum RegistryError {
     Merge { id: String, message: String },
     #[error("{id} cannot be merged: the registry was given no base weights")]
     NoBaseWeights { id: String },
+    #[error("{id} cannot be merged: merging is off (the merged budget is 0 bytes)")]
+    MergingOff { id: String },
     #[error(
         "pinning {name} would keep {needed} bytes of factors pinned, over the factor budget of {budget} bytes"
     )]

@@ -3,14 +3,17 @@
 //! - [`inspect`]: what a package holds and how much of its rank each update uses;
 //! - [`verify`]: every validation rule, against a base model;
 //! - [`pack`]: a package from a foreign safetensors file and rename rules;
-//! - [`store`]: publish, list, live, rollback and retire on a store folder.
+//! - [`store`]: publish, list, live, rollback and retire on a store folder;
+//! - [`train`] and [`evaluate`]: fit a classify adapter on labelled texts and measure it.
 //!
 //! [`base`] holds what they share (base model loading, size limits, number formatting).
 
 pub mod base;
+pub mod evaluate;
 pub mod inspect;
 pub mod pack;
 pub mod store;
+pub mod train;
 pub mod verify;
 
 use std::io::Write;
@@ -40,6 +43,12 @@ pub enum AdapterCommand {
     /// Build a package from any safetensors file of factor tensors, mapping its tensor names
     /// onto ours with --rename rules.
     Pack(pack::PackArgs),
+    /// Train a classify adapter (low-rank factors and a head) on an encoder base from a JSONL
+    /// file of {"text", "label"} lines; accuracy on the held-out split after every epoch.
+    Train(train::TrainArgs),
+    /// Accuracy of a classify package on the held-out split of a JSONL file, through the
+    /// serving path, per label; or of the base model with an untrained head.
+    Evaluate(evaluate::EvaluateArgs),
 }
 
 /// Runs one adapter command, writing its report to `out`.
@@ -53,5 +62,7 @@ pub fn run(command: &AdapterCommand, out: impl Write) -> anyhow::Result<()> {
         AdapterCommand::Rollback(a) => store::rollback(a, out),
         AdapterCommand::Retire(a) => store::retire(a, out),
         AdapterCommand::Pack(a) => pack::run(a, out),
+        AdapterCommand::Train(a) => train::run(a, out),
+        AdapterCommand::Evaluate(a) => evaluate::run(a, out),
     }
 }

@@ -8,3 +8,4 @@ pub mod generate;
 pub mod plan;
 pub mod serve;
 pub mod similarity;
+pub mod tour;

@@ -156,6 +156,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         metrics.clone(),
     );
     let splits = SplitBook::open(Some(store_dir.join("splits.json")))?;
+    splits.keep_arm_versions(&registry);
     let state: SharedState = Arc::new(AppState {
         engine,
         backbone,

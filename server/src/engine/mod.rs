@@ -109,6 +109,9 @@ pub enum GenEvent {
     },
     Done {
         finish: &'static str,
+        /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
+        /// back in case the next token completed it (usually empty).
+        tail: String,
         prompt_tokens: usize,
         output_tokens: usize,
         timings: Timings,
@@ -251,10 +254,10 @@ impl Worker {
 
     /// The merged variant to run a batch that uses only `handle`, when the policy promotes it.
     fn merged_for(&mut self, handle: &AdapterHandle) -> Option<(MergedHandle, Duration)> {
-        if !self.policy.promotes(&handle.id()) {
+        let registry = self.registry.as_ref()?;
+        if !registry.merging_enabled() || !self.policy.promotes(&handle.id()) {
             return None;
         }
-        let registry = self.registry.as_ref()?;
         let start = Instant::now();
         let before = registry.merge_count();
         match registry.merged(handle) {
@@ -433,7 +436,7 @@ impl Worker {
                     tracing::debug!("client disconnected; generation stopped and its cache freed");
                     false
                 } else if now > s.job.deadline {
-                    s.finish("deadline", &self.metrics);
+                    s.finish("deadline", g, &eos, &self.metrics);
                     false
                 } else {
                     true
@@ -602,21 +605,28 @@ impl Sequence {
             self.out.push(token);
         }
         if is_eos {
-            self.finish("eos", metrics);
+            self.finish("eos", g, eos, metrics);
             return false;
         }
         if self.out.len() >= self.job.limit {
-            self.finish("limit", metrics);
+            self.finish("limit", g, eos, metrics);
             return false;
         }
         true
     }
 
-    fn finish(&self, reason: &'static str, metrics: &Metrics) {
+    fn finish(&self, reason: &'static str, g: &Generator, eos: &[u32], metrics: &Metrics) {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
+        let kept: Vec<u32> = self
+            .out
+            .iter()
+            .copied()
+            .filter(|t| !eos.contains(t))
+            .collect();
         let _ = self.job.events.send(GenEvent::Done {
             finish: reason,
+            tail: unsent_tail(&g.decode(&kept).unwrap_or_default(), &self.sent_text),
             prompt_tokens: self.job.prompt_ids.len(),
             output_tokens: self.out.len(),
             timings: Timings {
@@ -635,5 +645,25 @@ impl Sequence {
             .job
             .events
             .send(GenEvent::Failed(EngineError::Compute(message)));
+    }
+}
+
+/// What of the whole decoded text was not streamed yet. Streaming only ever sends a prefix of the
+/// decoded text, so the rest is what follows `sent`; if decoding ever disagreed with what was sent
+/// (it does not for byte-level tokenizers), nothing is resent.
+fn unsent_tail(full: &str, sent: &str) -> String {
+    full.strip_prefix(sent).unwrap_or_default().to_owned()
+}
+
+#[cfg(test)]
+mod tail_tests {
+    use super::unsent_tail;
+
+    #[test]
+    fn a_trailing_incomplete_character_held_back_is_flushed_at_the_end() {
+        // A byte-level decoder shows a cut multi-byte character as U+FFFD; streaming held it back.
+        assert_eq!(unsent_tail("caf\u{FFFD}", "caf"), "\u{FFFD}");
+        assert_eq!(unsent_tail("café", "café"), "");
+        assert_eq!(unsent_tail("other", "caf"), "");
     }
 }

@@ -413,10 +413,12 @@ pub async fn generate(
                     }
                     GenEvent::Done {
                         finish: reason,
+                        tail,
                         prompt_tokens,
                         output_tokens,
                         timings,
                     } => {
+                        text.push_str(&tail);
                         finish(&state, "generate", &id, &routed.served_by, 200, start);
                         return Json(json!({
                             "id": id,
@@ -552,6 +554,7 @@ fn stream_answer(
                     .json_data(json!({"text": text, "token_id": t})),
                 GenEvent::Done {
                     finish: reason,
+                    tail,
                     prompt_tokens,
                     output_tokens,
                     timings,
@@ -559,6 +562,7 @@ fn stream_answer(
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
                     let e = Event::default().event("done").json_data(json!({
                         "id": id,
+                        "tail": tail,
                         "served_by": routed.served_by,
                         "split": arm_json(&routed),
                         "finish": reason,

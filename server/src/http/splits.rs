@@ -77,6 +77,13 @@ impl SplitBook {
         })
     }
 
+    /// Tells the registry which versions split arms are held to, so those stay resident while
+    /// not live. Called whenever the set of splits changes, and once at start.
+    pub fn keep_arm_versions(&self, registry: &switchyard_adapters::Registry) {
+        let book = self.book.lock().unwrap();
+        registry.keep_versions(arm_versions(&book));
+    }
+
     fn save(&self, book: &Book) -> Result<(), ApiError> {
         let Some(path) = &self.path else {
             return Ok(());
@@ -123,6 +130,19 @@ fn fresh_entry(split: Split) -> Entry {
         numeric: vec![NumericTally::new(); n],
         binary: vec![BinaryTally::new(); n],
     }
+}
+
+/// Every `(adapter, version)` an arm is held to.
+fn arm_versions(book: &Book) -> Vec<(switchyard_adapters::AdapterName, String)> {
+    book.splits
+        .values()
+        .flat_map(|e| e.split.arms())
+        .filter_map(|arm| {
+            let version = arm.version.clone()?;
+            let name = switchyard_adapters::AdapterName::new(&arm.adapter).ok()?;
+            Some((name, version))
+        })
+        .collect()
 }
 
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
@@ -190,6 +210,7 @@ pub async fn put_split(
     };
     let spec = serde_json::to_value(entry.split.spec()).expect("serialise");
     book.splits.insert(name, entry);
+    state.registry.keep_versions(arm_versions(&book));
     state.splits.save(&book)?;
     let status = if created {
         StatusCode::CREATED
@@ -213,6 +234,7 @@ pub async fn delete_split(
             format!("no split named {name:?}"),
         ));
     }
+    state.registry.keep_versions(arm_versions(&book));
     state.splits.save(&book)?;
     Ok(StatusCode::NO_CONTENT)
 }

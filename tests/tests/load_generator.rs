@@ -1,0 +1,258 @@
+//! The load generator (`switchyard-load`) against the real server: the built-in overhead
+//! scenario in its quick form, a run with synthetic adapters it creates through the admin API
+//! (closed and open loop), and the refusals of bad arguments. Times are never asserted; only
+//! that every scenario is there, every ratio is a positive number and no request failed.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use serde_json::Value;
+use switchyard_tests::server::{ADMIN_TOKEN, Auth, ServerSetup};
+use switchyard_tests::{base_model_dir, read_json, switchyard_bin, switchyard_load_bin};
+
+fn load(args: &[&str], cwd: &Path) -> Output {
+    Command::new(switchyard_load_bin())
+        .args(args)
+        .current_dir(cwd)
+        .output()
+        .expect("start switchyard-load")
+}
+
+fn load_ok(args: &[&str], cwd: &Path) -> String {
+    let out = load(args, cwd);
+    assert!(
+        out.status.success(),
+        "switchyard-load {} failed:\n{}",
+        args.join(" "),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap()
+}
+
+/// Every scenario of a report answered all its requests.
+fn assert_no_failures(report: &Value) {
+    for s in report["scenarios"].as_array().unwrap() {
+        assert!(s["requests"].as_u64().unwrap() > 0, "{}", s["name"]);
+        assert_eq!(
+            s["errors_by_status"],
+            serde_json::json!({}),
+            "scenario {}",
+            s["name"]
+        );
+    }
+}
+
+fn assert_charts(dir: &Path, files: &[&str]) {
+    let html = std::fs::read_to_string(dir.join("report.html")).unwrap();
+    assert_eq!(html.matches("<svg").count(), files.len(), "inline charts");
+    for f in files {
+        let svg = std::fs::read_to_string(dir.join(f)).unwrap();
+        assert!(
+            svg.starts_with("<svg") && svg.trim_end().ends_with("</svg>"),
+            "{f}"
+        );
+    }
+}
+
+const CHARTS: [&str; 5] = [
+    "latency-cdf.svg",
+    "adapters-throughput.svg",
+    "adapters-p99.svg",
+    "swap-histogram.svg",
+    "memory.svg",
+];
+
+#[test]
+fn quick_overhead_scenario_reports_every_scenario_as_a_ratio_to_base() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("report");
+    let bin = switchyard_bin();
+    let model = base_model_dir();
+    let table = load_ok(
+        &[
+            "overhead",
+            "--server-bin",
+            bin.to_str().unwrap(),
+            "--model",
+            model.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+            "--quick",
+        ],
+        dir.path(),
+    );
+    let report = read_json(&out.join("report.json"));
+    let names: Vec<&str> = report["scenarios"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["name"].as_str().unwrap())
+        .collect();
+    // The quick plan mixes 1 and 10 adapters; the full one also 100 and 1000.
+    assert_eq!(
+        names,
+        [
+            "base (merging on)",
+            "one adapter merged",
+            "base",
+            "one adapter unmerged",
+            "1 adapter mixed",
+            "10 adapters mixed"
+        ]
+    );
+    assert_no_failures(&report);
+    let ratios = report["ratios"].as_array().unwrap();
+    assert_eq!(ratios.len(), names.len());
+    for r in ratios {
+        for key in ["throughput_ratio", "p50_ratio", "p99_ratio"] {
+            let v = r[key].as_f64().unwrap();
+            assert!(v.is_finite() && v > 0.0, "{key} of {}: {v}", r["scenario"]);
+        }
+    }
+    // A base is its own reference.
+    assert_eq!(ratios[0]["throughput_ratio"], 1.0);
+    assert_eq!(ratios[2]["reference"], "base");
+    assert_eq!(ratios[1]["reference"], "base (merging on)");
+    // The merged scenario was measured on a merged variant, the unmerged one never was.
+    let scenario = |name: &str| {
+        report["scenarios"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|s| s["name"] == name)
+            .unwrap()
+            .clone()
+    };
+    assert!(
+        scenario("one adapter merged")["merged_share"]
+            .as_f64()
+            .unwrap()
+            >= 0.9
+    );
+    assert_eq!(scenario("one adapter unmerged")["merged_share"], 0.0);
+    assert_eq!(scenario("10 adapters mixed")["adapters"], 10);
+    let cold = &report["cold_start"];
+    assert_eq!(cold["probes"], 3);
+    assert_eq!(
+        cold["load_from_metrics"]["count"], 3.0,
+        "one load per probe"
+    );
+    assert!(cold["cold_to_warm_p50_ratio"].as_f64().unwrap() > 0.0);
+    // Memory was sampled from /metrics on both servers, the process's resident set included.
+    let memory = report["memory"].as_array().unwrap();
+    assert_eq!(memory.len(), 2);
+    for m in memory {
+        let last = m["samples"].as_array().unwrap().last().unwrap().clone();
+        assert!(last["process_bytes"].as_f64().unwrap() > 1e6, "{last}");
+    }
+    assert!(table.contains("one adapter merged"), "{table}");
+    assert!(table.contains("cold start"), "{table}");
+    assert_charts(&out, &CHARTS);
+}
+
+#[test]
+fn run_creates_synthetic_adapters_and_drives_both_loops() {
+    let server = ServerSetup::encoder().start();
+    let dir = tempfile::tempdir().unwrap();
+    let model = base_model_dir();
+    let url = server.url("");
+    let closed = dir.path().join("closed");
+    load_ok(
+        &[
+            "run",
+            "--url",
+            &url,
+            "--admin-token",
+            ADMIN_TOKEN,
+            "--adapter-prefix",
+            "syn-",
+            "--adapter-count",
+            "3",
+            "--create-adapters",
+            "--model",
+            model.to_str().unwrap(),
+            "--mix",
+            "embed=3,classify=1",
+            "--clients",
+            "2",
+            "--count",
+            "12",
+            "--warmup",
+            "0",
+            "--out",
+            closed.to_str().unwrap(),
+        ],
+        dir.path(),
+    );
+    let adapters = server.get("/admin/adapters", Auth::Admin).ok_json();
+    let listed = adapters.to_string();
+    for name in ["syn-0", "syn-1", "syn-2"] {
+        assert!(listed.contains(name), "{name} not published: {listed}");
+    }
+    let report = read_json(&closed.join("report.json"));
+    assert_no_failures(&report);
+    assert_eq!(report["scenarios"][0]["requests"], 12, "--count 12");
+    assert_eq!(report["scenarios"][0]["adapters"], 3);
+    assert_charts(&closed, &CHARTS);
+
+    // Open loop over the adapters just created, bounded by time.
+    let open = dir.path().join("open");
+    load_ok(
+        &[
+            "run",
+            "--url",
+            &url,
+            "--adapters",
+            "syn-0,syn-1,base",
+            "--rate",
+            "8",
+            "--duration",
+            "1500ms",
+            "--warmup",
+            "200ms",
+            "--out",
+            open.to_str().unwrap(),
+        ],
+        dir.path(),
+    );
+    let report = read_json(&open.join("report.json"));
+    assert_no_failures(&report);
+    let pacing = report["settings"]["pacing"].as_str().unwrap();
+    assert!(pacing.contains("scheduled send time"), "{pacing}");
+}
+
+#[test]
+fn bad_arguments_are_refused_with_the_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let refused = |args: &[&str], expected: &str| {
+        let mut all = vec!["run"];
+        all.extend_from_slice(args);
+        let out = load(&all, dir.path());
+        let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
+        assert!(!out.status.success(), "{args:?} was accepted");
+        assert!(stderr.contains(expected), "{args:?}: {stderr}");
+    };
+    let url = "http://127.0.0.1:1";
+    refused(
+        &["--url", url, "--mix", "embed=8,translate=1"],
+        "unknown mix entry \"translate\"",
+    );
+    refused(
+        &["--url", url, "--zipf", "0"],
+        "Zipf exponent must be a number above 0",
+    );
+    refused(&["--url", url, "--zipf", "-0.5"], "above 0");
+    refused(&["--url", url, "--rate", "0"], "rate must be above 0");
+    refused(&["--url", url, "--rate", "-3"], "rate must be above 0");
+    // A port nothing listens on: bound, then released.
+    let port = std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
+    let unreachable = format!("http://127.0.0.1:{port}");
+    refused(
+        &["--url", &unreachable, "--count", "1"],
+        &format!("cannot reach the server at {unreachable}"),
+    );
+}
