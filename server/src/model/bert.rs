@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use candle_core::{D, DType, Result, Tensor};
 use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
 use serde::Deserialize;
+use switchyard_adapters::kernels::{MatRef, Parallelism, gelu_erf_in_place, matmul_into, with_f32};
 use switchyard_adapters::{BaseSpec, Module, Site};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
@@ -132,33 +133,128 @@ impl Layer {
         [&self.q, &self.k, &self.v, &self.o, &self.up, &self.down]
     }
 
-    /// `x [b, t, h]`, `mask [b, 1, 1, t]` additive.
-    fn forward(&self, x: &Tensor, mask: &Tensor, adapters: &RowAdapters) -> Result<Tensor> {
+    /// `x [b, t, h]`; `key_bias [b, t]` is added to every score of that key (0 for a real
+    /// token, a large negative number for padding).
+    fn forward(&self, x: &Tensor, key_bias: &[f32], adapters: &RowAdapters) -> Result<Tensor> {
         let (b, t, h) = x.dims3()?;
-        let dh = h / self.heads;
-        let split = |y: Tensor| -> Result<Tensor> {
-            y.reshape((b, t, self.heads, dh))?
-                .transpose(1, 2)?
-                .contiguous()
-        };
-        let q = split(self.q.forward(x, adapters)?)?;
-        let k = split(self.k.forward(x, adapters)?)?;
-        let v = split(self.v.forward(x, adapters)?)?;
-        let scores = (q.matmul(&k.t()?)? / (dh as f64).sqrt())?.broadcast_add(mask)?;
-        let probs = candle_nn::ops::softmax_last_dim(&scores)?;
-        let ctx = probs.matmul(&v)?.transpose(1, 2)?.reshape((b, t, h))?;
+        let x = x.contiguous()?;
+        let (q, k, v) = with_f32(&x, |xs| -> Result<_> {
+            Ok((
+                self.q.forward_rows(xs, b * t, adapters)?,
+                self.k.forward_rows(xs, b * t, adapters)?,
+                self.v.forward_rows(xs, b * t, adapters)?,
+            ))
+        })??;
+        let ctx = attention(&q, &k, &v, key_bias, b, t, h, self.heads);
+        let ctx = Tensor::from_vec(ctx, (b, t, h), x.device())?;
+        let x = &x;
         let attn = self
             .attn_norm
             .forward(&(self.o.forward(&ctx, adapters)? + x)?)?;
-        let inner = self.up.forward(&attn, adapters)?;
         let inner = match self.act {
-            Activation::GeluErf => inner.gelu_erf()?,
-            Activation::GeluTanh => inner.gelu()?,
-            Activation::Relu => inner.relu()?,
+            Activation::GeluErf => {
+                // The projection and the exact GELU on one buffer, in place.
+                let attn = attn.contiguous()?;
+                let rows = b * t;
+                let mut inner = with_f32(&attn, |a| self.up.forward_rows(a, rows, adapters))??;
+                gelu_erf_in_place(&mut inner);
+                let width = inner.len() / rows.max(1);
+                Tensor::from_vec(inner, (b, t, width), attn.device())?
+            }
+            Activation::GeluTanh => self.up.forward(&attn, adapters)?.gelu()?,
+            Activation::Relu => self.up.forward(&attn, adapters)?.relu()?,
         };
         self.out_norm
             .forward(&(self.down.forward(&inner, adapters)? + attn)?)
     }
+}
+
+/// Multi-head self-attention over `q`, `k`, `v` `[b * t, h]` (heads side by side in each row),
+/// giving the context `[b * t, h]` in the same layout. Per sequence and head: the scores
+/// `Q K^T` by one gemm call on strided views (no transposed copies), the scale, key bias and
+/// softmax in place on the score rows, then `P V` by a second gemm call written straight into
+/// that head's columns of the output. Sequences run in parallel, one task each.
+#[allow(clippy::too_many_arguments)]
+fn attention(
+    q: &[f32],
+    k: &[f32],
+    v: &[f32],
+    key_bias: &[f32],
+    b: usize,
+    t: usize,
+    h: usize,
+    heads: usize,
+) -> Vec<f32> {
+    use rayon::prelude::*;
+    let dh = h / heads;
+    let scale = 1.0 / (dh as f32).sqrt();
+    let mut ctx = vec![0f32; b * t * h];
+    let one = |s: usize, out: &mut [f32]| {
+        let mut scores = vec![0f32; t * t];
+        let bias = &key_bias[s * t..(s + 1) * t];
+        let base = s * t * h;
+        for hd in 0..heads {
+            let off = base + hd * dh;
+            fn view(m: &[f32], off: usize, t: usize, dh: usize, h: usize) -> MatRef<'_> {
+                MatRef {
+                    data: &m[off..],
+                    rows: t,
+                    cols: dh,
+                    row_stride: h,
+                    col_stride: 1,
+                }
+            }
+            let keys_t = MatRef {
+                data: &k[off..],
+                rows: dh,
+                cols: t,
+                row_stride: 1,
+                col_stride: h,
+            };
+            matmul_into(
+                &mut scores,
+                t,
+                view(q, off, t, dh, h),
+                keys_t,
+                false,
+                scale,
+                Parallelism::None,
+            );
+            for row in scores.chunks_mut(t) {
+                let mut max = f32::NEG_INFINITY;
+                for (sc, &bi) in row.iter_mut().zip(bias) {
+                    *sc += bi;
+                    max = max.max(*sc);
+                }
+                let mut sum = 0f32;
+                for sc in row.iter_mut() {
+                    *sc = (*sc - max).exp();
+                    sum += *sc;
+                }
+                let inv = 1.0 / sum;
+                row.iter_mut().for_each(|sc| *sc *= inv);
+            }
+            matmul_into(
+                &mut out[hd * dh..],
+                h,
+                MatRef::row_major(&scores, t, t),
+                view(v, off, t, dh, h),
+                false,
+                1.0,
+                Parallelism::None,
+            );
+        }
+    };
+    if b * heads * t * t * dh < 1 << 18 {
+        ctx.chunks_mut(t * h)
+            .enumerate()
+            .for_each(|(s, out)| one(s, out));
+    } else {
+        ctx.par_chunks_mut(t * h)
+            .enumerate()
+            .for_each(|(s, out)| one(s, out));
+    }
+    ctx
 }
 
 /// A BERT-family encoder.
@@ -201,9 +297,11 @@ impl BertModel {
         let mut x = self.embeddings.forward(ids, &type_ids)?;
         // Additive mask: 0 where a key is a real token, a large negative number where it is padding.
         let (b, t) = mask.dims2()?;
-        let additive = ((mask.to_dtype(DType::F32)? - 1.0)? * 1e9)?.reshape((b, 1, 1, t))?;
+        let key_bias: Vec<f32> = ((mask.to_dtype(DType::F32)? - 1.0)? * 1e9)?
+            .reshape(b * t)?
+            .to_vec1()?;
         for layer in &self.layers {
-            x = layer.forward(&x, &additive, adapters)?;
+            x = layer.forward(&x, &key_bias, adapters)?;
         }
         Ok(x)
     }

@@ -182,6 +182,29 @@ impl AdaptedLinear {
             .reshape((rows, in_dim))?
             .to_dtype(DType::F32)?
             .contiguous()?;
+        let y = with_f32(&x2, |xs| self.forward_rows(xs, rows, adapters))??;
+        let mut out_dims = dims;
+        *out_dims.last_mut().unwrap() = out_dim;
+        Tensor::from_vec(y, out_dims, x.device())
+    }
+
+    /// [`Self::forward`] on a plain row-major `[rows, in]` slice, giving `[rows, out]` as a
+    /// vector: what model code that keeps activations in slices calls.
+    pub fn forward_rows(
+        &self,
+        xs: &[f32],
+        rows: usize,
+        adapters: &RowAdapters,
+    ) -> Result<Vec<f32>> {
+        let (out_dim, in_dim) = self.shape();
+        if rows != adapters.rows || xs.len() != rows * in_dim {
+            candle_core::bail!(
+                "{}: activation holds {} values, expected {} rows x {in_dim}",
+                self.site,
+                xs.len(),
+                adapters.rows
+            );
+        }
         let weight = adapters
             .merged
             .as_ref()
@@ -191,43 +214,39 @@ impl AdaptedLinear {
             Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
             None => vec![0f32; rows * out_dim],
         };
-        with_f32(&x2, |xs| -> Result<()> {
-            with_f32(weight, |w| {
-                if rows <= SMALL_ROWS {
-                    // Decode steps: one pass over the weight, no packing.
-                    small_rows_matmul(&mut y, xs, w, rows, in_dim, out_dim, self.bias.is_some());
-                } else {
-                    matmul_into(
-                        &mut y,
+        with_f32(weight, |w| {
+            if rows <= SMALL_ROWS {
+                // Decode steps: one pass over the weight, no packing.
+                small_rows_matmul(&mut y, xs, w, rows, in_dim, out_dim, self.bias.is_some());
+            } else {
+                matmul_into(
+                    &mut y,
+                    out_dim,
+                    MatRef::row_major(xs, rows, in_dim),
+                    MatRef::transposed(w, in_dim, out_dim),
+                    self.bias.is_some(),
+                    1.0,
+                    parallelism_for(rows, out_dim, in_dim),
+                )
+            }
+        })?;
+        SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
+            for group in &adapters.groups {
+                let Some(lr) = group.adapter.factors(&self.site) else {
+                    continue;
+                };
+                for run in &group.runs {
+                    lr.add_delta_into(
+                        &xs[run.start * in_dim..run.end * in_dim],
+                        run.len(),
+                        &mut y[run.start * out_dim..run.end * out_dim],
                         out_dim,
-                        MatRef::row_major(xs, rows, in_dim),
-                        MatRef::transposed(w, in_dim, out_dim),
-                        self.bias.is_some(),
-                        1.0,
-                        parallelism_for(rows, out_dim, in_dim),
-                    )
+                        scratch,
+                    )?;
                 }
-            })?;
-            SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
-                for group in &adapters.groups {
-                    let Some(lr) = group.adapter.factors(&self.site) else {
-                        continue;
-                    };
-                    for run in &group.runs {
-                        lr.add_delta_into(
-                            &xs[run.start * in_dim..run.end * in_dim],
-                            run.len(),
-                            &mut y[run.start * out_dim..run.end * out_dim],
-                            out_dim,
-                            scratch,
-                        )?;
-                    }
-                }
-                Ok(())
-            })
-        })??;
-        let mut out_dims = dims;
-        *out_dims.last_mut().unwrap() = out_dim;
-        Tensor::from_vec(y, out_dims, x.device())
+            }
+            Ok(())
+        })?;
+        Ok(y)
     }
 }

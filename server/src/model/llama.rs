@@ -8,9 +8,12 @@
 
 use std::collections::BTreeMap;
 
-use candle_core::{D, DType, Device, Result, Tensor};
+use candle_core::{DType, Result, Tensor};
 use candle_nn::{Embedding, Module as _, RmsNorm, VarBuilder};
 use serde::Deserialize;
+use switchyard_adapters::kernels::{
+    MatRef, SMALL_ROWS, axpy, dot, matmul_into, parallelism_for, small_rows_matmul, with_f32,
+};
 use switchyard_adapters::{BaseSpec, Module, Site};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
@@ -161,11 +164,68 @@ impl LlamaConfig {
     }
 }
 
-/// Keys and values of one sequence, per layer: `[kv_heads, len, head_dim]`.
+/// Keys and values of one sequence, per layer, in buffers with room to grow: each layer holds
+/// `[kv_heads, capacity, head_dim]` keys and values, of which the first `len` positions are
+/// filled. A step writes its new positions in place; only when a sequence outgrows the capacity
+/// does the layer move to a buffer twice as large (so a long generation copies its cache a
+/// logarithmic number of times, not once per token).
 #[derive(Debug, Clone, Default)]
 pub struct KvCache {
-    layers: Vec<Option<(Tensor, Tensor)>>,
+    layers: Vec<LayerCache>,
     len: usize,
+}
+
+/// The smallest capacity a layer's cache starts with, in positions.
+const INITIAL_CAPACITY: usize = 64;
+
+#[derive(Debug, Clone, Default)]
+struct LayerCache {
+    keys: Vec<f32>,
+    values: Vec<f32>,
+    capacity: usize,
+}
+
+impl LayerCache {
+    /// Makes room for `total` positions, keeping the first `filled` of each head.
+    fn reserve(&mut self, total: usize, filled: usize, heads: usize, dim: usize) {
+        if total <= self.capacity {
+            return;
+        }
+        let capacity = total.next_power_of_two().max(INITIAL_CAPACITY);
+        let grow = |old: &[f32], cap: usize| {
+            let mut new = vec![0f32; heads * capacity * dim];
+            for g in 0..heads {
+                new[g * capacity * dim..(g * capacity + filled) * dim]
+                    .copy_from_slice(&old[g * cap * dim..(g * cap + filled) * dim]);
+            }
+            new
+        };
+        self.keys = grow(&self.keys, self.capacity);
+        self.values = grow(&self.values, self.capacity);
+        self.capacity = capacity;
+    }
+
+    /// Writes `len` new positions from `past` on; `k` and `v` are `[len, heads * dim]`.
+    fn write(&mut self, past: usize, k: &[f32], v: &[f32], heads: usize, dim: usize) {
+        let len = k.len() / (heads * dim);
+        for j in 0..len {
+            for g in 0..heads {
+                let src = (j * heads + g) * dim;
+                let dst = (g * self.capacity + past + j) * dim;
+                self.keys[dst..dst + dim].copy_from_slice(&k[src..src + dim]);
+                self.values[dst..dst + dim].copy_from_slice(&v[src..src + dim]);
+            }
+        }
+    }
+
+    /// The first `len` keys and values of head `g`, `[len, dim]` each.
+    fn head(&self, g: usize, len: usize, dim: usize) -> (&[f32], &[f32]) {
+        let start = g * self.capacity * dim;
+        (
+            &self.keys[start..start + len * dim],
+            &self.values[start..start + len * dim],
+        )
+    }
 }
 
 impl KvCache {
@@ -178,23 +238,29 @@ impl KvCache {
         self.len == 0
     }
 
-    /// Bytes held by the cache.
+    /// Bytes held by the cache (its capacity, filled or not).
     pub fn bytes(&self) -> usize {
         self.layers
             .iter()
-            .flatten()
-            .map(|(k, v)| (k.elem_count() + v.elem_count()) * 4)
+            .map(|l| (l.keys.len() + l.values.len()) * 4)
             .sum()
+    }
+
+    /// Positions every layer has room for before it must grow.
+    pub fn capacity(&self) -> usize {
+        self.layers.iter().map(|l| l.capacity).min().unwrap_or(0)
     }
 }
 
+/// Rotary tables, `[positions, head_dim / 2]` each.
 struct Rotary {
-    cos: Tensor,
-    sin: Tensor,
+    cos: Vec<f32>,
+    sin: Vec<f32>,
+    half: usize,
 }
 
 impl Rotary {
-    fn new(cfg: &LlamaConfig, dev: &Device) -> Result<Self> {
+    fn new(cfg: &LlamaConfig) -> Result<Self> {
         let inv = cfg.inv_freq()?;
         let n = cfg.max_position_embeddings;
         let half = inv.len();
@@ -207,21 +273,27 @@ impl Rotary {
                 sin.push(angle.sin() as f32);
             }
         }
-        Ok(Self {
-            cos: Tensor::from_vec(cos, (n, half), dev)?,
-            sin: Tensor::from_vec(sin, (n, half), dev)?,
-        })
+        Ok(Self { cos, sin, half })
     }
 
-    /// Rotates `x [rows, heads, d]` by each row's position (the halves convention: the first
-    /// half of the head dimension pairs with the second).
-    fn apply(&self, x: &Tensor, cos: &Tensor, sin: &Tensor) -> Result<Tensor> {
-        let d = x.dim(D::Minus1)?;
-        let x1 = x.narrow(D::Minus1, 0, d / 2)?;
-        let x2 = x.narrow(D::Minus1, d / 2, d / 2)?;
-        let r1 = (x1.broadcast_mul(cos)? - x2.broadcast_mul(sin)?)?;
-        let r2 = (x2.broadcast_mul(cos)? + x1.broadcast_mul(sin)?)?;
-        Tensor::cat(&[r1, r2], D::Minus1)
+    /// Rotates `x [rows, heads, 2 * half]` in place by each row's position (the halves
+    /// convention: the first half of the head dimension pairs with the second).
+    fn apply(&self, x: &mut [f32], positions: &[u32], heads: usize) {
+        let half = self.half;
+        let d = 2 * half;
+        for (r, &p) in positions.iter().enumerate() {
+            let p = p as usize;
+            let cos = &self.cos[p * half..(p + 1) * half];
+            let sin = &self.sin[p * half..(p + 1) * half];
+            for h in 0..heads {
+                let (x1, x2) = x[(r * heads + h) * d..(r * heads + h + 1) * d].split_at_mut(half);
+                for i in 0..half {
+                    let (a, b) = (x1[i], x2[i]);
+                    x1[i] = a * cos[i] - b * sin[i];
+                    x2[i] = b * cos[i] + a * sin[i];
+                }
+            }
+        }
     }
 }
 
@@ -280,58 +352,31 @@ impl Block {
         spans: &[(usize, usize)],
         caches: &mut [&mut KvCache],
         rotary: &Rotary,
-        cos: &Tensor,
-        sin: &Tensor,
+        positions: &[u32],
         adapters: &RowAdapters,
     ) -> Result<Tensor> {
         let rows = x.dim(0)?;
         let (hq, hkv, d) = (self.heads, self.kv_heads, self.head_dim);
         let h = self.input_norm.forward(x)?;
-        let q = self.q.forward(&h, adapters)?.reshape((rows, hq, d))?;
-        let k = self.k.forward(&h, adapters)?.reshape((rows, hkv, d))?;
-        let v = self.v.forward(&h, adapters)?.reshape((rows, hkv, d))?;
-        let q = rotary.apply(&q, cos, sin)?;
-        let k = rotary.apply(&k, cos, sin)?;
-        let scale = 1.0 / (d as f64).sqrt();
-        let groups = hq / hkv;
-        let mut outs = Vec::with_capacity(spans.len());
+        let (mut q, mut k, v) = with_f32(&h, |hs| -> Result<_> {
+            Ok((
+                self.q.forward_rows(hs, rows, adapters)?,
+                self.k.forward_rows(hs, rows, adapters)?,
+                self.v.forward_rows(hs, rows, adapters)?,
+            ))
+        })??;
+        rotary.apply(&mut q, positions, hq);
+        rotary.apply(&mut k, positions, hkv);
         for (&(start, len), cache) in spans.iter().zip(caches.iter_mut()) {
-            let qi = q.narrow(0, start, len)?.transpose(0, 1)?.contiguous()?;
-            let ki = k.narrow(0, start, len)?.transpose(0, 1)?.contiguous()?;
-            let vi = v.narrow(0, start, len)?.transpose(0, 1)?.contiguous()?;
             let past = cache.len;
-            let (k_all, v_all) = match &cache.layers[layer] {
-                Some((pk, pv)) => (Tensor::cat(&[pk, &ki], 1)?, Tensor::cat(&[pv, &vi], 1)?),
-                None => (ki, vi),
-            };
-            cache.layers[layer] = Some((k_all.clone(), v_all.clone()));
-            let total = past + len;
-            let (k_rep, v_rep) = if groups == 1 {
-                (k_all, v_all)
-            } else {
-                let rep = |t: Tensor| -> Result<Tensor> {
-                    t.unsqueeze(1)?
-                        .expand((hkv, groups, total, d))?
-                        .reshape((hq, total, d))
-                };
-                (rep(k_all)?, rep(v_all)?)
-            };
-            let mut scores = (qi.matmul(&k_rep.t()?)? * scale)?;
-            if len > 1 {
-                scores = scores.broadcast_add(&causal_mask(len, past, x.device())?)?;
-            }
-            let probs = candle_nn::ops::softmax_last_dim(&scores)?;
-            let out = probs
-                .matmul(&v_rep)?
-                .transpose(0, 1)?
-                .reshape((len, hq * d))?;
-            outs.push(out);
+            let lc = &mut cache.layers[layer];
+            lc.reserve(past + len, past, hkv, d);
+            let span = start * hkv * d..(start + len) * hkv * d;
+            lc.write(past, &k[span.clone()], &v[span], hkv, d);
         }
-        let attn = if outs.len() == 1 {
-            outs.pop().unwrap()
-        } else {
-            Tensor::cat(&outs, 0)?
-        };
+        let caches: Vec<&KvCache> = caches.iter().map(|c| &**c).collect();
+        let attn = attention(&q, spans, &caches, layer, hq, hkv, d);
+        let attn = Tensor::from_vec(attn, (rows, hq * d), x.device())?;
         let x = (x + self.o.forward(&attn, adapters)?)?;
         let h = self.post_norm.forward(&x)?;
         let gated = (self.gate.forward(&h, adapters)?.silu()? * self.up.forward(&h, adapters)?)?;
@@ -339,13 +384,86 @@ impl Block {
     }
 }
 
-/// `[len, past + len]` additive mask: query j (at position past + j) sees keys 0..=past + j.
-fn causal_mask(len: usize, past: usize, dev: &Device) -> Result<Tensor> {
-    let total = past + len;
-    let mask: Vec<f32> = (0..len)
-        .flat_map(|j| (0..total).map(move |l| if l > past + j { f32::NEG_INFINITY } else { 0.0 }))
-        .collect();
-    Tensor::from_vec(mask, (len, total), dev)
+/// Causal attention of every new row over its own sequence's cache (which already holds the
+/// new positions): `q [rows, heads, d]` → `[rows, heads * d]`. One task per query head; each
+/// score row is a dot product per cached position, softmaxed in place, and the output a sum of
+/// value rows weighted by it, all on plain slices (no temporary tensors, no mask).
+fn attention(
+    q: &[f32],
+    spans: &[(usize, usize)],
+    caches: &[&KvCache],
+    layer: usize,
+    hq: usize,
+    hkv: usize,
+    d: usize,
+) -> Vec<f32> {
+    use rayon::prelude::*;
+    let rows = q.len() / (hq * d);
+    let groups = hq / hkv;
+    let scale = 1.0 / (d as f32).sqrt();
+    let longest = spans
+        .iter()
+        .zip(caches)
+        .map(|(&(_, len), c)| c.len + len)
+        .max()
+        .unwrap_or(0);
+    // Head-major while computing, so each task owns one contiguous block.
+    let mut by_head = vec![0f32; hq * rows * d];
+    let one_head = |h: usize, out: &mut [f32]| {
+        let g = h / groups;
+        let mut scores = vec![0f32; longest];
+        for (&(start, len), cache) in spans.iter().zip(caches) {
+            let past = cache.len;
+            let (keys, values) = cache.layers[layer].head(g, past + len, d);
+            for j in 0..len {
+                let row = start + j;
+                let qr = &q[(row * hq + h) * d..(row * hq + h + 1) * d];
+                let seen = past + j + 1;
+                let s = &mut scores[..seen];
+                let mut max = f32::NEG_INFINITY;
+                for (l, sl) in s.iter_mut().enumerate() {
+                    *sl = dot(qr, &keys[l * d..(l + 1) * d]) * scale;
+                    max = max.max(*sl);
+                }
+                let mut sum = 0f32;
+                for sl in s.iter_mut() {
+                    *sl = (*sl - max).exp();
+                    sum += *sl;
+                }
+                let o = &mut out[row * d..(row + 1) * d];
+                o.fill(0.0);
+                for (l, &p) in s.iter().enumerate() {
+                    axpy(o, p / sum, &values[l * d..(l + 1) * d]);
+                }
+            }
+        }
+    };
+    let work: usize = spans
+        .iter()
+        .zip(caches)
+        .map(|(&(_, len), c)| len * (c.len + len))
+        .sum::<usize>()
+        * hq
+        * d;
+    if work < 1 << 16 {
+        by_head
+            .chunks_mut(rows * d)
+            .enumerate()
+            .for_each(|(h, out)| one_head(h, out));
+    } else {
+        by_head
+            .par_chunks_mut(rows * d)
+            .enumerate()
+            .for_each(|(h, out)| one_head(h, out));
+    }
+    let mut out = vec![0f32; rows * hq * d];
+    for h in 0..hq {
+        for r in 0..rows {
+            out[(r * hq + h) * d..(r * hq + h + 1) * d]
+                .copy_from_slice(&by_head[(h * rows + r) * d..(h * rows + r + 1) * d]);
+        }
+    }
+    out
 }
 
 /// A Llama-family decoder.
@@ -379,7 +497,8 @@ impl LlamaModel {
         } else {
             vb.get((cfg.vocab_size, cfg.hidden_size), "lm_head.weight")?
         };
-        let rotary = Rotary::new(cfg, vb.device())?;
+        let lm_head = lm_head.to_dtype(DType::F32)?.contiguous()?;
+        let rotary = Rotary::new(cfg)?;
         Ok(Self {
             embed,
             blocks,
@@ -393,7 +512,7 @@ impl LlamaModel {
     /// A cache for one new sequence.
     pub fn new_cache(&self) -> KvCache {
         KvCache {
-            layers: vec![None; self.blocks.len()],
+            layers: vec![LayerCache::default(); self.blocks.len()],
             len: 0,
         }
     }
@@ -431,9 +550,6 @@ impl LlamaModel {
         }
         let rows = ids.len();
         let ids = Tensor::from_vec(ids, rows, &dev)?;
-        let pos = Tensor::from_vec(positions, rows, &dev)?;
-        let cos = self.rotary.cos.index_select(&pos, 0)?.unsqueeze(1)?;
-        let sin = self.rotary.sin.index_select(&pos, 0)?.unsqueeze(1)?;
         let mut x = self.embed.forward(&ids)?;
         for (layer, block) in self.blocks.iter().enumerate() {
             x = block.forward(
@@ -442,8 +558,7 @@ impl LlamaModel {
                 &spans,
                 caches,
                 &self.rotary,
-                &cos,
-                &sin,
+                &positions,
                 adapters,
             )?;
         }
@@ -455,7 +570,28 @@ impl LlamaModel {
 
     /// Logits `[rows, vocab]` of hidden states `[rows, hidden]`.
     pub fn logits(&self, hidden: &Tensor) -> Result<Tensor> {
-        hidden.matmul(&self.lm_head.t()?)?.to_dtype(DType::F32)
+        let (rows, h) = hidden.dims2()?;
+        let vocab = self.config.vocab_size;
+        let hidden = hidden.to_dtype(DType::F32)?.contiguous()?;
+        let mut out = vec![0f32; rows * vocab];
+        with_f32(&hidden, |x| {
+            with_f32(&self.lm_head, |w| {
+                if rows <= SMALL_ROWS {
+                    small_rows_matmul(&mut out, x, w, rows, h, vocab, false);
+                } else {
+                    matmul_into(
+                        &mut out,
+                        vocab,
+                        MatRef::row_major(x, rows, h),
+                        MatRef::transposed(w, h, vocab),
+                        false,
+                        1.0,
+                        parallelism_for(rows, vocab, h),
+                    );
+                }
+            })
+        })??;
+        Tensor::from_vec(out, (rows, vocab), hidden.device())
     }
 
     /// Logits of the last new token of each sequence, `[sequences, vocab]`.
@@ -500,5 +636,150 @@ impl LlamaModel {
             .into_iter()
             .find(|l| l.site() == *site)
             .map(|l| l.weight().clone())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use candle_core::Device;
+
+    fn values(n: usize, seed: u64, scale: f32) -> Vec<f32> {
+        let mut x = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
+        (0..n)
+            .map(|_| {
+                x ^= x << 13;
+                x ^= x >> 7;
+                x ^= x << 17;
+                ((x >> 40) as f32 / (1u64 << 24) as f32 * 2.0 - 1.0) * scale
+            })
+            .collect()
+    }
+
+    /// A tiny random decoder: 2 layers, 4 query heads over 2 key/value heads, 200 positions.
+    fn tiny() -> LlamaModel {
+        let cfg: LlamaConfig = serde_json::from_value(serde_json::json!({
+            "vocab_size": 50, "hidden_size": 32, "intermediate_size": 48,
+            "num_hidden_layers": 2, "num_attention_heads": 4, "num_key_value_heads": 2,
+            "max_position_embeddings": 200, "rope_theta": 10000.0
+        }))
+        .unwrap();
+        let mut tensors = std::collections::HashMap::new();
+        let mut seed = 0;
+        let mut put = |name: String, shape: &[usize], scale: f32| {
+            seed += 1;
+            let n = shape.iter().product();
+            let t = Tensor::from_vec(values(n, seed, scale), shape, &Device::Cpu).unwrap();
+            tensors.insert(name, t);
+        };
+        put("model.embed_tokens.weight".into(), &[50, 32], 1.0);
+        put("lm_head.weight".into(), &[50, 32], 0.3);
+        put("model.norm.weight".into(), &[32], 1.0);
+        for l in 0..2 {
+            let p = format!("model.layers.{l}");
+            for (n, shape) in [
+                ("self_attn.q_proj", [32, 32]),
+                ("self_attn.k_proj", [16, 32]),
+                ("self_attn.v_proj", [16, 32]),
+                ("self_attn.o_proj", [32, 32]),
+                ("mlp.gate_proj", [48, 32]),
+                ("mlp.up_proj", [48, 32]),
+                ("mlp.down_proj", [32, 48]),
+            ] {
+                put(format!("{p}.{n}.weight"), &shape, 0.4);
+            }
+            put(format!("{p}.input_layernorm.weight"), &[32], 1.0);
+            put(format!("{p}.post_attention_layernorm.weight"), &[32], 1.0);
+        }
+        LlamaModel::new(
+            &cfg,
+            VarBuilder::from_tensors(tensors, DType::F32, &Device::Cpu),
+        )
+        .unwrap()
+    }
+
+    fn max_abs(a: &[f32], b: &[f32]) -> f32 {
+        a.iter()
+            .zip(b)
+            .map(|(x, y)| (x - y).abs())
+            .fold(0.0, f32::max)
+    }
+
+    #[test]
+    fn a_cache_grown_token_by_token_past_its_capacity_gives_the_full_sequence_logits() {
+        let model = tiny();
+        let tokens: Vec<u32> = (0..150).map(|i| (i * 7 % 50) as u32).collect();
+        // The whole sequence at once: one cache sized for it, causal attention inside the step.
+        let mut whole = model.new_cache();
+        let hidden = model
+            .forward_hidden(&[&tokens], &mut [&mut whole], &RowAdapters::base(150))
+            .unwrap();
+        let want: Vec<Vec<f32>> = model.logits(&hidden).unwrap().to_vec2().unwrap();
+        assert_eq!(whole.capacity(), 256);
+
+        // A short prompt, then one token per step: the cache starts at 64 positions and moves
+        // to 128 and then 256 on the way, keeping what it held.
+        let mut cache = model.new_cache();
+        let first = model
+            .forward_last(&[&tokens[..10]], &mut [&mut cache], &RowAdapters::base(10))
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        assert_eq!(cache.capacity(), INITIAL_CAPACITY);
+        assert!(max_abs(&first[0], &want[9]) < 1e-4);
+        let mut capacities = vec![cache.capacity()];
+        for (p, t) in tokens.iter().enumerate().skip(10) {
+            let got = model
+                .forward_last(&[&[*t]], &mut [&mut cache], &RowAdapters::base(1))
+                .unwrap()
+                .to_vec2::<f32>()
+                .unwrap();
+            let d = max_abs(&got[0], &want[p]);
+            assert!(d < 1e-4, "position {p}: logits differ by {d}");
+            if capacities.last() != Some(&cache.capacity()) {
+                capacities.push(cache.capacity());
+            }
+        }
+        assert_eq!(cache.len(), 150);
+        assert_eq!(capacities, vec![64, 128, 256]);
+        assert_eq!(cache.bytes(), 2 * 2 * (2 * 256 * 8) * 4);
+    }
+
+    #[test]
+    fn a_ragged_batch_step_equals_each_sequence_stepped_alone() {
+        let model = tiny();
+        let a: Vec<u32> = (0..70).map(|i| (i * 3 % 50) as u32).collect();
+        let b: Vec<u32> = (0..5).map(|i| (i * 11 % 50) as u32).collect();
+        let (mut ca, mut cb) = (model.new_cache(), model.new_cache());
+        model
+            .forward_last(&[&a], &mut [&mut ca], &RowAdapters::base(70))
+            .unwrap();
+        model
+            .forward_last(&[&b], &mut [&mut cb], &RowAdapters::base(5))
+            .unwrap();
+        let (mut sa, mut sb) = (ca.clone(), cb.clone());
+        // One decode token for the first, three new tokens for the second, in one pass.
+        let together = model
+            .forward_last(
+                &[&[4], &[5, 6, 7]],
+                &mut [&mut ca, &mut cb],
+                &RowAdapters::base(4),
+            )
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        let alone_a = model
+            .forward_last(&[&[4]], &mut [&mut sa], &RowAdapters::base(1))
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        let alone_b = model
+            .forward_last(&[&[5, 6, 7]], &mut [&mut sb], &RowAdapters::base(3))
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        assert!(max_abs(&together[0], &alone_a[0]) < 1e-5);
+        assert!(max_abs(&together[1], &alone_b[0]) < 1e-5);
+        assert_eq!((ca.len(), cb.len()), (71, 8));
     }
 }
