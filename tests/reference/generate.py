@@ -26,8 +26,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 os.environ.setdefault("CUDA_VISIBLE_DEVICES", "")
 
@@ -350,7 +348,7 @@ def generate_minilm(base_dir: Path) -> dict:
     fp = base_fingerprint(base_dir)
     print(f"[minilm] base model {base_dir}")
     print(f"[minilm] base_fingerprint {fp}")
-    st = SentenceTransformer(str(base_dir), device="cpu")
+    st = SentenceTransformer(str(base_dir), device="cpu", local_files_only=True)
     st.eval()
     mods = list(st._modules.values())
     names = [type(m).__name__ for m in mods]
@@ -414,7 +412,7 @@ def write_bench_inputs(base_dir: Path) -> None:
     (counting [CLS] and [SEP])."""
     from transformers import AutoTokenizer
 
-    tok = AutoTokenizer.from_pretrained(str(base_dir))
+    tok = AutoTokenizer.from_pretrained(str(base_dir), local_files_only=True)
     rng = random.Random(4242)
     target = 64
 
@@ -637,7 +635,7 @@ def generate_tiny(name: str, spec: dict, tk: Tokenizer, native_style: dict) -> d
 
     # Reload from disk: proves the written config (including the hand-written rope spelling) and
     # checkpoint reproduce the in-memory model.
-    reloaded = LlamaForCausalLM.from_pretrained(str(out_dir), attn_implementation="eager").eval()
+    reloaded = LlamaForCausalLM.from_pretrained(str(out_dir), attn_implementation="eager", local_files_only=True).eval()
     assert reloaded.config.rope_parameters["rope_theta"] == c["rope_theta"], reloaded.config.rope_parameters
 
     fp = base_fingerprint(out_dir)

@@ -13,23 +13,15 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import statistics
 import sys
 import time
-from pathlib import Path
 
-os.environ.setdefault("HF_HUB_OFFLINE", "1")
-os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
-os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
-os.environ.setdefault("CUDA_VISIBLE_DEVICES", "")
+from local_setup import HERE, THREADS, base_model_dir  # before torch: it sets the CPU-only environment
 
 import torch  # noqa: E402
 from sentence_transformers import SentenceTransformer  # noqa: E402
 
-HERE = Path(__file__).resolve().parent
-REPO = HERE.parent.parent
-THREADS = 2
 
 
 def main() -> None:
@@ -38,14 +30,11 @@ def main() -> None:
     args = ap.parse_args()
 
     torch.set_num_threads(THREADS)
-    env = os.environ.get("SWITCHYARD_BASE_MODEL_DIR")
-    model_dir = Path(env) if env else REPO / "models" / "all-minilm-l6-v2"
-    if not (model_dir / "model.safetensors").exists():
-        sys.exit(f"time_embed: no model at {model_dir}; run scripts/fetch-base-model.sh first")
+    model_dir = base_model_dir("time_embed")
     lines = (HERE / "fixtures" / "bench-inputs.txt").read_text().splitlines()
     assert len(lines) == 256, len(lines)
 
-    model = SentenceTransformer(str(model_dir), device="cpu")
+    model = SentenceTransformer(str(model_dir), device="cpu", local_files_only=True)
     model.eval()
     counts = [len(ids) for ids in model.tokenizer(lines)["input_ids"]]
     mean_tokens = sum(counts) / len(counts)
