@@ -26,10 +26,7 @@ pub struct ServerConfig {
 }
 
 impl ServerConfig {
-    /// Defaults of the example config, with merging on or off. Off is a merged budget of 0 and
-    /// the longest promotion window the config takes (a million rows, far more than a scenario
-    /// sends), so the policy never promotes: a budget of 0 alone still let the engine build and
-    /// run a merged variant for each batch of a dominant adapter.
+    /// Defaults of the example config, with merging on or off; off is a merged budget of 0.
     pub fn new(model_dir: &Path, store_dir: &Path, merging: bool) -> Self {
         Self {
             model_dir: model_dir.to_owned(),
@@ -38,7 +35,7 @@ impl ServerConfig {
             merged_budget_bytes: if merging { 2 << 30 } else { 0 },
             factor_budget_bytes: 1 << 30,
             promote_share: 0.9,
-            promote_window_rows: if merging { 512 } else { 1_000_000 },
+            promote_window_rows: 512,
             queue_depth: 256,
         }
     }
@@ -174,7 +171,7 @@ mod tests {
              [store]\ndir = \"/t/store\"\n\n\
              [engine]\nqueue_depth = 256\n\n\
              [residency]\nfactor_budget_bytes = 1073741824\nmerged_budget_bytes = 0\n\
-             promote_share = 0.9\npromote_window_rows = 1000000\n\n\
+             promote_share = 0.9\npromote_window_rows = 512\n\n\
              [admin]\ntoken = \"load-test-admin-token-0123456789\"\n\n\
              [log]\nfilter = \"warn\"\n"
         );

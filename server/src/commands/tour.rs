@@ -15,6 +15,8 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, bail, ensure};
 use serde_json::{Value, json};
 
+use crate::http::auth::pattern_matches;
+
 #[derive(Debug, Clone, clap::Args)]
 pub struct TourArgs {
     /// Address of the running server.
@@ -169,7 +171,7 @@ fn credentials(config: &Path) -> anyhow::Result<Credentials> {
         .clone()
         .context("the config has no admin token; the tour needs the admin API")?;
     let allows = |t: &switchyard_config::TenantSettings, name: &str| {
-        t.adapters.iter().any(|p| glob_matches(p, name))
+        t.adapters.iter().any(|p| pattern_matches(p, name))
     };
     let owner = settings
         .tenants
@@ -192,21 +194,6 @@ fn credentials(config: &Path) -> anyhow::Result<Credentials> {
         owner: owner.keys[0].clone(),
         other,
     })
-}
-
-/// `*` matches any run of characters, as in the config's tenant patterns.
-fn glob_matches(pattern: &str, name: &str) -> bool {
-    match pattern.split_once('*') {
-        None => pattern == name,
-        Some((head, rest)) => {
-            let Some(tail) = name.strip_prefix(head) else {
-                return false;
-            };
-            (0..=tail.len())
-                .filter(|&i| tail.is_char_boundary(i))
-                .any(|i| glob_matches(rest, &tail[i..]))
-        }
-    }
 }
 
 pub fn run(args: &TourArgs, out: &mut impl Write) -> anyhow::Result<()> {
@@ -583,15 +570,6 @@ fn show_metrics(client: &Client, out: &mut impl Write) -> anyhow::Result<()> {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn tenant_patterns_match_as_the_config_documents() {
-        assert!(glob_matches("north-*", "north-routing"));
-        assert!(!glob_matches("north-*", "south-routing"));
-        assert!(glob_matches("shared-faq", "shared-faq"));
-        assert!(glob_matches("*-faq", "shared-faq"));
-        assert!(!glob_matches("shared-faq", "shared-faqs"));
-    }
 
     #[test]
     fn prometheus_samples_are_read_with_their_labels() {

@@ -51,7 +51,7 @@ impl Tenant {
             || self
                 .patterns
                 .iter()
-                .any(|p| wildcard_match(p.as_bytes(), adapter_or_split_name.as_bytes()))
+                .any(|p| pattern_matches(p, adapter_or_split_name))
     }
 
     /// The configured patterns (`*` matches any run of characters).
@@ -171,6 +171,11 @@ fn bearer_token(header: Option<&str>) -> Option<&str> {
     let (scheme, token) = header?.trim().split_once([' ', '\t'])?;
     let token = token.trim();
     (scheme.eq_ignore_ascii_case("bearer") && !token.is_empty()).then_some(token)
+}
+
+/// Whether a tenant pattern of the config (`north-*`) matches an adapter or split name.
+pub fn pattern_matches(pattern: &str, name: &str) -> bool {
+    wildcard_match(pattern.as_bytes(), name.as_bytes())
 }
 
 /// Whether `name` matches `pattern`, where `*` matches any run of bytes (the empty one too) and

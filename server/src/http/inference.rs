@@ -58,14 +58,17 @@ fn registry_error(e: RegistryError, name: &str) -> ApiError {
 
 /// Resolves the request's adapter or split for `tenant`, refusing what the tenant may not use
 /// with the same answer whether the adapter exists or not.
-pub async fn route(
+async fn route(
     state: &SharedState,
     tenant: &Tenant,
-    adapter: Option<&str>,
-    split: Option<&str>,
-    subject: Option<&str>,
+    target: Target<'_>,
     response_id: &str,
 ) -> Result<Routed, ApiError> {
+    let Target {
+        adapter,
+        split,
+        subject,
+    } = target;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
             return Err(ApiError::bad_request(
@@ -148,6 +151,57 @@ pub async fn route(
         split: split_arm,
         swap: start.elapsed(),
     })
+}
+
+/// What a request body names: an adapter or a split, and the subject of a sticky assignment.
+#[derive(Clone, Copy)]
+struct Target<'a> {
+    adapter: Option<&'a str>,
+    split: Option<&'a str>,
+    subject: Option<&'a str>,
+}
+
+impl<'a> Target<'a> {
+    fn of(
+        adapter: &'a Option<String>,
+        split: &'a Option<String>,
+        subject: &'a Option<String>,
+    ) -> Self {
+        Self {
+            adapter: adapter.as_deref(),
+            split: split.as_deref(),
+            subject: subject.as_deref(),
+        }
+    }
+}
+
+/// What the engine's job needs from admission: who serves it, and the request's clock (started
+/// before the adapter was resolved, so the swap counts) and deadline.
+struct Admission {
+    adapter: Option<AdapterHandle>,
+    admitted: Instant,
+    swap: Duration,
+    deadline: Instant,
+}
+
+/// Routes the request to `adapter@version` and submits the job `job` builds (429 when the
+/// engine's queue is full). Both inference paths admit through here.
+async fn admit(
+    state: &SharedState,
+    tenant: &Tenant,
+    target: Target<'_>,
+    response_id: &str,
+    job: impl FnOnce(Admission) -> Job,
+) -> Result<Routed, ApiError> {
+    let routed = route(state, tenant, target, response_id).await?;
+    let admitted = Instant::now() - routed.swap;
+    state.engine.try_submit(job(Admission {
+        adapter: routed.handle.clone(),
+        admitted,
+        swap: routed.swap,
+        deadline: admitted + state.limits.timeout,
+    }))?;
+    Ok(routed)
 }
 
 fn ms(d: Duration) -> f64 {
@@ -254,25 +308,19 @@ async fn run_embed(
             ),
         ));
     }
-    let routed = route(
-        state,
-        &tenant,
-        body.adapter.as_deref(),
-        body.split.as_deref(),
-        body.subject.as_deref(),
-        id,
-    )
-    .await?;
     let (reply, rx) = oneshot::channel();
-    let admitted = Instant::now() - routed.swap;
-    state.engine.try_submit(Job::Embed(EmbedJob {
-        ids,
-        adapter: routed.handle.clone(),
-        admitted,
-        swap: routed.swap,
-        deadline: admitted + state.limits.timeout,
-        reply,
-    }))?;
+    let target = Target::of(&body.adapter, &body.split, &body.subject);
+    let routed = admit(state, &tenant, target, id, |a| {
+        Job::Embed(EmbedJob {
+            ids,
+            adapter: a.adapter,
+            admitted: a.admitted,
+            swap: a.swap,
+            deadline: a.deadline,
+            reply,
+        })
+    })
+    .await?;
     let out = rx
         .await
         .map_err(|_| ApiError::from(EngineError::ShuttingDown))??;
@@ -514,27 +562,21 @@ async fn start_generation(
             ),
         ));
     }
-    let routed = route(
-        state,
-        &tenant,
-        body.adapter.as_deref(),
-        body.split.as_deref(),
-        body.subject.as_deref(),
-        id,
-    )
-    .await?;
     let (tx, rx) = mpsc::unbounded_channel();
-    let admitted = Instant::now() - routed.swap;
-    state.engine.try_submit(Job::Generate(GenerateJob {
-        prompt_ids,
-        adapter: routed.handle.clone(),
-        sampling,
-        limit,
-        admitted,
-        swap: routed.swap,
-        deadline: admitted + state.limits.timeout,
-        events: tx,
-    }))?;
+    let target = Target::of(&body.adapter, &body.split, &body.subject);
+    let routed = admit(state, &tenant, target, id, |a| {
+        Job::Generate(GenerateJob {
+            prompt_ids,
+            adapter: a.adapter,
+            sampling,
+            limit,
+            admitted: a.admitted,
+            swap: a.swap,
+            deadline: a.deadline,
+            events: tx,
+        })
+    })
+    .await?;
     Ok((routed, rx))
 }
 
