@@ -147,6 +147,8 @@ pub(crate) struct Inner {
     store: Store,
     spec: BaseSpec,
     base_weights: Option<Box<dyn BaseWeights>>,
+    /// Base weights to merge into and a merged budget above 0; fixed for the registry's life.
+    merging: bool,
     state: Mutex<State>,
     loads: AtomicU64,
     merges: AtomicU64,
@@ -181,6 +183,7 @@ impl Registry {
             inner: Arc::new(Inner {
                 store,
                 spec,
+                merging: base_weights.is_some() && config.merged_budget_bytes > 0,
                 base_weights,
                 state: Mutex::new(state),
                 loads: AtomicU64::new(0),
@@ -237,7 +240,7 @@ impl Registry {
 
     /// Whether merged variants may be built: a merged budget of 0 bytes turns merging off.
     pub fn merging_enabled(&self) -> bool {
-        self.inner.base_weights.is_some() && self.inner.state.lock().merged.lru.budget() > 0
+        self.inner.merging
     }
 
     /// The merged variant of the version `handle` holds, building it on first use.
