@@ -153,75 +153,173 @@ pub fn matmul_into(
     }
 }
 
-/// Up to this many rows, `x W^T` runs as dot products against each weight row (see
-/// [`small_rows_matmul`]) instead of through gemm, which packs the whole weight first.
-pub const SMALL_ROWS: usize = 16;
+thread_local! {
+    /// Per-thread scratch of [`packed_matmul`]'s few-rows path, reused so a call allocates
+    /// nothing in steady state.
+    static ROWS_SCRATCH: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+}
 
-/// `y[m, n] = (accumulate ? y : 0) + x[m, k] W[n, k]^T` for few rows (decode steps): every weight
-/// row is read from memory once and used for all `m` input rows while it sits in cache, so the
-/// cost is one pass over the weights, the floor a memory-bound product can reach.
+/// Output columns per panel of a [`PackedWeight`]: two AVX2 vectors.
+pub const PANEL: usize = 16;
+/// Input rows per register tile: 6 rows x 2 vectors is 12 accumulators, which with the two
+/// weight vectors and one broadcast fills the 16 AVX2 registers.
+const TILE_ROWS: usize = 6;
+/// Inner-dimension block: one panel's slice of it (384 x 16 floats, 24 KB) stays in L1 while
+/// every row tile of a task passes over it.
+const BLOCK_K: usize = 384;
+/// Inner-dimension block when all rows fit one row block (decode): 128 x 16 floats (8 KB).
+const SMALL_BLOCK_K: usize = 128;
+/// Rows per task: 72 x 384 floats of input (108 KB) stay in L2 while every panel passes.
+const BLOCK_ROWS: usize = 72;
+
+/// A weight `W [out, in]` stored for [`packed_matmul`]: in panels of [`PANEL`] output rows, and
+/// inside a panel input-major, so the kernel reads each panel front to back as one stream (16
+/// consecutive floats per input feature) and uses every value it loads for a whole row tile.
+/// Packed once when the model loads (or when a merged variant is built), so no call packs
+/// anything. The last panel is padded with zeros.
+#[derive(Clone)]
+pub struct PackedWeight {
+    data: Vec<f32>,
+    out: usize,
+    inp: usize,
+}
+
+impl std::fmt::Debug for PackedWeight {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "PackedWeight [{} x {}]", self.out, self.inp)
+    }
+}
+
+impl PackedWeight {
+    /// Packs a row-major `w [out, inp]`.
+    pub fn pack(w: &[f32], out: usize, inp: usize) -> Self {
+        assert!(w.len() >= out * inp, "weight does not fit its slice");
+        let panels = out.div_ceil(PANEL);
+        let mut data = vec![0f32; panels * PANEL * inp];
+        for (p, panel) in data.chunks_mut(PANEL * inp.max(1)).enumerate().take(panels) {
+            for c in 0..PANEL.min(out - p * PANEL) {
+                let row = &w[(p * PANEL + c) * inp..(p * PANEL + c + 1) * inp];
+                for (kk, &v) in row.iter().enumerate() {
+                    panel[kk * PANEL + c] = v;
+                }
+            }
+        }
+        Self { data, out, inp }
+    }
+
+    /// Packs a contiguous f32 CPU tensor `[out, inp]`.
+    pub fn from_tensor(w: &candle_core::Tensor) -> candle_core::Result<Self> {
+        let (out, inp) = w.dims2()?;
+        let w = w.to_dtype(candle_core::DType::F32)?.contiguous()?;
+        with_f32(&w, |d| Self::pack(d, out, inp))
+    }
+
+    /// The row-major `[out, inp]` matrix again.
+    pub fn unpack(&self) -> Vec<f32> {
+        let (out, inp) = (self.out, self.inp);
+        let mut w = vec![0f32; out * inp];
+        for (p, panel) in self.data.chunks(PANEL * inp.max(1)).enumerate() {
+            for c in 0..PANEL.min(out.saturating_sub(p * PANEL)) {
+                let row = &mut w[(p * PANEL + c) * inp..(p * PANEL + c + 1) * inp];
+                for (kk, v) in row.iter_mut().enumerate() {
+                    *v = panel[kk * PANEL + c];
+                }
+            }
+        }
+        w
+    }
+
+    /// The row-major matrix as a tensor `[out, inp]`.
+    pub fn to_tensor(&self) -> candle_core::Result<candle_core::Tensor> {
+        candle_core::Tensor::from_vec(
+            self.unpack(),
+            (self.out, self.inp),
+            &candle_core::Device::Cpu,
+        )
+    }
+
+    pub fn out_features(&self) -> usize {
+        self.out
+    }
+
+    pub fn in_features(&self) -> usize {
+        self.inp
+    }
+
+    /// Bytes held, padding included.
+    pub fn resident_bytes(&self) -> usize {
+        self.data.len() * 4
+    }
+}
+
+/// `y[m, out] = (accumulate ? y : 0) + x[m, in] W^T` with `W` packed (see [`PackedWeight`]): the
+/// one product every projection runs, from a decode step's single row to a prefill of thousands.
 ///
-/// The inner loop is register-blocked: a tile of up to 4 input rows by 3 to 6 weight rows keeps
-/// one vector accumulator per (row, weight row) pair, so each weight vector loaded is used for
-/// every row of the tile and each input vector for every weight row. Output columns are split
-/// across the rayon pool when the product is large enough to pay for it; the blocks go to one
-/// reused scratch buffer, so a call allocates nothing in steady state. Uses AVX2+FMA when the CPU
-/// has them (checked at run time), portable code otherwise; `SWITCHYARD_KERNELS=portable` forces
-/// the portable path.
-pub fn small_rows_matmul(
-    y: &mut [f32],
-    x: &[f32],
-    w: &[f32],
-    m: usize,
-    k: usize,
-    n: usize,
-    accumulate: bool,
-) {
+/// Register tiles of up to 6 rows by 16 columns (12 vector accumulators, AVX2+FMA when the CPU
+/// has them, portable code that the compiler vectorises otherwise); the inner dimension goes in
+/// blocks of 384 so a panel's block stays in L1 while every row tile passes over it, and rows go
+/// in blocks of 72 that stay in L2 while every panel passes. Work is split across the rayon pool
+/// by row blocks when there are enough of them, by panels otherwise (few rows: decode), so the
+/// weights are read from memory once per call whatever the row count. Allocates nothing in
+/// steady state.
+pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accumulate: bool) {
     use rayon::prelude::*;
+    let (n, k) = (w.out, w.inp);
     assert!(
-        x.len() >= m * k && w.len() >= n * k && y.len() >= m * n,
+        x.len() >= m * k && y.len() >= m * n,
         "a matrix does not fit its slice"
     );
     if m == 0 || n == 0 {
         return;
     }
-    let fast = use_avx2();
-    let threads = rayon_threads();
-    if threads <= 1 || m * n * k < (1 << 20) {
-        rows_into(y, n, &x[..m * k], &w[..n * k], m, k, n, accumulate, fast);
+    if k == 0 {
+        if !accumulate {
+            y[..m * n].fill(0.0);
+        }
         return;
     }
-    // Blocks of output columns, a multiple of 12 wide (every tile width divides it), about four
-    // per thread so a thread slowed by a neighbour does not hold the others up.
-    let per = n.div_ceil(threads * 4).div_ceil(12) * 12;
-    // Taken out of the thread-local, not borrowed: a rayon wait may run another call here.
+    let fast = use_avx2();
+    let panels = n.div_ceil(PANEL);
+    let threads = rayon_threads();
+    let x = &x[..m * k];
+    let y = &mut y[..m * n];
+    let row_blocks = m.div_ceil(BLOCK_ROWS);
+    if threads <= 1 || m * n * k < (1 << 20) {
+        for (yb, xb) in y.chunks_mut(BLOCK_ROWS * n).zip(x.chunks(BLOCK_ROWS * k)) {
+            panels_into(yb, n, xb, xb.len() / k, w, 0..panels, accumulate, fast);
+        }
+        return;
+    }
+    if row_blocks >= 2 * threads {
+        y.par_chunks_mut(BLOCK_ROWS * n)
+            .zip(x.par_chunks(BLOCK_ROWS * k))
+            .for_each(|(yb, xb)| {
+                panels_into(yb, n, xb, xb.len() / k, w, 0..panels, accumulate, fast)
+            });
+        return;
+    }
+    // Few rows: the panels are split, about four blocks per thread, each computed into its own
+    // part of one reused scratch buffer and then copied (or added) into place.
+    let per = panels.div_ceil(threads * 4).max(1);
     let mut scratch = ROWS_SCRATCH.with(|s| std::mem::take(&mut *s.borrow_mut()));
     scratch.clear();
-    scratch.resize(m * n, 0.0);
+    scratch.resize(m * panels * PANEL, 0.0);
     scratch
-        .par_chunks_mut(per * m)
+        .par_chunks_mut(per * PANEL * m)
         .enumerate()
         .for_each(|(b, out)| {
-            let j0 = b * per;
+            let p0 = b * per;
             let width = out.len() / m;
-            rows_into(
-                out,
-                width,
-                &x[..m * k],
-                &w[j0 * k..(j0 + width) * k],
-                m,
-                k,
-                width,
-                false,
-                fast,
-            );
+            let p1 = p0 + width / PANEL;
+            panels_into(out, width, x, m, w, p0..p1, false, fast);
         });
-    for (b, block) in scratch.chunks(per * m).enumerate() {
-        let j0 = b * per;
+    for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
+        let j0 = b * per * PANEL;
         let width = block.len() / m;
+        let valid = width.min(n - j0.min(n));
         for i in 0..m {
-            let dst = &mut y[i * n + j0..i * n + j0 + width];
-            let src = &block[i * width..(i + 1) * width];
+            let dst = &mut y[i * n + j0..i * n + j0 + valid];
+            let src = &block[i * width..i * width + valid];
             if accumulate {
                 dst.iter_mut().zip(src).for_each(|(d, s)| *d += s);
             } else {
@@ -232,183 +330,260 @@ pub fn small_rows_matmul(
     ROWS_SCRATCH.with(|s| *s.borrow_mut() = scratch);
 }
 
-thread_local! {
-    static ROWS_SCRATCH: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
-}
-
-/// `out[i * stride + j] (+)= x[i, :] . w[j, :]` for `i < m`, `j < n`, tile by tile. The weight
-/// rows go in blocks small enough to stay in L2 while every group of input rows passes over
-/// them, so the weights come from memory once whatever `m` is.
+/// Panels `panels` of `w` for all `m` rows of `x`, into `out` (row stride `stride`), whose
+/// column 0 is the first column of panel `panels.start`. Columns past `w`'s last are not written.
 #[allow(clippy::too_many_arguments)]
-fn rows_into(
+fn panels_into(
     out: &mut [f32],
     stride: usize,
     x: &[f32],
-    w: &[f32],
     m: usize,
-    k: usize,
-    n: usize,
+    w: &PackedWeight,
+    panels: std::ops::Range<usize>,
     accumulate: bool,
     fast: bool,
 ) {
-    // About 192 KB of weights per block, a multiple of 6 rows (every tile width divides it).
-    let block = ((192 * 1024) / (4 * k.max(1)) / 6 * 6).max(6);
-    let mut j0 = 0;
-    while j0 < n {
-        let j1 = (j0 + block).min(n);
-        let wb = &w[j0 * k..j1 * k];
-        let mut i0 = 0;
-        while i0 < m {
-            let r = (m - i0).min(4);
-            let xs = &x[i0 * k..(i0 + r) * k];
-            let o = &mut out[i0 * stride + j0..];
-            let width = j1 - j0;
+    let (n, k) = (w.out, w.inp);
+    let tiles = |a_col: usize,
+                 kb: usize,
+                 b: &[f32],
+                 next: &[f32],
+                 col: usize,
+                 cols: usize,
+                 acc: bool,
+                 out: &mut [f32]| {
+        let mut i = 0;
+        while i < m {
+            let r = (m - i).min(TILE_ROWS);
+            let a = &x[i * k + a_col..];
+            let c = &mut out[i * stride + col..];
+            let t = Tile {
+                a,
+                lda: k,
+                kb,
+                b,
+                next,
+                ldc: stride,
+                cols,
+                acc,
+            };
             match r {
-                4 => cols::<4, 3>(o, stride, xs, wb, k, width, accumulate, fast),
-                3 => cols::<3, 3>(o, stride, xs, wb, k, width, accumulate, fast),
-                2 => cols::<2, 3>(o, stride, xs, wb, k, width, accumulate, fast),
-                _ => cols::<1, 6>(o, stride, xs, wb, k, width, accumulate, fast),
+                6 => packed_tile::<6>(&t, c, fast),
+                5 => packed_tile::<5>(&t, c, fast),
+                4 => packed_tile::<4>(&t, c, fast),
+                3 => packed_tile::<3>(&t, c, fast),
+                2 => packed_tile::<2>(&t, c, fast),
+                _ => packed_tile::<1>(&t, c, fast),
             }
-            i0 += r;
-        }
-        j0 = j1;
-    }
-}
-
-/// All output columns for `R` input rows, `C` weight rows at a time, then one at a time.
-#[allow(clippy::too_many_arguments)]
-fn cols<const R: usize, const C: usize>(
-    out: &mut [f32],
-    stride: usize,
-    xs: &[f32],
-    w: &[f32],
-    k: usize,
-    n: usize,
-    accumulate: bool,
-    fast: bool,
-) {
-    let mut store = |j: usize, t: &[f32], c: usize| {
-        for ii in 0..R {
-            let row = &mut out[ii * stride + j..ii * stride + j + c];
-            let vals = &t[ii * c..(ii + 1) * c];
-            if accumulate {
-                row.iter_mut().zip(vals).for_each(|(d, s)| *d += s);
-            } else {
-                row.copy_from_slice(vals);
-            }
+            i += r;
         }
     };
-    let mut j = 0;
-    while j + C <= n {
-        let t = tile::<R, C>(xs, &w[j * k..(j + C) * k], k, fast);
-        store(j, t.as_flattened(), C);
-        j += C;
+    if m <= BLOCK_ROWS {
+        // Few rows: panel by panel, front to back through the packed weight in short blocks,
+        // so memory is read as one sequential stream, spread evenly over the arithmetic, and
+        // each block is fetched while the one before it computes.
+        // Up to three rows the tile runs several streams over segments of a block; it reads
+        // best with the whole panel as one block.
+        let step = if m <= 3 { k } else { SMALL_BLOCK_K };
+        for p in panels.clone() {
+            let cols = PANEL.min(n - p * PANEL);
+            let base = p * PANEL * k;
+            let col = (p - panels.start) * PANEL;
+            let mut k0 = 0;
+            while k0 < k {
+                let kb = step.min(k - k0);
+                let start = base + k0 * PANEL;
+                let b = &w.data[start..start + kb * PANEL];
+                // With whole panels as blocks the next one is too far ahead to fetch early.
+                let next = if kb == k {
+                    b
+                } else {
+                    let ahead = (start + kb * PANEL).min(w.data.len() - kb * PANEL);
+                    &w.data[ahead..ahead + kb * PANEL]
+                };
+                tiles(k0, kb, b, next, col, cols, accumulate || k0 > 0, out);
+                k0 += kb;
+            }
+        }
+        return;
     }
-    while j < n {
-        let t = tile::<R, 1>(xs, &w[j * k..(j + 1) * k], k, fast);
-        store(j, t.as_flattened(), 1);
-        j += 1;
+    let mut k0 = 0;
+    while k0 < k {
+        let kb = BLOCK_K.min(k - k0);
+        let acc = accumulate || k0 > 0;
+        for p in panels.clone() {
+            let cols = PANEL.min(n - p * PANEL);
+            let base = p * PANEL * k;
+            let b = &w.data[base + k0 * PANEL..base + (k0 + kb) * PANEL];
+            let col = (p - panels.start) * PANEL;
+            tiles(k0, kb, b, b, col, cols, acc, out);
+        }
+        k0 += kb;
     }
 }
 
-/// Dot products of `R` rows of `xs` with `C` rows of `ws` (rows `k` long): `[[x_i . w_j; C]; R]`.
-fn tile<const R: usize, const C: usize>(
-    xs: &[f32],
-    ws: &[f32],
-    k: usize,
-    fast: bool,
-) -> [[f32; C]; R] {
+/// One register tile's inputs: `c[i, j] (+)= a[i, :kb] . b[:kb, j]` for `i < R`, `j < cols`,
+/// where `a`'s rows are `lda` apart and `b` is a panel block (`kb` x 16, input-major). `next` is
+/// the block the next tile will read: the kernel asks for it one cache line per step, so memory
+/// is read while the arithmetic runs instead of between tiles.
+struct Tile<'a> {
+    a: &'a [f32],
+    lda: usize,
+    kb: usize,
+    b: &'a [f32],
+    next: &'a [f32],
+    ldc: usize,
+    cols: usize,
+    acc: bool,
+}
+
+#[inline]
+fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
     assert!(
-        xs.len() >= R * k && ws.len() >= C * k,
+        (R - 1) * t.lda + t.kb <= t.a.len()
+            && t.kb * PANEL <= t.b.len()
+            && t.kb * PANEL <= t.next.len()
+            && (R - 1) * t.ldc + t.cols <= c.len()
+            && t.cols <= PANEL,
         "tile outside its slices"
     );
     #[cfg(target_arch = "x86_64")]
     if fast {
-        // SAFETY: `fast` is only true when `use_avx2` saw AVX2 and FMA on this CPU; the slices
-        // hold R and C rows of k values (asserted above).
+        // SAFETY: `fast` is only true when `use_avx2` saw AVX2 and FMA on this CPU; the assert
+        // above bounds every read of a, b and next and every write of c.
         #[allow(unsafe_code)]
-        return unsafe { tile_avx2::<R, C>(xs, ws, k) };
+        unsafe {
+            if std::ptr::eq(t.next.as_ptr(), t.b.as_ptr()) {
+                packed_tile_avx2::<R, false>(t, c)
+            } else {
+                packed_tile_avx2::<R, true>(t, c)
+            }
+        };
+        return;
     }
     let _ = fast;
-    tile_portable::<R, C>(xs, ws, k)
+    packed_tile_portable::<R>(t, c);
 }
 
-/// The portable tile: eight partial sums per pair, which the compiler vectorises.
-fn tile_portable<const R: usize, const C: usize>(
-    xs: &[f32],
-    ws: &[f32],
-    k: usize,
-) -> [[f32; C]; R] {
-    let mut acc = [[[0f32; 8]; C]; R];
-    let chunks = k / 8;
-    for c in 0..chunks {
-        let o = c * 8;
-        for (ii, acc_row) in acc.iter_mut().enumerate() {
-            let xv = &xs[ii * k + o..ii * k + o + 8];
-            for (jj, a) in acc_row.iter_mut().enumerate() {
-                let wv = &ws[jj * k + o..jj * k + o + 8];
-                for l in 0..8 {
-                    a[l] += xv[l] * wv[l];
-                }
+/// The portable tile: sixteen-wide rows of partial sums, which the compiler vectorises.
+fn packed_tile_portable<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
+    let mut sums = [[0f32; PANEL]; R];
+    for p in 0..t.kb {
+        let bv: &[f32; PANEL] = t.b[p * PANEL..(p + 1) * PANEL].try_into().unwrap();
+        for (i, row) in sums.iter_mut().enumerate() {
+            let av = t.a[i * t.lda + p];
+            for (d, &bj) in row.iter_mut().zip(bv) {
+                *d += av * bj;
             }
         }
     }
-    let mut out = [[0f32; C]; R];
-    for ii in 0..R {
-        for jj in 0..C {
-            let mut s: f32 = acc[ii][jj].iter().sum();
-            for p in chunks * 8..k {
-                s += xs[ii * k + p] * ws[jj * k + p];
-            }
-            out[ii][jj] = s;
+    for (i, row) in sums.iter().enumerate() {
+        let dst = &mut c[i * t.ldc..i * t.ldc + t.cols];
+        if t.acc {
+            dst.iter_mut().zip(row).for_each(|(d, s)| *d += s);
+        } else {
+            dst.copy_from_slice(&row[..t.cols]);
         }
     }
-    out
+}
+
+/// The AVX2+FMA tile. With fewer than four rows the fused multiply-adds of one accumulator would
+/// wait on each other (a chain as long as the inner dimension) and a single stream through
+/// memory would leave bandwidth unused, so the block is cut into `S` segments (4 for one row, 2
+/// for two or three) that run side by side, each with its own accumulators, summed at the end.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn packed_tile_avx2<const R: usize, const FETCH: bool>(t: &Tile<'_>, c: &mut [f32]) {
+    match R {
+        1 => unsafe { packed_tile_avx2_streams::<R, 4, FETCH>(t, c) },
+        2 | 3 => unsafe { packed_tile_avx2_streams::<R, 2, FETCH>(t, c) },
+        _ => unsafe { packed_tile_avx2_streams::<R, 1, FETCH>(t, c) },
+    }
 }
 
 #[cfg(target_arch = "x86_64")]
 #[allow(unsafe_code)]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn tile_avx2<const R: usize, const C: usize>(
-    xs: &[f32],
-    ws: &[f32],
-    k: usize,
-) -> [[f32; C]; R] {
+unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: bool>(
+    t: &Tile<'_>,
+    c: &mut [f32],
+) {
     use std::arch::x86_64::*;
-    assert!(xs.len() >= R * k && ws.len() >= C * k);
-    let mut acc = [[_mm256_setzero_ps(); C]; R];
-    let chunks = k / 8;
-    let (px, pw) = (xs.as_ptr(), ws.as_ptr());
-    for c in 0..chunks {
-        let o = c * 8;
-        let mut wv = [_mm256_setzero_ps(); C];
-        for (jj, v) in wv.iter_mut().enumerate() {
-            // SAFETY: jj < C and o + 8 <= k, so the eight floats lie inside ws.
-            *v = unsafe { _mm256_loadu_ps(pw.add(jj * k + o)) };
-        }
-        for (ii, acc_row) in acc.iter_mut().enumerate() {
-            // SAFETY: ii < R and o + 8 <= k, so the eight floats lie inside xs.
-            let xv = unsafe { _mm256_loadu_ps(px.add(ii * k + o)) };
-            for (a, v) in acc_row.iter_mut().zip(&wv) {
-                *a = _mm256_fmadd_ps(xv, *v, *a);
+    let (pa, pb, pn, lda, kb) = (t.a.as_ptr(), t.b.as_ptr(), t.next.as_ptr(), t.lda, t.kb);
+    let mut lo = [[_mm256_setzero_ps(); R]; S];
+    let mut hi = [[_mm256_setzero_ps(); R]; S];
+    let seg = kb / S;
+    for p in 0..seg {
+        for s in 0..S {
+            let q = p + s * seg;
+            // SAFETY: q < S * seg <= kb, so the panel row q, the row q of next and every
+            // a[i * lda + q] are in bounds (asserted by the caller).
+            unsafe {
+                if FETCH {
+                    _mm_prefetch::<_MM_HINT_T0>(pn.add(q * PANEL) as *const i8);
+                }
+                let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
+                let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
+                for i in 0..R {
+                    let x = _mm256_broadcast_ss(&*pa.add(i * lda + q));
+                    lo[s][i] = _mm256_fmadd_ps(x, b0, lo[s][i]);
+                    hi[s][i] = _mm256_fmadd_ps(x, b1, hi[s][i]);
+                }
             }
         }
     }
-    let mut out = [[0f32; C]; R];
-    for ii in 0..R {
-        for jj in 0..C {
-            let v = acc[ii][jj];
-            let quad = _mm_add_ps(_mm256_castps256_ps128(v), _mm256_extractf128_ps(v, 1));
-            let pair = _mm_add_ps(quad, _mm_movehl_ps(quad, quad));
-            let one = _mm_add_ss(pair, _mm_shuffle_ps(pair, pair, 1));
-            let mut s = _mm_cvtss_f32(one);
-            for p in chunks * 8..k {
-                s += xs[ii * k + p] * ws[jj * k + p];
+    for q in S * seg..kb {
+        // SAFETY: q < kb: in bounds as above.
+        unsafe {
+            let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
+            let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
+            for i in 0..R {
+                let x = _mm256_broadcast_ss(&*pa.add(i * lda + q));
+                lo[0][i] = _mm256_fmadd_ps(x, b0, lo[0][i]);
+                hi[0][i] = _mm256_fmadd_ps(x, b1, hi[0][i]);
             }
-            out[ii][jj] = s;
         }
     }
-    out
+    for s in 1..S {
+        for i in 0..R {
+            lo[0][i] = _mm256_add_ps(lo[0][i], lo[s][i]);
+            hi[0][i] = _mm256_add_ps(hi[0][i], hi[s][i]);
+        }
+    }
+    let (lo, hi) = (lo[0], hi[0]);
+    let (ldc, cols) = (t.ldc, t.cols);
+    let pc = c.as_mut_ptr();
+    if cols == PANEL {
+        for i in 0..R {
+            // SAFETY: (R - 1) * ldc + 16 <= c.len() (asserted by the caller).
+            unsafe {
+                let d = pc.add(i * ldc);
+                let (mut v0, mut v1) = (lo[i], hi[i]);
+                if t.acc {
+                    v0 = _mm256_add_ps(v0, _mm256_loadu_ps(d));
+                    v1 = _mm256_add_ps(v1, _mm256_loadu_ps(d.add(8)));
+                }
+                _mm256_storeu_ps(d, v0);
+                _mm256_storeu_ps(d.add(8), v1);
+            }
+        }
+    } else {
+        let mut tmp = [0f32; PANEL];
+        for i in 0..R {
+            // SAFETY: tmp holds 16 floats.
+            unsafe {
+                _mm256_storeu_ps(tmp.as_mut_ptr(), lo[i]);
+                _mm256_storeu_ps(tmp.as_mut_ptr().add(8), hi[i]);
+            }
+            let dst = &mut c[i * ldc..i * ldc + cols];
+            if t.acc {
+                dst.iter_mut().zip(&tmp).for_each(|(d, s)| *d += s);
+            } else {
+                dst.copy_from_slice(&tmp[..cols]);
+            }
+        }
+    }
 }
 
 /// `a . b` over the shorter of the two, with the vector path when the CPU has it.
@@ -675,33 +850,6 @@ mod tests {
         }
     }
 
-    #[test]
-    fn small_rows_kernel_matches_gemm_on_both_paths() {
-        let (m, k, n) = (5, 300, 130);
-        let x = values(m * k, 8);
-        let w = values(n * k, 9);
-        let mut want = vec![0.0; m * n];
-        matmul_into(
-            &mut want,
-            n,
-            MatRef::row_major(&x, m, k),
-            MatRef::transposed(&w, k, n),
-            false,
-            1.0,
-            Parallelism::None,
-        );
-        let mut got = vec![1.0; m * n];
-        small_rows_matmul(&mut got, &x, &w, m, k, n, true);
-        for (g, w) in got.iter().zip(&want) {
-            assert!((g - (w + 1.0)).abs() < 1e-3, "{g} vs {}", w + 1.0);
-        }
-        // The portable fallback (what a CPU without AVX2 runs) agrees with the vector path.
-        for i in 0..n {
-            let (a, b) = (&x[..k], &w[i * k..(i + 1) * k]);
-            assert!((dot_portable(a, b) - dot_avx2(a, b)).abs() < 1e-3);
-        }
-    }
-
     /// `x [m, k] W [n, k]^T` by a plain loop in f64.
     fn reference_rows(x: &[f32], w: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
         let mut out = vec![0.0; m * n];
@@ -723,34 +871,66 @@ mod tests {
         p
     }
 
+    /// `packed_matmul` with the kernel path chosen, single-threaded: what the threaded paths run
+    /// on each part.
+    fn packed_on_path(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, acc: bool, fast: bool) {
+        let panels = w.out.div_ceil(PANEL);
+        for (yb, xb) in y
+            .chunks_mut(BLOCK_ROWS * w.out)
+            .zip(x.chunks(BLOCK_ROWS * w.inp))
+        {
+            panels_into(yb, w.out, xb, xb.len() / w.inp, w, 0..panels, acc, fast);
+        }
+        let _ = m;
+    }
+
     #[test]
-    fn blocked_rows_kernel_matches_a_plain_loop_for_every_row_count_and_remainder() {
+    fn packing_round_trips_and_pads_the_last_panel_with_zeros() {
+        for &(out, inp) in &[(1, 1), (16, 3), (17, 5), (40, 33), (3, 0)] {
+            let w = values(out * inp, 40 + out as u32);
+            let p = PackedWeight::pack(&w, out, inp);
+            assert_eq!(p.unpack(), w, "{out} x {inp}");
+            assert_eq!(p.resident_bytes(), out.div_ceil(PANEL) * PANEL * inp * 4);
+            assert_eq!((p.out_features(), p.in_features()), (out, inp));
+        }
+    }
+
+    #[test]
+    fn packed_kernel_matches_a_plain_loop_for_every_row_count_and_remainder_on_both_paths() {
+        // Row counts through one tile and past it (6 rows a tile, 72 a row block), output
+        // widths inside a panel, at a panel and past it, inner lengths shorter than a block,
+        // at several blocks and with remainders after the stream segments.
         for fast in paths() {
-            for m in 1..=16 {
-                for &(k, n) in &[(1, 1), (7, 5), (8, 3), (33, 13), (64, 12), (301, 37)] {
+            for m in (1..=20).chain([71, 72, 73, 150]) {
+                for &(k, n) in &[
+                    (1, 1),
+                    (7, 5),
+                    (8, 16),
+                    (33, 17),
+                    (130, 40),
+                    (301, 37),
+                    (800, 33),
+                ] {
                     let x = values(m * k, 11 + m as u32);
                     let w = values(n * k, 12 + k as u32);
+                    let packed = PackedWeight::pack(&w, n, k);
                     let want = reference_rows(&x, &w, m, k, n);
-                    // Written into a wider buffer: the stride is honoured, the padding untouched.
-                    let stride = n + 3;
-                    let mut out = vec![7.0; m * stride];
-                    rows_into(&mut out, stride, &x, &w, m, k, n, false, fast);
-                    let mut acc = vec![1.0; m * stride];
-                    rows_into(&mut acc, stride, &x, &w, m, k, n, true, fast);
-                    for i in 0..m {
-                        for j in 0..n {
-                            let (g, a, e) =
-                                (out[i * stride + j], acc[i * stride + j], want[i * n + j]);
-                            let tol = 1e-4 * (1.0 + e.abs()) * (k as f32).sqrt();
-                            assert!(
-                                (g - e).abs() < tol,
-                                "fast={fast} m={m} k={k} n={n}: {g} vs {e}"
-                            );
-                            assert!((a - 1.0 - e).abs() < tol, "accumulate, fast={fast} m={m}");
-                        }
-                        for j in n..stride {
-                            assert_eq!(out[i * stride + j], 7.0);
-                        }
+                    let mut out = vec![7.0; m * n];
+                    packed_on_path(&mut out, &x, m, &packed, false, fast);
+                    let mut acc = vec![1.0; m * n];
+                    packed_on_path(&mut acc, &x, m, &packed, true, fast);
+                    for i in 0..m * n {
+                        let e = want[i];
+                        let tol = 1e-4 * (1.0 + e.abs()) * (k as f32).sqrt();
+                        assert!(
+                            (out[i] - e).abs() < tol,
+                            "fast={fast} m={m} k={k} n={n} at {i}: {} vs {e}",
+                            out[i]
+                        );
+                        assert!(
+                            (acc[i] - 1.0 - e).abs() < tol,
+                            "accumulate, fast={fast} m={m}"
+                        );
                     }
                 }
             }
@@ -758,24 +938,53 @@ mod tests {
     }
 
     #[test]
-    fn small_rows_kernel_splits_large_products_across_threads_correctly() {
-        // Large enough for the parallel path, with a last column block narrower than the others.
-        for m in [1, 3, 4, 9, 16] {
+    fn packed_kernel_splits_large_products_across_threads_correctly() {
+        // Few rows (the panels are split, with a last block narrower than the others) and many
+        // rows (row blocks), both above the size where the pool is used.
+        for m in [1, 3, 4, 9, 16, 150, 300] {
             let (k, n) = (301, 1037);
             let x = values(m * k, 21);
             let w = values(n * k, 22);
+            let packed = PackedWeight::pack(&w, n, k);
             let want = reference_rows(&x, &w, m, k, n);
             let mut got = vec![2.0; m * n];
-            small_rows_matmul(&mut got, &x, &w, m, k, n, true);
+            packed_matmul(&mut got, &x, m, &packed, true);
             for (g, e) in got.iter().zip(&want) {
                 assert!(
                     (g - 2.0 - e).abs() < 1e-3 * (1.0 + e.abs()),
                     "m={m}: {g} vs {e}"
                 );
             }
-            small_rows_matmul(&mut got, &x, &w, m, k, n, false);
+            packed_matmul(&mut got, &x, m, &packed, false);
             for (g, e) in got.iter().zip(&want) {
                 assert!((g - e).abs() < 1e-3 * (1.0 + e.abs()), "m={m}: {g} vs {e}");
+            }
+        }
+    }
+
+    #[test]
+    fn packed_kernel_agrees_with_gemm_on_model_shapes() {
+        // The encoder's projection shapes at a batch's row count, against the gemm crate.
+        for &(m, k, n) in &[(200, 384, 384), (130, 384, 1536), (64, 1536, 384)] {
+            let x = values(m * k, 51);
+            let w = values(n * k, 52);
+            let mut want = vec![0.0; m * n];
+            matmul_into(
+                &mut want,
+                n,
+                MatRef::row_major(&x, m, k),
+                MatRef::transposed(&w, k, n),
+                false,
+                1.0,
+                Parallelism::None,
+            );
+            let mut got = vec![0.0; m * n];
+            packed_matmul(&mut got, &x, m, &PackedWeight::pack(&w, n, k), false);
+            for (g, e) in got.iter().zip(&want) {
+                assert!(
+                    (g - e).abs() < 1e-3 * (1.0 + e.abs()),
+                    "{m}x{k}x{n}: {g} vs {e}"
+                );
             }
         }
     }

@@ -6,6 +6,8 @@ use std::collections::HashMap;
 
 use candle_core::{Result, Tensor};
 
+use crate::kernels::PackedWeight;
+
 use crate::adapter::Adapter;
 use crate::site::Site;
 
@@ -15,7 +17,7 @@ use crate::site::Site;
 pub struct MergedWeights {
     /// `name@version` of the adapter these weights were merged from.
     pub source: String,
-    weights: HashMap<Site, Tensor>,
+    weights: HashMap<Site, PackedWeight>,
 }
 
 impl MergedWeights {
@@ -26,7 +28,7 @@ impl MergedWeights {
             let w0 = base_weight(site).ok_or_else(|| {
                 candle_core::Error::Msg(format!("base model has no matrix {site}"))
             })?;
-            weights.insert(*site, lr.merge(&w0)?);
+            weights.insert(*site, PackedWeight::from_tensor(&lr.merge(&w0)?)?);
         }
         Ok(Self {
             source: adapter.id.clone(),
@@ -38,12 +40,12 @@ impl MergedWeights {
     pub fn resident_bytes(&self) -> usize {
         self.weights
             .values()
-            .map(|w| w.elem_count() * w.dtype().size_in_bytes())
+            .map(PackedWeight::resident_bytes)
             .sum()
     }
 
-    /// The merged matrix at `site`, if the adapter targets it.
-    pub fn weight(&self, site: &Site) -> Option<&Tensor> {
+    /// The merged matrix at `site`, if the adapter targets it, packed for the projection kernel.
+    pub fn weight(&self, site: &Site) -> Option<&PackedWeight> {
         self.weights.get(site)
     }
 }

@@ -183,7 +183,7 @@ fn merged_variants_are_built_once_and_bounded_by_their_own_budget() {
     let w = m1
         .weight(&Site::new(0, switchyard_adapters::Module::AttnQ))
         .unwrap();
-    let v = w.flatten_all().unwrap().to_vec1::<f32>().unwrap();
+    let v = w.unpack();
     assert!(v.iter().all(|x| *x == 8.0), "{:?}", &v[..4]);
     let merge_event = events
         .try_iter()

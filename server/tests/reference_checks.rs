@@ -448,3 +448,26 @@ fn an_adapter_for_another_base_is_refused_naming_the_fingerprint_rule() {
         "{err}"
     );
 }
+
+/// Every check above again, in a child process with the portable kernels forced
+/// (`SWITCHYARD_KERNELS=portable`): what a CPU without AVX2 runs.
+#[test]
+fn every_reference_check_passes_on_the_portable_kernels() {
+    if std::env::var("SWITCHYARD_KERNELS").is_ok() {
+        // Already the child (or forced by the caller): the checks above cover it.
+        return;
+    }
+    let out = std::process::Command::new(std::env::current_exe().unwrap())
+        .env("SWITCHYARD_KERNELS", "portable")
+        .args(["--test-threads", "1", "--skip", "portable_kernels"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "reference checks failed on the portable kernels:\n{text}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("test result: ok"), "{text}");
+    assert!(!text.contains(" 0 passed"), "no check ran: {text}");
+}

@@ -330,7 +330,7 @@ impl BertModel {
             .linears()
             .into_iter()
             .find(|l| l.site() == *site)
-            .map(|l| l.weight().clone())
+            .and_then(|l| l.weight().ok())
     }
 }
 

@@ -12,9 +12,7 @@ use std::ops::Range;
 use std::sync::Arc;
 
 use candle_core::{DType, Result, Tensor};
-use switchyard_adapters::kernels::{
-    MatRef, SMALL_ROWS, matmul_into, parallelism_for, small_rows_matmul, with_f32,
-};
+use switchyard_adapters::kernels::{PackedWeight, packed_matmul, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
@@ -111,16 +109,18 @@ thread_local! {
 }
 
 /// A projection `y = W0 x (+ bias)` that knows its site, so each row's adapter can add its term.
+/// The weight is held only in the packed layout the projection kernel reads (see
+/// [`PackedWeight`]); [`AdaptedLinear::weight`] gives it back row-major where a merge needs it.
 #[derive(Debug, Clone)]
 pub struct AdaptedLinear {
     site: Site,
-    weight: Tensor,
+    weight: Arc<PackedWeight>,
     bias: Option<Tensor>,
 }
 
 impl AdaptedLinear {
     pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Result<Self> {
-        let weight = weight.to_dtype(DType::F32)?.contiguous()?;
+        let weight = Arc::new(PackedWeight::from_tensor(&weight)?);
         let bias = match bias {
             Some(b) => Some(b.to_dtype(DType::F32)?.contiguous()?),
             None => None,
@@ -148,13 +148,13 @@ impl AdaptedLinear {
         self.site
     }
 
-    pub fn weight(&self) -> &Tensor {
-        &self.weight
+    /// The base weight `[out, in]`, row-major: a new tensor, unpacked from the kernel's layout.
+    pub fn weight(&self) -> Result<Tensor> {
+        self.weight.to_tensor()
     }
 
     pub fn shape(&self) -> (usize, usize) {
-        let d = self.weight.dims();
-        (d[0], d[1])
+        (self.weight.out_features(), self.weight.in_features())
     }
 
     /// Applies the layer to `x [..., in]` with the rows' adapters; the leading dimensions of `x`
@@ -214,22 +214,7 @@ impl AdaptedLinear {
             Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
             None => vec![0f32; rows * out_dim],
         };
-        with_f32(weight, |w| {
-            if rows <= SMALL_ROWS {
-                // Decode steps: one pass over the weight, no packing.
-                small_rows_matmul(&mut y, xs, w, rows, in_dim, out_dim, self.bias.is_some());
-            } else {
-                matmul_into(
-                    &mut y,
-                    out_dim,
-                    MatRef::row_major(xs, rows, in_dim),
-                    MatRef::transposed(w, in_dim, out_dim),
-                    self.bias.is_some(),
-                    1.0,
-                    parallelism_for(rows, out_dim, in_dim),
-                )
-            }
-        })?;
+        packed_matmul(&mut y, xs, rows, weight, self.bias.is_some());
         SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
             for group in &adapters.groups {
                 let Some(lr) = group.adapter.factors(&self.site) else {

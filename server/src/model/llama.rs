@@ -11,9 +11,7 @@ use std::collections::BTreeMap;
 use candle_core::{DType, Result, Tensor};
 use candle_nn::{Embedding, Module as _, RmsNorm, VarBuilder};
 use serde::Deserialize;
-use switchyard_adapters::kernels::{
-    MatRef, SMALL_ROWS, axpy, dot, matmul_into, parallelism_for, small_rows_matmul, with_f32,
-};
+use switchyard_adapters::kernels::{PackedWeight, axpy, dot, packed_matmul, with_f32};
 use switchyard_adapters::{BaseSpec, Module, Site};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
@@ -471,7 +469,9 @@ pub struct LlamaModel {
     embed: Embedding,
     blocks: Vec<Block>,
     norm: RmsNorm,
-    lm_head: Tensor,
+    /// The output projection, packed for the projection kernel; with tied embeddings this is a
+    /// second (packed) copy of the embedding table.
+    lm_head: PackedWeight,
     rotary: Rotary,
     pub config: LlamaConfig,
 }
@@ -497,7 +497,7 @@ impl LlamaModel {
         } else {
             vb.get((cfg.vocab_size, cfg.hidden_size), "lm_head.weight")?
         };
-        let lm_head = lm_head.to_dtype(DType::F32)?.contiguous()?;
+        let lm_head = PackedWeight::from_tensor(&lm_head)?;
         let rotary = Rotary::new(cfg)?;
         Ok(Self {
             embed,
@@ -528,7 +528,7 @@ impl LlamaModel {
     ) -> Result<Tensor> {
         let _span = tracing::trace_span!("llama_forward", seqs = tokens.len()).entered();
         assert_eq!(tokens.len(), caches.len(), "one cache per sequence");
-        let dev = self.lm_head.device().clone();
+        let dev = candle_core::Device::Cpu;
         let mut ids = Vec::new();
         let mut positions = Vec::new();
         let mut spans = Vec::with_capacity(tokens.len());
@@ -573,24 +573,16 @@ impl LlamaModel {
         let (rows, h) = hidden.dims2()?;
         let vocab = self.config.vocab_size;
         let hidden = hidden.to_dtype(DType::F32)?.contiguous()?;
+        if h != self.lm_head.in_features() {
+            candle_core::bail!(
+                "hidden states have {h} features, the output projection takes {}",
+                self.lm_head.in_features()
+            );
+        }
         let mut out = vec![0f32; rows * vocab];
         with_f32(&hidden, |x| {
-            with_f32(&self.lm_head, |w| {
-                if rows <= SMALL_ROWS {
-                    small_rows_matmul(&mut out, x, w, rows, h, vocab, false);
-                } else {
-                    matmul_into(
-                        &mut out,
-                        vocab,
-                        MatRef::row_major(x, rows, h),
-                        MatRef::transposed(w, h, vocab),
-                        false,
-                        1.0,
-                        parallelism_for(rows, vocab, h),
-                    );
-                }
-            })
-        })??;
+            packed_matmul(&mut out, x, rows, &self.lm_head, false)
+        })?;
         Tensor::from_vec(out, (rows, vocab), hidden.device())
     }
 
@@ -635,7 +627,7 @@ impl LlamaModel {
             .linears()
             .into_iter()
             .find(|l| l.site() == *site)
-            .map(|l| l.weight().clone())
+            .and_then(|l| l.weight().ok())
     }
 }
 
