@@ -214,6 +214,61 @@ impl PackedWeight {
         with_f32(&w, |d| Self::pack(d, out, inp))
     }
 
+    /// Repacks this buffer (reusing its memory) with `W [out, inp]` read from a strided view:
+    /// `W[j, kk] = src[j * row_stride + kk * col_stride]`; a transposed source is a view with
+    /// `row_stride` 1.
+    pub fn repack_strided(
+        &mut self,
+        src: &[f32],
+        out: usize,
+        inp: usize,
+        row_stride: usize,
+        col_stride: usize,
+    ) {
+        if out > 0 && inp > 0 {
+            let last = (out - 1) * row_stride + (inp - 1) * col_stride;
+            assert!(last < src.len(), "weight view does not fit its slice");
+        }
+        let panels = out.div_ceil(PANEL);
+        self.data.clear();
+        self.data.resize(panels * PANEL * inp, 0.0);
+        (self.out, self.inp) = (out, inp);
+        for (p, panel) in self.data.chunks_mut(PANEL * inp.max(1)).enumerate().take(panels) {
+            let width = PANEL.min(out - p * PANEL);
+            if row_stride == 1 {
+                // A transposed source: the panel's 16 values for one input feature are
+                // consecutive in it.
+                for kk in 0..inp {
+                    let from = p * PANEL + kk * col_stride;
+                    panel[kk * PANEL..kk * PANEL + width].copy_from_slice(&src[from..from + width]);
+                }
+            } else {
+                for c in 0..width {
+                    let j = p * PANEL + c;
+                    if col_stride == 1 {
+                        let row = &src[j * row_stride..j * row_stride + inp];
+                        for (kk, &v) in row.iter().enumerate() {
+                            panel[kk * PANEL + c] = v;
+                        }
+                    } else {
+                        for kk in 0..inp {
+                            panel[kk * PANEL + c] = src[j * row_stride + kk * col_stride];
+                        }
+                    }
+                }
+            }
+        }
+    }
+
+    /// An empty weight, `[0, 0]`, to repack into.
+    pub fn empty() -> Self {
+        Self {
+            data: Vec::new(),
+            out: 0,
+            inp: 0,
+        }
+    }
+
     /// The row-major `[out, inp]` matrix again.
     pub fn unpack(&self) -> Vec<f32> {
         let (out, inp) = (self.out, self.inp);
@@ -286,7 +341,7 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
     let row_blocks = m.div_ceil(BLOCK_ROWS);
     if threads <= 1 || m * n * k < (1 << 20) {
         for (yb, xb) in y.chunks_mut(BLOCK_ROWS * n).zip(x.chunks(BLOCK_ROWS * k)) {
-            panels_into(yb, n, xb, xb.len() / k, w, 0..panels, accumulate, fast);
+            panels_into(yb, n, xb, k, xb.len() / k, w, 0..panels, accumulate, fast);
         }
         return;
     }
@@ -294,7 +349,7 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
         y.par_chunks_mut(BLOCK_ROWS * n)
             .zip(x.par_chunks(BLOCK_ROWS * k))
             .for_each(|(yb, xb)| {
-                panels_into(yb, n, xb, xb.len() / k, w, 0..panels, accumulate, fast)
+                panels_into(yb, n, xb, k, xb.len() / k, w, 0..panels, accumulate, fast)
             });
         return;
     }
@@ -311,7 +366,7 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
             let p0 = b * per;
             let width = out.len() / m;
             let p1 = p0 + width / PANEL;
-            panels_into(out, width, x, m, w, p0..p1, false, fast);
+            panels_into(out, width, x, k, m, w, p0..p1, false, fast);
         });
     for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
         let j0 = b * per * PANEL;
@@ -330,13 +385,67 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
     ROWS_SCRATCH.with(|s| *s.borrow_mut() = scratch);
 }
 
-/// Panels `panels` of `w` for all `m` rows of `x`, into `out` (row stride `stride`), whose
-/// column 0 is the first column of panel `panels.start`. Columns past `w`'s last are not written.
+/// [`packed_matmul`] on strided rows, on the calling thread: `y[i * y_stride + j] (+)=
+/// x[i * x_stride + :] . W[j, :]` for `i < m`. For small products inside work that is already
+/// parallel (attention, per sequence and head).
+pub fn packed_matmul_strided(
+    y: &mut [f32],
+    y_stride: usize,
+    x: &[f32],
+    x_stride: usize,
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+) {
+    let (n, k) = (w.out, w.inp);
+    if m == 0 || n == 0 {
+        return;
+    }
+    assert!(
+        x_stride >= k && y_stride >= n,
+        "rows of a strided matrix overlap"
+    );
+    assert!(
+        (m - 1) * x_stride + k <= x.len() && (m - 1) * y_stride + n <= y.len(),
+        "a matrix does not fit its slice"
+    );
+    if k == 0 {
+        if !accumulate {
+            for row in y.chunks_mut(y_stride).take(m) {
+                row[..n].fill(0.0);
+            }
+        }
+        return;
+    }
+    let panels = n.div_ceil(PANEL);
+    let fast = use_avx2();
+    let mut i0 = 0;
+    while i0 < m {
+        let rows = BLOCK_ROWS.min(m - i0);
+        panels_into(
+            &mut y[i0 * y_stride..],
+            y_stride,
+            &x[i0 * x_stride..],
+            x_stride,
+            rows,
+            w,
+            0..panels,
+            accumulate,
+            fast,
+        );
+        i0 += rows;
+    }
+}
+
+/// Panels `panels` of `w` for all `m` rows of `x` (rows `lda` apart), into `out` (row stride
+/// `stride`), whose column 0 is the first column of panel `panels.start`. Columns past `w`'s last
+/// are not written.
 #[allow(clippy::too_many_arguments)]
 fn panels_into(
     out: &mut [f32],
     stride: usize,
     x: &[f32],
+    lda: usize,
     m: usize,
     w: &PackedWeight,
     panels: std::ops::Range<usize>,
@@ -355,11 +464,11 @@ fn panels_into(
         let mut i = 0;
         while i < m {
             let r = (m - i).min(TILE_ROWS);
-            let a = &x[i * k + a_col..];
+            let a = &x[i * lda + a_col..];
             let c = &mut out[i * stride + col..];
             let t = Tile {
                 a,
-                lda: k,
+                lda,
                 kb,
                 b,
                 next,
@@ -716,6 +825,160 @@ pub fn erf_fast(x: f32) -> f32 {
     x * p / q
 }
 
+/// `e^x` in f32 without a call or a branch, so a loop over a slice vectorises: `x = n ln 2 + r`
+/// with `|r| <= ln 2 / 2`, a degree-6 Taylor polynomial for `e^r` (truncation below 2e-7
+/// relative), and `2^n` built in the exponent bits. Inputs are clamped to [-87, 88], where f32
+/// stays normal, so a masked score of -1e9 gives 1.6e-38 rather than 0.
+#[inline]
+pub fn exp_fast(x: f32) -> f32 {
+    const LN2_HI: f32 = 0.693_145_75;
+    const LN2_LO: f32 = 1.428_606_8e-6;
+    let x = x.clamp(-87.0, 88.0);
+    let n = (x * std::f32::consts::LOG2_E + 0.5).floor();
+    let r = (-n).mul_add(LN2_LO, (-n).mul_add(LN2_HI, x));
+    let mut p = 1.0 / 720.0f32;
+    p = p.mul_add(r, 1.0 / 120.0);
+    p = p.mul_add(r, 1.0 / 24.0);
+    p = p.mul_add(r, 1.0 / 6.0);
+    p = p.mul_add(r, 0.5);
+    p = p.mul_add(r, 1.0);
+    p = p.mul_add(r, 1.0);
+    p * f32::from_bits((((n as i32) + 127) as u32) << 23)
+}
+
+/// Each row of `scores` (rows `width` long) becomes `softmax(scale * row + bias)`, in place.
+pub fn softmax_rows_in_place(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
+    if use_avx2() {
+        softmax_dispatch(scores, width, scale, bias);
+    } else {
+        softmax_portable(scores, width, scale, bias);
+    }
+}
+
+#[inline]
+fn softmax_portable(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
+    assert!(bias.len() >= width, "bias shorter than a row");
+    for row in scores.chunks_mut(width.max(1)) {
+        let mut max = f32::NEG_INFINITY;
+        for (s, &b) in row.iter_mut().zip(bias) {
+            *s = s.mul_add(scale, b);
+            max = max.max(*s);
+        }
+        let mut sum = 0f32;
+        for s in row.iter_mut() {
+            *s = exp_fast(*s - max);
+            sum += *s;
+        }
+        let inv = 1.0 / sum;
+        row.iter_mut().for_each(|s| *s *= inv);
+    }
+}
+
+fn softmax_dispatch(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
+        #[allow(unsafe_code)]
+        unsafe {
+            softmax_avx2(scores, width, scale, bias)
+        }
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    softmax_portable(scores, width, scale, bias)
+}
+
+/// The softmax rows eight lanes at a time: the same steps as [`exp_fast`] in AVX2+FMA
+/// intrinsics (the scalar code's clamp, floor and conversion keep the compiler from vectorising
+/// it), with the remainder of a row on the scalar path.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn softmax_avx2(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
+    use std::arch::x86_64::*;
+    assert!(bias.len() >= width, "bias shorter than a row");
+    let exp8 = |x: __m256| -> __m256 {
+        let x = _mm256_min_ps(_mm256_max_ps(x, _mm256_set1_ps(-87.0)), _mm256_set1_ps(88.0));
+        let n = _mm256_floor_ps(_mm256_fmadd_ps(
+            x,
+            _mm256_set1_ps(std::f32::consts::LOG2_E),
+            _mm256_set1_ps(0.5),
+        ));
+        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(0.693_145_75), x);
+        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(1.428_606_8e-6), r);
+        let mut p = _mm256_set1_ps(1.0 / 720.0);
+        for c in [1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0] {
+            p = _mm256_fmadd_ps(p, r, _mm256_set1_ps(c));
+        }
+        let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
+            _mm256_cvtps_epi32(n),
+            _mm256_set1_epi32(127),
+        ));
+        _mm256_mul_ps(p, _mm256_castsi256_ps(bits))
+    };
+    let sum8 = |v: __m256| -> f32 {
+        let quad = _mm_add_ps(_mm256_castps256_ps128(v), _mm256_extractf128_ps::<1>(v));
+        let pair = _mm_add_ps(quad, _mm_movehl_ps(quad, quad));
+        _mm_cvtss_f32(_mm_add_ss(pair, _mm_shuffle_ps::<1>(pair, pair)))
+    };
+    let max8 = |v: __m256| -> f32 {
+        let quad = _mm_max_ps(_mm256_castps256_ps128(v), _mm256_extractf128_ps::<1>(v));
+        let pair = _mm_max_ps(quad, _mm_movehl_ps(quad, quad));
+        _mm_cvtss_f32(_mm_max_ss(pair, _mm_shuffle_ps::<1>(pair, pair)))
+    };
+    let sc = _mm256_set1_ps(scale);
+    for row in scores.chunks_mut(width.max(1)) {
+        // A short last row (scores not a whole number of rows) is handled like any other.
+        let vec_end = row.len() / 8 * 8;
+        let (pr, pb) = (row.as_mut_ptr(), bias.as_ptr());
+        let mut vmax = _mm256_set1_ps(f32::NEG_INFINITY);
+        let mut j = 0;
+        while j < vec_end {
+            // SAFETY: j + 8 <= row.len() <= width <= bias.len().
+            unsafe {
+                let v = _mm256_fmadd_ps(
+                    _mm256_loadu_ps(pr.add(j)),
+                    sc,
+                    _mm256_loadu_ps(pb.add(j)),
+                );
+                _mm256_storeu_ps(pr.add(j), v);
+                vmax = _mm256_max_ps(vmax, v);
+            }
+            j += 8;
+        }
+        let mut max = max8(vmax);
+        for jj in vec_end..row.len() {
+            row[jj] = row[jj].mul_add(scale, bias[jj]);
+            max = max.max(row[jj]);
+        }
+        let vm = _mm256_set1_ps(max);
+        let mut vsum = _mm256_setzero_ps();
+        let mut j = 0;
+        while j < vec_end {
+            // SAFETY: as above.
+            unsafe {
+                let e = exp8(_mm256_sub_ps(_mm256_loadu_ps(pr.add(j)), vm));
+                _mm256_storeu_ps(pr.add(j), e);
+                vsum = _mm256_add_ps(vsum, e);
+            }
+            j += 8;
+        }
+        let mut sum = sum8(vsum);
+        for v in row[vec_end..].iter_mut() {
+            *v = exp_fast(*v - max);
+            sum += *v;
+        }
+        let inv = _mm256_set1_ps(1.0 / sum);
+        let mut j = 0;
+        while j < vec_end {
+            // SAFETY: as above.
+            unsafe { _mm256_storeu_ps(pr.add(j), _mm256_mul_ps(_mm256_loadu_ps(pr.add(j)), inv)) };
+            j += 8;
+        }
+        let inv = 1.0 / sum;
+        row[vec_end..].iter_mut().for_each(|v| *v *= inv);
+    }
+}
+
 /// The exact (erf) GELU in place: `x <- x/2 (1 + erf(x / sqrt 2))`.
 pub fn gelu_erf_in_place(xs: &mut [f32]) {
     if use_avx2() {
@@ -879,7 +1142,7 @@ mod tests {
             .chunks_mut(BLOCK_ROWS * w.out)
             .zip(x.chunks(BLOCK_ROWS * w.inp))
         {
-            panels_into(yb, w.out, xb, xb.len() / w.inp, w, 0..panels, acc, fast);
+            panels_into(yb, w.out, xb, w.inp, xb.len() / w.inp, w, 0..panels, acc, fast);
         }
         let _ = m;
     }
@@ -1057,6 +1320,81 @@ mod tests {
                 "gelu({x})"
             );
             assert!((a - b).abs() < 1e-6, "paths differ at {x}");
+        }
+    }
+
+    #[test]
+    fn fast_exp_and_softmax_agree_with_f64_on_both_paths() {
+        let mut worst = 0f64;
+        for i in -87_000..=88_000 {
+            let x = (i as f64 / 1000.0) as f32;
+            let want = (x as f64).exp();
+            worst = worst.max((exp_fast(x) as f64 - want).abs() / want);
+        }
+        assert!(worst < 5e-7, "exp off by {worst} relative");
+        assert!(exp_fast(-1e9) < 1e-37 && exp_fast(-1e9) >= 0.0);
+        // Rows of 37 scores with a masked key (bias -1e9), scale 0.25.
+        let width = 37;
+        let raw = values(width * 5, 61);
+        let mut bias = vec![0.0; width];
+        bias[3] = -1e9;
+        for fast in paths() {
+            let mut got = raw.clone();
+            if fast {
+                softmax_dispatch(&mut got, width, 0.25, &bias);
+            } else {
+                softmax_portable(&mut got, width, 0.25, &bias);
+            }
+            for (row, src) in got.chunks(width).zip(raw.chunks(width)) {
+                let z: Vec<f64> = src
+                    .iter()
+                    .zip(&bias)
+                    .map(|(&s, &b)| s as f64 * 0.25 + b as f64)
+                    .collect();
+                let max = z.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+                let sum: f64 = z.iter().map(|v| (v - max).exp()).sum();
+                for (g, v) in row.iter().zip(&z) {
+                    let want = (v - max).exp() / sum;
+                    assert!((*g as f64 - want).abs() < 1e-6, "fast={fast}: {g} vs {want}");
+                }
+                assert!(row[3] < 1e-30);
+            }
+        }
+    }
+
+    #[test]
+    fn strided_packing_and_products_read_and_write_only_their_views() {
+        // A [t, h] buffer holding several heads side by side: head 1's columns as a [t, dh]
+        // weight, and transposed as a [dh, t] one.
+        let (t, h, dh, hd) = (9, 12, 4, 1);
+        let buf = values(t * h, 71);
+        let mut keys = PackedWeight::empty();
+        keys.repack_strided(&buf[hd * dh..], t, dh, h, 1);
+        let mut trans = PackedWeight::empty();
+        trans.repack_strided(&buf[hd * dh..], dh, t, 1, h);
+        for j in 0..t {
+            for kk in 0..dh {
+                let v = buf[j * h + hd * dh + kk];
+                assert_eq!(keys.unpack()[j * dh + kk], v);
+                assert_eq!(trans.unpack()[kk * t + j], v);
+            }
+        }
+        // Q_h K_h^T from the strided query columns, written into a strided output's columns.
+        let q = values(t * h, 72);
+        let mut out = vec![5.0; t * 20];
+        packed_matmul_strided(&mut out[3..], 20, &q[hd * dh..], h, t, &keys, false);
+        for i in 0..t {
+            for j in 0..20 {
+                let got = out[i * 20 + j];
+                if (3..3 + t).contains(&j) {
+                    let want: f32 = (0..dh)
+                        .map(|kk| q[i * h + hd * dh + kk] * buf[(j - 3) * h + hd * dh + kk])
+                        .sum();
+                    assert!((got - want).abs() < 1e-5, "{i},{j}: {got} vs {want}");
+                } else {
+                    assert_eq!(got, 5.0, "{i},{j} outside the view was written");
+                }
+            }
         }
     }
 

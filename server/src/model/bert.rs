@@ -7,7 +7,9 @@ use std::collections::BTreeMap;
 use candle_core::{D, DType, Result, Tensor};
 use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
 use serde::Deserialize;
-use switchyard_adapters::kernels::{MatRef, Parallelism, gelu_erf_in_place, matmul_into, with_f32};
+use switchyard_adapters::kernels::{
+    PackedWeight, gelu_erf_in_place, packed_matmul_strided, softmax_rows_in_place, with_f32,
+};
 use switchyard_adapters::{BaseSpec, Module, Site};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
@@ -170,10 +172,11 @@ impl Layer {
 }
 
 /// Multi-head self-attention over `q`, `k`, `v` `[b * t, h]` (heads side by side in each row),
-/// giving the context `[b * t, h]` in the same layout. Per sequence and head: the scores
-/// `Q K^T` by one gemm call on strided views (no transposed copies), the scale, key bias and
-/// softmax in place on the score rows, then `P V` by a second gemm call written straight into
-/// that head's columns of the output. Sequences run in parallel, one task each.
+/// giving the context `[b * t, h]` in the same layout. Per sequence and head: that head's keys
+/// and (transposed) values are packed for the projection kernel, the scores `Q K^T` run through
+/// it straight from the strided query columns, then the scale, key bias and softmax (a
+/// vectorised exp) in place on the score rows, then `P V` through the kernel again, written
+/// straight into that head's columns of the output. Sequences run in parallel, one task each.
 #[allow(clippy::too_many_arguments)]
 fn attention(
     q: &[f32],
@@ -191,58 +194,18 @@ fn attention(
     let mut ctx = vec![0f32; b * t * h];
     let one = |s: usize, out: &mut [f32]| {
         let mut scores = vec![0f32; t * t];
+        let mut keys = PackedWeight::empty();
+        let mut values = PackedWeight::empty();
         let bias = &key_bias[s * t..(s + 1) * t];
         let base = s * t * h;
         for hd in 0..heads {
             let off = base + hd * dh;
-            fn view(m: &[f32], off: usize, t: usize, dh: usize, h: usize) -> MatRef<'_> {
-                MatRef {
-                    data: &m[off..],
-                    rows: t,
-                    cols: dh,
-                    row_stride: h,
-                    col_stride: 1,
-                }
-            }
-            let keys_t = MatRef {
-                data: &k[off..],
-                rows: dh,
-                cols: t,
-                row_stride: 1,
-                col_stride: h,
-            };
-            matmul_into(
-                &mut scores,
-                t,
-                view(q, off, t, dh, h),
-                keys_t,
-                false,
-                scale,
-                Parallelism::None,
-            );
-            for row in scores.chunks_mut(t) {
-                let mut max = f32::NEG_INFINITY;
-                for (sc, &bi) in row.iter_mut().zip(bias) {
-                    *sc += bi;
-                    max = max.max(*sc);
-                }
-                let mut sum = 0f32;
-                for sc in row.iter_mut() {
-                    *sc = (*sc - max).exp();
-                    sum += *sc;
-                }
-                let inv = 1.0 / sum;
-                row.iter_mut().for_each(|sc| *sc *= inv);
-            }
-            matmul_into(
-                &mut out[hd * dh..],
-                h,
-                MatRef::row_major(&scores, t, t),
-                view(v, off, t, dh, h),
-                false,
-                1.0,
-                Parallelism::None,
-            );
+            // Keys as a [t, dh] weight, values transposed as a [dh, t] weight.
+            keys.repack_strided(&k[off..], t, dh, h, 1);
+            values.repack_strided(&v[off..], dh, t, 1, h);
+            packed_matmul_strided(&mut scores, t, &q[off..], h, t, &keys, false);
+            softmax_rows_in_place(&mut scores, t, scale, bias);
+            packed_matmul_strided(&mut out[hd * dh..], h, &scores, t, t, &values, false);
         }
     };
     if b * heads * t * t * dh < 1 << 18 {
