@@ -185,7 +185,7 @@ fn main() {
     let mut w = w0.flatten_all().unwrap().to_vec1::<f32>().unwrap();
     let (mut merge, mut in_place, mut ba) = (vec![], vec![], vec![]);
     for _ in 0..repeats.max(5) {
-        ba.push(time(|| lr.b().matmul(lr.a()).unwrap()));
+        ba.push(time(|| lr.b().unwrap().matmul(&lr.a().unwrap()).unwrap()));
         merge.push(time(|| lr.merge(&w0).unwrap()));
         // Repeated merges accumulate into `w`; the cost does not depend on its values.
         in_place.push(time(|| lr.merge_in_place(&mut w).unwrap()));

@@ -233,7 +233,12 @@ impl PackedWeight {
         self.data.clear();
         self.data.resize(panels * PANEL * inp, 0.0);
         (self.out, self.inp) = (out, inp);
-        for (p, panel) in self.data.chunks_mut(PANEL * inp.max(1)).enumerate().take(panels) {
+        for (p, panel) in self
+            .data
+            .chunks_mut(PANEL * inp.max(1))
+            .enumerate()
+            .take(panels)
+        {
             let width = PANEL.min(out - p * PANEL);
             if row_stride == 1 {
                 // A transposed source: the panel's 16 values for one input feature are
@@ -897,7 +902,10 @@ unsafe fn softmax_avx2(scores: &mut [f32], width: usize, scale: f32, bias: &[f32
     use std::arch::x86_64::*;
     assert!(bias.len() >= width, "bias shorter than a row");
     let exp8 = |x: __m256| -> __m256 {
-        let x = _mm256_min_ps(_mm256_max_ps(x, _mm256_set1_ps(-87.0)), _mm256_set1_ps(88.0));
+        let x = _mm256_min_ps(
+            _mm256_max_ps(x, _mm256_set1_ps(-87.0)),
+            _mm256_set1_ps(88.0),
+        );
         let n = _mm256_floor_ps(_mm256_fmadd_ps(
             x,
             _mm256_set1_ps(std::f32::consts::LOG2_E),
@@ -935,11 +943,7 @@ unsafe fn softmax_avx2(scores: &mut [f32], width: usize, scale: f32, bias: &[f32
         while j < vec_end {
             // SAFETY: j + 8 <= row.len() <= width <= bias.len().
             unsafe {
-                let v = _mm256_fmadd_ps(
-                    _mm256_loadu_ps(pr.add(j)),
-                    sc,
-                    _mm256_loadu_ps(pb.add(j)),
-                );
+                let v = _mm256_fmadd_ps(_mm256_loadu_ps(pr.add(j)), sc, _mm256_loadu_ps(pb.add(j)));
                 _mm256_storeu_ps(pr.add(j), v);
                 vmax = _mm256_max_ps(vmax, v);
             }
@@ -1142,7 +1146,17 @@ mod tests {
             .chunks_mut(BLOCK_ROWS * w.out)
             .zip(x.chunks(BLOCK_ROWS * w.inp))
         {
-            panels_into(yb, w.out, xb, w.inp, xb.len() / w.inp, w, 0..panels, acc, fast);
+            panels_into(
+                yb,
+                w.out,
+                xb,
+                w.inp,
+                xb.len() / w.inp,
+                w,
+                0..panels,
+                acc,
+                fast,
+            );
         }
         let _ = m;
     }
@@ -1355,7 +1369,10 @@ mod tests {
                 let sum: f64 = z.iter().map(|v| (v - max).exp()).sum();
                 for (g, v) in row.iter().zip(&z) {
                     let want = (v - max).exp() / sum;
-                    assert!((*g as f64 - want).abs() < 1e-6, "fast={fast}: {g} vs {want}");
+                    assert!(
+                        (*g as f64 - want).abs() < 1e-6,
+                        "fast={fast}: {g} vs {want}"
+                    );
                 }
                 assert!(row[3] < 1e-30);
             }

@@ -3,59 +3,64 @@
 //! computes `W0 x + s B (A x)`.
 //!
 //! The hot operations run through [`crate::kernels`] straight on the factors' memory: the
-//! low-rank term is accumulated onto the base output in place (`y += s (x A^T) B^T`, with one
-//! `[rows, r]` scratch buffer), and merging adds `s B A` into a weight in place. Nothing is
-//! transposed or copied per call.
+//! factors are held packed for the projection kernel (`A` as a weight `[r, in]`, `B` as a weight
+//! `[out, r]`), so the low-rank term is two kernel calls accumulated onto the base output in
+//! place (`z = x A^T` into one `[rows, r]` scratch buffer, scaled, then `y += z B^T`), and merging
+//! adds `s B A` into a weight in place. Nothing is transposed or copied per call.
 
 use candle_core::{DType, Result, Tensor};
 
-use crate::kernels::{MatRef, matmul_into, parallelism_for, with_f32};
+use crate::kernels::{MatRef, PackedWeight, matmul_into, packed_matmul, parallelism_for, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
 pub struct LowRank {
-    /// `A [r, in]`, contiguous f32.
-    a: Tensor,
-    /// `B [out, r]`, contiguous f32.
-    b: Tensor,
+    /// `A [r, in]`, packed (its one panel of 16 rows is zero-padded when r < 16).
+    a: PackedWeight,
+    /// `B [out, r]`, packed.
+    b: PackedWeight,
     scale: f64,
 }
 
 impl LowRank {
     /// Builds the pair from `A [r, in]`, `B [out, r]` and the scale `s = alpha / r`.
     pub fn new(a: Tensor, b: Tensor, scale: f64) -> Result<Self> {
-        let a = a.to_dtype(DType::F32)?.contiguous()?;
-        let b = b.to_dtype(DType::F32)?.contiguous()?;
         let (r, _) = a.dims2()?;
         let (_, rb) = b.dims2()?;
         if r != rb {
             candle_core::bail!("factor ranks differ: A has {r} rows, B has {rb} columns");
         }
-        Ok(Self { a, b, scale })
+        Ok(Self {
+            a: PackedWeight::from_tensor(&a)?,
+            b: PackedWeight::from_tensor(&b)?,
+            scale,
+        })
     }
 
     pub fn rank(&self) -> usize {
-        self.a.dims()[0]
+        self.a.out_features()
     }
 
     pub fn in_features(&self) -> usize {
-        self.a.dims()[1]
+        self.a.in_features()
     }
 
     pub fn out_features(&self) -> usize {
-        self.b.dims()[0]
+        self.b.out_features()
     }
 
     pub fn scale(&self) -> f64 {
         self.scale
     }
 
-    pub fn a(&self) -> &Tensor {
-        &self.a
+    /// `A [r, in]` as a new row-major tensor.
+    pub fn a(&self) -> Result<Tensor> {
+        self.a.to_tensor()
     }
 
-    pub fn b(&self) -> &Tensor {
-        &self.b
+    /// `B [out, r]` as a new row-major tensor.
+    pub fn b(&self) -> Result<Tensor> {
+        self.b.to_tensor()
     }
 
     /// Parameters held by the factors: `r * (in + out)`.
@@ -63,20 +68,20 @@ impl LowRank {
         self.rank() * (self.in_features() + self.out_features())
     }
 
-    /// Bytes the resident factors take.
+    /// Bytes the resident factors take in their packed layout (A's panel is padded to 16 rows
+    /// when the rank is lower).
     pub fn resident_bytes(&self) -> usize {
-        self.parameters() * std::mem::size_of::<f32>()
+        self.a.resident_bytes() + self.b.resident_bytes()
     }
 
     /// Adds the low-rank term to an output in place: `y[rows, out] += s (x A^T) B^T` for
-    /// `x [rows, in]` (row-major), with `y` rows `y_row_stride` apart. `scratch` is reused
-    /// across calls to hold `x A^T`.
+    /// `x [rows, in]` and `y [rows, out]` (both row-major). `scratch` is reused across calls to
+    /// hold `s x A^T`.
     pub fn add_delta_into(
         &self,
         x: &[f32],
         rows: usize,
         y: &mut [f32],
-        y_row_stride: usize,
         scratch: &mut Vec<f32>,
     ) -> Result<()> {
         let (r, inp, out) = (self.rank(), self.in_features(), self.out_features());
@@ -86,30 +91,16 @@ impl LowRank {
                 x.len()
             );
         }
+        if y.len() < rows * out {
+            candle_core::bail!("output holds {} values, expected {rows} x {out}", y.len());
+        }
         scratch.clear();
         scratch.resize(rows * r, 0.0);
-        with_f32(&self.a, |a| {
-            matmul_into(
-                scratch,
-                r,
-                MatRef::row_major(x, rows, inp),
-                MatRef::transposed(a, inp, r),
-                false,
-                1.0,
-                parallelism_for(rows, r, inp),
-            )
-        })?;
-        with_f32(&self.b, |b| {
-            matmul_into(
-                y,
-                y_row_stride,
-                MatRef::row_major(scratch, rows, r),
-                MatRef::transposed(b, r, out),
-                true,
-                self.scale as f32,
-                parallelism_for(rows, out, r),
-            )
-        })
+        packed_matmul(scratch, x, rows, &self.a, false);
+        let s = self.scale as f32;
+        scratch.iter_mut().for_each(|z| *z *= s);
+        packed_matmul(y, scratch, rows, &self.b, true);
+        Ok(())
     }
 
     /// The low-rank term `s B (A x)` for rows `x [n, in]`, giving `[n, out]`.
@@ -119,9 +110,7 @@ impl LowRank {
         let out = self.out_features();
         let mut y = vec![0f32; rows * out];
         let mut scratch = Vec::new();
-        with_f32(&x, |xs| {
-            self.add_delta_into(xs, rows, &mut y, out, &mut scratch)
-        })??;
+        with_f32(&x, |xs| self.add_delta_into(xs, rows, &mut y, &mut scratch))??;
         Tensor::from_vec(y, (rows, out), x.device())
     }
 
@@ -131,19 +120,17 @@ impl LowRank {
         if w.len() != out * inp {
             candle_core::bail!("weight holds {} values, expected {out} x {inp}", w.len());
         }
-        with_f32(&self.b, |b| {
-            with_f32(&self.a, |a| {
-                matmul_into(
-                    w,
-                    inp,
-                    MatRef::row_major(b, out, r),
-                    MatRef::row_major(a, r, inp),
-                    true,
-                    sign * self.scale as f32,
-                    parallelism_for(out, inp, r),
-                )
-            })
-        })?
+        let (a, b) = (self.a.unpack(), self.b.unpack());
+        matmul_into(
+            w,
+            inp,
+            MatRef::row_major(&b, out, r),
+            MatRef::row_major(&a, r, inp),
+            true,
+            sign * self.scale as f32,
+            parallelism_for(out, inp, r),
+        );
+        Ok(())
     }
 
     /// `W += s B A` in place, for a row-major `[out, in]` weight.
@@ -163,7 +150,7 @@ impl LowRank {
         Tensor::from_vec(
             w,
             (self.out_features(), self.in_features()),
-            self.a.device(),
+            &candle_core::Device::Cpu,
         )
     }
 
@@ -213,7 +200,7 @@ mod tests {
     #[test]
     fn update_equals_scaled_b_times_a_computed_by_candle() {
         let lr = pair(4, 24, 40);
-        let want = (lr.b().matmul(lr.a()).unwrap() * 2.0).unwrap();
+        let want = (lr.b().unwrap().matmul(&lr.a().unwrap()).unwrap() * 2.0).unwrap();
         assert!(max_abs_diff(&lr.update().unwrap(), &want) < 1e-5);
     }
 

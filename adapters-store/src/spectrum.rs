@@ -13,8 +13,8 @@ use crate::lowrank::LowRank;
 
 /// Singular values of `s B A`, largest first (`rank` of them, some possibly zero).
 pub fn singular_values(lr: &LowRank) -> Result<Vec<f64>> {
-    let a = lr.a().to_dtype(DType::F64)?;
-    let b = lr.b().to_dtype(DType::F64)?;
+    let a = lr.a()?.to_dtype(DType::F64)?;
+    let b = lr.b()?.to_dtype(DType::F64)?;
     let ga = gram(&a.matmul(&a.t()?)?)?;
     let gb = gram(&b.t()?.matmul(&b)?)?;
     Ok(singular_values_from_grams(&ga, &gb, lr.rank(), lr.scale()))

@@ -88,7 +88,7 @@ pub fn whole_tag(adapter: &switchyard_adapters::Adapter) -> f32 {
         .unwrap();
     let mut sites = 0;
     for (site, lr) in adapter.sites() {
-        for t in [lr.a(), lr.b()] {
+        for t in [lr.a().unwrap(), lr.b().unwrap()] {
             let v = t.flatten_all().unwrap().to_vec1::<f32>().unwrap();
             assert!(
                 v.iter().all(|x| *x == tag),

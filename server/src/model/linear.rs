@@ -225,7 +225,6 @@ impl AdaptedLinear {
                         &xs[run.start * in_dim..run.end * in_dim],
                         run.len(),
                         &mut y[run.start * out_dim..run.end * out_dim],
-                        out_dim,
                         scratch,
                     )?;
                 }
