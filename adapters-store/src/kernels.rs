@@ -323,8 +323,40 @@ impl PackedWeight {
 /// weights are read from memory once per call whatever the row count. Allocates nothing in
 /// steady state.
 pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accumulate: bool) {
+    packed_matmul_with(y, x, m, w, accumulate, &[]);
+}
+
+/// A low-rank term the kernel adds to some rows of its output: rows `rows` (of the call's `m`)
+/// get `z B^T`, with `z [rows.len(), r]` row-major (the caller's `s x A^T`) and `B [out, r]`
+/// packed.
+#[derive(Debug, Clone)]
+pub struct RowTerm<'a> {
+    pub rows: std::ops::Range<usize>,
+    pub z: &'a [f32],
+    pub b: &'a PackedWeight,
+}
+
+/// [`packed_matmul`] plus low-rank terms on runs of rows, fused: each register tile of a term's
+/// rows, once its base product is done, runs the term's `r` extra steps on the same output tile
+/// while it is still in L1, so the terms cost their arithmetic and no extra pass over the output.
+/// The terms' row ranges must not overlap.
+pub fn packed_matmul_with(
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    terms: &[RowTerm<'_>],
+) {
     use rayon::prelude::*;
     let (n, k) = (w.out, w.inp);
+    for t in terms {
+        let r = t.b.inp;
+        assert!(
+            t.rows.end <= m && t.b.out == n && t.z.len() >= t.rows.len() * r,
+            "a low-rank term does not fit the product"
+        );
+    }
     assert!(
         x.len() >= m * k && y.len() >= m * n,
         "a matrix does not fit its slice"
@@ -336,8 +368,11 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
         if !accumulate {
             y[..m * n].fill(0.0);
         }
-        return;
+        if terms.is_empty() {
+            return;
+        }
     }
+    let accumulate = accumulate || k == 0;
     let fast = use_avx2();
     let panels = n.div_ceil(PANEL);
     let threads = rayon_threads();
@@ -345,16 +380,22 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
     let y = &mut y[..m * n];
     let row_blocks = m.div_ceil(BLOCK_ROWS);
     if threads <= 1 || m * n * k < (1 << 20) {
-        for (yb, xb) in y.chunks_mut(BLOCK_ROWS * n).zip(x.chunks(BLOCK_ROWS * k)) {
-            panels_into(yb, n, xb, k, xb.len() / k, w, 0..panels, accumulate, fast);
+        for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
+            let rows = yb.len() / n;
+            let xb = &x[i * BLOCK_ROWS * k..];
+            let part = Part::new(i * BLOCK_ROWS, terms);
+            panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast);
         }
         return;
     }
     if row_blocks >= 2 * threads {
         y.par_chunks_mut(BLOCK_ROWS * n)
-            .zip(x.par_chunks(BLOCK_ROWS * k))
-            .for_each(|(yb, xb)| {
-                panels_into(yb, n, xb, k, xb.len() / k, w, 0..panels, accumulate, fast)
+            .enumerate()
+            .for_each(|(i, yb)| {
+                let rows = yb.len() / n;
+                let xb = &x[i * BLOCK_ROWS * k..];
+                let part = Part::new(i * BLOCK_ROWS, terms);
+                panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast)
             });
         return;
     }
@@ -371,7 +412,8 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
             let p0 = b * per;
             let width = out.len() / m;
             let p1 = p0 + width / PANEL;
-            panels_into(out, width, x, k, m, w, p0..p1, false, fast);
+            let part = Part::new(0, terms);
+            panels_into(out, width, x, k, m, w, p0..p1, false, &part, fast);
         });
     for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
         let j0 = b * per * PANEL;
@@ -436,15 +478,59 @@ pub fn packed_matmul_strided(
             w,
             0..panels,
             accumulate,
+            &Part::new(0, &[]),
             fast,
         );
         i0 += rows;
     }
 }
 
+/// The rows one [`panels_into`] call covers (`first..first + m` of the whole product) and the
+/// low-rank terms that touch them.
+struct Part<'a, 'b> {
+    first: usize,
+    terms: &'b [RowTerm<'a>],
+}
+
+impl<'a, 'b> Part<'a, 'b> {
+    fn new(first: usize, terms: &'b [RowTerm<'a>]) -> Self {
+        Self { first, terms }
+    }
+
+    /// Rows from local row `i` that share one term (or none), at most `max`.
+    fn run(&self, i: usize, max: usize) -> (usize, Option<&RowTerm<'a>>) {
+        let g = self.first + i;
+        let mut len = max;
+        let mut here = None;
+        for t in self.terms {
+            if t.rows.contains(&g) {
+                len = len.min(t.rows.end - g);
+                here = Some(t);
+            } else if t.rows.start > g {
+                len = len.min(t.rows.start - g);
+            }
+        }
+        (len, here)
+    }
+}
+
+/// One register tile through the kernel for its row count.
+#[inline]
+fn tile_dispatch(r: usize, t: &Tile<'_>, c: &mut [f32], fast: bool) {
+    match r {
+        6 => packed_tile::<6>(t, c, fast),
+        5 => packed_tile::<5>(t, c, fast),
+        4 => packed_tile::<4>(t, c, fast),
+        3 => packed_tile::<3>(t, c, fast),
+        2 => packed_tile::<2>(t, c, fast),
+        _ => packed_tile::<1>(t, c, fast),
+    }
+}
+
 /// Panels `panels` of `w` for all `m` rows of `x` (rows `lda` apart), into `out` (row stride
 /// `stride`), whose column 0 is the first column of panel `panels.start`. Columns past `w`'s last
-/// are not written.
+/// are not written. With the last inner block of each tile, the tile's low-rank term (if its
+/// rows have one) runs on the same output tile.
 #[allow(clippy::too_many_arguments)]
 fn panels_into(
     out: &mut [f32],
@@ -455,10 +541,13 @@ fn panels_into(
     w: &PackedWeight,
     panels: std::ops::Range<usize>,
     accumulate: bool,
+    part: &Part<'_, '_>,
     fast: bool,
 ) {
     let (n, k) = (w.out, w.inp);
-    let tiles = |a_col: usize,
+    #[allow(clippy::too_many_arguments)]
+    let tiles = |p: usize,
+                 a_col: usize,
                  kb: usize,
                  b: &[f32],
                  next: &[f32],
@@ -466,28 +555,40 @@ fn panels_into(
                  cols: usize,
                  acc: bool,
                  out: &mut [f32]| {
+        let last = a_col + kb == k;
         let mut i = 0;
         while i < m {
-            let r = (m - i).min(TILE_ROWS);
-            let a = &x[i * lda + a_col..];
+            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
             let c = &mut out[i * stride + col..];
-            let t = Tile {
-                a,
-                lda,
-                kb,
-                b,
-                next,
-                ldc: stride,
-                cols,
-                acc,
-            };
-            match r {
-                6 => packed_tile::<6>(&t, c, fast),
-                5 => packed_tile::<5>(&t, c, fast),
-                4 => packed_tile::<4>(&t, c, fast),
-                3 => packed_tile::<3>(&t, c, fast),
-                2 => packed_tile::<2>(&t, c, fast),
-                _ => packed_tile::<1>(&t, c, fast),
+            if kb > 0 {
+                let t = Tile {
+                    a: &x[i * lda + a_col..],
+                    lda,
+                    kb,
+                    b,
+                    next,
+                    ldc: stride,
+                    cols,
+                    acc,
+                };
+                tile_dispatch(r, &t, c, fast);
+            }
+            if let Some(term) = term.filter(|_| last) {
+                let rank = term.b.inp;
+                let local = part.first + i - term.rows.start;
+                let base = p * PANEL * rank;
+                let bp = &term.b.data[base..base + rank * PANEL];
+                let t = Tile {
+                    a: &term.z[local * rank..],
+                    lda: rank,
+                    kb: rank,
+                    b: bp,
+                    next: bp,
+                    ldc: stride,
+                    cols,
+                    acc: acc || kb > 0,
+                };
+                tile_dispatch(r, &t, c, fast);
             }
             i += r;
         }
@@ -515,8 +616,11 @@ fn panels_into(
                     let ahead = (start + kb * PANEL).min(w.data.len() - kb * PANEL);
                     &w.data[ahead..ahead + kb * PANEL]
                 };
-                tiles(k0, kb, b, next, col, cols, accumulate || k0 > 0, out);
+                tiles(p, k0, kb, b, next, col, cols, accumulate || k0 > 0, out);
                 k0 += kb;
+            }
+            if k == 0 {
+                tiles(p, 0, 0, &[], &[], col, cols, accumulate, out);
             }
         }
         return;
@@ -530,9 +634,25 @@ fn panels_into(
             let base = p * PANEL * k;
             let b = &w.data[base + k0 * PANEL..base + (k0 + kb) * PANEL];
             let col = (p - panels.start) * PANEL;
-            tiles(k0, kb, b, b, col, cols, acc, out);
+            tiles(p, k0, kb, b, b, col, cols, acc, out);
         }
         k0 += kb;
+    }
+    if k == 0 {
+        for p in panels.clone() {
+            let col = (p - panels.start) * PANEL;
+            tiles(
+                p,
+                0,
+                0,
+                &[],
+                &[],
+                col,
+                PANEL.min(n - p * PANEL),
+                accumulate,
+                out,
+            );
+        }
     }
 }
 
@@ -1155,6 +1275,7 @@ mod tests {
                 w,
                 0..panels,
                 acc,
+                &Part::new(0, &[]),
                 fast,
             );
         }
@@ -1236,6 +1357,73 @@ mod tests {
             for (g, e) in got.iter().zip(&want) {
                 assert!((g - e).abs() < 1e-3 * (1.0 + e.abs()), "m={m}: {g} vs {e}");
             }
+        }
+    }
+
+    #[test]
+    fn fused_low_rank_terms_add_to_their_rows_only_on_every_path() {
+        // Runs that start and end inside register tiles, a run with no term between them, on
+        // the single-threaded, row-block and split-panel paths.
+        for &(m, k, n) in &[(20, 33, 40), (150, 301, 37), (9, 301, 1037), (300, 384, 64)] {
+            let r = 5;
+            let x = values(m * k, 81);
+            let w = values(n * k, 82);
+            let b = values(n * r, 83);
+            let packed_b = PackedWeight::pack(&b, n, r);
+            let runs = [1..4, 7..(m * 2 / 3), (m * 2 / 3 + 1)..m];
+            let zs: Vec<Vec<f32>> = runs
+                .iter()
+                .enumerate()
+                .map(|(i, run)| values(run.len() * r, 90 + i as u32))
+                .collect();
+            let terms: Vec<RowTerm<'_>> = runs
+                .iter()
+                .zip(&zs)
+                .map(|(run, z)| RowTerm {
+                    rows: run.clone(),
+                    z,
+                    b: &packed_b,
+                })
+                .collect();
+            let mut want = reference_rows(&x, &w, m, k, n);
+            for (run, z) in runs.iter().zip(&zs) {
+                let delta = reference_rows(z, &b, run.len(), r, n);
+                for (i, row) in run.clone().enumerate() {
+                    for j in 0..n {
+                        want[row * n + j] += delta[i * n + j];
+                    }
+                }
+            }
+            let mut got = vec![3.0; m * n];
+            packed_matmul_with(
+                &mut got,
+                &x,
+                m,
+                &PackedWeight::pack(&w, n, k),
+                false,
+                &terms,
+            );
+            for (i, (g, e)) in got.iter().zip(&want).enumerate() {
+                assert!(
+                    (g - e).abs() < 1e-3 * (1.0 + e.abs()),
+                    "{m}x{k}x{n} at row {}: {g} vs {e}",
+                    i / n
+                );
+            }
+            // An empty base (k = 0) leaves just the terms, on zeros.
+            let mut only = vec![3.0; m * n];
+            let empty = PackedWeight::pack(&[], n, 0);
+            packed_matmul_with(&mut only, &[], m, &empty, false, &terms);
+            for (run, z) in runs.iter().zip(&zs) {
+                let delta = reference_rows(z, &b, run.len(), r, n);
+                for (i, row) in run.clone().enumerate() {
+                    for j in 0..n {
+                        let g = only[row * n + j];
+                        assert!((g - delta[i * n + j]).abs() < 1e-4, "k = 0: {g}");
+                    }
+                }
+            }
+            assert!(only[..n].iter().all(|v| *v == 0.0), "row 0 has no term");
         }
     }
 

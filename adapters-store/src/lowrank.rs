@@ -103,6 +103,30 @@ impl LowRank {
         Ok(())
     }
 
+    /// `z = s x A^T` for `x [rows, in]` into `z [rows, r]` (row-major): the first half of the
+    /// term, for [`crate::kernels::packed_matmul_with`] to finish through [`LowRank::packed_b`]
+    /// inside the base product.
+    pub fn scaled_down(&self, x: &[f32], rows: usize, z: &mut [f32]) -> Result<()> {
+        let (r, inp) = (self.rank(), self.in_features());
+        if x.len() < rows * inp || z.len() < rows * r {
+            candle_core::bail!(
+                "activation holds {} values for {rows} x {inp}, scratch {} for {rows} x {r}",
+                x.len(),
+                z.len()
+            );
+        }
+        let z = &mut z[..rows * r];
+        packed_matmul(z, x, rows, &self.a, false);
+        let s = self.scale as f32;
+        z.iter_mut().for_each(|v| *v *= s);
+        Ok(())
+    }
+
+    /// `B [out, r]`, packed.
+    pub fn packed_b(&self) -> &PackedWeight {
+        &self.b
+    }
+
     /// The low-rank term `s B (A x)` for rows `x [n, in]`, giving `[n, out]`.
     pub fn delta(&self, x: &Tensor) -> Result<Tensor> {
         let x = x.to_dtype(DType::F32)?.contiguous()?;

@@ -12,7 +12,7 @@ use std::ops::Range;
 use std::sync::Arc;
 
 use candle_core::{DType, Result, Tensor};
-use switchyard_adapters::kernels::{PackedWeight, packed_matmul, with_f32};
+use switchyard_adapters::kernels::{PackedWeight, RowTerm, packed_matmul_with, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
@@ -214,23 +214,45 @@ impl AdaptedLinear {
             Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
             None => vec![0f32; rows * out_dim],
         };
-        packed_matmul(&mut y, xs, rows, weight, self.bias.is_some());
-        SCRATCH.with_borrow_mut(|scratch| -> Result<()> {
+        // Each run of rows that carries an adapter with a factor pair here: `z = s x A^T` into
+        // one shared scratch buffer, then the base product with every run's `z B^T` fused in.
+        // Taken out of the thread-local, not borrowed: a rayon wait inside may run other work here.
+        let mut scratch = SCRATCH.with_borrow_mut(std::mem::take);
+        let done = (|| -> Result<()> {
+            let mut runs = Vec::new();
+            let mut len = 0;
             for group in &adapters.groups {
                 let Some(lr) = group.adapter.factors(&self.site) else {
                     continue;
                 };
                 for run in &group.runs {
-                    lr.add_delta_into(
-                        &xs[run.start * in_dim..run.end * in_dim],
-                        run.len(),
-                        &mut y[run.start * out_dim..run.end * out_dim],
-                        scratch,
-                    )?;
+                    runs.push((run.clone(), lr, len));
+                    len += run.len() * lr.rank();
                 }
             }
+            scratch.clear();
+            scratch.resize(len, 0.0);
+            for (run, lr, at) in &runs {
+                let r = lr.rank();
+                lr.scaled_down(
+                    &xs[run.start * in_dim..run.end * in_dim],
+                    run.len(),
+                    &mut scratch[*at..*at + run.len() * r],
+                )?;
+            }
+            let terms: Vec<RowTerm<'_>> = runs
+                .iter()
+                .map(|(run, lr, at)| RowTerm {
+                    rows: run.clone(),
+                    z: &scratch[*at..*at + run.len() * lr.rank()],
+                    b: lr.packed_b(),
+                })
+                .collect();
+            packed_matmul_with(&mut y, xs, rows, weight, self.bias.is_some(), &terms);
             Ok(())
-        })?;
+        })();
+        SCRATCH.with_borrow_mut(|s| *s = scratch);
+        done?;
         Ok(y)
     }
 }
