@@ -10,7 +10,7 @@
 
 use candle_core::{DType, Result, Tensor};
 
-use crate::kernels::{MatRef, PackedWeight, matmul_into, packed_matmul, parallelism_for, with_f32};
+use crate::kernels::{PackedWeight, packed_matmul, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
@@ -144,16 +144,16 @@ impl LowRank {
         if w.len() != out * inp {
             candle_core::bail!("weight holds {} values, expected {out} x {inp}", w.len());
         }
-        let (a, b) = (self.a.unpack(), self.b.unpack());
-        matmul_into(
-            w,
-            inp,
-            MatRef::row_major(&b, out, r),
-            MatRef::row_major(&a, r, inp),
-            true,
-            sign * self.scale as f32,
-            parallelism_for(out, inp, r),
-        );
+        // W [out, in] += (sign s B) [out, r] times A [r, in]: the projection kernel with B's rows
+        // as its input rows and A^T [in, r] as its weight, accumulating onto W, so W is read and
+        // written once, in row blocks across the threads.
+        let a = self.a.unpack();
+        let mut b = self.b.unpack();
+        let s = sign * self.scale as f32;
+        b.iter_mut().for_each(|v| *v *= s);
+        let mut a_t = PackedWeight::empty();
+        a_t.repack_strided(&a, inp, r, 1, inp);
+        packed_matmul(w, &b, out, &a_t, true);
         Ok(())
     }
 
