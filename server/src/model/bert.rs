@@ -8,7 +8,8 @@ use candle_core::{D, DType, Result, Tensor};
 use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
 use serde::Deserialize;
 use switchyard_adapters::kernels::{
-    PackedWeight, gelu_erf_in_place, packed_matmul_strided, softmax_rows_in_place, with_f32,
+    PackedWeight, add_layer_norm_in_place, gelu_erf_in_place, packed_matmul_strided,
+    softmax_rows_in_place, with_f32,
 };
 use switchyard_adapters::{BaseSpec, Module, Site};
 
@@ -85,10 +86,10 @@ struct Layer {
     k: AdaptedLinear,
     v: AdaptedLinear,
     o: AdaptedLinear,
-    attn_norm: LayerNorm,
+    attn_norm: Norm,
     up: AdaptedLinear,
     down: AdaptedLinear,
-    out_norm: LayerNorm,
+    out_norm: Norm,
     heads: usize,
     act: Activation,
 }
@@ -118,14 +119,10 @@ impl Layer {
             k: lin(Module::AttnK, h, h, vb.pp("attention.self.key"))?,
             v: lin(Module::AttnV, h, h, vb.pp("attention.self.value"))?,
             o: lin(Module::AttnO, h, h, vb.pp("attention.output.dense"))?,
-            attn_norm: candle_nn::layer_norm(
-                h,
-                cfg.layer_norm_eps,
-                vb.pp("attention.output.LayerNorm"),
-            )?,
+            attn_norm: Norm::load(h, cfg.layer_norm_eps, vb.pp("attention.output.LayerNorm"))?,
             up: lin(Module::MlpUp, h, i, vb.pp("intermediate.dense"))?,
             down: lin(Module::MlpDown, i, h, vb.pp("output.dense"))?,
-            out_norm: candle_nn::layer_norm(h, cfg.layer_norm_eps, vb.pp("output.LayerNorm"))?,
+            out_norm: Norm::load(h, cfg.layer_norm_eps, vb.pp("output.LayerNorm"))?,
             heads: cfg.num_attention_heads,
             act,
         })
@@ -136,38 +133,70 @@ impl Layer {
     }
 
     /// `x [b, t, h]`; `key_bias [b, t]` is added to every score of that key (0 for a real
-    /// token, a large negative number for padding).
+    /// token, a large negative number for padding). Everything after the embeddings runs on
+    /// plain slices: the projections write straight into their buffers, the activation and the
+    /// residual add with its layer norm run in place.
     fn forward(&self, x: &Tensor, key_bias: &[f32], adapters: &RowAdapters) -> Result<Tensor> {
         let (b, t, h) = x.dims3()?;
+        let rows = b * t;
         let x = x.contiguous()?;
-        let (q, k, v) = with_f32(&x, |xs| -> Result<_> {
-            Ok((
-                self.q.forward_rows(xs, b * t, adapters)?,
-                self.k.forward_rows(xs, b * t, adapters)?,
-                self.v.forward_rows(xs, b * t, adapters)?,
-            ))
+        let attn = with_f32(&x, |xs| -> Result<Vec<f32>> {
+            let q = self.q.forward_rows(xs, rows, adapters)?;
+            let k = self.k.forward_rows(xs, rows, adapters)?;
+            let v = self.v.forward_rows(xs, rows, adapters)?;
+            let ctx = attention(&q, &k, &v, key_bias, b, t, h, self.heads);
+            let mut attn = self.o.forward_rows(&ctx, rows, adapters)?;
+            self.attn_norm.apply(&mut attn, xs)?;
+            Ok(attn)
         })??;
-        let ctx = attention(&q, &k, &v, key_bias, b, t, h, self.heads);
-        let ctx = Tensor::from_vec(ctx, (b, t, h), x.device())?;
-        let x = &x;
-        let attn = self
-            .attn_norm
-            .forward(&(self.o.forward(&ctx, adapters)? + x)?)?;
-        let inner = match self.act {
-            Activation::GeluErf => {
-                // The projection and the exact GELU on one buffer, in place.
-                let attn = attn.contiguous()?;
-                let rows = b * t;
-                let mut inner = with_f32(&attn, |a| self.up.forward_rows(a, rows, adapters))??;
-                gelu_erf_in_place(&mut inner);
-                let width = inner.len() / rows.max(1);
-                Tensor::from_vec(inner, (b, t, width), attn.device())?
-            }
-            Activation::GeluTanh => self.up.forward(&attn, adapters)?.gelu()?,
-            Activation::Relu => self.up.forward(&attn, adapters)?.relu()?,
+        let mut inner = self.up.forward_rows(&attn, rows, adapters)?;
+        match self.act {
+            Activation::GeluErf => gelu_erf_in_place(&mut inner),
+            Activation::GeluTanh => inner.iter_mut().for_each(|v| {
+                let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);
+                *v = 0.5 * *v * (1.0 + u.tanh());
+            }),
+            Activation::Relu => inner.iter_mut().for_each(|v| *v = v.max(0.0)),
+        }
+        let mut out = self.down.forward_rows(&inner, rows, adapters)?;
+        self.out_norm.apply(&mut out, &attn)?;
+        Tensor::from_vec(out, (b, t, h), x.device())
+    }
+}
+
+/// A layer norm's parameters as plain vectors, applied after a residual add in place.
+struct Norm {
+    gamma: Vec<f32>,
+    beta: Vec<f32>,
+    eps: f32,
+}
+
+impl Norm {
+    fn load(size: usize, eps: f64, vb: VarBuilder) -> Result<Self> {
+        let ln = candle_nn::layer_norm(size, eps, vb)?;
+        let gamma = ln.weight().to_dtype(DType::F32)?.to_vec1()?;
+        let beta = match ln.bias() {
+            Some(b) => b.to_dtype(DType::F32)?.to_vec1()?,
+            None => vec![0.0; size],
         };
-        self.out_norm
-            .forward(&(self.down.forward(&inner, adapters)? + attn)?)
+        Ok(Self {
+            gamma,
+            beta,
+            eps: ln.eps() as f32,
+        })
+    }
+
+    /// `x <- LayerNorm(x + residual)`.
+    fn apply(&self, x: &mut [f32], residual: &[f32]) -> Result<()> {
+        if x.len() != residual.len() || x.len() % self.gamma.len() != 0 {
+            candle_core::bail!(
+                "layer norm over {} values with a residual of {}",
+                x.len(),
+                residual.len()
+            );
+        }
+        add_layer_norm_in_place(x, residual, &self.gamma, &self.beta, self.eps);
+        Ok(())
     }
 }
 
