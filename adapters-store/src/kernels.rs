@@ -1117,7 +1117,10 @@ pub fn add_layer_norm_in_place(
     use rayon::prelude::*;
     let width = gamma.len();
     assert!(
-        width > 0 && beta.len() == width && residual.len() == x.len() && x.len() % width == 0,
+        width > 0
+            && beta.len() == width
+            && residual.len() == x.len()
+            && x.len().is_multiple_of(width),
         "layer norm shapes disagree"
     );
     let fast = use_avx2();
@@ -1144,11 +1147,9 @@ fn norm_rows(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f32], eps: 
     for (row, res) in x.chunks_mut(width).zip(residual.chunks(width)) {
         // Eight partial sums, so the loop vectorises without reordering one sum.
         let mut acc = [0f32; 8];
-        let mut i = 0;
-        for (v, r) in row.iter_mut().zip(res) {
+        for (i, (v, r)) in row.iter_mut().zip(res).enumerate() {
             *v += r;
             acc[i % 8] += *v;
-            i += 1;
         }
         let mean = acc.iter().sum::<f32>() / width as f32;
         let mut sq = [0f32; 8];

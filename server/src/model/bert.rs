@@ -188,7 +188,7 @@ impl Norm {
 
     /// `x <- LayerNorm(x + residual)`.
     fn apply(&self, x: &mut [f32], residual: &[f32]) -> Result<()> {
-        if x.len() != residual.len() || x.len() % self.gamma.len() != 0 {
+        if x.len() != residual.len() || !x.len().is_multiple_of(self.gamma.len()) {
             candle_core::bail!(
                 "layer norm over {} values with a residual of {}",
                 x.len(),
