@@ -169,6 +169,8 @@ const TILE_ROWS: usize = 6;
 const BLOCK_K: usize = 384;
 /// Inner-dimension block when all rows fit one row block (decode): 128 x 16 floats (8 KB).
 const SMALL_BLOCK_K: usize = 128;
+/// Inner dimensions up to this go tile by tile through every panel (see [`panels_into`]).
+const SHORT_K: usize = 64;
 /// Rows per task: 72 x 384 floats of input (108 KB) stay in L2 while every panel passes.
 const BLOCK_ROWS: usize = 72;
 
@@ -546,6 +548,53 @@ fn panels_into(
 ) {
     let (n, k) = (w.out, w.inp);
     #[allow(clippy::too_many_arguments)]
+    // One register tile: rows i..i + r against panel p's block, then the rows' low-rank term
+    // with the last block.
+    let one = |p: usize,
+               i: usize,
+               r: usize,
+               term: Option<&RowTerm<'_>>,
+               a_col: usize,
+               kb: usize,
+               b: &[f32],
+               next: &[f32],
+               col: usize,
+               cols: usize,
+               acc: bool,
+               out: &mut [f32]| {
+        let c = &mut out[i * stride + col..];
+        if kb > 0 {
+            let t = Tile {
+                a: &x[i * lda + a_col..],
+                lda,
+                kb,
+                b,
+                next,
+                ldc: stride,
+                cols,
+                acc,
+            };
+            tile_dispatch(r, &t, c, fast);
+        }
+        if let Some(term) = term.filter(|_| a_col + kb == k) {
+            let rank = term.b.inp;
+            let local = part.first + i - term.rows.start;
+            let base = p * PANEL * rank;
+            let bp = &term.b.data[base..base + rank * PANEL];
+            let t = Tile {
+                a: &term.z[local * rank..],
+                lda: rank,
+                kb: rank,
+                b: bp,
+                next: bp,
+                ldc: stride,
+                cols,
+                acc: acc || kb > 0,
+            };
+            tile_dispatch(r, &t, c, fast);
+        }
+    };
+    #[allow(clippy::too_many_arguments)]
     let tiles = |p: usize,
                  a_col: usize,
                  kb: usize,
@@ -555,44 +604,31 @@ fn panels_into(
                  cols: usize,
                  acc: bool,
                  out: &mut [f32]| {
-        let last = a_col + kb == k;
         let mut i = 0;
         while i < m {
             let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
-            let c = &mut out[i * stride + col..];
-            if kb > 0 {
-                let t = Tile {
-                    a: &x[i * lda + a_col..],
-                    lda,
-                    kb,
-                    b,
-                    next,
-                    ldc: stride,
-                    cols,
-                    acc,
-                };
-                tile_dispatch(r, &t, c, fast);
-            }
-            if let Some(term) = term.filter(|_| last) {
-                let rank = term.b.inp;
-                let local = part.first + i - term.rows.start;
-                let base = p * PANEL * rank;
-                let bp = &term.b.data[base..base + rank * PANEL];
-                let t = Tile {
-                    a: &term.z[local * rank..],
-                    lda: rank,
-                    kb: rank,
-                    b: bp,
-                    next: bp,
-                    ldc: stride,
-                    cols,
-                    acc: acc || kb > 0,
-                };
-                tile_dispatch(r, &t, c, fast);
-            }
+            one(p, i, r, term, a_col, kb, b, next, col, cols, acc, out);
             i += r;
         }
     };
+    if k <= SHORT_K {
+        // A short inner dimension (merging a low-rank update, k = r): the output is most of
+        // the traffic, so each tile's rows go through every panel in turn and the output is
+        // streamed once, row block by row block, front to back.
+        let mut i = 0;
+        while i < m {
+            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
+            for p in panels.clone() {
+                let base = p * PANEL * k;
+                let b = &w.data[base..base + k * PANEL];
+                let col = (p - panels.start) * PANEL;
+                let cols = PANEL.min(n - p * PANEL);
+                one(p, i, r, term, 0, k, b, b, col, cols, accumulate, out);
+            }
+            i += r;
+        }
+        return;
+    }
     if m <= BLOCK_ROWS {
         // Few rows: panel by panel, front to back through the packed weight in short blocks,
         // so memory is read as one sequential stream, spread evenly over the arithmetic, and
@@ -618,9 +654,6 @@ fn panels_into(
                 };
                 tiles(p, k0, kb, b, next, col, cols, accumulate || k0 > 0, out);
                 k0 += kb;
-            }
-            if k == 0 {
-                tiles(p, 0, 0, &[], &[], col, cols, accumulate, out);
             }
         }
         return;
