@@ -119,9 +119,7 @@ pub fn matmul_into(
     );
     if k == 0 {
         if !accumulate {
-            for row in dst.chunks_mut(dst_row_stride).take(m) {
-                row[..n].fill(0.0);
-            }
+            zero_rows(dst, dst_row_stride, m, n);
         }
         return;
     }
@@ -150,6 +148,14 @@ pub fn matmul_into(
             false,
             parallelism,
         );
+    }
+}
+
+/// The first `n` values of each of `m` rows `stride` apart set to zero: a product with an empty
+/// inner dimension.
+fn zero_rows(y: &mut [f32], stride: usize, m: usize, n: usize) {
+    for row in y.chunks_mut(stride).take(m) {
+        row[..n].fill(0.0);
     }
 }
 
@@ -196,17 +202,9 @@ impl PackedWeight {
     /// Packs a row-major `w [out, inp]`.
     pub fn pack(w: &[f32], out: usize, inp: usize) -> Self {
         assert!(w.len() >= out * inp, "weight does not fit its slice");
-        let panels = out.div_ceil(PANEL);
-        let mut data = vec![0f32; panels * PANEL * inp];
-        for (p, panel) in data.chunks_mut(PANEL * inp.max(1)).enumerate().take(panels) {
-            for c in 0..PANEL.min(out - p * PANEL) {
-                let row = &w[(p * PANEL + c) * inp..(p * PANEL + c + 1) * inp];
-                for (kk, &v) in row.iter().enumerate() {
-                    panel[kk * PANEL + c] = v;
-                }
-            }
-        }
-        Self { data, out, inp }
+        let mut packed = Self::empty();
+        packed.repack_strided(w, out, inp, inp, 1);
+        packed
     }
 
     /// Packs a contiguous f32 CPU tensor `[out, inp]`.
@@ -385,7 +383,7 @@ pub fn packed_matmul_with(
         for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
             let rows = yb.len() / n;
             let xb = &x[i * BLOCK_ROWS * k..];
-            let part = Part::new(i * BLOCK_ROWS, terms);
+            let part = Part::new(i * BLOCK_ROWS, rows, terms);
             panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast);
         }
         return;
@@ -396,7 +394,7 @@ pub fn packed_matmul_with(
             .for_each(|(i, yb)| {
                 let rows = yb.len() / n;
                 let xb = &x[i * BLOCK_ROWS * k..];
-                let part = Part::new(i * BLOCK_ROWS, terms);
+                let part = Part::new(i * BLOCK_ROWS, rows, terms);
                 panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast)
             });
         return;
@@ -414,7 +412,7 @@ pub fn packed_matmul_with(
             let p0 = b * per;
             let width = out.len() / m;
             let p1 = p0 + width / PANEL;
-            let part = Part::new(0, terms);
+            let part = Part::new(0, m, terms);
             panels_into(out, width, x, k, m, w, p0..p1, false, &part, fast);
         });
     for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
@@ -460,9 +458,7 @@ pub fn packed_matmul_strided(
     );
     if k == 0 {
         if !accumulate {
-            for row in y.chunks_mut(y_stride).take(m) {
-                row[..n].fill(0.0);
-            }
+            zero_rows(y, y_stride, m, n);
         }
         return;
     }
@@ -480,7 +476,7 @@ pub fn packed_matmul_strided(
             w,
             0..panels,
             accumulate,
-            &Part::new(0, &[]),
+            &Part::new(0, rows, &[]),
             fast,
         );
         i0 += rows;
@@ -491,11 +487,16 @@ pub fn packed_matmul_strided(
 /// low-rank terms that touch them.
 struct Part<'a, 'b> {
     first: usize,
-    terms: &'b [RowTerm<'a>],
+    terms: Vec<&'b RowTerm<'a>>,
 }
 
 impl<'a, 'b> Part<'a, 'b> {
-    fn new(first: usize, terms: &'b [RowTerm<'a>]) -> Self {
+    /// Keeps only the terms that overlap rows `first..first + m`, so each tile looks at a few.
+    fn new(first: usize, m: usize, terms: &'b [RowTerm<'a>]) -> Self {
+        let terms = terms
+            .iter()
+            .filter(|t| t.rows.start < first + m && t.rows.end > first)
+            .collect();
         Self { first, terms }
     }
 
@@ -504,7 +505,7 @@ impl<'a, 'b> Part<'a, 'b> {
         let g = self.first + i;
         let mut len = max;
         let mut here = None;
-        for t in self.terms {
+        for t in self.terms.iter().copied() {
             if t.rows.contains(&g) {
                 len = len.min(t.rows.end - g);
                 here = Some(t);
@@ -1390,7 +1391,7 @@ mod tests {
                 w,
                 0..panels,
                 acc,
-                &Part::new(0, &[]),
+                &Part::new(0, xb.len() / w.inp, &[]),
                 fast,
             );
         }

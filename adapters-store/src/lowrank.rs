@@ -96,9 +96,7 @@ impl LowRank {
         }
         scratch.clear();
         scratch.resize(rows * r, 0.0);
-        packed_matmul(scratch, x, rows, &self.a, false);
-        let s = self.scale as f32;
-        scratch.iter_mut().for_each(|z| *z *= s);
+        self.scaled_down(x, rows, scratch)?;
         packed_matmul(y, scratch, rows, &self.b, true);
         Ok(())
     }
