@@ -160,9 +160,9 @@ fn zero_rows(y: &mut [f32], stride: usize, m: usize, n: usize) {
 }
 
 thread_local! {
-    /// Per-thread scratch of [`packed_matmul`]'s few-rows path, reused so a call allocates
-    /// nothing in steady state.
-    static ROWS_SCRATCH: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+    /// Per-thread buffers of the projection kernel (packed input rows, low-rank down products,
+    /// the few-rows path's output blocks), reused so a call allocates nothing in steady state.
+    static BUFFERS: std::cell::RefCell<Buffers> = std::cell::RefCell::new(Buffers::default());
 }
 
 /// Output columns per panel of a [`PackedWeight`]: two AVX2 vectors.
@@ -170,14 +170,15 @@ pub const PANEL: usize = 16;
 /// Input rows per register tile: 6 rows x 2 vectors is 12 accumulators, which with the two
 /// weight vectors and one broadcast fills the 16 AVX2 registers.
 const TILE_ROWS: usize = 6;
-/// Inner-dimension block: one panel's slice of it (384 x 16 floats, 24 KB) stays in L1 while
-/// every row tile of a task passes over it.
+/// Inner-dimension block of the many-rows path: one panel's slice of it (384 x 16 floats,
+/// 24 KB) stays in L1 while every row tile passes over it.
 const BLOCK_K: usize = 384;
-/// Inner-dimension block when all rows fit one row block (decode): 128 x 16 floats (8 KB).
+/// Inner-dimension block when the rows fit one row block: 128 x 16 floats (8 KB), the next one
+/// fetched while this one computes.
 const SMALL_BLOCK_K: usize = 128;
-/// Inner dimensions up to this go tile by tile through every panel (see [`panels_into`]).
+/// Inner dimensions up to this go tile by tile through every panel (see [`run_panels`]).
 const SHORT_K: usize = 64;
-/// Rows per task: 72 x 384 floats of input (108 KB) stay in L2 while every panel passes.
+/// Rows per task: 72 x 384 floats of input (108 KB, packed) stay in L2 while every panel passes.
 const BLOCK_ROWS: usize = 72;
 
 /// A weight `W [out, in]` stored for [`packed_matmul`]: in panels of [`PANEL`] output rows, and
@@ -316,10 +317,11 @@ impl PackedWeight {
 /// one product every projection runs, from a decode step's single row to a prefill of thousands.
 ///
 /// Register tiles of up to 6 rows by 16 columns (12 vector accumulators, AVX2+FMA when the CPU
-/// has them, portable code that the compiler vectorises otherwise); the inner dimension goes in
-/// blocks of 384 so a panel's block stays in L1 while every row tile passes over it, and rows go
-/// in blocks of 72 that stay in L2 while every panel passes. Work is split across the rayon pool
-/// by row blocks when there are enough of them, by panels otherwise (few rows: decode), so the
+/// has them, portable code that the compiler vectorises otherwise). The input rows of each row
+/// block (72 rows) are first packed tile by tile, inner-major, so a tile reads its rows as one
+/// sequential stream; the block then stays in L2 while every panel passes over it, in inner
+/// blocks that stay in L1 while every row tile passes. Work is split across the rayon pool by
+/// row blocks when there are enough of them, by panels otherwise (few rows: decode), so the
 /// weights are read from memory once per call whatever the row count. Allocates nothing in
 /// steady state.
 pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accumulate: bool) {
@@ -327,19 +329,20 @@ pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accum
 }
 
 /// A low-rank term the kernel adds to some rows of its output: rows `rows` (of the call's `m`)
-/// get `z B^T`, with `z [rows.len(), r]` row-major (the caller's `s x A^T`) and `B [out, r]`
-/// packed.
+/// get `s (x A^T) B^T`, with `A [r, in]` and `B [out, r]` packed and `s` the term's scale.
 #[derive(Debug, Clone)]
 pub struct RowTerm<'a> {
     pub rows: std::ops::Range<usize>,
-    pub z: &'a [f32],
+    pub a: &'a PackedWeight,
     pub b: &'a PackedWeight,
+    pub scale: f32,
 }
 
-/// [`packed_matmul`] plus low-rank terms on runs of rows, fused: each register tile of a term's
-/// rows, once its base product is done, runs the term's `r` extra steps on the same output tile
-/// while it is still in L1, so the terms cost their arithmetic and no extra pass over the output.
-/// The terms' row ranges must not overlap.
+/// [`packed_matmul`] plus low-rank terms on runs of rows, fused: each row block computes its
+/// rows' down products `s x A^T` from the same packed rows the base product reads, while they
+/// are in cache, and each register tile of a term's rows runs the term's `r` extra steps
+/// through `B` in the same accumulators as its base product. A term costs its arithmetic and
+/// no pass of its own over the input or the output. The terms' row ranges must not overlap.
 pub fn packed_matmul_with(
     y: &mut [f32],
     x: &[f32],
@@ -351,9 +354,8 @@ pub fn packed_matmul_with(
     use rayon::prelude::*;
     let (n, k) = (w.out, w.inp);
     for t in terms {
-        let r = t.b.inp;
         assert!(
-            t.rows.end <= m && t.b.out == n && t.z.len() >= t.rows.len() * r,
+            t.rows.end <= m && t.a.inp == k && t.b.inp == t.a.out && t.b.out == n,
             "a low-rank term does not fit the product"
         );
     }
@@ -365,46 +367,47 @@ pub fn packed_matmul_with(
         return;
     }
     if k == 0 {
+        // No input features: the base product and every term's down product are zero.
         if !accumulate {
             y[..m * n].fill(0.0);
         }
-        if terms.is_empty() {
-            return;
-        }
+        return;
     }
-    let accumulate = accumulate || k == 0;
     let fast = use_avx2();
     let panels = n.div_ceil(PANEL);
     let threads = rayon_threads();
     let x = &x[..m * k];
     let y = &mut y[..m * n];
     let row_blocks = m.div_ceil(BLOCK_ROWS);
+    let block = |i: usize, yb: &mut [f32]| {
+        let rows = yb.len() / n;
+        let part = Part::new(i * BLOCK_ROWS, rows, terms);
+        let xb = &x[i * BLOCK_ROWS * k..];
+        panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast);
+    };
     if threads <= 1 || m * n * k < (1 << 20) {
         for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
-            let rows = yb.len() / n;
-            let xb = &x[i * BLOCK_ROWS * k..];
-            let part = Part::new(i * BLOCK_ROWS, rows, terms);
-            panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast);
+            block(i, yb);
         }
         return;
     }
     if row_blocks >= 2 * threads {
         y.par_chunks_mut(BLOCK_ROWS * n)
             .enumerate()
-            .for_each(|(i, yb)| {
-                let rows = yb.len() / n;
-                let xb = &x[i * BLOCK_ROWS * k..];
-                let part = Part::new(i * BLOCK_ROWS, rows, terms);
-                panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast)
-            });
+            .for_each(|(i, yb)| block(i, yb));
         return;
     }
-    // Few rows: the panels are split, about four blocks per thread, each computed into its own
-    // part of one reused scratch buffer and then copied (or added) into place.
+    // Few rows: the rows are packed (and the terms' down products computed) once, here; the
+    // panels are split, about four blocks per thread, each computed into its own part of one
+    // reused buffer and then copied (or added) into place. The buffers are taken out of the
+    // thread-local while the pool runs: a rayon wait here may run another call's work.
+    let mut bufs = BUFFERS.with_borrow_mut(std::mem::take);
+    let mut scratch = std::mem::take(&mut bufs.out);
     let per = panels.div_ceil(threads * 4).max(1);
-    let mut scratch = ROWS_SCRATCH.with(|s| std::mem::take(&mut *s.borrow_mut()));
     scratch.clear();
     scratch.resize(m * panels * PANEL, 0.0);
+    let part = Part::new(0, m, terms);
+    let prep = bufs.prepare(x, k, k, m, &part, fast);
     scratch
         .par_chunks_mut(per * PANEL * m)
         .enumerate()
@@ -412,8 +415,7 @@ pub fn packed_matmul_with(
             let p0 = b * per;
             let width = out.len() / m;
             let p1 = p0 + width / PANEL;
-            let part = Part::new(0, m, terms);
-            panels_into(out, width, x, k, m, w, p0..p1, false, &part, fast);
+            run_panels(out, width, &prep, w, p0..p1, false, fast);
         });
     for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
         let j0 = b * per * PANEL;
@@ -429,7 +431,8 @@ pub fn packed_matmul_with(
             }
         }
     }
-    ROWS_SCRATCH.with(|s| *s.borrow_mut() = scratch);
+    bufs.out = scratch;
+    BUFFERS.with_borrow_mut(|b| *b = bufs);
 }
 
 /// [`packed_matmul`] on strided rows, on the calling thread: `y[i * y_stride + j] (+)=
@@ -491,7 +494,7 @@ struct Part<'a, 'b> {
 }
 
 impl<'a, 'b> Part<'a, 'b> {
-    /// Keeps only the terms that overlap rows `first..first + m`, so each tile looks at a few.
+    /// Keeps only the terms that overlap rows `first..first + m`, so each block looks at a few.
     fn new(first: usize, m: usize, terms: &'b [RowTerm<'a>]) -> Self {
         let terms = terms
             .iter()
@@ -500,20 +503,136 @@ impl<'a, 'b> Part<'a, 'b> {
         Self { first, terms }
     }
 
-    /// Rows from local row `i` that share one term (or none), at most `max`.
-    fn run(&self, i: usize, max: usize) -> (usize, Option<&RowTerm<'a>>) {
+    /// Rows from local row `i` that share one term (or none), at most `max`, and the index of
+    /// that term in `terms`.
+    fn run(&self, i: usize, max: usize) -> (usize, Option<usize>) {
         let g = self.first + i;
         let mut len = max;
         let mut here = None;
-        for t in self.terms.iter().copied() {
+        for (at, t) in self.terms.iter().enumerate() {
             if t.rows.contains(&g) {
                 len = len.min(t.rows.end - g);
-                here = Some(t);
+                here = Some(at);
             } else if t.rows.start > g {
                 len = len.min(t.rows.start - g);
             }
         }
         (len, here)
+    }
+}
+
+/// One register tile's rows: local rows `i..i + r` and the index of their low-rank term in the
+/// part's terms, if they have one.
+#[derive(Debug, Clone, Copy)]
+struct TileRows {
+    i: usize,
+    r: usize,
+    term: Option<usize>,
+}
+
+/// The per-thread buffers behind [`Prepared`], and the few-rows path's output blocks.
+#[derive(Default)]
+struct Buffers {
+    tiles: Vec<TileRows>,
+    x: Vec<f32>,
+    down: Vec<f32>,
+    z: Vec<f32>,
+    out: Vec<f32>,
+}
+
+/// The rows of one part, ready for the panels: cut into register tiles, packed, and with each
+/// tile's low-rank down product done.
+struct Prepared<'p, 'a, 'b> {
+    part: &'p Part<'a, 'b>,
+    tiles: &'p [TileRows],
+    /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at `i * k`, its
+    /// row `ii`'s input `q` at `i * k + q * r + ii`.
+    x: &'p [f32],
+    /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
+    z: &'p [f32],
+    z_stride: usize,
+    k: usize,
+    m: usize,
+}
+
+impl Buffers {
+    /// Cuts rows `0..m` of `x` (rows `lda` apart, `k` inputs each) into register tiles at the
+    /// part's term boundaries, packs them, and computes each tile's `s x A^T`.
+    fn prepare<'p, 'a, 'b>(
+        &'p mut self,
+        x: &[f32],
+        lda: usize,
+        k: usize,
+        m: usize,
+        part: &'p Part<'a, 'b>,
+        fast: bool,
+    ) -> Prepared<'p, 'a, 'b> {
+        assert!(
+            m == 0 || (m - 1) * lda + k <= x.len(),
+            "rows do not fit their slice"
+        );
+        self.tiles.clear();
+        let mut i = 0;
+        while i < m {
+            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
+            self.tiles.push(TileRows { i, r, term });
+            i += r;
+        }
+        self.x.clear();
+        self.x.resize(m * k, 0.0);
+        for t in &self.tiles {
+            let dst = &mut self.x[t.i * k..(t.i + t.r) * k];
+            for ii in 0..t.r {
+                let row = &x[(t.i + ii) * lda..(t.i + ii) * lda + k];
+                for (step, &v) in dst.chunks_exact_mut(t.r).zip(row) {
+                    step[ii] = v;
+                }
+            }
+        }
+        // The down products, row-major into `down` (rank padded to whole panels), from the
+        // packed rows through the kernel, then scaled and packed like the rows.
+        let rank = part.terms.iter().map(|t| t.a.out).max().unwrap_or(0);
+        let width = rank.div_ceil(PANEL) * PANEL;
+        self.down.clear();
+        self.z.clear();
+        if rank > 0 {
+            self.down.resize(m * width, 0.0);
+            self.z.resize(m * rank, 0.0);
+        }
+        for t in self.tiles.iter().filter(|t| t.term.is_some()) {
+            let term = part.terms[t.term.unwrap()];
+            let r = term.a.out;
+            for p in 0..r.div_ceil(PANEL) {
+                let panel = &term.a.data[p * PANEL * k..(p + 1) * PANEL * k];
+                let tile = Tile {
+                    a: &self.x[t.i * k..(t.i + t.r) * k],
+                    kb: k,
+                    b: panel,
+                    next: panel,
+                    low: None,
+                    ldc: width,
+                    cols: PANEL.min(r - p * PANEL),
+                    acc: false,
+                };
+                tile_dispatch(t.r, &tile, &mut self.down[t.i * width + p * PANEL..], fast);
+            }
+            let dst = &mut self.z[t.i * rank..t.i * rank + r * t.r];
+            for ii in 0..t.r {
+                let row = &self.down[(t.i + ii) * width..(t.i + ii) * width + r];
+                for (step, &v) in dst.chunks_exact_mut(t.r).zip(row) {
+                    step[ii] = term.scale * v;
+                }
+            }
+        }
+        Prepared {
+            part,
+            tiles: &self.tiles,
+            x: &self.x,
+            z: &self.z,
+            z_stride: rank,
+            k,
+            m,
+        }
     }
 }
 
@@ -530,10 +649,9 @@ fn tile_dispatch(r: usize, t: &Tile<'_>, c: &mut [f32], fast: bool) {
     }
 }
 
-/// Panels `panels` of `w` for all `m` rows of `x` (rows `lda` apart), into `out` (row stride
-/// `stride`), whose column 0 is the first column of panel `panels.start`. Columns past `w`'s last
-/// are not written. With the last inner block of each tile, the tile's low-rank term (if its
-/// rows have one) runs on the same output tile.
+/// Panels `panels` of `w` for rows `0..m` of `x` (rows `lda` apart), into `out` (row stride
+/// `stride`), whose column 0 is the first column of panel `panels.start`: the rows prepared in
+/// this thread's buffers, then [`run_panels`].
 #[allow(clippy::too_many_arguments)]
 fn panels_into(
     out: &mut [f32],
@@ -547,113 +665,110 @@ fn panels_into(
     part: &Part<'_, '_>,
     fast: bool,
 ) {
-    let (n, k) = (w.out, w.inp);
+    // Nothing in here waits on the pool, so the borrow cannot be taken twice.
+    BUFFERS.with_borrow_mut(|bufs| {
+        let prep = bufs.prepare(x, lda, w.inp, m, part, fast);
+        run_panels(out, stride, &prep, w, panels, accumulate, fast);
+    });
+}
+
+/// Panels `panels` of `w` for the prepared rows, into `out` (row stride `stride`, column 0 at
+/// panel `panels.start`). Columns past `w`'s last are not written. With the last inner block of
+/// each tile, the tile's low-rank steps (if its rows have a term) run in the same accumulators.
+fn run_panels(
+    out: &mut [f32],
+    stride: usize,
+    prep: &Prepared<'_, '_, '_>,
+    w: &PackedWeight,
+    panels: std::ops::Range<usize>,
+    accumulate: bool,
+    fast: bool,
+) {
+    let (n, k, m) = (w.out, w.inp, prep.m);
+    assert_eq!(k, prep.k, "rows prepared for another inner dimension");
     #[allow(clippy::too_many_arguments)]
-    // One register tile: rows i..i + r against panel p's block, then the rows' low-rank term
-    // with the last block.
-    let one = |p: usize,
-               i: usize,
-               r: usize,
-               term: Option<&RowTerm<'_>>,
-               a_col: usize,
+    // One register tile: the rows of `t` against panel p's inner block k0..k0 + kb, with their
+    // low-rank steps when this is the last block.
+    let one = |t: &TileRows,
+               p: usize,
+               k0: usize,
                kb: usize,
                b: &[f32],
                next: &[f32],
                col: usize,
-               cols: usize,
                acc: bool,
                out: &mut [f32]| {
-        let c = &mut out[i * stride + col..];
-        if kb > 0 {
-            let t = Tile {
-                a: &x[i * lda + a_col..],
-                lda,
-                kb,
-                b,
-                next,
-                ldc: stride,
-                cols,
-                acc,
-            };
-            tile_dispatch(r, &t, c, fast);
-        }
-        if let Some(term) = term.filter(|_| a_col + kb == k) {
+        let low = t.term.filter(|_| k0 + kb == k).map(|at| {
+            let term = prep.part.terms[at];
             let rank = term.b.inp;
-            let local = part.first + i - term.rows.start;
-            let base = p * PANEL * rank;
-            let bp = &term.b.data[base..base + rank * PANEL];
-            let t = Tile {
-                a: &term.z[local * rank..],
-                lda: rank,
-                kb: rank,
-                b: bp,
-                next: bp,
-                ldc: stride,
-                cols,
-                acc: acc || kb > 0,
-            };
-            tile_dispatch(r, &t, c, fast);
-        }
+            let z = &prep.z[t.i * prep.z_stride..t.i * prep.z_stride + rank * t.r];
+            (
+                z,
+                &term.b.data[p * PANEL * rank..(p + 1) * PANEL * rank],
+                rank,
+            )
+        });
+        let tile = Tile {
+            a: &prep.x[t.i * k + k0 * t.r..t.i * k + (k0 + kb) * t.r],
+            kb,
+            b,
+            next,
+            low,
+            ldc: stride,
+            cols: PANEL.min(n - p * PANEL),
+            acc,
+        };
+        tile_dispatch(t.r, &tile, &mut out[t.i * stride + col..], fast);
     };
-    #[allow(clippy::too_many_arguments)]
-    let tiles = |p: usize,
-                 a_col: usize,
-                 kb: usize,
-                 b: &[f32],
-                 next: &[f32],
-                 col: usize,
-                 cols: usize,
-                 acc: bool,
-                 out: &mut [f32]| {
-        let mut i = 0;
-        while i < m {
-            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
-            one(p, i, r, term, a_col, kb, b, next, col, cols, acc, out);
-            i += r;
-        }
+    let panel = |p: usize, k0: usize, kb: usize| {
+        let start = p * PANEL * k + k0 * PANEL;
+        &w.data[start..start + kb * PANEL]
     };
     if k <= SHORT_K {
-        // A short inner dimension (merging a low-rank update, k = r): the output is most of
-        // the traffic, so each tile's rows go through every panel in turn and the output is
-        // streamed once, row block by row block, front to back.
-        let mut i = 0;
-        while i < m {
-            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
+        // A short inner dimension (merging a low-rank update, k = r; attention heads): the
+        // output is most of the traffic, so each tile's rows go through every panel in turn and
+        // the output is streamed once, tile by tile, front to back.
+        for t in prep.tiles {
             for p in panels.clone() {
-                let base = p * PANEL * k;
-                let b = &w.data[base..base + k * PANEL];
-                let col = (p - panels.start) * PANEL;
-                let cols = PANEL.min(n - p * PANEL);
-                one(p, i, r, term, 0, k, b, b, col, cols, accumulate, out);
+                let b = panel(p, 0, k);
+                one(
+                    t,
+                    p,
+                    0,
+                    k,
+                    b,
+                    b,
+                    (p - panels.start) * PANEL,
+                    accumulate,
+                    out,
+                );
             }
-            i += r;
         }
         return;
     }
     if m <= BLOCK_ROWS {
-        // Few rows: panel by panel, front to back through the packed weight in short blocks,
-        // so memory is read as one sequential stream, spread evenly over the arithmetic, and
-        // each block is fetched while the one before it computes.
-        // Up to three rows the tile runs several streams over segments of a block; it reads
-        // best with the whole panel as one block.
+        // One row block: panel by panel, front to back through the packed weight in short
+        // blocks, so memory is read as one sequential stream, spread evenly over the
+        // arithmetic, and each block is fetched while the one before it computes. Up to three
+        // rows the tile runs several streams over segments of a block; it reads best with the
+        // whole panel as one block.
         let step = if m <= 3 { k } else { SMALL_BLOCK_K };
         for p in panels.clone() {
-            let cols = PANEL.min(n - p * PANEL);
-            let base = p * PANEL * k;
             let col = (p - panels.start) * PANEL;
             let mut k0 = 0;
             while k0 < k {
                 let kb = step.min(k - k0);
-                let start = base + k0 * PANEL;
-                let b = &w.data[start..start + kb * PANEL];
+                let b = panel(p, k0, kb);
                 // With whole panels as blocks the next one is too far ahead to fetch early.
                 let next = if kb == k {
                     b
                 } else {
-                    let ahead = (start + kb * PANEL).min(w.data.len() - kb * PANEL);
-                    &w.data[ahead..ahead + kb * PANEL]
+                    let start = (p * PANEL * k + (k0 + kb) * PANEL).min(w.data.len() - kb * PANEL);
+                    &w.data[start..start + kb * PANEL]
                 };
-                tiles(p, k0, kb, b, next, col, cols, accumulate || k0 > 0, out);
+                for t in prep.tiles {
+                    one(t, p, k0, kb, b, next, col, accumulate || k0 > 0, out);
+                }
                 k0 += kb;
             }
         }
@@ -662,44 +777,29 @@ fn panels_into(
     let mut k0 = 0;
     while k0 < k {
         let kb = BLOCK_K.min(k - k0);
-        let acc = accumulate || k0 > 0;
         for p in panels.clone() {
-            let cols = PANEL.min(n - p * PANEL);
-            let base = p * PANEL * k;
-            let b = &w.data[base + k0 * PANEL..base + (k0 + kb) * PANEL];
+            let b = panel(p, k0, kb);
             let col = (p - panels.start) * PANEL;
-            tiles(p, k0, kb, b, b, col, cols, acc, out);
+            for t in prep.tiles {
+                one(t, p, k0, kb, b, b, col, accumulate || k0 > 0, out);
+            }
         }
         k0 += kb;
     }
-    if k == 0 {
-        for p in panels.clone() {
-            let col = (p - panels.start) * PANEL;
-            tiles(
-                p,
-                0,
-                0,
-                &[],
-                &[],
-                col,
-                PANEL.min(n - p * PANEL),
-                accumulate,
-                out,
-            );
-        }
-    }
 }
 
-/// One register tile's inputs: `c[i, j] (+)= a[i, :kb] . b[:kb, j]` for `i < R`, `j < cols`,
-/// where `a`'s rows are `lda` apart and `b` is a panel block (`kb` x 16, input-major). `next` is
-/// the block the next tile will read: the kernel asks for it one cache line per step, so memory
-/// is read while the arithmetic runs instead of between tiles.
+/// One register tile's inputs: `c[i, j] (+)= a[i, :kb] . b[:kb, j] (+ z[i, :] . zb[:, j])` for
+/// `i < R`, `j < cols`. `a` is the tile's rows packed inner-major (`a[q * R + i]`), `b` a panel
+/// block (`kb` x 16, input-major). `next` is the block the next tile will read: the kernel asks
+/// for it one cache line per step, so memory is read while the arithmetic runs instead of
+/// between tiles. `low` is a low-rank term's steps, run in the same accumulators: `s x A^T`
+/// packed like `a` (`rank` steps), and the term's panel of `B` (`rank` x 16).
 struct Tile<'a> {
     a: &'a [f32],
-    lda: usize,
     kb: usize,
     b: &'a [f32],
     next: &'a [f32],
+    low: Option<(&'a [f32], &'a [f32], usize)>,
     ldc: usize,
     cols: usize,
     acc: bool,
@@ -708,9 +808,11 @@ struct Tile<'a> {
 #[inline]
 fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
     assert!(
-        (R - 1) * t.lda + t.kb <= t.a.len()
+        t.kb * R <= t.a.len()
             && t.kb * PANEL <= t.b.len()
             && t.kb * PANEL <= t.next.len()
+            && t.low
+                .is_none_or(|(z, zb, rank)| rank * R <= z.len() && rank * PANEL <= zb.len())
             && (R - 1) * t.ldc + t.cols <= c.len()
             && t.cols <= PANEL,
         "tile outside its slices"
@@ -718,7 +820,7 @@ fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
     #[cfg(target_arch = "x86_64")]
     if fast {
         // SAFETY: `fast` is only true when `use_avx2` saw AVX2 and FMA on this CPU; the assert
-        // above bounds every read of a, b and next and every write of c.
+        // above bounds every read of a, b, next and the low-rank slices and every write of c.
         #[allow(unsafe_code)]
         unsafe {
             if std::ptr::eq(t.next.as_ptr(), t.b.as_ptr()) {
@@ -736,14 +838,20 @@ fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
 /// The portable tile: sixteen-wide rows of partial sums, which the compiler vectorises.
 fn packed_tile_portable<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
     let mut sums = [[0f32; PANEL]; R];
-    for p in 0..t.kb {
-        let bv: &[f32; PANEL] = t.b[p * PANEL..(p + 1) * PANEL].try_into().unwrap();
-        for (i, row) in sums.iter_mut().enumerate() {
-            let av = t.a[i * t.lda + p];
-            for (d, &bj) in row.iter_mut().zip(bv) {
-                *d += av * bj;
+    let mut steps = |a: &[f32], b: &[f32], kb: usize| {
+        for p in 0..kb {
+            let bv: &[f32; PANEL] = b[p * PANEL..(p + 1) * PANEL].try_into().unwrap();
+            for (i, row) in sums.iter_mut().enumerate() {
+                let av = a[p * R + i];
+                for (d, &bj) in row.iter_mut().zip(bv) {
+                    *d += av * bj;
+                }
             }
         }
+    };
+    steps(t.a, t.b, t.kb);
+    if let Some((z, zb, rank)) = t.low {
+        steps(z, zb, rank);
     }
     for (i, row) in sums.iter().enumerate() {
         let dst = &mut c[i * t.ldc..i * t.ldc + t.cols];
@@ -778,23 +886,24 @@ unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: 
     c: &mut [f32],
 ) {
     use std::arch::x86_64::*;
-    let (pa, pb, pn, lda, kb) = (t.a.as_ptr(), t.b.as_ptr(), t.next.as_ptr(), t.lda, t.kb);
+    let (pa, pb, pn, kb) = (t.a.as_ptr(), t.b.as_ptr(), t.next.as_ptr(), t.kb);
     let mut lo = [[_mm256_setzero_ps(); R]; S];
     let mut hi = [[_mm256_setzero_ps(); R]; S];
     let seg = kb / S;
     for p in 0..seg {
         for s in 0..S {
             let q = p + s * seg;
-            // SAFETY: q < S * seg <= kb, so the panel row q, the row q of next and every
-            // a[i * lda + q] are in bounds (asserted by the caller).
+            // SAFETY: q < S * seg <= kb, so the panel row q, the row q of next and the packed
+            // inputs a[q * R..q * R + R] are in bounds (asserted by the caller).
             unsafe {
                 if FETCH {
                     _mm_prefetch::<_MM_HINT_T0>(pn.add(q * PANEL) as *const i8);
                 }
                 let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
                 let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
+                let a = pa.add(q * R);
                 for i in 0..R {
-                    let x = _mm256_broadcast_ss(&*pa.add(i * lda + q));
+                    let x = _mm256_broadcast_ss(&*a.add(i));
                     lo[s][i] = _mm256_fmadd_ps(x, b0, lo[s][i]);
                     hi[s][i] = _mm256_fmadd_ps(x, b1, hi[s][i]);
                 }
@@ -806,10 +915,28 @@ unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: 
         unsafe {
             let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
             let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
+            let a = pa.add(q * R);
             for i in 0..R {
-                let x = _mm256_broadcast_ss(&*pa.add(i * lda + q));
+                let x = _mm256_broadcast_ss(&*a.add(i));
                 lo[0][i] = _mm256_fmadd_ps(x, b0, lo[0][i]);
                 hi[0][i] = _mm256_fmadd_ps(x, b1, hi[0][i]);
+            }
+        }
+    }
+    if let Some((z, zb, rank)) = t.low {
+        let (pz, pzb) = (z.as_ptr(), zb.as_ptr());
+        for q in 0..rank {
+            // SAFETY: q < rank: z holds rank * R values and zb rank * 16 (asserted by the
+            // caller).
+            unsafe {
+                let b0 = _mm256_loadu_ps(pzb.add(q * PANEL));
+                let b1 = _mm256_loadu_ps(pzb.add(q * PANEL + 8));
+                let a = pz.add(q * R);
+                for i in 0..R {
+                    let x = _mm256_broadcast_ss(&*a.add(i));
+                    lo[0][i] = _mm256_fmadd_ps(x, b0, lo[0][i]);
+                    hi[0][i] = _mm256_fmadd_ps(x, b1, hi[0][i]);
+                }
             }
         }
     }
@@ -1478,35 +1605,51 @@ mod tests {
 
     #[test]
     fn fused_low_rank_terms_add_to_their_rows_only_on_every_path() {
-        // Runs that start and end inside register tiles, a run with no term between them, on
-        // the single-threaded, row-block and split-panel paths.
-        for &(m, k, n) in &[(20, 33, 40), (150, 301, 37), (9, 301, 1037), (300, 384, 64)] {
-            let r = 5;
+        // Runs that start and end inside register tiles, a run with no term between them, terms
+        // of different ranks in one call (one of them wider than a panel), on the
+        // single-threaded, row-block and split-panel paths, and a short inner dimension.
+        for &(m, k, n) in &[
+            (20, 33, 40),
+            (150, 301, 37),
+            (9, 301, 1037),
+            (300, 384, 64),
+            (40, 24, 50),
+        ] {
             let x = values(m * k, 81);
             let w = values(n * k, 82);
-            let b = values(n * r, 83);
-            let packed_b = PackedWeight::pack(&b, n, r);
-            let runs = [1..4, 7..(m * 2 / 3), (m * 2 / 3 + 1)..m];
-            let zs: Vec<Vec<f32>> = runs
+            let cut = (m * 2 / 3).max(7);
+            let runs = [1..4, 7..cut, (cut + 1).min(m)..m];
+            let ranks = [5, 20, 8];
+            let scales = [2.0, 0.5, -1.5];
+            let factors: Vec<(Vec<f32>, Vec<f32>)> = ranks
                 .iter()
                 .enumerate()
-                .map(|(i, run)| values(run.len() * r, 90 + i as u32))
+                .map(|(i, &r)| (values(r * k, 90 + i as u32), values(n * r, 95 + i as u32)))
+                .collect();
+            let packed: Vec<(PackedWeight, PackedWeight)> = factors
+                .iter()
+                .zip(ranks)
+                .map(|((a, b), r)| (PackedWeight::pack(a, r, k), PackedWeight::pack(b, n, r)))
                 .collect();
             let terms: Vec<RowTerm<'_>> = runs
                 .iter()
-                .zip(&zs)
-                .map(|(run, z)| RowTerm {
+                .zip(&packed)
+                .zip(scales)
+                .map(|((run, (a, b)), scale)| RowTerm {
                     rows: run.clone(),
-                    z,
-                    b: &packed_b,
+                    a,
+                    b,
+                    scale,
                 })
                 .collect();
             let mut want = reference_rows(&x, &w, m, k, n);
-            for (run, z) in runs.iter().zip(&zs) {
-                let delta = reference_rows(z, &b, run.len(), r, n);
+            for ((run, (a, b)), (&r, s)) in runs.iter().zip(&factors).zip(ranks.iter().zip(scales))
+            {
+                let z = reference_rows(&x[run.start * k..run.end * k], a, run.len(), k, r);
+                let delta = reference_rows(&z, b, run.len(), r, n);
                 for (i, row) in run.clone().enumerate() {
                     for j in 0..n {
-                        want[row * n + j] += delta[i * n + j];
+                        want[row * n + j] += s * delta[i * n + j];
                     }
                 }
             }
@@ -1526,20 +1669,56 @@ mod tests {
                     i / n
                 );
             }
-            // An empty base (k = 0) leaves just the terms, on zeros.
-            let mut only = vec![3.0; m * n];
-            let empty = PackedWeight::pack(&[], n, 0);
-            packed_matmul_with(&mut only, &[], m, &empty, false, &terms);
-            for (run, z) in runs.iter().zip(&zs) {
-                let delta = reference_rows(z, &b, run.len(), r, n);
-                for (i, row) in run.clone().enumerate() {
-                    for j in 0..n {
-                        let g = only[row * n + j];
-                        assert!((g - delta[i * n + j]).abs() < 1e-4, "k = 0: {g}");
-                    }
-                }
+            // Accumulating onto what is there adds the same.
+            let mut acc = vec![1.0; m * n];
+            packed_matmul_with(&mut acc, &x, m, &PackedWeight::pack(&w, n, k), true, &terms);
+            for (g, e) in acc.iter().zip(&want) {
+                assert!(
+                    (g - 1.0 - e).abs() < 1e-3 * (1.0 + e.abs()),
+                    "accumulate: {g} vs {e}"
+                );
             }
-            assert!(only[..n].iter().all(|v| *v == 0.0), "row 0 has no term");
+        }
+    }
+
+    #[test]
+    fn fused_terms_match_on_the_portable_and_the_avx2_path() {
+        // One row block, prepared and run on each kernel path by hand.
+        let (m, k, n, r) = (50, 200, 70, 12);
+        let x = values(m * k, 61);
+        let w = PackedWeight::pack(&values(n * k, 62), n, k);
+        let a = PackedWeight::pack(&values(r * k, 63), r, k);
+        let b = PackedWeight::pack(&values(n * r, 64), n, r);
+        let terms = [RowTerm {
+            rows: 5..41,
+            a: &a,
+            b: &b,
+            scale: 0.75,
+        }];
+        let mut outs = Vec::new();
+        for fast in paths() {
+            let mut y = vec![0.0; m * n];
+            let part = Part::new(0, m, &terms);
+            panels_into(
+                &mut y,
+                n,
+                &x,
+                k,
+                m,
+                &w,
+                0..n.div_ceil(PANEL),
+                false,
+                &part,
+                fast,
+            );
+            outs.push(y);
+        }
+        let mut want = vec![0.0; m * n];
+        packed_matmul_with(&mut want, &x, m, &w, false, &terms);
+        for y in &outs {
+            for (g, e) in y.iter().zip(&want) {
+                assert!((g - e).abs() < 1e-3 * (1.0 + e.abs()), "{g} vs {e}");
+            }
         }
     }
 

@@ -4,13 +4,14 @@
 //!
 //! The hot operations run through [`crate::kernels`] straight on the factors' memory: the
 //! factors are held packed for the projection kernel (`A` as a weight `[r, in]`, `B` as a weight
-//! `[out, r]`), so the low-rank term is two kernel calls accumulated onto the base output in
-//! place (`z = x A^T` into one `[rows, r]` scratch buffer, scaled, then `y += z B^T`), and merging
-//! adds `s B A` into a weight in place. Nothing is transposed or copied per call.
+//! `[out, r]`), so in a model the term is fused into the base product (see [`LowRank::term`]);
+//! on its own it is two kernel calls accumulated onto an output in place (`z = x A^T` into one
+//! `[rows, r]` scratch buffer, scaled, then `y += z B^T`), and merging adds `s B A` into a weight
+//! in place. Nothing is transposed or copied per call.
 
 use candle_core::{DType, Result, Tensor};
 
-use crate::kernels::{PackedWeight, packed_matmul, with_f32};
+use crate::kernels::{PackedWeight, RowTerm, packed_matmul, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
@@ -101,10 +102,8 @@ impl LowRank {
         Ok(())
     }
 
-    /// `z = s x A^T` for `x [rows, in]` into `z [rows, r]` (row-major): the first half of the
-    /// term, for [`crate::kernels::packed_matmul_with`] to finish through [`LowRank::packed_b`]
-    /// inside the base product.
-    pub fn scaled_down(&self, x: &[f32], rows: usize, z: &mut [f32]) -> Result<()> {
+    /// `z = s x A^T` for `x [rows, in]` into `z [rows, r]` (row-major).
+    fn scaled_down(&self, x: &[f32], rows: usize, z: &mut [f32]) -> Result<()> {
         let (r, inp) = (self.rank(), self.in_features());
         if x.len() < rows * inp || z.len() < rows * r {
             candle_core::bail!(
@@ -120,9 +119,15 @@ impl LowRank {
         Ok(())
     }
 
-    /// `B [out, r]`, packed.
-    pub fn packed_b(&self) -> &PackedWeight {
-        &self.b
+    /// This pair as a term of the base product on rows `rows`, for
+    /// [`crate::kernels::packed_matmul_with`] to fuse into the base product.
+    pub fn term(&self, rows: std::ops::Range<usize>) -> RowTerm<'_> {
+        RowTerm {
+            rows,
+            a: &self.a,
+            b: &self.b,
+            scale: self.scale as f32,
+        }
     }
 
     /// The low-rank term `s B (A x)` for rows `x [n, in]`, giving `[n, out]`.

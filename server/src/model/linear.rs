@@ -2,12 +2,12 @@
 //!
 //! It computes `W0 x + s B (A x)` for a flat batch of rows where each row may carry a different
 //! adapter or none. The base matmul runs once over all rows, straight into the output buffer
-//! (with the bias, if any, as its starting value); then each run of consecutive rows that shares
-//! an adapter gets that adapter's low-rank term accumulated onto its slice of the output in place
-//! (no gather, no scatter, no temporary output). When the whole batch runs one merged variant,
-//! the merged weight replaces `W0` and no low-rank term is computed.
+//! (with the bias, if any, as its starting value), and each run of consecutive rows that shares
+//! an adapter carries that adapter's low-rank term into the same kernel call, which fuses it into
+//! the base product (no gather, no scatter, no temporary output, no pass of its own). When the
+//! whole batch runs one merged variant, the merged weight replaces `W0` and no low-rank term is
+//! computed.
 
-use std::cell::RefCell;
 use std::ops::Range;
 use std::sync::Arc;
 
@@ -101,11 +101,6 @@ impl RowAdapters {
     pub fn is_base_only(&self) -> bool {
         self.groups.is_empty() && self.merged.is_none()
     }
-}
-
-thread_local! {
-    /// `x A^T` for one run of rows; reused so the low-rank term allocates nothing per call.
-    static SCRATCH: RefCell<Vec<f32>> = const { RefCell::new(Vec::new()) };
 }
 
 /// A projection `y = W0 x (+ bias)` that knows its site, so each row's adapter can add its term.
@@ -214,45 +209,25 @@ impl AdaptedLinear {
             Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
             None => vec![0f32; rows * out_dim],
         };
-        // Each run of rows that carries an adapter with a factor pair here: `z = s x A^T` into
-        // one shared scratch buffer, then the base product with every run's `z B^T` fused in.
-        // Taken out of the thread-local, not borrowed: a rayon wait inside may run other work here.
-        let mut scratch = SCRATCH.with_borrow_mut(std::mem::take);
-        let done = (|| -> Result<()> {
-            let mut runs = Vec::new();
-            let mut len = 0;
-            for group in &adapters.groups {
-                let Some(lr) = group.adapter.factors(&self.site) else {
-                    continue;
-                };
-                for run in &group.runs {
-                    runs.push((run.clone(), lr, len));
-                    len += run.len() * lr.rank();
-                }
+        // Every run of rows that carries an adapter with a factor pair here becomes one term
+        // of the base product, fused into it by the kernel.
+        let mut terms: Vec<RowTerm<'_>> = Vec::new();
+        for group in &adapters.groups {
+            let Some(lr) = group.adapter.factors(&self.site) else {
+                continue;
+            };
+            if (lr.out_features(), lr.in_features()) != (out_dim, in_dim) {
+                candle_core::bail!(
+                    "{}: adapter {} has factors for {} x {}, the layer is {out_dim} x {in_dim}",
+                    self.site,
+                    group.adapter.id,
+                    lr.out_features(),
+                    lr.in_features()
+                );
             }
-            scratch.clear();
-            scratch.resize(len, 0.0);
-            for (run, lr, at) in &runs {
-                let r = lr.rank();
-                lr.scaled_down(
-                    &xs[run.start * in_dim..run.end * in_dim],
-                    run.len(),
-                    &mut scratch[*at..*at + run.len() * r],
-                )?;
-            }
-            let terms: Vec<RowTerm<'_>> = runs
-                .iter()
-                .map(|(run, lr, at)| RowTerm {
-                    rows: run.clone(),
-                    z: &scratch[*at..*at + run.len() * lr.rank()],
-                    b: lr.packed_b(),
-                })
-                .collect();
-            packed_matmul_with(&mut y, xs, rows, weight, self.bias.is_some(), &terms);
-            Ok(())
-        })();
-        SCRATCH.with_borrow_mut(|s| *s = scratch);
-        done?;
+            terms.extend(group.runs.iter().map(|run| lr.term(run.clone())));
+        }
+        packed_matmul_with(&mut y, xs, rows, weight, self.bias.is_some(), &terms);
         Ok(y)
     }
 }
