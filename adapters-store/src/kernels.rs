@@ -180,6 +180,9 @@ const SMALL_BLOCK_K: usize = 128;
 const SHORT_K: usize = 64;
 /// Rows per task: 72 x 384 floats of input (108 KB, packed) stay in L2 while every panel passes.
 const BLOCK_ROWS: usize = 72;
+/// Rows are packed when they run over at least this many panels; over fewer (attention heads)
+/// packing costs more than the sequential reads save.
+const PACK_PANELS: usize = 8;
 
 /// A weight `W [out, in]` stored for [`packed_matmul`]: in panels of [`PANEL`] output rows, and
 /// inside a panel input-major, so the kernel reads each panel front to back as one stream (16
@@ -325,7 +328,7 @@ impl PackedWeight {
 /// weights are read from memory once per call whatever the row count. Allocates nothing in
 /// steady state.
 pub fn packed_matmul(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, accumulate: bool) {
-    packed_matmul_with(y, x, m, w, accumulate, &[]);
+    packed_matmul_with(y, x, m, w, accumulate, None, &[]);
 }
 
 /// A low-rank term the kernel adds to some rows of its output: rows `rows` (of the call's `m`)
@@ -343,12 +346,15 @@ pub struct RowTerm<'a> {
 /// are in cache, and each register tile of a term's rows runs the term's `r` extra steps
 /// through `B` in the same accumulators as its base product. A term costs its arithmetic and
 /// no pass of its own over the input or the output. The terms' row ranges must not overlap.
+/// A `bias [out]` is added to every row as the tiles are stored (no pass of its own either).
+#[allow(clippy::too_many_arguments)]
 pub fn packed_matmul_with(
     y: &mut [f32],
     x: &[f32],
     m: usize,
     w: &PackedWeight,
     accumulate: bool,
+    bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
 ) {
     use rayon::prelude::*;
@@ -363,13 +369,22 @@ pub fn packed_matmul_with(
         x.len() >= m * k && y.len() >= m * n,
         "a matrix does not fit its slice"
     );
+    assert!(
+        bias.is_none_or(|b| b.len() == n),
+        "the bias does not fit the product"
+    );
     if m == 0 || n == 0 {
         return;
     }
     if k == 0 {
         // No input features: the base product and every term's down product are zero.
-        if !accumulate {
-            y[..m * n].fill(0.0);
+        for row in y[..m * n].chunks_mut(n) {
+            match (accumulate, bias) {
+                (true, Some(b)) => row.iter_mut().zip(b).for_each(|(d, s)| *d += s),
+                (false, Some(b)) => row.copy_from_slice(b),
+                (false, None) => row.fill(0.0),
+                (true, None) => {}
+            }
         }
         return;
     }
@@ -383,7 +398,13 @@ pub fn packed_matmul_with(
         let rows = yb.len() / n;
         let part = Part::new(i * BLOCK_ROWS, rows, terms);
         let xb = &x[i * BLOCK_ROWS * k..];
-        panels_into(yb, n, xb, k, rows, w, 0..panels, accumulate, &part, fast);
+        let run = Run {
+            panels: 0..panels,
+            accumulate,
+            bias,
+            fast,
+        };
+        panels_into(yb, n, xb, k, rows, w, &part, &run);
     };
     if threads <= 1 || m * n * k < (1 << 20) {
         for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
@@ -407,7 +428,7 @@ pub fn packed_matmul_with(
     scratch.clear();
     scratch.resize(m * panels * PANEL, 0.0);
     let part = Part::new(0, m, terms);
-    let prep = bufs.prepare(x, k, k, m, &part, fast);
+    let prep = bufs.prepare(x, k, k, m, &part, panels >= PACK_PANELS, fast);
     scratch
         .par_chunks_mut(per * PANEL * m)
         .enumerate()
@@ -415,7 +436,13 @@ pub fn packed_matmul_with(
             let p0 = b * per;
             let width = out.len() / m;
             let p1 = p0 + width / PANEL;
-            run_panels(out, width, &prep, w, p0..p1, false, fast);
+            let run = Run {
+                panels: p0..p1,
+                accumulate: false,
+                bias,
+                fast,
+            };
+            run_panels(out, width, &prep, w, &run);
         });
     for (b, block) in scratch.chunks(per * PANEL * m).enumerate() {
         let j0 = b * per * PANEL;
@@ -470,6 +497,12 @@ pub fn packed_matmul_strided(
     let mut i0 = 0;
     while i0 < m {
         let rows = BLOCK_ROWS.min(m - i0);
+        let run = Run {
+            panels: 0..panels,
+            accumulate,
+            bias: None,
+            fast,
+        };
         panels_into(
             &mut y[i0 * y_stride..],
             y_stride,
@@ -477,10 +510,8 @@ pub fn packed_matmul_strided(
             x_stride,
             rows,
             w,
-            0..panels,
-            accumulate,
             &Part::new(0, rows, &[]),
-            fast,
+            &run,
         );
         i0 += rows;
     }
@@ -546,8 +577,10 @@ struct Prepared<'p, 'a, 'b> {
     part: &'p Part<'a, 'b>,
     tiles: &'p [TileRows],
     /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at `i * k`, its
-    /// row `ii`'s input `q` at `i * k + q * r + ii`.
+    /// row `ii`'s input `q` at `i * k + q * r + ii`; or, with `lda`, the caller's rows as they
+    /// are, `lda` apart (a product over few panels, where packing would cost more than it saves).
     x: &'p [f32],
+    lda: Option<usize>,
     /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
     z: &'p [f32],
     z_stride: usize,
@@ -557,14 +590,16 @@ struct Prepared<'p, 'a, 'b> {
 
 impl Buffers {
     /// Cuts rows `0..m` of `x` (rows `lda` apart, `k` inputs each) into register tiles at the
-    /// part's term boundaries, packs them, and computes each tile's `s x A^T`.
+    /// part's term boundaries, packs them if `pack`, and computes each tile's `s x A^T`.
+    #[allow(clippy::too_many_arguments)]
     fn prepare<'p, 'a, 'b>(
         &'p mut self,
-        x: &[f32],
+        x: &'p [f32],
         lda: usize,
         k: usize,
         m: usize,
         part: &'p Part<'a, 'b>,
+        pack: bool,
         fast: bool,
     ) -> Prepared<'p, 'a, 'b> {
         assert!(
@@ -579,16 +614,22 @@ impl Buffers {
             i += r;
         }
         self.x.clear();
-        self.x.resize(m * k, 0.0);
-        for t in &self.tiles {
-            let dst = &mut self.x[t.i * k..(t.i + t.r) * k];
-            for ii in 0..t.r {
-                let row = &x[(t.i + ii) * lda..(t.i + ii) * lda + k];
-                for (step, &v) in dst.chunks_exact_mut(t.r).zip(row) {
-                    step[ii] = v;
-                }
+        if pack {
+            self.x.resize(m * k, 0.0);
+            for t in &self.tiles {
+                let dst = &mut self.x[t.i * k..(t.i + t.r) * k];
+                pack_tile(t.r, dst, &x[t.i * lda..], lda, k);
             }
         }
+        let (xs, xlda): (&[f32], _) = if pack {
+            (&self.x, None)
+        } else {
+            (x, Some(lda))
+        };
+        let tile_rows = |t: &TileRows| match xlda {
+            None => &xs[t.i * k..(t.i + t.r) * k],
+            Some(lda) => &xs[t.i * lda..],
+        };
         // The down products, row-major into `down` (rank padded to whole panels), from the
         // packed rows through the kernel, then scaled and packed like the rows.
         let rank = part.terms.iter().map(|t| t.a.out).max().unwrap_or(0);
@@ -605,11 +646,13 @@ impl Buffers {
             for p in 0..r.div_ceil(PANEL) {
                 let panel = &term.a.data[p * PANEL * k..(p + 1) * PANEL * k];
                 let tile = Tile {
-                    a: &self.x[t.i * k..(t.i + t.r) * k],
+                    a: tile_rows(t),
+                    lda: xlda,
                     kb: k,
                     b: panel,
                     next: panel,
                     low: None,
+                    bias: None,
                     ldc: width,
                     cols: PANEL.min(r - p * PANEL),
                     acc: false,
@@ -627,7 +670,8 @@ impl Buffers {
         Prepared {
             part,
             tiles: &self.tiles,
-            x: &self.x,
+            x: xs,
+            lda: xlda,
             z: &self.z,
             z_stride: rank,
             k,
@@ -649,9 +693,18 @@ fn tile_dispatch(r: usize, t: &Tile<'_>, c: &mut [f32], fast: bool) {
     }
 }
 
-/// Panels `panels` of `w` for rows `0..m` of `x` (rows `lda` apart), into `out` (row stride
-/// `stride`), whose column 0 is the first column of panel `panels.start`: the rows prepared in
-/// this thread's buffers, then [`run_panels`].
+/// What one [`run_panels`] call computes: panels `panels` of the weight, onto the output or
+/// not, with the bias (all of it, `[out]`) added as each tile is first stored.
+struct Run<'a> {
+    panels: std::ops::Range<usize>,
+    accumulate: bool,
+    bias: Option<&'a [f32]>,
+    fast: bool,
+}
+
+/// Panels `run.panels` of `w` for rows `0..m` of `x` (rows `lda` apart), into `out` (row stride
+/// `stride`), whose column 0 is the first column of panel `run.panels.start`: the rows prepared
+/// in this thread's buffers, then [`run_panels`].
 #[allow(clippy::too_many_arguments)]
 fn panels_into(
     out: &mut [f32],
@@ -660,31 +713,67 @@ fn panels_into(
     lda: usize,
     m: usize,
     w: &PackedWeight,
-    panels: std::ops::Range<usize>,
-    accumulate: bool,
     part: &Part<'_, '_>,
-    fast: bool,
+    run: &Run<'_>,
+) {
+    let pack = run.panels.len() >= PACK_PANELS;
+    panels_into_packing(out, stride, x, lda, m, w, part, run, pack);
+}
+
+/// [`panels_into`] with the choice to pack the rows made by the caller.
+#[allow(clippy::too_many_arguments)]
+fn panels_into_packing(
+    out: &mut [f32],
+    stride: usize,
+    x: &[f32],
+    lda: usize,
+    m: usize,
+    w: &PackedWeight,
+    part: &Part<'_, '_>,
+    run: &Run<'_>,
+    pack: bool,
 ) {
     // Nothing in here waits on the pool, so the borrow cannot be taken twice.
     BUFFERS.with_borrow_mut(|bufs| {
-        let prep = bufs.prepare(x, lda, w.inp, m, part, fast);
-        run_panels(out, stride, &prep, w, panels, accumulate, fast);
+        let prep = bufs.prepare(x, lda, w.inp, m, part, pack, run.fast);
+        run_panels(out, stride, &prep, w, run);
     });
 }
 
-/// Panels `panels` of `w` for the prepared rows, into `out` (row stride `stride`, column 0 at
-/// panel `panels.start`). Columns past `w`'s last are not written. With the last inner block of
-/// each tile, the tile's low-rank steps (if its rows have a term) run in the same accumulators.
+/// The first `r` rows of `x` (`lda` apart, `k` inputs each) packed inner-major into `dst`:
+/// `dst[q * r + ii] = x[ii * lda + q]`.
+fn pack_tile(r: usize, dst: &mut [f32], x: &[f32], lda: usize, k: usize) {
+    fn rows<const R: usize>(dst: &mut [f32], x: &[f32], lda: usize, k: usize) {
+        let rows: [&[f32]; R] = std::array::from_fn(|ii| &x[ii * lda..ii * lda + k]);
+        for (q, step) in dst[..R * k].chunks_exact_mut(R).enumerate() {
+            for ii in 0..R {
+                step[ii] = rows[ii][q];
+            }
+        }
+    }
+    match r {
+        6 => rows::<6>(dst, x, lda, k),
+        5 => rows::<5>(dst, x, lda, k),
+        4 => rows::<4>(dst, x, lda, k),
+        3 => rows::<3>(dst, x, lda, k),
+        2 => rows::<2>(dst, x, lda, k),
+        _ => rows::<1>(dst, x, lda, k),
+    }
+}
+
+/// Panels `run.panels` of `w` for the prepared rows, into `out` (row stride `stride`, column 0
+/// at panel `run.panels.start`). Columns past `w`'s last are not written. With the last inner
+/// block of each tile, the tile's low-rank steps (if its rows have a term) run in the same
+/// accumulators; with the first, the bias is added.
 fn run_panels(
     out: &mut [f32],
     stride: usize,
     prep: &Prepared<'_, '_, '_>,
     w: &PackedWeight,
-    panels: std::ops::Range<usize>,
-    accumulate: bool,
-    fast: bool,
+    run: &Run<'_>,
 ) {
     let (n, k, m) = (w.out, w.inp, prep.m);
+    let (panels, accumulate, fast) = (run.panels.clone(), run.accumulate, run.fast);
     assert_eq!(k, prep.k, "rows prepared for another inner dimension");
     #[allow(clippy::too_many_arguments)]
     // One register tile: the rows of `t` against panel p's inner block k0..k0 + kb, with their
@@ -708,14 +797,24 @@ fn run_panels(
                 rank,
             )
         });
+        let a = match prep.lda {
+            None => &prep.x[t.i * k + k0 * t.r..t.i * k + (k0 + kb) * t.r],
+            Some(lda) => &prep.x[t.i * lda + k0..],
+        };
+        let cols = PANEL.min(n - p * PANEL);
         let tile = Tile {
-            a: &prep.x[t.i * k + k0 * t.r..t.i * k + (k0 + kb) * t.r],
+            a,
+            lda: prep.lda,
             kb,
             b,
             next,
             low,
+            bias: run
+                .bias
+                .filter(|_| k0 == 0)
+                .map(|bias| &bias[p * PANEL..p * PANEL + cols]),
             ldc: stride,
-            cols: PANEL.min(n - p * PANEL),
+            cols,
             acc,
         };
         tile_dispatch(t.r, &tile, &mut out[t.i * stride + col..], fast);
@@ -793,13 +892,17 @@ fn run_panels(
 /// block (`kb` x 16, input-major). `next` is the block the next tile will read: the kernel asks
 /// for it one cache line per step, so memory is read while the arithmetic runs instead of
 /// between tiles. `low` is a low-rank term's steps, run in the same accumulators: `s x A^T`
-/// packed like `a` (`rank` steps), and the term's panel of `B` (`rank` x 16).
+/// packed (`rank` steps), and the term's panel of `B` (`rank` x 16).
 struct Tile<'a> {
     a: &'a [f32],
+    /// `None`: `a` is packed as above; `Some(lda)`: `a`'s rows are `lda` apart (`a[i * lda + q]`).
+    lda: Option<usize>,
     kb: usize,
     b: &'a [f32],
     next: &'a [f32],
     low: Option<(&'a [f32], &'a [f32], usize)>,
+    /// Added to every row of the tile (`cols` values).
+    bias: Option<&'a [f32]>,
     ldc: usize,
     cols: usize,
     acc: bool,
@@ -808,7 +911,9 @@ struct Tile<'a> {
 #[inline]
 fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
     assert!(
-        t.kb * R <= t.a.len()
+        t.lda.map_or(t.kb * R, |lda| (R - 1) * lda + t.kb) <= t.a.len()
+            && t.lda.is_none_or(|lda| lda >= t.kb)
+            && t.bias.is_none_or(|b| b.len() >= t.cols)
             && t.kb * PANEL <= t.b.len()
             && t.kb * PANEL <= t.next.len()
             && t.low
@@ -823,10 +928,11 @@ fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
         // above bounds every read of a, b, next and the low-rank slices and every write of c.
         #[allow(unsafe_code)]
         unsafe {
-            if std::ptr::eq(t.next.as_ptr(), t.b.as_ptr()) {
-                packed_tile_avx2::<R, false>(t, c)
-            } else {
-                packed_tile_avx2::<R, true>(t, c)
+            match (t.lda.is_none(), std::ptr::eq(t.next.as_ptr(), t.b.as_ptr())) {
+                (true, true) => packed_tile_avx2::<R, false, true>(t, c),
+                (true, false) => packed_tile_avx2::<R, true, true>(t, c),
+                (false, true) => packed_tile_avx2::<R, false, false>(t, c),
+                (false, false) => packed_tile_avx2::<R, true, false>(t, c),
             }
         };
         return;
@@ -838,25 +944,32 @@ fn packed_tile<const R: usize>(t: &Tile<'_>, c: &mut [f32], fast: bool) {
 /// The portable tile: sixteen-wide rows of partial sums, which the compiler vectorises.
 fn packed_tile_portable<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
     let mut sums = [[0f32; PANEL]; R];
-    let mut steps = |a: &[f32], b: &[f32], kb: usize| {
+    // Input q of row i is at a[q * step + i * lda].
+    let mut steps = |a: &[f32], step: usize, lda: usize, b: &[f32], kb: usize| {
         for p in 0..kb {
             let bv: &[f32; PANEL] = b[p * PANEL..(p + 1) * PANEL].try_into().unwrap();
             for (i, row) in sums.iter_mut().enumerate() {
-                let av = a[p * R + i];
+                let av = a[p * step + i * lda];
                 for (d, &bj) in row.iter_mut().zip(bv) {
                     *d += av * bj;
                 }
             }
         }
     };
-    steps(t.a, t.b, t.kb);
-    if let Some((z, zb, rank)) = t.low {
-        steps(z, zb, rank);
+    match t.lda {
+        None => steps(t.a, R, 1, t.b, t.kb),
+        Some(lda) => steps(t.a, 1, lda, t.b, t.kb),
     }
-    for (i, row) in sums.iter().enumerate() {
+    if let Some((z, zb, rank)) = t.low {
+        steps(z, R, 1, zb, rank);
+    }
+    for (i, row) in sums.iter_mut().enumerate() {
+        if let Some(bias) = t.bias {
+            row.iter_mut().zip(bias).for_each(|(d, s)| *d += s);
+        }
         let dst = &mut c[i * t.ldc..i * t.ldc + t.cols];
         if t.acc {
-            dst.iter_mut().zip(row).for_each(|(d, s)| *d += s);
+            dst.iter_mut().zip(row.iter()).for_each(|(d, s)| *d += s);
         } else {
             dst.copy_from_slice(&row[..t.cols]);
         }
@@ -870,40 +983,54 @@ fn packed_tile_portable<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
 #[cfg(target_arch = "x86_64")]
 #[allow(unsafe_code)]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn packed_tile_avx2<const R: usize, const FETCH: bool>(t: &Tile<'_>, c: &mut [f32]) {
+unsafe fn packed_tile_avx2<const R: usize, const FETCH: bool, const PACKED: bool>(
+    t: &Tile<'_>,
+    c: &mut [f32],
+) {
     match R {
-        1 => unsafe { packed_tile_avx2_streams::<R, 4, FETCH>(t, c) },
-        2 | 3 => unsafe { packed_tile_avx2_streams::<R, 2, FETCH>(t, c) },
-        _ => unsafe { packed_tile_avx2_streams::<R, 1, FETCH>(t, c) },
+        1 => unsafe { packed_tile_avx2_streams::<R, 4, FETCH, PACKED>(t, c) },
+        2 | 3 => unsafe { packed_tile_avx2_streams::<R, 2, FETCH, PACKED>(t, c) },
+        _ => unsafe { packed_tile_avx2_streams::<R, 1, FETCH, PACKED>(t, c) },
     }
 }
 
 #[cfg(target_arch = "x86_64")]
 #[allow(unsafe_code)]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: bool>(
+unsafe fn packed_tile_avx2_streams<
+    const R: usize,
+    const S: usize,
+    const FETCH: bool,
+    const PACKED: bool,
+>(
     t: &Tile<'_>,
     c: &mut [f32],
 ) {
     use std::arch::x86_64::*;
     let (pa, pb, pn, kb) = (t.a.as_ptr(), t.b.as_ptr(), t.next.as_ptr(), t.kb);
+    // Input q of row i is at pa[q * step + i * lda]: packed, or rows lda apart.
+    let (step, lda) = if PACKED {
+        (R, 1)
+    } else {
+        (1, t.lda.unwrap_or(0))
+    };
     let mut lo = [[_mm256_setzero_ps(); R]; S];
     let mut hi = [[_mm256_setzero_ps(); R]; S];
     let seg = kb / S;
     for p in 0..seg {
         for s in 0..S {
             let q = p + s * seg;
-            // SAFETY: q < S * seg <= kb, so the panel row q, the row q of next and the packed
-            // inputs a[q * R..q * R + R] are in bounds (asserted by the caller).
+            // SAFETY: q < S * seg <= kb, so the panel row q, the row q of next and the inputs
+            // q of every row are in bounds (asserted by the caller).
             unsafe {
                 if FETCH {
                     _mm_prefetch::<_MM_HINT_T0>(pn.add(q * PANEL) as *const i8);
                 }
                 let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
                 let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
-                let a = pa.add(q * R);
+                let a = pa.add(q * step);
                 for i in 0..R {
-                    let x = _mm256_broadcast_ss(&*a.add(i));
+                    let x = _mm256_broadcast_ss(&*a.add(i * lda));
                     lo[s][i] = _mm256_fmadd_ps(x, b0, lo[s][i]);
                     hi[s][i] = _mm256_fmadd_ps(x, b1, hi[s][i]);
                 }
@@ -915,9 +1042,9 @@ unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: 
         unsafe {
             let b0 = _mm256_loadu_ps(pb.add(q * PANEL));
             let b1 = _mm256_loadu_ps(pb.add(q * PANEL + 8));
-            let a = pa.add(q * R);
+            let a = pa.add(q * step);
             for i in 0..R {
-                let x = _mm256_broadcast_ss(&*a.add(i));
+                let x = _mm256_broadcast_ss(&*a.add(i * lda));
                 lo[0][i] = _mm256_fmadd_ps(x, b0, lo[0][i]);
                 hi[0][i] = _mm256_fmadd_ps(x, b1, hi[0][i]);
             }
@@ -946,9 +1073,22 @@ unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: 
             hi[0][i] = _mm256_add_ps(hi[0][i], hi[s][i]);
         }
     }
-    let (lo, hi) = (lo[0], hi[0]);
+    let (mut lo, mut hi) = (lo[0], hi[0]);
     let (ldc, cols) = (t.ldc, t.cols);
     let pc = c.as_mut_ptr();
+    if let (Some(bias), true) = (t.bias, cols == PANEL) {
+        // SAFETY: bias holds cols = 16 values (asserted by the caller).
+        let (b0, b1) = unsafe {
+            (
+                _mm256_loadu_ps(bias.as_ptr()),
+                _mm256_loadu_ps(bias.as_ptr().add(8)),
+            )
+        };
+        for i in 0..R {
+            lo[i] = _mm256_add_ps(lo[i], b0);
+            hi[i] = _mm256_add_ps(hi[i], b1);
+        }
+    }
     if cols == PANEL {
         for i in 0..R {
             // SAFETY: (R - 1) * ldc + 16 <= c.len() (asserted by the caller).
@@ -970,6 +1110,9 @@ unsafe fn packed_tile_avx2_streams<const R: usize, const S: usize, const FETCH: 
             unsafe {
                 _mm256_storeu_ps(tmp.as_mut_ptr(), lo[i]);
                 _mm256_storeu_ps(tmp.as_mut_ptr().add(8), hi[i]);
+            }
+            if let Some(bias) = t.bias {
+                tmp.iter_mut().zip(bias).for_each(|(d, s)| *d += s);
             }
             let dst = &mut c[i * ldc..i * ldc + cols];
             if t.acc {
@@ -1348,10 +1491,21 @@ unsafe fn norm_rows_avx2(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &
 
 /// The exact (erf) GELU in place: `x <- x/2 (1 + erf(x / sqrt 2))`.
 pub fn gelu_erf_in_place(xs: &mut [f32]) {
-    if use_avx2() {
-        gelu_erf_dispatch(xs);
+    use rayon::prelude::*;
+    let fast = use_avx2();
+    let run = |xs: &mut [f32]| {
+        if fast {
+            gelu_erf_dispatch(xs);
+        } else {
+            gelu_erf_portable(xs);
+        }
+    };
+    // A batch's activations (millions of values) are split across the pool: on one thread
+    // they would leave the others idle for a few milliseconds per layer.
+    if xs.len() < 1 << 16 || rayon_threads() <= 1 {
+        run(xs);
     } else {
-        gelu_erf_portable(xs);
+        xs.par_chunks_mut(1 << 14).for_each(run);
     }
 }
 
@@ -1501,28 +1655,31 @@ mod tests {
         p
     }
 
-    /// `packed_matmul` with the kernel path chosen, single-threaded: what the threaded paths run
-    /// on each part.
-    fn packed_on_path(y: &mut [f32], x: &[f32], m: usize, w: &PackedWeight, acc: bool, fast: bool) {
+    /// `packed_matmul` with the kernel path and the input layout chosen, single-threaded: what
+    /// the threaded paths run on each part.
+    fn packed_on_path(
+        y: &mut [f32],
+        x: &[f32],
+        w: &PackedWeight,
+        acc: bool,
+        fast: bool,
+        pack: bool,
+    ) {
         let panels = w.out.div_ceil(PANEL);
         for (yb, xb) in y
             .chunks_mut(BLOCK_ROWS * w.out)
             .zip(x.chunks(BLOCK_ROWS * w.inp))
         {
-            panels_into(
-                yb,
-                w.out,
-                xb,
-                w.inp,
-                xb.len() / w.inp,
-                w,
-                0..panels,
-                acc,
-                &Part::new(0, xb.len() / w.inp, &[]),
+            let rows = xb.len() / w.inp;
+            let run = Run {
+                panels: 0..panels,
+                accumulate: acc,
+                bias: None,
                 fast,
-            );
+            };
+            let part = Part::new(0, rows, &[]);
+            panels_into_packing(yb, w.out, xb, w.inp, rows, w, &part, &run, pack);
         }
-        let _ = m;
     }
 
     #[test]
@@ -1541,7 +1698,7 @@ mod tests {
         // Row counts through one tile and past it (6 rows a tile, 72 a row block), output
         // widths inside a panel, at a panel and past it, inner lengths shorter than a block,
         // at several blocks and with remainders after the stream segments.
-        for fast in paths() {
+        for (fast, pack) in paths().into_iter().flat_map(|f| [(f, false), (f, true)]) {
             for m in (1..=20).chain([71, 72, 73, 150]) {
                 for &(k, n) in &[
                     (1, 1),
@@ -1557,20 +1714,20 @@ mod tests {
                     let packed = PackedWeight::pack(&w, n, k);
                     let want = reference_rows(&x, &w, m, k, n);
                     let mut out = vec![7.0; m * n];
-                    packed_on_path(&mut out, &x, m, &packed, false, fast);
+                    packed_on_path(&mut out, &x, &packed, false, fast, pack);
                     let mut acc = vec![1.0; m * n];
-                    packed_on_path(&mut acc, &x, m, &packed, true, fast);
+                    packed_on_path(&mut acc, &x, &packed, true, fast, pack);
                     for i in 0..m * n {
                         let e = want[i];
                         let tol = 1e-4 * (1.0 + e.abs()) * (k as f32).sqrt();
                         assert!(
                             (out[i] - e).abs() < tol,
-                            "fast={fast} m={m} k={k} n={n} at {i}: {} vs {e}",
+                            "fast={fast} pack={pack} m={m} k={k} n={n} at {i}: {} vs {e}",
                             out[i]
                         );
                         assert!(
                             (acc[i] - 1.0 - e).abs() < tol,
-                            "accumulate, fast={fast} m={m}"
+                            "accumulate, fast={fast} pack={pack} m={m}"
                         );
                     }
                 }
@@ -1642,7 +1799,11 @@ mod tests {
                     scale,
                 })
                 .collect();
+            let bias = values(n, 99);
             let mut want = reference_rows(&x, &w, m, k, n);
+            for (i, v) in want.iter_mut().enumerate() {
+                *v += bias[i % n];
+            }
             for ((run, (a, b)), (&r, s)) in runs.iter().zip(&factors).zip(ranks.iter().zip(scales))
             {
                 let z = reference_rows(&x[run.start * k..run.end * k], a, run.len(), k, r);
@@ -1654,14 +1815,8 @@ mod tests {
                 }
             }
             let mut got = vec![3.0; m * n];
-            packed_matmul_with(
-                &mut got,
-                &x,
-                m,
-                &PackedWeight::pack(&w, n, k),
-                false,
-                &terms,
-            );
+            let packed = PackedWeight::pack(&w, n, k);
+            packed_matmul_with(&mut got, &x, m, &packed, false, Some(&bias), &terms);
             for (i, (g, e)) in got.iter().zip(&want).enumerate() {
                 assert!(
                     (g - e).abs() < 1e-3 * (1.0 + e.abs()),
@@ -1671,7 +1826,7 @@ mod tests {
             }
             // Accumulating onto what is there adds the same.
             let mut acc = vec![1.0; m * n];
-            packed_matmul_with(&mut acc, &x, m, &PackedWeight::pack(&w, n, k), true, &terms);
+            packed_matmul_with(&mut acc, &x, m, &packed, true, Some(&bias), &terms);
             for (g, e) in acc.iter().zip(&want) {
                 assert!(
                     (g - 1.0 - e).abs() < 1e-3 * (1.0 + e.abs()),
@@ -1682,42 +1837,39 @@ mod tests {
     }
 
     #[test]
-    fn fused_terms_match_on_the_portable_and_the_avx2_path() {
-        // One row block, prepared and run on each kernel path by hand.
+    fn fused_terms_and_bias_match_on_every_kernel_path_and_input_layout() {
+        // One row block, prepared and run on each kernel path and layout by hand.
         let (m, k, n, r) = (50, 200, 70, 12);
         let x = values(m * k, 61);
         let w = PackedWeight::pack(&values(n * k, 62), n, k);
         let a = PackedWeight::pack(&values(r * k, 63), r, k);
         let b = PackedWeight::pack(&values(n * r, 64), n, r);
+        let bias = values(n, 65);
         let terms = [RowTerm {
             rows: 5..41,
             a: &a,
             b: &b,
             scale: 0.75,
         }];
-        let mut outs = Vec::new();
-        for fast in paths() {
-            let mut y = vec![0.0; m * n];
-            let part = Part::new(0, m, &terms);
-            panels_into(
-                &mut y,
-                n,
-                &x,
-                k,
-                m,
-                &w,
-                0..n.div_ceil(PANEL),
-                false,
-                &part,
-                fast,
-            );
-            outs.push(y);
-        }
         let mut want = vec![0.0; m * n];
-        packed_matmul_with(&mut want, &x, m, &w, false, &terms);
-        for y in &outs {
-            for (g, e) in y.iter().zip(&want) {
-                assert!((g - e).abs() < 1e-3 * (1.0 + e.abs()), "{g} vs {e}");
+        packed_matmul_with(&mut want, &x, m, &w, false, Some(&bias), &terms);
+        for fast in paths() {
+            for pack in [false, true] {
+                let mut y = vec![0.0; m * n];
+                let part = Part::new(0, m, &terms);
+                let run = Run {
+                    panels: 0..n.div_ceil(PANEL),
+                    accumulate: false,
+                    bias: Some(&bias),
+                    fast,
+                };
+                panels_into_packing(&mut y, n, &x, k, m, &w, &part, &run, pack);
+                for (g, e) in y.iter().zip(&want) {
+                    assert!(
+                        (g - e).abs() < 1e-3 * (1.0 + e.abs()),
+                        "fast={fast} pack={pack}: {g} vs {e}"
+                    );
+                }
             }
         }
     }

@@ -9,7 +9,7 @@ use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
 use serde::Deserialize;
 use switchyard_adapters::kernels::{
     PackedWeight, add_layer_norm_in_place, gelu_erf_in_place, packed_matmul_strided,
-    softmax_rows_in_place, with_f32,
+    softmax_rows_in_place,
 };
 use switchyard_adapters::{BaseSpec, Module, Site};
 
@@ -132,36 +132,89 @@ impl Layer {
         [&self.q, &self.k, &self.v, &self.o, &self.up, &self.down]
     }
 
-    /// `x [b, t, h]`; `key_bias [b, t]` is added to every score of that key (0 for a real
-    /// token, a large negative number for padding). Everything after the embeddings runs on
-    /// plain slices: the projections write straight into their buffers, the activation and the
-    /// residual add with its layer norm run in place.
-    fn forward(&self, x: &Tensor, key_bias: &[f32], adapters: &RowAdapters) -> Result<Tensor> {
-        let (b, t, h) = x.dims3()?;
+    /// `x [b * t, h]` into `a.out`; `key_bias [b, t]` is added to every score of that key (0
+    /// for a real token, a large negative number for padding). Everything runs on plain slices
+    /// in the reused buffers of `a`: the projections write straight into them, the activation
+    /// and the residual add with its layer norm run in place.
+    #[allow(clippy::too_many_arguments)]
+    fn forward(
+        &self,
+        x: &[f32],
+        b: usize,
+        t: usize,
+        key_bias: &[f32],
+        adapters: &RowAdapters,
+        a: &mut Activations,
+    ) -> Result<()> {
+        use rayon::prelude::*;
         let rows = b * t;
-        let x = x.contiguous()?;
-        let attn = with_f32(&x, |xs| -> Result<Vec<f32>> {
-            let q = self.q.forward_rows(xs, rows, adapters)?;
-            let k = self.k.forward_rows(xs, rows, adapters)?;
-            let v = self.v.forward_rows(xs, rows, adapters)?;
-            let ctx = attention(&q, &k, &v, key_bias, b, t, h, self.heads);
-            let mut attn = self.o.forward_rows(&ctx, rows, adapters)?;
-            self.attn_norm.apply(&mut attn, xs)?;
-            Ok(attn)
-        })??;
-        let mut inner = self.up.forward_rows(&attn, rows, adapters)?;
+        let h = x.len() / rows.max(1);
+        self.q.forward_rows_into(x, rows, adapters, &mut a.q)?;
+        self.k.forward_rows_into(x, rows, adapters, &mut a.k)?;
+        self.v.forward_rows_into(x, rows, adapters, &mut a.v)?;
+        attention(&a.q, &a.k, &a.v, key_bias, b, t, h, self.heads, &mut a.ctx);
+        self.o
+            .forward_rows_into(&a.ctx, rows, adapters, &mut a.attn)?;
+        self.attn_norm.apply(&mut a.attn, x)?;
+        self.up
+            .forward_rows_into(&a.attn, rows, adapters, &mut a.inner)?;
         match self.act {
-            Activation::GeluErf => gelu_erf_in_place(&mut inner),
-            Activation::GeluTanh => inner.iter_mut().for_each(|v| {
-                let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);
-                *v = 0.5 * *v * (1.0 + u.tanh());
+            Activation::GeluErf => gelu_erf_in_place(&mut a.inner),
+            Activation::GeluTanh => a.inner.par_chunks_mut(1 << 14).for_each(|c| {
+                c.iter_mut().for_each(|v| {
+                    let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);
+                    *v = 0.5 * *v * (1.0 + u.tanh());
+                })
             }),
-            Activation::Relu => inner.iter_mut().for_each(|v| *v = v.max(0.0)),
+            Activation::Relu => a
+                .inner
+                .par_chunks_mut(1 << 14)
+                .for_each(|c| c.iter_mut().for_each(|v| *v = v.max(0.0))),
         }
-        let mut out = self.down.forward_rows(&inner, rows, adapters)?;
-        self.out_norm.apply(&mut out, &attn)?;
-        Tensor::from_vec(out, (b, t, h), x.device())
+        self.down
+            .forward_rows_into(&a.inner, rows, adapters, &mut a.out)?;
+        self.out_norm.apply(&mut a.out, &a.attn)?;
+        Ok(())
     }
+}
+
+/// One layer's activations, kept from layer to layer and from call to call (per thread), so a
+/// forward pass allocates, faults in and zeroes nothing once they have grown to its batch size.
+#[derive(Default)]
+struct Activations {
+    q: Vec<f32>,
+    k: Vec<f32>,
+    v: Vec<f32>,
+    ctx: Vec<f32>,
+    attn: Vec<f32>,
+    inner: Vec<f32>,
+    out: Vec<f32>,
+}
+
+impl Activations {
+    fn bytes(&self) -> usize {
+        [
+            &self.q,
+            &self.k,
+            &self.v,
+            &self.ctx,
+            &self.attn,
+            &self.inner,
+            &self.out,
+        ]
+        .iter()
+        .map(|v| v.capacity() * 4)
+        .sum()
+    }
+}
+
+/// Activations larger than this (a very large batch) are freed after the pass instead of kept:
+/// 64 MB holds those of 32 sequences of 128 tokens on a MiniLM-sized encoder.
+const KEEP_ACTIVATION_BYTES: usize = 64 << 20;
+
+thread_local! {
+    static ACTIVATIONS: std::cell::RefCell<Activations> =
+        std::cell::RefCell::new(Activations::default());
 }
 
 /// A layer norm's parameters as plain vectors, applied after a residual add in place.
@@ -216,11 +269,13 @@ fn attention(
     t: usize,
     h: usize,
     heads: usize,
-) -> Vec<f32> {
+    ctx: &mut Vec<f32>,
+) {
     use rayon::prelude::*;
     let dh = h / heads;
     let scale = 1.0 / (dh as f32).sqrt();
-    let mut ctx = vec![0f32; b * t * h];
+    // Every value is overwritten: each head writes its columns of every row.
+    ctx.resize(b * t * h, 0.0);
     let one = |s: usize, out: &mut [f32]| {
         let mut scores = vec![0f32; t * t];
         let mut keys = PackedWeight::empty();
@@ -246,7 +301,6 @@ fn attention(
             .enumerate()
             .for_each(|(s, out)| one(s, out));
     }
-    ctx
 }
 
 /// A BERT-family encoder.
@@ -286,16 +340,34 @@ impl BertModel {
     pub fn forward(&self, ids: &Tensor, mask: &Tensor, adapters: &RowAdapters) -> Result<Tensor> {
         let _span = tracing::trace_span!("bert_forward").entered();
         let type_ids = ids.zeros_like()?;
-        let mut x = self.embeddings.forward(ids, &type_ids)?;
+        let embedded = self.embeddings.forward(ids, &type_ids)?;
+        let (b, t, h) = embedded.dims3()?;
         // Additive mask: 0 where a key is a real token, a large negative number where it is padding.
-        let (b, t) = mask.dims2()?;
         let key_bias: Vec<f32> = ((mask.to_dtype(DType::F32)? - 1.0)? * 1e9)?
             .reshape(b * t)?
             .to_vec1()?;
-        for layer in &self.layers {
-            x = layer.forward(&x, &key_bias, adapters)?;
+        if key_bias.len() != b * t {
+            candle_core::bail!(
+                "attention mask has {} values for {b} x {t} tokens",
+                key_bias.len()
+            );
         }
-        Ok(x)
+        let mut x = embedded
+            .to_dtype(DType::F32)?
+            .flatten_all()?
+            .to_vec1::<f32>()?;
+        // Taken out of the thread-local, not borrowed: a rayon wait inside may run other work here.
+        let mut acts = ACTIVATIONS.with_borrow_mut(std::mem::take);
+        let done = self.layers.iter().try_for_each(|layer| {
+            layer.forward(&x, b, t, &key_bias, adapters, &mut acts)?;
+            std::mem::swap(&mut x, &mut acts.out);
+            Ok::<_, candle_core::Error>(())
+        });
+        if acts.bytes() <= KEEP_ACTIVATION_BYTES {
+            ACTIVATIONS.with_borrow_mut(|a| *a = acts);
+        }
+        done?;
+        Tensor::from_vec(x, (b, t, h), ids.device())
     }
 
     /// The shape of every matrix an adapter may target, with the base's fingerprint.

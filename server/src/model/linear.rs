@@ -2,9 +2,9 @@
 //!
 //! It computes `W0 x + s B (A x)` for a flat batch of rows where each row may carry a different
 //! adapter or none. The base matmul runs once over all rows, straight into the output buffer
-//! (with the bias, if any, as its starting value), and each run of consecutive rows that shares
-//! an adapter carries that adapter's low-rank term into the same kernel call, which fuses it into
-//! the base product (no gather, no scatter, no temporary output, no pass of its own). When the
+//! (the bias, if any, added as the kernel stores each tile), and each run of consecutive rows
+//! that shares an adapter carries that adapter's low-rank term into the same kernel call, which
+//! fuses it into the base product (no gather, no scatter, no temporary output, no pass of its own). When the
 //! whole batch runs one merged variant, the merged weight replaces `W0` and no low-rank term is
 //! computed.
 
@@ -110,16 +110,25 @@ impl RowAdapters {
 pub struct AdaptedLinear {
     site: Site,
     weight: Arc<PackedWeight>,
-    bias: Option<Tensor>,
+    bias: Option<Vec<f32>>,
 }
 
 impl AdaptedLinear {
     pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Result<Self> {
         let weight = Arc::new(PackedWeight::from_tensor(&weight)?);
         let bias = match bias {
-            Some(b) => Some(b.to_dtype(DType::F32)?.contiguous()?),
+            Some(b) => Some(b.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?),
             None => None,
         };
+        if let Some(b) = &bias
+            && b.len() != weight.out_features()
+        {
+            candle_core::bail!(
+                "{site}: bias has {} values, the weight {} output features",
+                b.len(),
+                weight.out_features()
+            );
+        }
         Ok(Self { site, weight, bias })
     }
 
@@ -191,6 +200,21 @@ impl AdaptedLinear {
         rows: usize,
         adapters: &RowAdapters,
     ) -> Result<Vec<f32>> {
+        let mut y = Vec::new();
+        self.forward_rows_into(xs, rows, adapters, &mut y)?;
+        Ok(y)
+    }
+
+    /// [`Self::forward_rows`] into a reused buffer: `y` is resized to `[rows, out]` and every
+    /// value of it overwritten, so a buffer kept from an earlier call of the same size costs
+    /// no allocation, no page faults and no zeroing.
+    pub fn forward_rows_into(
+        &self,
+        xs: &[f32],
+        rows: usize,
+        adapters: &RowAdapters,
+        y: &mut Vec<f32>,
+    ) -> Result<()> {
         let (out_dim, in_dim) = self.shape();
         if rows != adapters.rows || xs.len() != rows * in_dim {
             candle_core::bail!(
@@ -205,10 +229,7 @@ impl AdaptedLinear {
             .as_ref()
             .and_then(|m| m.weight(&self.site))
             .unwrap_or(&self.weight);
-        let mut y = match &self.bias {
-            Some(bias) => with_f32(bias, |b| b.repeat(rows))?,
-            None => vec![0f32; rows * out_dim],
-        };
+        y.resize(rows * out_dim, 0.0);
         // Every run of rows that carries an adapter with a factor pair here becomes one term
         // of the base product, fused into it by the kernel.
         let mut terms: Vec<RowTerm<'_>> = Vec::new();
@@ -227,7 +248,7 @@ impl AdaptedLinear {
             }
             terms.extend(group.runs.iter().map(|run| lr.term(run.clone())));
         }
-        packed_matmul_with(&mut y, xs, rows, weight, self.bias.is_some(), &terms);
-        Ok(y)
+        packed_matmul_with(y, xs, rows, weight, false, self.bias.as_deref(), &terms);
+        Ok(())
     }
 }
