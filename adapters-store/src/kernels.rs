@@ -398,12 +398,7 @@ pub fn packed_matmul_with(
         let rows = yb.len() / n;
         let part = Part::new(i * BLOCK_ROWS, rows, terms);
         let xb = &x[i * BLOCK_ROWS * k..];
-        let run = Run {
-            panels: 0..panels,
-            accumulate,
-            bias,
-            fast,
-        };
+        let run = Run::new(0..panels, accumulate, bias, fast);
         panels_into(yb, n, xb, k, rows, w, &part, &run);
     };
     if threads <= 1 || m * n * k < (1 << 20) {
@@ -428,7 +423,8 @@ pub fn packed_matmul_with(
     scratch.clear();
     scratch.resize(m * panels * PANEL, 0.0);
     let part = Part::new(0, m, terms);
-    let prep = bufs.prepare(x, k, k, m, &part, panels >= PACK_PANELS, fast);
+    let all = Run::new(0..panels, false, bias, fast);
+    let prep = bufs.prepare(x, k, k, m, &part, all.pack, fast);
     scratch
         .par_chunks_mut(per * PANEL * m)
         .enumerate()
@@ -438,9 +434,7 @@ pub fn packed_matmul_with(
             let p1 = p0 + width / PANEL;
             let run = Run {
                 panels: p0..p1,
-                accumulate: false,
-                bias,
-                fast,
+                ..all.clone()
             };
             run_panels(out, width, &prep, w, &run);
         });
@@ -497,12 +491,7 @@ pub fn packed_matmul_strided(
     let mut i0 = 0;
     while i0 < m {
         let rows = BLOCK_ROWS.min(m - i0);
-        let run = Run {
-            panels: 0..panels,
-            accumulate,
-            bias: None,
-            fast,
-        };
+        let run = Run::new(0..panels, accumulate, None, fast);
         panels_into(
             &mut y[i0 * y_stride..],
             y_stride,
@@ -613,8 +602,8 @@ impl Buffers {
             self.tiles.push(TileRows { i, r, term });
             i += r;
         }
-        self.x.clear();
         if pack {
+            // Every value is overwritten by the packing (the tiles cover rows 0..m).
             self.x.resize(m * k, 0.0);
             for t in &self.tiles {
                 let dst = &mut self.x[t.i * k..(t.i + t.r) * k];
@@ -695,11 +684,32 @@ fn tile_dispatch(r: usize, t: &Tile<'_>, c: &mut [f32], fast: bool) {
 
 /// What one [`run_panels`] call computes: panels `panels` of the weight, onto the output or
 /// not, with the bias (all of it, `[out]`) added as each tile is first stored.
+#[derive(Clone)]
 struct Run<'a> {
     panels: std::ops::Range<usize>,
     accumulate: bool,
     bias: Option<&'a [f32]>,
     fast: bool,
+    /// Pack the rows first: when they run over at least [`PACK_PANELS`] panels.
+    pack: bool,
+}
+
+impl<'a> Run<'a> {
+    fn new(
+        panels: std::ops::Range<usize>,
+        accumulate: bool,
+        bias: Option<&'a [f32]>,
+        fast: bool,
+    ) -> Self {
+        let pack = panels.len() >= PACK_PANELS;
+        Self {
+            panels,
+            accumulate,
+            bias,
+            fast,
+            pack,
+        }
+    }
 }
 
 /// Panels `run.panels` of `w` for rows `0..m` of `x` (rows `lda` apart), into `out` (row stride
@@ -716,26 +726,9 @@ fn panels_into(
     part: &Part<'_, '_>,
     run: &Run<'_>,
 ) {
-    let pack = run.panels.len() >= PACK_PANELS;
-    panels_into_packing(out, stride, x, lda, m, w, part, run, pack);
-}
-
-/// [`panels_into`] with the choice to pack the rows made by the caller.
-#[allow(clippy::too_many_arguments)]
-fn panels_into_packing(
-    out: &mut [f32],
-    stride: usize,
-    x: &[f32],
-    lda: usize,
-    m: usize,
-    w: &PackedWeight,
-    part: &Part<'_, '_>,
-    run: &Run<'_>,
-    pack: bool,
-) {
     // Nothing in here waits on the pool, so the borrow cannot be taken twice.
     BUFFERS.with_borrow_mut(|bufs| {
-        let prep = bufs.prepare(x, lda, w.inp, m, part, pack, run.fast);
+        let prep = bufs.prepare(x, lda, w.inp, m, part, run.pack, run.fast);
         run_panels(out, stride, &prep, w, run);
     });
 }
@@ -1672,13 +1665,11 @@ mod tests {
         {
             let rows = xb.len() / w.inp;
             let run = Run {
-                panels: 0..panels,
-                accumulate: acc,
-                bias: None,
-                fast,
+                pack,
+                ..Run::new(0..panels, acc, None, fast)
             };
             let part = Part::new(0, rows, &[]);
-            panels_into_packing(yb, w.out, xb, w.inp, rows, w, &part, &run, pack);
+            panels_into(yb, w.out, xb, w.inp, rows, w, &part, &run);
         }
     }
 
@@ -1858,12 +1849,10 @@ mod tests {
                 let mut y = vec![0.0; m * n];
                 let part = Part::new(0, m, &terms);
                 let run = Run {
-                    panels: 0..n.div_ceil(PANEL),
-                    accumulate: false,
-                    bias: Some(&bias),
-                    fast,
+                    pack,
+                    ..Run::new(0..n.div_ceil(PANEL), false, Some(&bias), fast)
                 };
-                panels_into_packing(&mut y, n, &x, k, m, &w, &part, &run, pack);
+                panels_into(&mut y, n, &x, k, m, &w, &part, &run);
                 for (g, e) in y.iter().zip(&want) {
                     assert!(
                         (g - e).abs() < 1e-3 * (1.0 + e.abs()),
