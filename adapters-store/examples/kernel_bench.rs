@@ -8,8 +8,9 @@
 //! (128 MB) that they come from memory, as in a real step.
 //!
 //! Run: `cargo run --release -p switchyard-adapters --example kernel-bench` (add
-//! `-- --repeats N`). Every figure is the median of the repeats. Inputs are seeded random
-//! values, which is all the kernel's speed depends on.
+//! `-- --repeats N`, or `-- --only TEXT` for the shapes whose description holds TEXT). Every
+//! figure is the median of the repeats. Inputs are seeded random values, which is all the
+//! kernel's speed depends on.
 
 use std::time::Instant;
 
@@ -127,6 +128,13 @@ fn main() {
             weights: 8,
         },
         Shape {
+            what: "batch 16, 2048 x 512 weight in cache",
+            m: 16,
+            k: 2048,
+            n: 512,
+            weights: 1,
+        },
+        Shape {
             what: "decoder 2048 x 2048, batch 1",
             m: 1,
             k: 2048,
@@ -140,7 +148,14 @@ fn main() {
         rayon::current_num_threads()
     );
     let mut peaks = Vec::new();
-    for shape in &shapes {
+    // `--only TEXT`: just the shapes whose description holds TEXT.
+    let only = args
+        .iter()
+        .position(|a| a == "--only")
+        .and_then(|i| args.get(i + 1))
+        .cloned()
+        .unwrap_or_default();
+    for shape in shapes.iter().filter(|s| s.what.contains(only.as_str())) {
         let x: Vec<f32> = (0..shape.m * shape.k)
             .map(|_| rng.random_range(-1.0..1.0))
             .collect();
