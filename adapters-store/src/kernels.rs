@@ -1,80 +1,15 @@
-//! The one place switchyard calls the `gemm` crate's raw f32 kernel. It computes
-//! `dst = (accumulate ? dst : 0) + scale * lhs * rhs` on strided views of plain slices, so callers
-//! can run a matmul straight into an output buffer (no temporary, no extra pass), accumulate a
-//! low-rank term onto a base output in place, or merge `s B A` into a weight in place. The kernel
-//! picks AVX-512, AVX2+FMA or a scalar fallback at run time from what the CPU offers.
+//! switchyard's own CPU kernels on plain slices: the packed projection kernel every model
+//! projection runs through ([`PackedWeight`], [`packed_matmul`], [`packed_matmul_with`] with fused
+//! low-rank terms and bias, [`packed_matmul_strided`] for attention heads), and the vectorised
+//! pieces around it (dot, axpy, softmax, GELU, residual add with layer norm). Each has an AVX2+FMA
+//! path, picked at run time, and a portable one (`SWITCHYARD_KERNELS=portable` forces it).
 //!
-//! Every call is bounds-checked here, so the `unsafe` call below cannot read or write outside
-//! the slices it was given.
+//! Every `unsafe` block is preceded by the asserts that bound what it reads and writes.
 
-pub use gemm::Parallelism;
-
-/// A read-only strided view of a row-major-or-not matrix inside a slice.
-#[derive(Debug, Clone, Copy)]
-pub struct MatRef<'a> {
-    pub data: &'a [f32],
-    pub rows: usize,
-    pub cols: usize,
-    /// Elements between the starts of consecutive rows.
-    pub row_stride: usize,
-    /// Elements between consecutive columns of a row.
-    pub col_stride: usize,
-}
-
-impl<'a> MatRef<'a> {
-    /// A contiguous row-major `[rows, cols]` matrix.
-    pub fn row_major(data: &'a [f32], rows: usize, cols: usize) -> Self {
-        Self {
-            data,
-            rows,
-            cols,
-            row_stride: cols,
-            col_stride: 1,
-        }
-    }
-
-    /// The transpose of a contiguous row-major `[cols, rows]` matrix, viewed as `[rows, cols]`.
-    pub fn transposed(data: &'a [f32], rows: usize, cols: usize) -> Self {
-        Self {
-            data,
-            rows,
-            cols,
-            row_stride: 1,
-            col_stride: rows,
-        }
-    }
-
-    /// Rows `start..start + len` of this view.
-    pub fn rows_range(&self, start: usize, len: usize) -> Self {
-        assert!(start + len <= self.rows, "row range outside the matrix");
-        Self {
-            data: &self.data[(start * self.row_stride).min(self.data.len())..],
-            rows: len,
-            ..*self
-        }
-    }
-
-    fn fits(&self) -> bool {
-        if self.rows == 0 || self.cols == 0 {
-            return true;
-        }
-        let last = (self.rows - 1) * self.row_stride + (self.cols - 1) * self.col_stride;
-        last < self.data.len()
-    }
-}
-
-/// How many threads the kernel may use for a product of this size: one thread for small
-/// products, where splitting costs more than it saves (at M = 1 on 384-wide layers one thread
-/// is 2–4x faster than two, see shared/PERF-NOTES.md), all of them otherwise.
-pub fn parallelism_for(m: usize, n: usize, k: usize) -> Parallelism {
-    let flops = 2 * m * n * k;
-    let threads = rayon_threads();
-    if threads <= 1 || flops < 4_000_000 {
-        Parallelism::None
-    } else {
-        Parallelism::Rayon(threads)
-    }
-}
+#[cfg(test)]
+mod gemm_reference;
+#[cfg(test)]
+use gemm_reference::{MatRef, Parallelism, matmul_into};
 
 fn rayon_threads() -> usize {
     static THREADS: std::sync::OnceLock<usize> = std::sync::OnceLock::new();
@@ -89,66 +24,6 @@ fn rayon_threads() -> usize {
                     .unwrap_or(1)
             })
     })
-}
-
-/// `dst[m, n] (row stride dst_row_stride) = (accumulate ? dst : 0) + scale * lhs[m, k] * rhs[k, n]`.
-///
-/// Panics when a view does not fit its slice or the shapes disagree.
-pub fn matmul_into(
-    dst: &mut [f32],
-    dst_row_stride: usize,
-    lhs: MatRef<'_>,
-    rhs: MatRef<'_>,
-    accumulate: bool,
-    scale: f32,
-    parallelism: Parallelism,
-) {
-    let (m, k, n) = (lhs.rows, lhs.cols, rhs.cols);
-    assert_eq!(rhs.rows, k, "inner dimensions differ");
-    assert!(
-        lhs.fits() && rhs.fits(),
-        "a matrix view does not fit its slice"
-    );
-    assert!(dst_row_stride >= n, "destination rows overlap");
-    if m == 0 || n == 0 {
-        return;
-    }
-    assert!(
-        (m - 1) * dst_row_stride + n <= dst.len(),
-        "destination does not fit its slice"
-    );
-    if k == 0 {
-        if !accumulate {
-            zero_rows(dst, dst_row_stride, m, n);
-        }
-        return;
-    }
-    // SAFETY: the asserts above prove that every element the kernel reads (lhs, rhs) and writes
-    // (dst) lies inside its slice; dst is borrowed mutably, so it aliases neither input.
-    #[allow(unsafe_code)]
-    unsafe {
-        gemm::gemm(
-            m,
-            n,
-            k,
-            dst.as_mut_ptr(),
-            1,
-            dst_row_stride as isize,
-            accumulate,
-            lhs.data.as_ptr(),
-            lhs.col_stride as isize,
-            lhs.row_stride as isize,
-            rhs.data.as_ptr(),
-            rhs.col_stride as isize,
-            rhs.row_stride as isize,
-            1.0,
-            scale,
-            false,
-            false,
-            false,
-            parallelism,
-        );
-    }
 }
 
 /// The first `n` values of each of `m` rows `stride` apart set to zero: a product with an empty
@@ -1560,86 +1435,12 @@ pub fn with_f32<R>(t: &candle_core::Tensor, f: impl FnOnce(&[f32]) -> R) -> cand
 mod tests {
     use super::*;
 
-    fn naive(a: &[f32], b: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
-        let mut out = vec![0.0; m * n];
-        for i in 0..m {
-            for j in 0..n {
-                out[i * n + j] = (0..k).map(|p| a[i * k + p] * b[p * n + j]).sum();
-            }
-        }
-        out
-    }
-
     fn values(n: usize, seed: u32) -> Vec<f32> {
         (0..n)
             .map(|i| (((i as u32).wrapping_mul(2654435761) ^ seed) % 1000) as f32 / 500.0 - 1.0)
             .collect()
     }
 
-    #[test]
-    fn matches_a_naive_product_plain_and_accumulated() {
-        let (m, k, n) = (7, 13, 5);
-        let a = values(m * k, 1);
-        let b = values(k * n, 2);
-        let want = naive(&a, &b, m, k, n);
-        let mut dst = vec![9.0; m * n];
-        matmul_into(
-            &mut dst,
-            n,
-            MatRef::row_major(&a, m, k),
-            MatRef::row_major(&b, k, n),
-            false,
-            1.0,
-            Parallelism::None,
-        );
-        for (g, w) in dst.iter().zip(&want) {
-            assert!((g - w).abs() < 1e-5);
-        }
-        let start = values(m * n, 3);
-        let mut acc = start.clone();
-        matmul_into(
-            &mut acc,
-            n,
-            MatRef::row_major(&a, m, k),
-            MatRef::row_major(&b, k, n),
-            true,
-            0.5,
-            Parallelism::None,
-        );
-        for i in 0..m * n {
-            assert!((acc[i] - (start[i] + 0.5 * want[i])).abs() < 1e-5);
-        }
-    }
-
-    #[test]
-    fn transposed_rhs_reads_a_weight_stored_out_by_in() {
-        // y = x W^T with W [n, k] row-major, the layout of every checkpoint's linear weight.
-        let (m, k, n) = (3, 6, 4);
-        let x = values(m * k, 4);
-        let w = values(n * k, 5);
-        let mut wt = vec![0.0; k * n];
-        for j in 0..n {
-            for p in 0..k {
-                wt[p * n + j] = w[j * k + p];
-            }
-        }
-        let want = naive(&x, &wt, m, k, n);
-        let mut dst = vec![0.0; m * n];
-        matmul_into(
-            &mut dst,
-            n,
-            MatRef::row_major(&x, m, k),
-            MatRef::transposed(&w, k, n),
-            false,
-            1.0,
-            Parallelism::None,
-        );
-        for (g, w) in dst.iter().zip(&want) {
-            assert!((g - w).abs() < 1e-5);
-        }
-    }
-
-    /// `x [m, k] W [n, k]^T` by a plain loop in f64.
     fn reference_rows(x: &[f32], w: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
         let mut out = vec![0.0; m * n];
         for i in 0..m {
@@ -2079,22 +1880,5 @@ mod tests {
             assert!((g - w).abs() < 1e-4, "{g} vs {w}");
             assert!((p - w).abs() < 1e-4, "portable {p} vs {w}");
         }
-    }
-
-    #[test]
-    #[should_panic(expected = "does not fit")]
-    fn a_view_larger_than_its_slice_is_refused() {
-        let a = vec![0.0; 5];
-        let b = vec![0.0; 4];
-        let mut dst = vec![0.0; 4];
-        matmul_into(
-            &mut dst,
-            2,
-            MatRef::row_major(&a, 2, 3),
-            MatRef::row_major(&b, 3, 2),
-            false,
-            1.0,
-            Parallelism::None,
-        );
     }
 }
