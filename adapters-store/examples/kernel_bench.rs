@@ -83,12 +83,15 @@ mod peak {
     }
 }
 
+/// The value after `name` on the command line, if it is there.
+fn flag<'a>(args: &'a [String], name: &str) -> Option<&'a str> {
+    let at = args.iter().position(|a| a == name)?;
+    args.get(at + 1).map(String::as_str)
+}
+
 fn main() {
     let args: Vec<String> = std::env::args().collect();
-    let repeats = args
-        .iter()
-        .position(|a| a == "--repeats")
-        .and_then(|i| args.get(i + 1))
+    let repeats = flag(&args, "--repeats")
         .and_then(|v| v.parse().ok())
         .unwrap_or(9usize);
     let shapes = [
@@ -143,19 +146,19 @@ fn main() {
         },
     ];
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+    // `--only TEXT`: just the shapes whose description holds TEXT.
+    let only = flag(&args, "--only").unwrap_or_default();
+    if !shapes.iter().any(|s| s.what.contains(only)) {
+        let all: Vec<_> = shapes.iter().map(|s| s.what).collect();
+        eprintln!("kernel-bench: no shape's description holds {only:?}; the shapes: {all:?}");
+        std::process::exit(2);
+    }
     println!(
         "kernel-bench: {} threads, median of {repeats}",
         rayon::current_num_threads()
     );
     let mut peaks = Vec::new();
-    // `--only TEXT`: just the shapes whose description holds TEXT.
-    let only = args
-        .iter()
-        .position(|a| a == "--only")
-        .and_then(|i| args.get(i + 1))
-        .cloned()
-        .unwrap_or_default();
-    for shape in shapes.iter().filter(|s| s.what.contains(only.as_str())) {
+    for shape in shapes.iter().filter(|s| s.what.contains(only)) {
         let x: Vec<f32> = (0..shape.m * shape.k)
             .map(|_| rng.random_range(-1.0..1.0))
             .collect();

@@ -57,13 +57,9 @@ const SHORT_K: usize = 64;
 const BLOCK_ROWS: usize = 72;
 /// Packed rows are this many floats longer than the inner dimension (one cache line), so that
 /// with an inner dimension a multiple of 1024 the row tiles' blocks, read one after another over
-/// the same weight block, do not all fall on the same L1 sets (seen +1-4% at 16 rows).
+/// the same weight block, do not all fall on the same L1 sets (seen +1-4% at 16 rows). The pad is
+/// never written or read.
 const ROW_PAD: usize = 16;
-
-/// Where packed row `i` starts is `i * packed_stride(k)`.
-fn packed_stride(k: usize) -> usize {
-    k + ROW_PAD
-}
 
 /// Rows are packed when they run over at least this many panels; over fewer (attention heads)
 /// packing costs more than the sequential reads save.
@@ -435,6 +431,15 @@ struct TileRows {
     term: Option<usize>,
 }
 
+impl TileRows {
+    /// Where these rows lie once packed (inner dimension `k`): each row `k + ROW_PAD` floats on
+    /// from the one before, the tile's `r * k` values together.
+    fn packed(&self, k: usize) -> std::ops::Range<usize> {
+        let start = self.i * (k + ROW_PAD);
+        start..start + self.r * k
+    }
+}
+
 /// The per-thread buffers behind [`Prepared`], and the few-rows path's output blocks.
 #[derive(Default)]
 struct Buffers {
@@ -450,9 +455,9 @@ struct Buffers {
 struct Prepared<'p, 'a, 'b> {
     part: &'p Part<'a, 'b>,
     tiles: &'p [TileRows],
-    /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at `o = i *
-    /// packed_stride(k)`, its row `ii`'s input `q` at `o + q * r + ii`; or, with `lda`, the caller's rows as they
-    /// are, `lda` apart (a product over few panels, where packing would cost more than it saves).
+    /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at
+    /// [`TileRows::packed`], its row `ii`'s input `q` at `start + q * r + ii`; or, with `lda`, the
+    /// caller's rows as they are, `lda` apart (a product over few panels, where packing would cost more than it saves).
     x: &'p [f32],
     lda: Option<usize>,
     /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
@@ -488,10 +493,10 @@ impl Buffers {
             i += r;
         }
         if pack {
-            // Every value is overwritten by the packing (the tiles cover rows 0..m).
-            self.x.resize(m * packed_stride(k), 0.0);
+            // Every value read is overwritten by the packing (the tiles cover rows 0..m).
+            self.x.resize(m * (k + ROW_PAD), 0.0);
             for t in &self.tiles {
-                let dst = &mut self.x[t.i * packed_stride(k)..t.i * packed_stride(k) + t.r * k];
+                let dst = &mut self.x[t.packed(k)];
                 pack_tile(t.r, dst, &x[t.i * lda..], lda, k);
             }
         }
@@ -501,7 +506,7 @@ impl Buffers {
             (x, Some(lda))
         };
         let tile_rows = |t: &TileRows| match xlda {
-            None => &xs[t.i * packed_stride(k)..t.i * packed_stride(k) + t.r * k],
+            None => &xs[t.packed(k)],
             Some(lda) => &xs[t.i * lda..],
         };
         // The down products, row-major into `down` (rank padded to whole panels), from the
@@ -677,7 +682,8 @@ fn run_panels(
         });
         let a = match prep.lda {
             None => {
-                &prep.x[t.i * packed_stride(k) + k0 * t.r..t.i * packed_stride(k) + (k0 + kb) * t.r]
+                let start = t.packed(k).start;
+                &prep.x[start + k0 * t.r..start + (k0 + kb) * t.r]
             }
             Some(lda) => &prep.x[t.i * lda + k0..],
         };
@@ -771,8 +777,9 @@ fn run_panels(
 /// `i < R`, `j < cols`. `a` is the tile's rows packed inner-major (`a[q * R + i]`), `b` a panel
 /// block (`kb` x 16, input-major). `next` is the block the next tile will read: the kernel asks
 /// for it one cache line per step, into L2 (which measured a few per cent faster at 16 rows than
-/// into L1), so memory is read while the arithmetic runs instead of between tiles. `low` is a low-rank term's steps, run in the same accumulators: `s x A^T`
-/// packed (`rank` steps), and the term's panel of `B` (`rank` x 16).
+/// into L1), so memory is read while the arithmetic runs instead of between tiles. `low` is a
+/// low-rank term's steps, run in the same accumulators: `s x A^T` packed (`rank` steps), and the
+/// term's panel of `B` (`rank` x 16).
 struct Tile<'a> {
     a: &'a [f32],
     /// `None`: `a` is packed as above; `Some(lda)`: `a`'s rows are `lda` apart (`a[i * lda + q]`).
@@ -1435,12 +1442,13 @@ pub fn with_f32<R>(t: &candle_core::Tensor, f: impl FnOnce(&[f32]) -> R) -> cand
 mod tests {
     use super::*;
 
-    fn values(n: usize, seed: u32) -> Vec<f32> {
+    pub(super) fn values(n: usize, seed: u32) -> Vec<f32> {
         (0..n)
             .map(|i| (((i as u32).wrapping_mul(2654435761) ^ seed) % 1000) as f32 / 500.0 - 1.0)
             .collect()
     }
 
+    /// `x [m, k] W [n, k]^T` by a plain loop in f64.
     fn reference_rows(x: &[f32], w: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
         let mut out = vec![0.0; m * n];
         for i in 0..m {

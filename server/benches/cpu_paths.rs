@@ -123,9 +123,13 @@ fn encoder_section(report: &mut Report, rounds: usize) {
     let r8qv = synthetic_adapter(&spec, 8, &qv, 1);
     let r16qv = synthetic_adapter(&spec, 16, &qv, 2);
     let r8all = synthetic_adapter(&spec, 8, &all, 3);
-    let eight: Vec<Arc<Adapter>> = (0..8)
-        .map(|i| synthetic_adapter(&spec, 8, &qv, 10 + i))
-        .collect();
+    // Eight distinct adapters of one kind, for the batches that mix them.
+    let eight = |rank: usize, modules: &[Module], seed: u64| -> Vec<Arc<Adapter>> {
+        (0..8)
+            .map(|i| synthetic_adapter(&spec, rank, modules, seed + i))
+            .collect()
+    };
+    let mixed_sets = [eight(8, &qv, 10), eight(16, &qv, 20), eight(8, &all, 30)];
     let merged = Arc::new(MergedWeights::build(&r16qv, |s| e.model().base_weight(s)).unwrap());
 
     let b = ids.len();
@@ -141,7 +145,11 @@ fn encoder_section(report: &mut Report, rounds: usize) {
         start.elapsed().as_secs_f64()
     };
     let n = b * t;
-    let mixed: Vec<Option<Arc<Adapter>>> = (0..b).map(|i| Some(eight[i % 8].clone())).collect();
+    // Sequence i runs adapter i % 8 of the set.
+    let mixed = |set: &[Arc<Adapter>]| {
+        let rows: Vec<Option<Arc<Adapter>>> = (0..b).map(|i| Some(set[i % 8].clone())).collect();
+        RowAdapters::per_sequence(&rows, &vec![t; b])
+    };
     let variants: Vec<(&str, &str, RowAdapters)> = vec![
         ("base", "base only", RowAdapters::base(n)),
         (
@@ -167,7 +175,17 @@ fn encoder_section(report: &mut Report, rounds: usize) {
         (
             "r8_qv_mixed8",
             "unmerged rank-8 q,v, 8 adapters mixed",
-            RowAdapters::per_sequence(&mixed, &vec![t; b]),
+            mixed(&mixed_sets[0]),
+        ),
+        (
+            "r16_qv_mixed8",
+            "unmerged rank-16 q,v, 8 adapters mixed",
+            mixed(&mixed_sets[1]),
+        ),
+        (
+            "r8_all_mixed8",
+            "unmerged rank-8 all projections, 8 adapters mixed",
+            mixed(&mixed_sets[2]),
         ),
     ];
     run(&variants[0].2);

@@ -111,6 +111,7 @@ pub fn matmul_into(
 
 #[cfg(test)]
 mod tests {
+    use super::super::tests::values;
     use super::*;
 
     fn naive(a: &[f32], b: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
@@ -121,12 +122,6 @@ mod tests {
             }
         }
         out
-    }
-
-    fn values(n: usize, seed: u32) -> Vec<f32> {
-        (0..n)
-            .map(|i| (((i as u32).wrapping_mul(2654435761) ^ seed) % 1000) as f32 / 500.0 - 1.0)
-            .collect()
     }
 
     #[test]
@@ -192,7 +187,6 @@ mod tests {
         }
     }
 
-    /// `x [m, k] W [n, k]^T` by a plain loop in f64.
     #[test]
     #[should_panic(expected = "does not fit")]
     fn a_view_larger_than_its_slice_is_refused() {
