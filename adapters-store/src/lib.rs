@@ -28,6 +28,10 @@ pub mod store;
 mod sync;
 pub mod watcher;
 
+// Lets unit tests share the integration tests' synthetic packages, which name this crate.
+#[cfg(test)]
+extern crate self as switchyard_adapters;
+
 pub use adapter::{Adapter, TaskHead};
 pub use fingerprint::{BaseSpec, base_fingerprint};
 pub use lowrank::LowRank;

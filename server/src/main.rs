@@ -148,6 +148,7 @@ fn main() {
             tracing_subscriber::EnvFilter::try_from_env("SWITCHYARD_LOG")
                 .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
         )
+        .with_ansi(std::io::IsTerminal::is_terminal(&io::stderr()))
         .with_writer(io::stderr)
         .init();
     let result = match cli.command {

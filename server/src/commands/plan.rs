@@ -13,7 +13,8 @@ use serde_json::json;
 use switchyard_adapters::{LowRank, Module, params};
 
 use crate::commands::adapter::base::{
-    KNOWN_MODEL_TYPES, grouped, human_bytes, model_type, parse_bytes, read_config,
+    KNOWN_MODEL_TYPES, grouped, human_bytes, human_bytes_as_given, model_type, parse_bytes,
+    read_config,
 };
 
 /// A comma-separated target list, as one flag value.
@@ -240,7 +241,7 @@ pub fn run(args: &PlanArgs, mut out: impl Write) -> anyhow::Result<()> {
         writeln!(
             out,
             "budget {} ({} bytes):",
-            human_bytes(budget),
+            human_bytes_as_given(budget),
             grouped(budget)
         )?;
         writeln!(
