@@ -2,7 +2,7 @@
 //! adapter holds `A [r, in]` and `B [out, r]` and a scale `s = alpha / r`, and the adapted layer
 //! computes `W0 x + s B (A x)`.
 //!
-//! The hot operations run through [`crate::kernels`] straight on the factors' memory: the
+//! The hot operations run through [`switchyard_kernels`] straight on the factors' memory: the
 //! factors are held packed for the projection kernel (`A` as a weight `[r, in]`, `B` as a weight
 //! `[out, r]`), so in a model the term is fused into the base product (see [`LowRank::term`]);
 //! on its own it is two kernel calls accumulated onto an output in place (`z = x A^T` into one
@@ -11,7 +11,9 @@
 
 use candle_core::{DType, Result, Tensor};
 
-use crate::kernels::{PackedWeight, RowTerm, packed_matmul, with_f32};
+use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul};
+
+use crate::tensors::{pack_tensor, unpack_tensor, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
@@ -32,8 +34,8 @@ impl LowRank {
             candle_core::bail!("factor ranks differ: A has {r} rows, B has {rb} columns");
         }
         Ok(Self {
-            a: PackedWeight::from_tensor(&a)?,
-            b: PackedWeight::from_tensor(&b)?,
+            a: pack_tensor(&a)?,
+            b: pack_tensor(&b)?,
             scale,
         })
     }
@@ -56,12 +58,12 @@ impl LowRank {
 
     /// `A [r, in]` as a new row-major tensor.
     pub fn a(&self) -> Result<Tensor> {
-        self.a.to_tensor()
+        unpack_tensor(&self.a)
     }
 
     /// `B [out, r]` as a new row-major tensor.
     pub fn b(&self) -> Result<Tensor> {
-        self.b.to_tensor()
+        unpack_tensor(&self.b)
     }
 
     /// Parameters held by the factors: `r * (in + out)`.
@@ -120,7 +122,7 @@ impl LowRank {
     }
 
     /// This pair as a term of the base product on rows `rows`, for
-    /// [`crate::kernels::packed_matmul_with`] to fuse into the base product.
+    /// [`switchyard_kernels::packed_matmul_with`] to fuse into the base product.
     pub fn term(&self, rows: std::ops::Range<usize>) -> RowTerm<'_> {
         RowTerm {
             rows,

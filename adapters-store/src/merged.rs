@@ -6,7 +6,9 @@ use std::collections::HashMap;
 
 use candle_core::{Result, Tensor};
 
-use crate::kernels::PackedWeight;
+use switchyard_kernels::PackedWeight;
+
+use crate::tensors::pack_tensor;
 
 use crate::adapter::Adapter;
 use crate::site::Site;
@@ -28,7 +30,7 @@ impl MergedWeights {
             let w0 = base_weight(site).ok_or_else(|| {
                 candle_core::Error::Msg(format!("base model has no matrix {site}"))
             })?;
-            weights.insert(*site, PackedWeight::from_tensor(&lr.merge(&w0)?)?);
+            weights.insert(*site, pack_tensor(&lr.merge(&w0)?)?);
         }
         Ok(Self {
             source: adapter.id.clone(),

@@ -7,7 +7,7 @@
 //! the same run, so a loaded machine moves both. Decode shapes cycle through enough weights
 //! (128 MB) that they come from memory, as in a real step.
 //!
-//! Run: `cargo run --release -p switchyard-adapters --example kernel-bench` (add
+//! Run: `cargo run --release -p switchyard-kernels --example kernel-bench` (add
 //! `-- --repeats N`, or `-- --only TEXT` for the shapes whose description holds TEXT). Every
 //! figure is the median of the repeats. Inputs are seeded random values, which is all the
 //! kernel's speed depends on.
@@ -15,7 +15,7 @@
 use std::time::Instant;
 
 use rand::{Rng, SeedableRng};
-use switchyard_adapters::kernels::{PackedWeight, packed_matmul};
+use switchyard_kernels::{PackedWeight, packed_matmul};
 
 /// A model shape: rows of input, inner (input) features, output features.
 struct Shape {
