@@ -10,7 +10,7 @@
 //!
 //! Every `unsafe` block is preceded by the asserts that bound what it reads and writes.
 
-mod dispatch;
+pub mod dispatch;
 pub mod matmul;
 mod micro;
 pub mod pack;
@@ -19,8 +19,11 @@ mod test_values;
 mod threads;
 pub mod vector;
 
-pub use matmul::{RowTerm, packed_matmul, packed_matmul_strided, packed_matmul_with};
-pub use pack::{PANEL, PackedWeight};
+pub use dispatch::{Path, PathError};
+pub use matmul::{
+    RowTerm, packed_matmul, packed_matmul_on, packed_matmul_strided, packed_matmul_with,
+};
+pub use pack::{PANEL, PackedWeight, QuantError, WeightFormat};
 pub use vector::{
     add_layer_norm_in_place, axpy, dot, dot_portable, erf_fast, exp_fast, gelu_erf_in_place,
     softmax_rows_in_place,

@@ -2,11 +2,14 @@
 //! low-rank down products ([`Buffers::prepare`]), then the weight's panels walked in blocks
 //! sized for the caches ([`run_panels`]), one micro-kernel call per tile and block.
 
-use super::{BLOCK_K, BLOCK_ROWS, BUFFERS, PACK_PANELS, SHORT_K, SMALL_BLOCK_K, TILE_ROWS};
+use std::borrow::Cow;
+
+use super::{BLOCK_K, BLOCK_ROWS, BUFFERS, PACK_PANELS, SHORT_K, SMALL_BLOCK_K};
 use crate::RowTerm;
-use crate::micro::{Tile, tile_dispatch};
-use crate::pack::rows::{ROW_PAD, pack_tile};
-use crate::pack::{PANEL, PackedWeight};
+use crate::dispatch::{Path, micro_kernel};
+use crate::micro::{MicroKernel, Tile};
+use crate::pack::rows::{ROW_PAD, pack_tile, pack_tile_bf16};
+use crate::pack::{Block, FormatKind, PANEL, PackedWeight};
 
 /// The rows one [`panels_into`] call covers (`first..first + m` of the whole product) and the
 /// low-rank terms that touch them.
@@ -66,8 +69,10 @@ impl TileRows {
 pub(crate) struct Buffers {
     pub(crate) tiles: Vec<TileRows>,
     pub(crate) x: Vec<f32>,
+    pub(crate) pairs: Vec<u32>,
     pub(crate) down: Vec<f32>,
     pub(crate) z: Vec<f32>,
+    pub(crate) wide: Vec<f32>,
     pub(crate) out: Vec<f32>,
 }
 
@@ -78,9 +83,13 @@ pub(crate) struct Prepared<'p, 'a, 'b> {
     pub(crate) tiles: &'p [TileRows],
     /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at
     /// [`TileRows::packed`], its row `ii`'s input `q` at `start + q * r + ii`; or, with `lda`, the
-    /// caller's rows as they are, `lda` apart (a product over few panels, where packing would cost more than it saves).
+    /// caller's rows as they are, `lda` apart (a product over few panels, where packing would
+    /// cost more than it saves).
     pub(crate) x: &'p [f32],
     pub(crate) lda: Option<usize>,
+    /// For a kernel that reads bf16 rows: each tile's rows in bf16 pairs, the tile of rows
+    /// `i..i + r` from `i * ceil(k / 2)`, pair `j` of its row `ii` at `j * r + ii`.
+    pub(crate) pairs: &'p [u32],
     /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
     pub(crate) z: &'p [f32],
     pub(crate) z_stride: usize,
@@ -88,10 +97,31 @@ pub(crate) struct Prepared<'p, 'a, 'b> {
     pub(crate) m: usize,
 }
 
+/// Panel `p` of an f32 weight as 16 columns: the panel itself, or a narrow last panel (an f32
+/// weight holds only its real rows) widened with zeros.
+fn wide_panel<'w>(w: &'w PackedWeight, p: usize, wide: &'w mut Vec<f32>) -> &'w [f32] {
+    let k = w.inp;
+    let width = w.panel_width(p);
+    let data = &w.f32_values()[p * PANEL * k..p * PANEL * k + width * k];
+    if width == PANEL {
+        return data;
+    }
+    wide.clear();
+    wide.resize(PANEL * k, 0.0);
+    for (dst, src) in wide
+        .chunks_exact_mut(PANEL)
+        .zip(data.chunks_exact(width.max(1)))
+    {
+        dst[..width].copy_from_slice(src);
+    }
+    wide
+}
+
 impl Buffers {
-    /// Cuts rows `0..m` of `x` (rows `lda` apart, `k` inputs each) into register tiles at the
-    /// part's term boundaries, packs them if `pack`, and computes each tile's `s x A^T`.
-    #[allow(clippy::too_many_arguments)]
+    /// Cuts rows `0..m` of `x` (rows `lda` apart, `k` inputs each) into register tiles of the
+    /// run's kernel at the part's term boundaries, packs them if `run.pack` (and in bf16 pairs
+    /// for a kernel that reads those), and computes each tile's `s x A^T` with the path's f32
+    /// kernel.
     pub(crate) fn prepare<'p, 'a, 'b>(
         &'p mut self,
         x: &'p [f32],
@@ -99,21 +129,25 @@ impl Buffers {
         k: usize,
         m: usize,
         part: &'p Part<'a, 'b>,
-        pack: bool,
-        fast: bool,
+        run: &Run<'_>,
     ) -> Prepared<'p, 'a, 'b> {
         assert!(
             m == 0 || (m - 1) * lda + k <= x.len(),
             "rows do not fit their slice"
         );
+        let down_kernel = micro_kernel(run.path, FormatKind::F32);
+        assert_eq!(
+            down_kernel.rows, run.kernel.rows,
+            "a path's kernels share one tile height"
+        );
         self.tiles.clear();
         let mut i = 0;
         while i < m {
-            let (r, term) = part.run(i, (m - i).min(TILE_ROWS));
+            let (r, term) = part.run(i, (m - i).min(run.kernel.rows));
             self.tiles.push(TileRows { i, r, term });
             i += r;
         }
-        if pack {
+        if run.pack {
             // Every value read is overwritten by the packing (the tiles cover rows 0..m).
             self.x.resize(m * (k + ROW_PAD), 0.0);
             for t in &self.tiles {
@@ -121,7 +155,16 @@ impl Buffers {
                 pack_tile(t.r, dst, &x[t.i * lda..], lda, k);
             }
         }
-        let (xs, xlda): (&[f32], _) = if pack {
+        self.pairs.clear();
+        if run.kernel.bf16_rows {
+            let kp = k.div_ceil(2);
+            self.pairs.resize(m * kp, 0);
+            for t in &self.tiles {
+                let dst = &mut self.pairs[t.i * kp..(t.i + t.r) * kp];
+                pack_tile_bf16(t.r, dst, &x[t.i * lda..], lda, k);
+            }
+        }
+        let (xs, xlda): (&[f32], _) = if run.pack {
             (&self.x, None)
         } else {
             (x, Some(lda))
@@ -144,20 +187,22 @@ impl Buffers {
             let term = part.terms[t.term.unwrap()];
             let r = term.a.out;
             for p in 0..r.div_ceil(PANEL) {
-                let panel = &term.a.data[p * PANEL * k..(p + 1) * PANEL * k];
+                let panel = wide_panel(term.a, p, &mut self.wide);
                 let tile = Tile {
+                    rows: t.r,
                     a: tile_rows(t),
                     lda: xlda,
+                    pairs: &[],
                     kb: k,
-                    b: panel,
-                    next: panel,
+                    b: Block::F32(panel),
+                    next: None,
                     low: None,
                     bias: None,
                     ldc: width,
                     cols: PANEL.min(r - p * PANEL),
                     acc: false,
                 };
-                tile_dispatch(t.r, &tile, &mut self.down[t.i * width + p * PANEL..], fast);
+                (down_kernel.run)(&tile, &mut self.down[t.i * width + p * PANEL..]);
             }
             let dst = &mut self.z[t.i * rank..t.i * rank + r * t.r];
             for ii in 0..t.r {
@@ -172,6 +217,7 @@ impl Buffers {
             tiles: &self.tiles,
             x: xs,
             lda: xlda,
+            pairs: &self.pairs,
             z: &self.z,
             z_stride: rank,
             k,
@@ -181,13 +227,15 @@ impl Buffers {
 }
 
 /// What one [`run_panels`] call computes: panels `panels` of the weight, onto the output or
-/// not, with the bias (all of it, `[out]`) added as each tile is first stored.
+/// not, with the bias (all of it, `[out]`) added as each tile is first stored, on `path` with
+/// the micro-kernel it has for the weight's format.
 #[derive(Clone)]
 pub(crate) struct Run<'a> {
     pub(crate) panels: std::ops::Range<usize>,
     pub(crate) accumulate: bool,
     pub(crate) bias: Option<&'a [f32]>,
-    pub(crate) fast: bool,
+    pub(crate) path: Path,
+    pub(crate) kernel: MicroKernel,
     /// Pack the rows first: when they run over at least [`PACK_PANELS`] panels.
     pub(crate) pack: bool,
 }
@@ -197,14 +245,16 @@ impl<'a> Run<'a> {
         panels: std::ops::Range<usize>,
         accumulate: bool,
         bias: Option<&'a [f32]>,
-        fast: bool,
+        path: Path,
+        w: &PackedWeight,
     ) -> Self {
         let pack = panels.len() >= PACK_PANELS;
         Self {
             panels,
             accumulate,
             bias,
-            fast,
+            path,
+            kernel: micro_kernel(path, w.format.kind()),
             pack,
         }
     }
@@ -226,9 +276,14 @@ pub(crate) fn panels_into(
 ) {
     // Nothing in here waits on the pool, so the borrow cannot be taken twice.
     BUFFERS.with_borrow_mut(|bufs| {
-        let prep = bufs.prepare(x, lda, w.inp, m, part, run.pack, run.fast);
+        let prep = bufs.prepare(x, lda, w.inp, m, part, run);
         run_panels(out, stride, &prep, w, run);
     });
+}
+
+thread_local! {
+    /// A narrow last f32 panel widened to 16 columns, reused from call to call.
+    static WIDE: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
 /// Panels `run.panels` of `w` for the prepared rows, into `out` (row stride `stride`, column 0
@@ -243,8 +298,49 @@ pub(crate) fn run_panels(
     run: &Run<'_>,
 ) {
     let (n, k, m) = (w.out, w.inp, prep.m);
-    let (panels, accumulate, fast) = (run.panels.clone(), run.accumulate, run.fast);
+    let (panels, accumulate, kernel) = (run.panels.clone(), run.accumulate, run.kernel);
     assert_eq!(k, prep.k, "rows prepared for another inner dimension");
+    if panels.is_empty() {
+        return;
+    }
+    let last = n.div_ceil(PANEL) - 1;
+    // Narrow last panels (f32 weights hold only their real rows), widened once per call: the
+    // weight's, and each term's B.
+    let mut wide = WIDE.with_borrow_mut(std::mem::take);
+    let narrow = panels.contains(&last) && w.panel_width(last) < PANEL;
+    if narrow {
+        wide_panel(w, last, &mut wide);
+    }
+    let wide_b: Vec<Cow<'_, [f32]>> = prep
+        .part
+        .terms
+        .iter()
+        .map(|term| {
+            if panels.contains(&last) && term.b.panel_width(last) < PANEL {
+                let mut v = Vec::new();
+                wide_panel(term.b, last, &mut v);
+                Cow::Owned(v)
+            } else {
+                Cow::Borrowed(&[][..])
+            }
+        })
+        .collect();
+    let block = |p: usize, k0: usize, kb: usize| -> Block<'_> {
+        if narrow && p == last {
+            Block::F32(&wide[k0 * PANEL..(k0 + kb) * PANEL])
+        } else {
+            w.block(p, k0, kb)
+        }
+    };
+    let (data, data_len) = w.value_bytes();
+    let data_end = data.wrapping_add(data_len);
+    // The bytes after a block, as far as the weight goes: what the next tile reads.
+    let after = |b: &Block<'_>| -> Option<(*const u8, usize)> {
+        let (start, len) = b.bytes();
+        let next = start.wrapping_add(len);
+        let left = (data_end as usize).saturating_sub(next as usize);
+        (left > 0).then_some((next, len.min(left)))
+    };
     #[allow(clippy::too_many_arguments)]
     // One register tile: the rows of `t` against panel p's inner block k0..k0 + kb, with their
     // low-rank steps when this is the last block.
@@ -252,8 +348,8 @@ pub(crate) fn run_panels(
                p: usize,
                k0: usize,
                kb: usize,
-               b: &[f32],
-               next: &[f32],
+               b: Block<'_>,
+               next: Option<(*const u8, usize)>,
                col: usize,
                acc: bool,
                out: &mut [f32]| {
@@ -261,11 +357,12 @@ pub(crate) fn run_panels(
             let term = prep.part.terms[at];
             let rank = term.b.inp;
             let z = &prep.z[t.i * prep.z_stride..t.i * prep.z_stride + rank * t.r];
-            (
-                z,
-                &term.b.data[p * PANEL * rank..(p + 1) * PANEL * rank],
-                rank,
-            )
+            let zb = if p != last || wide_b[at].is_empty() {
+                &term.b.f32_values()[p * PANEL * rank..(p + 1) * PANEL * rank]
+            } else {
+                &wide_b[at][..]
+            };
+            (z, zb, rank)
         });
         let a = match prep.lda {
             None => {
@@ -274,10 +371,18 @@ pub(crate) fn run_panels(
             }
             Some(lda) => &prep.x[t.i * lda + k0..],
         };
+        let pairs = if prep.pairs.is_empty() {
+            &[][..]
+        } else {
+            let start = t.i * k.div_ceil(2) + k0 / 2 * t.r;
+            &prep.pairs[start..start + kb.div_ceil(2) * t.r]
+        };
         let cols = PANEL.min(n - p * PANEL);
         let tile = Tile {
+            rows: t.r,
             a,
             lda: prep.lda,
+            pairs,
             kb,
             b,
             next,
@@ -290,11 +395,7 @@ pub(crate) fn run_panels(
             cols,
             acc,
         };
-        tile_dispatch(t.r, &tile, &mut out[t.i * stride + col..], fast);
-    };
-    let panel = |p: usize, k0: usize, kb: usize| {
-        let start = p * PANEL * k + k0 * PANEL;
-        &w.data[start..start + kb * PANEL]
+        (kernel.run)(&tile, &mut out[t.i * stride + col..]);
     };
     if k <= SHORT_K {
         // A short inner dimension (merging a low-rank update, k = r; attention heads): the
@@ -302,23 +403,11 @@ pub(crate) fn run_panels(
         // the output is streamed once, tile by tile, front to back.
         for t in prep.tiles {
             for p in panels.clone() {
-                let b = panel(p, 0, k);
-                one(
-                    t,
-                    p,
-                    0,
-                    k,
-                    b,
-                    b,
-                    (p - panels.start) * PANEL,
-                    accumulate,
-                    out,
-                );
+                let col = (p - panels.start) * PANEL;
+                one(t, p, 0, k, block(p, 0, k), None, col, accumulate, out);
             }
         }
-        return;
-    }
-    if m <= BLOCK_ROWS {
+    } else if m <= BLOCK_ROWS {
         // One row block: panel by panel, front to back through the packed weight in short
         // blocks, so memory is read as one sequential stream, spread evenly over the
         // arithmetic, and each block is fetched while the one before it computes. Up to three
@@ -330,32 +419,28 @@ pub(crate) fn run_panels(
             let mut k0 = 0;
             while k0 < k {
                 let kb = step.min(k - k0);
-                let b = panel(p, k0, kb);
+                let b = block(p, k0, kb);
                 // With whole panels as blocks the next one is too far ahead to fetch early.
-                let next = if kb == k {
-                    b
-                } else {
-                    let start = (p * PANEL * k + (k0 + kb) * PANEL).min(w.data.len() - kb * PANEL);
-                    &w.data[start..start + kb * PANEL]
-                };
+                let next = if kb == k { None } else { after(&b) };
                 for t in prep.tiles {
                     one(t, p, k0, kb, b, next, col, accumulate || k0 > 0, out);
                 }
                 k0 += kb;
             }
         }
-        return;
-    }
-    let mut k0 = 0;
-    while k0 < k {
-        let kb = BLOCK_K.min(k - k0);
-        for p in panels.clone() {
-            let b = panel(p, k0, kb);
-            let col = (p - panels.start) * PANEL;
-            for t in prep.tiles {
-                one(t, p, k0, kb, b, b, col, accumulate || k0 > 0, out);
+    } else {
+        let mut k0 = 0;
+        while k0 < k {
+            let kb = BLOCK_K.min(k - k0);
+            for p in panels.clone() {
+                let b = block(p, k0, kb);
+                let col = (p - panels.start) * PANEL;
+                for t in prep.tiles {
+                    one(t, p, k0, kb, b, None, col, accumulate || k0 > 0, out);
+                }
             }
+            k0 += kb;
         }
-        k0 += kb;
     }
+    WIDE.with_borrow_mut(|w| *w = wide);
 }

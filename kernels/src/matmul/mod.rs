@@ -5,18 +5,17 @@
 
 mod blocks;
 #[cfg(test)]
+mod format_tests;
+#[cfg(test)]
 mod gemm_reference;
 #[cfg(test)]
 mod tests;
 
-use crate::dispatch::use_avx2;
-use crate::pack::{PANEL, PackedWeight};
+use crate::dispatch::{Path, active};
+use crate::pack::{PANEL, PackedWeight, WeightFormat};
 use crate::threads::{rayon_threads, zero_rows};
 use blocks::{Buffers, Part, Run, panels_into, run_panels};
 
-/// Input rows per register tile: 6 rows x 2 vectors is 12 accumulators, which with the two
-/// weight vectors and one broadcast fills the 16 AVX2 registers.
-pub(crate) const TILE_ROWS: usize = 6;
 /// Inner-dimension block of the many-rows path: one panel's slice of it (384 x 16 floats,
 /// 24 KB) stays in L1 while every row tile passes over it.
 pub(crate) const BLOCK_K: usize = 384;
@@ -40,8 +39,8 @@ thread_local! {
 /// `y[m, out] = (accumulate ? y : 0) + x[m, in] W^T` with `W` packed (see [`PackedWeight`]): the
 /// one product every projection runs, from a decode step's single row to a prefill of thousands.
 ///
-/// Register tiles of up to 6 rows by 16 columns (12 vector accumulators, AVX2+FMA when the CPU
-/// has them, portable code that the compiler vectorises otherwise). The input rows of each row
+/// Register tiles of up to 6 or 12 rows by 16 columns, by the micro-kernel the dispatch picks
+/// for this CPU and the weight's format (see [`crate::dispatch`]). The input rows of each row
 /// block (72 rows) are first packed tile by tile, inner-major, so a tile reads its rows as one
 /// sequential stream; the block then stays in L2 while every panel passes over it, in inner
 /// blocks that stay in L1 while every row tile passes. Work is split across the rayon pool by
@@ -68,8 +67,28 @@ pub struct RowTerm<'a> {
 /// through `B` in the same accumulators as its base product. A term costs its arithmetic and
 /// no pass of its own over the input or the output. The terms' row ranges must not overlap.
 /// A `bias [out]` is added to every row as the tiles are stored (no pass of its own either).
+/// The factors are f32 whatever the weight's format.
 #[allow(clippy::too_many_arguments)]
 pub fn packed_matmul_with(
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+) {
+    packed_matmul_on(active(), y, x, m, w, accumulate, bias, terms);
+}
+
+/// [`packed_matmul_with`] on a path chosen by the caller (tests and benchmarks compare the
+/// paths side by side).
+///
+/// # Panics
+/// When this CPU cannot run `path`.
+#[allow(clippy::too_many_arguments)]
+pub fn packed_matmul_on(
+    path: Path,
     y: &mut [f32],
     x: &[f32],
     m: usize,
@@ -84,6 +103,10 @@ pub fn packed_matmul_with(
         assert!(
             t.rows.end <= m && t.a.inp == k && t.b.inp == t.a.out && t.b.out == n,
             "a low-rank term does not fit the product"
+        );
+        assert!(
+            t.a.format == WeightFormat::F32 && t.b.format == WeightFormat::F32,
+            "low-rank factors are f32"
         );
     }
     assert!(
@@ -109,7 +132,6 @@ pub fn packed_matmul_with(
         }
         return;
     }
-    let fast = use_avx2();
     let panels = n.div_ceil(PANEL);
     let threads = rayon_threads();
     let x = &x[..m * k];
@@ -119,7 +141,7 @@ pub fn packed_matmul_with(
         let rows = yb.len() / n;
         let part = Part::new(i * BLOCK_ROWS, rows, terms);
         let xb = &x[i * BLOCK_ROWS * k..];
-        let run = Run::new(0..panels, accumulate, bias, fast);
+        let run = Run::new(0..panels, accumulate, bias, path, w);
         panels_into(yb, n, xb, k, rows, w, &part, &run);
     };
     if threads <= 1 || m * n * k < (1 << 20) {
@@ -144,8 +166,8 @@ pub fn packed_matmul_with(
     scratch.clear();
     scratch.resize(m * panels * PANEL, 0.0);
     let part = Part::new(0, m, terms);
-    let all = Run::new(0..panels, false, bias, fast);
-    let prep = bufs.prepare(x, k, k, m, &part, all.pack, fast);
+    let all = Run::new(0..panels, false, bias, path, w);
+    let prep = bufs.prepare(x, k, k, m, &part, &all);
     scratch
         .par_chunks_mut(per * PANEL * m)
         .enumerate()
@@ -208,11 +230,11 @@ pub fn packed_matmul_strided(
         return;
     }
     let panels = n.div_ceil(PANEL);
-    let fast = use_avx2();
+    let path = active();
     let mut i0 = 0;
     while i0 < m {
         let rows = BLOCK_ROWS.min(m - i0);
-        let run = Run::new(0..panels, accumulate, None, fast);
+        let run = Run::new(0..panels, accumulate, None, path, w);
         panels_into(
             &mut y[i0 * y_stride..],
             y_stride,

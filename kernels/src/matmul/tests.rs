@@ -5,17 +5,26 @@ use super::gemm_reference::{MatRef, Parallelism, matmul_into};
 use super::*;
 use crate::test_values::{reference_rows, values};
 
-fn paths() -> Vec<bool> {
-    let mut p = vec![false];
-    if use_avx2() {
-        p.push(true);
-    }
-    p
+/// The paths this CPU runs, each named on stdout; the others named as not run.
+pub(crate) fn paths() -> Vec<Path> {
+    Path::ALL
+        .into_iter()
+        .filter(|p| match p.missing_feature() {
+            None => {
+                println!("path {p}: ran");
+                true
+            }
+            Some(f) => {
+                println!("path {p}: not run: {f} absent");
+                false
+            }
+        })
+        .collect()
 }
 
 /// `packed_matmul` with the kernel path and the input layout chosen, single-threaded: what
 /// the threaded paths run on each part.
-fn packed_on_path(y: &mut [f32], x: &[f32], w: &PackedWeight, acc: bool, fast: bool, pack: bool) {
+fn packed_on_path(y: &mut [f32], x: &[f32], w: &PackedWeight, acc: bool, path: Path, pack: bool) {
     let panels = w.out.div_ceil(PANEL);
     for (yb, xb) in y
         .chunks_mut(BLOCK_ROWS * w.out)
@@ -24,19 +33,19 @@ fn packed_on_path(y: &mut [f32], x: &[f32], w: &PackedWeight, acc: bool, fast: b
         let rows = xb.len() / w.inp;
         let run = Run {
             pack,
-            ..Run::new(0..panels, acc, None, fast)
+            ..Run::new(0..panels, acc, None, path, w)
         };
         let part = Part::new(0, rows, &[]);
         panels_into(yb, w.out, xb, w.inp, rows, w, &part, &run);
     }
 }
 #[test]
-fn packing_round_trips_and_pads_the_last_panel_with_zeros() {
-    for &(out, inp) in &[(1, 1), (16, 3), (17, 5), (40, 33), (3, 0)] {
+fn packing_round_trips_and_holds_no_padding() {
+    for &(out, inp) in &[(1, 1), (16, 3), (17, 5), (40, 33), (3, 0), (8, 384)] {
         let w = values(out * inp, 40 + out as u32);
         let p = PackedWeight::pack(&w, out, inp);
         assert_eq!(p.unpack(), w, "{out} x {inp}");
-        assert_eq!(p.resident_bytes(), out.div_ceil(PANEL) * PANEL * inp * 4);
+        assert_eq!(p.resident_bytes(), out * inp * 4);
         assert_eq!((p.out_features(), p.in_features()), (out, inp));
     }
 }
@@ -46,7 +55,7 @@ fn packed_kernel_matches_a_plain_loop_for_every_row_count_and_remainder_on_both_
     // Row counts through one tile and past it (6 rows a tile, 72 a row block), output
     // widths inside a panel, at a panel and past it, inner lengths shorter than a block,
     // at several blocks and with remainders after the stream segments.
-    for (fast, pack) in paths().into_iter().flat_map(|f| [(f, false), (f, true)]) {
+    for (path, pack) in paths().into_iter().flat_map(|f| [(f, false), (f, true)]) {
         for m in (1..=20).chain([71, 72, 73, 150]) {
             for &(k, n) in &[
                 (1, 1),
@@ -62,20 +71,20 @@ fn packed_kernel_matches_a_plain_loop_for_every_row_count_and_remainder_on_both_
                 let packed = PackedWeight::pack(&w, n, k);
                 let want = reference_rows(&x, &w, m, k, n);
                 let mut out = vec![7.0; m * n];
-                packed_on_path(&mut out, &x, &packed, false, fast, pack);
+                packed_on_path(&mut out, &x, &packed, false, path, pack);
                 let mut acc = vec![1.0; m * n];
-                packed_on_path(&mut acc, &x, &packed, true, fast, pack);
+                packed_on_path(&mut acc, &x, &packed, true, path, pack);
                 for i in 0..m * n {
                     let e = want[i];
                     let tol = 1e-4 * (1.0 + e.abs()) * (k as f32).sqrt();
                     assert!(
                         (out[i] - e).abs() < tol,
-                        "fast={fast} pack={pack} m={m} k={k} n={n} at {i}: {} vs {e}",
+                        "path={path} pack={pack} m={m} k={k} n={n} at {i}: {} vs {e}",
                         out[i]
                     );
                     assert!(
                         (acc[i] - 1.0 - e).abs() < tol,
-                        "accumulate, fast={fast} pack={pack} m={m}"
+                        "accumulate, path={path} pack={pack} m={m}"
                     );
                 }
             }
@@ -200,19 +209,19 @@ fn fused_terms_and_bias_match_on_every_kernel_path_and_input_layout() {
     }];
     let mut want = vec![0.0; m * n];
     packed_matmul_with(&mut want, &x, m, &w, false, Some(&bias), &terms);
-    for fast in paths() {
+    for path in paths() {
         for pack in [false, true] {
             let mut y = vec![0.0; m * n];
             let part = Part::new(0, m, &terms);
             let run = Run {
                 pack,
-                ..Run::new(0..n.div_ceil(PANEL), false, Some(&bias), fast)
+                ..Run::new(0..n.div_ceil(PANEL), false, Some(&bias), path, &w)
             };
             panels_into(&mut y, n, &x, k, m, &w, &part, &run);
             for (g, e) in y.iter().zip(&want) {
                 assert!(
                     (g - e).abs() < 1e-3 * (1.0 + e.abs()),
-                    "fast={fast} pack={pack}: {g} vs {e}"
+                    "path={path} pack={pack}: {g} vs {e}"
                 );
             }
         }

@@ -18,12 +18,20 @@ pub(crate) fn pack_tile(r: usize, dst: &mut [f32], x: &[f32], lda: usize, k: usi
             }
         }
     }
-    match r {
-        6 => rows::<6>(dst, x, lda, k),
-        5 => rows::<5>(dst, x, lda, k),
-        4 => rows::<4>(dst, x, lda, k),
-        3 => rows::<3>(dst, x, lda, k),
-        2 => rows::<2>(dst, x, lda, k),
-        _ => rows::<1>(dst, x, lda, k),
+    crate::micro::for_rows!(r, rows, dst, x, lda, k)
+}
+
+/// The bf16 pairs of the first `r` rows of `x` (`lda` apart, `k` inputs each), for a kernel
+/// that reads its rows in bf16: `dst[j * r + ii]` holds inputs `2j` (low half) and `2j + 1`
+/// (high half, zero past `k`) of row `ii`, each rounded to nearest even.
+pub(crate) fn pack_tile_bf16(r: usize, dst: &mut [u32], x: &[f32], lda: usize, k: usize) {
+    use super::quant::bf16_from_f32;
+    for j in 0..k.div_ceil(2) {
+        for ii in 0..r {
+            let row = &x[ii * lda..ii * lda + k];
+            let lo = bf16_from_f32(row[2 * j]) as u32;
+            let hi = row.get(2 * j + 1).map_or(0, |&v| bf16_from_f32(v) as u32);
+            dst[j * r + ii] = lo | hi << 16;
+        }
     }
 }

@@ -5,7 +5,11 @@
 #[cfg(test)]
 mod tests;
 
-use crate::dispatch::use_avx2;
+use crate::dispatch::active;
+
+fn use_avx2() -> bool {
+    active().avx2()
+}
 use crate::threads::rayon_threads;
 
 /// `a . b` over the shorter of the two, with the vector path when the CPU has it.
