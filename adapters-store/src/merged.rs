@@ -41,16 +41,16 @@ impl MergedWeights {
     /// Builds the merged variant of `adapter` held in the base's own format: each targeted
     /// matrix merged into the packed base weight by [`crate::LowRank::merged_packed`] (what that
     /// rounds is said there).
-    pub fn build_packed<'w>(
+    pub fn build_packed<W: std::ops::Deref<Target = PackedWeight>>(
         adapter: &Adapter,
-        base_weight: impl Fn(&Site) -> Option<&'w PackedWeight>,
+        base_weight: impl Fn(&Site) -> Option<W>,
     ) -> Result<Self> {
         let mut weights = HashMap::new();
         for (site, lr) in adapter.sites() {
             let w0 = base_weight(site).ok_or_else(|| {
                 candle_core::Error::Msg(format!("base model has no matrix {site}"))
             })?;
-            weights.insert(*site, lr.merged_packed(w0)?);
+            weights.insert(*site, lr.merged_packed(&w0)?);
         }
         Ok(Self {
             source: adapter.id.clone(),

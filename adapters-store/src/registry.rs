@@ -22,7 +22,7 @@ use std::panic::AssertUnwindSafe;
 use std::sync::mpsc::Receiver;
 use std::time::{Duration, Instant, SystemTime};
 
-use candle_core::Tensor;
+use switchyard_kernels::PackedWeight;
 
 use crate::events::{EventBus, Residency, StageTimings, SwapEvent, SwapKind, Tier};
 use crate::fingerprint::BaseSpec;
@@ -42,17 +42,18 @@ pub use handle::{AdapterHandle, Handle, MergedHandle};
 /// `(name, version)`: one entry of a tier.
 pub(crate) type Key = (AdapterName, String);
 
-/// Where the registry gets a base matrix to merge into; the server supplies it, so this crate
-/// needs to know nothing about models. Any `Fn(&Site) -> Option<Tensor>` will do.
+/// Where the registry gets a base matrix to merge into, as the model holds it (packed, in the
+/// base's weight format, which the merged variant keeps); the server supplies it, so this crate
+/// needs to know nothing about models. Any `Fn(&Site) -> Option<Arc<PackedWeight>>` will do.
 pub trait BaseWeights: Send + Sync {
-    fn base_weight(&self, site: &Site) -> Option<Tensor>;
+    fn base_weight(&self, site: &Site) -> Option<std::sync::Arc<PackedWeight>>;
 }
 
 impl<F> BaseWeights for F
 where
-    F: Fn(&Site) -> Option<Tensor> + Send + Sync,
+    F: Fn(&Site) -> Option<std::sync::Arc<PackedWeight>> + Send + Sync,
 {
-    fn base_weight(&self, site: &Site) -> Option<Tensor> {
+    fn base_weight(&self, site: &Site) -> Option<std::sync::Arc<PackedWeight>> {
         self(site)
     }
 }
@@ -265,12 +266,10 @@ impl Registry {
             || {
                 inner.merges.fetch_add(1, Ordering::Relaxed);
                 let start = Instant::now();
-                let merged =
-                    MergedWeights::build(&adapter, |s| base.base_weight(s)).map_err(|e| {
-                        RegistryError::Merge {
-                            id: adapter.id.clone(),
-                            message: e.to_string(),
-                        }
+                let merged = MergedWeights::build_packed(&adapter, |s| base.base_weight(s))
+                    .map_err(|e| RegistryError::Merge {
+                        id: adapter.id.clone(),
+                        message: e.to_string(),
                     })?;
                 let timings = StageTimings {
                     merge: start.elapsed(),

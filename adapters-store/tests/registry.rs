@@ -7,7 +7,6 @@ mod common;
 use std::sync::{Arc, Barrier};
 use std::time::Duration;
 
-use candle_core::{DType, Device, Tensor};
 use switchyard_adapters::events::{SwapKind, Tier};
 use switchyard_adapters::package::Limits;
 use switchyard_adapters::registry::{BaseWeights, Registry, RegistryConfig, RegistryError};
@@ -32,7 +31,11 @@ fn zero_base() -> Box<dyn BaseWeights> {
     let spec = spec();
     Box::new(move |site: &Site| {
         let (out, inp) = spec.shape(site)?;
-        Some(Tensor::zeros((out, inp), DType::F32, &Device::Cpu).unwrap())
+        Some(std::sync::Arc::new(switchyard_kernels::PackedWeight::pack(
+            &vec![0f32; out * inp],
+            out,
+            inp,
+        )))
     })
 }
 

@@ -14,7 +14,6 @@ use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use candle_core::{DType, Device, Tensor};
 use rand::{Rng, SeedableRng};
 use switchyard_adapters::events::{SwapKind, Tier};
 use switchyard_adapters::package::{Limits, content_version};
@@ -42,7 +41,11 @@ fn eight_threads_resolve_and_evict_while_another_publishes_and_rolls_back() {
     let spec_for_base = spec();
     let base = move |site: &Site| {
         let (out, inp) = spec_for_base.shape(site)?;
-        Some(Tensor::zeros((out, inp), DType::F32, &Device::Cpu).unwrap())
+        Some(std::sync::Arc::new(switchyard_kernels::PackedWeight::pack(
+            &vec![0f32; out * inp],
+            out,
+            inp,
+        )))
     };
     let registry = Registry::new(
         store.clone(),

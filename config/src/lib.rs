@@ -22,6 +22,7 @@ use std::path::{Path, PathBuf};
 
 pub use error::ConfigError;
 pub use read::{KEYS, SettingKey};
+pub use switchyard_kernels::WeightFormat;
 
 use read::{Origin, Sources};
 use rules::secret_rule;
@@ -46,6 +47,9 @@ pub struct Settings {
     pub listen: SocketAddr,
     /// Folder of the base model checkpoint (config.json, *.safetensors, tokenizer.json).
     pub model_dir: Option<PathBuf>,
+    /// The format the base model's weights are held in once loaded (`[model] weights`):
+    /// converted at load from the checkpoint's own dtype.
+    pub model_weights: WeightFormat,
     /// Root of the adapter store (`<store>/<name>/<version>.safetensors`).
     pub store_dir: Option<PathBuf>,
     /// Compute threads for the model; 0 means one per core.
@@ -133,6 +137,7 @@ impl fmt::Display for LogFormat {
 pub struct Overrides {
     pub listen: Option<SocketAddr>,
     pub model_dir: Option<PathBuf>,
+    pub model_weights: Option<WeightFormat>,
     pub store_dir: Option<PathBuf>,
 }
 
@@ -141,6 +146,7 @@ impl Default for Settings {
         Self {
             listen: SocketAddr::from((Ipv4Addr::LOCALHOST, 7070)),
             model_dir: None,
+            model_weights: WeightFormat::F32,
             store_dir: None,
             threads: 0,
             max_batch_rows: 32,
@@ -254,6 +260,19 @@ impl Settings {
         Ok(Settings {
             listen,
             model_dir: dir(src, &read::MODEL_DIR, overrides.model_dir.as_deref())?,
+            model_weights: match overrides.model_weights {
+                Some(format) => format,
+                None => match src.text(&read::MODEL_WEIGHTS, false)? {
+                    None => d.model_weights,
+                    Some((text, origin)) => WeightFormat::parse(text.trim()).map_err(|_| {
+                        ConfigError::invalid(
+                            origin.label(&read::MODEL_WEIGHTS),
+                            text.as_str(),
+                            format!("expected one of {}", WeightFormat::NAMES.join(", ")),
+                        )
+                    })?,
+                },
+            },
             store_dir: dir(src, &read::STORE_DIR, overrides.store_dir.as_deref())?,
             threads: size(src.whole(&read::THREADS, d.threads as u64, 0..=1024)?),
             max_batch_rows: size(src.whole(
@@ -414,6 +433,7 @@ impl fmt::Debug for Settings {
         f.debug_struct("Settings")
             .field("listen", &self.listen)
             .field("model_dir", &self.model_dir)
+            .field("model_weights", &self.model_weights)
             .field("store_dir", &self.store_dir)
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)

@@ -37,6 +37,8 @@ pub(crate) const SHUTDOWN_GRACE_MS: SettingKey = SettingKey::new(
     "SWITCHYARD_SERVER_SHUTDOWN_GRACE_MS",
 );
 pub(crate) const MODEL_DIR: SettingKey = SettingKey::new("model", "dir", "SWITCHYARD_MODEL_DIR");
+pub(crate) const MODEL_WEIGHTS: SettingKey =
+    SettingKey::new("model", "weights", "SWITCHYARD_MODEL_WEIGHTS");
 pub(crate) const STORE_DIR: SettingKey = SettingKey::new("store", "dir", "SWITCHYARD_STORE_DIR");
 pub(crate) const THREADS: SettingKey =
     SettingKey::new("engine", "threads", "SWITCHYARD_ENGINE_THREADS");
@@ -114,6 +116,7 @@ pub const KEYS: &[SettingKey] = &[
     LISTEN,
     SHUTDOWN_GRACE_MS,
     MODEL_DIR,
+    MODEL_WEIGHTS,
     STORE_DIR,
     THREADS,
     MAX_BATCH_ROWS,

@@ -59,6 +59,7 @@ pub(crate) fn render(s: &Settings) -> String {
             "`switchyard serve` refuses to start without it",
         ),
     }
+    page.line(&read::MODEL_WEIGHTS, quoted(&s.model_weights.to_string()));
     match &s.store_dir {
         Some(dir) => page.line(&read::STORE_DIR, path(dir)),
         None => page.unset(&read::STORE_DIR, "no adapter store is configured"),

@@ -90,6 +90,7 @@ fn command_line_overrides_environment_which_overrides_file() {
         listen: Some("127.0.0.1:3003".parse().unwrap()),
         model_dir: Some("cli-model".into()),
         store_dir: Some("cli-store".into()),
+        ..Overrides::default()
     };
 
     let from_file = load_text(file, &[]).unwrap();
@@ -124,6 +125,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::LISTEN, "\"0.0.0.0:9000\"", "0.0.0.0:9000"),
         (&read::SHUTDOWN_GRACE_MS, "1234", "1234"),
         (&read::MODEL_DIR, "\"m\"", "m"),
+        (&read::MODEL_WEIGHTS, "\"int4-g64\"", "int4-g64"),
         (&read::STORE_DIR, "\"s\"", "s"),
         (&read::THREADS, "3", "3"),
         (&read::MAX_BATCH_ROWS, "7", "7"),
@@ -163,6 +165,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
     let expected = Settings {
         listen: "0.0.0.0:9000".parse().unwrap(),
         model_dir: Some("m".into()),
+        model_weights: WeightFormat::parse("int4-g64").unwrap(),
         store_dir: Some("s".into()),
         threads: 3,
         max_batch_rows: 7,
@@ -338,6 +341,34 @@ fn bad_listen_address_names_key_and_value() {
     );
     let err = refusal("", &[("SWITCHYARD_LISTEN", "7070")]);
     assert!(err.contains("server.listen (SWITCHYARD_LISTEN)"), "{err}");
+}
+
+#[test]
+fn model_weights_default_to_f32_and_refuse_an_unknown_format_listing_the_valid_ones() {
+    assert_eq!(load_text("", &[]).unwrap().model_weights, WeightFormat::F32);
+    let s = load_text(
+        "[model]\nweights = \"bf16\"\n",
+        &[("SWITCHYARD_MODEL_WEIGHTS", "int8")],
+    );
+    assert_eq!(s.unwrap().model_weights.to_string(), "int8");
+    let err = refusal("[model]\nweights = \"int3\"\n", &[]);
+    assert!(
+        err.contains("`model.weights`")
+            && err.contains("\"int3\"")
+            && err.contains("f32, bf16, int8, int8-g32"),
+        "{err}"
+    );
+    let err = refusal("", &[("SWITCHYARD_MODEL_WEIGHTS", "fp8")]);
+    assert!(
+        err.contains("model.weights (SWITCHYARD_MODEL_WEIGHTS)"),
+        "{err}"
+    );
+    let flags = Overrides {
+        model_weights: Some(WeightFormat::Bf16),
+        ..Overrides::default()
+    };
+    let s = load_text_with("", &[("SWITCHYARD_MODEL_WEIGHTS", "int8")], &flags).unwrap();
+    assert_eq!(s.model_weights, WeightFormat::Bf16);
 }
 
 #[test]

@@ -14,10 +14,11 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use candle_core::{DType, Device, Tensor};
-use candle_nn::VarBuilder;
 use switchyard_adapters::{
     Adapter, AdapterPackage, LowRank, MergedWeights, Module, PackageMeta, Task,
 };
+use switchyard_kernels::WeightFormat;
+use switchyard_server::model::checkpoint::{Checkpoint, Weights};
 use switchyard_server::model::embedder::Embedder;
 use switchyard_server::model::linear::RowAdapters;
 use switchyard_server::model::llama::{LlamaConfig, LlamaModel};
@@ -130,7 +131,8 @@ fn encoder_section(report: &mut Report, rounds: usize) {
             .collect()
     };
     let mixed_sets = [eight(8, &qv, 10), eight(16, &qv, 20), eight(8, &all, 30)];
-    let merged = Arc::new(MergedWeights::build(&r16qv, |s| e.model().base_weight(s)).unwrap());
+    let merged =
+        Arc::new(MergedWeights::build_packed(&r16qv, |s| e.model().base_weight(s)).unwrap());
 
     let b = ids.len();
     let t = 64;
@@ -319,11 +321,10 @@ fn decoder_section(report: &mut Report, rounds: usize) {
         .filter(|(n, _)| !n.contains("embed_tokens"))
         .map(|(_, t)| t.elem_count() * 4)
         .sum();
-    let model = LlamaModel::new(
-        &cfg,
-        VarBuilder::from_tensors(tensors, DType::F32, &Device::Cpu),
-    )
-    .unwrap();
+    let ckpt = Checkpoint::from_tensors(serde_json::Value::Null, &tensors).unwrap();
+    drop(tensors);
+    let model = LlamaModel::new(&cfg, &Weights::new(&ckpt, WeightFormat::F32)).unwrap();
+    drop(ckpt);
     let bw = read_bandwidth();
     let floor = weight_bytes as f64 / bw;
     report.add(

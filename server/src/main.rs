@@ -9,6 +9,7 @@ use clap::{Parser, Subcommand};
 /// fresh large allocation from the system costs a page fault per 4 KB (shared/PERF-NOTES.md).
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+use switchyard_kernels::WeightFormat;
 use switchyard_server::commands::{adapter, embed, generate, plan, serve, similarity, tour};
 use switchyard_server::model::sampling::SamplingParams;
 
@@ -34,6 +35,8 @@ enum Command {
         /// Rows per forward pass.
         #[arg(long, default_value_t = 32)]
         batch: usize,
+        #[arg(long, default_value = "f32", env = "SWITCHYARD_MODEL_WEIGHTS", help = switchyard_server::commands::WEIGHTS_HELP)]
+        weights: WeightFormat,
     },
     /// Continue a prompt with a decoder model; greedy unless --temperature is given.
     Generate {
@@ -58,6 +61,8 @@ enum Command {
         /// Seed of the sampling stream; the same seed gives the same text.
         #[arg(long, default_value_t = 0)]
         seed: u64,
+        #[arg(long, default_value = "f32", env = "SWITCHYARD_MODEL_WEIGHTS", help = switchyard_server::commands::WEIGHTS_HELP)]
+        weights: WeightFormat,
     },
     /// Show how similar the texts on stdin are under the base model and under each adapter.
     Similarity {
@@ -67,6 +72,8 @@ enum Command {
         /// Adapter packages to compare against the base (repeatable).
         #[arg(long = "adapter")]
         adapters: Vec<PathBuf>,
+        #[arg(long, default_value = "f32", env = "SWITCHYARD_MODEL_WEIGHTS", help = switchyard_server::commands::WEIGHTS_HELP)]
+        weights: WeightFormat,
     },
     /// Work with adapter packages and the adapter store: inspect, verify, pack, publish, list,
     /// live, rollback, retire.
@@ -94,6 +101,9 @@ enum Command {
         /// Adapter store folder (created if missing).
         #[arg(long)]
         store: Option<PathBuf>,
+        /// Overrides `model.weights` of the config (and SWITCHYARD_MODEL_WEIGHTS).
+        #[arg(long, help = switchyard_server::commands::WEIGHTS_HELP)]
+        weights: Option<WeightFormat>,
     },
     /// Walk through a running server, as the demo does: classify with each demo adapter, flip a
     /// new version live under traffic, run an A/B split with outcomes, and show the swap metrics.
@@ -133,6 +143,7 @@ fn main() {
         listen,
         model,
         store,
+        weights,
     } = cli.command
     {
         let opts = serve::ServeOptions {
@@ -140,6 +151,7 @@ fn main() {
             overrides: switchyard_config::Overrides {
                 listen,
                 model_dir: model,
+                model_weights: weights,
                 store_dir: store,
             },
         };
@@ -162,11 +174,13 @@ fn main() {
             model,
             adapter,
             batch,
+            weights,
         } => embed::run(
             &embed::EmbedOptions {
                 model,
                 adapter,
                 batch,
+                weights,
             },
             BufReader::new(io::stdin().lock()),
             io::stdout().lock(),
@@ -180,6 +194,7 @@ fn main() {
             temperature,
             top_p,
             seed,
+            weights,
         } => generate::run(
             &generate::GenerateOptions {
                 model,
@@ -191,12 +206,21 @@ fn main() {
                     top_p,
                     seed,
                 },
+                weights,
             },
             io::stdout().lock(),
             io::stderr(),
         ),
-        Command::Similarity { model, adapters } => similarity::run(
-            &similarity::SimilarityOptions { model, adapters },
+        Command::Similarity {
+            model,
+            adapters,
+            weights,
+        } => similarity::run(
+            &similarity::SimilarityOptions {
+                model,
+                adapters,
+                weights,
+            },
             BufReader::new(io::stdin().lock()),
             io::stdout().lock(),
         ),

@@ -41,6 +41,13 @@ pub struct CacheLabels {
     pub outcome: String,
 }
 
+/// The base model's weight format and the kernel path: one series, fixed at start-up.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct BaseLabels {
+    pub weights: String,
+    pub kernels: String,
+}
+
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct ArmLabels {
     pub split: String,
@@ -67,6 +74,8 @@ pub struct Metrics {
     pub arm_requests: Family<ArmLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
     pub process_resident_bytes: Gauge,
+    pub base_weights: Family<BaseLabels, Gauge>,
+    pub base_weight_bytes: Gauge,
     /// Adapter names that have their own request series; at most `adapter_series` of them.
     labelled_adapters: Mutex<HashSet<String>>,
     adapter_series: usize,
@@ -164,6 +173,18 @@ impl Metrics {
             "Resident memory of the server process (Linux: /proc/self/statm), read at each scrape",
             process_resident_bytes.clone(),
         );
+        let base_weights = Family::<BaseLabels, Gauge>::default();
+        registry.register(
+            "base_weights",
+            "The base model's weight format and the kernel path in use (value 1; one series)",
+            base_weights.clone(),
+        );
+        let base_weight_bytes = Gauge::default();
+        registry.register(
+            "base_weight_bytes",
+            "Bytes the base model's weights hold in their format",
+            base_weight_bytes.clone(),
+        );
         Self {
             registry: Mutex::new(registry),
             requests,
@@ -178,9 +199,24 @@ impl Metrics {
             arm_requests,
             swap_events_dropped,
             process_resident_bytes,
+            base_weights,
+            base_weight_bytes,
             labelled_adapters: Mutex::new(HashSet::new()),
             adapter_series,
         }
+    }
+
+    /// Records the base model's weight format, the kernel path and the weights' bytes.
+    pub fn set_base(&self, weights: &str, kernels: &str, bytes: usize) {
+        self.base_weights.clear();
+        self.base_weights
+            .get_or_create(&BaseLabels {
+                weights: weights.to_owned(),
+                kernels: kernels.to_owned(),
+            })
+            .set(1);
+        self.base_weight_bytes
+            .set(i64::try_from(bytes).unwrap_or(i64::MAX));
     }
 
     /// The text exposition of every metric.

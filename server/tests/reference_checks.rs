@@ -155,7 +155,7 @@ fn minilm_merged_and_unmerged_paths_agree() {
             .embed_ids(&tokens, &vec![Some(adapter.clone()); tokens.len()])
             .unwrap();
         let merged =
-            Arc::new(MergedWeights::build(&adapter, |s| e.model().base_weight(s)).unwrap());
+            Arc::new(MergedWeights::build_packed(&adapter, |s| e.model().base_weight(s)).unwrap());
         let t = switchyard_server::model::embedder::padded_len(&tokens);
         let merged_out = e
             .embed_rows(
@@ -176,7 +176,8 @@ fn unmerge_of_merge_restores_every_targeted_minilm_weight() {
     let e = embedder();
     let adapter = minilm_adapter("minilm-all");
     for (site, lr) in adapter.sites() {
-        let w0 = e.model().base_weight(site).unwrap();
+        let w0 = switchyard_adapters::tensors::unpack_tensor(&e.model().base_weight(site).unwrap())
+            .unwrap();
         let back = lr.unmerge(&lr.merge(&w0).unwrap()).unwrap();
         let d = (back - &w0)
             .unwrap()
@@ -353,7 +354,8 @@ impl Decoder {
             );
 
             let merged = Arc::new(
-                MergedWeights::build(&adapter, |s| self.generator.model().base_weight(s)).unwrap(),
+                MergedWeights::build_packed(&adapter, |s| self.generator.model().base_weight(s))
+                    .unwrap(),
             );
             let via_merged = self.logits(&input, RowAdapters::merged(merged, input.len()));
             let d = max_abs(&got, &via_merged);

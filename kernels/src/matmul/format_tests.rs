@@ -384,3 +384,38 @@ fn reduced_formats_hold_the_bytes_their_layout_says() {
     assert_eq!(bytes("int4-zero"), 48 * 50 + 48 * 4 * 3);
     assert_eq!(bytes("int4-g64-zero-f32"), 48 * 50 + 48 * 2 * 5);
 }
+
+/// The loader packs from a source of rows (a checkpoint's own dtype) and looks embedding rows
+/// up one at a time: both must give exactly what packing a whole f32 matrix gives.
+#[test]
+fn packing_from_rows_and_reading_one_row_match_the_whole_matrix_in_every_format() {
+    for (out, inp) in [(37, 70), (16, 64), (5, 33), (130, 128)] {
+        let w: Vec<f32> = values(out * inp, 77)
+            .iter()
+            .enumerate()
+            .map(|(i, v)| if i % 89 == 0 { v * 0.7 } else { v * 0.03 })
+            .collect();
+        for format in formats() {
+            let whole = PackedWeight::pack_as(&w, out, inp, format).unwrap();
+            let rows = PackedWeight::pack_rows(out, inp, format, |j, buf| {
+                buf.copy_from_slice(&w[j * inp..(j + 1) * inp])
+            })
+            .unwrap();
+            assert_eq!(rows.resident_bytes(), whole.resident_bytes(), "{format}");
+            let unpacked = whole.unpack();
+            assert_eq!(rows.unpack(), unpacked, "{format} {out}x{inp}");
+            let mut row = vec![0f32; inp];
+            for j in 0..out {
+                rows.row_into(j, &mut row);
+                assert_eq!(row, unpacked[j * inp..(j + 1) * inp], "{format} row {j}");
+            }
+        }
+    }
+    let bad = PackedWeight::pack_rows(3, 4, WeightFormat::parse("int8").unwrap(), |j, buf| {
+        buf.fill(if j == 2 { f32::NAN } else { 1.0 })
+    });
+    assert!(matches!(
+        bad,
+        Err(crate::QuantError::NotFinite { row: 2, .. })
+    ));
+}

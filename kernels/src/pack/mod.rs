@@ -21,6 +21,7 @@
 //! [`PackedWeight::resident_bytes`]); an odd input count leaves the last pair's high half
 //! zero, which no kernel reads.
 
+mod build;
 mod format;
 pub mod quant;
 pub(crate) mod rows;
@@ -176,121 +177,40 @@ impl PackedWeight {
         format: WeightFormat,
     ) -> Result<Self, QuantError> {
         assert!(w.len() >= out * inp, "weight does not fit its slice");
-        let panels = out.div_ceil(PANEL);
-        let pairs = inp.div_ceil(2);
-        let group = format.group(inp);
-        let groups = inp.div_ceil(group);
-        let row = |j: usize| (j < out).then(|| &w[j * inp..(j + 1) * inp]);
-        if !matches!(format, WeightFormat::F32 | WeightFormat::Bf16)
+        if format == WeightFormat::F32 {
+            return Ok(Self::pack(w, out, inp));
+        }
+        if format != WeightFormat::Bf16
             && let Some(at) = w[..out * inp].iter().position(|v| !v.is_finite())
         {
+            // Checked here in row-major order, so the first offending value is the one named.
             return Err(QuantError::NotFinite {
                 value: w[at],
                 row: at / inp,
                 input: at % inp,
             });
         }
-        let values = match format {
-            WeightFormat::F32 => return Ok(Self::pack(w, out, inp)),
-            WeightFormat::Bf16 => {
-                let mut v = vec![0u32; panels * pairs * PANEL];
-                for (p, panel) in v
-                    .chunks_mut((pairs * PANEL).max(1))
-                    .enumerate()
-                    .take(panels)
-                {
-                    for c in 0..PANEL {
-                        let Some(r) = row(p * PANEL + c) else { break };
-                        for (q, &x) in r.iter().enumerate() {
-                            let b = quant::bf16_from_f32(x) as u32;
-                            panel[q / 2 * PANEL + c] |= b << (16 * (q % 2));
-                        }
-                    }
-                }
-                Values::Bf16(v)
-            }
-            WeightFormat::Int8 { .. } => {
-                let mut q = vec![0i8; panels * inp * PANEL];
-                let mut scales = vec![0f32; panels * groups * PANEL];
-                let mut tmp = vec![0i8; group];
-                for p in 0..panels {
-                    for c in 0..PANEL {
-                        let Some(r) = row(p * PANEL + c) else { break };
-                        for (g, vals) in r.chunks(group).enumerate() {
-                            let s = quant::quantise_int8(vals, &mut tmp);
-                            scales[(p * groups + g) * PANEL + c] = s;
-                            for (i, &v) in tmp[..vals.len()].iter().enumerate() {
-                                q[(p * inp + g * group + i) * PANEL + c] = v;
-                            }
-                        }
-                    }
-                }
-                Values::Int8 { q, scales }
-            }
-            WeightFormat::Int4 {
-                zero_point, scale, ..
-            } => {
-                let f16 = scale == ScaleType::F16;
-                let mut q = vec![0u8; panels * pairs * PANEL];
-                let mut s32 = vec![0f32; if f16 { 0 } else { panels * groups * PANEL }];
-                let mut s16 = vec![0u16; if f16 { panels * groups * PANEL } else { 0 }];
-                let mut zeros = vec![
-                    0u8;
-                    if zero_point {
-                        panels * groups * PANEL
-                    } else {
-                        0
-                    }
-                ];
-                let mut tmp = vec![0u8; group];
-                for p in 0..panels {
-                    for c in 0..PANEL {
-                        let j = p * PANEL + c;
-                        // Padding rows hold the zero nibble of a symmetric weight (8): value 0.
-                        let Some(r) = row(j) else {
-                            if !zero_point {
-                                for pair in 0..pairs {
-                                    q[(p * pairs + pair) * PANEL + c] = 0x88;
-                                }
-                            }
-                            continue;
-                        };
-                        for (g, vals) in r.chunks(group).enumerate() {
-                            let at = (p * groups + g) * PANEL + c;
-                            let (s, h, z) = quant::quantise_int4(vals, &mut tmp, zero_point, f16)
-                                .ok_or(QuantError::ScaleOverflow {
-                                scale: vals.iter().fold(0f32, |m, v| m.max(v.abs())) / 7.0,
-                                row: j,
-                                input: g * group,
-                            })?;
-                            if f16 {
-                                s16[at] = h;
-                            } else {
-                                s32[at] = s;
-                            }
-                            if zero_point {
-                                zeros[at] = z;
-                            }
-                            for (i, &v) in tmp[..vals.len()].iter().enumerate() {
-                                let qi = g * group + i;
-                                q[(p * pairs + qi / 2) * PANEL + c] |= v << (4 * (qi % 2));
-                            }
-                            if vals.len() % 2 == 1 {
-                                // The unused high half of an odd last pair: the zero point.
-                                let qi = g * group + vals.len();
-                                q[(p * pairs + qi / 2) * PANEL + c] |= z << 4;
-                            }
-                        }
-                    }
-                }
-                let scales = if f16 {
-                    Scales::F16(s16)
-                } else {
-                    Scales::F32(s32)
-                };
-                Values::Int4 { q, scales, zeros }
-            }
-        };
+        Self::pack_rows(out, inp, format, |j, row| {
+            row.copy_from_slice(&w[j * inp..(j + 1) * inp])
+        })
+    }
+
+    /// Packs `W [out, inp]` in `format` from a source of rows: `row(j, buf)` fills `buf`
+    /// (`inp` values) with row `j`. Panels are packed in parallel across the thread pool, each
+    /// task holding one row at a time, so a weight is converted from its stored form (a
+    /// memory-mapped checkpoint's f16 or bf16 bytes, say) with no full f32 copy of it.
+    /// Refuses what [`PackedWeight::pack_as`] refuses; which offending value is named when
+    /// there are several is not fixed.
+    pub fn pack_rows<F>(
+        out: usize,
+        inp: usize,
+        format: WeightFormat,
+        row: F,
+    ) -> Result<Self, QuantError>
+    where
+        F: Fn(usize, &mut [f32]) + Sync,
+    {
+        let values = build::values(out, inp, format, &row)?;
         Ok(Self {
             values,
             format,
@@ -375,6 +295,58 @@ impl PackedWeight {
             }
         }
         w
+    }
+
+    /// Row `j` of the values this weight stands for, into `dst` (`inp` values): what
+    /// [`PackedWeight::unpack`] gives for that row, read straight from the panel (a token
+    /// embedding table held in a reduced format is looked up this way).
+    pub fn row_into(&self, j: usize, dst: &mut [f32]) {
+        let (out, inp) = (self.out, self.inp);
+        assert!(
+            j < out && dst.len() == inp,
+            "row {j} of a [{out} x {inp}] weight"
+        );
+        let (p, c) = (j / PANEL, j % PANEL);
+        let group = self.format.group(inp);
+        let groups = inp.div_ceil(group);
+        let pairs = inp.div_ceil(2);
+        let sc = |g: usize| (p * groups + g) * PANEL + c;
+        match &self.values {
+            Values::F32(d) => {
+                let width = self.panel_width(p);
+                let panel = &d[p * PANEL * inp..];
+                for (q, v) in dst.iter_mut().enumerate() {
+                    *v = panel[q * width + c];
+                }
+            }
+            Values::Bf16(d) => {
+                for (q, v) in dst.iter_mut().enumerate() {
+                    let word = d[(p * pairs + q / 2) * PANEL + c];
+                    *v = quant::bf16_to_f32((word >> (16 * (q % 2))) as u16);
+                }
+            }
+            Values::Int8 { q: d, scales } => {
+                for (q, v) in dst.iter_mut().enumerate() {
+                    *v = d[(p * inp + q) * PANEL + c] as f32 * scales[sc(q / group)];
+                }
+            }
+            Values::Int4 {
+                q: d,
+                scales,
+                zeros,
+            } => {
+                for (q, v) in dst.iter_mut().enumerate() {
+                    let g = sc(q / group);
+                    let nib = ((d[(p * pairs + q / 2) * PANEL + c] >> (4 * (q % 2))) & 15) as i32;
+                    let z = if zeros.is_empty() { 8 } else { zeros[g] as i32 };
+                    let s = match scales {
+                        Scales::F32(s) => s[g],
+                        Scales::F16(s) => quant::f16_to_f32(s[g]),
+                    };
+                    *v = (nib - z) as f32 * s;
+                }
+            }
+        }
     }
 
     /// The 16 values of input `q` in panel `p` (zeros past the last row), as f32.

@@ -7,6 +7,9 @@ use std::time::Instant;
 
 use anyhow::Context;
 
+use switchyard_kernels::WeightFormat;
+
+use crate::commands::model_line;
 use crate::model::embedder::Embedder;
 use crate::model::load_adapter;
 
@@ -15,6 +18,7 @@ pub struct EmbedOptions {
     pub model: PathBuf,
     pub adapter: Option<PathBuf>,
     pub batch: usize,
+    pub weights: WeightFormat,
 }
 
 pub fn run(
@@ -24,7 +28,17 @@ pub fn run(
     mut err: impl Write,
 ) -> anyhow::Result<()> {
     anyhow::ensure!(opts.batch >= 1, "--batch must be at least 1");
-    let embedder = Embedder::load(&opts.model)?;
+    let loading = Instant::now();
+    let embedder = Embedder::load_as(&opts.model, opts.weights)?;
+    writeln!(
+        err,
+        "{}",
+        model_line(
+            opts.weights,
+            embedder.model().resident_bytes(),
+            loading.elapsed().as_secs_f64()
+        )
+    )?;
     let adapter = match &opts.adapter {
         Some(path) => Some(load_adapter(path, embedder.spec())?),
         None => None,

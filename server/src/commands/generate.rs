@@ -5,6 +5,9 @@ use std::io::Write;
 use std::path::PathBuf;
 use std::time::Instant;
 
+use switchyard_kernels::WeightFormat;
+
+use crate::commands::model_line;
 use crate::model::generator::{GenerateRequest, Generator};
 use crate::model::load_adapter;
 use crate::model::sampling::SamplingParams;
@@ -16,11 +19,22 @@ pub struct GenerateOptions {
     pub prompt: String,
     pub limit: usize,
     pub sampling: SamplingParams,
+    pub weights: WeightFormat,
 }
 
 pub fn run(opts: &GenerateOptions, mut out: impl Write, mut err: impl Write) -> anyhow::Result<()> {
     opts.sampling.validate().map_err(anyhow::Error::msg)?;
-    let generator = Generator::load(&opts.model)?;
+    let loading = Instant::now();
+    let generator = Generator::load_as(&opts.model, opts.weights)?;
+    writeln!(
+        err,
+        "{}",
+        model_line(
+            opts.weights,
+            generator.model().resident_bytes(),
+            loading.elapsed().as_secs_f64()
+        )
+    )?;
     let adapter = match &opts.adapter {
         Some(path) => Some(load_adapter(path, generator.spec())?),
         None => None,

@@ -17,6 +17,7 @@ use switchyard_adapters::package::Limits;
 use switchyard_adapters::registry::{Registry, RegistryConfig};
 use switchyard_adapters::store::Store;
 use switchyard_config::{LogFormat, Overrides, Settings};
+use switchyard_kernels::WeightFormat;
 
 use crate::engine::{Backbone, Engine, EngineConfig};
 use crate::http::auth::Tenants;
@@ -33,8 +34,9 @@ pub struct ServeOptions {
     pub overrides: Overrides,
 }
 
-/// Loads an encoder or a decoder, by the checkpoint's `model_type`.
-pub fn load_backbone(dir: &Path) -> anyhow::Result<Backbone> {
+/// Loads an encoder or a decoder, by the checkpoint's `model_type`, with its weights held in
+/// `format`.
+pub fn load_backbone(dir: &Path, format: WeightFormat) -> anyhow::Result<Backbone> {
     let config = dir.join("config.json");
     let text = std::fs::read_to_string(&config)
         .with_context(|| format!("reading {}", config.display()))?;
@@ -42,8 +44,8 @@ pub fn load_backbone(dir: &Path) -> anyhow::Result<Backbone> {
         serde_json::from_str(&text).with_context(|| format!("parsing {}", config.display()))?;
     let model_type = v.get("model_type").and_then(|m| m.as_str()).unwrap_or("");
     match model_type {
-        "bert" => Ok(Backbone::Encoder(Embedder::load(dir)?)),
-        "llama" | "mistral" | "qwen2" => Ok(Backbone::Decoder(Generator::load(dir)?)),
+        "bert" => Ok(Backbone::Encoder(Embedder::load_as(dir, format)?)),
+        "llama" | "mistral" | "qwen2" => Ok(Backbone::Decoder(Generator::load_as(dir, format)?)),
         other => anyhow::bail!(
             "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama and its relatives)",
             config.display()
@@ -54,7 +56,7 @@ pub fn load_backbone(dir: &Path) -> anyhow::Result<Backbone> {
 fn base_weight(
     backbone: &Backbone,
     site: &switchyard_adapters::Site,
-) -> Option<candle_core::Tensor> {
+) -> Option<Arc<switchyard_kernels::PackedWeight>> {
     match backbone {
         Backbone::Encoder(e) => e.model().base_weight(site),
         Backbone::Decoder(g) => g.model().base_weight(site),
@@ -127,8 +129,9 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         let _ = rayon_threads(settings.threads);
     }
     let started = Instant::now();
-    let backbone = Arc::new(load_backbone(&model_dir)?);
-    tracing::info!(model = %model_dir.display(), family = backbone.family(), fingerprint = %backbone.spec().fingerprint, secs = started.elapsed().as_secs_f64(), "base model loaded");
+    let backbone = Arc::new(load_backbone(&model_dir, settings.model_weights)?);
+    let kernels = switchyard_kernels::dispatch::active();
+    tracing::info!(model = %model_dir.display(), family = backbone.family(), fingerprint = %backbone.spec().fingerprint, weights = %settings.model_weights, kernels = %kernels, weight_bytes = backbone.weight_bytes(), secs = started.elapsed().as_secs_f64(), "base model loaded");
     if !store_dir.exists() {
         std::fs::create_dir_all(&store_dir)
             .with_context(|| format!("creating the store folder {}", store_dir.display()))?;
@@ -150,6 +153,11 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     let watcher = registry.start_watcher(Duration::from_millis(250));
     let vital_threads = vec![("store watcher", watcher.alive())];
     let metrics = Arc::new(Metrics::new(settings.metrics_adapter_series));
+    metrics.set_base(
+        &settings.model_weights.to_string(),
+        kernels.name(),
+        backbone.weight_bytes(),
+    );
     {
         let events = registry.subscribe(1024);
         let metrics = metrics.clone();

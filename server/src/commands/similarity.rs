@@ -14,6 +14,7 @@ use crate::model::load_adapter;
 pub struct SimilarityOptions {
     pub model: PathBuf,
     pub adapters: Vec<PathBuf>,
+    pub weights: switchyard_kernels::WeightFormat,
 }
 
 fn cosine(a: &[f32], b: &[f32]) -> f32 {
@@ -35,7 +36,7 @@ pub fn run(
     input: impl BufRead,
     mut out: impl Write,
 ) -> anyhow::Result<()> {
-    let embedder = Embedder::load(&opts.model)?;
+    let embedder = Embedder::load_as(&opts.model, opts.weights)?;
     let texts: Vec<String> = input
         .lines()
         .collect::<Result<Vec<_>, _>>()

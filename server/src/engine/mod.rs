@@ -40,6 +40,22 @@ pub enum Backbone {
 }
 
 impl Backbone {
+    /// The format the base weights are held in.
+    pub fn weights_format(&self) -> switchyard_kernels::WeightFormat {
+        match self {
+            Backbone::Encoder(e) => e.weights_format(),
+            Backbone::Decoder(g) => g.weights_format(),
+        }
+    }
+
+    /// Bytes the base model's weights hold.
+    pub fn weight_bytes(&self) -> usize {
+        match self {
+            Backbone::Encoder(e) => e.model().resident_bytes(),
+            Backbone::Decoder(g) => g.model().resident_bytes(),
+        }
+    }
+
     pub fn spec(&self) -> &switchyard_adapters::BaseSpec {
         match self {
             Backbone::Encoder(e) => e.spec(),

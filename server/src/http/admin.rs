@@ -208,7 +208,12 @@ pub async fn list(
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    blocking(&state, |r| {
+    let base = json!({
+        "weights": state.backbone.weights_format().to_string(),
+        "kernels": switchyard_kernels::dispatch::active().name(),
+        "weight_bytes": state.backbone.weight_bytes(),
+    });
+    blocking(&state, move |r| {
         let names = r.store().names().map_err(store_error)?;
         let entries = r.entries();
         let pinned = r.pinned();
@@ -231,6 +236,7 @@ pub async fn list(
         }
         let res = r.residency();
         Ok(Json(json!({
+            "base": base,
             "adapters": adapters,
             "memory": {
                 "factors": {"bytes": res.factors.bytes, "budget_bytes": res.factors.budget_bytes, "entries": res.factors.entries},

@@ -4,8 +4,10 @@
 
 use std::collections::BTreeMap;
 
+use std::sync::Arc;
+
 use candle_core::{D, DType, Result, Tensor};
-use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
+use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
@@ -13,6 +15,7 @@ use switchyard_kernels::{
     softmax_rows_in_place,
 };
 
+use crate::model::checkpoint::Weights;
 use crate::model::linear::{AdaptedLinear, RowAdapters};
 
 /// The fields of a BERT-family config.json this runtime reads.
@@ -44,37 +47,52 @@ fn default_ln_eps() -> f64 {
     1e-12
 }
 
+/// The input embeddings: the word table is held in the model's weight format (it is the one
+/// large matrix besides the projections) and read one row per token; the position and token
+/// type tables and the layer norm stay f32.
 struct Embeddings {
-    word: Embedding,
+    word: Arc<PackedWeight>,
     position: Embedding,
     token_type: Embedding,
     norm: LayerNorm,
 }
 
 impl Embeddings {
-    fn new(cfg: &BertConfig, vb: VarBuilder) -> Result<Self> {
+    fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
+        let h = cfg.hidden_size;
+        let table = |name: &str, rows: usize| -> Result<Embedding> {
+            Ok(Embedding::new(vb.pp(name).tensor("weight", &[rows, h])?, h))
+        };
+        let ln = vb.pp("LayerNorm");
         Ok(Self {
-            word: candle_nn::embedding(cfg.vocab_size, cfg.hidden_size, vb.pp("word_embeddings"))?,
-            position: candle_nn::embedding(
-                cfg.max_position_embeddings,
-                cfg.hidden_size,
-                vb.pp("position_embeddings"),
-            )?,
-            token_type: candle_nn::embedding(
-                cfg.type_vocab_size,
-                cfg.hidden_size,
-                vb.pp("token_type_embeddings"),
-            )?,
-            norm: candle_nn::layer_norm(cfg.hidden_size, cfg.layer_norm_eps, vb.pp("LayerNorm"))?,
+            word: Arc::new(
+                vb.pp("word_embeddings")
+                    .packed("weight", cfg.vocab_size, h)?,
+            ),
+            position: table("position_embeddings", cfg.max_position_embeddings)?,
+            token_type: table("token_type_embeddings", cfg.type_vocab_size)?,
+            norm: LayerNorm::new(
+                ln.tensor("weight", &[h])?,
+                ln.tensor("bias", &[h])?,
+                cfg.layer_norm_eps,
+            ),
         })
     }
 
     fn forward(&self, ids: &Tensor, type_ids: &Tensor) -> Result<Tensor> {
-        let (_, t) = ids.dims2()?;
+        let (b, t) = ids.dims2()?;
+        let (vocab, h) = (self.word.out_features(), self.word.in_features());
+        let flat: Vec<u32> = ids.flatten_all()?.to_vec1()?;
+        let mut words = vec![0f32; b * t * h];
+        for (row, &id) in words.chunks_mut(h).zip(&flat) {
+            if id as usize >= vocab {
+                candle_core::bail!("token id {id} is outside the vocabulary of {vocab}");
+            }
+            self.word.row_into(id as usize, row);
+        }
+        let words = Tensor::from_vec(words, (b, t, h), ids.device())?;
         let positions = Tensor::arange(0u32, t as u32, ids.device())?;
-        let x = self
-            .word
-            .forward(ids)?
+        let x = words
             .add(&self.token_type.forward(type_ids)?)?
             .broadcast_add(&self.position.forward(&positions)?)?;
         self.norm.forward(&x)
@@ -102,11 +120,11 @@ enum Activation {
 }
 
 impl Layer {
-    fn new(cfg: &BertConfig, layer: usize, vb: VarBuilder) -> Result<Self> {
+    fn new(cfg: &BertConfig, layer: usize, vb: &Weights<'_>) -> Result<Self> {
         let h = cfg.hidden_size;
         let i = cfg.intermediate_size;
-        let lin = |m: Module, inp: usize, out: usize, vb: VarBuilder| {
-            AdaptedLinear::load(Site::new(layer, m), inp, out, vb)
+        let lin = |m: Module, inp: usize, out: usize, name: &str| {
+            AdaptedLinear::load(Site::new(layer, m), inp, out, &vb.pp(name))
         };
         let act = match cfg.hidden_act.as_str() {
             "gelu" => Activation::GeluErf,
@@ -115,14 +133,14 @@ impl Layer {
             other => candle_core::bail!("config.json hidden_act {other:?} is not supported"),
         };
         Ok(Self {
-            q: lin(Module::AttnQ, h, h, vb.pp("attention.self.query"))?,
-            k: lin(Module::AttnK, h, h, vb.pp("attention.self.key"))?,
-            v: lin(Module::AttnV, h, h, vb.pp("attention.self.value"))?,
-            o: lin(Module::AttnO, h, h, vb.pp("attention.output.dense"))?,
-            attn_norm: Norm::load(h, cfg.layer_norm_eps, vb.pp("attention.output.LayerNorm"))?,
-            up: lin(Module::MlpUp, h, i, vb.pp("intermediate.dense"))?,
-            down: lin(Module::MlpDown, i, h, vb.pp("output.dense"))?,
-            out_norm: Norm::load(h, cfg.layer_norm_eps, vb.pp("output.LayerNorm"))?,
+            q: lin(Module::AttnQ, h, h, "attention.self.query")?,
+            k: lin(Module::AttnK, h, h, "attention.self.key")?,
+            v: lin(Module::AttnV, h, h, "attention.self.value")?,
+            o: lin(Module::AttnO, h, h, "attention.output.dense")?,
+            attn_norm: Norm::load(h, cfg.layer_norm_eps, &vb.pp("attention.output.LayerNorm"))?,
+            up: lin(Module::MlpUp, h, i, "intermediate.dense")?,
+            down: lin(Module::MlpDown, i, h, "output.dense")?,
+            out_norm: Norm::load(h, cfg.layer_norm_eps, &vb.pp("output.LayerNorm"))?,
             heads: cfg.num_attention_heads,
             act,
         })
@@ -225,17 +243,17 @@ struct Norm {
 }
 
 impl Norm {
-    fn load(size: usize, eps: f64, vb: VarBuilder) -> Result<Self> {
-        let ln = candle_nn::layer_norm(size, eps, vb)?;
-        let gamma = ln.weight().to_dtype(DType::F32)?.to_vec1()?;
-        let beta = match ln.bias() {
-            Some(b) => b.to_dtype(DType::F32)?.to_vec1()?,
-            None => vec![0.0; size],
+    fn load(size: usize, eps: f64, vb: &Weights<'_>) -> Result<Self> {
+        let gamma = vb.tensor("weight", &[size])?.to_vec1()?;
+        let beta = if vb.contains("bias") {
+            vb.tensor("bias", &[size])?.to_vec1()?
+        } else {
+            vec![0.0; size]
         };
         Ok(Self {
             gamma,
             beta,
-            eps: ln.eps() as f32,
+            eps: eps as f32,
         })
     }
 
@@ -312,21 +330,21 @@ pub struct BertModel {
 
 impl BertModel {
     /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.` prefix on
-    /// the tensor names is detected and skipped.
-    pub fn new(cfg: &BertConfig, vb: VarBuilder) -> Result<Self> {
+    /// the tensor names is detected and skipped. Every matrix is held in `vb.format`.
+    pub fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
         if let Some(kind) = &cfg.position_embedding_type
             && kind != "absolute"
         {
             candle_core::bail!("config.json position_embedding_type {kind:?} is not supported");
         }
-        let vb = if vb.contains_tensor("bert.embeddings.word_embeddings.weight") {
+        let vb = if vb.contains("bert.embeddings.word_embeddings.weight") {
             vb.pp("bert")
         } else {
-            vb
+            vb.clone()
         };
-        let embeddings = Embeddings::new(cfg, vb.pp("embeddings"))?;
+        let embeddings = Embeddings::new(cfg, &vb.pp("embeddings"))?;
         let layers = (0..cfg.num_hidden_layers)
-            .map(|i| Layer::new(cfg, i, vb.pp(format!("encoder.layer.{i}"))))
+            .map(|i| Layer::new(cfg, i, &vb.pp(format!("encoder.layer.{i}"))))
             .collect::<Result<Vec<_>>>()?;
         Ok(Self {
             embeddings,
@@ -387,14 +405,34 @@ impl BertModel {
         }
     }
 
-    /// The base weight of one targeted matrix.
-    pub fn base_weight(&self, site: &Site) -> Option<Tensor> {
+    /// The base weight of one targeted matrix, as held (in the model's format).
+    pub fn base_weight(&self, site: &Site) -> Option<Arc<PackedWeight>> {
         let layer = self.layers.get(site.layer)?;
         layer
             .linears()
             .into_iter()
             .find(|l| l.site() == *site)
-            .and_then(|l| l.weight().ok())
+            .map(|l| l.packed_weight().clone())
+    }
+
+    /// Bytes of every weight held: the matrices (and the word table) in the model's format,
+    /// the rest in f32.
+    pub fn resident_bytes(&self) -> usize {
+        let e = &self.embeddings;
+        let small = |t: &Tensor| t.elem_count() * 4;
+        let mut n = e.word.resident_bytes()
+            + small(e.position.embeddings())
+            + small(e.token_type.embeddings())
+            + 2 * self.config.hidden_size * 4;
+        for l in &self.layers {
+            n += l
+                .linears()
+                .iter()
+                .map(|x| x.resident_bytes())
+                .sum::<usize>();
+            n += 4 * self.config.hidden_size * 4;
+        }
+        n
     }
 }
 

@@ -8,10 +8,11 @@ use std::sync::Arc;
 use anyhow::Context;
 use candle_core::{Device, Tensor};
 use switchyard_adapters::{Adapter, BaseSpec, base_fingerprint};
+use switchyard_kernels::WeightFormat;
 use tokenizers::{Tokenizer, TruncationParams};
 
 use crate::model::bert::{BertConfig, BertModel, mean_pool_normalise};
-use crate::model::checkpoint::{Checkpoint, load_tokenizer};
+use crate::model::checkpoint::{Checkpoint, Weights, load_tokenizer};
 use crate::model::linear::RowAdapters;
 
 /// An encoder checkpoint ready to embed text.
@@ -22,16 +23,22 @@ pub struct Embedder {
     untruncated: Tokenizer,
     spec: BaseSpec,
     max_tokens: usize,
+    format: WeightFormat,
 }
 
 impl Embedder {
-    /// Loads config.json, the weights and tokenizer.json from `dir`.
+    /// Loads config.json, the weights (as f32) and tokenizer.json from `dir`.
     pub fn load(dir: &Path) -> anyhow::Result<Self> {
+        Self::load_as(dir, WeightFormat::F32)
+    }
+
+    /// Loads config.json, the weights held in `format` and tokenizer.json from `dir`.
+    pub fn load_as(dir: &Path, format: WeightFormat) -> anyhow::Result<Self> {
         let ckpt = Checkpoint::open(dir)?;
         let cfg: BertConfig = serde_json::from_value(ckpt.config.clone()).with_context(|| {
             format!("reading {}/config.json as an encoder config", dir.display())
         })?;
-        let model = BertModel::new(&cfg, ckpt.var_builder())
+        let model = BertModel::new(&cfg, &Weights::new(&ckpt, format))
             .with_context(|| format!("building the encoder from {}", dir.display()))?;
         let fingerprint = base_fingerprint(ckpt.model_type(), &ckpt.tensor_shapes());
         let spec = model.spec(ckpt.model_type(), fingerprint);
@@ -55,7 +62,13 @@ impl Embedder {
             untruncated,
             spec,
             max_tokens,
+            format,
         })
+    }
+
+    /// The format the base weights are held in.
+    pub fn weights_format(&self) -> WeightFormat {
+        self.format
     }
 
     pub fn spec(&self) -> &BaseSpec {

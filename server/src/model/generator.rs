@@ -6,9 +6,10 @@ use std::sync::Arc;
 
 use anyhow::Context;
 use switchyard_adapters::{Adapter, BaseSpec, base_fingerprint};
+use switchyard_kernels::WeightFormat;
 use tokenizers::Tokenizer;
 
-use crate::model::checkpoint::{Checkpoint, load_tokenizer};
+use crate::model::checkpoint::{Checkpoint, Weights, load_tokenizer};
 use crate::model::llama::{KvCache, LlamaConfig, LlamaModel};
 use crate::model::rows_for_sequences;
 use crate::model::sampling::{Sampler, SamplingParams};
@@ -29,15 +30,22 @@ pub struct Generator {
     model: LlamaModel,
     tokenizer: Tokenizer,
     spec: BaseSpec,
+    format: WeightFormat,
 }
 
 impl Generator {
+    /// Loads a decoder checkpoint with its weights as f32.
     pub fn load(dir: &Path) -> anyhow::Result<Self> {
+        Self::load_as(dir, WeightFormat::F32)
+    }
+
+    /// Loads a decoder checkpoint with its weights held in `format`.
+    pub fn load_as(dir: &Path, format: WeightFormat) -> anyhow::Result<Self> {
         let ckpt = Checkpoint::open(dir)?;
         let cfg: LlamaConfig = serde_json::from_value(ckpt.config.clone()).with_context(|| {
             format!("reading {}/config.json as a decoder config", dir.display())
         })?;
-        let model = LlamaModel::new(&cfg, ckpt.var_builder())
+        let model = LlamaModel::new(&cfg, &Weights::new(&ckpt, format))
             .with_context(|| format!("building the decoder from {}", dir.display()))?;
         let fingerprint = base_fingerprint(ckpt.model_type(), &ckpt.tensor_shapes());
         let spec = model.spec(ckpt.model_type(), fingerprint);
@@ -46,7 +54,13 @@ impl Generator {
             model,
             tokenizer,
             spec,
+            format,
         })
+    }
+
+    /// The format the base weights are held in.
+    pub fn weights_format(&self) -> WeightFormat {
+        self.format
     }
 
     pub fn spec(&self) -> &BaseSpec {

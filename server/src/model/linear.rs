@@ -16,6 +16,8 @@ use switchyard_adapters::tensors::{pack_tensor, unpack_tensor, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
 use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul_with};
 
+use crate::model::checkpoint::Weights;
+
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
 #[derive(Debug, Clone)]
 pub struct RowAdapters {
@@ -115,12 +117,8 @@ pub struct AdaptedLinear {
 }
 
 impl AdaptedLinear {
-    pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Result<Self> {
-        let weight = Arc::new(pack_tensor(&weight)?);
-        let bias = match bias {
-            Some(b) => Some(b.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?),
-            None => None,
-        };
+    /// A layer over a weight already packed (in any format) and an optional f32 bias.
+    pub fn new(site: Site, weight: PackedWeight, bias: Option<Vec<f32>>) -> Result<Self> {
         if let Some(b) = &bias
             && b.len() != weight.out_features()
         {
@@ -130,23 +128,38 @@ impl AdaptedLinear {
                 weight.out_features()
             );
         }
-        Ok(Self { site, weight, bias })
+        Ok(Self {
+            site,
+            weight: Arc::new(weight),
+            bias,
+        })
     }
 
-    /// Loads `weight [out, in]` and, where the checkpoint has one, `bias [out]`.
-    pub fn load(
-        site: Site,
-        in_dim: usize,
-        out_dim: usize,
-        vb: candle_nn::VarBuilder,
-    ) -> Result<Self> {
-        let weight = vb.get((out_dim, in_dim), "weight")?;
-        let bias = if vb.contains_tensor("bias") {
-            Some(vb.get(out_dim, "bias")?)
+    /// A layer over a `[out, in]` tensor, packed as f32 (tests and tools).
+    pub fn from_tensor(site: Site, weight: &Tensor, bias: Option<&Tensor>) -> Result<Self> {
+        let bias = match bias {
+            Some(b) => Some(b.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?),
+            None => None,
+        };
+        Self::new(site, pack_tensor(weight)?, bias)
+    }
+
+    /// Loads `weight [out, in]` in the checkpoint view's format and, where the checkpoint has
+    /// one, `bias [out]` in f32.
+    pub fn load(site: Site, in_dim: usize, out_dim: usize, w: &Weights<'_>) -> Result<Self> {
+        let weight = w.packed("weight", out_dim, in_dim)?;
+        let bias = if w.contains("bias") {
+            Some(w.tensor("bias", &[out_dim])?.to_vec1::<f32>()?)
         } else {
             None
         };
         Self::new(site, weight, bias)
+    }
+
+    /// The base weight as held (packed, in the model's format): what a merged variant of this
+    /// layer is built from.
+    pub fn packed_weight(&self) -> &Arc<PackedWeight> {
+        &self.weight
     }
 
     pub fn site(&self) -> Site {
@@ -156,6 +169,11 @@ impl AdaptedLinear {
     /// The base weight `[out, in]`, row-major: a new tensor, unpacked from the kernel's layout.
     pub fn weight(&self) -> Result<Tensor> {
         unpack_tensor(&self.weight)
+    }
+
+    /// Bytes held: the packed weight and the bias.
+    pub fn resident_bytes(&self) -> usize {
+        self.weight.resident_bytes() + self.bias.as_ref().map_or(0, |b| b.len() * 4)
     }
 
     pub fn shape(&self) -> (usize, usize) {

@@ -8,13 +8,16 @@
 
 use std::collections::BTreeMap;
 
+use std::sync::Arc;
+
 use candle_core::{DType, Result, Tensor};
-use candle_nn::{Embedding, Module as _, RmsNorm, VarBuilder};
+use candle_nn::{Module as _, RmsNorm};
 use serde::Deserialize;
-use switchyard_adapters::tensors::{pack_tensor, with_f32};
+use switchyard_adapters::tensors::with_f32;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{PackedWeight, axpy, dot, packed_matmul};
 
+use crate::model::checkpoint::Weights;
 use crate::model::linear::{AdaptedLinear, RowAdapters};
 
 /// Rope settings, as found in `rope_parameters` (newer checkpoints) or `rope_scaling` (older).
@@ -312,25 +315,25 @@ struct Block {
 }
 
 impl Block {
-    fn new(cfg: &LlamaConfig, layer: usize, vb: VarBuilder) -> Result<Self> {
+    fn new(cfg: &LlamaConfig, layer: usize, vb: &Weights<'_>) -> Result<Self> {
         let h = cfg.hidden_size;
         let d = cfg.head_dim();
         let q_out = cfg.num_attention_heads * d;
         let kv_out = cfg.kv_heads() * d;
         let i = cfg.intermediate_size;
-        let lin = |m: Module, inp: usize, out: usize, vb: VarBuilder| {
-            AdaptedLinear::load(Site::new(layer, m), inp, out, vb)
+        let lin = |m: Module, inp: usize, out: usize, name: &str| {
+            AdaptedLinear::load(Site::new(layer, m), inp, out, &vb.pp(name))
         };
         Ok(Self {
-            input_norm: candle_nn::rms_norm(h, cfg.rms_norm_eps, vb.pp("input_layernorm"))?,
-            q: lin(Module::AttnQ, h, q_out, vb.pp("self_attn.q_proj"))?,
-            k: lin(Module::AttnK, h, kv_out, vb.pp("self_attn.k_proj"))?,
-            v: lin(Module::AttnV, h, kv_out, vb.pp("self_attn.v_proj"))?,
-            o: lin(Module::AttnO, q_out, h, vb.pp("self_attn.o_proj"))?,
-            post_norm: candle_nn::rms_norm(h, cfg.rms_norm_eps, vb.pp("post_attention_layernorm"))?,
-            gate: lin(Module::MlpGate, h, i, vb.pp("mlp.gate_proj"))?,
-            up: lin(Module::MlpUp, h, i, vb.pp("mlp.up_proj"))?,
-            down: lin(Module::MlpDown, i, h, vb.pp("mlp.down_proj"))?,
+            input_norm: rms_norm(h, cfg.rms_norm_eps, &vb.pp("input_layernorm"))?,
+            q: lin(Module::AttnQ, h, q_out, "self_attn.q_proj")?,
+            k: lin(Module::AttnK, h, kv_out, "self_attn.k_proj")?,
+            v: lin(Module::AttnV, h, kv_out, "self_attn.v_proj")?,
+            o: lin(Module::AttnO, q_out, h, "self_attn.o_proj")?,
+            post_norm: rms_norm(h, cfg.rms_norm_eps, &vb.pp("post_attention_layernorm"))?,
+            gate: lin(Module::MlpGate, h, i, "mlp.gate_proj")?,
+            up: lin(Module::MlpUp, h, i, "mlp.up_proj")?,
+            down: lin(Module::MlpDown, i, h, "mlp.down_proj")?,
             heads: cfg.num_attention_heads,
             kv_heads: cfg.kv_heads(),
             head_dim: d,
@@ -465,21 +468,28 @@ fn attention(
     out
 }
 
+fn rms_norm(size: usize, eps: f64, w: &Weights<'_>) -> Result<RmsNorm> {
+    Ok(RmsNorm::new(w.tensor("weight", &[size])?, eps))
+}
+
 /// A Llama-family decoder.
 pub struct LlamaModel {
-    embed: Embedding,
+    /// The token embedding table `[vocab, hidden]`, held in the model's weight format and read
+    /// one row per token.
+    embed: Arc<PackedWeight>,
     blocks: Vec<Block>,
     norm: RmsNorm,
-    /// The output projection, packed for the projection kernel; with tied embeddings this is a
-    /// second (packed) copy of the embedding table.
-    lm_head: PackedWeight,
+    /// The output projection, packed for the projection kernel; with tied embeddings it is the
+    /// embedding table itself (one copy).
+    lm_head: Arc<PackedWeight>,
     rotary: Rotary,
     pub config: LlamaConfig,
 }
 
 impl LlamaModel {
-    /// Builds the decoder from `vb` at the checkpoint root (tensor names `model.*`, `lm_head.*`).
-    pub fn new(cfg: &LlamaConfig, vb: VarBuilder) -> Result<Self> {
+    /// Builds the decoder from `vb` at the checkpoint root (tensor names `model.*`, `lm_head.*`),
+    /// every matrix held in `vb.format`.
+    pub fn new(cfg: &LlamaConfig, vb: &Weights<'_>) -> Result<Self> {
         if !cfg.num_attention_heads.is_multiple_of(cfg.kv_heads()) {
             candle_core::bail!(
                 "config.json: num_attention_heads {} is not a multiple of num_key_value_heads {}",
@@ -488,17 +498,17 @@ impl LlamaModel {
             );
         }
         let m = vb.pp("model");
-        let embed = candle_nn::embedding(cfg.vocab_size, cfg.hidden_size, m.pp("embed_tokens"))?;
+        let (vocab, h) = (cfg.vocab_size, cfg.hidden_size);
+        let embed = Arc::new(m.pp("embed_tokens").packed("weight", vocab, h)?);
         let blocks = (0..cfg.num_hidden_layers)
-            .map(|i| Block::new(cfg, i, m.pp(format!("layers.{i}"))))
+            .map(|i| Block::new(cfg, i, &m.pp(format!("layers.{i}"))))
             .collect::<Result<Vec<_>>>()?;
-        let norm = candle_nn::rms_norm(cfg.hidden_size, cfg.rms_norm_eps, m.pp("norm"))?;
+        let norm = rms_norm(h, cfg.rms_norm_eps, &m.pp("norm"))?;
         let lm_head = if cfg.tie_word_embeddings {
-            embed.embeddings().clone()
+            embed.clone()
         } else {
-            vb.get((cfg.vocab_size, cfg.hidden_size), "lm_head.weight")?
+            Arc::new(vb.packed("lm_head.weight", vocab, h)?)
         };
-        let lm_head = pack_tensor(&lm_head)?;
         let rotary = Rotary::new(cfg)?;
         Ok(Self {
             embed,
@@ -550,8 +560,18 @@ impl LlamaModel {
             positions.extend((past..past + seq.len()).map(|p| p as u32));
         }
         let rows = ids.len();
-        let ids = Tensor::from_vec(ids, rows, &dev)?;
-        let mut x = self.embed.forward(&ids)?;
+        let h = self.config.hidden_size;
+        let mut table = vec![0f32; rows * h];
+        for (row, &id) in table.chunks_mut(h).zip(&ids) {
+            if id as usize >= self.config.vocab_size {
+                candle_core::bail!(
+                    "token id {id} is outside the vocabulary of {}",
+                    self.config.vocab_size
+                );
+            }
+            self.embed.row_into(id as usize, row);
+        }
+        let mut x = Tensor::from_vec(table, (rows, h), &dev)?;
         for (layer, block) in self.blocks.iter().enumerate() {
             x = block.forward(
                 layer,
@@ -622,20 +642,41 @@ impl LlamaModel {
         }
     }
 
-    pub fn base_weight(&self, site: &Site) -> Option<Tensor> {
+    /// The base weight of one targeted matrix, as held (in the model's format).
+    pub fn base_weight(&self, site: &Site) -> Option<Arc<PackedWeight>> {
         let block = self.blocks.get(site.layer)?;
         block
             .linears()
             .into_iter()
             .find(|l| l.site() == *site)
-            .and_then(|l| l.weight().ok())
+            .map(|l| l.packed_weight().clone())
+    }
+
+    /// Bytes of every weight held: the matrices in the model's format (the embedding table
+    /// once, also when the output head is tied to it), norms in f32.
+    pub fn resident_bytes(&self) -> usize {
+        let mut n = self.embed.resident_bytes() + self.config.hidden_size * 4;
+        if !Arc::ptr_eq(&self.embed, &self.lm_head) {
+            n += self.lm_head.resident_bytes();
+        }
+        for b in &self.blocks {
+            n += b
+                .linears()
+                .iter()
+                .map(|l| l.resident_bytes())
+                .sum::<usize>();
+            n += 2 * self.config.hidden_size * 4;
+        }
+        n
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::model::checkpoint::Checkpoint;
     use candle_core::Device;
+    use switchyard_kernels::WeightFormat;
 
     fn values(n: usize, seed: u64, scale: f32) -> Vec<f32> {
         let mut x = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
@@ -684,11 +725,8 @@ mod tests {
             put(format!("{p}.input_layernorm.weight"), &[32], 1.0);
             put(format!("{p}.post_attention_layernorm.weight"), &[32], 1.0);
         }
-        LlamaModel::new(
-            &cfg,
-            VarBuilder::from_tensors(tensors, DType::F32, &Device::Cpu),
-        )
-        .unwrap()
+        let ckpt = Checkpoint::from_tensors(serde_json::Value::Null, &tensors).unwrap();
+        LlamaModel::new(&cfg, &Weights::new(&ckpt, WeightFormat::F32)).unwrap()
     }
 
     fn max_abs(a: &[f32], b: &[f32]) -> f32 {

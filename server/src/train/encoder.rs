@@ -11,6 +11,7 @@ use candle_core::{D, DType, Device, Tensor, Var};
 use candle_nn::VarBuilder;
 use rand::Rng;
 use switchyard_adapters::{Module, Site};
+use switchyard_kernels::{PackedWeight, WeightFormat};
 
 use crate::model::bert::{BertConfig, mean_pool_normalise};
 use crate::model::checkpoint::Checkpoint;
@@ -134,10 +135,30 @@ pub struct Deltas<'a> {
     pub scale: f64,
 }
 
+/// A matrix as the serving path holds it in `format` (packed by the kernels' rounding rules),
+/// back in f32; unchanged for f32.
+fn as_held(w: Tensor, format: WeightFormat) -> candle_core::Result<Tensor> {
+    if format == WeightFormat::F32 {
+        return Ok(w);
+    }
+    let (out, inp) = w.dims2()?;
+    let values = w.flatten_all()?.to_vec1::<f32>()?;
+    let packed = PackedWeight::pack_as(&values, out, inp, format)
+        .map_err(|e| candle_core::Error::Msg(e.to_string()))?;
+    Tensor::from_vec(packed.unpack(), (out, inp), w.device())
+}
+
 impl FrozenEncoder {
     /// Reads the encoder weights of a checkpoint (a `bert.` prefix is skipped, as the serving
     /// encoder does).
     pub fn load(ckpt: &Checkpoint) -> anyhow::Result<Self> {
+        Self::load_as(ckpt, WeightFormat::F32)
+    }
+
+    /// [`FrozenEncoder::load`] with the matrices (the projections and the word table) held as
+    /// the serving encoder holds them in `format`: quantised by the same rules and back to f32,
+    /// so an adapter is trained against the base it will be served on.
+    pub fn load_as(ckpt: &Checkpoint, format: WeightFormat) -> anyhow::Result<Self> {
         let cfg: BertConfig = serde_json::from_value(ckpt.config.clone()).with_context(|| {
             format!(
                 "reading {}/config.json as an encoder config",
@@ -150,7 +171,7 @@ impl FrozenEncoder {
                 cfg.hidden_act
             );
         }
-        let vb = ckpt.var_builder();
+        let vb = ckpt.var_builder()?;
         let vb = if vb.contains_tensor("bert.embeddings.word_embeddings.weight") {
             vb.pp("bert")
         } else {
@@ -160,7 +181,7 @@ impl FrozenEncoder {
         let i = cfg.intermediate_size;
         let linear = |vb: VarBuilder, inp: usize, out: usize| -> candle_core::Result<Linear> {
             Ok(Linear {
-                weight: vb.get((out, inp), "weight")?,
+                weight: as_held(vb.get((out, inp), "weight")?, format)?,
                 bias: vb.get(out, "bias")?,
             })
         };
@@ -186,7 +207,10 @@ impl FrozenEncoder {
             });
         }
         Ok(Self {
-            word: e.get((cfg.vocab_size, h), "word_embeddings.weight")?,
+            word: as_held(
+                e.get((cfg.vocab_size, h), "word_embeddings.weight")?,
+                format,
+            )?,
             position: e.get(
                 (cfg.max_position_embeddings, h),
                 "position_embeddings.weight",

@@ -62,10 +62,12 @@ pub struct EvaluateArgs {
     /// Rows per forward pass.
     #[arg(long, default_value_t = 32)]
     pub batch: usize,
+    #[arg(long, default_value = "f32", env = "SWITCHYARD_MODEL_WEIGHTS", help = crate::commands::WEIGHTS_HELP)]
+    pub weights: switchyard_kernels::WeightFormat,
 }
 
 pub fn run(args: &EvaluateArgs, mut out: impl Write) -> anyhow::Result<()> {
-    let embedder = Embedder::load(&args.model)
+    let embedder = Embedder::load_as(&args.model, args.weights)
         .with_context(|| format!("loading the base model {}", args.model.display()))?;
     let (adapter, head, what) = match &args.file {
         Some(file) => {

@@ -76,6 +76,8 @@ pub struct TrainArgs {
     /// Where to write the package (.safetensors).
     #[arg(long)]
     pub out: PathBuf,
+    #[arg(long, default_value = "f32", env = "SWITCHYARD_MODEL_WEIGHTS", help = crate::commands::WEIGHTS_HELP)]
+    pub weights: switchyard_kernels::WeightFormat,
 }
 
 /// Parses a comma-separated `--labels` value.
@@ -138,7 +140,7 @@ pub fn run(args: &TrainArgs, mut out: impl Write) -> anyhow::Result<()> {
     let dataset = read_data(&args.data, args.labels.as_deref())?;
     let split = data::split(&dataset, args.holdout, args.seed)?;
 
-    let embedder = Embedder::load(&args.model)
+    let embedder = Embedder::load_as(&args.model, args.weights)
         .with_context(|| format!("loading the base model {}", args.model.display()))?;
     let ckpt = Checkpoint::open(&args.model)?;
     if ckpt.model_type() != "bert" {
@@ -148,7 +150,7 @@ pub fn run(args: &TrainArgs, mut out: impl Write) -> anyhow::Result<()> {
             ckpt.model_type()
         );
     }
-    let encoder = FrozenEncoder::load(&ckpt)?;
+    let encoder = FrozenEncoder::load_as(&ckpt, args.weights)?;
     drop(ckpt);
     let texts: Vec<&str> = dataset.examples.iter().map(|e| e.text.as_str()).collect();
     let ids = embedder.tokenize(&texts)?;
