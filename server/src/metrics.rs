@@ -175,7 +175,7 @@ impl Metrics {
         );
         let base_weights = Family::<BaseLabels, Gauge>::default();
         registry.register(
-            "base_weights",
+            "base_weights_info",
             "The base model's weight format and the kernel path in use (value 1; one series)",
             base_weights.clone(),
         );

@@ -221,6 +221,117 @@ fn minilm_batch_mixing_four_adapters_and_base_rows_equals_each_row_alone() {
     }
 }
 
+/// Least cosine, sentence by sentence, between embeddings in a reduced weight format and the
+/// f32 references, for each format `switchyard embed --weights` offers: `(format, base and
+/// unmerged adapters, merged adapters)`. bf16 and int8 are held to the bars (0.999 and
+/// 0.995). int4 is held to what its rounding gives on MiniLM today (measured least cosines:
+/// int4 0.9397 base, 0.938 unmerged, 0.879 merged; int4-zero 0.965, 0.962, 0.938), which is
+/// below the goal of 0.98 (the README says so): plain round-to-nearest in groups of
+/// 32 inputs loses 3-6% cosine on this 384-wide model, spread over every layer. A merged
+/// variant rounds `W0 + s B A` to the format once more, which costs int4 most.
+const FORMAT_FLOORS: [(&str, f64, f64); 5] = [
+    ("bf16", 0.999, 0.999),
+    ("int8", 0.995, 0.995),
+    ("int8-g32", 0.995, 0.995),
+    ("int4", 0.93, 0.87),
+    ("int4-zero", 0.955, 0.93),
+];
+
+fn min_cosine(got: &[Vec<f32>], want: &[Vec<f32>]) -> f64 {
+    assert_eq!(got.len(), want.len(), "row counts differ");
+    got.iter()
+        .zip(want)
+        .map(|(g, w)| cosine(g, w))
+        .fold(f64::INFINITY, f64::min)
+}
+
+/// MiniLM with its weights held in bf16, int8 and int4 (converted at load from the
+/// checkpoint's f32), against the f32 references: the sentence-transformers embeddings
+/// (minilm-embeddings.json "embeddings") and, with each adapter fixture, the torch embeddings
+/// through merged f32 weights ("adapters"/<name>/"embeddings"). Within each format, a mixed
+/// batch of four adapters and base rows equals each row alone, and the merged variant (held in
+/// the base's format, so merging rounds W0 + s B A once more) stays as close to the torch
+/// reference as the unmerged path does.
+#[test]
+fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
+    use switchyard_kernels::WeightFormat;
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let path = switchyard_kernels::dispatch::active();
+    for (name, floor, merged_floor) in FORMAT_FLOORS {
+        let format = WeightFormat::parse(name).unwrap();
+        let e = Embedder::load_as(&base_model_dir(), format).unwrap();
+        assert_eq!(e.weights_format(), format);
+        let f32_bytes = embedder().model().resident_bytes();
+        let bytes = e.model().resident_bytes();
+        assert!(
+            bytes < f32_bytes * 6 / 10,
+            "{name}: the weights hold {bytes} bytes, f32 {f32_bytes}"
+        );
+
+        let base = e.embed(&refs, &vec![None; refs.len()]).unwrap();
+        let c = min_cosine(&base, &matrix(&embeddings_fixture()["embeddings"]));
+        println!(
+            "{name} on {path}: base vs sentence-transformers f32: least cosine {c:.6} (floor {floor})"
+        );
+        assert!(c >= floor, "{name}: base least cosine {c} < {floor}");
+
+        let tokens = e.tokenize(&refs).unwrap();
+        let t = switchyard_server::model::embedder::padded_len(&tokens);
+        for adapter_name in ["minilm-qv-a", "minilm-qv-b", "minilm-all"] {
+            let adapter = load_adapter(
+                &fixtures().join(format!("{adapter_name}.safetensors")),
+                e.spec(),
+            )
+            .unwrap();
+            let want = matrix(&embeddings_fixture()["adapters"][adapter_name]["embeddings"]);
+            let unmerged = e
+                .embed_ids(&tokens, &vec![Some(adapter.clone()); tokens.len()])
+                .unwrap();
+            let merged = Arc::new(
+                MergedWeights::build_packed(&adapter, |s| e.model().base_weight(s)).unwrap(),
+            );
+            let via_merged = e
+                .embed_rows(&tokens, &RowAdapters::merged(merged, tokens.len() * t))
+                .unwrap();
+            let (cu, cm) = (min_cosine(&unmerged, &want), min_cosine(&via_merged, &want));
+            println!(
+                "{name} on {path}: {adapter_name} vs torch f32 merged: least cosine {cu:.6} unmerged, {cm:.6} merged"
+            );
+            assert!(
+                cu >= floor,
+                "{name} {adapter_name}: unmerged least cosine {cu} < {floor}"
+            );
+            assert!(
+                cm >= merged_floor,
+                "{name} {adapter_name}: merged least cosine {cm} < {merged_floor}"
+            );
+        }
+
+        let adapters = [
+            Some(minilm_adapter("minilm-qv-a")),
+            None,
+            Some(minilm_adapter("minilm-qv-b")),
+            Some(minilm_adapter("minilm-all")),
+            Some(random_adapter(&e, 99)),
+            None,
+            Some(minilm_adapter("minilm-qv-a")),
+            Some(minilm_adapter("minilm-all")),
+        ];
+        let mixed = e.embed(&refs, &adapters).unwrap();
+        for (i, adapter) in adapters.iter().enumerate() {
+            let alone = e
+                .embed(&refs[i..=i], std::slice::from_ref(adapter))
+                .unwrap();
+            let d = max_abs(&mixed[i..=i], &alone);
+            assert!(
+                d <= 1e-5,
+                "{name} row {i}: mixed batch differs from the row alone by {d}"
+            );
+        }
+    }
+}
+
 /// A seeded random (uniform in ±0.15) rank-2 adapter on attn.k and mlp.up of every layer, built in memory.
 fn random_adapter(e: &Embedder, seed: u64) -> Arc<Adapter> {
     use rand::{Rng, SeedableRng};

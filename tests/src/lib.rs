@@ -65,6 +65,7 @@ pub fn run_switchyard(args: &[&str], stdin: &str, cwd: &Path) -> Output {
         .args(args)
         .current_dir(cwd)
         .env_remove("SWITCHYARD_MODEL_DIR")
+        .env_remove("SWITCHYARD_MODEL_WEIGHTS")
         .stdin(Stdio::piped())
         .stdout(Stdio::piped())
         .stderr(Stdio::piped())

@@ -3,7 +3,7 @@
 //! transformers' greedy tokens of the tiny Llama decoder (tests/reference/generate.py).
 
 use serde_json::json;
-use switchyard_tests::embeddings::{EmbeddingReference, assert_embeddings_close};
+use switchyard_tests::embeddings::{EmbeddingReference, assert_embeddings_close, cosine, rows};
 use switchyard_tests::fixtures;
 use switchyard_tests::read_json;
 use switchyard_tests::server::{Auth, ServerSetup};
@@ -32,6 +32,53 @@ fn embed_with_base_and_two_uploaded_adapters_equals_the_reference_embeddings() {
         }
         assert_embeddings_close(&answer["embeddings"], reference.adapter(fixture), fixture);
     }
+}
+
+/// `model.weights = "int8"` in the config: the server holds the base model in int8 (converted
+/// at load from the checkpoint's f32), its embeddings stay within the int8 bar (cosine >= 0.995)
+/// of the sentence-transformers f32 reference (minilm-embeddings.json), and the start-up log,
+/// `/admin/adapters` and `/metrics` name the format and the kernel path this CPU runs.
+#[test]
+fn a_server_with_int8_weights_embeds_close_to_the_reference_and_names_its_format() {
+    let reference = EmbeddingReference::load();
+    let server = ServerSetup::encoder()
+        .set("model", "weights", "\"int8\"")
+        .start();
+    let texts = reference.texts();
+    let base = server.embed(json!({"adapter": "base"}), &texts).ok_json();
+    let got = rows(&base["embeddings"]);
+    assert_eq!(got.len(), reference.base().len());
+    for (i, (g, w)) in got.iter().zip(reference.base()).enumerate() {
+        let c = cosine(g, w);
+        assert!(c >= 0.995, "int8 server, sentence {i}: cosine {c} < 0.995");
+    }
+
+    let kernels = switchyard_kernels::Path::best().name();
+    let listing = server.get("/admin/adapters", Auth::Admin).ok_json();
+    assert_eq!(listing["base"]["weights"], "int8", "{listing}");
+    assert_eq!(listing["base"]["kernels"], kernels, "{listing}");
+    // MiniLM holds 90.3 MB of f32 weights; in int8 about a quarter of that.
+    let bytes = listing["base"]["weight_bytes"].as_u64().unwrap();
+    assert!((15_000_000..40_000_000).contains(&bytes), "{listing}");
+
+    let page = server.get("/metrics", Auth::Admin);
+    assert_eq!(page.status, 200);
+    let info = format!("switchyard_base_weights_info{{weights=\"int8\",kernels=\"{kernels}\"}} 1");
+    assert!(page.body.contains(&info), "no {info} in\n{}", page.body);
+    assert!(
+        page.body
+            .contains(&format!("switchyard_base_weight_bytes {bytes}")),
+        "{}",
+        page.body
+    );
+
+    let log = server.log();
+    assert!(
+        log.contains("base model loaded")
+            && log.contains("weights=int8")
+            && log.contains(&format!("kernels={kernels}")),
+        "{log}"
+    );
 }
 
 /// The tiny decoder's reference: its prompt, and the 16 tokens transformers picks greedily (the
