@@ -1,0 +1,189 @@
+#!/usr/bin/env python3
+"""Writes fixtures/weight-formats.json: the reference for switchyard's reduced weight formats.
+
+    tests/reference/setup-venv.sh && tests/reference/.venv/bin/python tests/reference/weight_formats.py
+
+For each format it rounds the matrices switchyard holds in that format (every projection, the
+token embedding table, and an untied output head) by switchyard's rules, written again here in
+numpy float32 arithmetic from kernels/src/pack/quant.rs (round half to even throughout, scales
+rounded to f16 before the values are computed against them), puts the rounded values back into
+the f32 model, and runs plain f32 torch: sentence-transformers all-MiniLM-L6-v2 on the reference
+sentences (alone and with each MiniLM adapter fixture merged in f32, which equals switchyard's
+unmerged path: rounded W0 plus the exact low-rank term) and transformers' LlamaForCausalLM for the
+two tiny decoders (logits of the reference input, 16 greedy tokens). The Rust check
+(server/tests/reference_checks.rs) then compares only the arithmetic: the rounding is the same.
+
+It reads minilm-embeddings.json and the tiny-llama*-reference.json (sentences, token ids, adapter
+files) that generate.py wrote, so run generate.py first when those change. Two runs on the same
+library versions write the same file.
+"""
+
+from __future__ import annotations
+
+import copy
+import sys
+from pathlib import Path
+
+import numpy as np
+import torch
+from safetensors.torch import load_file
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import generate as g  # noqa: E402  (shares the fixture writers, module maps and versions)
+
+FORMATS = ["bf16", "int8", "int8-g32", "int4", "int4-zero", "int4-g64-zero-f32"]
+
+F32 = np.float32
+
+
+def f16_round(s: np.ndarray) -> np.ndarray:
+    """f32 scales rounded to IEEE half (nearest, ties to even) and back; refuses an overflow as
+    switchyard does."""
+    h = s.astype(np.float16)
+    assert np.isfinite(h).all(), "a scale overflows f16"
+    return h.astype(F32)
+
+
+def groups(w: np.ndarray, size: int):
+    """(start, end) of each run of `size` inputs along a row (the last may be shorter)."""
+    inp = w.shape[1]
+    return [(a, min(a + size, inp)) for a in range(0, inp, size)]
+
+
+def int8(w: np.ndarray, group: int | None) -> np.ndarray:
+    out = np.empty_like(w)
+    for a, b in groups(w, group or w.shape[1]):
+        part = w[:, a:b]
+        s = (np.abs(part).max(axis=1) / F32(127)).astype(F32)[:, None]
+        safe = np.where(s == 0, F32(1), s)
+        q = np.clip(np.rint((part / safe).astype(F32)), -127, 127)
+        q = np.where(s == 0, F32(0), q)
+        out[:, a:b] = (q.astype(F32) * s).astype(F32)
+    return out
+
+
+def int4(w: np.ndarray, group: int, zero_point: bool, f16: bool) -> np.ndarray:
+    out = np.empty_like(w)
+    for a, b in groups(w, group):
+        part = w[:, a:b]
+        if zero_point:
+            lo = np.minimum(part.min(axis=1), F32(0))
+            hi = np.maximum(part.max(axis=1), F32(0))
+            s = ((hi - lo).astype(F32) / F32(15)).astype(F32)
+        else:
+            s = (np.abs(part).max(axis=1) / F32(7)).astype(F32)
+        if f16:
+            s = f16_round(s)
+        s = s[:, None]
+        safe = np.where(s == 0, F32(1), s)
+        if zero_point:
+            z = np.clip(np.rint((-lo[:, None] / safe).astype(F32)), 0, 15)
+            q = np.clip(np.rint((part / safe).astype(F32)) + z, 0, 15)
+            v = (q - z).astype(F32)
+        else:
+            v = np.clip(np.rint((part / safe).astype(F32)), -8, 7).astype(F32)
+        v = np.where(s == 0, F32(0), v)
+        out[:, a:b] = (v * s).astype(F32)
+    return out
+
+
+def rounded(w: torch.Tensor, fmt: str) -> torch.Tensor:
+    """The values switchyard holds for the f32 matrix `w` in `fmt`."""
+    if fmt == "bf16":
+        return w.to(torch.bfloat16).to(torch.float32)
+    a = w.detach().to(torch.float32).numpy().astype(F32)
+    if fmt == "int8":
+        r = int8(a, None)
+    elif fmt == "int8-g32":
+        r = int8(a, 32)
+    elif fmt == "int4":
+        r = int4(a, 32, zero_point=False, f16=True)
+    elif fmt == "int4-zero":
+        r = int4(a, 32, zero_point=True, f16=True)
+    elif fmt == "int4-g64-zero-f32":
+        r = int4(a, 64, zero_point=True, f16=False)
+    else:
+        raise ValueError(fmt)
+    return torch.from_numpy(r)
+
+
+@torch.no_grad()
+def round_in_place(params, fmt: str) -> None:
+    for p in params:
+        p.copy_(rounded(p, fmt))
+
+
+def adapter_tensors(path: Path) -> dict:
+    return {k: v.to(torch.float32) for k, v in load_file(str(path)).items()}
+
+
+def minilm(base_dir: Path) -> dict:
+    ref = g.json.loads((g.FIXTURES / "minilm-embeddings.json").read_text())
+    sentences = ref["sentences"]
+    st = g.SentenceTransformer(str(base_dir), device="cpu", local_files_only=True).eval()
+    out = {}
+    for fmt in FORMATS:
+        m = copy.deepcopy(st)
+        bert = m[0].auto_model
+        round_in_place([lin.weight for lin in g.bert_linears(m).values()]
+                       + [bert.embeddings.word_embeddings.weight], fmt)
+        base = g.encode(m, sentences)
+        entry = {"embeddings": g.f32_list(base), "adapters": {}}
+        for name, a in ref["adapters"].items():
+            adapted = copy.deepcopy(m)
+            g.merge_adapter(g.bert_linears(adapted), adapter_tensors(g.FIXTURES / a["file"]),
+                            a["rank"], a["alpha"])
+            entry["adapters"][name] = g.f32_list(g.encode(adapted, sentences))
+            del adapted
+        cos = (base * torch.tensor(ref["embeddings"])).sum(dim=1)
+        print(f"[minilm] {fmt}: least cosine to the f32 embeddings {float(cos.min()):.6f}")
+        out[fmt] = entry
+        del m
+    return out
+
+
+def tiny(name: str) -> dict:
+    ref = g.json.loads((g.FIXTURES / f"{name}-reference.json").read_text())
+    model = g.LlamaForCausalLM.from_pretrained(str(g.FIXTURES / name), attn_implementation="eager",
+                                               local_files_only=True).eval()
+    out = {}
+    for fmt in FORMATS:
+        m = copy.deepcopy(model)
+        params = [lin.weight for lin in g.llama_linears(m).values()] + [m.model.embed_tokens.weight]
+        if not m.config.tie_word_embeddings:
+            params.append(m.lm_head.weight)
+        else:
+            assert m.lm_head.weight.data_ptr() == m.model.embed_tokens.weight.data_ptr()
+        round_in_place(params, fmt)
+        logits = g.logits_of(m, ref["input_ids"])
+        greedy, _ = g.greedy(m, ref["prompt_ids"])
+        agree = next((i for i, (x, y) in enumerate(zip(greedy, ref["greedy"])) if x != y), len(greedy))
+        print(f"[{name}] {fmt}: greedy agrees with f32 for {agree} of {len(greedy)} tokens")
+        out[fmt] = {"logits": g.f32_list(logits), "greedy": greedy}
+        del m
+    return out
+
+
+def main() -> None:
+    torch.set_num_threads(g.THREADS)
+    torch.use_deterministic_algorithms(True)
+    g.transformers.logging.set_verbosity_error()
+    base_dir = g.resolve_base_model_dir()
+    result = {
+        "generated_by": g.versions(),
+        "rules": "kernels/src/pack/quant.rs, rewritten in numpy float32 in tests/reference/weight_formats.py",
+        "held_in_format": "every projection, the token embedding table, an untied output head; "
+                          "norms, biases, position tables and adapter factors stay f32",
+        "formats": FORMATS,
+        "minilm": minilm(base_dir),
+        "tiny-llama": tiny("tiny-llama"),
+        "tiny-llama-bias-tied": tiny("tiny-llama-bias-tied"),
+    }
+    result["generated_by"]["script"] = "tests/reference/weight_formats.py"
+    g.dump_json(result, g.FIXTURES / "weight-formats.json")
+    print(f"[files] {g.FIXTURES / 'weight-formats.json'} "
+          f"{(g.FIXTURES / 'weight-formats.json').stat().st_size} bytes")
+
+
+if __name__ == "__main__":
+    main()
