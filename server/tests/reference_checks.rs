@@ -423,6 +423,31 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
     }
 }
 
+/// MiniLM held in bf16 against torch running it in bf16 (`model.to(torch.bfloat16)`, the peer a
+/// bf16 user compares with; fixtures/weight-formats.json "minilm-torch-bf16"), base and with each
+/// adapter fixture (merged in f32 before torch's cast; unmerged f32 factors here): cosine >=
+/// 0.9999, the bar. torch rounds activations to bf16 too, switchyard keeps them f32
+/// (except for the inputs of bf16 products on the avx512-bf16 path).
+#[test]
+fn minilm_in_bf16_stays_close_to_torch_running_it_in_bf16() {
+    let fx = read_json(&fixtures().join("weight-formats.json"));
+    let want = &fx["minilm-torch-bf16"];
+    let path = switchyard_kernels::dispatch::active();
+    let s = sentences();
+    let refs: Vec<&str> = s.iter().map(String::as_str).collect();
+    let e = embedder_as("bf16");
+    let mut cases = vec![("base".to_owned(), None, matrix(&want["embeddings"]))];
+    for (adapter, rows) in want["adapters"].as_object().unwrap() {
+        cases.push((adapter.clone(), Some(minilm_adapter(adapter)), matrix(rows)));
+    }
+    for (what, adapter, rows) in cases {
+        let got = e.embed(&refs, &vec![adapter; refs.len()]).unwrap();
+        let c = min_cosine(&got, &rows);
+        println!("bf16 on {path}: MiniLM {what} vs torch bf16: least cosine {c:.6}");
+        assert!(c >= 0.9999, "bf16 {what}: least cosine to torch bf16 {c}");
+    }
+}
+
 /// A seeded random (uniform in ±0.15) rank-2 adapter on attn.k and mlp.up of every layer, built in memory.
 fn random_adapter(e: &Embedder, seed: u64) -> Arc<Adapter> {
     use rand::{Rng, SeedableRng};

@@ -12,6 +12,9 @@ sentences (alone and with each MiniLM adapter fixture merged in f32, which equal
 unmerged path: rounded W0 plus the exact low-rank term) and transformers' LlamaForCausalLM for the
 two tiny decoders (logits of the reference input, 16 greedy tokens). The Rust check
 (server/tests/reference_checks.rs) then compares only the arithmetic: the rounding is the same.
+It also writes MiniLM as torch runs it in bf16 (`model.to(torch.bfloat16)`), the peer a bf16
+user would compare with; torch picks its bf16 kernels by CPU, so those numbers may differ in the
+last bits on another machine.
 
 It reads minilm-embeddings.json and the tiny-llama*-reference.json (sentences, token ids, adapter
 files) that generate.py wrote, so run generate.py first when those change. Two runs on the same
@@ -142,6 +145,28 @@ def minilm(base_dir: Path) -> dict:
     return out
 
 
+@torch.no_grad()
+def minilm_torch_bf16(base_dir: Path) -> dict:
+    """MiniLM run by torch in bf16 (`model.to(torch.bfloat16)`: weights, activations and
+    arithmetic in bf16), alone and with each adapter merged in f32 before the cast."""
+    ref = g.json.loads((g.FIXTURES / "minilm-embeddings.json").read_text())
+    sentences = ref["sentences"]
+    st = g.SentenceTransformer(str(base_dir), device="cpu", local_files_only=True).eval()
+    out = {"embeddings": g.f32_list(g.encode(copy.deepcopy(st).to(torch.bfloat16), sentences)),
+           "adapters": {}}
+    for name, a in ref["adapters"].items():
+        adapted = copy.deepcopy(st)
+        g.merge_adapter(g.bert_linears(adapted), adapter_tensors(g.FIXTURES / a["file"]),
+                        a["rank"], a["alpha"])
+        out["adapters"][name] = g.f32_list(g.encode(adapted.to(torch.bfloat16), sentences))
+        del adapted
+    got, want = torch.tensor(out["embeddings"]), torch.tensor(ref["embeddings"])
+    # Normalised in bf16, these rows are unit length only to about 3 digits: divide by the norms.
+    cos = (got * want).sum(dim=1) / (got.norm(dim=1) * want.norm(dim=1))
+    print(f"[minilm] torch bf16: least cosine to the f32 embeddings {float(cos.min()):.6f}")
+    return out
+
+
 def tiny(name: str) -> dict:
     ref = g.json.loads((g.FIXTURES / f"{name}-reference.json").read_text())
     model = g.LlamaForCausalLM.from_pretrained(str(g.FIXTURES / name), attn_implementation="eager",
@@ -176,6 +201,7 @@ def main() -> None:
                           "norms, biases, position tables and adapter factors stay f32",
         "formats": FORMATS,
         "minilm": minilm(base_dir),
+        "minilm-torch-bf16": minilm_torch_bf16(base_dir),
         "tiny-llama": tiny("tiny-llama"),
         "tiny-llama-bias-tied": tiny("tiny-llama-bias-tied"),
     }
