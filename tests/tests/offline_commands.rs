@@ -495,6 +495,35 @@ fn checkpoints_in_bf16_f16_and_shards_load_and_embed_as_the_f32_file_does() {
     let (whole, _) = embed_with_weights(&base_model_dir(), "f32");
     assert_eq!(embed_with_weights(&sharded, "f32").0, whole);
 
+    // An index that names the wrong shard for a tensor is refused, naming the index and tensor.
+    let index_path = sharded.join("model.safetensors.index.json");
+    let mut index: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&index_path).unwrap()).unwrap();
+    let wrong = "model-00002-of-00003.safetensors";
+    let moved = index["weight_map"]
+        .as_object()
+        .unwrap()
+        .iter()
+        .find(|(_, f)| *f != wrong)
+        .map(|(t, _)| t.clone())
+        .unwrap();
+    index["weight_map"][&moved] = wrong.into();
+    std::fs::write(&index_path, index.to_string()).unwrap();
+    let out = run_switchyard(
+        &["embed", "--model", sharded.to_str().unwrap()],
+        "hello\n",
+        tmp.path(),
+    );
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{stderr}");
+    assert!(
+        stderr.contains("model.safetensors.index.json")
+            && stderr.contains(&format!(
+                "tensor {moved} is listed in {wrong}, which does not hold it"
+            )),
+        "{stderr}"
+    );
+
     let bf16 = tmp.path().join("bf16");
     minilm_copy(&bf16, "BF16", 2);
     let (from_bf16, stderr) = embed_with_weights(&bf16, "bf16");
