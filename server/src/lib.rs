@@ -8,4 +8,5 @@ pub mod http;
 pub mod metrics;
 pub mod model;
 pub mod splits;
+pub(crate) mod sync;
 pub mod train;

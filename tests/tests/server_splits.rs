@@ -194,3 +194,142 @@ fn split_weighted_80_20_over_2000_subjects_holds_its_weights_and_keeps_each_subj
         );
     }
 }
+
+/// `PUT /admin/splits/{name}` with `arms`, as the admin.
+fn put_split(server: &Server, name: &str, arms: Value) -> switchyard_tests::server::Reply {
+    server.request(
+        "PUT",
+        &format!("/admin/splits/{name}"),
+        Auth::Admin,
+        Some((
+            "application/json",
+            json!({ "arms": arms }).to_string().as_bytes(),
+        )),
+    )
+}
+
+/// Sends requests through split `split` with subjects `prefix-0`, `prefix-1`, ... until every
+/// arm in `arms` has answered `per_arm` of them, and returns their response ids by arm.
+fn responses_by_arm(
+    server: &Server,
+    split: &str,
+    prefix: &str,
+    arms: &[&str],
+    per_arm: usize,
+) -> BTreeMap<String, Vec<String>> {
+    let mut by_arm: BTreeMap<String, Vec<String>> = BTreeMap::new();
+    for i in 0..400 {
+        if arms
+            .iter()
+            .all(|a| by_arm.get(*a).is_some_and(|ids| ids.len() >= per_arm))
+        {
+            return by_arm;
+        }
+        let body = server
+            .embed(
+                json!({"split": split, "subject": format!("{prefix}-{i}")}),
+                &[TEXT],
+            )
+            .ok_json();
+        by_arm
+            .entry(body["split"]["arm"].as_str().unwrap().to_owned())
+            .or_default()
+            .push(body["id"].as_str().unwrap().to_owned());
+    }
+    panic!("400 subjects did not give {per_arm} responses to each of {arms:?}: {by_arm:?}");
+}
+
+/// The report: outcomes 1 and 2 on one arm, 1e200 and 3 on the other, then a readout.
+/// The readout panicked in the Welch computation while holding the split lock; the connection
+/// dropped, the lock was poisoned, and every split call and every outcome failed from then on.
+/// Now 1e200 is refused (it is beyond the documented bound 1e15), values at the bound give a
+/// finite readout, and every split endpoint still works afterwards.
+#[test]
+fn readout_with_extreme_outcomes_does_not_take_splits_down() {
+    let server = ServerSetup::encoder().start();
+    server.publish("tone-a", &fixtures().join("minilm-qv-a.safetensors"));
+    server.publish("tone-b", &fixtures().join("minilm-qv-b.safetensors"));
+    let arms = json!([
+        {"name": "incumbent", "adapter": "tone-a", "weight": 1},
+        {"name": "candidate", "adapter": "tone-b", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "tone-trial", arms).status, 201);
+    let ids = responses_by_arm(
+        &server,
+        "tone-trial",
+        "rider",
+        &["incumbent", "candidate"],
+        3,
+    );
+    let (incumbent, candidate) = (&ids["incumbent"], &ids["candidate"]);
+
+    assert_eq!(post_outcome(&server, &incumbent[0], json!(1)), 200);
+    assert_eq!(post_outcome(&server, &incumbent[1], json!(2)), 200);
+    let refused = server.post(
+        "/outcomes",
+        Auth::None,
+        &json!({"response_id": candidate[0], "value": 1e200}),
+    );
+    refused.assert_error(400, "invalid_outcome");
+    assert!(
+        refused.json()["error"]["message"]
+            .as_str()
+            .unwrap()
+            .contains("1e15"),
+        "the refusal names the bound: {}",
+        refused.body
+    );
+    // The refused value did not use up the response's one outcome.
+    assert_eq!(post_outcome(&server, &candidate[0], json!(3)), 200);
+    assert_eq!(post_outcome(&server, &candidate[1], json!(1e15)), 200);
+
+    let readout = server
+        .get("/admin/splits/tone-trial/readout", Auth::Admin)
+        .ok_json();
+    let lines = readout["arms"].as_array().unwrap();
+    assert_eq!(
+        lines[0]["numeric"]["summary"]["count"],
+        json!(2),
+        "{readout}"
+    );
+    assert_eq!(
+        lines[1]["numeric"]["summary"]["count"],
+        json!(2),
+        "{readout}"
+    );
+    let versus = &lines[1]["numeric"]["versus_first"];
+    let p = versus["p_value"].as_f64().expect("a p-value");
+    assert!((0.0..=1.0).contains(&p), "{versus}");
+    assert_eq!(versus["degrees_of_freedom"].as_f64(), Some(1.0), "{versus}");
+
+    // Every split endpoint and /outcomes still answer.
+    assert_eq!(server.get("/admin/splits", Auth::Admin).status, 200);
+    server
+        .embed(
+            json!({"split": "tone-trial", "subject": "rider-new"}),
+            &[TEXT],
+        )
+        .ok_json();
+    assert_eq!(post_outcome(&server, &incumbent[2], json!(true)), 200);
+    assert_eq!(post_outcome(&server, &candidate[2], json!(false)), 200);
+    let arms = json!([
+        {"name": "incumbent", "adapter": "tone-a", "weight": 3},
+        {"name": "candidate", "adapter": "tone-b", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "tone-trial", arms).status, 200);
+    let again = server
+        .get("/admin/splits/tone-trial/readout", Auth::Admin)
+        .ok_json();
+    assert_eq!(
+        again["arms"][0]["yes_no"]["summary"]["count"],
+        json!(1),
+        "{again}"
+    );
+    assert_eq!(
+        server
+            .request("DELETE", "/admin/splits/tone-trial", Auth::Admin, None)
+            .status,
+        204
+    );
+    assert_eq!(server.get("/health/ready", Auth::None).status, 200);
+}

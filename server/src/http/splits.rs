@@ -5,7 +5,6 @@
 
 use std::collections::{BTreeMap, HashMap, VecDeque};
 use std::path::PathBuf;
-use std::sync::Mutex;
 
 use axum::Json;
 use axum::extract::{Path, State};
@@ -20,6 +19,7 @@ use crate::http::extract::ApiJson;
 use crate::splits::{
     ArmSpec, BinaryTally, NumericTally, Split, SplitSpec, binary_readout, numeric_readout,
 };
+use crate::sync::Mutex;
 
 /// How many recent response ids remember their arm, for outcomes posted later.
 const REMEMBERED_RESPONSES: usize = 200_000;
@@ -80,7 +80,7 @@ impl SplitBook {
     /// Tells the registry which versions split arms are held to, so those stay resident while
     /// not live. Called whenever the set of splits changes, and once at start.
     pub fn keep_arm_versions(&self, registry: &switchyard_adapters::Registry) {
-        let book = self.book.lock().unwrap();
+        let book = self.book.lock();
         registry.keep_versions(arm_versions(&book));
     }
 
@@ -98,7 +98,7 @@ impl SplitBook {
 
     /// Picks an arm for a request and counts it; `None` when there is no such split.
     pub fn assign(&self, name: &str, subject: Option<&str>) -> Option<(usize, ArmSpec)> {
-        let mut book = self.book.lock().unwrap();
+        let mut book = self.book.lock();
         let entry = book.splits.get_mut(name)?;
         let (index, arm) = {
             let a = entry.split.assign(subject, &mut rand::rng());
@@ -110,7 +110,7 @@ impl SplitBook {
 
     /// Remembers which arm answered a response, for a later outcome.
     pub fn remember(&self, response_id: &str, split: &str, arm: usize) {
-        let mut book = self.book.lock().unwrap();
+        let mut book = self.book.lock();
         book.responses
             .insert(response_id.to_owned(), (split.to_owned(), arm, false));
         book.order.push_back(response_id.to_owned());
@@ -193,7 +193,7 @@ pub async fn put_split(
             ));
         }
     }
-    let mut book = state.splits.book.lock().unwrap();
+    let mut book = state.splits.book.lock();
     let mut entry = fresh_entry(split);
     let created = match book.splits.remove(&name) {
         None => true,
@@ -227,7 +227,7 @@ pub async fn delete_split(
     Path(name): Path<String>,
 ) -> Result<StatusCode, ApiError> {
     require_admin(&state, &headers)?;
-    let mut book = state.splits.book.lock().unwrap();
+    let mut book = state.splits.book.lock();
     if book.splits.remove(&name).is_none() {
         return Err(ApiError::not_found(
             "unknown_split",
@@ -245,7 +245,7 @@ pub async fn list(
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    let book = state.splits.book.lock().unwrap();
+    let book = state.splits.book.lock();
     let splits: Vec<Value> = book
         .splits
         .values()
@@ -267,16 +267,22 @@ pub async fn readout(
     Path(name): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    let book = state.splits.book.lock().unwrap();
-    let e = book
-        .splits
-        .get(&name)
-        .ok_or_else(|| ApiError::not_found("unknown_split", format!("no split named {name:?}")))?;
-    let numeric = numeric_readout(&e.numeric);
-    let binary = binary_readout(&e.binary);
-    let arms: Vec<Value> = e
-        .split
-        .arms()
+    // Copied out under the lock; the statistics run without it.
+    let (arm_specs, requests, numeric, binary) = {
+        let book = state.splits.book.lock();
+        let e = book.splits.get(&name).ok_or_else(|| {
+            ApiError::not_found("unknown_split", format!("no split named {name:?}"))
+        })?;
+        (
+            e.split.arms().to_vec(),
+            e.requests.clone(),
+            e.numeric.clone(),
+            e.binary.clone(),
+        )
+    };
+    let numeric = numeric_readout(&numeric);
+    let binary = binary_readout(&binary);
+    let arms: Vec<Value> = arm_specs
         .iter()
         .enumerate()
         .map(|(i, arm)| {
@@ -285,7 +291,7 @@ pub async fn readout(
                 "adapter": arm.adapter,
                 "version": arm.version,
                 "weight": arm.weight,
-                "requests": e.requests[i],
+                "requests": requests[i],
                 "numeric": numeric[i],
                 "yes_no": binary[i],
             })
@@ -311,7 +317,7 @@ pub async fn post_outcome(
     ApiJson(body): ApiJson<OutcomeBody>,
 ) -> Result<Json<Value>, ApiError> {
     state.tenants.authenticate(authorization(&headers))?;
-    let mut book = state.splits.book.lock().unwrap();
+    let mut book = state.splits.book.lock();
     let Some((split, arm, recorded)) = book.responses.get(&body.response_id).cloned() else {
         return Err(ApiError::not_found(
             "unknown_response",
