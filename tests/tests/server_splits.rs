@@ -333,3 +333,77 @@ fn readout_with_extreme_outcomes_does_not_take_splits_down() {
     );
     assert_eq!(server.get("/health/ready", Auth::None).status, 200);
 }
+
+/// The report: a response served to one tenant through its split accepted an outcome
+/// posted with another tenant's key (200, and the answer named the split and the arm). Now the
+/// other tenant gets exactly the answer an unknown response id gets, and the response's one
+/// outcome is still there for the tenant it was served to.
+#[test]
+fn outcome_posted_by_another_tenant_is_answered_as_an_unknown_response() {
+    const NORTH: &str = "north-key-0123456789abcdef";
+    const SOUTH: &str = "south-key-0123456789abcdef";
+    let server = ServerSetup::encoder()
+        .tenant("ridgeline-north", NORTH, &["north-*", "shared-*"])
+        .tenant("ridgeline-south", SOUTH, &["south-*", "shared-*"])
+        .start();
+    server.publish("shared-faq", &fixtures().join("minilm-qv-a.safetensors"));
+    server.publish("north-routing", &fixtures().join("minilm-qv-b.safetensors"));
+    let shared = json!([
+        {"name": "faq", "adapter": "shared-faq", "weight": 1},
+        {"name": "plain", "adapter": "base", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "shared-trial", shared).status, 201);
+    let north_only = json!([{"name": "routing", "adapter": "north-routing", "weight": 1}]);
+    assert_eq!(put_split(&server, "north-trial", north_only).status, 201);
+
+    let served = |split: &str| {
+        server
+            .post(
+                "/embed",
+                Auth::Bearer(NORTH),
+                &json!({"split": split, "subject": "rider-7", "texts": [TEXT]}),
+            )
+            .ok_json()["id"]
+            .as_str()
+            .unwrap()
+            .to_owned()
+    };
+    let outcome = |key: &str, id: &str| {
+        server.post(
+            "/outcomes",
+            Auth::Bearer(key),
+            &json!({"response_id": id, "value": true}),
+        )
+    };
+    // The answer for an id no one was ever served, with the id taken out.
+    let never_served = "r-000000000000000000000000";
+    let unknown = outcome(SOUTH, never_served);
+    unknown.assert_error(404, "unknown_response");
+    let unknown_body = unknown.body.replace(never_served, "ID");
+
+    for split in ["shared-trial", "north-trial"] {
+        let id = served(split);
+        let crossed = outcome(SOUTH, &id);
+        assert_eq!(crossed.status, unknown.status, "{split}: {}", crossed.body);
+        assert_eq!(
+            crossed.body.replace(&id, "ID"),
+            unknown_body,
+            "{split}: the other tenant's answer differs from the unknown-id answer"
+        );
+        assert!(!crossed.body.contains(split), "{}", crossed.body);
+        let own = outcome(NORTH, &id);
+        assert_eq!(own.status, 200, "{split}: {}", own.body);
+        assert_eq!(own.json()["split"], json!(split));
+        outcome(NORTH, &id).assert_error(409, "outcome_recorded");
+        // Even once recorded, the other tenant learns nothing.
+        assert_eq!(outcome(SOUTH, &id).body.replace(&id, "ID"), unknown_body);
+    }
+    let readout = server
+        .get("/admin/splits/north-trial/readout", Auth::Admin)
+        .ok_json();
+    assert_eq!(
+        readout["arms"][0]["yes_no"]["summary"]["count"],
+        json!(1),
+        "only the serving tenant's outcome counts: {readout}"
+    );
+}

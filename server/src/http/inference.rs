@@ -95,7 +95,7 @@ async fn route(
                 .splits
                 .assign(s, subject)
                 .ok_or_else(|| ApiError::unknown_target("split", s))?;
-            state.splits.remember(response_id, s, index);
+            state.splits.remember(response_id, s, index, &tenant.name);
             state
                 .metrics
                 .arm_requests

@@ -31,9 +31,18 @@ struct Entry {
     binary: Vec<BinaryTally>,
 }
 
+/// What a served response remembers: its split, its arm, the tenant it was served to, and
+/// whether its outcome is in.
+struct Served {
+    split: String,
+    arm: usize,
+    tenant: String,
+    recorded: bool,
+}
+
 struct Book {
     splits: BTreeMap<String, Entry>,
-    responses: HashMap<String, (String, usize, bool)>,
+    responses: HashMap<String, Served>,
     order: VecDeque<String>,
 }
 
@@ -108,11 +117,18 @@ impl SplitBook {
         Some((index, arm))
     }
 
-    /// Remembers which arm answered a response, for a later outcome.
-    pub fn remember(&self, response_id: &str, split: &str, arm: usize) {
+    /// Remembers which arm answered a response and for which tenant, for a later outcome.
+    pub fn remember(&self, response_id: &str, split: &str, arm: usize, tenant: &str) {
         let mut book = self.book.lock();
-        book.responses
-            .insert(response_id.to_owned(), (split.to_owned(), arm, false));
+        book.responses.insert(
+            response_id.to_owned(),
+            Served {
+                split: split.to_owned(),
+                arm,
+                tenant: tenant.to_owned(),
+                recorded: false,
+            },
+        );
         book.order.push_back(response_id.to_owned());
         while book.order.len() > REMEMBERED_RESPONSES {
             if let Some(old) = book.order.pop_front() {
@@ -316,13 +332,20 @@ pub async fn post_outcome(
     headers: HeaderMap,
     ApiJson(body): ApiJson<OutcomeBody>,
 ) -> Result<Json<Value>, ApiError> {
-    state.tenants.authenticate(authorization(&headers))?;
+    let tenant = state.tenants.authenticate(authorization(&headers))?;
     let mut book = state.splits.book.lock();
-    let Some((split, arm, recorded)) = book.responses.get(&body.response_id).cloned() else {
+    // A response served to another tenant gets the very answer an unknown id gets, so that a key
+    // learns nothing about another tenant's responses.
+    let Some((split, arm, recorded)) = book
+        .responses
+        .get(&body.response_id)
+        .filter(|served| served.tenant == tenant.name)
+        .map(|served| (served.split.clone(), served.arm, served.recorded))
+    else {
         return Err(ApiError::not_found(
             "unknown_response",
             format!(
-                "response {:?} was not served by a split (or is too old to remember)",
+                "response {:?} was not served by a split to this key (or is too old to remember)",
                 body.response_id
             ),
         ));
@@ -358,10 +381,9 @@ pub async fn post_outcome(
         }
     }
     let arm_name = entry.split.arms()[arm].name.clone();
-    book.responses
-        .get_mut(&body.response_id)
-        .expect("present")
-        .2 = true;
+    if let Some(served) = book.responses.get_mut(&body.response_id) {
+        served.recorded = true;
+    }
     Ok(Json(
         json!({"response_id": body.response_id, "split": split, "arm": arm_name, "recorded": true}),
     ))
