@@ -96,6 +96,13 @@ pub(crate) const ADMIN_TOKEN: SettingKey =
     SettingKey::new("admin", "token", "SWITCHYARD_ADMIN_TOKEN");
 pub(crate) const LOG_FORMAT: SettingKey = SettingKey::new("log", "format", "SWITCHYARD_LOG_FORMAT");
 pub(crate) const LOG_FILTER: SettingKey = SettingKey::new("log", "filter", "SWITCHYARD_LOG");
+pub(crate) const EXPERIMENTS_DATABASE: SettingKey =
+    SettingKey::new("experiments", "database", "SWITCHYARD_EXPERIMENTS_DATABASE");
+pub(crate) const KEEP_RESPONSES_DAYS: SettingKey = SettingKey::new(
+    "experiments",
+    "keep_responses_days",
+    "SWITCHYARD_EXPERIMENTS_KEEP_RESPONSES_DAYS",
+);
 
 /// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
 /// setting that is not scalar; it comes from the file only.
@@ -119,6 +126,8 @@ pub const KEYS: &[SettingKey] = &[
     ADMIN_TOKEN,
     LOG_FORMAT,
     LOG_FILTER,
+    EXPERIMENTS_DATABASE,
+    KEEP_RESPONSES_DAYS,
 ];
 
 /// The top-level key that holds the array of tenant tables.

@@ -4,6 +4,7 @@
 
 pub mod commands;
 pub mod engine;
+pub mod experiments;
 pub mod http;
 pub mod metrics;
 pub mod model;

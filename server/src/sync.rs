@@ -6,7 +6,7 @@
 //! relying on a panic-free holder.
 
 pub(crate) use std::sync::MutexGuard;
-use std::sync::PoisonError;
+use std::sync::{PoisonError, RwLockReadGuard, RwLockWriteGuard};
 
 /// A mutex whose `lock` never fails.
 #[derive(Debug, Default)]
@@ -19,6 +19,24 @@ impl<T> Mutex<T> {
 
     pub(crate) fn lock(&self) -> MutexGuard<'_, T> {
         self.0.lock().unwrap_or_else(PoisonError::into_inner)
+    }
+}
+
+/// A reader-writer lock whose `read` and `write` never fail.
+#[derive(Debug, Default)]
+pub(crate) struct RwLock<T>(std::sync::RwLock<T>);
+
+impl<T> RwLock<T> {
+    pub(crate) fn new(value: T) -> Self {
+        Self(std::sync::RwLock::new(value))
+    }
+
+    pub(crate) fn read(&self) -> RwLockReadGuard<'_, T> {
+        self.0.read().unwrap_or_else(PoisonError::into_inner)
+    }
+
+    pub(crate) fn write(&self) -> RwLockWriteGuard<'_, T> {
+        self.0.write().unwrap_or_else(PoisonError::into_inner)
     }
 }
 
@@ -38,5 +56,17 @@ mod tests {
         assert!(result.is_err());
         *lock.lock() += 1;
         assert_eq!(*lock.lock(), 2);
+
+        let rw = std::sync::Arc::new(RwLock::new(1));
+        let held = rw.clone();
+        let result = std::thread::spawn(move || {
+            let _guard = held.write();
+            panic!("a handler panicked while writing");
+        })
+        .join();
+        assert!(result.is_err());
+        assert_eq!(*rw.read(), 1);
+        *rw.write() = 3;
+        assert_eq!(*rw.read(), 3);
     }
 }

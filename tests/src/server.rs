@@ -421,6 +421,30 @@ impl Server {
         self.agent = agent();
     }
 
+    /// Kills the process with SIGKILL, as a crash would (no shutdown, nothing flushed), and
+    /// waits for it to be gone.
+    pub fn kill(&mut self) {
+        let mut child = self.child.take().expect("server running");
+        child.kill().expect("kill -9 the server");
+        child.wait().expect("wait for the killed server");
+    }
+
+    /// Starts the server again on the same config and store, after [`Server::kill`] or an exit;
+    /// the new process listens on a new port.
+    pub fn start_again(&mut self) {
+        assert!(self.child.is_none(), "the server is still running");
+        let (child, addr) = spawn(self.dir.path(), &self.config);
+        self.child = Some(child);
+        self.addr = addr;
+        self.agent = agent();
+    }
+
+    /// Kills the server with SIGKILL and starts it again on the same config and store.
+    pub fn crash_and_restart(&mut self) {
+        self.kill();
+        self.start_again();
+    }
+
     /// What the server has logged so far.
     pub fn log(&self) -> String {
         read_log(self.dir.path())

@@ -407,3 +407,173 @@ fn outcome_posted_by_another_tenant_is_answered_as_an_unknown_response() {
         "only the serving tenant's outcome counts: {readout}"
     );
 }
+
+fn readout(server: &Server, split: &str) -> Value {
+    server
+        .get(&format!("/admin/splits/{split}/readout"), Auth::Admin)
+        .ok_json()
+}
+
+/// The report: a split arm could name a version that does not exist (accepted with 200;
+/// requests then failed with 422), and a version a split arm held could be retired. Both are now
+/// refused, naming the arm or the split.
+#[test]
+fn split_arm_naming_a_missing_version_is_refused_and_a_held_version_cannot_be_retired() {
+    let server = ServerSetup::encoder().start();
+    let v_a = server.publish("fork-advice", &fixtures().join("minilm-qv-a.safetensors"));
+    let v_b = server.publish("fork-advice", &fixtures().join("minilm-qv-b.safetensors"));
+    let held = |version: &str| {
+        json!([
+            {"name": "incumbent", "adapter": "fork-advice", "version": version, "weight": 1},
+            {"name": "plain", "adapter": "base", "weight": 1},
+        ])
+    };
+    let missing = put_split(&server, "fork-test", held("0123456789abcdef"));
+    missing.assert_error(404, "unknown_version");
+    assert!(missing.body.contains("arms[0].version"), "{}", missing.body);
+    let no_adapter = put_split(
+        &server,
+        "fork-test",
+        json!([{"name": "x", "adapter": "never-published", "weight": 1}]),
+    );
+    no_adapter.assert_error(404, "unknown_target");
+    assert!(
+        no_adapter.body.contains("arms[0].adapter"),
+        "{}",
+        no_adapter.body
+    );
+    assert_eq!(
+        server.get("/admin/splits", Auth::Admin).ok_json()["splits"],
+        json!([]),
+        "nothing was written"
+    );
+
+    // Held to the version that is no longer live: accepted, and it serves that version.
+    assert_eq!(put_split(&server, "fork-test", held(&v_a)).status, 201);
+    let body = server
+        .embed(json!({"split": "fork-test", "subject": "rider-1"}), &[TEXT])
+        .ok_json();
+    assert!(
+        body["served_by"] == json!(format!("fork-advice@{v_a}")) || body["served_by"] == "base",
+        "{body}"
+    );
+    let retire = |version: &str| {
+        server.request(
+            "DELETE",
+            &format!("/admin/adapters/fork-advice/versions/{version}"),
+            Auth::Admin,
+            None,
+        )
+    };
+    let refused = retire(&v_a);
+    refused.assert_error(409, "version_held_by_split");
+    assert!(
+        refused.body.contains("fork-test") && refused.body.contains("incumbent"),
+        "{}",
+        refused.body
+    );
+    // Once the split lets go, the version can be retired.
+    let follows_live = json!([{"name": "incumbent", "adapter": "fork-advice", "weight": 1}]);
+    assert_eq!(put_split(&server, "fork-test", follows_live).status, 200);
+    assert_eq!(retire(&v_a).status, 204);
+    retire(&v_b).assert_error(409, "version_is_live");
+}
+
+/// The report: outcomes were remembered by arm position and counts carried over by arm
+/// name, so after an edit an outcome could land on another treatment, and a deleted and
+/// recreated split inherited the old responses. Outcomes now follow the arm record that served
+/// the response.
+#[test]
+fn outcomes_follow_the_arm_record_that_served_them_across_edits_and_recreation() {
+    let server = ServerSetup::encoder().start();
+    server.publish("tone-a", &fixtures().join("minilm-qv-a.safetensors"));
+    server.publish("tone-b", &fixtures().join("minilm-qv-b.safetensors"));
+    let arms = json!([
+        {"name": "incumbent", "adapter": "tone-a", "weight": 1},
+        {"name": "candidate", "adapter": "tone-b", "weight": 1},
+    ]);
+    let created = put_split(&server, "tone-trial", arms).json();
+    let ids = responses_by_arm(&server, "tone-trial", "old", &["incumbent", "candidate"], 2);
+
+    // The candidate now serves the base model: a new treatment, so a new arm record. The old
+    // candidate's responses keep their record; its outcome lands there.
+    let swapped = json!([
+        {"name": "candidate", "adapter": "base", "weight": 1},
+        {"name": "incumbent", "adapter": "tone-a", "weight": 1},
+    ]);
+    let edited = put_split(&server, "tone-trial", swapped).ok_json();
+    assert_eq!(edited["generation"], created["generation"]);
+    assert_eq!(post_outcome(&server, &ids["candidate"][0], json!(5)), 200);
+    assert_eq!(post_outcome(&server, &ids["incumbent"][0], json!(2)), 200);
+    let r = readout(&server, "tone-trial");
+    assert_eq!(r["arms"][0]["arm"], "candidate");
+    assert_eq!(r["arms"][0]["adapter"], "base");
+    assert_eq!(r["arms"][0]["requests"], json!(0), "{r}");
+    assert_eq!(r["arms"][0]["numeric"]["summary"]["count"], json!(0), "{r}");
+    assert_eq!(
+        r["arms"][1]["numeric"]["summary"]["mean"],
+        json!(2.0),
+        "{r}"
+    );
+    let replaced = &r["replaced_arms"][0];
+    assert_eq!(replaced["adapter"], "tone-b", "{r}");
+    assert_eq!(replaced["requests"], json!(2), "{r}");
+    assert_eq!(replaced["numeric"]["summary"]["mean"], json!(5.0), "{r}");
+
+    // Deleted and created again: a new generation that knows none of the old responses.
+    assert_eq!(
+        server
+            .request("DELETE", "/admin/splits/tone-trial", Auth::Admin, None)
+            .status,
+        204
+    );
+    let arms = json!([
+        {"name": "incumbent", "adapter": "tone-a", "weight": 1},
+        {"name": "candidate", "adapter": "tone-b", "weight": 1},
+    ]);
+    let recreated = put_split(&server, "tone-trial", arms);
+    assert_eq!(recreated.status, 201);
+    assert_ne!(recreated.json()["generation"], created["generation"]);
+    server
+        .post(
+            "/outcomes",
+            Auth::None,
+            &json!({"response_id": ids["incumbent"][1], "value": 1}),
+        )
+        .assert_error(404, "unknown_response");
+    let r = readout(&server, "tone-trial");
+    for arm in r["arms"].as_array().unwrap() {
+        assert_eq!(arm["requests"], json!(0), "{r}");
+        assert_eq!(arm["numeric"]["summary"]["count"], json!(0), "{r}");
+    }
+    assert_eq!(r["replaced_arms"], json!([]));
+}
+
+/// Split definitions, tallies and response records survive a crash: after `kill -9` the readout
+/// is the same, an outcome already acknowledged is still there (a second one is refused), and a
+/// response served before the crash can still get its outcome.
+#[test]
+fn experiments_survive_a_crash_of_the_server() {
+    let mut server = ServerSetup::encoder().start();
+    server.publish("tone-a", &fixtures().join("minilm-qv-a.safetensors"));
+    let arms = json!([
+        {"name": "incumbent", "adapter": "tone-a", "weight": 1},
+        {"name": "plain", "adapter": "base", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "tone-trial", arms).status, 201);
+    let ids = responses_by_arm(&server, "tone-trial", "before", &["incumbent", "plain"], 3);
+    assert_eq!(post_outcome(&server, &ids["incumbent"][0], json!(4)), 200);
+    assert_eq!(post_outcome(&server, &ids["plain"][0], json!(true)), 200);
+    let before = readout(&server, "tone-trial");
+
+    server.crash_and_restart();
+    assert_eq!(readout(&server, "tone-trial"), before);
+    assert_eq!(post_outcome(&server, &ids["incumbent"][0], json!(4)), 409);
+    assert_eq!(post_outcome(&server, &ids["incumbent"][1], json!(6)), 200);
+    let after = readout(&server, "tone-trial");
+    assert_eq!(after["arms"][0]["numeric"]["summary"]["mean"], json!(5.0));
+    assert!(
+        server.dir().join("store/experiments.sqlite").is_file(),
+        "the database lives in the store folder"
+    );
+}

@@ -18,6 +18,7 @@ use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::{Backbone, EmbedJob, EngineError, GenEvent, GenerateJob, Job, Timings};
+use crate::experiments::responses::Receipt;
 use crate::http::SharedState;
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
@@ -31,6 +32,8 @@ pub struct Routed {
     pub served_by: String,
     pub split: Option<(String, String)>,
     pub swap: Duration,
+    /// Through a split: says when the record of which arm answered is on disk.
+    pub recorded: Option<Receipt>,
 }
 
 pub fn new_response_id() -> String {
@@ -69,6 +72,7 @@ async fn route(
         split,
         subject,
     } = target;
+    let mut recorded = None;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
             return Err(ApiError::bad_request(
@@ -91,11 +95,16 @@ async fn route(
                     format!("this key may not use split {s:?}"),
                 ));
             }
-            let (index, arm) = state
+            let assigned = state
                 .splits
                 .assign(s, subject)
                 .ok_or_else(|| ApiError::unknown_target("split", s))?;
-            state.splits.remember(response_id, s, index, &tenant.name);
+            recorded = Some(
+                state
+                    .splits
+                    .record_response(response_id, &assigned, &tenant.name),
+            );
+            let arm = assigned.arm;
             state
                 .metrics
                 .arm_requests
@@ -117,6 +126,7 @@ async fn route(
             served_by: "base".to_owned(),
             split: split_arm,
             swap: Duration::ZERO,
+            recorded,
         });
     }
     if !tenant.may_use(&name) {
@@ -150,6 +160,7 @@ async fn route(
         handle: Some(handle),
         split: split_arm,
         swap: start.elapsed(),
+        recorded,
     })
 }
 
@@ -193,7 +204,7 @@ async fn admit(
     response_id: &str,
     job: impl FnOnce(Admission) -> Job,
 ) -> Result<Routed, ApiError> {
-    let routed = route(state, tenant, target, response_id).await?;
+    let mut routed = route(state, tenant, target, response_id).await?;
     let admitted = Instant::now() - routed.swap;
     state.engine.try_submit(job(Admission {
         adapter: routed.handle.clone(),
@@ -201,6 +212,14 @@ async fn admit(
         swap: routed.swap,
         deadline: admitted + state.limits.timeout,
     }))?;
+    // The arm's record is written while the engine computes; the answer waits for it, so a
+    // response id a client holds is on disk. Serving wins over bookkeeping: a failed write is
+    // logged (by the log's writer) and the answer still goes out.
+    if let Some(receipt) = routed.recorded.take()
+        && let Err(error) = receipt.durable().await
+    {
+        tracing::warn!(id = response_id, %error, "answering without a durable response record");
+    }
     Ok(routed)
 }
 

@@ -28,7 +28,6 @@ use switchyard_adapters::registry::Registry;
 use crate::engine::{Backbone, Engine};
 use crate::metrics::Metrics;
 use auth::Tenants;
-use splits::SplitBook;
 
 /// Request limits the handlers enforce before anything is queued.
 #[derive(Debug, Clone)]
@@ -48,7 +47,7 @@ pub struct AppState {
     pub tenants: Tenants,
     pub admin_token: Option<String>,
     pub metrics: Arc<Metrics>,
-    pub splits: SplitBook,
+    pub splits: crate::experiments::Experiments,
     pub limits: RequestLimits,
     pub ready: AtomicBool,
 }

@@ -1,10 +1,6 @@
-//! A/B splits over live traffic: the split book (definitions, per-arm request counts and outcome
-//! tallies, which response went to which arm), its admin endpoints, outcome posting and the
-//! readout. Definitions are saved to a JSON file beside the store so assignment, a pure function
-//! of (split, subject), survives restarts; tallies live in memory.
-
-use std::collections::{BTreeMap, HashMap, VecDeque};
-use std::path::PathBuf;
+//! The split endpoints: the admin API over A/B splits (create or change, list, delete, readout)
+//! and `POST /outcomes`. Each handler authorizes, parses, and calls [`crate::experiments`] off
+//! the async workers (every write there syncs to disk before it returns).
 
 use axum::Json;
 use axum::extract::{Path, State};
@@ -12,154 +8,17 @@ use axum::http::{HeaderMap, StatusCode};
 use serde::Deserialize;
 use serde_json::{Value, json};
 
+use crate::experiments::arms::ArmProblem;
+use crate::experiments::{
+    ArmTally, ExperimentError, OutcomeRefused, OutcomeValue, SplitEditError, SplitState,
+};
 use crate::http::SharedState;
 use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::splits::{
-    ArmSpec, BinaryTally, NumericTally, Split, SplitSpec, binary_readout, numeric_readout,
+    ArmSpec, BinaryTally, NumericTally, SplitSpec, binary_readout, numeric_readout,
 };
-use crate::sync::Mutex;
-
-/// How many recent response ids remember their arm, for outcomes posted later.
-const REMEMBERED_RESPONSES: usize = 200_000;
-
-struct Entry {
-    split: Split,
-    requests: Vec<u64>,
-    numeric: Vec<NumericTally>,
-    binary: Vec<BinaryTally>,
-}
-
-/// What a served response remembers: its split, its arm, the tenant it was served to, and
-/// whether its outcome is in.
-struct Served {
-    split: String,
-    arm: usize,
-    tenant: String,
-    recorded: bool,
-}
-
-struct Book {
-    splits: BTreeMap<String, Entry>,
-    responses: HashMap<String, Served>,
-    order: VecDeque<String>,
-}
-
-/// The splits of this server.
-pub struct SplitBook {
-    path: Option<PathBuf>,
-    book: Mutex<Book>,
-}
-
-impl std::fmt::Debug for SplitBook {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("SplitBook")
-            .field("path", &self.path)
-            .finish()
-    }
-}
-
-impl SplitBook {
-    /// Loads saved definitions from `path` (absent file: no splits).
-    pub fn open(path: Option<PathBuf>) -> anyhow::Result<Self> {
-        let mut splits = BTreeMap::new();
-        if let Some(p) = &path
-            && p.is_file()
-        {
-            let text = std::fs::read_to_string(p)?;
-            let specs: Vec<SplitSpec> = serde_json::from_str(&text)
-                .map_err(|e| anyhow::anyhow!("reading splits from {}: {e}", p.display()))?;
-            for spec in specs {
-                let split =
-                    Split::new(spec).map_err(|e| anyhow::anyhow!("{}: {e}", p.display()))?;
-                splits.insert(split.name().to_owned(), fresh_entry(split));
-            }
-        }
-        Ok(Self {
-            path,
-            book: Mutex::new(Book {
-                splits,
-                responses: HashMap::new(),
-                order: VecDeque::new(),
-            }),
-        })
-    }
-
-    /// Tells the registry which versions split arms are held to, so those stay resident while
-    /// not live. Called whenever the set of splits changes, and once at start.
-    pub fn keep_arm_versions(&self, registry: &switchyard_adapters::Registry) {
-        let book = self.book.lock();
-        registry.keep_versions(arm_versions(&book));
-    }
-
-    fn save(&self, book: &Book) -> Result<(), ApiError> {
-        let Some(path) = &self.path else {
-            return Ok(());
-        };
-        let specs: Vec<&SplitSpec> = book.splits.values().map(|e| e.split.spec()).collect();
-        let text = serde_json::to_string_pretty(&specs).expect("specs serialise");
-        let tmp = path.with_extension("json.tmp");
-        std::fs::write(&tmp, text)
-            .and_then(|_| std::fs::rename(&tmp, path))
-            .map_err(|e| ApiError::internal(format!("saving splits to {}: {e}", path.display())))
-    }
-
-    /// Picks an arm for a request and counts it; `None` when there is no such split.
-    pub fn assign(&self, name: &str, subject: Option<&str>) -> Option<(usize, ArmSpec)> {
-        let mut book = self.book.lock();
-        let entry = book.splits.get_mut(name)?;
-        let (index, arm) = {
-            let a = entry.split.assign(subject, &mut rand::rng());
-            (a.index, a.arm.clone())
-        };
-        entry.requests[index] += 1;
-        Some((index, arm))
-    }
-
-    /// Remembers which arm answered a response and for which tenant, for a later outcome.
-    pub fn remember(&self, response_id: &str, split: &str, arm: usize, tenant: &str) {
-        let mut book = self.book.lock();
-        book.responses.insert(
-            response_id.to_owned(),
-            Served {
-                split: split.to_owned(),
-                arm,
-                tenant: tenant.to_owned(),
-                recorded: false,
-            },
-        );
-        book.order.push_back(response_id.to_owned());
-        while book.order.len() > REMEMBERED_RESPONSES {
-            if let Some(old) = book.order.pop_front() {
-                book.responses.remove(&old);
-            }
-        }
-    }
-}
-
-fn fresh_entry(split: Split) -> Entry {
-    let n = split.arms().len();
-    Entry {
-        split,
-        requests: vec![0; n],
-        numeric: vec![NumericTally::new(); n],
-        binary: vec![BinaryTally::new(); n],
-    }
-}
-
-/// Every `(adapter, version)` an arm is held to.
-fn arm_versions(book: &Book) -> Vec<(switchyard_adapters::AdapterName, String)> {
-    book.splits
-        .values()
-        .flat_map(|e| e.split.arms())
-        .filter_map(|arm| {
-            let version = arm.version.clone()?;
-            let name = switchyard_adapters::AdapterName::new(&arm.adapter).ok()?;
-            Some((name, version))
-        })
-        .collect()
-}
 
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
     headers
@@ -167,8 +26,51 @@ pub fn authorization(headers: &HeaderMap) -> Option<&str> {
         .and_then(|v| v.to_str().ok())
 }
 
-/// `PUT /admin/splits/{name}`: creates or changes a split; arms that keep their name keep
-/// their counts and outcomes.
+/// Runs a blocking experiments call off the async workers.
+async fn blocking<T: Send + 'static>(
+    state: &SharedState,
+    f: impl FnOnce(&SharedState) -> Result<T, ApiError> + Send + 'static,
+) -> Result<T, ApiError> {
+    let state = state.clone();
+    tokio::task::spawn_blocking(move || f(&state))
+        .await
+        .map_err(|e| ApiError::internal(format!("experiment task failed: {e}")))?
+}
+
+/// A failure of the experiment database: 500 with its own code.
+pub fn store_failed(e: ExperimentError) -> ApiError {
+    ApiError::new(
+        StatusCode::INTERNAL_SERVER_ERROR,
+        "experiment_store_failed",
+        e.to_string(),
+    )
+}
+
+fn edit_error(e: SplitEditError) -> ApiError {
+    let text = e.to_string();
+    match e {
+        SplitEditError::Invalid(_) => ApiError::bad_request("invalid_split", text),
+        SplitEditError::Arm(ArmProblem::UnknownAdapter { .. }) => {
+            ApiError::not_found("unknown_target", text)
+        }
+        SplitEditError::Arm(ArmProblem::UnknownVersion { .. }) => {
+            ApiError::not_found("unknown_version", text)
+        }
+        SplitEditError::Arm(ArmProblem::InvalidName { .. } | ArmProblem::InvalidVersion { .. }) => {
+            ApiError::bad_request("invalid_split", text)
+        }
+        SplitEditError::Arm(ArmProblem::Store { .. }) => ApiError::internal(text),
+        SplitEditError::Store(e) => store_failed(e),
+    }
+}
+
+fn unknown_split(name: &str) -> ApiError {
+    ApiError::not_found("unknown_split", format!("no split named {name:?}"))
+}
+
+/// `PUT /admin/splits/{name}`: creates or changes a split. An arm that keeps its name and what it
+/// serves keeps its record (requests and outcomes); an arm whose adapter or held version changes
+/// starts a new record.
 pub async fn put_split(
     State(state): State<SharedState>,
     headers: HeaderMap,
@@ -182,140 +84,120 @@ pub async fn put_split(
         .ok_or_else(|| ApiError::bad_request("invalid_split", "field `arms` is missing"))?;
     let arms: Vec<ArmSpec> = serde_json::from_value(arms)
         .map_err(|e| ApiError::bad_request("invalid_split", format!("field `arms`: {e}")))?;
-    let split = Split::new(SplitSpec {
-        name: name.clone(),
-        arms,
+    let spec = SplitSpec { name, arms };
+    let put = blocking(&state, move |state| {
+        state
+            .splits
+            .put_split(spec, &state.registry)
+            .map_err(edit_error)
     })
-    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?;
-    for arm in split.arms() {
-        if arm.adapter != crate::splits::BASE_MODEL
-            && state
-                .registry
-                .store()
-                .pointer(
-                    &switchyard_adapters::AdapterName::new(&arm.adapter)
-                        .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?,
-                )
-                .ok()
-                .flatten()
-                .is_none()
-        {
-            return Err(ApiError::not_found(
-                "unknown_target",
-                format!(
-                    "arm {:?} names adapter {:?}, which has no live version",
-                    arm.name, arm.adapter
-                ),
-            ));
-        }
-    }
-    let mut book = state.splits.book.lock();
-    let mut entry = fresh_entry(split);
-    let created = match book.splits.remove(&name) {
-        None => true,
-        Some(old) => {
-            for (i, arm) in entry.split.arms().iter().enumerate() {
-                if let Some(j) = old.split.arms().iter().position(|a| a.name == arm.name) {
-                    entry.requests[i] = old.requests[j];
-                    entry.numeric[i] = old.numeric[j];
-                    entry.binary[i] = old.binary[j];
-                }
-            }
-            false
-        }
-    };
-    let spec = serde_json::to_value(entry.split.spec()).expect("serialise");
-    book.splits.insert(name, entry);
-    state.registry.keep_versions(arm_versions(&book));
-    state.splits.save(&book)?;
-    let status = if created {
+    .await?;
+    let mut answer = serde_json::to_value(put.record.spec()).expect("a split serialises");
+    answer["generation"] = json!(put.record.generation);
+    let status = if put.created {
         StatusCode::CREATED
     } else {
         StatusCode::OK
     };
-    Ok((status, Json(spec)))
+    Ok((status, Json(answer)))
 }
 
-/// `DELETE /admin/splits/{name}`.
+/// `DELETE /admin/splits/{name}`: the split, its arm records and its response records.
 pub async fn delete_split(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
 ) -> Result<StatusCode, ApiError> {
     require_admin(&state, &headers)?;
-    let mut book = state.splits.book.lock();
-    if book.splits.remove(&name).is_none() {
-        return Err(ApiError::not_found(
-            "unknown_split",
-            format!("no split named {name:?}"),
-        ));
-    }
-    state.registry.keep_versions(arm_versions(&book));
-    state.splits.save(&book)?;
-    Ok(StatusCode::NO_CONTENT)
+    blocking(&state, move |state| {
+        match state.splits.delete_split(&name, &state.registry) {
+            Ok(true) => Ok(StatusCode::NO_CONTENT),
+            Ok(false) => Err(unknown_split(&name)),
+            Err(e) => Err(store_failed(e)),
+        }
+    })
+    .await
 }
 
-/// `GET /admin/splits`.
+/// `GET /admin/splits`: every split's definition, generation and requests per arm.
 pub async fn list(
     State(state): State<SharedState>,
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    let book = state.splits.book.lock();
-    let splits: Vec<Value> = book
-        .splits
-        .values()
-        .map(|e| {
-            let mut v = serde_json::to_value(e.split.spec()).expect("serialise");
-            v["requests"] = json!(e.requests);
+    let splits = blocking(&state, |state| state.splits.list().map_err(store_failed)).await?;
+    let splits: Vec<Value> = splits
+        .iter()
+        .map(|s| {
+            let mut v = serde_json::to_value(s.record().spec()).expect("a split serialises");
+            v["generation"] = json!(s.generation);
+            v["requests"] = json!(s.arms.iter().map(|a| a.requests).collect::<Vec<_>>());
             v
         })
         .collect();
     Ok(Json(json!({ "splits": splits })))
 }
 
-/// `GET /admin/splits/{name}/readout`: per arm, requests, outcomes, mean and 95% interval, and
-/// the difference to the first arm with its interval and p-value (Welch's t-test for numbers,
-/// the two-proportion z-test for yes/no).
+/// `GET /admin/splits/{name}/readout`: per current arm, requests, outcomes, mean and 95%
+/// interval, and the difference to the first arm with its interval and p-value (Welch's t-test
+/// for numbers, the two-proportion z-test for yes/no); then the arm records edits replaced, with
+/// their own summaries.
 pub async fn readout(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    // Copied out under the lock; the statistics run without it.
-    let (arm_specs, requests, numeric, binary) = {
-        let book = state.splits.book.lock();
-        let e = book.splits.get(&name).ok_or_else(|| {
-            ApiError::not_found("unknown_split", format!("no split named {name:?}"))
-        })?;
-        (
-            e.split.arms().to_vec(),
-            e.requests.clone(),
-            e.numeric.clone(),
-            e.binary.clone(),
-        )
+    let lookup = name.clone();
+    let split = blocking(&state, move |state| {
+        state.splits.split(&lookup).map_err(store_failed)
+    })
+    .await?
+    .ok_or_else(|| unknown_split(&name))?;
+    Ok(Json(readout_json(&split)))
+}
+
+fn readout_json(split: &SplitState) -> Value {
+    let numeric: Vec<NumericTally> = split.arms.iter().map(|a| a.numeric).collect();
+    let binary: Vec<BinaryTally> = split.arms.iter().map(|a| a.yes_no).collect();
+    let (numeric, binary) = (numeric_readout(&numeric), binary_readout(&binary));
+    let arm_line = |a: &ArmTally| {
+        json!({
+            "arm": a.arm.spec.name,
+            "adapter": a.arm.spec.adapter,
+            "version": a.arm.spec.version,
+            "weight": a.arm.spec.weight,
+            "requests": a.requests,
+        })
     };
-    let numeric = numeric_readout(&numeric);
-    let binary = binary_readout(&binary);
-    let arms: Vec<Value> = arm_specs
+    let arms: Vec<Value> = split
+        .arms
         .iter()
-        .enumerate()
-        .map(|(i, arm)| {
-            json!({
-                "arm": arm.name,
-                "adapter": arm.adapter,
-                "version": arm.version,
-                "weight": arm.weight,
-                "requests": requests[i],
-                "numeric": numeric[i],
-                "yes_no": binary[i],
-            })
+        .zip(numeric.iter().zip(&binary))
+        .map(|(a, (numeric, binary))| {
+            let mut line = arm_line(a);
+            line["numeric"] = json!(numeric);
+            line["yes_no"] = json!(binary);
+            line
         })
         .collect();
-    Ok(Json(
-        json!({ "split": name, "confidence": crate::splits::CONFIDENCE_LEVEL, "arms": arms }),
-    ))
+    let replaced: Vec<Value> = split
+        .replaced
+        .iter()
+        .map(|a| {
+            let mut line = arm_line(a);
+            line["numeric"] = json!({ "summary": a.numeric.summary() });
+            line["yes_no"] = json!({ "summary": a.yes_no.summary() });
+            line
+        })
+        .collect();
+    json!({
+        "split": split.name,
+        "generation": split.generation,
+        "confidence": crate::splits::CONFIDENCE_LEVEL,
+        "arms": arms,
+        "replaced_arms": replaced,
+    })
 }
 
 #[derive(Debug, Deserialize)]
@@ -325,66 +207,56 @@ pub struct OutcomeBody {
     pub value: Value,
 }
 
-/// `POST /outcomes`: records the outcome of one response that a split served (a number, or
-/// yes/no as a boolean); one outcome per response.
+/// `POST /outcomes`: records the outcome of one response that a split served (a number within
+/// ±1e15, or yes/no as a boolean); one outcome per response, and only from the tenant it was
+/// served to. The answer comes once the outcome is on disk.
 pub async fn post_outcome(
     State(state): State<SharedState>,
     headers: HeaderMap,
     ApiJson(body): ApiJson<OutcomeBody>,
 ) -> Result<Json<Value>, ApiError> {
     let tenant = state.tenants.authenticate(authorization(&headers))?;
-    let mut book = state.splits.book.lock();
-    // A response served to another tenant gets the very answer an unknown id gets, so that a key
-    // learns nothing about another tenant's responses.
-    let Some((split, arm, recorded)) = book
-        .responses
-        .get(&body.response_id)
-        .filter(|served| served.tenant == tenant.name)
-        .map(|served| (served.split.clone(), served.arm, served.recorded))
-    else {
-        return Err(ApiError::not_found(
-            "unknown_response",
-            format!(
-                "response {:?} was not served by a split to this key (or is too old to remember)",
-                body.response_id
-            ),
-        ));
-    };
-    if recorded {
-        return Err(ApiError::conflict(
-            "outcome_recorded",
-            format!("response {:?} already has an outcome", body.response_id),
-        ));
-    }
-    let entry = book.splits.get_mut(&split).ok_or_else(|| {
-        ApiError::not_found("unknown_split", format!("split {split:?} was deleted"))
-    })?;
-    if arm >= entry.numeric.len() {
-        return Err(ApiError::conflict(
-            "split_changed",
-            format!("split {split:?} no longer has that arm"),
-        ));
-    }
-    match &body.value {
-        Value::Bool(b) => entry.binary[arm].record(*b),
-        Value::Number(n) => {
-            let x = n.as_f64().unwrap_or(f64::NAN);
-            entry.numeric[arm]
-                .record(x)
-                .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?;
-        }
+    let value = match &body.value {
+        Value::Bool(b) => OutcomeValue::YesNo(*b),
+        Value::Number(n) => OutcomeValue::Number(n.as_f64().unwrap_or(f64::NAN)),
         _ => {
             return Err(ApiError::bad_request(
                 "invalid_outcome",
                 "field `value` must be a number or true/false",
             ));
         }
+    };
+    let response_id = body.response_id.clone();
+    let recorded = blocking(&state, move |state| {
+        state
+            .splits
+            .post_outcome(&response_id, &tenant.name, value)
+            .map_err(|e| outcome_error(e, &response_id))
+    })
+    .await?;
+    Ok(Json(json!({
+        "response_id": body.response_id,
+        "split": recorded.split,
+        "arm": recorded.arm,
+        "recorded": true,
+    })))
+}
+
+fn outcome_error(e: OutcomeRefused, response_id: &str) -> ApiError {
+    match e {
+        // The same words whether the id is unknown, pruned, of a deleted split or another
+        // tenant's: a key learns nothing about responses it was not served.
+        OutcomeRefused::UnknownResponse => ApiError::not_found(
+            "unknown_response",
+            format!(
+                "response {response_id:?} was not served by a split to this key (or is older than the retention, or its split was deleted)"
+            ),
+        ),
+        OutcomeRefused::AlreadyRecorded => ApiError::conflict(
+            "outcome_recorded",
+            format!("response {response_id:?} already has an outcome"),
+        ),
+        OutcomeRefused::Invalid(e) => ApiError::bad_request("invalid_outcome", e.to_string()),
+        OutcomeRefused::Store(e) => store_failed(e),
     }
-    let arm_name = entry.split.arms()[arm].name.clone();
-    if let Some(served) = book.responses.get_mut(&body.response_id) {
-        served.recorded = true;
-    }
-    Ok(Json(
-        json!({"response_id": body.response_id, "split": split, "arm": arm_name, "recorded": true}),
-    ))
 }
