@@ -118,6 +118,15 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     }
     let store = Store::open(&store_dir, Limits::default())
         .with_context(|| format!("opening the store {}", store_dir.display()))?;
+    let unfinished = store
+        .remove_unfinished_writes()
+        .with_context(|| format!("cleaning the store {}", store_dir.display()))?;
+    if unfinished > 0 {
+        tracing::warn!(
+            files = unfinished,
+            "removed unfinished writes an earlier process left in the store"
+        );
+    }
     let weights = backbone.clone();
     let registry = Registry::new(
         store,

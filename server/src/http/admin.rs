@@ -38,6 +38,9 @@ fn store_error(e: StoreError) -> ApiError {
         StoreError::UnknownVersion { .. } => ApiError::not_found("unknown_version", text),
         StoreError::NothingToRollBack { .. } => ApiError::conflict("no_previous_version", text),
         StoreError::RetireLive { .. } => ApiError::conflict("version_is_live", text),
+        StoreError::Io { .. } if e.is_storage_full() => {
+            ApiError::new(StatusCode::INSUFFICIENT_STORAGE, "store_full", text)
+        }
         _ => ApiError::internal(text),
     }
 }
