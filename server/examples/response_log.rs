@@ -23,13 +23,18 @@ fn flag<'a>(args: &'a [String], name: &str) -> Option<&'a str> {
         .map(String::as_str)
 }
 
+/// A record with an id shaped like the server's (`r-` and 24 hex digits); `tag` and `i` only make
+/// it unique.
 fn served(generation: i64, arm_id: i64, tag: &str, i: usize) -> ServedResponse {
+    use std::hash::{DefaultHasher, Hash, Hasher};
+    let mut hasher = DefaultHasher::new();
+    (tag, i).hash(&mut hasher);
     ServedResponse {
-        response_id: format!("r-{tag}-{i}"),
+        response_id: format!("r-{:016x}{:08x}", hasher.finish(), i),
         generation,
         arm_id,
         tenant: "default".to_owned(),
-        served_ms: 0,
+        served_ms: 1_800_000_000_000 + i as i64,
     }
 }
 
@@ -142,4 +147,19 @@ fn main() {
             Some(base),
         );
     }
+    // What the records take on disk, to size the retention: the database file after a checkpoint
+    // folds the write-ahead log into it, over the records written.
+    drop(log);
+    let written = 200 + records * modes.len();
+    let store = Arc::into_inner(store).expect("the log has let go of the store");
+    let path = store.path().to_owned();
+    drop(store);
+    let conn = rusqlite::Connection::open(&path).unwrap();
+    conn.query_row("PRAGMA wal_checkpoint(TRUNCATE)", [], |_| Ok(()))
+        .unwrap();
+    let bytes = std::fs::metadata(&path).unwrap().len();
+    println!(
+        "database: {bytes} bytes for about {written} response records, {:.0} bytes per record",
+        bytes as f64 / written as f64
+    );
 }

@@ -105,8 +105,8 @@ fn db(action: &'static str) -> impl FnOnce(rusqlite::Error) -> ExperimentError {
 impl SqliteStore {
     /// Opens the database at `path`, creating the file and its schema when missing.
     pub fn open(path: &Path) -> Result<Self, ExperimentError> {
-        let writer = connect(path)?;
-        migrate(&writer, path)?;
+        let mut writer = connect(path)?;
+        migrate(&mut writer, path)?;
         let reader = connect(path)?;
         Ok(Self {
             path: path.to_owned(),
@@ -141,16 +141,19 @@ fn connect(path: &Path) -> Result<Connection, ExperimentError> {
     Ok(conn)
 }
 
-fn migrate(conn: &Connection, path: &Path) -> Result<(), ExperimentError> {
-    let version: i64 = conn
+fn migrate(conn: &mut Connection, path: &Path) -> Result<(), ExperimentError> {
+    // Under the write lock, so that two processes opening a new file at once create the schema
+    // once: the second finds the version the first wrote.
+    let tx = begin(conn)?;
+    let version: i64 = tx
         .query_row("PRAGMA user_version", [], |r| r.get(0))
         .map_err(db("reading the schema version"))?;
     match version {
-        0 => conn
-            .execute_batch(&format!(
-                "BEGIN IMMEDIATE; {SCHEMA} PRAGMA user_version = {SCHEMA_VERSION}; COMMIT;"
-            ))
-            .map_err(db("creating the schema")),
+        0 => {
+            tx.execute_batch(&format!("{SCHEMA} PRAGMA user_version = {SCHEMA_VERSION};"))
+                .map_err(db("creating the schema"))?;
+            tx.commit().map_err(db("creating the schema"))
+        }
         SCHEMA_VERSION => Ok(()),
         other => Err(ExperimentError::Corrupt(format!(
             "{} has schema version {other}; this switchyard reads version {SCHEMA_VERSION} (a newer switchyard wrote it)",
