@@ -8,6 +8,7 @@ pub mod experiments;
 pub mod http;
 pub mod metrics;
 pub mod model;
+pub mod numbers;
 pub mod splits;
 pub(crate) mod sync;
 pub mod train;

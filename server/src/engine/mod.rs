@@ -8,8 +8,10 @@
 //! the next step, every live sequence advances one token per step, and a sequence whose client
 //! went away is dropped with its KV cache at the next step.
 
+pub mod detok;
 pub mod policy;
 
+use std::panic::AssertUnwindSafe;
 use std::sync::Arc;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::thread::JoinHandle;
@@ -26,6 +28,7 @@ use crate::model::linear::RowAdapters;
 use crate::model::llama::KvCache;
 use crate::model::rows_for_sequences;
 use crate::model::sampling::{Sampler, SamplingParams};
+use detok::Detokenizer;
 use policy::PromotionPolicy;
 
 /// The model the engine owns: one family per server. Only one exists per process, so the size
@@ -109,10 +112,14 @@ pub enum GenEvent {
     },
     Done {
         finish: &'static str,
+        /// The whole output decoded at once: what the non-streamed answer returns.
+        text: String,
         /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
         /// back in case the next token completed it (usually empty).
         tail: String,
         prompt_tokens: usize,
+        /// Tokens generated, not counting an end-of-sequence token (which is not part of the
+        /// output): the length of the answer's `token_ids`.
         output_tokens: usize,
         timings: Timings,
     },
@@ -194,6 +201,11 @@ impl Engine {
             }
             Err(mpsc::error::TrySendError::Closed(_)) => Err(EngineError::ShuttingDown),
         }
+    }
+
+    /// Whether the engine thread is alive (readiness turns 503 if it is not).
+    pub fn is_running(&self) -> bool {
+        self.thread.as_ref().is_some_and(|t| !t.is_finished())
     }
 
     /// Jobs waiting for the engine thread.
@@ -316,7 +328,15 @@ impl Worker {
                     Err(_) => break,
                 }
             }
-            self.run_embed_batch(e, batch);
+            // A panic in one batch (a bug in model code) fails that batch's requests, whose
+            // reply channels drop, and the engine goes on with the next.
+            if std::panic::catch_unwind(AssertUnwindSafe(|| self.run_embed_batch(e, batch)))
+                .is_err()
+            {
+                tracing::error!(
+                    "an embedding batch panicked; its requests failed, the engine goes on"
+                );
+            }
         }
     }
 
@@ -414,7 +434,7 @@ impl Worker {
                 match rx.blocking_recv() {
                     Some(job) => {
                         self.took();
-                        self.admit(g, job, &mut live, &eos);
+                        self.admit_guarded(g, job, &mut live, &eos);
                     }
                     None => return,
                 }
@@ -423,7 +443,7 @@ impl Worker {
                 match rx.try_recv() {
                     Ok(job) => {
                         self.took();
-                        self.admit(g, job, &mut live, &eos);
+                        self.admit_guarded(g, job, &mut live, &eos);
                     }
                     Err(mpsc::error::TryRecvError::Empty) => break,
                     Err(mpsc::error::TryRecvError::Disconnected) => closed = true,
@@ -436,7 +456,7 @@ impl Worker {
                     tracing::debug!("client disconnected; generation stopped and its cache freed");
                     false
                 } else if now > s.job.deadline {
-                    s.finish("deadline", g, &eos, &self.metrics);
+                    s.finish("deadline", g, &self.metrics);
                     false
                 } else {
                     true
@@ -445,7 +465,22 @@ impl Worker {
             if live.is_empty() {
                 continue;
             }
-            self.decode_step(g, &mut live, &eos);
+            if std::panic::catch_unwind(AssertUnwindSafe(|| self.decode_step(g, &mut live, &eos)))
+                .is_err()
+            {
+                tracing::error!(
+                    sequences = live.len(),
+                    "a decode step panicked; its sequences failed, the engine goes on"
+                );
+                live.clear();
+            }
+        }
+    }
+
+    /// [`Worker::admit`], with a panic in the prefill failing only that request.
+    fn admit_guarded(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>, eos: &[u32]) {
+        if std::panic::catch_unwind(AssertUnwindSafe(|| self.admit(g, job, live, eos))).is_err() {
+            tracing::error!("a prefill panicked; its request failed, the engine goes on");
         }
     }
 
@@ -469,7 +504,8 @@ impl Worker {
         let mut seq = Sequence {
             cache: g.model().new_cache(),
             sampler: Sampler::new(job.sampling),
-            out: Vec::new(),
+            last: 0,
+            detok: Detokenizer::new(),
             sent_text: String::new(),
             started,
             first_token: None,
@@ -498,10 +534,7 @@ impl Worker {
 
     fn decode_step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
         let _span = tracing::trace_span!("decode_step", rows = live.len()).entered();
-        let tokens: Vec<[u32; 1]> = live
-            .iter()
-            .map(|s| [*s.out.last().expect("one token at admission")])
-            .collect();
+        let tokens: Vec<[u32; 1]> = live.iter().map(|s| [s.last]).collect();
         let token_refs: Vec<&[u32]> = tokens.iter().map(|t| t.as_slice()).collect();
         let first_key = adapter_key(&live[0].job.adapter);
         let uniform = live
@@ -557,7 +590,10 @@ struct Sequence {
     job: GenerateJob,
     cache: KvCache,
     sampler: Sampler,
-    out: Vec<u32>,
+    /// The token sampled last: the input of the next step.
+    last: u32,
+    /// The output so far (end-of-sequence token excluded) and its streamed text.
+    detok: Detokenizer,
     sent_text: String,
     started: Instant,
     first_token: Option<Duration>,
@@ -572,63 +608,42 @@ impl Sequence {
             metrics.first_token_seconds.observe(d.as_secs_f64());
         }
         metrics.generated_tokens.inc();
-        let is_eos = eos.contains(&token);
-        if !is_eos {
-            self.out.push(token);
-            let text = g.decode(&self.out).unwrap_or_default();
-            // Hold back a trailing partial character until the next token completes it.
-            let ready = if text.ends_with('\u{FFFD}') {
-                ""
-            } else {
-                text.as_str()
-            };
-            let delta = if ready.starts_with(&self.sent_text) {
-                ready[self.sent_text.len()..].to_owned()
-            } else {
-                String::new()
-            };
-            if !ready.is_empty() && ready.starts_with(&self.sent_text) {
-                self.sent_text = ready.to_owned();
-            }
-            if self
-                .job
-                .events
-                .send(GenEvent::Token {
-                    id: token,
-                    text: delta,
-                })
-                .is_err()
-            {
-                return false;
-            }
-        } else {
-            self.out.push(token);
-        }
-        if is_eos {
-            self.finish("eos", g, eos, metrics);
+        self.last = token;
+        if eos.contains(&token) {
+            self.finish("eos", g, metrics);
             return false;
         }
-        if self.out.len() >= self.job.limit {
-            self.finish("limit", g, eos, metrics);
+        let decode = |ids: &[u32]| g.decode(ids).unwrap_or_default();
+        let delta = self.detok.push(token, &decode);
+        self.sent_text.push_str(&delta);
+        if self
+            .job
+            .events
+            .send(GenEvent::Token {
+                id: token,
+                text: delta,
+            })
+            .is_err()
+        {
+            return false;
+        }
+        if self.detok.ids().len() >= self.job.limit {
+            self.finish("limit", g, metrics);
             return false;
         }
         true
     }
 
-    fn finish(&self, reason: &'static str, g: &Generator, eos: &[u32], metrics: &Metrics) {
+    fn finish(&self, reason: &'static str, g: &Generator, metrics: &Metrics) {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
-        let kept: Vec<u32> = self
-            .out
-            .iter()
-            .copied()
-            .filter(|t| !eos.contains(t))
-            .collect();
+        let text = g.decode(self.detok.ids()).unwrap_or_default();
         let _ = self.job.events.send(GenEvent::Done {
             finish: reason,
-            tail: unsent_tail(&g.decode(&kept).unwrap_or_default(), &self.sent_text),
+            tail: unsent_tail(&text, &self.sent_text),
+            text,
             prompt_tokens: self.job.prompt_ids.len(),
-            output_tokens: self.out.len(),
+            output_tokens: self.detok.ids().len(),
             timings: Timings {
                 queue: self
                     .started

@@ -64,6 +64,8 @@ fn edit_error(e: SplitEditError) -> ApiError {
     }
 }
 
+/// An admin asking for a split that does not exist (the admin sees every split, so the words
+/// differ from the tenant's `ApiError::unknown_split`).
 fn unknown_split(name: &str) -> ApiError {
     ApiError::not_found("unknown_split", format!("no split named {name:?}"))
 }
@@ -110,8 +112,24 @@ pub async fn delete_split(
 ) -> Result<StatusCode, ApiError> {
     require_admin(&state, &headers)?;
     blocking(&state, move |state| {
+        // The arm names, current and replaced, whose request series the metrics drop.
+        let arms: Vec<String> = state
+            .splits
+            .split(&name)
+            .map_err(store_failed)?
+            .map(|s| {
+                s.arms
+                    .iter()
+                    .chain(&s.replaced)
+                    .map(|a| a.arm.spec.name.clone())
+                    .collect()
+            })
+            .unwrap_or_default();
         match state.splits.delete_split(&name, &state.registry) {
-            Ok(true) => Ok(StatusCode::NO_CONTENT),
+            Ok(true) => {
+                state.metrics.forget_split(&name, &arms);
+                Ok(StatusCode::NO_CONTENT)
+            }
             Ok(false) => Err(unknown_split(&name)),
             Err(e) => Err(store_failed(e)),
         }
