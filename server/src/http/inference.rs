@@ -18,11 +18,11 @@ use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::{Backbone, EmbedJob, EngineError, GenEvent, GenerateJob, Job, Timings};
-use crate::http::SharedState;
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::http::splits::authorization;
+use crate::http::{RequestLimits, SharedState};
 use crate::model::sampling::SamplingParams;
 
 /// Who serves a request, fixed at admission.
@@ -252,6 +252,28 @@ pub struct EmbedBody {
     pub texts: Vec<String>,
 }
 
+impl EmbedBody {
+    /// The checks on the body alone, before anything is tokenised (the fuzz target
+    /// `http_bodies` runs them too).
+    pub fn check(&self, limits: &RequestLimits) -> Result<(), ApiError> {
+        if self.texts.is_empty() {
+            return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
+        }
+        if self.texts.len() > limits.max_texts {
+            return Err(ApiError::new(
+                axum::http::StatusCode::PAYLOAD_TOO_LARGE,
+                "too_many_texts",
+                format!(
+                    "{} texts in one request; the limit is {}",
+                    self.texts.len(),
+                    limits.max_texts
+                ),
+            ));
+        }
+        Ok(())
+    }
+}
+
 fn encoder(state: &SharedState, endpoint: &str) -> Result<(), ApiError> {
     match &*state.backbone {
         Backbone::Encoder(_) => Ok(()),
@@ -273,20 +295,7 @@ async fn run_embed(
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
     let tenant = state.tenants.authenticate(authorization(headers))?;
     encoder(state, endpoint)?;
-    if body.texts.is_empty() {
-        return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
-    }
-    if body.texts.len() > state.limits.max_texts {
-        return Err(ApiError::new(
-            axum::http::StatusCode::PAYLOAD_TOO_LARGE,
-            "too_many_texts",
-            format!(
-                "{} texts in one request; the limit is {}",
-                body.texts.len(),
-                state.limits.max_texts
-            ),
-        ));
-    }
+    body.check(&state.limits)?;
     let Backbone::Encoder(e) = &*state.backbone else {
         unreachable!()
     };
@@ -433,6 +442,32 @@ pub struct GenerateBody {
     pub stream: bool,
 }
 
+impl GenerateBody {
+    /// The checks on the body alone, before the prompt is tokenised (the fuzz target
+    /// `http_bodies` runs them too): the output token limit and the sampling parameters.
+    pub fn check(&self, limits: &RequestLimits) -> Result<(usize, SamplingParams), ApiError> {
+        let limit = self.max_tokens.unwrap_or(64.min(limits.max_output_tokens));
+        if limit == 0 || limit > limits.max_output_tokens {
+            return Err(ApiError::bad_request(
+                "too_many_tokens",
+                format!(
+                    "max_tokens {limit} is out of range: expected 1 to {}",
+                    limits.max_output_tokens
+                ),
+            ));
+        }
+        let sampling = SamplingParams {
+            temperature: self.temperature,
+            top_p: self.top_p.unwrap_or(1.0),
+            seed: self.seed.unwrap_or(0),
+        };
+        sampling
+            .validate()
+            .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
+        Ok((limit, sampling))
+    }
+}
+
 /// `POST /generate`: a continuation, as one JSON answer or (with `"stream": true`) an SSE
 /// stream of `token` events closed by a `done` event with counts and timings.
 pub async fn generate(
@@ -521,26 +556,7 @@ async fn start_generation(
             "/generate needs a decoder base model; this server runs an encoder (use /embed or /classify)",
         ));
     };
-    let limit = body
-        .max_tokens
-        .unwrap_or(64.min(state.limits.max_output_tokens));
-    if limit == 0 || limit > state.limits.max_output_tokens {
-        return Err(ApiError::bad_request(
-            "too_many_tokens",
-            format!(
-                "max_tokens {limit} is out of range: expected 1 to {}",
-                state.limits.max_output_tokens
-            ),
-        ));
-    }
-    let sampling = SamplingParams {
-        temperature: body.temperature,
-        top_p: body.top_p.unwrap_or(1.0),
-        seed: body.seed.unwrap_or(0),
-    };
-    sampling
-        .validate()
-        .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
+    let (limit, sampling) = body.check(&state.limits)?;
     let prompt_ids = g
         .encode(&body.prompt)
         .map_err(|e| ApiError::bad_request("untokenizable", format!("{e:#}")))?;
