@@ -531,4 +531,20 @@ mod tests {
         let unknown = r#"{"name": "s", "arms": [], "seed": 3}"#;
         assert!(serde_json::from_str::<SplitSpec>(unknown).is_err());
     }
+
+    #[test]
+    fn split_weight_moved_by_one_ulp_when_saved_and_read_back() {
+        // Found by the `http_bodies` fuzz target: without serde_json's correctly rounded float
+        // parsing, this weight read as one f64, was saved (and answered) as its shortest form,
+        // and that text read back as the neighbouring f64, so the split changed across a restart.
+        let body = r#"{"name": "fork-test", "arms": [
+            {"name": "incumbent", "adapter": "fork-advice", "weight": 111111110111111151115.1},
+            {"name": "control", "adapter": "base", "weight": 5}
+        ]}"#;
+        let spec: SplitSpec = serde_json::from_str(body).unwrap();
+        let saved = serde_json::to_string(&spec).unwrap();
+        let reread: SplitSpec = serde_json::from_str(&saved).unwrap();
+        assert_eq!(reread, spec, "saved as {saved}");
+        assert_eq!(Split::new(reread).unwrap(), Split::new(spec).unwrap());
+    }
 }
