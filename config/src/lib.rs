@@ -205,7 +205,8 @@ impl Settings {
     }
 
     /// The work of [`Settings::load_with`] once the file is read; `path` only labels errors.
-    pub(crate) fn from_text(
+    /// Public for the config fuzz target, which feeds it text without a file.
+    pub fn from_text(
         text: &str,
         path: &Path,
         env: impl IntoIterator<Item = (String, String)>,

@@ -577,3 +577,153 @@ fn experiments_survive_a_crash_of_the_server() {
         "the database lives in the store folder"
     );
 }
+
+/// The issue's report: deleting a split left its arms' request series in `/metrics` for ever
+/// (`Metrics::forget_split` existed but the delete handler never called it), so label
+/// cardinality grew with every split ever made. The series go with the split, also those of an
+/// arm an edit renamed, and other splits' series stay.
+#[test]
+fn deleted_split_left_its_series_in_metrics() {
+    let server = ServerSetup::encoder().start();
+    let arms = json!([{"name": "first-name", "adapter": "base", "weight": 1}]);
+    assert_eq!(put_split(&server, "gone-trial", arms).status, 201);
+    responses_by_arm(&server, "gone-trial", "before", &["first-name"], 1);
+    let renamed = json!([{"name": "second-name", "adapter": "base", "weight": 1}]);
+    assert_eq!(put_split(&server, "gone-trial", renamed).status, 200);
+    responses_by_arm(&server, "gone-trial", "after", &["second-name"], 1);
+    let kept = json!([{"name": "control", "adapter": "base", "weight": 1}]);
+    assert_eq!(put_split(&server, "kept-trial", kept).status, 201);
+    responses_by_arm(&server, "kept-trial", "kept", &["control"], 1);
+
+    let series = |page: &str, split: &str| -> Vec<String> {
+        page.lines()
+            .filter(|l| !l.starts_with('#') && l.contains(&format!("split=\"{split}\"")))
+            .map(str::to_owned)
+            .collect()
+    };
+    let page = server.get("/metrics", Auth::Admin);
+    assert_eq!(page.status, 200, "{}", page.body);
+    let gone = series(&page.body, "gone-trial");
+    assert!(
+        gone.iter().any(|l| l.contains("arm=\"first-name\""))
+            && gone.iter().any(|l| l.contains("arm=\"second-name\"")),
+        "both arms' series before the delete: {gone:?}"
+    );
+
+    let deleted = server.request("DELETE", "/admin/splits/gone-trial", Auth::Admin, None);
+    assert_eq!(deleted.status, 204, "{}", deleted.body);
+    let page = server.get("/metrics", Auth::Admin);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert_eq!(
+        series(&page.body, "gone-trial"),
+        Vec::<String>::new(),
+        "the deleted split's series are gone"
+    );
+    assert!(
+        !series(&page.body, "kept-trial").is_empty(),
+        "another split's series stay:\n{}",
+        page.body
+    );
+}
+
+/// The issue's report: admin bodies took unknown fields silently (`{"arms": [...], "arm": ...}`
+/// or an arm's misspelt `wieght` were not refused as inference bodies are). Every admin JSON
+/// body now refuses them with 400 `invalid_field` naming the field, and nothing is written.
+#[test]
+fn admin_body_with_an_unknown_field_was_accepted() {
+    let server = ServerSetup::encoder().start();
+    let put = |body: Value| {
+        server.request(
+            "PUT",
+            "/admin/splits/typo-trial",
+            Auth::Admin,
+            Some(("application/json", body.to_string().as_bytes())),
+        )
+    };
+    let arms = json!([{"name": "control", "adapter": "base", "weight": 1}]);
+    for (body, field) in [
+        (json!({"arms": arms, "rollout": "slow"}), "`rollout`"),
+        (
+            json!({"arms": [{"name": "control", "adapter": "base", "wieght": 1}]}),
+            "`wieght`",
+        ),
+        (
+            json!({"arms": [{"name": "control", "adapter": "base", "weight": 1, "notes": "x"}]}),
+            "`notes`",
+        ),
+    ] {
+        let reply = put(body.clone());
+        reply.assert_error(400, "invalid_field");
+        let message = reply.json()["error"]["message"]
+            .as_str()
+            .unwrap()
+            .to_owned();
+        assert!(message.contains(field), "{body}: {message}");
+    }
+    let missing = put(json!({}));
+    missing.assert_error(400, "invalid_field");
+    assert!(missing.body.contains("arms"), "{}", missing.body);
+    let listed = server.get("/admin/splits", Auth::Admin).ok_json();
+    assert_eq!(listed["splits"], json!([]), "nothing was written");
+    assert_eq!(put(json!({ "arms": arms })).status, 201);
+
+    server.publish("typo-adapter", &fixtures().join("minilm-qv-a.safetensors"));
+    let live = server.request(
+        "POST",
+        "/admin/adapters/typo-adapter/live",
+        Auth::Admin,
+        Some((
+            "application/json",
+            json!({"version": "0000000000000000", "force": true})
+                .to_string()
+                .as_bytes(),
+        )),
+    );
+    live.assert_error(400, "invalid_field");
+    assert!(live.body.contains("`force`"), "{}", live.body);
+}
+
+/// The issue's report: split weights that overflow were not refused. Each weight must be finite
+/// and at least 0 and their sum finite; a weight JSON cannot hold as a finite number is refused
+/// while the body is read. Each refusal is a 400 that says which weight or that the sum is too
+/// large, and the server keeps serving.
+#[test]
+fn split_weights_that_overflow_were_accepted() {
+    let server = ServerSetup::encoder().start();
+    let put_raw = |body: &str| {
+        server.request(
+            "PUT",
+            "/admin/splits/heavy-trial",
+            Auth::Admin,
+            Some(("application/json", body.as_bytes())),
+        )
+    };
+    let sum = put_raw(
+        r#"{"arms": [{"name": "a", "adapter": "base", "weight": 1e308},
+                     {"name": "b", "adapter": "base", "weight": 1e308}]}"#,
+    );
+    sum.assert_error(400, "invalid_split");
+    assert!(sum.body.contains("add up"), "{}", sum.body);
+    let negative = put_raw(
+        r#"{"arms": [{"name": "a", "adapter": "base", "weight": 1},
+                     {"name": "b", "adapter": "base", "weight": -0.5}]}"#,
+    );
+    negative.assert_error(400, "invalid_split");
+    assert!(
+        negative.body.contains("arms[1].weight"),
+        "{}",
+        negative.body
+    );
+    let infinite = put_raw(r#"{"arms": [{"name": "a", "adapter": "base", "weight": 1e400}]}"#);
+    assert_eq!(infinite.status, 400, "{}", infinite.body);
+    assert!(infinite.body.contains("out of range"), "{}", infinite.body);
+    let listed = server.get("/admin/splits", Auth::Admin).ok_json();
+    assert_eq!(listed["splits"], json!([]), "nothing was written");
+    // The largest weights whose sum is finite are a valid split, and it serves.
+    let huge = put_raw(
+        r#"{"arms": [{"name": "a", "adapter": "base", "weight": 8.9e307},
+                     {"name": "b", "adapter": "base", "weight": 8.9e307}]}"#,
+    );
+    assert_eq!(huge.status, 201, "{}", huge.body);
+    responses_by_arm(&server, "heavy-trial", "heavy", &["a", "b"], 1);
+}

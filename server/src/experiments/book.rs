@@ -13,7 +13,7 @@ use std::time::Duration;
 use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::Registry;
 
-use crate::splits::{ArmSpec, NumericTally, Split, SplitError, SplitSpec};
+use crate::splits::{ArmSpec, NumericTally, Split, SplitError};
 use crate::sync::{Mutex, MutexGuard, RwLock};
 
 use super::arms::{ArmProblem, check_arms};
@@ -146,14 +146,9 @@ impl Experiments {
         })
     }
 
-    /// Creates or changes a split, after checking that every arm serves something `registry`'s
+    /// Creates or changes a split (validated by [`Split::new`]), after checking that every arm serves something `registry`'s
     /// store has; durable when it returns. The registry is told which versions arms hold.
-    pub fn put_split(
-        &self,
-        spec: SplitSpec,
-        registry: &Registry,
-    ) -> Result<PutSplit, SplitEditError> {
-        let split = Split::new(spec)?;
+    pub fn put_split(&self, split: Split, registry: &Registry) -> Result<PutSplit, SplitEditError> {
         let _edit = self.edits.lock();
         check_arms(registry.store(), &split)?;
         let put = self.store.put_split(split.spec(), now_ms())?;

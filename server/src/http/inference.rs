@@ -19,10 +19,10 @@ use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Timings};
 use crate::experiments::responses::Receipt;
-use crate::http::SharedState;
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
+use crate::http::{Bounds, SharedState};
 use crate::model::sampling::SamplingParams;
 
 /// Who serves a request, fixed at admission.
@@ -302,8 +302,8 @@ fn too_large(code: &'static str, message: String) -> ApiError {
 }
 
 /// Refuses a text over the byte bound before any tokenizer time is spent on it.
-fn check_text_bytes(state: &SharedState, field: &str, text: &str) -> Result<(), ApiError> {
-    let limit = state.bounds.text_bytes;
+fn check_text_bytes(bounds: &Bounds, field: &str, text: &str) -> Result<(), ApiError> {
+    let limit = bounds.text_bytes;
     if text.len() > limit {
         return Err(too_large(
             "text_too_large",
@@ -327,6 +327,30 @@ async fn off_the_runtime<T: Send + 'static>(
         .map_err(|err| ApiError::bad_request("untokenizable", format!("{err:#}")))
 }
 
+impl EmbedBody {
+    /// The checks on the body alone, before anything is tokenised (the fuzz target
+    /// `http_bodies` runs them too): texts present, not too many, none over the byte bound.
+    pub fn check(&self, bounds: &Bounds) -> Result<(), ApiError> {
+        if self.texts.is_empty() {
+            return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
+        }
+        if self.texts.len() > bounds.texts_per_request {
+            return Err(too_large(
+                "too_many_texts",
+                format!(
+                    "{} texts in one request; the limit is {}",
+                    self.texts.len(),
+                    bounds.texts_per_request
+                ),
+            ));
+        }
+        for (i, text) in self.texts.iter().enumerate() {
+            check_text_bytes(bounds, &format!("texts[{i}]"), text)?;
+        }
+        Ok(())
+    }
+}
+
 fn encoder(state: &SharedState, endpoint: &str) -> Result<(), ApiError> {
     match &*state.backbone {
         Backbone::Encoder(_) => Ok(()),
@@ -347,22 +371,7 @@ async fn run_embed(
     id: &str,
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
     encoder(state, endpoint)?;
-    if body.texts.is_empty() {
-        return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
-    }
-    if body.texts.len() > state.bounds.texts_per_request {
-        return Err(too_large(
-            "too_many_texts",
-            format!(
-                "{} texts in one request; the limit is {}",
-                body.texts.len(),
-                state.bounds.texts_per_request
-            ),
-        ));
-    }
-    for (i, text) in body.texts.iter().enumerate() {
-        check_text_bytes(state, &format!("texts[{i}]"), text)?;
-    }
+    body.check(&state.bounds)?;
     let backbone = state.backbone.clone();
     let texts = body.texts;
     let (ids, counts) = off_the_runtime(move || {
@@ -516,6 +525,32 @@ pub struct GenerateBody {
     pub stream: bool,
 }
 
+impl GenerateBody {
+    /// The checks on the body alone, before the prompt is tokenised (the fuzz target
+    /// `http_bodies` runs them too): the output token limit and the sampling parameters.
+    /// The prompt's byte bound is checked here too, so nothing is tokenised for a huge one.
+    pub fn check(&self, bounds: &Bounds) -> Result<(usize, SamplingParams), ApiError> {
+        let most = bounds.generated_tokens;
+        let limit = self.max_tokens.unwrap_or(DEFAULT_MAX_TOKENS.min(most));
+        if limit == 0 || limit > most {
+            return Err(ApiError::bad_request(
+                "invalid_max_tokens",
+                format!("max_tokens {limit} is out of range: expected 1 to {most}"),
+            ));
+        }
+        let sampling = SamplingParams {
+            temperature: self.temperature,
+            top_p: self.top_p.unwrap_or(1.0),
+            seed: self.seed.unwrap_or(0),
+        };
+        sampling
+            .validate()
+            .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
+        check_text_bytes(bounds, "prompt", &self.prompt)?;
+        Ok((limit, sampling))
+    }
+}
+
 /// `POST /generate`: a continuation, as one JSON answer or (with `"stream": true`) an SSE
 /// stream of `token` events closed by a `done` event with counts and elapsed times.
 pub async fn generate(
@@ -599,23 +634,7 @@ async fn start_generation(
             "/generate needs a decoder base model; this server runs an encoder (use /embed or /classify)",
         ));
     };
-    let most = state.bounds.generated_tokens;
-    let limit = body.max_tokens.unwrap_or(DEFAULT_MAX_TOKENS.min(most));
-    if limit == 0 || limit > most {
-        return Err(ApiError::bad_request(
-            "invalid_max_tokens",
-            format!("max_tokens {limit} is out of range: expected 1 to {most}"),
-        ));
-    }
-    let sampling = SamplingParams {
-        temperature: body.temperature,
-        top_p: body.top_p.unwrap_or(1.0),
-        seed: body.seed.unwrap_or(0),
-    };
-    sampling
-        .validate()
-        .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
-    check_text_bytes(state, "prompt", &body.prompt)?;
+    let (limit, sampling) = body.check(&state.bounds)?;
     let positions = g.model().config.max_position_embeddings;
     let backbone = state.backbone.clone();
     let prompt = body.prompt;

@@ -17,7 +17,7 @@ use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::splits::{
-    ArmSpec, BinaryTally, NumericTally, SplitSpec, binary_readout, numeric_readout,
+    ArmSpec, BinaryTally, NumericTally, Split, SplitSpec, binary_readout, numeric_readout,
 };
 
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
@@ -70,6 +70,25 @@ fn unknown_split(name: &str) -> ApiError {
     ApiError::not_found("unknown_split", format!("no split named {name:?}"))
 }
 
+/// The body of `PUT /admin/splits/{name}`. Like every JSON body, a field it does not know is
+/// refused (400 `invalid_field`, naming the field), so a misspelt key is never silently ignored.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SplitBody {
+    pub arms: Vec<ArmSpec>,
+}
+
+/// The split a `PUT /admin/splits/{name}` body defines, validated (the fuzz target
+/// `http_bodies` runs this too); whether its adapters and versions exist is checked when the
+/// split is written.
+pub fn split_from_body(name: &str, body: SplitBody) -> Result<Split, ApiError> {
+    Split::new(SplitSpec {
+        name: name.to_owned(),
+        arms: body.arms,
+    })
+    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))
+}
+
 /// `PUT /admin/splits/{name}`: creates or changes a split. An arm that keeps its name and what it
 /// serves keeps its record (requests and outcomes); an arm whose adapter or held version changes
 /// starts a new record.
@@ -77,20 +96,14 @@ pub async fn put_split(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
-    ApiJson(body): ApiJson<Value>,
+    ApiJson(body): ApiJson<SplitBody>,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     require_admin(&state, &headers)?;
-    let arms = body
-        .get("arms")
-        .cloned()
-        .ok_or_else(|| ApiError::bad_request("invalid_split", "field `arms` is missing"))?;
-    let arms: Vec<ArmSpec> = serde_json::from_value(arms)
-        .map_err(|e| ApiError::bad_request("invalid_split", format!("field `arms`: {e}")))?;
-    let spec = SplitSpec { name, arms };
+    let split = split_from_body(&name, body)?;
     let put = blocking(&state, move |state| {
         state
             .splits
-            .put_split(spec, &state.registry)
+            .put_split(split, &state.registry)
             .map_err(edit_error)
     })
     .await?;
@@ -225,6 +238,42 @@ pub struct OutcomeBody {
     pub value: Value,
 }
 
+/// An outcome's `value` as the experiments take it: a number within ±1e15, or yes/no as a
+/// boolean; anything else is refused with `invalid_outcome`.
+pub fn outcome_value(value: &Value) -> Result<OutcomeValue, ApiError> {
+    let refused =
+        |e: crate::splits::OutcomeError| ApiError::bad_request("invalid_outcome", e.to_string());
+    match value {
+        Value::Bool(b) => Ok(OutcomeValue::YesNo(*b)),
+        Value::Number(n) => {
+            let x = n.as_f64().unwrap_or(f64::NAN);
+            NumericTally::check(x).map_err(refused)?;
+            Ok(OutcomeValue::Number(x))
+        }
+        _ => Err(ApiError::bad_request(
+            "invalid_outcome",
+            "field `value` must be a number or true/false",
+        )),
+    }
+}
+
+/// Records an outcome's `value` in the tally of its kind, as the experiment store does on the
+/// arm record that served the response (the fuzz target `http_bodies` runs this). A refused
+/// value leaves both tallies as they were.
+pub fn record_outcome(
+    numeric: &mut NumericTally,
+    binary: &mut BinaryTally,
+    value: &Value,
+) -> Result<(), ApiError> {
+    match outcome_value(value)? {
+        OutcomeValue::YesNo(b) => binary.record(b),
+        OutcomeValue::Number(x) => numeric
+            .record(x)
+            .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?,
+    }
+    Ok(())
+}
+
 /// `POST /outcomes`: records the outcome of one response that a split served (a number within
 /// ±1e15, or yes/no as a boolean); one outcome per response, and only from the tenant it was
 /// served to. The answer comes once the outcome is on disk.
@@ -234,16 +283,7 @@ pub async fn post_outcome(
     ApiJson(body): ApiJson<OutcomeBody>,
 ) -> Result<Json<Value>, ApiError> {
     let tenant = state.tenants.authenticate(authorization(&headers))?;
-    let value = match &body.value {
-        Value::Bool(b) => OutcomeValue::YesNo(*b),
-        Value::Number(n) => OutcomeValue::Number(n.as_f64().unwrap_or(f64::NAN)),
-        _ => {
-            return Err(ApiError::bad_request(
-                "invalid_outcome",
-                "field `value` must be a number or true/false",
-            ));
-        }
-    };
+    let value = outcome_value(&body.value)?;
     let response_id = body.response_id.clone();
     let recorded = blocking(&state, move |state| {
         state
