@@ -13,9 +13,15 @@
 //!   finite in (0, 1]; an outcome lands in exactly one tally, a number finite, and a refused one
 //!   in none;
 //! - a split that passes has a valid name, 1 to 16 arms with unique valid names, finite weights
-//!   at least 0 and one positive, versions only on adapters; the definition the handler answers
-//!   with and saves reads back (both through the body path and the saved-file path) to the same
-//!   split, and a subject is never assigned to an arm of weight 0.
+//!   at least 0 with a finite sum and one positive, versions only on adapters; the definition
+//!   the handler answers with reads back through the body path to the same split, the
+//!   definition it writes to the experiment store (SQLite, as `switchyard serve` opens it) reads
+//!   back from the store to the same split, and a subject is never assigned to an arm of
+//!   weight 0.
+//!
+//! The experiment database is a file of this process under `/dev/shm` (or the temporary
+//! folder), emptied of the split after each input; a leftover file of the same process id is
+//! removed when the target starts, and `scripts/fuzz` removes them after each run.
 #![no_main]
 
 use std::sync::OnceLock;
@@ -26,14 +32,13 @@ use axum::http::{Request, StatusCode, header};
 use libfuzzer_sys::fuzz_target;
 use serde_json::{Value, json};
 use switchyard_config::Settings;
+use switchyard_server::experiments::{ExperimentStore, SqliteStore};
 use switchyard_server::http::Bounds;
 use switchyard_server::http::error::ApiError;
 use switchyard_server::http::extract::ApiJson;
 use switchyard_server::http::inference::{EmbedBody, GenerateBody};
-use switchyard_server::http::splits::{OutcomeBody, record_outcome, split_from_body};
-use switchyard_server::splits::{
-    BinaryTally, MAX_ARMS, NumericTally, Split, SplitSpec, check_name,
-};
+use switchyard_server::http::splits::{OutcomeBody, SplitBody, record_outcome, split_from_body};
+use switchyard_server::splits::{BinaryTally, MAX_ARMS, NumericTally, check_name};
 
 use switchyard_fuzz as _;
 
@@ -43,6 +48,27 @@ fn runtime() -> &'static tokio::runtime::Runtime {
         tokio::runtime::Builder::new_current_thread()
             .build()
             .expect("a current-thread runtime")
+    })
+}
+
+/// The experiment store splits are written to, opened once per process.
+fn experiments() -> &'static SqliteStore {
+    static STORE: OnceLock<SqliteStore> = OnceLock::new();
+    STORE.get_or_init(|| {
+        let dir = std::path::Path::new("/dev/shm");
+        let dir = if dir.is_dir() {
+            dir.to_owned()
+        } else {
+            std::env::temp_dir()
+        };
+        let path = dir.join(format!(
+            "switchyard-fuzz-experiments-{}.sqlite",
+            std::process::id()
+        ));
+        for suffix in ["", "-wal", "-shm"] {
+            let _ = std::fs::remove_file(format!("{}{suffix}", path.display()));
+        }
+        SqliteStore::open(&path).expect("the experiment database opens")
     })
 }
 
@@ -161,11 +187,11 @@ fn outcome(body: &[u8]) {
 
 fn put_split(name: &str, body: &[u8]) {
     // The name travels in the path, which the extractor does not read.
-    let body: Value = match extract("/admin/splits/name", body) {
+    let body: SplitBody = match extract("/admin/splits/name", body) {
         Ok(b) => b,
         Err(e) => return refused(&e, JSON_CODES),
     };
-    let split = match split_from_body(name, &body) {
+    let split = match split_from_body(name, body) {
         Ok(split) => split,
         Err(e) => return refused(&e, &["invalid_split"]),
     };
@@ -192,16 +218,32 @@ fn put_split(name: &str, body: &[u8]) {
         }
     }
     assert!(arms.iter().any(|a| a.weight > 0.0));
+    assert!(arms.iter().map(|a| a.weight).sum::<f64>().is_finite());
 
-    // What the handler answers with and saves, read back both ways.
+    // What the handler answers with, sent again as a body: the same split.
     let answered = serde_json::to_value(split.spec()).expect("a spec serialises");
-    let again = split_from_body(name, &json!({"arms": answered["arms"]}))
+    let resent = serde_json::to_vec(&json!({"arms": answered["arms"]})).expect("serialises");
+    let again = extract::<SplitBody>("/admin/splits/name", &resent)
+        .and_then(|body| split_from_body(name, body))
         .unwrap_or_else(|e| panic!("the answered definition is accepted again: {e:?}"));
     assert_eq!(again, split);
-    let saved = serde_json::to_string_pretty(&[split.spec()]).expect("serialises");
-    let mut specs: Vec<SplitSpec> = serde_json::from_str(&saved).expect("the saved file reads");
-    let reopened = Split::new(specs.pop().expect("one")).expect("a saved split is valid");
-    assert_eq!(reopened, split);
+
+    // What the handler writes to the experiment store, read back from it: the same split.
+    let store = experiments();
+    let put = store
+        .put_split(split.spec(), 0)
+        .unwrap_or_else(|e| panic!("a valid split is written: {e}"));
+    assert_eq!(put.record.split().as_ref(), Ok(&split), "as written");
+    let stored = store
+        .split(name)
+        .expect("the store reads")
+        .expect("the split is stored");
+    let reread = stored
+        .record()
+        .split()
+        .unwrap_or_else(|e| panic!("a stored split is valid: {e}"));
+    assert_eq!(reread, split, "as read back from the store");
+    assert!(store.delete_split(name).expect("the store deletes"));
 
     for subject in ["", "rider-1", "rider-2", name] {
         let a = split.assign_subject(subject);
