@@ -418,3 +418,47 @@ fn the_database_keeps_a_write_ahead_log_that_another_connection_reads() {
         .unwrap();
     assert_eq!(names, 1, "a commit is visible to another connection");
 }
+
+/// The fuzz-found bug `split_weight_moved_by_one_ulp_when_saved_and_read_back` (a weight that
+/// changed across a restart) for the store that now keeps splits: weights read from a client's
+/// JSON, written to the database and read back by a new connection after a reopen are the same
+/// f64s bit for bit, so every subject keeps its arm. -0.0, which SQLite may keep as the integer
+/// 0, reads back as a weight equal to it.
+#[test]
+fn split_weight_moved_by_one_ulp_when_saved_and_read_back_from_the_store() {
+    let body = r#"[
+        {"name": "incumbent", "adapter": "fork-advice", "weight": 111111110111111151115.1},
+        {"name": "control", "adapter": "base", "weight": 5},
+        {"name": "tiny", "adapter": "base", "weight": 4.9406564584124654e-324},
+        {"name": "third", "adapter": "base", "weight": 0.30000000000000004},
+        {"name": "nothing", "adapter": "base", "weight": -0.0}
+    ]"#;
+    let arms: Vec<ArmSpec> = serde_json::from_str(body).unwrap();
+    let written = switchyard_server::splits::Split::new(spec("fork", arms)).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    open(&dir).put_split(written.spec(), NOW).unwrap();
+    let read = open(&dir)
+        .split("fork")
+        .unwrap()
+        .unwrap()
+        .record()
+        .split()
+        .unwrap();
+    for (w, r) in written.arms().iter().zip(read.arms()) {
+        assert!(
+            w.weight.to_bits() == r.weight.to_bits() || (w.weight == 0.0 && r.weight == 0.0),
+            "{}: {} written, {} read",
+            w.name,
+            w.weight,
+            r.weight
+        );
+    }
+    assert_eq!(read, written);
+    for i in 0..500 {
+        let subject = format!("rider-{i}");
+        assert_eq!(
+            read.assign_subject(&subject).index,
+            written.assign_subject(&subject).index
+        );
+    }
+}
