@@ -75,6 +75,20 @@ pub enum StoreError {
     Package(#[from] PackageError),
 }
 
+impl StoreError {
+    /// True when a write failed because the disk (or the writer's quota) is full.
+    pub fn is_storage_full(&self) -> bool {
+        matches!(
+            self,
+            StoreError::Io { source, .. }
+                if matches!(
+                    source.kind(),
+                    std::io::ErrorKind::StorageFull | std::io::ErrorKind::QuotaExceeded
+                )
+        )
+    }
+}
+
 /// What a publish did.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Published {
@@ -191,45 +205,102 @@ impl Store {
         }
         drop(pkg);
         let dir = self.adapter_dir(name);
-        if !dir.is_dir() {
+        let new_dir = !dir.is_dir();
+        if new_dir {
             std::fs::create_dir_all(&dir).map_err(|source| StoreError::Io {
                 path: dir.clone(),
                 action: "creating the adapter folder",
                 source,
             })?;
+        }
+        let result = self.publish_into(name, &dir, &version, &bytes, new_dir);
+        if result.is_err() && new_dir {
+            // A first publish that failed (a full disk, say) leaves no empty adapter behind.
+            remove_empty_adapter_dir(&self.root, &dir);
+        }
+        let published = result?;
+        tracing::info!(adapter = %name, version = %published.version, new_file = published.new_file, "published");
+        Ok(published)
+    }
+
+    /// The steps of [`Store::publish`] once the package is valid and the folder exists, under the
+    /// adapter's lock. On failure the store is as it was: a version file written by this call is
+    /// removed again, and the pointer only changes as the last step.
+    fn publish_into(
+        &self,
+        name: &AdapterName,
+        dir: &Path,
+        version: &str,
+        bytes: &PackageBytes,
+        new_dir: bool,
+    ) -> Result<Published, StoreError> {
+        if new_dir {
             sync_dir(&self.root)?;
         }
-        let _lock = AdapterLock::acquire(&dir)?;
-        remove_stale_temps(&dir);
-        let target = self.version_path(name, &version)?;
+        let _lock = AdapterLock::acquire(dir)?;
+        remove_stale_temps(dir);
+        let target = self.version_path(name, version)?;
         let new_file = !target.is_file();
         if new_file {
             replace_atomically(&target, bytes.as_bytes())?;
         }
-        let old = self.pointer(name)?;
-        let replaced = old
-            .as_ref()
-            .map(|p| p.live.clone())
-            .filter(|live| *live != version);
-        let unchanged = old.as_ref().is_some_and(|p| p.live == version);
-        if !unchanged {
-            let next = match &old {
-                Some(p) => p.flipped_to(&version),
-                None => Pointer {
-                    live: version.clone(),
-                    previous: Vec::new(),
-                },
-            };
-            self.write_pointer(name, &next)?;
+        let flipped = (|| {
+            let old = self.pointer(name)?;
+            let replaced = old
+                .as_ref()
+                .map(|p| p.live.clone())
+                .filter(|live| live != version);
+            let unchanged = old.as_ref().is_some_and(|p| p.live == version);
+            if !unchanged {
+                let next = match &old {
+                    Some(p) => p.flipped_to(version),
+                    None => Pointer {
+                        live: version.to_owned(),
+                        previous: Vec::new(),
+                    },
+                };
+                self.write_pointer(name, &next)?;
+            }
+            Ok((replaced, unchanged))
+        })();
+        match flipped {
+            Ok((replaced, unchanged)) => Ok(Published {
+                name: name.clone(),
+                version: version.to_owned(),
+                replaced,
+                new_file,
+                unchanged,
+            }),
+            Err(e) => {
+                if new_file {
+                    // No pointer names it (the pointer write failed before its rename).
+                    let _ = std::fs::remove_file(&target);
+                    let _ = sync_dir(dir);
+                }
+                Err(e)
+            }
         }
-        tracing::info!(adapter = %name, %version, new_file, "published");
-        Ok(Published {
-            name: name.clone(),
-            version,
-            replaced,
-            new_file,
-            unchanged,
-        })
+    }
+
+    /// Removes files that writes interrupted by a crash left behind (temporary files, named
+    /// [`TEMP_PREFIX`]...) in every adapter folder, each under its adapter's lock so that no
+    /// writer of another process is mid-write. Returns how many it removed.
+    pub fn remove_unfinished_writes(&self) -> Result<usize, StoreError> {
+        let entries = std::fs::read_dir(&self.root).map_err(|source| StoreError::Io {
+            path: self.root.clone(),
+            action: "listing the store",
+            source,
+        })?;
+        let mut removed = 0;
+        for entry in entries.flatten() {
+            let dir = entry.path();
+            if !dir.is_dir() || AdapterName::new(&entry.file_name().to_string_lossy()).is_err() {
+                continue;
+            }
+            let _lock = AdapterLock::acquire(&dir)?;
+            removed += remove_stale_temps(&dir);
+        }
+        Ok(removed)
     }
 
     /// The adapter's pointer, or `None` when the adapter has never been published.
@@ -421,6 +492,27 @@ impl Store {
             version: version.to_owned(),
             store: self.root.clone(),
         }
+    }
+}
+
+/// Removes an adapter folder that holds nothing but its lock file (and unfinished temporary
+/// files), as a failed first publish leaves it. A second first publish of the same name racing
+/// this one may then find its folder gone and fail too; it can simply be retried.
+fn remove_empty_adapter_dir(root: &Path, dir: &Path) {
+    let Ok(_lock) = AdapterLock::acquire(dir) else {
+        return;
+    };
+    let only_leftovers = std::fs::read_dir(dir).is_ok_and(|entries| {
+        entries.flatten().all(|e| {
+            let name = e.file_name().to_string_lossy().into_owned();
+            name == LOCK_FILE || name.starts_with(TEMP_PREFIX)
+        })
+    });
+    if only_leftovers {
+        remove_stale_temps(dir);
+        let _ = std::fs::remove_file(dir.join(LOCK_FILE));
+        let _ = std::fs::remove_dir(dir);
+        let _ = sync_dir(root);
     }
 }
 

@@ -234,3 +234,39 @@ fn bad_names_are_refused_before_touching_the_disk() {
         assert!(AdapterName::new(bad).is_err(), "{bad:?}");
     }
 }
+
+/// A process killed mid-write leaves a temporary file in the adapter's folder; the next start
+/// removes it (under the adapter's lock) and leaves the versions and the pointer alone.
+#[test]
+fn unfinished_writes_a_crash_left_are_removed_at_start() {
+    let (dir, store) = new_store();
+    let n = name("support-bot");
+    let v1 = store.publish(&n, bytes(1.0), "v1", Some(&spec())).unwrap();
+    let folder = dir.path().join("store/support-bot");
+    for leftover in ["4242-0.tmp", "4242-1.tmp"] {
+        std::fs::write(
+            folder.join(format!("{TEMP_PREFIX}{leftover}")),
+            b"half a pack",
+        )
+        .unwrap();
+    }
+    // Not an adapter folder: left alone.
+    std::fs::write(dir.path().join("store/notes.txt"), b"mine").unwrap();
+    assert_eq!(store.remove_unfinished_writes().unwrap(), 2);
+    let mut left: Vec<String> = std::fs::read_dir(&folder)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    left.sort();
+    assert_eq!(
+        left,
+        vec![
+            ".lock".to_owned(),
+            format!("{}.safetensors", v1.version),
+            POINTER_FILE.to_owned()
+        ]
+    );
+    assert_eq!(store.live(&n).unwrap(), v1.version);
+    assert!(dir.path().join("store/notes.txt").is_file());
+    assert_eq!(store.remove_unfinished_writes().unwrap(), 0);
+}

@@ -94,6 +94,11 @@ pub struct Settings {
     pub log_filter: String,
     /// How long in-flight work may take to finish after SIGTERM.
     pub shutdown_grace_ms: u64,
+    /// The experiment database (splits, outcomes, response records); `None` means
+    /// `experiments.sqlite` in the store folder.
+    pub experiments_database: Option<PathBuf>,
+    /// How many days a response's record (which arm answered it) is kept for a late outcome.
+    pub keep_responses_days: u64,
 }
 
 /// One `[[tenants]]` entry.
@@ -169,6 +174,8 @@ impl Default for Settings {
             log_format: LogFormat::Human,
             log_filter: "info".to_owned(),
             shutdown_grace_ms: 10_000,
+            experiments_database: None,
+            keep_responses_days: 30,
         }
     }
 }
@@ -204,7 +211,8 @@ impl Settings {
     }
 
     /// The work of [`Settings::load_with`] once the file is read; `path` only labels errors.
-    pub(crate) fn from_text(
+    /// Public for the config fuzz target, which feeds it text without a file.
+    pub fn from_text(
         text: &str,
         path: &Path,
         env: impl IntoIterator<Item = (String, String)>,
@@ -216,6 +224,16 @@ impl Settings {
             .filter(|(k, _)| k.starts_with("SWITCHYARD_"))
             .collect();
         Self::from_sources(&Sources::new(&table, &env)?, overrides)
+    }
+
+    /// The experiment database: [`Settings::experiments_database`], else `experiments.sqlite`
+    /// in the store folder; `None` when neither is set.
+    pub fn experiments_database_path(&self) -> Option<PathBuf> {
+        self.experiments_database.clone().or_else(|| {
+            self.store_dir
+                .as_ref()
+                .map(|dir| dir.join("experiments.sqlite"))
+        })
     }
 
     /// The base model folder, which `switchyard serve` cannot run without.
@@ -362,6 +380,15 @@ impl Settings {
                 d.shutdown_grace_ms,
                 0..=600_000,
             )?,
+            experiments_database: src
+                .text(&read::EXPERIMENTS_DATABASE, false)?
+                .map(|(text, _)| PathBuf::from(text)),
+            // Ten years: past that, a response record is an archive, not an experiment.
+            keep_responses_days: src.whole(
+                &read::KEEP_RESPONSES_DAYS,
+                d.keep_responses_days,
+                1..=3650,
+            )?,
         })
     }
 }
@@ -459,6 +486,8 @@ impl fmt::Debug for Settings {
             .field("log_format", &self.log_format)
             .field("log_filter", &self.log_filter)
             .field("shutdown_grace_ms", &self.shutdown_grace_ms)
+            .field("experiments_database", &self.experiments_database)
+            .field("keep_responses_days", &self.keep_responses_days)
             .finish()
     }
 }

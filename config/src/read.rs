@@ -109,6 +109,13 @@ pub(crate) const METRICS_ADAPTER_SERIES: SettingKey = SettingKey::new(
 );
 pub(crate) const LOG_FORMAT: SettingKey = SettingKey::new("log", "format", "SWITCHYARD_LOG_FORMAT");
 pub(crate) const LOG_FILTER: SettingKey = SettingKey::new("log", "filter", "SWITCHYARD_LOG");
+pub(crate) const EXPERIMENTS_DATABASE: SettingKey =
+    SettingKey::new("experiments", "database", "SWITCHYARD_EXPERIMENTS_DATABASE");
+pub(crate) const KEEP_RESPONSES_DAYS: SettingKey = SettingKey::new(
+    "experiments",
+    "keep_responses_days",
+    "SWITCHYARD_EXPERIMENTS_KEEP_RESPONSES_DAYS",
+);
 
 /// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
 /// setting that is not scalar; it comes from the file only.
@@ -137,6 +144,8 @@ pub const KEYS: &[SettingKey] = &[
     METRICS_ADAPTER_SERIES,
     LOG_FORMAT,
     LOG_FILTER,
+    EXPERIMENTS_DATABASE,
+    KEEP_RESPONSES_DAYS,
 ];
 
 /// Keys of earlier releases and what replaced them, so an old file gets a pointer to the new key

@@ -86,6 +86,20 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::METRICS_ADAPTER_SERIES, s.metrics_adapter_series);
     page.line(&read::LOG_FORMAT, quoted(s.log_format.as_str()));
     page.line(&read::LOG_FILTER, quoted(&s.log_filter));
+    match s.experiments_database_path() {
+        Some(file) if s.experiments_database.is_some() => {
+            page.line(&read::EXPERIMENTS_DATABASE, path(&file))
+        }
+        Some(file) => page.unset(
+            &read::EXPERIMENTS_DATABASE,
+            &format!(
+                "experiments are kept in {} (the store folder)",
+                file.display()
+            ),
+        ),
+        None => page.unset(&read::EXPERIMENTS_DATABASE, "no store folder either"),
+    }
+    page.line(&read::KEEP_RESPONSES_DAYS, s.keep_responses_days);
 
     let mut text = page.text;
     if s.tenants.is_empty() {

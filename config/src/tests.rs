@@ -150,6 +150,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::METRICS_ADAPTER_SERIES, "7", "7"),
         (&read::LOG_FORMAT, "\"json\"", "json"),
         (&read::LOG_FILTER, "\"debug\"", "debug"),
+        (&read::EXPERIMENTS_DATABASE, "\"e.sqlite\"", "e.sqlite"),
+        (&read::KEEP_RESPONSES_DAYS, "7", "7"),
     ];
     assert_eq!(values.len(), KEYS.len(), "a key in KEYS is missing here");
     let mut file = String::new();
@@ -188,6 +190,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         log_format: LogFormat::Json,
         log_filter: "debug".into(),
         shutdown_grace_ms: 1234,
+        experiments_database: Some("e.sqlite".into()),
+        keep_responses_days: 7,
     };
     assert_eq!(from_file, expected);
 }
@@ -283,6 +287,17 @@ fn each_range_is_enforced_at_both_ends() {
             "server.shutdown_grace_ms",
             "600001",
         ),
+        (
+            "[experiments]\nkeep_responses_days = 0",
+            "experiments.keep_responses_days",
+            "0",
+        ),
+        (
+            "[experiments]\nkeep_responses_days = 3651",
+            "experiments.keep_responses_days",
+            "3651",
+        ),
+        ("[experiments]\ndatabase = \"\"", "experiments.database", ""),
     ];
     for (text, key, value) in cases {
         let err = refusal(text, &[]);

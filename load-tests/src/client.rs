@@ -145,7 +145,12 @@ impl Client {
         let mut resp = req
             .call()
             .with_context(|| format!("reading {}/metrics", self.url))?;
-        Ok(resp.body_mut().read_to_string()?)
+        let status = resp.status().as_u16();
+        let text = resp.body_mut().read_to_string()?;
+        if status != 200 {
+            bail!("{}/metrics answered {status}: {text}", self.url);
+        }
+        Ok(text)
     }
 
     /// Uploads package bytes as a new live version of `name` through the admin API.
@@ -162,9 +167,33 @@ impl Client {
             .send(bytes)
             .with_context(|| format!("uploading {name} to {}", self.url))?;
         let status = resp.status().as_u16();
-        if status != 201 {
+        // 201: a new live version; 200: these bytes were live already (nothing changed).
+        if status != 201 && status != 200 {
             let text = resp.body_mut().read_to_string().unwrap_or_default();
             bail!("uploading {name} to {} answered {status}: {text}", self.url);
+        }
+        Ok(())
+    }
+
+    /// Rolls `name` back to its previous live version through the admin API.
+    pub fn rollback(&self, name: &str) -> anyhow::Result<()> {
+        let token = self
+            .admin_token
+            .as_deref()
+            .context("rolling back needs --admin-token")?;
+        let mut resp = self
+            .agent
+            .post(format!("{}/admin/adapters/{name}/rollback", self.url))
+            .header("Authorization", format!("Bearer {token}"))
+            .send_empty()
+            .with_context(|| format!("rolling back {name} on {}", self.url))?;
+        let status = resp.status().as_u16();
+        if status != 200 {
+            let text = resp.body_mut().read_to_string().unwrap_or_default();
+            bail!(
+                "rolling back {name} on {} answered {status}: {text}",
+                self.url
+            );
         }
         Ok(())
     }

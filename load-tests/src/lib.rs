@@ -3,7 +3,8 @@
 //! [`driver`] sends the requests through [`client`] in a closed or an open loop, with the
 //! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
 //! [`synthetic`] builds adapters for a run; [`report`] writes JSON and HTML with [`charts`];
-//! [`overhead`] is the built-in swap-overhead scenario, which starts its own server ([`server`]).
+//! [`overhead`] is the built-in swap-overhead scenario, which starts its own server ([`server`]);
+//! [`soak`] is the long run at a steady load with live publishes and rollbacks.
 
 pub mod charts;
 pub mod cli;
@@ -16,6 +17,7 @@ pub mod report;
 pub mod results;
 pub mod scrape;
 pub mod server;
+pub mod soak;
 pub mod stats;
 pub mod synthetic;
 pub mod workload;

@@ -4,9 +4,11 @@
 
 pub mod commands;
 pub mod engine;
+pub mod experiments;
 pub mod http;
 pub mod metrics;
 pub mod model;
 pub mod numbers;
 pub mod splits;
+pub(crate) mod sync;
 pub mod train;

@@ -234,6 +234,45 @@ def main() -> None:
                 ("candidate", [5.0] * 7),
             ],
         ),
+        numeric_case(
+            "extreme-at-the-bound",
+            "the report that took every split down (1 and 2 against 1e200 and 3), with 1e200 "
+            "moved to the accepted bound 1e15: squared deviations near 1e30",
+            [
+                ("incumbent", [1.0, 2.0]),
+                ("candidate", [1e15, 3.0]),
+            ],
+        ),
+        numeric_case(
+            "extreme-spanning-the-range",
+            "arms spanning -1e15..1e15 against a small-spread arm: standard errors 1e-1 and 1e15",
+            [
+                ("incumbent", [1.0, 2.0, 3.0, 2.5]),
+                ("wide", [-1e15, 1e15, 0.0, 1e15]),
+                ("wide-negative", [-1e15, -1e15, -0.5e15]),
+            ],
+        ),
+        # Not here: values near 1e15 that differ by eighths. numpy's mean rounds their sum to the
+        # f64 grid at 6e15 (spacing 1), so scipy's standard deviation is off by 1e-3 relative;
+        # server/src/splits/stats.rs checks that case against exact arithmetic instead.
+        numeric_case(
+            "many-outcomes-thousands",
+            "1,500 outcomes per arm: Welch df near 3,000, where the t quantile comes from the "
+            "Cornish-Fisher series",
+            [
+                ("incumbent", scores(rng, 1500, [2, 4, 10, 14, 10])),
+                ("candidate", scores(rng, 1500, [2, 4, 9, 14, 11])),
+            ],
+        ),
+        numeric_case(
+            "many-outcomes-above-ten-thousand-df",
+            "6,000 outcomes per arm: Welch df near 12,000, where the t tail comes from Hill's "
+            "transformation as well",
+            [
+                ("incumbent", scores(rng, 6000, [2, 4, 10, 14, 10])),
+                ("candidate", scores(rng, 6000, [2, 4, 9, 14, 11])),
+            ],
+        ),
     ]
     binary = [
         binary_case(
@@ -265,6 +304,16 @@ def main() -> None:
             "booking-both-all-yes",
             "both arms all yes: both standard errors are zero",
             [("incumbent", 30, 30), ("candidate", 14, 14)],
+        ),
+        binary_case(
+            "huge-counts",
+            "1e15 conversations per arm, 40% against 40.00001%: counts far beyond any sample",
+            [("incumbent", 10**15, 4 * 10**14), ("candidate", 10**15, 4 * 10**14 + 10**8)],
+        ),
+        binary_case(
+            "huge-against-tiny",
+            "1e12 conversations against 3",
+            [("incumbent", 10**12, 3 * 10**11), ("candidate", 3, 2)],
         ),
     ]
     doc = {

@@ -83,10 +83,12 @@ impl ServerSetup {
             .entry("model".to_owned())
             .or_default()
             .insert("dir".to_owned(), format!("{:?}", self.model_dir));
+        // The temporary folder's store unless the test named another (`set("store", "dir", ..)`).
         settings
             .entry("store".to_owned())
             .or_default()
-            .insert("dir".to_owned(), format!("{store_dir:?}"));
+            .entry("dir".to_owned())
+            .or_insert_with(|| format!("{store_dir:?}"));
         let mut text = String::new();
         for (section, keys) in &settings {
             writeln!(text, "[{section}]").unwrap();
@@ -282,6 +284,19 @@ impl Server {
         auth: Auth<'_>,
         body: Option<(&str, &[u8])>,
     ) -> Reply {
+        self.try_request(method, path, auth, body)
+            .unwrap_or_else(|e| panic!("{method} {path}: {e}; log:\n{}", self.log()))
+    }
+
+    /// [`Server::request`], answering a failure to connect or to read the whole answer (as when
+    /// the server is killed meanwhile) with its reason instead of a panic.
+    pub fn try_request(
+        &self,
+        method: &str,
+        path: &str,
+        auth: Auth<'_>,
+        body: Option<(&str, &[u8])>,
+    ) -> Result<Reply, String> {
         let builder = self.builder(method, path, auth);
         let result = match body {
             Some((content_type, bytes)) => self.agent.run(
@@ -292,16 +307,15 @@ impl Server {
             ),
             None => self.agent.run(builder.body(()).unwrap()),
         };
-        let mut resp =
-            result.unwrap_or_else(|e| panic!("{method} {path}: {e}; log:\n{}", self.log()));
+        let mut resp = result.map_err(|e| e.to_string())?;
         let status = resp.status().as_u16();
         let body = resp
             .body_mut()
             .with_config()
             .limit(64 << 20)
             .read_to_string()
-            .unwrap_or_else(|e| panic!("{method} {path}: reading the answer: {e}"));
-        Reply { status, body }
+            .map_err(|e| format!("reading the answer: {e}"))?;
+        Ok(Reply { status, body })
     }
 
     /// `POST path` with a JSON body.
@@ -419,6 +433,41 @@ impl Server {
         self.child = Some(child);
         self.addr = addr;
         self.agent = agent();
+    }
+
+    /// Sends SIGKILL without waiting for the process (so another thread may be mid-request);
+    /// [`Server::kill`] then reaps it.
+    pub fn signal_kill(&self) {
+        let status = Command::new("kill")
+            .arg("-KILL")
+            .arg(self.pid().to_string())
+            .status()
+            .expect("run kill");
+        assert!(status.success(), "kill -KILL {} failed", self.pid());
+    }
+
+    /// Kills the process with SIGKILL, as a crash would (no shutdown, nothing flushed), and
+    /// waits for it to be gone.
+    pub fn kill(&mut self) {
+        let mut child = self.child.take().expect("server running");
+        child.kill().expect("kill -9 the server");
+        child.wait().expect("wait for the killed server");
+    }
+
+    /// Starts the server again on the same config and store, after [`Server::kill`] or an exit;
+    /// the new process listens on a new port.
+    pub fn start_again(&mut self) {
+        assert!(self.child.is_none(), "the server is still running");
+        let (child, addr) = spawn(self.dir.path(), &self.config);
+        self.child = Some(child);
+        self.addr = addr;
+        self.agent = agent();
+    }
+
+    /// Kills the server with SIGKILL and starts it again on the same config and store.
+    pub fn crash_and_restart(&mut self) {
+        self.kill();
+        self.start_again();
     }
 
     /// What the server has logged so far.

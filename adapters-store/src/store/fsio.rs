@@ -67,17 +67,24 @@ pub fn replace_atomically(target: &Path, bytes: &[u8]) -> Result<(), StoreError>
     result
 }
 
-/// Removes temporary files a crashed writer left behind. Only called while holding the adapter's
-/// lock, when no other writer of this adapter can be mid-write.
-pub fn remove_stale_temps(dir: &Path) {
+/// Removes temporary files a crashed writer left behind, and returns how many. Only called
+/// while holding the adapter's lock, when no other writer of this adapter can be mid-write.
+pub fn remove_stale_temps(dir: &Path) -> usize {
     let Ok(entries) = std::fs::read_dir(dir) else {
-        return;
+        return 0;
     };
+    let mut removed = 0;
     for entry in entries.flatten() {
-        if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX) {
-            let _ = std::fs::remove_file(entry.path());
+        if entry.file_name().to_string_lossy().starts_with(TEMP_PREFIX)
+            && std::fs::remove_file(entry.path()).is_ok()
+        {
+            removed += 1;
         }
     }
+    if removed > 0 {
+        let _ = sync_dir(dir);
+    }
+    removed
 }
 
 /// An exclusive advisory lock on one adapter's folder, held until dropped. Other processes (and

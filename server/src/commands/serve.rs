@@ -20,9 +20,9 @@ use switchyard_config::{LogFormat, Overrides, Settings};
 use switchyard_kernels::WeightFormat;
 
 use crate::engine::{Backbone, Engine, EngineConfig};
+use crate::experiments::{Experiments, SqliteStore, legacy};
 use crate::http::auth::Tenants;
 use crate::http::error::ApiError;
-use crate::http::splits::SplitBook;
 use crate::http::{AppState, Bounds, SharedState, router};
 use crate::metrics::Metrics;
 use crate::model::embedder::Embedder;
@@ -138,6 +138,15 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     }
     let store = Store::open(&store_dir, Limits::default())
         .with_context(|| format!("opening the store {}", store_dir.display()))?;
+    let unfinished = store
+        .remove_unfinished_writes()
+        .with_context(|| format!("cleaning the store {}", store_dir.display()))?;
+    if unfinished > 0 {
+        tracing::warn!(
+            files = unfinished,
+            "removed unfinished writes an earlier process left in the store"
+        );
+    }
     let weights = backbone.clone();
     let registry = Registry::new(
         store,
@@ -181,7 +190,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         },
         metrics.clone(),
     );
-    let splits = SplitBook::open(Some(store_dir.join("splits.json")))?;
+    let splits = open_experiments(&settings, &store_dir)?;
     splits.keep_arm_versions(&registry);
     let state: SharedState = Arc::new(AppState {
         engine,
@@ -222,6 +231,20 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     }
     tracing::info!("stopped");
     result
+}
+
+/// Opens the experiment database (moving an earlier version's `splits.json` into it once) and
+/// loads the splits.
+fn open_experiments(settings: &Settings, store_dir: &Path) -> anyhow::Result<Experiments> {
+    let path = settings
+        .experiments_database_path()
+        .unwrap_or_else(|| store_dir.join("experiments.sqlite"));
+    let store = SqliteStore::open(&path)
+        .with_context(|| format!("opening the experiment database {}", path.display()))?;
+    legacy::migrate(store_dir, &store)?;
+    let keep = Duration::from_secs(settings.keep_responses_days * 24 * 3600);
+    tracing::info!(database = %path.display(), keep_responses_days = settings.keep_responses_days, "experiments opened");
+    Experiments::open(Arc::new(store), Some(keep))
 }
 
 fn rayon_threads(n: usize) -> anyhow::Result<()> {

@@ -38,6 +38,9 @@ fn store_error(e: StoreError) -> ApiError {
         StoreError::UnknownVersion { .. } => ApiError::not_found("unknown_version", text),
         StoreError::NothingToRollBack { .. } => ApiError::conflict("no_previous_version", text),
         StoreError::RetireLive { .. } => ApiError::conflict("version_is_live", text),
+        StoreError::Io { .. } if e.is_storage_full() => {
+            ApiError::new(StatusCode::INSUFFICIENT_STORAGE, "store_full", text)
+        }
         _ => ApiError::internal(text),
     }
 }
@@ -149,7 +152,8 @@ pub async fn rollback(
     ))
 }
 
-/// `DELETE /admin/adapters/{name}/versions/{version}`: refused while that version is live.
+/// `DELETE /admin/adapters/{name}/versions/{version}`: refused while that version is live or a
+/// split arm holds it.
 pub async fn retire(
     State(state): State<SharedState>,
     headers: HeaderMap,
@@ -157,7 +161,14 @@ pub async fn retire(
 ) -> Result<StatusCode, ApiError> {
     require_admin(&state, &headers)?;
     let name = name_of(&name)?;
+    let splits = state.clone();
     blocking(&state, move |r| {
+        // Refused while a split arm holds the version; the guard keeps split edits from
+        // starting to hold it until the file is gone.
+        let _held = splits
+            .splits
+            .guard_retire(name.as_str(), &version)
+            .map_err(|e| ApiError::conflict("version_held_by_split", e.to_string()))?;
         r.store().retire(&name, &version).map_err(store_error)
     })
     .await?;

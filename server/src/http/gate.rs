@@ -4,15 +4,19 @@
 //! dropped connection.
 //!
 //! Checking credentials here, before any extractor runs, means an unauthenticated client cannot
-//! make the server read (let alone parse or tokenise) a large body: it is answered from the
-//! headers alone.
+//! make the server buffer, parse or tokenise a body: it is answered from the headers alone. So
+//! that an ordinary client still reads that answer (a server that closes with unread bytes makes
+//! the kernel reset the connection, and the client may see a broken pipe instead of the 401), up
+//! to [`DRAIN_BYTES`] of a refused body are read and thrown away, within [`DRAIN_TIME`]; a
+//! larger body is cut off.
 
 use std::panic::AssertUnwindSafe;
+use std::time::Duration;
 
 use axum::extract::{Request, State};
 use axum::middleware::Next;
 use axum::response::{IntoResponse, Response};
-use futures_util::FutureExt;
+use futures_util::{FutureExt, StreamExt};
 
 use crate::http::SharedState;
 use crate::http::error::ApiError;
@@ -24,6 +28,33 @@ pub fn authorization(headers: &axum::http::HeaderMap) -> Option<&str> {
         .and_then(|v| v.to_str().ok())
 }
 
+/// Most bytes of a refused request's body read (and discarded) before the refusal goes out.
+pub const DRAIN_BYTES: usize = 1 << 20;
+/// Longest time spent reading a refused request's body.
+pub const DRAIN_TIME: Duration = Duration::from_secs(2);
+
+/// Answers a refused request: its body is read and discarded up to [`DRAIN_BYTES`] (never
+/// buffered), so that the client gets to read the answer; the connection is then closed.
+async fn refuse(req: Request, error: ApiError) -> Response {
+    let mut body = req.into_body().into_data_stream();
+    let mut read = 0usize;
+    let _ = tokio::time::timeout(DRAIN_TIME, async {
+        while let Some(Ok(chunk)) = body.next().await {
+            read += chunk.len();
+            if read > DRAIN_BYTES {
+                break;
+            }
+        }
+    })
+    .await;
+    let mut resp = error.into_response();
+    resp.headers_mut().insert(
+        axum::http::header::CONNECTION,
+        axum::http::HeaderValue::from_static("close"),
+    );
+    resp
+}
+
 /// Authenticates the tenant key and hands the tenant to the handler as an extension.
 pub async fn tenant(State(state): State<SharedState>, mut req: Request, next: Next) -> Response {
     match state.tenants.authenticate(authorization(req.headers())) {
@@ -31,7 +62,7 @@ pub async fn tenant(State(state): State<SharedState>, mut req: Request, next: Ne
             req.extensions_mut().insert(tenant);
             next.run(req).await
         }
-        Err(e) => ApiError::from(e).into_response(),
+        Err(e) => refuse(req, ApiError::from(e)).await,
     }
 }
 
@@ -40,7 +71,7 @@ pub async fn admin(State(state): State<SharedState>, req: Request, next: Next) -
     match crate::http::auth::check_admin(state.admin_token.as_deref(), authorization(req.headers()))
     {
         Ok(()) => next.run(req).await,
-        Err(e) => ApiError::from(e).into_response(),
+        Err(e) => refuse(req, ApiError::from(e)).await,
     }
 }
 

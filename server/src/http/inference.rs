@@ -18,10 +18,11 @@ use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Timings};
-use crate::http::SharedState;
+use crate::experiments::responses::Receipt;
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
+use crate::http::{Bounds, SharedState};
 use crate::model::sampling::SamplingParams;
 
 /// Who serves a request, fixed at admission.
@@ -30,6 +31,8 @@ pub struct Routed {
     pub served_by: String,
     pub split: Option<(String, String)>,
     pub swap: Duration,
+    /// Through a split: says when the record of which arm answered is on disk.
+    pub recorded: Option<Receipt>,
 }
 
 fn random_id(prefix: &str) -> String {
@@ -102,6 +105,7 @@ async fn route(
         split,
         subject,
     } = target;
+    let mut recorded = None;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
             return Err(ApiError::bad_request(
@@ -120,16 +124,21 @@ async fn route(
             if !tenant.may_use(s) {
                 return Err(forbidden(format!("this key may not use split {s:?}")));
             }
-            let (index, arm) = state
+            let assigned = state
                 .splits
                 .assign(s, subject)
                 .ok_or_else(|| ApiError::unknown_split(s))?;
+            let arm = assigned.arm.clone();
             if arm.adapter != "base" && !tenant.may_use(&arm.adapter) {
                 return Err(forbidden(format!(
                     "split {s:?} sent this request to an arm this key may not use; ask the operator to fix the split"
                 )));
             }
-            state.splits.remember(response_id, s, index);
+            recorded = Some(
+                state
+                    .splits
+                    .record_response(response_id, &assigned, &tenant.name),
+            );
             state
                 .metrics
                 .arm_requests
@@ -151,6 +160,7 @@ async fn route(
             served_by: "base".to_owned(),
             split: split_arm,
             swap: Duration::ZERO,
+            recorded,
         });
     }
     if !tenant.may_use(&name) {
@@ -175,6 +185,7 @@ async fn route(
         handle: Some(handle),
         split: split_arm,
         swap: start.elapsed(),
+        recorded,
     })
 }
 
@@ -218,7 +229,7 @@ async fn admit(
     response_id: &str,
     job: impl FnOnce(Admission) -> Job,
 ) -> Result<Routed, ApiError> {
-    let routed = route(state, tenant, target, response_id).await?;
+    let mut routed = route(state, tenant, target, response_id).await?;
     let admitted = Instant::now() - routed.swap;
     state.engine.try_submit(job(Admission {
         adapter: routed.handle.clone(),
@@ -226,6 +237,14 @@ async fn admit(
         swap: routed.swap,
         deadline: admitted + state.bounds.timeout,
     }))?;
+    // The arm's record is written while the engine computes; the answer waits for it, so a
+    // response id a client holds is on disk. Serving wins over bookkeeping: a failed write is
+    // logged (by the log's writer) and the answer still goes out.
+    if let Some(receipt) = routed.recorded.take()
+        && let Err(error) = receipt.durable().await
+    {
+        tracing::warn!(id = response_id, %error, "answering without a durable response record");
+    }
     Ok(routed)
 }
 
@@ -283,8 +302,8 @@ fn too_large(code: &'static str, message: String) -> ApiError {
 }
 
 /// Refuses a text over the byte bound before any tokenizer time is spent on it.
-fn check_text_bytes(state: &SharedState, field: &str, text: &str) -> Result<(), ApiError> {
-    let limit = state.bounds.text_bytes;
+fn check_text_bytes(bounds: &Bounds, field: &str, text: &str) -> Result<(), ApiError> {
+    let limit = bounds.text_bytes;
     if text.len() > limit {
         return Err(too_large(
             "text_too_large",
@@ -308,6 +327,30 @@ async fn off_the_runtime<T: Send + 'static>(
         .map_err(|err| ApiError::bad_request("untokenizable", format!("{err:#}")))
 }
 
+impl EmbedBody {
+    /// The checks on the body alone, before anything is tokenised (the fuzz target
+    /// `http_bodies` runs them too): texts present, not too many, none over the byte bound.
+    pub fn check(&self, bounds: &Bounds) -> Result<(), ApiError> {
+        if self.texts.is_empty() {
+            return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
+        }
+        if self.texts.len() > bounds.texts_per_request {
+            return Err(too_large(
+                "too_many_texts",
+                format!(
+                    "{} texts in one request; the limit is {}",
+                    self.texts.len(),
+                    bounds.texts_per_request
+                ),
+            ));
+        }
+        for (i, text) in self.texts.iter().enumerate() {
+            check_text_bytes(bounds, &format!("texts[{i}]"), text)?;
+        }
+        Ok(())
+    }
+}
+
 fn encoder(state: &SharedState, endpoint: &str) -> Result<(), ApiError> {
     match &*state.backbone {
         Backbone::Encoder(_) => Ok(()),
@@ -328,22 +371,7 @@ async fn run_embed(
     id: &str,
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
     encoder(state, endpoint)?;
-    if body.texts.is_empty() {
-        return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
-    }
-    if body.texts.len() > state.bounds.texts_per_request {
-        return Err(too_large(
-            "too_many_texts",
-            format!(
-                "{} texts in one request; the limit is {}",
-                body.texts.len(),
-                state.bounds.texts_per_request
-            ),
-        ));
-    }
-    for (i, text) in body.texts.iter().enumerate() {
-        check_text_bytes(state, &format!("texts[{i}]"), text)?;
-    }
+    body.check(&state.bounds)?;
     let backbone = state.backbone.clone();
     let texts = body.texts;
     let (ids, counts) = off_the_runtime(move || {
@@ -497,6 +525,32 @@ pub struct GenerateBody {
     pub stream: bool,
 }
 
+impl GenerateBody {
+    /// The checks on the body alone, before the prompt is tokenised (the fuzz target
+    /// `http_bodies` runs them too): the output token limit and the sampling parameters.
+    /// The prompt's byte bound is checked here too, so nothing is tokenised for a huge one.
+    pub fn check(&self, bounds: &Bounds) -> Result<(usize, SamplingParams), ApiError> {
+        let most = bounds.generated_tokens;
+        let limit = self.max_tokens.unwrap_or(DEFAULT_MAX_TOKENS.min(most));
+        if limit == 0 || limit > most {
+            return Err(ApiError::bad_request(
+                "invalid_max_tokens",
+                format!("max_tokens {limit} is out of range: expected 1 to {most}"),
+            ));
+        }
+        let sampling = SamplingParams {
+            temperature: self.temperature,
+            top_p: self.top_p.unwrap_or(1.0),
+            seed: self.seed.unwrap_or(0),
+        };
+        sampling
+            .validate()
+            .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
+        check_text_bytes(bounds, "prompt", &self.prompt)?;
+        Ok((limit, sampling))
+    }
+}
+
 /// `POST /generate`: a continuation, as one JSON answer or (with `"stream": true`) an SSE
 /// stream of `token` events closed by a `done` event with counts and elapsed times.
 pub async fn generate(
@@ -580,23 +634,7 @@ async fn start_generation(
             "/generate needs a decoder base model; this server runs an encoder (use /embed or /classify)",
         ));
     };
-    let most = state.bounds.generated_tokens;
-    let limit = body.max_tokens.unwrap_or(DEFAULT_MAX_TOKENS.min(most));
-    if limit == 0 || limit > most {
-        return Err(ApiError::bad_request(
-            "invalid_max_tokens",
-            format!("max_tokens {limit} is out of range: expected 1 to {most}"),
-        ));
-    }
-    let sampling = SamplingParams {
-        temperature: body.temperature,
-        top_p: body.top_p.unwrap_or(1.0),
-        seed: body.seed.unwrap_or(0),
-    };
-    sampling
-        .validate()
-        .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
-    check_text_bytes(state, "prompt", &body.prompt)?;
+    let (limit, sampling) = body.check(&state.bounds)?;
     let positions = g.model().config.max_position_embeddings;
     let backbone = state.backbone.clone();
     let prompt = body.prompt;

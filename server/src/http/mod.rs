@@ -30,7 +30,6 @@ use switchyard_adapters::registry::Registry;
 use crate::engine::{Backbone, Engine};
 use crate::metrics::Metrics;
 use auth::Tenants;
-use splits::SplitBook;
 
 /// What one request may ask for; the handlers refuse anything beyond it before any model work.
 #[derive(Debug, Clone)]
@@ -61,7 +60,7 @@ pub struct AppState {
     /// `/metrics` answers without the admin token.
     pub metrics_public: bool,
     pub metrics: Arc<Metrics>,
-    pub splits: SplitBook,
+    pub splits: crate::experiments::Experiments,
     pub bounds: Bounds,
     /// False once shutdown began.
     pub ready: AtomicBool,

@@ -1,11 +1,6 @@
-//! A/B splits over live traffic: the split book (definitions, per-arm request counts and outcome
-//! tallies, which response went to which arm), its admin endpoints, outcome posting and the
-//! readout. Definitions are saved to a JSON file beside the store so assignment, a pure function
-//! of (split, subject), survives restarts; tallies live in memory.
-
-use std::collections::{BTreeMap, HashMap, VecDeque};
-use std::path::PathBuf;
-use std::sync::Mutex;
+//! The split endpoints: the admin API over A/B splits (create or change, list, delete, readout)
+//! and `POST /outcomes`. Each handler authorizes, parses, and calls [`crate::experiments`] off
+//! the async workers (every write there syncs to disk before it returns).
 
 use axum::Json;
 use axum::extract::{Path, State};
@@ -13,6 +8,10 @@ use axum::http::{HeaderMap, StatusCode};
 use serde::Deserialize;
 use serde_json::{Value, json};
 
+use crate::experiments::arms::ArmProblem;
+use crate::experiments::{
+    ArmTally, ExperimentError, OutcomeRefused, OutcomeValue, SplitEditError, SplitState,
+};
 use crate::http::SharedState;
 use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
@@ -21,279 +20,215 @@ use crate::splits::{
     ArmSpec, BinaryTally, NumericTally, Split, SplitSpec, binary_readout, numeric_readout,
 };
 
-/// How many recent response ids remember their arm, for outcomes posted later.
-const REMEMBERED_RESPONSES: usize = 200_000;
-
-struct Entry {
-    split: Split,
-    requests: Vec<u64>,
-    numeric: Vec<NumericTally>,
-    binary: Vec<BinaryTally>,
-}
-
-struct Book {
-    splits: BTreeMap<String, Entry>,
-    responses: HashMap<String, (String, usize, bool)>,
-    order: VecDeque<String>,
-}
-
-/// The splits of this server.
-pub struct SplitBook {
-    path: Option<PathBuf>,
-    book: Mutex<Book>,
-}
-
-impl std::fmt::Debug for SplitBook {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("SplitBook")
-            .field("path", &self.path)
-            .finish()
-    }
-}
-
-impl SplitBook {
-    /// Loads saved definitions from `path` (absent file: no splits).
-    pub fn open(path: Option<PathBuf>) -> anyhow::Result<Self> {
-        let mut splits = BTreeMap::new();
-        if let Some(p) = &path
-            && p.is_file()
-        {
-            let text = std::fs::read_to_string(p)?;
-            let specs: Vec<SplitSpec> = serde_json::from_str(&text)
-                .map_err(|e| anyhow::anyhow!("reading splits from {}: {e}", p.display()))?;
-            for spec in specs {
-                let split =
-                    Split::new(spec).map_err(|e| anyhow::anyhow!("{}: {e}", p.display()))?;
-                splits.insert(split.name().to_owned(), fresh_entry(split));
-            }
-        }
-        Ok(Self {
-            path,
-            book: Mutex::new(Book {
-                splits,
-                responses: HashMap::new(),
-                order: VecDeque::new(),
-            }),
-        })
-    }
-
-    /// Tells the registry which versions split arms are held to, so those stay resident while
-    /// not live. Called whenever the set of splits changes, and once at start.
-    pub fn keep_arm_versions(&self, registry: &switchyard_adapters::Registry) {
-        let book = self.book.lock().unwrap();
-        registry.keep_versions(arm_versions(&book));
-    }
-
-    fn save(&self, book: &Book) -> Result<(), ApiError> {
-        let Some(path) = &self.path else {
-            return Ok(());
-        };
-        let specs: Vec<&SplitSpec> = book.splits.values().map(|e| e.split.spec()).collect();
-        let text = serde_json::to_string_pretty(&specs).expect("specs serialise");
-        let tmp = path.with_extension("json.tmp");
-        std::fs::write(&tmp, text)
-            .and_then(|_| std::fs::rename(&tmp, path))
-            .map_err(|e| ApiError::internal(format!("saving splits to {}: {e}", path.display())))
-    }
-
-    /// Picks an arm for a request and counts it; `None` when there is no such split.
-    pub fn assign(&self, name: &str, subject: Option<&str>) -> Option<(usize, ArmSpec)> {
-        let mut book = self.book.lock().unwrap();
-        let entry = book.splits.get_mut(name)?;
-        let (index, arm) = {
-            let a = entry.split.assign(subject, &mut rand::rng());
-            (a.index, a.arm.clone())
-        };
-        entry.requests[index] += 1;
-        Some((index, arm))
-    }
-
-    /// Remembers which arm answered a response, for a later outcome.
-    pub fn remember(&self, response_id: &str, split: &str, arm: usize) {
-        let mut book = self.book.lock().unwrap();
-        book.responses
-            .insert(response_id.to_owned(), (split.to_owned(), arm, false));
-        book.order.push_back(response_id.to_owned());
-        while book.order.len() > REMEMBERED_RESPONSES {
-            if let Some(old) = book.order.pop_front() {
-                book.responses.remove(&old);
-            }
-        }
-    }
-}
-
-fn fresh_entry(split: Split) -> Entry {
-    let n = split.arms().len();
-    Entry {
-        split,
-        requests: vec![0; n],
-        numeric: vec![NumericTally::new(); n],
-        binary: vec![BinaryTally::new(); n],
-    }
-}
-
-/// Every `(adapter, version)` an arm is held to.
-fn arm_versions(book: &Book) -> Vec<(switchyard_adapters::AdapterName, String)> {
-    book.splits
-        .values()
-        .flat_map(|e| e.split.arms())
-        .filter_map(|arm| {
-            let version = arm.version.clone()?;
-            let name = switchyard_adapters::AdapterName::new(&arm.adapter).ok()?;
-            Some((name, version))
-        })
-        .collect()
-}
-
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
     headers
         .get(axum::http::header::AUTHORIZATION)
         .and_then(|v| v.to_str().ok())
 }
 
-/// `PUT /admin/splits/{name}`: creates or changes a split; arms that keep their name keep
-/// their counts and outcomes.
+/// Runs a blocking experiments call off the async workers.
+async fn blocking<T: Send + 'static>(
+    state: &SharedState,
+    f: impl FnOnce(&SharedState) -> Result<T, ApiError> + Send + 'static,
+) -> Result<T, ApiError> {
+    let state = state.clone();
+    tokio::task::spawn_blocking(move || f(&state))
+        .await
+        .map_err(|e| ApiError::internal(format!("experiment task failed: {e}")))?
+}
+
+/// A failure of the experiment database: 500 with its own code.
+pub fn store_failed(e: ExperimentError) -> ApiError {
+    ApiError::new(
+        StatusCode::INTERNAL_SERVER_ERROR,
+        "experiment_store_failed",
+        e.to_string(),
+    )
+}
+
+fn edit_error(e: SplitEditError) -> ApiError {
+    let text = e.to_string();
+    match e {
+        SplitEditError::Invalid(_) => ApiError::bad_request("invalid_split", text),
+        SplitEditError::Arm(ArmProblem::UnknownAdapter { .. }) => {
+            ApiError::not_found("unknown_target", text)
+        }
+        SplitEditError::Arm(ArmProblem::UnknownVersion { .. }) => {
+            ApiError::not_found("unknown_version", text)
+        }
+        SplitEditError::Arm(ArmProblem::InvalidName { .. } | ArmProblem::InvalidVersion { .. }) => {
+            ApiError::bad_request("invalid_split", text)
+        }
+        SplitEditError::Arm(ArmProblem::Store { .. }) => ApiError::internal(text),
+        SplitEditError::Store(e) => store_failed(e),
+    }
+}
+
+/// An admin asking for a split that does not exist (the admin sees every split, so the words
+/// differ from the tenant's `ApiError::unknown_split`).
+fn unknown_split(name: &str) -> ApiError {
+    ApiError::not_found("unknown_split", format!("no split named {name:?}"))
+}
+
+/// The body of `PUT /admin/splits/{name}`. Like every JSON body, a field it does not know is
+/// refused (400 `invalid_field`, naming the field), so a misspelt key is never silently ignored.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SplitBody {
+    pub arms: Vec<ArmSpec>,
+}
+
+/// The split a `PUT /admin/splits/{name}` body defines, validated (the fuzz target
+/// `http_bodies` runs this too); whether its adapters and versions exist is checked when the
+/// split is written.
+pub fn split_from_body(name: &str, body: SplitBody) -> Result<Split, ApiError> {
+    Split::new(SplitSpec {
+        name: name.to_owned(),
+        arms: body.arms,
+    })
+    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))
+}
+
+/// `PUT /admin/splits/{name}`: creates or changes a split. An arm that keeps its name and what it
+/// serves keeps its record (requests and outcomes); an arm whose adapter or held version changes
+/// starts a new record.
 pub async fn put_split(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
-    ApiJson(body): ApiJson<Value>,
+    ApiJson(body): ApiJson<SplitBody>,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     require_admin(&state, &headers)?;
-    let arms = body
-        .get("arms")
-        .cloned()
-        .ok_or_else(|| ApiError::bad_request("invalid_split", "field `arms` is missing"))?;
-    let arms: Vec<ArmSpec> = serde_json::from_value(arms)
-        .map_err(|e| ApiError::bad_request("invalid_split", format!("field `arms`: {e}")))?;
-    let split = Split::new(SplitSpec {
-        name: name.clone(),
-        arms,
+    let split = split_from_body(&name, body)?;
+    let put = blocking(&state, move |state| {
+        state
+            .splits
+            .put_split(split, &state.registry)
+            .map_err(edit_error)
     })
-    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?;
-    for arm in split.arms() {
-        if arm.adapter != crate::splits::BASE_MODEL
-            && state
-                .registry
-                .store()
-                .pointer(
-                    &switchyard_adapters::AdapterName::new(&arm.adapter)
-                        .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?,
-                )
-                .ok()
-                .flatten()
-                .is_none()
-        {
-            return Err(ApiError::not_found(
-                "unknown_target",
-                format!(
-                    "arm {:?} names adapter {:?}, which has no live version",
-                    arm.name, arm.adapter
-                ),
-            ));
-        }
-    }
-    let mut book = state.splits.book.lock().unwrap();
-    let mut entry = fresh_entry(split);
-    let created = match book.splits.remove(&name) {
-        None => true,
-        Some(old) => {
-            for (i, arm) in entry.split.arms().iter().enumerate() {
-                if let Some(j) = old.split.arms().iter().position(|a| a.name == arm.name) {
-                    entry.requests[i] = old.requests[j];
-                    entry.numeric[i] = old.numeric[j];
-                    entry.binary[i] = old.binary[j];
-                }
-            }
-            false
-        }
-    };
-    let spec = serde_json::to_value(entry.split.spec()).expect("serialise");
-    book.splits.insert(name, entry);
-    state.registry.keep_versions(arm_versions(&book));
-    state.splits.save(&book)?;
-    let status = if created {
+    .await?;
+    let mut answer = serde_json::to_value(put.record.spec()).expect("a split serialises");
+    answer["generation"] = json!(put.record.generation);
+    let status = if put.created {
         StatusCode::CREATED
     } else {
         StatusCode::OK
     };
-    Ok((status, Json(spec)))
+    Ok((status, Json(answer)))
 }
 
-/// `DELETE /admin/splits/{name}`.
+/// `DELETE /admin/splits/{name}`: the split, its arm records and its response records.
 pub async fn delete_split(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
 ) -> Result<StatusCode, ApiError> {
     require_admin(&state, &headers)?;
-    let mut book = state.splits.book.lock().unwrap();
-    if book.splits.remove(&name).is_none() {
-        return Err(ApiError::not_found(
-            "unknown_split",
-            format!("no split named {name:?}"),
-        ));
-    }
-    state.registry.keep_versions(arm_versions(&book));
-    state.splits.save(&book)?;
-    Ok(StatusCode::NO_CONTENT)
+    blocking(&state, move |state| {
+        // The arm names, current and replaced, whose request series the metrics drop.
+        let arms: Vec<String> = state
+            .splits
+            .split(&name)
+            .map_err(store_failed)?
+            .map(|s| {
+                s.arms
+                    .iter()
+                    .chain(&s.replaced)
+                    .map(|a| a.arm.spec.name.clone())
+                    .collect()
+            })
+            .unwrap_or_default();
+        match state.splits.delete_split(&name, &state.registry) {
+            Ok(true) => {
+                state.metrics.forget_split(&name, &arms);
+                Ok(StatusCode::NO_CONTENT)
+            }
+            Ok(false) => Err(unknown_split(&name)),
+            Err(e) => Err(store_failed(e)),
+        }
+    })
+    .await
 }
 
-/// `GET /admin/splits`.
+/// `GET /admin/splits`: every split's definition, generation and requests per arm.
 pub async fn list(
     State(state): State<SharedState>,
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    let book = state.splits.book.lock().unwrap();
-    let splits: Vec<Value> = book
-        .splits
-        .values()
-        .map(|e| {
-            let mut v = serde_json::to_value(e.split.spec()).expect("serialise");
-            v["requests"] = json!(e.requests);
+    let splits = blocking(&state, |state| state.splits.list().map_err(store_failed)).await?;
+    let splits: Vec<Value> = splits
+        .iter()
+        .map(|s| {
+            let mut v = serde_json::to_value(s.record().spec()).expect("a split serialises");
+            v["generation"] = json!(s.generation);
+            v["requests"] = json!(s.arms.iter().map(|a| a.requests).collect::<Vec<_>>());
             v
         })
         .collect();
     Ok(Json(json!({ "splits": splits })))
 }
 
-/// `GET /admin/splits/{name}/readout`: per arm, requests, outcomes, mean and 95% interval, and
-/// the difference to the first arm with its interval and p-value (Welch's t-test for numbers,
-/// the two-proportion z-test for yes/no).
+/// `GET /admin/splits/{name}/readout`: per current arm, requests, outcomes, mean and 95%
+/// interval, and the difference to the first arm with its interval and p-value (Welch's t-test
+/// for numbers, the two-proportion z-test for yes/no); then the arm records edits replaced, with
+/// their own summaries.
 pub async fn readout(
     State(state): State<SharedState>,
     headers: HeaderMap,
     Path(name): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     require_admin(&state, &headers)?;
-    let book = state.splits.book.lock().unwrap();
-    let e = book
-        .splits
-        .get(&name)
-        .ok_or_else(|| ApiError::not_found("unknown_split", format!("no split named {name:?}")))?;
-    let numeric = numeric_readout(&e.numeric);
-    let binary = binary_readout(&e.binary);
-    let arms: Vec<Value> = e
-        .split
-        .arms()
+    let lookup = name.clone();
+    let split = blocking(&state, move |state| {
+        state.splits.split(&lookup).map_err(store_failed)
+    })
+    .await?
+    .ok_or_else(|| unknown_split(&name))?;
+    Ok(Json(readout_json(&split)))
+}
+
+fn readout_json(split: &SplitState) -> Value {
+    let numeric: Vec<NumericTally> = split.arms.iter().map(|a| a.numeric).collect();
+    let binary: Vec<BinaryTally> = split.arms.iter().map(|a| a.yes_no).collect();
+    let (numeric, binary) = (numeric_readout(&numeric), binary_readout(&binary));
+    let arm_line = |a: &ArmTally| {
+        json!({
+            "arm": a.arm.spec.name,
+            "adapter": a.arm.spec.adapter,
+            "version": a.arm.spec.version,
+            "weight": a.arm.spec.weight,
+            "requests": a.requests,
+        })
+    };
+    let arms: Vec<Value> = split
+        .arms
         .iter()
-        .enumerate()
-        .map(|(i, arm)| {
-            json!({
-                "arm": arm.name,
-                "adapter": arm.adapter,
-                "version": arm.version,
-                "weight": arm.weight,
-                "requests": e.requests[i],
-                "numeric": numeric[i],
-                "yes_no": binary[i],
-            })
+        .zip(numeric.iter().zip(&binary))
+        .map(|(a, (numeric, binary))| {
+            let mut line = arm_line(a);
+            line["numeric"] = json!(numeric);
+            line["yes_no"] = json!(binary);
+            line
         })
         .collect();
-    Ok(Json(
-        json!({ "split": name, "confidence": crate::splits::CONFIDENCE_LEVEL, "arms": arms }),
-    ))
+    let replaced: Vec<Value> = split
+        .replaced
+        .iter()
+        .map(|a| {
+            let mut line = arm_line(a);
+            line["numeric"] = json!({ "summary": a.numeric.summary() });
+            line["yes_no"] = json!({ "summary": a.yes_no.summary() });
+            line
+        })
+        .collect();
+    json!({
+        "split": split.name,
+        "generation": split.generation,
+        "confidence": crate::splits::CONFIDENCE_LEVEL,
+        "arms": arms,
+        "replaced_arms": replaced,
+    })
 }
 
 #[derive(Debug, Deserialize)]
@@ -303,60 +238,83 @@ pub struct OutcomeBody {
     pub value: Value,
 }
 
-/// `POST /outcomes`: records the outcome of one response that a split served (a number, or
-/// yes/no as a boolean); one outcome per response.
+/// An outcome's `value` as the experiments take it: a number within ±1e15, or yes/no as a
+/// boolean; anything else is refused with `invalid_outcome`.
+pub fn outcome_value(value: &Value) -> Result<OutcomeValue, ApiError> {
+    let refused =
+        |e: crate::splits::OutcomeError| ApiError::bad_request("invalid_outcome", e.to_string());
+    match value {
+        Value::Bool(b) => Ok(OutcomeValue::YesNo(*b)),
+        Value::Number(n) => {
+            let x = n.as_f64().unwrap_or(f64::NAN);
+            NumericTally::check(x).map_err(refused)?;
+            Ok(OutcomeValue::Number(x))
+        }
+        _ => Err(ApiError::bad_request(
+            "invalid_outcome",
+            "field `value` must be a number or true/false",
+        )),
+    }
+}
+
+/// Records an outcome's `value` in the tally of its kind, as the experiment store does on the
+/// arm record that served the response (the fuzz target `http_bodies` runs this). A refused
+/// value leaves both tallies as they were.
+pub fn record_outcome(
+    numeric: &mut NumericTally,
+    binary: &mut BinaryTally,
+    value: &Value,
+) -> Result<(), ApiError> {
+    match outcome_value(value)? {
+        OutcomeValue::YesNo(b) => binary.record(b),
+        OutcomeValue::Number(x) => numeric
+            .record(x)
+            .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?,
+    }
+    Ok(())
+}
+
+/// `POST /outcomes`: records the outcome of one response that a split served (a number within
+/// ±1e15, or yes/no as a boolean); one outcome per response, and only from the tenant it was
+/// served to. The answer comes once the outcome is on disk.
 pub async fn post_outcome(
     State(state): State<SharedState>,
     headers: HeaderMap,
     ApiJson(body): ApiJson<OutcomeBody>,
 ) -> Result<Json<Value>, ApiError> {
-    state.tenants.authenticate(authorization(&headers))?;
-    let mut book = state.splits.book.lock().unwrap();
-    let Some((split, arm, recorded)) = book.responses.get(&body.response_id).cloned() else {
-        return Err(ApiError::not_found(
+    let tenant = state.tenants.authenticate(authorization(&headers))?;
+    let value = outcome_value(&body.value)?;
+    let response_id = body.response_id.clone();
+    let recorded = blocking(&state, move |state| {
+        state
+            .splits
+            .post_outcome(&response_id, &tenant.name, value)
+            .map_err(|e| outcome_error(e, &response_id))
+    })
+    .await?;
+    Ok(Json(json!({
+        "response_id": body.response_id,
+        "split": recorded.split,
+        "arm": recorded.arm,
+        "recorded": true,
+    })))
+}
+
+fn outcome_error(e: OutcomeRefused, response_id: &str) -> ApiError {
+    match e {
+        // The same words whether the id is unknown, pruned, of a deleted split or another
+        // tenant's: a key learns nothing about responses it was not served.
+        OutcomeRefused::UnknownResponse => ApiError::not_found(
             "unknown_response",
             format!(
-                "response {:?} was not served by a split (or is too old to remember)",
-                body.response_id
+                "response {response_id:?} was not served by a split to this key (or is older than the retention, or its split was deleted)"
             ),
-        ));
-    };
-    if recorded {
-        return Err(ApiError::conflict(
+        ),
+        OutcomeRefused::AlreadyRecorded => ApiError::conflict(
             "outcome_recorded",
-            format!("response {:?} already has an outcome", body.response_id),
-        ));
+            format!("response {response_id:?} already has an outcome"),
+        ),
+        OutcomeRefused::Invalid(e) => ApiError::bad_request("invalid_outcome", e.to_string()),
+        OutcomeRefused::Store(e) => store_failed(e),
     }
-    let entry = book.splits.get_mut(&split).ok_or_else(|| {
-        ApiError::not_found("unknown_split", format!("split {split:?} was deleted"))
-    })?;
-    if arm >= entry.numeric.len() {
-        return Err(ApiError::conflict(
-            "split_changed",
-            format!("split {split:?} no longer has that arm"),
-        ));
-    }
-    match &body.value {
-        Value::Bool(b) => entry.binary[arm].record(*b),
-        Value::Number(n) => {
-            let x = n.as_f64().unwrap_or(f64::NAN);
-            entry.numeric[arm]
-                .record(x)
-                .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?;
-        }
-        _ => {
-            return Err(ApiError::bad_request(
-                "invalid_outcome",
-                "field `value` must be a number or true/false",
-            ));
-        }
-    }
-    let arm_name = entry.split.arms()[arm].name.clone();
-    book.responses
-        .get_mut(&body.response_id)
-        .expect("present")
-        .2 = true;
-    Ok(Json(
-        json!({"response_id": body.response_id, "split": split, "arm": arm_name, "recorded": true}),
-    ))
 }

@@ -76,6 +76,11 @@ pub enum SplitError {
     ArmCount { count: usize },
     #[error("arms: every weight is 0; at least one arm needs a positive weight")]
     NoPositiveWeight,
+    /// Each weight is finite but their sum is not (it passes the largest number, about 1.8e308).
+    #[error(
+        "arms: the weights add up to more than the largest number (about 1.8e308); only their ratios matter, so scale them down"
+    )]
+    WeightSumOverflow,
     #[error("{field}: arm name {value:?} is already used by arms[{first}]")]
     DuplicateArm {
         field: String,
@@ -94,7 +99,7 @@ impl SplitError {
             | Self::VersionOnBase { field }
             | Self::InvalidWeight { field, .. }
             | Self::DuplicateArm { field, .. } => field,
-            Self::ArmCount { .. } | Self::NoPositiveWeight => "arms",
+            Self::ArmCount { .. } | Self::NoPositiveWeight | Self::WeightSumOverflow => "arms",
         }
     }
 }
@@ -132,7 +137,7 @@ pub struct Assignment<'a> {
 impl Split {
     /// Validates `spec`: the split name (not [`BASE_MODEL`]), 1 to [`MAX_ARMS`] arms with unique
     /// names, each adapter a name or [`BASE_MODEL`], a held version only on an adapter, weights
-    /// finite and at least 0, and at least one positive.
+    /// finite and at least 0 with a finite sum, and at least one positive.
     pub fn new(spec: SplitSpec) -> Result<Self, SplitError> {
         check_name("name", &spec.name)?;
         if spec.name == BASE_MODEL {
@@ -154,6 +159,9 @@ impl Split {
                     first,
                 });
             }
+        }
+        if !spec.arms.iter().map(|a| a.weight).sum::<f64>().is_finite() {
+            return Err(SplitError::WeightSumOverflow);
         }
         let upper_bounds = upper_bounds(&spec.arms).ok_or(SplitError::NoPositiveWeight)?;
         Ok(Self { spec, upper_bounds })
@@ -409,8 +417,32 @@ mod tests {
     }
 
     #[test]
+    fn weights_whose_sum_overflowed_were_accepted() {
+        // Each weight finite, the sum not: refused, naming the arms and the bound.
+        let err = split(
+            "fork-test",
+            vec![arm("a", "x", f64::MAX), arm("b", "y", f64::MAX)],
+        )
+        .unwrap_err();
+        assert_eq!(err, SplitError::WeightSumOverflow);
+        assert_eq!(err.field(), "arms");
+        assert!(err.to_string().contains("1.8e308"), "{err}");
+        let err = split(
+            "fork-test",
+            vec![
+                arm("a", "x", 1e308),
+                arm("b", "y", 1e308),
+                arm("c", "z", 0.0),
+            ],
+        )
+        .unwrap_err();
+        assert_eq!(err, SplitError::WeightSumOverflow);
+    }
+
+    #[test]
     fn huge_weights_do_not_overflow() {
-        let s = fork_test(f64::MAX, f64::MAX);
+        // The largest weights whose sum is still finite: the shares are still computed exactly.
+        let s = fork_test(f64::MAX / 2.0, f64::MAX / 2.0);
         let share = subjects()
             .filter(|subject| s.assign_subject(subject).index == 1)
             .count() as f64
@@ -530,5 +562,21 @@ mod tests {
         assert!(Split::new(spec).is_ok());
         let unknown = r#"{"name": "s", "arms": [], "seed": 3}"#;
         assert!(serde_json::from_str::<SplitSpec>(unknown).is_err());
+    }
+
+    #[test]
+    fn split_weight_moved_by_one_ulp_when_saved_and_read_back() {
+        // Found by the `http_bodies` fuzz target: without serde_json's correctly rounded float
+        // parsing, this weight read as one f64, was saved (and answered) as its shortest form,
+        // and that text read back as the neighbouring f64, so the split changed across a restart.
+        let body = r#"{"name": "fork-test", "arms": [
+            {"name": "incumbent", "adapter": "fork-advice", "weight": 111111110111111151115.1},
+            {"name": "control", "adapter": "base", "weight": 5}
+        ]}"#;
+        let spec: SplitSpec = serde_json::from_str(body).unwrap();
+        let saved = serde_json::to_string(&spec).unwrap();
+        let reread: SplitSpec = serde_json::from_str(&saved).unwrap();
+        assert_eq!(reread, spec, "saved as {saved}");
+        assert_eq!(Split::new(reread).unwrap(), Split::new(spec).unwrap());
     }
 }

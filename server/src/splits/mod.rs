@@ -16,7 +16,8 @@ pub use assign::{
     SplitSpec, check_name, subject_point,
 };
 pub use stats::{
-    BinaryArmReadout, BinarySummary, BinaryTally, CONFIDENCE_LEVEL, Interval, NumericArmReadout,
-    NumericSummary, NumericTally, OutcomeError, ProportionComparison, WelchComparison,
-    binary_readout, numeric_readout, proportion_comparison, welch_comparison,
+    BinaryArmReadout, BinarySummary, BinaryTally, CONFIDENCE_LEVEL, Interval,
+    MAX_OUTCOME_MAGNITUDE, NumericArmReadout, NumericParts, NumericSummary, NumericTally,
+    OutcomeError, ProportionComparison, WelchComparison, binary_readout, numeric_readout,
+    proportion_comparison, welch_comparison,
 };

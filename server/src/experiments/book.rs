@@ -1,0 +1,279 @@
+//! [`Experiments`]: the splits of this server, as the HTTP layer uses them. The current
+//! definitions live in memory for the assignment every split request makes; every change goes
+//! through the [`ExperimentStore`] first and reaches memory only once it is durable. Response
+//! records go through the group-committing [`ResponseLog`]; outcomes and edits are written
+//! directly. A background thread prunes response records older than the retention.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::sync::mpsc;
+use std::thread::JoinHandle;
+use std::time::Duration;
+
+use switchyard_adapters::AdapterName;
+use switchyard_adapters::registry::Registry;
+
+use crate::splits::{ArmSpec, NumericTally, Split, SplitError};
+use crate::sync::{Mutex, MutexGuard, RwLock};
+
+use super::arms::{ArmProblem, check_arms};
+use super::records::{
+    OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome, ServedResponse,
+    SplitRecord, SplitState,
+};
+use super::responses::{Receipt, ResponseLog};
+use super::{ExperimentError, ExperimentStore, now_ms};
+
+/// How often old response records are pruned.
+const PRUNE_EVERY: Duration = Duration::from_secs(3600);
+
+/// A split as assignment needs it.
+struct LiveSplit {
+    generation: i64,
+    split: Split,
+    /// The arm record of each arm, in the split's order.
+    arm_ids: Vec<i64>,
+}
+
+impl LiveSplit {
+    fn from_record(record: &SplitRecord) -> Result<Self, SplitError> {
+        Ok(Self {
+            generation: record.generation,
+            split: record.split()?,
+            arm_ids: record.arms.iter().map(|a| a.id).collect(),
+        })
+    }
+}
+
+/// The arm a request was given.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Assigned {
+    pub generation: i64,
+    pub arm_id: i64,
+    pub arm: ArmSpec,
+}
+
+/// Why a split definition was refused.
+#[derive(Debug, thiserror::Error)]
+pub enum SplitEditError {
+    #[error(transparent)]
+    Invalid(#[from] SplitError),
+    #[error(transparent)]
+    Arm(#[from] ArmProblem),
+    #[error(transparent)]
+    Store(#[from] ExperimentError),
+}
+
+/// A split arm that holds the version someone wants to retire.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error(
+    "version {version} of {adapter:?} is held by arm {arm:?} of split {split:?}; change or delete the split before retiring it"
+)]
+pub struct HeldBySplit {
+    pub adapter: String,
+    pub version: String,
+    pub split: String,
+    pub arm: String,
+}
+
+/// Held while a split is edited, and while a version is retired: a split can never come to hold
+/// a version that is being retired.
+pub struct EditGuard<'a>(#[allow(dead_code)] MutexGuard<'a, ()>);
+
+/// The splits of this server.
+pub struct Experiments {
+    store: Arc<dyn ExperimentStore>,
+    live: RwLock<BTreeMap<String, LiveSplit>>,
+    edits: Mutex<()>,
+    log: ResponseLog,
+    pruner: Option<Pruner>,
+}
+
+impl std::fmt::Debug for Experiments {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Experiments").finish_non_exhaustive()
+    }
+}
+
+impl Experiments {
+    /// Loads the splits of `store`, starts the response log, and (with `keep_responses`) prunes
+    /// response records older than that now and every hour.
+    pub fn open(
+        store: Arc<dyn ExperimentStore>,
+        keep_responses: Option<Duration>,
+    ) -> anyhow::Result<Self> {
+        let mut live = BTreeMap::new();
+        for state in store.splits()? {
+            let record = state.record();
+            let split = LiveSplit::from_record(&record)
+                .map_err(|e| anyhow::anyhow!("stored split {:?}: {e}", record.name))?;
+            live.insert(record.name, split);
+        }
+        let log = ResponseLog::start(store.clone())?;
+        let pruner = keep_responses
+            .map(|keep| Pruner::start(store.clone(), keep))
+            .transpose()?;
+        Ok(Self {
+            store,
+            live: RwLock::new(live),
+            edits: Mutex::new(()),
+            log,
+            pruner,
+        })
+    }
+
+    /// Picks an arm of split `name` for a request; `None` when there is no such split.
+    pub fn assign(&self, name: &str, subject: Option<&str>) -> Option<Assigned> {
+        let live = self.live.read();
+        let entry = live.get(name)?;
+        let assignment = entry.split.assign(subject, &mut rand::rng());
+        Some(Assigned {
+            generation: entry.generation,
+            arm_id: entry.arm_ids[assignment.index],
+            arm: assignment.arm.clone(),
+        })
+    }
+
+    /// Records that `assigned` answers response `response_id` for `tenant`; the receipt says when
+    /// the record is durable.
+    pub fn record_response(&self, response_id: &str, assigned: &Assigned, tenant: &str) -> Receipt {
+        self.log.record(ServedResponse {
+            response_id: response_id.to_owned(),
+            generation: assigned.generation,
+            arm_id: assigned.arm_id,
+            tenant: tenant.to_owned(),
+            served_ms: now_ms(),
+        })
+    }
+
+    /// Creates or changes a split (validated by [`Split::new`]), after checking that every arm serves something `registry`'s
+    /// store has; durable when it returns. The registry is told which versions arms hold.
+    pub fn put_split(&self, split: Split, registry: &Registry) -> Result<PutSplit, SplitEditError> {
+        let _edit = self.edits.lock();
+        check_arms(registry.store(), &split)?;
+        let put = self.store.put_split(split.spec(), now_ms())?;
+        let live = LiveSplit::from_record(&put.record)?;
+        self.live.write().insert(put.record.name.clone(), live);
+        self.keep_arm_versions(registry);
+        Ok(put)
+    }
+
+    /// Deletes a split with its records; false when there was none.
+    pub fn delete_split(&self, name: &str, registry: &Registry) -> Result<bool, ExperimentError> {
+        let _edit = self.edits.lock();
+        let deleted = self.store.delete_split(name)?;
+        self.live.write().remove(name);
+        self.keep_arm_versions(registry);
+        Ok(deleted)
+    }
+
+    /// Every split with its tallies.
+    pub fn list(&self) -> Result<Vec<SplitState>, ExperimentError> {
+        self.store.splits()
+    }
+
+    /// One split with its tallies.
+    pub fn split(&self, name: &str) -> Result<Option<SplitState>, ExperimentError> {
+        self.store.split(name)
+    }
+
+    /// Records an outcome posted by `tenant`; durable when it returns. A number beyond the bound
+    /// is refused before the response is looked up.
+    pub fn post_outcome(
+        &self,
+        response_id: &str,
+        tenant: &str,
+        value: OutcomeValue,
+    ) -> Result<RecordedOutcome, OutcomeRefused> {
+        if let OutcomeValue::Number(x) = value {
+            NumericTally::check(x)?;
+        }
+        self.store.record_outcome(&OutcomeReport {
+            response_id: response_id.to_owned(),
+            tenant: tenant.to_owned(),
+            value,
+            now_ms: now_ms(),
+        })
+    }
+
+    /// Tells the registry which versions split arms hold, so those stay resident while not live.
+    pub fn keep_arm_versions(&self, registry: &Registry) {
+        let held: Vec<(AdapterName, String)> = self
+            .live
+            .read()
+            .values()
+            .flat_map(|entry| entry.split.arms())
+            .filter_map(|arm| {
+                let version = arm.version.clone()?;
+                Some((AdapterName::new(&arm.adapter).ok()?, version))
+            })
+            .collect();
+        registry.keep_versions(held);
+    }
+
+    /// Refuses when an arm holds `version` of `adapter`; otherwise returns a guard under which no
+    /// split edit can start holding it, to keep while the version is retired.
+    pub fn guard_retire(&self, adapter: &str, version: &str) -> Result<EditGuard<'_>, HeldBySplit> {
+        let guard = self.edits.lock();
+        for (name, entry) in self.live.read().iter() {
+            if let Some(arm) = entry
+                .split
+                .arms()
+                .iter()
+                .find(|a| a.adapter == adapter && a.version.as_deref() == Some(version))
+            {
+                return Err(HeldBySplit {
+                    adapter: adapter.to_owned(),
+                    version: version.to_owned(),
+                    split: name.clone(),
+                    arm: arm.name.clone(),
+                });
+            }
+        }
+        Ok(EditGuard(guard))
+    }
+}
+
+impl Drop for Experiments {
+    fn drop(&mut self) {
+        if let Some(pruner) = self.pruner.take() {
+            pruner.stop();
+        }
+    }
+}
+
+/// The background thread that prunes old response records.
+struct Pruner {
+    stop: mpsc::Sender<()>,
+    thread: JoinHandle<()>,
+}
+
+impl Pruner {
+    fn start(store: Arc<dyn ExperimentStore>, keep: Duration) -> std::io::Result<Self> {
+        let (stop, stopped) = mpsc::channel::<()>();
+        let thread = std::thread::Builder::new()
+            .name("switchyard-prune".into())
+            .spawn(move || {
+                loop {
+                    let keep_ms = i64::try_from(keep.as_millis()).unwrap_or(i64::MAX);
+                    match store.prune_responses(now_ms().saturating_sub(keep_ms)) {
+                        Ok(0) => {}
+                        Ok(pruned) => tracing::info!(pruned, "old response records pruned"),
+                        Err(e) => tracing::error!(error = %e, "pruning response records failed"),
+                    }
+                    if !matches!(
+                        stopped.recv_timeout(PRUNE_EVERY),
+                        Err(mpsc::RecvTimeoutError::Timeout)
+                    ) {
+                        return;
+                    }
+                }
+            })?;
+        Ok(Self { stop, thread })
+    }
+
+    fn stop(self) {
+        let _ = self.stop.send(());
+        let _ = self.thread.join();
+    }
+}

@@ -1,0 +1,464 @@
+//! The experiment store on a real SQLite file: split edits keep or start arm records by what the
+//! arm serves, a deleted and recreated split inherits nothing, everything survives reopening the
+//! file, outcomes count days later until their response record is pruned, another tenant's
+//! outcome is refused as an unknown one, and an earlier version's `splits.json` moves in once.
+
+use std::sync::Arc;
+
+use switchyard_server::experiments::legacy;
+use switchyard_server::experiments::{
+    ExperimentStore, OutcomeRefused, OutcomeReport, OutcomeValue, ServedResponse, SplitState,
+    SqliteStore,
+};
+use switchyard_server::splits::{ArmSpec, SplitSpec};
+
+const DAY_MS: i64 = 24 * 3600 * 1000;
+/// A fixed "now", so the tests move time by hand.
+const NOW: i64 = 1_800_000_000_000;
+
+fn arm(name: &str, adapter: &str, version: Option<&str>, weight: f64) -> ArmSpec {
+    ArmSpec {
+        name: name.to_owned(),
+        adapter: adapter.to_owned(),
+        version: version.map(str::to_owned),
+        weight,
+    }
+}
+
+fn spec(name: &str, arms: Vec<ArmSpec>) -> SplitSpec {
+    SplitSpec {
+        name: name.to_owned(),
+        arms,
+    }
+}
+
+fn open(dir: &tempfile::TempDir) -> SqliteStore {
+    SqliteStore::open(&dir.path().join("experiments.sqlite")).unwrap()
+}
+
+/// Records that arm `arm` (by position) of `split` answered `id` for `tenant` at `served_ms`.
+fn serve(store: &SqliteStore, split: &str, arm: usize, id: &str, tenant: &str, served_ms: i64) {
+    let state = store.split(split).unwrap().unwrap();
+    store
+        .record_responses(&[ServedResponse {
+            response_id: id.to_owned(),
+            generation: state.generation,
+            arm_id: state.arms[arm].arm.id,
+            tenant: tenant.to_owned(),
+            served_ms,
+        }])
+        .unwrap();
+}
+
+fn outcome(
+    store: &SqliteStore,
+    id: &str,
+    tenant: &str,
+    value: OutcomeValue,
+) -> Result<(String, String), OutcomeRefused> {
+    store
+        .record_outcome(&OutcomeReport {
+            response_id: id.to_owned(),
+            tenant: tenant.to_owned(),
+            value,
+            now_ms: NOW,
+        })
+        .map(|r| (r.split, r.arm))
+}
+
+fn state(store: &SqliteStore, split: &str) -> SplitState {
+    store.split(split).unwrap().unwrap()
+}
+
+#[test]
+fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = open(&dir);
+    let first = store
+        .put_split(
+            &spec(
+                "fork-test",
+                vec![
+                    arm("incumbent", "fork-advice", None, 0.8),
+                    arm("candidate", "fork-advice-v2", Some("00000000000000aa"), 0.2),
+                ],
+            ),
+            NOW,
+        )
+        .unwrap();
+    assert!(first.created);
+    serve(&store, "fork-test", 0, "r-1", "north", NOW);
+    serve(&store, "fork-test", 1, "r-2", "north", NOW);
+    serve(&store, "fork-test", 1, "r-3", "north", NOW);
+    assert_eq!(
+        outcome(&store, "r-2", "north", OutcomeValue::Number(4.0)).unwrap(),
+        ("fork-test".to_owned(), "candidate".to_owned())
+    );
+
+    // Reweighted and reordered: the same two records go on, counts and all.
+    let reweighted = store
+        .put_split(
+            &spec(
+                "fork-test",
+                vec![
+                    arm("candidate", "fork-advice-v2", Some("00000000000000aa"), 0.5),
+                    arm("incumbent", "fork-advice", None, 0.5),
+                ],
+            ),
+            NOW,
+        )
+        .unwrap();
+    assert!(!reweighted.created);
+    assert_eq!(reweighted.record.generation, first.record.generation);
+    assert_eq!(reweighted.record.arms[0].id, first.record.arms[1].id);
+    assert_eq!(reweighted.record.arms[1].id, first.record.arms[0].id);
+    let s = state(&store, "fork-test");
+    assert_eq!(
+        (s.arms[0].requests, s.arms[0].numeric.count()),
+        (2, 1),
+        "{s:?}"
+    );
+    assert_eq!(s.arms[0].arm.spec.weight, 0.5);
+
+    // The candidate now holds another version: a new treatment, a new record.
+    let changed = store
+        .put_split(
+            &spec(
+                "fork-test",
+                vec![
+                    arm("candidate", "fork-advice-v2", Some("00000000000000bb"), 0.5),
+                    arm("incumbent", "fork-advice", None, 0.5),
+                ],
+            ),
+            NOW,
+        )
+        .unwrap();
+    assert_ne!(changed.record.arms[0].id, first.record.arms[1].id);
+    let s = state(&store, "fork-test");
+    assert_eq!(s.arms[0].requests, 0, "counts do not carry over: {s:?}");
+    assert_eq!(s.arms[0].numeric.count(), 0);
+    assert_eq!(s.replaced.len(), 1);
+    assert_eq!(
+        s.replaced[0].arm.spec.version.as_deref(),
+        Some("00000000000000aa")
+    );
+    assert_eq!(s.replaced[0].requests, 2);
+
+    // r-3 was answered by the old candidate record: its outcome lands there, not on the new one.
+    assert_eq!(
+        outcome(&store, "r-3", "north", OutcomeValue::Number(2.0)).unwrap(),
+        ("fork-test".to_owned(), "candidate".to_owned())
+    );
+    let s = state(&store, "fork-test");
+    assert_eq!(s.arms[0].numeric.count(), 0);
+    assert_eq!(s.replaced[0].numeric.count(), 2);
+    assert_eq!(s.replaced[0].numeric.mean(), Some(3.0));
+    // The incumbent never changed and kept its record throughout.
+    assert_eq!(s.arms[1].arm.id, first.record.arms[0].id);
+    assert_eq!(s.arms[1].requests, 1);
+
+    // Renaming an arm that serves the same thing is a new record as well.
+    store
+        .put_split(
+            &spec(
+                "fork-test",
+                vec![
+                    arm(
+                        "challenger",
+                        "fork-advice-v2",
+                        Some("00000000000000bb"),
+                        0.5,
+                    ),
+                    arm("incumbent", "fork-advice", None, 0.5),
+                ],
+            ),
+            NOW,
+        )
+        .unwrap();
+    let s = state(&store, "fork-test");
+    assert_ne!(s.arms[0].arm.id, changed.record.arms[0].id);
+    assert_eq!(s.replaced.len(), 2);
+}
+
+#[test]
+fn a_deleted_and_recreated_split_inherits_no_responses() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = open(&dir);
+    let definition = spec("gears", vec![arm("only", "base", None, 1.0)]);
+    let old = store.put_split(&definition, NOW).unwrap();
+    serve(&store, "gears", 0, "r-old", "north", NOW);
+    serve(&store, "gears", 0, "r-old-2", "north", NOW);
+    outcome(&store, "r-old", "north", OutcomeValue::YesNo(true)).unwrap();
+
+    assert!(store.delete_split("gears").unwrap());
+    assert!(!store.delete_split("gears").unwrap());
+    let new = store.put_split(&definition, NOW).unwrap();
+    assert!(new.created);
+    assert!(new.record.generation > old.record.generation);
+    assert_ne!(new.record.arms[0].id, old.record.arms[0].id);
+    let s = state(&store, "gears");
+    assert_eq!((s.arms[0].requests, s.arms[0].yes_no.count()), (0, 0));
+    assert!(s.replaced.is_empty());
+    assert!(matches!(
+        outcome(&store, "r-old-2", "north", OutcomeValue::YesNo(true)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+    // A response assigned before the delete but written after it is dropped, not attached to the
+    // new split.
+    store
+        .record_responses(&[ServedResponse {
+            response_id: "r-late".to_owned(),
+            generation: old.record.generation,
+            arm_id: old.record.arms[0].id,
+            tenant: "north".to_owned(),
+            served_ms: NOW,
+        }])
+        .unwrap();
+    assert!(matches!(
+        outcome(&store, "r-late", "north", OutcomeValue::YesNo(true)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+    assert_eq!(state(&store, "gears").arms[0].requests, 0);
+}
+
+#[test]
+fn splits_outcomes_and_response_records_survive_reopening_the_database() {
+    let dir = tempfile::tempdir().unwrap();
+    let before = {
+        let store = open(&dir);
+        store
+            .put_split(
+                &spec(
+                    "tone",
+                    vec![arm("a", "tone-a", None, 1.0), arm("b", "base", None, 2.0)],
+                ),
+                NOW,
+            )
+            .unwrap();
+        for i in 0..6 {
+            serve(&store, "tone", i % 2, &format!("r-{i}"), "north", NOW);
+        }
+        outcome(&store, "r-0", "north", OutcomeValue::Number(1.5)).unwrap();
+        outcome(&store, "r-2", "north", OutcomeValue::Number(2.5)).unwrap();
+        outcome(&store, "r-1", "north", OutcomeValue::YesNo(false)).unwrap();
+        state(&store, "tone")
+    };
+    let store = open(&dir);
+    assert_eq!(state(&store, "tone"), before);
+    assert_eq!(store.splits().unwrap(), vec![before]);
+    assert!(matches!(
+        outcome(&store, "r-0", "north", OutcomeValue::Number(9.0)),
+        Err(OutcomeRefused::AlreadyRecorded)
+    ));
+    outcome(&store, "r-4", "north", OutcomeValue::Number(3.5)).unwrap();
+    assert_eq!(state(&store, "tone").arms[0].numeric.mean(), Some(2.5));
+}
+
+#[test]
+fn outcomes_days_after_the_answer_still_count_until_the_record_is_pruned() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = open(&dir);
+    store
+        .put_split(&spec("late", vec![arm("only", "base", None, 1.0)]), NOW)
+        .unwrap();
+    serve(&store, "late", 0, "r-10-days", "north", NOW - 10 * DAY_MS);
+    serve(&store, "late", 0, "r-40-days", "north", NOW - 40 * DAY_MS);
+    serve(&store, "late", 0, "r-2-days", "north", NOW - 2 * DAY_MS);
+    // Kept for 30 days: only the 40-day-old record goes.
+    assert_eq!(store.prune_responses(NOW - 30 * DAY_MS).unwrap(), 1);
+    outcome(&store, "r-10-days", "north", OutcomeValue::YesNo(true)).unwrap();
+    assert!(matches!(
+        outcome(&store, "r-40-days", "north", OutcomeValue::YesNo(true)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+    // Pruning a record keeps the outcomes already in the tally.
+    assert_eq!(store.prune_responses(NOW - DAY_MS).unwrap(), 2);
+    let s = state(&store, "late");
+    assert_eq!((s.arms[0].requests, s.arms[0].yes_no.count()), (3, 1));
+    assert!(matches!(
+        outcome(&store, "r-2-days", "north", OutcomeValue::YesNo(true)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+}
+
+#[test]
+fn another_tenants_outcome_is_refused_as_an_unknown_response() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = open(&dir);
+    store
+        .put_split(&spec("shared", vec![arm("only", "base", None, 1.0)]), NOW)
+        .unwrap();
+    serve(&store, "shared", 0, "r-north", "north", NOW);
+    assert!(matches!(
+        outcome(&store, "r-north", "south", OutcomeValue::Number(1.0)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+    assert!(matches!(
+        outcome(&store, "r-nobody", "south", OutcomeValue::Number(1.0)),
+        Err(OutcomeRefused::UnknownResponse)
+    ));
+    outcome(&store, "r-north", "north", OutcomeValue::Number(1.0)).unwrap();
+    // A value beyond the bound is refused and uses nothing up.
+    serve(&store, "shared", 0, "r-big", "north", NOW);
+    assert!(matches!(
+        outcome(&store, "r-big", "north", OutcomeValue::Number(2e15)),
+        Err(OutcomeRefused::Invalid(_))
+    ));
+    outcome(&store, "r-big", "north", OutcomeValue::Number(2.0)).unwrap();
+    assert_eq!(state(&store, "shared").arms[0].numeric.count(), 2);
+}
+
+#[test]
+fn concurrent_outcomes_and_response_records_are_all_counted() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Arc::new(open(&dir));
+    store
+        .put_split(
+            &spec(
+                "busy",
+                vec![arm("a", "base", None, 1.0), arm("b", "base-b", None, 1.0)],
+            ),
+            NOW,
+        )
+        .unwrap();
+    let s = state(&store, "busy");
+    std::thread::scope(|scope| {
+        for t in 0..4 {
+            let (store, s) = (&store, &s);
+            scope.spawn(move || {
+                for i in 0..50 {
+                    let arm = &s.arms[i % 2].arm;
+                    let id = format!("r-{t}-{i}");
+                    store
+                        .record_responses(&[ServedResponse {
+                            response_id: id.clone(),
+                            generation: s.generation,
+                            arm_id: arm.id,
+                            tenant: "north".to_owned(),
+                            served_ms: NOW,
+                        }])
+                        .unwrap();
+                    outcome(store, &id, "north", OutcomeValue::Number(i as f64)).unwrap();
+                }
+            });
+        }
+    });
+    let s = state(&store, "busy");
+    for (index, line) in s.arms.iter().enumerate() {
+        assert_eq!(line.requests, 100, "arm {index}");
+        assert_eq!(line.numeric.count(), 100, "arm {index}");
+        // Each thread posted i = index, index + 2, ..., 48 + index: mean 24 + index (to
+        // rounding, since the order of the updates varies).
+        let mean = line.numeric.mean().unwrap();
+        assert!(
+            (mean - (24.0 + index as f64)).abs() < 1e-12,
+            "arm {index}: {mean}"
+        );
+    }
+}
+
+#[test]
+fn an_earlier_versions_splits_json_is_moved_in_once() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(
+        dir.path().join(legacy::LEGACY_FILE),
+        r#"[{"name": "fork-test", "arms": [
+            {"name": "incumbent", "adapter": "fork-advice", "weight": 0.8},
+            {"name": "candidate", "adapter": "base", "weight": 0.2}
+        ]}]"#,
+    )
+    .unwrap();
+    let store = open(&dir);
+    assert_eq!(legacy::migrate(dir.path(), &store).unwrap(), 1);
+    assert!(!dir.path().join(legacy::LEGACY_FILE).exists());
+    assert!(dir.path().join(legacy::MIGRATED_FILE).is_file());
+    let s = state(&store, "fork-test");
+    assert_eq!(s.arms.len(), 2);
+    assert_eq!(s.arms[0].arm.spec.weight, 0.8);
+    // Read once: a second start finds nothing to move.
+    assert_eq!(legacy::migrate(dir.path(), &store).unwrap(), 0);
+    // Found again after a crash between writing and renaming: the split already there is kept.
+    std::fs::rename(
+        dir.path().join(legacy::MIGRATED_FILE),
+        dir.path().join(legacy::LEGACY_FILE),
+    )
+    .unwrap();
+    store
+        .put_split(
+            &spec(
+                "fork-test",
+                vec![arm("incumbent", "fork-advice", None, 1.0)],
+            ),
+            NOW,
+        )
+        .unwrap();
+    assert_eq!(legacy::migrate(dir.path(), &store).unwrap(), 0);
+    assert_eq!(state(&store, "fork-test").arms.len(), 1);
+}
+
+#[test]
+fn the_database_keeps_a_write_ahead_log_that_another_connection_reads() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("experiments.sqlite");
+    let store = SqliteStore::open(&path).unwrap();
+    store
+        .put_split(&spec("wal", vec![arm("only", "base", None, 1.0)]), NOW)
+        .unwrap();
+    // Read with a connection of its own, as another process would.
+    let conn = rusqlite::Connection::open(&path).unwrap();
+    let mode: String = conn
+        .query_row("PRAGMA journal_mode", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(mode, "wal");
+    assert!(dir.path().join("experiments.sqlite-wal").exists());
+    let names: i64 = conn
+        .query_row("SELECT count(*) FROM splits WHERE name = 'wal'", [], |r| {
+            r.get(0)
+        })
+        .unwrap();
+    assert_eq!(names, 1, "a commit is visible to another connection");
+}
+
+/// The fuzz-found bug `split_weight_moved_by_one_ulp_when_saved_and_read_back` (a weight that
+/// changed across a restart) for the store that now keeps splits: weights read from a client's
+/// JSON, written to the database and read back by a new connection after a reopen are the same
+/// f64s bit for bit, so every subject keeps its arm. -0.0, which SQLite may keep as the integer
+/// 0, reads back as a weight equal to it.
+#[test]
+fn split_weight_moved_by_one_ulp_when_saved_and_read_back_from_the_store() {
+    let body = r#"[
+        {"name": "incumbent", "adapter": "fork-advice", "weight": 111111110111111151115.1},
+        {"name": "control", "adapter": "base", "weight": 5},
+        {"name": "tiny", "adapter": "base", "weight": 4.9406564584124654e-324},
+        {"name": "third", "adapter": "base", "weight": 0.30000000000000004},
+        {"name": "nothing", "adapter": "base", "weight": -0.0}
+    ]"#;
+    let arms: Vec<ArmSpec> = serde_json::from_str(body).unwrap();
+    let written = switchyard_server::splits::Split::new(spec("fork", arms)).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    open(&dir).put_split(written.spec(), NOW).unwrap();
+    let read = open(&dir)
+        .split("fork")
+        .unwrap()
+        .unwrap()
+        .record()
+        .split()
+        .unwrap();
+    for (w, r) in written.arms().iter().zip(read.arms()) {
+        assert!(
+            w.weight.to_bits() == r.weight.to_bits() || (w.weight == 0.0 && r.weight == 0.0),
+            "{}: {} written, {} read",
+            w.name,
+            w.weight,
+            r.weight
+        );
+    }
+    assert_eq!(read, written);
+    for i in 0..500 {
+        let subject = format!("rider-{i}");
+        assert_eq!(
+            read.assign_subject(&subject).index,
+            written.assign_subject(&subject).index
+        );
+    }
+}
