@@ -18,7 +18,7 @@ use switchyard_adapters::registry::{Registry, RegistryConfig};
 use switchyard_adapters::store::Store;
 use switchyard_config::{LogFormat, Overrides, Settings};
 
-use crate::engine::{Backbone, Engine, EngineConfig};
+use crate::engine::{Backbone, Engine, EngineConfig, tenant_quotas};
 use crate::http::auth::Tenants;
 use crate::http::error::ApiError;
 use crate::http::splits::SplitBook;
@@ -150,8 +150,10 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         EngineConfig {
             max_batch_rows: settings.max_batch_rows,
             queue_depth: settings.queue_depth,
+            turn_rows: settings.turn_rows,
             promote_share: settings.promote_share,
             promote_window_rows: settings.promote_window_rows,
+            tenants: tenant_quotas(&settings),
         },
         metrics.clone(),
     );

@@ -40,6 +40,9 @@ pub enum AuthError {
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Tenant {
     pub name: String,
+    /// Its place in the configured list (0 for the open tenant): the engine keeps each tenant's
+    /// queue and quota by it ([`crate::engine::tenant_quotas`]).
+    pub index: usize,
     patterns: Vec<String>,
 }
 
@@ -85,6 +88,7 @@ impl Tenants {
             let index = u32::try_from(index).expect("fewer than 2^32 tenants");
             tenants.push(Arc::new(Tenant {
                 name: t.name.clone(),
+                index: index as usize,
                 patterns: t.adapters.clone(),
             }));
             keys.extend(t.keys.iter().map(|k| (digest(k), index)));
@@ -92,6 +96,7 @@ impl Tenants {
         let open = settings.is_empty().then(|| {
             Arc::new(Tenant {
                 name: OPEN_TENANT.to_owned(),
+                index: 0,
                 patterns: vec!["*".to_owned()],
             })
         });
@@ -223,11 +228,13 @@ mod tests {
                 name: "ridgeline-north".into(),
                 keys: vec![NORTH_KEY.into(), NORTH_KEY_2.into()],
                 adapters: vec!["north-*".into(), "shared-faq".into()],
+                quota: Default::default(),
             },
             TenantSettings {
                 name: "ridgeline-south".into(),
                 keys: vec![SOUTH_KEY.into()],
                 adapters: vec!["south-*".into()],
+                quota: Default::default(),
             },
         ])
     }
@@ -235,6 +242,7 @@ mod tests {
     fn tenant(patterns: &[&str]) -> Tenant {
         Tenant {
             name: "t".into(),
+            index: 0,
             patterns: patterns.iter().map(|p| p.to_string()).collect(),
         }
     }
@@ -247,13 +255,13 @@ mod tests {
     fn each_key_authenticates_its_own_tenant() {
         let tenants = ridgeline();
         assert!(!tenants.is_open());
-        for (key, name) in [
-            (NORTH_KEY, "ridgeline-north"),
-            (NORTH_KEY_2, "ridgeline-north"),
-            (SOUTH_KEY, "ridgeline-south"),
+        for (key, name, index) in [
+            (NORTH_KEY, "ridgeline-north", 0),
+            (NORTH_KEY_2, "ridgeline-north", 0),
+            (SOUTH_KEY, "ridgeline-south", 1),
         ] {
             let t = tenants.authenticate(Some(&bearer(key))).unwrap();
-            assert_eq!(t.name, name, "{key}");
+            assert_eq!((t.name.as_str(), t.index), (name, index), "{key}");
         }
     }
 

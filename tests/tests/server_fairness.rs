@@ -1,0 +1,210 @@
+//! Tenants share the server fairly, through the real binary: a tenant that floods the server is
+//! refused with 429 and a Retry-After header while another tenant's requests all succeed, and
+//! each quota (requests per second, tokens per minute, concurrent requests) refuses past its
+//! limit with a Retry-After computed from that limit.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Duration;
+
+use serde_json::json;
+use switchyard_tests::server::{Auth, Reply, Server, ServerSetup};
+
+const FLOOD_KEY: &str = "flood-key-0123456789abcdef";
+const CALM_KEY: &str = "calm-key-0123456789abcdef";
+
+fn embed_as(server: &Server, key: &str, adapter: &str, texts: &[&str]) -> Reply {
+    server.post(
+        "/embed",
+        Auth::Bearer(key),
+        &json!({"adapter": adapter, "texts": texts}),
+    )
+}
+
+/// The Retry-After header of a 429, as whole seconds; panics when it is missing or not a number.
+fn retry_after_seconds(reply: &Reply) -> u64 {
+    let value = reply
+        .retry_after
+        .as_deref()
+        .unwrap_or_else(|| panic!("a {} without Retry-After: {}", reply.status, reply.body));
+    value
+        .parse()
+        .unwrap_or_else(|_| panic!("Retry-After {value:?} is not whole seconds"))
+}
+
+/// Two tenants on one server with `[engine] queue_depth` 4: each may hold 2 waiting requests.
+/// Before the per-tenant queue, the flood filled the one shared queue and the calm tenant got
+/// `queue_full` too.
+#[test]
+fn a_flooding_tenant_gets_429_with_retry_after_while_the_other_tenants_requests_all_succeed() {
+    let server = ServerSetup::encoder()
+        .set("engine", "queue_depth", "4")
+        .tenant("flood", FLOOD_KEY, &[])
+        .tenant("calm", CALM_KEY, &[])
+        .start();
+    let flood_texts = [
+        "flood text one",
+        "flood text two",
+        "flood text three",
+        "flood text four",
+    ];
+    let calm_done = AtomicBool::new(false);
+    let (flood, calm) = std::thread::scope(|scope| {
+        let flooders: Vec<_> = (0..8)
+            .map(|_| {
+                scope.spawn(|| {
+                    let mut replies = Vec::new();
+                    while !calm_done.load(Ordering::SeqCst) {
+                        replies.push(embed_as(&server, FLOOD_KEY, "base", &flood_texts));
+                    }
+                    replies
+                })
+            })
+            .collect();
+        // Let the flood fill its share of the queue first.
+        std::thread::sleep(Duration::from_millis(300));
+        let calm: Vec<Reply> = (0..10)
+            .map(|_| embed_as(&server, CALM_KEY, "base", &["where is my wheel"]))
+            .collect();
+        calm_done.store(true, Ordering::SeqCst);
+        let flood: Vec<Reply> = flooders
+            .into_iter()
+            .flat_map(|f| f.join().unwrap())
+            .collect();
+        (flood, calm)
+    });
+    for reply in &calm {
+        let answer = reply.ok_json();
+        assert_eq!(answer["embeddings"].as_array().unwrap().len(), 1);
+    }
+    let refused: Vec<&Reply> = flood.iter().filter(|r| r.status == 429).collect();
+    assert!(
+        !refused.is_empty(),
+        "8 flooding clients against a share of 2 were never refused ({} answers)",
+        flood.len()
+    );
+    assert!(
+        flood.iter().any(|r| r.status == 200),
+        "the flood is served too, at its share"
+    );
+    for reply in &flood {
+        assert!(
+            reply.status == 200 || reply.status == 429,
+            "flood answer {}: {}",
+            reply.status,
+            reply.body
+        );
+    }
+    for reply in refused {
+        reply.assert_error(429, "tenant_queue_full");
+        assert!(retry_after_seconds(reply) >= 1);
+    }
+}
+
+#[test]
+fn retry_after_comes_from_the_request_rate_quota() {
+    // One request every 4 s for the flooding tenant; the other tenant has no quota.
+    let server = ServerSetup::encoder()
+        .tenant("flood", FLOOD_KEY, &[])
+        .tenant_set("requests_per_second", "0.25")
+        .tenant("calm", CALM_KEY, &[])
+        .start();
+    // The first request takes the one request the bucket holds (an adapter outside the
+    // tenant's patterns: refused once admitted, at once), so the next comes milliseconds later
+    // and must wait the whole 4 s.
+    embed_as(&server, FLOOD_KEY, "elsewhere", &["one"]).assert_error(403, "forbidden_target");
+    let refused = embed_as(&server, FLOOD_KEY, "base", &["two"]);
+    refused.assert_error(429, "rate_limited");
+    assert_eq!(retry_after_seconds(&refused), 4, "{}", refused.body);
+    assert!(
+        refused.body.contains("0.25 requests per second"),
+        "{}",
+        refused.body
+    );
+    for _ in 0..5 {
+        embed_as(&server, CALM_KEY, "base", &["where is my wheel"]).ok_json();
+    }
+}
+
+#[test]
+fn retry_after_comes_from_the_tokens_per_minute_quota() {
+    // "where is my wheel" is 6 tokens with [CLS] and [SEP]; 6 tokens a minute is one such
+    // request a minute, and the next waits about 60 s (less the time the first took).
+    let server = ServerSetup::encoder()
+        .tenant("flood", FLOOD_KEY, &[])
+        .tenant_set("tokens_per_minute", "6")
+        .start();
+    embed_as(&server, FLOOD_KEY, "base", &["where is my wheel"]).ok_json();
+    let refused = embed_as(&server, FLOOD_KEY, "base", &["where is my wheel"]);
+    refused.assert_error(429, "token_quota_spent");
+    let wait = retry_after_seconds(&refused);
+    assert!(
+        (50..=60).contains(&wait),
+        "Retry-After {wait} for 6 tokens at 6 a minute: {}",
+        refused.body
+    );
+    // More than a whole minute's worth can never pass: not a 429 to retry, a 413.
+    let too_big = embed_as(
+        &server,
+        FLOOD_KEY,
+        "base",
+        &["where is my wheel", "where is my wheel"],
+    );
+    too_big.assert_error(413, "over_token_quota");
+    assert!(too_big.retry_after.is_none(), "{too_big:?}");
+    assert!(too_big.body.contains("needs 12 tokens"), "{}", too_big.body);
+}
+
+#[test]
+fn a_tenant_at_its_concurrent_requests_is_refused_until_one_finishes() {
+    let server = ServerSetup::encoder()
+        .tenant("flood", FLOOD_KEY, &[])
+        .tenant_set("concurrent_requests", "1")
+        .tenant("calm", CALM_KEY, &[])
+        .start();
+    let long: Vec<String> = (0..64)
+        .map(|i| format!("a long request, text number {i}, about a wheel"))
+        .collect();
+    let long: Vec<&str> = long.iter().map(String::as_str).collect();
+    let first_done = AtomicBool::new(false);
+    let (first, attempts, calm) = std::thread::scope(|scope| {
+        let first = scope.spawn(|| {
+            // A short request may hold the one place when this one arrives: retry until served.
+            let mut refused = Vec::new();
+            loop {
+                let reply = embed_as(&server, FLOOD_KEY, "base", &long);
+                if reply.status != 429 {
+                    first_done.store(true, Ordering::SeqCst);
+                    return (reply, refused);
+                }
+                refused.push(reply);
+            }
+        });
+        let attempts = scope.spawn(|| {
+            let mut replies = Vec::new();
+            while !first_done.load(Ordering::SeqCst) {
+                replies.push(embed_as(&server, FLOOD_KEY, "base", &["short"]));
+            }
+            replies
+        });
+        let calm = scope.spawn(|| embed_as(&server, CALM_KEY, "base", &["where is my wheel"]));
+        (
+            first.join().unwrap(),
+            attempts.join().unwrap(),
+            calm.join().unwrap(),
+        )
+    });
+    let (first, mut attempts) = (first.0, [first.1, attempts].concat());
+    attempts.retain(|r| r.status != 200);
+    first.ok_json();
+    calm.ok_json();
+    assert!(
+        !attempts.is_empty(),
+        "no attempt was refused while a 64-text request was in flight"
+    );
+    for reply in &attempts {
+        reply.assert_error(429, "too_many_in_flight");
+        assert!(retry_after_seconds(reply) >= 1);
+    }
+    // Once it finished, the tenant is admitted again.
+    embed_as(&server, FLOOD_KEY, "base", &["after"]).ok_json();
+}
