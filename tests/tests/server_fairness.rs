@@ -94,10 +94,18 @@ fn a_flooding_tenant_gets_429_with_retry_after_while_the_other_tenants_requests_
             reply.body
         );
     }
-    for reply in refused {
+    for reply in &refused {
         reply.assert_error(429, "tenant_queue_full");
         assert!(retry_after_seconds(reply) >= 1);
     }
+    // The refusals are counted by tenant and reason; the calm tenant has none.
+    let metrics = server.get("/metrics", Auth::Admin).body;
+    let line = format!(
+        "switchyard_refusals_total{{tenant=\"flood\",reason=\"tenant_queue_full\"}} {}",
+        refused.len()
+    );
+    assert!(metrics.contains(&line), "no {line:?} in\n{metrics}");
+    assert!(!metrics.contains("tenant=\"calm\""), "{metrics}");
 }
 
 #[test]

@@ -18,8 +18,8 @@ use switchyard_adapters::registry::{Registry, RegistryConfig};
 use switchyard_adapters::store::Store;
 use switchyard_config::{LogFormat, Overrides, Settings};
 
-use crate::engine::{Backbone, Engine, EngineConfig, tenant_quotas};
-use crate::http::auth::Tenants;
+use crate::engine::{Backbone, Engine, EngineConfig};
+use crate::http::auth::{Tenants, tenant_limits};
 use crate::http::error::ApiError;
 use crate::http::splits::SplitBook;
 use crate::http::{AppState, RequestLimits, SharedState, router};
@@ -153,7 +153,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
             turn_rows: settings.turn_rows,
             promote_share: settings.promote_share,
             promote_window_rows: settings.promote_window_rows,
-            tenants: tenant_quotas(&settings),
+            tenants: tenant_limits(&settings),
         },
         metrics.clone(),
     );

@@ -24,7 +24,7 @@ use std::time::{Duration, Instant};
 
 use switchyard_adapters::registry::{AdapterHandle, MergedHandle, Registry};
 use switchyard_adapters::{Adapter, MergedWeights};
-use switchyard_config::{Quota, Settings};
+use switchyard_config::Quota;
 use tokio::sync::{mpsc, oneshot};
 
 use crate::metrics::Metrics;
@@ -71,19 +71,16 @@ pub struct EngineConfig {
     pub turn_rows: usize,
     pub promote_share: f64,
     pub promote_window_rows: usize,
-    /// Each tenant's quota, by tenant index ([`tenant_quotas`]).
-    pub tenants: Vec<Quota>,
+    /// Each tenant's name and quota, by tenant index
+    /// ([`crate::http::auth::tenant_limits`]).
+    pub tenants: Vec<TenantLimits>,
 }
 
-/// The quota of each tenant, in the order [`crate::http::auth::Tenants`] numbers them: the
-/// configured tenants in the file's order, or the one open tenant (with `[quota]`'s limits) when
-/// none are configured.
-pub fn tenant_quotas(settings: &Settings) -> Vec<Quota> {
-    if settings.tenants.is_empty() {
-        vec![settings.quota]
-    } else {
-        settings.tenants.iter().map(|t| t.quota).collect()
-    }
+/// One tenant as the engine knows it: a name for the metrics, and its quota.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TenantLimits {
+    pub name: String,
+    pub quota: Quota,
 }
 
 /// Credit per turn of a tenant's lane in a decoder, in tokens: a short prompt and its answer.
@@ -93,12 +90,12 @@ const DECODER_QUANTUM_TOKENS: u64 = 128;
 /// Why the engine refused or failed a job.
 #[derive(Debug, Clone, thiserror::Error)]
 pub enum EngineError {
-    #[error("the queue is full ({waiting} requests waiting); retry in about {} s", whole_seconds(*retry_after))]
+    #[error("the queue is full ({waiting} requests waiting); retry in about {}", quota::wait_text(*retry_after))]
     QueueFull {
         waiting: usize,
         retry_after: Duration,
     },
-    #[error("this key already has {waiting} requests waiting, its share of the queue; retry in about {} s", whole_seconds(*retry_after))]
+    #[error("this key already has {waiting} requests waiting, its share of the queue; retry in about {}", quota::wait_text(*retry_after))]
     TenantQueueFull {
         waiting: usize,
         retry_after: Duration,
@@ -117,6 +114,22 @@ pub enum EngineError {
 }
 
 impl EngineError {
+    /// The stable code of a refusal before the job was queued (a quota or the queue's bounds),
+    /// as the API and the refusals metric name it; `None` for other errors.
+    pub fn refusal_code(&self) -> Option<&'static str> {
+        Some(match self {
+            EngineError::QueueFull { .. } => "queue_full",
+            EngineError::TenantQueueFull { .. } => "tenant_queue_full",
+            EngineError::OverQuota { refusal, .. } => match refusal {
+                QuotaRefusal::Rate { .. } => "rate_limited",
+                QuotaRefusal::Concurrency { .. } => "too_many_in_flight",
+                QuotaRefusal::Tokens { .. } => "token_quota_spent",
+                QuotaRefusal::TokensNeverFit { .. } => "over_token_quota",
+            },
+            _ => return None,
+        })
+    }
+
     /// For a refusal that a retry can get past, how long to wait first.
     pub fn retry_after(&self) -> Option<Duration> {
         match self {
@@ -233,6 +246,9 @@ impl Cost for Job {
 pub struct Engine {
     queue: Arc<FairQueue<Job>>,
     quotas: Quotas,
+    /// Tenant names by index, for the refusals metric.
+    names: Vec<String>,
+    metrics: Arc<Metrics>,
     thread: Option<JoinHandle<()>>,
 }
 
@@ -261,14 +277,22 @@ impl Engine {
             tenants,
             QueueLimits::shared(config.queue_depth, tenants, quantum),
         ));
-        let mut quotas = config.tenants.clone();
-        quotas.resize(tenants, Quota::default());
+        let mut limits = config.tenants.clone();
+        limits.resize(
+            tenants,
+            TenantLimits {
+                name: "default".to_owned(),
+                quota: Quota::default(),
+            },
+        );
+        let quota_list: Vec<Quota> = limits.iter().map(|t| t.quota).collect();
+        let names = limits.into_iter().map(|t| t.name).collect();
         let worker = Worker {
             backbone,
             registry,
             policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
             config,
-            metrics,
+            metrics: Arc::clone(&metrics),
             queue: Arc::clone(&queue),
         };
         let thread = std::thread::Builder::new()
@@ -277,7 +301,9 @@ impl Engine {
             .expect("spawn the engine thread");
         Engine {
             queue,
-            quotas: Quotas::new(&quotas, Instant::now()),
+            quotas: Quotas::new(&quota_list, Instant::now()),
+            names,
+            metrics,
             thread: Some(thread),
         }
     }
@@ -292,12 +318,23 @@ impl Engine {
                     .wait()
                     .or_else(|| self.queue.wait_estimate(Some(tenant)))
                     .unwrap_or(Duration::from_secs(1));
-                Err(EngineError::OverQuota {
-                    refusal,
-                    retry_after,
-                })
+                Err(self.refused(
+                    tenant,
+                    EngineError::OverQuota {
+                        refusal,
+                        retry_after,
+                    },
+                ))
             }
         }
+    }
+
+    /// Counts a refusal of `tenant`'s request and passes it on.
+    fn refused(&self, tenant: usize, e: EngineError) -> EngineError {
+        if let Some(reason) = e.refusal_code() {
+            self.metrics.refused(&self.names[tenant], reason);
+        }
+        e
     }
 
     /// Queues a job in its tenant's lane, or refuses it at once when the lane holds the tenant's
@@ -317,7 +354,7 @@ impl Engine {
                 .wait_estimate(lane)
                 .unwrap_or(Duration::from_secs(1))
         };
-        Err(match why {
+        let e = match why {
             Refused::Closed => EngineError::ShuttingDown,
             Refused::LaneFull => EngineError::TenantQueueFull {
                 waiting: limits.per_lane,
@@ -327,7 +364,8 @@ impl Engine {
                 waiting: limits.total,
                 retry_after: wait(None),
             },
-        })
+        };
+        Err(self.refused(lane, e))
     }
 
     /// Jobs waiting for the engine thread.

@@ -1,13 +1,22 @@
 //! The engine's queue: one lane per tenant, served by deficit round robin (Shreedhar and
-//! Varghese, 1995), so a tenant that sends more than the server can answer waits behind its own
-//! requests, not in front of everyone else's.
+//! Varghese, 1995) with the sparse-flow priority of FQ-CoDel (RFC 8290), so a tenant that sends
+//! more than the server can answer waits behind its own requests, not in front of everyone
+//! else's, and a tenant that sends little is served next.
 //!
-//! Each job has a cost (rows for an embedding job, tokens for a generation). The lanes holding
-//! jobs take turns; at the start of its turn a lane is credited `quantum`, and the turn takes jobs
+//! Each job has a cost (rows for an embedding job, tokens for a generation). Lanes holding jobs
+//! take turns; at the start of its turn a lane is credited `quantum`, and the turn takes jobs
 //! from the lane's front while its credit covers them. A job that costs more than the credit
 //! waits for later turns (credit carries over while the lane holds jobs, and is dropped when it
 //! empties, so an idle tenant saves nothing up). Over any stretch in which two tenants both have
 //! jobs waiting, the cost each is served differs by at most a quantum plus one job.
+//!
+//! Turn order: a lane that had nothing queued joins the `new` list, whose lanes go before the
+//! `old` list's; after its turn a lane with jobs left joins the back of `old`. A `new` lane that
+//! empties also goes to the back of `old` (empty), and leaves only when its turn there comes; a
+//! job pushed meanwhile finds it listed and gets no priority. So a tenant sending one request
+//! now and then waits for at most the batch under way, one that keeps its lane busy takes its
+//! turn in order like everyone else, and one that pushes again right after each answer gets at
+//! most two turns to a busy tenant's one.
 //!
 //! [`FairQueue::take`] fills one batch up to a budget (cost and job count); a turn that the
 //! budget cuts short goes on in the next batch without fresh credit. The queue is bounded twice:
@@ -39,12 +48,12 @@ pub struct QueueLimits {
 }
 
 impl QueueLimits {
-    /// `total` jobs, shared equally by `lanes` tenants (each may hold `total / lanes`, rounded
-    /// up, at least one).
+    /// `total` jobs, shared equally by `lanes` tenants: each may hold `total / lanes`, rounded
+    /// down so that the shares fit in the total together (at least one each).
     pub fn shared(total: usize, lanes: usize, quantum: u64) -> Self {
         Self {
             total: total.max(1),
-            per_lane: total.div_ceil(lanes.max(1)).max(1),
+            per_lane: (total / lanes.max(1)).max(1),
             quantum: quantum.max(1),
         }
     }
@@ -70,11 +79,22 @@ pub struct Budget {
     pub jobs: usize,
 }
 
+/// Which turn list a lane is on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum List {
+    New,
+    Old,
+}
+
 #[derive(Debug)]
 struct Lane<T> {
     jobs: VecDeque<(T, u64)>,
     credit: u64,
     queued_cost: u64,
+    /// The turn list it is on; `None` when it is on neither (and holds no jobs).
+    list: Option<List>,
+    /// Whether its current turn began (it was credited) in an earlier batch.
+    turn_begun: bool,
 }
 
 impl<T> Lane<T> {
@@ -83,6 +103,8 @@ impl<T> Lane<T> {
             jobs: VecDeque::new(),
             credit: 0,
             queued_cost: 0,
+            list: None,
+            turn_begun: false,
         }
     }
 }
@@ -93,14 +115,49 @@ const RATE_WINDOW: Duration = Duration::from_secs(5);
 #[derive(Debug)]
 struct State<T> {
     lanes: Vec<Lane<T>>,
-    /// Lanes holding jobs, in turn order; the front one's turn is next (or under way).
-    turns: VecDeque<usize>,
-    /// Whether the front lane's turn began (it was credited) in an earlier batch.
-    turn_begun: bool,
+    /// Lanes that had nothing queued when a job came, in arrival order: their turns come first.
+    new: VecDeque<usize>,
+    /// Every other listed lane, in turn order.
+    old: VecDeque<usize>,
     queued: usize,
     closed: bool,
     /// When the engine took how much, over the last [`RATE_WINDOW`]: the service rate.
     taken: VecDeque<(Instant, u64)>,
+}
+
+impl<T> State<T> {
+    /// The lane whose turn is next (or under way), and its list.
+    fn front(&self) -> Option<(usize, List)> {
+        match self.new.front() {
+            Some(&lane) => Some((lane, List::New)),
+            None => self.old.front().map(|&lane| (lane, List::Old)),
+        }
+    }
+
+    fn listed(&self) -> usize {
+        self.new.len() + self.old.len()
+    }
+
+    /// Ends the turn of `lane` (the front of `list`): a lane with jobs left goes to the back of
+    /// `old`; an emptied one forgets its credit and leaves, except that a `new` lane goes to the
+    /// back of `old` once more, empty.
+    fn end_turn(&mut self, lane: usize, list: List) {
+        match list {
+            List::New => self.new.pop_front(),
+            List::Old => self.old.pop_front(),
+        };
+        let l = &mut self.lanes[lane];
+        l.turn_begun = false;
+        if l.jobs.is_empty() {
+            l.credit = 0;
+        }
+        if !l.jobs.is_empty() || list == List::New {
+            l.list = Some(List::Old);
+            self.old.push_back(lane);
+        } else {
+            l.list = None;
+        }
+    }
 }
 
 /// The per-tenant queue; see the module doc.
@@ -118,8 +175,8 @@ impl<T: Cost> FairQueue<T> {
             limits,
             state: Mutex::new(State {
                 lanes: (0..lanes.max(1)).map(|_| Lane::new()).collect(),
-                turns: VecDeque::new(),
-                turn_begun: false,
+                new: VecDeque::new(),
+                old: VecDeque::new(),
                 queued: 0,
                 closed: false,
                 taken: VecDeque::new(),
@@ -152,14 +209,11 @@ impl<T: Cost> FairQueue<T> {
         }
         let cost = job.cost();
         let l = &mut s.lanes[lane];
-        if l.jobs.is_empty() {
-            l.credit = 0;
-        }
         l.jobs.push_back((job, cost));
         l.queued_cost += cost;
-        let first = l.jobs.len() == 1;
-        if first {
-            s.turns.push_back(lane);
+        if l.list.is_none() {
+            l.list = Some(List::New);
+            s.new.push_back(lane);
         }
         s.queued += 1;
         drop(s);
@@ -193,15 +247,20 @@ impl<T: Cost> FairQueue<T> {
         let mut cost = 0u64;
         // Turns in a row that took nothing: once every lane has had one, all are short of credit.
         let mut empty_turns = 0usize;
-        'turns: while let Some(&lane) = s.turns.front() {
-            if batch.len() >= budget.jobs {
+        'turns: while let Some((lane, list)) = s.front() {
+            if batch.len() >= budget.jobs || (!batch.is_empty() && cost >= budget.cost) {
                 break;
             }
-            if !s.turn_begun {
-                s.lanes[lane].credit += quantum;
-                s.turn_begun = true;
+            if s.lanes[lane].jobs.is_empty() {
+                // An emptied new lane, back on the old list for one pass.
+                s.end_turn(lane, list);
+                continue;
             }
             let l = &mut s.lanes[lane];
+            if !l.turn_begun {
+                l.credit += quantum;
+                l.turn_begun = true;
+            }
             let mut took = false;
             while let Some(&(_, c)) = l.jobs.front() {
                 if c > l.credit {
@@ -218,21 +277,12 @@ impl<T: Cost> FairQueue<T> {
                 batch.push(job);
                 took = true;
             }
-            // The turn is over: an emptied lane leaves the rotation and forgets its credit.
-            let emptied = l.jobs.is_empty();
-            if emptied {
-                l.credit = 0;
-            }
-            s.turn_begun = false;
-            s.turns.pop_front();
-            if !emptied {
-                s.turns.push_back(lane);
-            }
+            s.end_turn(lane, list);
             if took {
                 empty_turns = 0;
             } else {
                 empty_turns += 1;
-                if empty_turns >= s.turns.len() {
+                if empty_turns >= s.listed() {
                     skip_empty_rounds(s, quantum);
                     empty_turns = 0;
                 }
@@ -288,10 +338,14 @@ impl<T: Cost> FairQueue<T> {
         let ahead = match lane {
             Some(lane) => {
                 let front = s.lanes[lane].jobs.front().map_or(0, |(_, c)| *c);
-                let others = s.turns.iter().filter(|&&i| i != lane).count() as u64;
+                let busy = s.lanes.iter().filter(|l| !l.jobs.is_empty()).count() as u64;
+                let others = busy - u64::from(!s.lanes[lane].jobs.is_empty());
                 front.max(quantum) * (1 + others)
             }
-            None => quantum * s.turns.len().max(1) as u64,
+            None => {
+                let busy = s.lanes.iter().filter(|l| !l.jobs.is_empty()).count();
+                quantum * busy.max(1) as u64
+            }
         };
         Some(Duration::from_secs_f64(ahead as f64 / rate))
     }
@@ -302,19 +356,23 @@ impl<T: Cost> FairQueue<T> {
 /// at once. Credits stay as round robin would have left them, one round short (the next turn
 /// adds it).
 fn skip_empty_rounds<T>(s: &mut State<T>, quantum: u64) {
-    let rounds = s
-        .turns
-        .iter()
-        .filter_map(|&i| {
-            let l = &s.lanes[i];
+    let waiting = || {
+        s.lanes
+            .iter()
+            .filter(|l| l.list.is_some() && !l.jobs.is_empty())
+    };
+    let rounds = waiting()
+        .filter_map(|l| {
             let (_, c) = l.jobs.front()?;
             Some(c.saturating_sub(l.credit).div_ceil(quantum))
         })
         .min()
         .unwrap_or(0);
     if rounds > 1 {
-        for &i in &s.turns {
-            s.lanes[i].credit += (rounds - 1) * quantum;
+        for l in s.lanes.iter_mut() {
+            if l.list.is_some() && !l.jobs.is_empty() {
+                l.credit += (rounds - 1) * quantum;
+            }
         }
     }
 }

@@ -22,11 +22,11 @@ use switchyard_config::Quota;
 /// Why a tenant's request was refused by its quota.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum QuotaRefusal {
-    #[error("over this key's quota of {per_second} requests per second; retry in {:.1} s", wait.as_secs_f64())]
+    #[error("over this key's quota of {per_second} requests per second; retry in {}", wait_text(*wait))]
     Rate { per_second: f64, wait: Duration },
     #[error("this key already has {limit} requests in flight, its quota; retry when one finishes")]
     Concurrency { limit: u64 },
-    #[error("this request needs {needed} tokens and this key's quota of {per_minute} tokens per minute has fewer left; retry in {:.1} s", wait.as_secs_f64())]
+    #[error("this request needs {needed} tokens and this key's quota of {per_minute} tokens per minute has fewer left; retry in {}", wait_text(*wait))]
     Tokens {
         needed: u64,
         per_minute: u64,
@@ -36,6 +36,16 @@ pub enum QuotaRefusal {
         "this request needs {needed} tokens, more than this key's whole quota of {per_minute} tokens per minute; send fewer or shorter texts, or a smaller max_tokens"
     )]
     TokensNeverFit { needed: u64, per_minute: u64 },
+}
+
+/// A wait as a message says it: milliseconds under a second (rounded up), else seconds to a
+/// tenth.
+pub fn wait_text(wait: Duration) -> String {
+    if wait < Duration::from_secs(1) {
+        format!("{} ms", (wait.as_secs_f64() * 1e3).ceil().max(1.0))
+    } else {
+        format!("{:.1} s", wait.as_secs_f64())
+    }
 }
 
 impl QuotaRefusal {
@@ -290,6 +300,22 @@ mod tests {
         assert!(
             (a.as_secs_f64() - b.as_secs_f64()).abs() < 1e-6,
             "{a:?} != {b:?}"
+        );
+    }
+
+    #[test]
+    fn waits_read_in_milliseconds_under_a_second() {
+        assert_eq!(wait_text(secs(0.0483)), "49 ms");
+        assert_eq!(wait_text(secs(0.0)), "1 ms");
+        assert_eq!(wait_text(secs(4.0)), "4.0 s");
+        assert_eq!(wait_text(secs(59.97)), "60.0 s");
+        let refusal = QuotaRefusal::Rate {
+            per_second: 20.7,
+            wait: secs(0.0483),
+        };
+        assert_eq!(
+            refusal.to_string(),
+            "over this key's quota of 20.7 requests per second; retry in 49 ms"
         );
     }
 

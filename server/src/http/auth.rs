@@ -13,7 +13,9 @@ use std::sync::Arc;
 
 use sha2::{Digest, Sha256};
 use subtle::{Choice, ConditionallySelectable, ConstantTimeEq};
-use switchyard_config::TenantSettings;
+use switchyard_config::{Settings, TenantSettings};
+
+use crate::engine::TenantLimits;
 
 /// The name that addresses the base model; every tenant may use it.
 const BASE: &str = "base";
@@ -41,7 +43,7 @@ pub enum AuthError {
 pub struct Tenant {
     pub name: String,
     /// Its place in the configured list (0 for the open tenant): the engine keeps each tenant's
-    /// queue and quota by it ([`crate::engine::tenant_quotas`]).
+    /// queue and quota by it ([`tenant_limits`]).
     pub index: usize,
     patterns: Vec<String>,
 }
@@ -142,6 +144,26 @@ impl Tenants {
         }
         (bool::from(matched).then_some(owner as usize), compared)
     }
+}
+
+/// Each tenant's name and quota, in the order [`Tenants`] numbers them ([`Tenant::index`]): the
+/// configured tenants in the file's order, or the one open tenant (with `[quota]`'s limits) when
+/// none are configured. The engine keeps its per-tenant queues and quotas in this order.
+pub fn tenant_limits(settings: &Settings) -> Vec<TenantLimits> {
+    if settings.tenants.is_empty() {
+        return vec![TenantLimits {
+            name: OPEN_TENANT.to_owned(),
+            quota: settings.quota,
+        }];
+    }
+    settings
+        .tenants
+        .iter()
+        .map(|t| TenantLimits {
+            name: t.name.clone(),
+            quota: t.quota,
+        })
+        .collect()
 }
 
 /// Keeps key digests out of `{:?}`.

@@ -7,7 +7,6 @@ use axum::response::{IntoResponse, Response};
 use serde_json::json;
 
 use crate::engine::EngineError;
-use crate::engine::quota::QuotaRefusal;
 use crate::http::auth::AuthError;
 
 #[derive(Debug, Clone)]
@@ -71,23 +70,22 @@ impl From<EngineError> for ApiError {
         let retry_after_s = e
             .retry_after()
             .map(|wait| u32::try_from(crate::engine::whole_seconds(wait)).unwrap_or(u32::MAX));
-        let too_many = |code| Self {
-            retry_after_s,
-            ..Self::new(StatusCode::TOO_MANY_REQUESTS, code, e.to_string())
-        };
         match &e {
-            EngineError::QueueFull { .. } => too_many("queue_full"),
-            EngineError::TenantQueueFull { .. } => too_many("tenant_queue_full"),
-            EngineError::OverQuota { refusal, .. } => match refusal {
-                QuotaRefusal::Rate { .. } => too_many("rate_limited"),
-                QuotaRefusal::Concurrency { .. } => too_many("too_many_in_flight"),
-                QuotaRefusal::Tokens { .. } => too_many("token_quota_spent"),
-                QuotaRefusal::TokensNeverFit { .. } => Self::new(
-                    StatusCode::PAYLOAD_TOO_LARGE,
-                    "over_token_quota",
-                    e.to_string(),
-                ),
-            },
+            // A refusal a retry can get past is a 429 with its wait; a request larger than a
+            // whole quota never gets past, and is a 413.
+            EngineError::QueueFull { .. }
+            | EngineError::TenantQueueFull { .. }
+            | EngineError::OverQuota { .. } => {
+                let status = match retry_after_s {
+                    Some(_) => StatusCode::TOO_MANY_REQUESTS,
+                    None => StatusCode::PAYLOAD_TOO_LARGE,
+                };
+                let code = e.refusal_code().unwrap_or("refused");
+                Self {
+                    retry_after_s,
+                    ..Self::new(status, code, e.to_string())
+                }
+            }
             EngineError::ShuttingDown => Self::new(
                 StatusCode::SERVICE_UNAVAILABLE,
                 "shutting_down",
