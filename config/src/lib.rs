@@ -52,10 +52,9 @@ pub struct Settings {
     /// Requests admitted and waiting for the engine; one more is answered 429. Each tenant may
     /// hold an equal share of them.
     pub queue_depth: usize,
-    /// Rows of embedding work one tenant gets per turn when several tenants are configured; each
-    /// encoder batch is then one turn, which bounds what another tenant's request can find
-    /// running ahead of it.
-    pub turn_rows: usize,
+    /// With several tenants, the most rows in one embedding batch: it bounds what a tenant's
+    /// request can find running ahead of it.
+    pub shared_batch_rows: usize,
     /// Deadline of one request, from admission to its last byte.
     pub request_timeout_ms: u64,
     /// Largest request body; uploads carry whole adapter packages.
@@ -144,7 +143,7 @@ impl Default for Settings {
             threads: 0,
             max_batch_rows: 32,
             queue_depth: 256,
-            turn_rows: 4,
+            shared_batch_rows: 4,
             request_timeout_ms: 30_000,
             max_body_bytes: (16 * MIB) as usize,
             max_input_tokens: 256,
@@ -261,9 +260,9 @@ impl Settings {
                 1..=MAX_BATCH_ROWS_LIMIT as u64,
             )?),
             queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
-            turn_rows: size(src.whole(
-                &read::TURN_ROWS,
-                d.turn_rows as u64,
+            shared_batch_rows: size(src.whole(
+                &read::SHARED_BATCH_ROWS,
+                d.shared_batch_rows as u64,
                 1..=MAX_BATCH_ROWS_LIMIT as u64,
             )?),
             // An hour: a deadline past that is a forgotten request, not a slow one.
@@ -411,7 +410,7 @@ impl fmt::Debug for Settings {
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)
             .field("queue_depth", &self.queue_depth)
-            .field("turn_rows", &self.turn_rows)
+            .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)
             .field("max_body_bytes", &self.max_body_bytes)
             .field("max_input_tokens", &self.max_input_tokens)

@@ -47,8 +47,11 @@ pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
 );
 pub(crate) const QUEUE_DEPTH: SettingKey =
     SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
-pub(crate) const TURN_ROWS: SettingKey =
-    SettingKey::new("engine", "turn_rows", "SWITCHYARD_ENGINE_TURN_ROWS");
+pub(crate) const SHARED_BATCH_ROWS: SettingKey = SettingKey::new(
+    "engine",
+    "shared_batch_rows",
+    "SWITCHYARD_ENGINE_SHARED_BATCH_ROWS",
+);
 pub(crate) const REQUEST_TIMEOUT_MS: SettingKey = SettingKey::new(
     "engine",
     "request_timeout_ms",
@@ -124,7 +127,7 @@ pub const KEYS: &[SettingKey] = &[
     THREADS,
     MAX_BATCH_ROWS,
     QUEUE_DEPTH,
-    TURN_ROWS,
+    SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,
     MAX_BODY_BYTES,
     MAX_INPUT_TOKENS,

@@ -66,7 +66,7 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::THREADS, s.threads);
     page.line(&read::MAX_BATCH_ROWS, s.max_batch_rows);
     page.line(&read::QUEUE_DEPTH, s.queue_depth);
-    page.line(&read::TURN_ROWS, s.turn_rows);
+    page.line(&read::SHARED_BATCH_ROWS, s.shared_batch_rows);
     page.line(&read::REQUEST_TIMEOUT_MS, s.request_timeout_ms);
     page.line(&read::MAX_BODY_BYTES, s.max_body_bytes);
     page.line(&read::MAX_INPUT_TOKENS, s.max_input_tokens);

@@ -39,7 +39,7 @@ fn defaults_apply_without_file_or_environment() {
     assert_eq!(s.listen.to_string(), "127.0.0.1:7070");
     assert_eq!(s.max_batch_rows, 32);
     assert_eq!(s.queue_depth, 256);
-    assert_eq!(s.turn_rows, 4);
+    assert_eq!(s.shared_batch_rows, 4);
     assert_eq!(s.request_timeout_ms, 30_000);
     assert_eq!(s.max_body_bytes, 16 << 20);
     assert_eq!(
@@ -124,7 +124,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::THREADS, "3", "3"),
         (&read::MAX_BATCH_ROWS, "7", "7"),
         (&read::QUEUE_DEPTH, "9", "9"),
-        (&read::TURN_ROWS, "2", "2"),
+        (&read::SHARED_BATCH_ROWS, "2", "2"),
         (&read::REQUEST_TIMEOUT_MS, "1500", "1500"),
         (&read::MAX_BODY_BYTES, "4096", "4096"),
         (&read::MAX_INPUT_TOKENS, "128", "128"),
@@ -163,7 +163,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         threads: 3,
         max_batch_rows: 7,
         queue_depth: 9,
-        turn_rows: 2,
+        shared_batch_rows: 2,
         request_timeout_ms: 1500,
         max_body_bytes: 4096,
         max_input_tokens: 128,
@@ -211,8 +211,16 @@ fn each_range_is_enforced_at_both_ends() {
             "100001",
         ),
         ("[engine]\nqueue_depth = -5", "engine.queue_depth", "-5"),
-        ("[engine]\nturn_rows = 0", "engine.turn_rows", "0"),
-        ("[engine]\nturn_rows = 4097", "engine.turn_rows", "4097"),
+        (
+            "[engine]\nshared_batch_rows = 0",
+            "engine.shared_batch_rows",
+            "0",
+        ),
+        (
+            "[engine]\nshared_batch_rows = 4097",
+            "engine.shared_batch_rows",
+            "4097",
+        ),
         (
             "[engine]\nrequest_timeout_ms = 0",
             "engine.request_timeout_ms",

@@ -1,15 +1,16 @@
 //! The built-in fairness scenario: does a tenant that floods the server slow another tenant
 //! down? It starts `switchyard serve` itself (on 127.0.0.1, port 0) and measures, in one run:
 //!
-//! 1. capacity: answered /embed requests per second of a closed loop, first on a server with no
-//!    tenants (batches up to `max_batch_rows`), then on the server with three tenants (one turn
-//!    per batch), the one the rest runs on;
-//! 2. in rounds, so that other work on the machine falls on every phase alike:
+//! 1. capacity: answered /embed requests per second of a closed loop, on a server with no
+//!    tenants (batches up to `max_batch_rows`) and on one with three tenants and no quota
+//!    (batches up to `shared_batch_rows`), the two measured in alternation;
+//! 2. on a third server with the same three tenants, the capped one with a quota of half the
+//!    three-tenant capacity in requests per second, in rounds, so that other work on the
+//!    machine falls on every phase alike:
 //!    - the steady tenant alone, at a light open-loop rate (a share of capacity);
 //!    - the steady tenant at that rate while the flood tenant (no quota) sends open-loop
 //!      arrivals at a multiple (10x) of capacity;
-//!    - the same with the capped tenant flooding instead, whose quota is half the one-tenant
-//!      capacity in requests per second.
+//!    - the same with the capped tenant flooding instead.
 //!
 //! Every request is the same /embed of the base model. Latency counts from each request's
 //! scheduled send time. The report gives the steady tenant's p50 and p99 in each phase, their
@@ -56,6 +57,8 @@ pub struct FairnessSettings {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Plan {
     pub capacity_clients: usize,
+    /// The two capacity measurements take turns this many times.
+    pub capacity_rounds: usize,
     pub capacity_warmup: Duration,
     pub capacity_duration: Duration,
     pub rounds: usize,
@@ -69,6 +72,7 @@ impl Plan {
         if quick {
             Self {
                 capacity_clients: 8,
+                capacity_rounds: 1,
                 capacity_warmup: Duration::from_millis(500),
                 capacity_duration: Duration::from_millis(1500),
                 rounds: 1,
@@ -78,36 +82,33 @@ impl Plan {
         } else {
             Self {
                 capacity_clients: 16,
-                capacity_warmup: Duration::from_secs(2),
-                capacity_duration: Duration::from_secs(8),
-                rounds: 3,
+                capacity_rounds: 3,
+                capacity_warmup: Duration::from_secs(1),
+                capacity_duration: Duration::from_secs(4),
+                rounds: 4,
                 warmup: Duration::from_secs(1),
-                duration: Duration::from_secs(20),
+                duration: Duration::from_secs(30),
             }
         }
     }
 }
 
-/// The tenants of the measured server and their keys (test keys, loopback only).
+/// The tenants and their keys (test keys, loopback only).
 pub const STEADY: (&str, &str) = ("steady", "fairness-steady-key-0123456789");
 pub const FLOOD: (&str, &str) = ("flood", "fairness-flood-key-0123456789");
 pub const CAPPED: (&str, &str) = ("capped", "fairness-capped-key-0123456789");
 
-/// The `[[tenants]]` entries of the measured server: every tenant may use the base model only;
-/// the capped tenant has a quota of `capped_rate` requests per second.
-pub fn tenants_toml(capped_rate: f64) -> String {
+/// The `[[tenants]]` entries: every tenant may use the base model only; with `capped_rate`, the
+/// capped tenant has a quota of that many requests per second.
+pub fn tenants_toml(capped_rate: Option<f64>) -> String {
     let entry = |(name, key): (&str, &str)| {
         format!("\n[[tenants]]\nname = {name:?}\nkeys = [{key:?}]\nadapters = []\n")
     };
-    format!(
-        "{}{}{}requests_per_second = {capped_rate:?}\n",
-        entry(STEADY),
-        entry(FLOOD),
-        entry(CAPPED)
-    )
+    let quota = capped_rate.map_or(String::new(), |r| format!("requests_per_second = {r:?}\n"));
+    format!("{}{}{}{quota}", entry(STEADY), entry(FLOOD), entry(CAPPED))
 }
 
-/// The capped tenant's quota: half the one-tenant capacity, to a tenth of a request per second.
+/// The capped tenant's quota: half the capacity, to a tenth of a request per second.
 pub fn capped_rate(capacity_per_s: f64) -> f64 {
     ((capacity_per_s / 2.0) * 10.0).round().max(1.0) / 10.0
 }
@@ -134,33 +135,60 @@ pub fn run_fairness(s: &FairnessSettings) -> anyhow::Result<Report> {
     let work = tempfile::tempdir().context("creating a temporary folder")?;
     let shape = shape(s.texts);
 
-    // Capacity of a server with no tenants: the reference of what one turn per batch costs.
-    let dir_open = work.path().join("one-tenant");
-    std::fs::create_dir_all(&dir_open)?;
-    let open_config = ServerConfig::new(&s.model_dir, &dir_open.join("store"), false);
-    let capacity_one_tenant = {
-        let server = ServerProcess::start(&s.server_bin, &dir_open, &open_config)?;
-        let client = Client::new(server.url(), None, None)?;
-        capacity(&client, &plan, &shape, "capacity, one tenant", s.seed)?
+    // Capacity with no tenants (the reference of what small shared batches cost) and with the
+    // three tenants, measured in turns so that other work on the machine falls on both alike.
+    let (capacity_one_tenant, capacity_tenants) = {
+        let start = |name: &str, extra_toml: String| -> anyhow::Result<ServerProcess> {
+            let dir = work.path().join(name);
+            std::fs::create_dir_all(&dir)?;
+            let config = ServerConfig {
+                extra_toml,
+                ..ServerConfig::new(&s.model_dir, &dir.join("store"), false)
+            };
+            ServerProcess::start(&s.server_bin, &dir, &config)
+        };
+        let none = start("capacity-no-tenants", String::new())?;
+        let three = start("capacity-three-tenants", tenants_toml(None))?;
+        let none_client = Client::new(none.url(), None, None)?;
+        let three_client = Client::new(three.url(), Some(FLOOD.1.to_owned()), None)?;
+        let mut pooled: [Option<Scenario>; 2] = Default::default();
+        for round in 0..plan.capacity_rounds {
+            let tag = format!("[{}/{}]", round + 1, plan.capacity_rounds);
+            for (slot, (client, name)) in pooled.iter_mut().zip([
+                (&none_client, "capacity, no tenants"),
+                (&three_client, "capacity, three tenants"),
+            ]) {
+                let mut part = capacity(client, &plan, &shape, &format!("{name} {tag}"), s.seed)?;
+                part.name = name.to_owned();
+                match slot {
+                    Some(p) => p.absorb(part),
+                    empty => *empty = Some(part),
+                }
+            }
+        }
+        let [Some(none), Some(three)] = pooled else {
+            bail!("no capacity round ran");
+        };
+        (none, three)
     };
-    let capped_rate = capped_rate(capacity_one_tenant.throughput());
+    let per_s = capacity_tenants.throughput();
+    let capped_rate = capped_rate(per_s);
 
     let dir = work.path().join("tenants");
     std::fs::create_dir_all(&dir)?;
     let config = ServerConfig {
-        extra_toml: tenants_toml(capped_rate),
+        extra_toml: tenants_toml(Some(capped_rate)),
         ..ServerConfig::new(&s.model_dir, &dir.join("store"), false)
     };
     let server = ServerProcess::start(&s.server_bin, &dir, &config)?;
     let client = |key: &str| Client::new(server.url(), Some(key.to_owned()), None);
     let (steady, flood, capped) = (client(STEADY.1)?, client(FLOOD.1)?, client(CAPPED.1)?);
-    let capacity_tenants = capacity(&flood, &plan, &shape, "capacity, three tenants", s.seed)?;
-    let per_s = capacity_tenants.throughput();
+    steady.check_ready()?;
     let steady_rate = s.steady_share * per_s;
     let flood_rate = s.flood_factor * per_s;
     eprintln!(
-        "capacity {per_s:.1} requests/s (one tenant: {:.1}); steady tenant at {steady_rate:.2}/s, \
-         floods at {flood_rate:.1}/s, capped tenant's quota {capped_rate}/s",
+        "capacity {per_s:.1} requests/s with three tenants ({:.1} with none); steady tenant at \
+         {steady_rate:.2}/s, floods at {flood_rate:.1}/s, capped tenant's quota {capped_rate}/s",
         capacity_one_tenant.throughput()
     );
 
@@ -322,7 +350,7 @@ mod tests {
     fn quick_plan_is_shorter() {
         let (q, f) = (Plan::new(true), Plan::new(false));
         assert!(q.duration < f.duration && q.rounds < f.rounds);
-        assert_eq!(f.rounds, 3);
+        assert_eq!(f.rounds, 4);
     }
 
     #[test]
@@ -335,7 +363,8 @@ mod tests {
 
     #[test]
     fn three_tenants_with_a_rate_quota_on_the_capped_one() {
-        let text = tenants_toml(23.7);
+        assert!(!tenants_toml(None).contains("requests_per_second"));
+        let text = tenants_toml(Some(23.7));
         assert_eq!(text.matches("[[tenants]]").count(), 3);
         assert!(
             text.ends_with(

@@ -153,6 +153,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
         "answered/s",
         "429 share",
         "p50 ms",
+        "p90 ms",
         "p99 ms",
         "p99 / alone",
     ];
@@ -169,6 +170,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             per_s(x.throughput()),
             "-".to_owned(),
             ms(l.p50_ms),
+            ms(l.p90_ms),
             ms(l.p99_ms),
             "-".to_owned(),
         ]);
@@ -186,6 +188,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
                 steady_failures(x) as f64 / x.records.len().max(1) as f64
             ),
             ms(l.p50_ms),
+            ms(l.p90_ms),
             ms(l.p99_ms),
             ratio.map_or("1.000".to_owned(), |r| format!("{r:.3}")),
         ]
@@ -199,6 +202,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             per_s(f.answered_per_s),
             format!("{:.3}", f.refused_share()),
             l.map_or("-".to_owned(), |l| ms(l.p50_ms)),
+            l.map_or("-".to_owned(), |l| ms(l.p90_ms)),
             l.map_or("-".to_owned(), |l| ms(l.p99_ms)),
             "-".to_owned(),
         ]
@@ -241,12 +245,14 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
     let notes = vec![
         format!(
             "Every request is one /embed of {} texts to the base model. Capacity is the answered \
-             rate of a closed loop of {} clients ({:.0} s measured after {:.0} s of warm-up), on a \
-             server with no tenants (batches up to engine.max_batch_rows) and on the measured \
-             server with three tenants ({}, {}, {}; one tenant's turn of engine.turn_rows rows \
-             per batch): {:.1} and {:.1} requests/s (ratio {turn_cost:.3}).",
+             rate of a closed loop of {} clients ({} turns of {:.0} s measured after {:.0} s of \
+             warm-up each), on a server with no tenants (batches up to engine.max_batch_rows) \
+             and on one with three tenants and no quota ({}, {}, {}; batches of at most \
+             engine.shared_batch_rows rows): {:.1} and {:.1} requests/s (ratio \
+             {turn_cost:.3}). The phases below run on a third server with the same tenants.",
             s.texts,
             plan.capacity_clients,
+            plan.capacity_rounds,
             plan.capacity_duration.as_secs_f64(),
             plan.capacity_warmup.as_secs_f64(),
             STEADY.0,
@@ -261,7 +267,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
              ({}x capacity) over {} workers. Three phases take turns in {} rounds ({:.0} s \
              measured after {:.0} s of warm-up each): the steady tenant alone; with the flood \
              tenant (no quota: its excess is refused by its share of the queue); with the capped \
-             tenant (a quota of {} requests/s, half the no-tenant capacity). Latency counts from \
+             tenant (a quota of {} requests/s, half the three-tenant capacity). Latency counts from \
              each request's scheduled send time, so waiting in the client counts too.",
             m.steady_rate,
             s.steady_share,
@@ -278,7 +284,10 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
              during the capped flood ({:.2}x); the goal is at most {GOAL_P99_RATIO}x. It failed \
              {} of its requests in all phases. The flood tenant was refused {:.1}% of its \
              requests ({}), Retry-After min, median and max {}; the capped tenant {:.1}% ({}), \
-             Retry-After {}.",
+             Retry-After {}. Retry-After is whole seconds, rounded up: at these rates the wait \
+             each refusal computes (the rate bucket's refill, or one round of the queue at the \
+             measured service rate) is well under a second, and the message body says it in \
+             milliseconds.",
             alone.p99_ms,
             during_flood.p99_ms,
             slow_flood.p99,
@@ -313,6 +322,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             "warmup_s": plan.warmup.as_secs_f64(),
             "measured_s_per_phase_and_round": plan.duration.as_secs_f64(),
             "capacity_clients": plan.capacity_clients,
+            "capacity_rounds": plan.capacity_rounds,
             "capped_quota_requests_per_second": m.capped_rate,
             "seed": s.seed,
             "cpus": cpus,

@@ -150,7 +150,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         EngineConfig {
             max_batch_rows: settings.max_batch_rows,
             queue_depth: settings.queue_depth,
-            turn_rows: settings.turn_rows,
+            shared_batch_rows: settings.shared_batch_rows,
             promote_share: settings.promote_share,
             promote_window_rows: settings.promote_window_rows,
             tenants: tenant_limits(&settings),

@@ -3,9 +3,10 @@
 //!
 //! Admission first asks the tenant's [`quota`] (requests per second, concurrent requests, tokens
 //! per minute); the job then carries its [`Ticket`] into the [`queue`], which keeps one lane per
-//! tenant and serves the lanes by deficit round robin (by rows for embedding jobs, by tokens for
-//! generations), so one tenant's flood waits behind itself. Each tenant may hold only its share
-//! of the queue; past its quota or its share a request is refused with the time to wait.
+//! tenant and serves them by start-time fair queueing (costs in rows for embedding jobs, in tokens
+//! for generations), so one tenant's flood waits behind itself and a light tenant's request goes
+//! next. Each tenant may hold only its share of the queue; past its quota or its share a request
+//! is refused with the time to wait.
 //!
 //! An encoder engine gathers queued embedding jobs into one batch up to the row limit, rows of
 //! different adapters side by side; a batch that uses only one adapter, when the promotion
@@ -67,8 +68,8 @@ impl Backbone {
 pub struct EngineConfig {
     pub max_batch_rows: usize,
     pub queue_depth: usize,
-    /// Rows per tenant turn of an encoder; with several tenants a batch is one turn.
-    pub turn_rows: usize,
+    /// With several tenants, the most rows in one encoder batch.
+    pub shared_batch_rows: usize,
     pub promote_share: f64,
     pub promote_window_rows: usize,
     /// Each tenant's name and quota, by tenant index
@@ -82,10 +83,6 @@ pub struct TenantLimits {
     pub name: String,
     pub quota: Quota,
 }
-
-/// Credit per turn of a tenant's lane in a decoder, in tokens: a short prompt and its answer.
-/// (An encoder's turn is [`EngineConfig::turn_rows`] rows.)
-const DECODER_QUANTUM_TOKENS: u64 = 128;
 
 /// Why the engine refused or failed a job.
 #[derive(Debug, Clone, thiserror::Error)]
@@ -269,13 +266,9 @@ impl Engine {
         metrics: Arc<Metrics>,
     ) -> Engine {
         let tenants = config.tenants.len().max(1);
-        let quantum = match &*backbone {
-            Backbone::Encoder(_) => config.turn_rows.max(1) as u64,
-            Backbone::Decoder(_) => DECODER_QUANTUM_TOKENS,
-        };
         let queue = Arc::new(FairQueue::new(
             tenants,
-            QueueLimits::shared(config.queue_depth, tenants, quantum),
+            QueueLimits::shared(config.queue_depth, tenants),
         ));
         let mut limits = config.tenants.clone();
         limits.resize(
@@ -448,14 +441,15 @@ impl Worker {
         }
     }
 
-    /// Batches of up to `max_batch_rows` rows, taken from the queue's round robin over tenants.
-    /// With several tenants a batch is one tenant's turn (at most `turn_rows` rows), so what a
-    /// request finds running ahead of it is one turn, not a full batch of someone else's rows;
-    /// small batches cost a few per cent of throughput on a CPU. A single job larger than the
-    /// batch runs alone, in chunks.
+    /// Batches of up to `max_batch_rows` rows, taken from the queue in fair order. With several
+    /// tenants a batch holds at most `shared_batch_rows` rows, so what a request finds running
+    /// ahead of it is a few rows, not a full batch of someone else's; small batches cost a few
+    /// per cent of throughput on a CPU. A single job larger than the batch runs alone, in chunks.
     fn run_encoder(&mut self, e: &Embedder) {
         let rows = if self.config.tenants.len() > 1 {
-            self.config.turn_rows.min(self.config.max_batch_rows)
+            self.config
+                .shared_batch_rows
+                .min(self.config.max_batch_rows)
         } else {
             self.config.max_batch_rows
         };

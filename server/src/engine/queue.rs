@@ -1,27 +1,24 @@
-//! The engine's queue: one lane per tenant, served by deficit round robin (Shreedhar and
-//! Varghese, 1995) with the sparse-flow priority of FQ-CoDel (RFC 8290), so a tenant that sends
-//! more than the server can answer waits behind its own requests, not in front of everyone
-//! else's, and a tenant that sends little is served next.
+//! The engine's queue: one lane per tenant, served by start-time fair queueing (Goyal, Vin and
+//! Cheng, 1996), so a tenant that sends more than the server can answer waits behind its own
+//! requests, not in front of everyone else's.
 //!
-//! Each job has a cost (rows for an embedding job, tokens for a generation). Lanes holding jobs
-//! take turns; at the start of its turn a lane is credited `quantum`, and the turn takes jobs
-//! from the lane's front while its credit covers them. A job that costs more than the credit
-//! waits for later turns (credit carries over while the lane holds jobs, and is dropped when it
-//! empties, so an idle tenant saves nothing up). Over any stretch in which two tenants both have
-//! jobs waiting, the cost each is served differs by at most a quantum plus one job.
+//! Each job has a cost (rows for an embedding job, tokens for a generation) and, when it is
+//! queued, a start tag: the later of the queue's virtual time and the finish tag of the same
+//! tenant's previous job; its finish tag is its start tag plus its cost. Jobs are taken in order
+//! of start tag (ties in arrival order), and the virtual time is the start tag of the last job
+//! taken. So a tenant's tags run ahead of the virtual time by the cost it has queued: a tenant
+//! with a backlog of a hundred jobs has tags far ahead, while one that sends a job now and then
+//! gets a tag at the virtual time and goes next, behind only the batch under way. A tenant that
+//! was idle starts again at the virtual time (it saves nothing up); one that sends a job the
+//! moment its last one was taken continues from that job's finish tag (it gets its share, not
+//! more). Over any stretch in which two tenants both have jobs waiting, the cost each is served
+//! differs by at most the largest job.
 //!
-//! Turn order: a lane that had nothing queued joins the `new` list, whose lanes go before the
-//! `old` list's; after its turn a lane with jobs left joins the back of `old`. A `new` lane that
-//! empties also goes to the back of `old` (empty), and leaves only when its turn there comes; a
-//! job pushed meanwhile finds it listed and gets no priority. So a tenant sending one request
-//! now and then waits for at most the batch under way, one that keeps its lane busy takes its
-//! turn in order like everyone else, and one that pushes again right after each answer gets at
-//! most two turns to a busy tenant's one.
-//!
-//! [`FairQueue::take`] fills one batch up to a budget (cost and job count); a turn that the
-//! budget cuts short goes on in the next batch without fresh credit. The queue is bounded twice:
-//! `total` jobs in all, and `per_lane` jobs per tenant, which keeps room for every tenant however
-//! hard one of them pushes; a push past either bound is refused with the job handed back.
+//! [`FairQueue::take`] fills one batch up to a budget (cost and job count), in tag order, and
+//! stops at the first job that does not fit (a first job larger than the budget is taken alone).
+//! The queue is bounded twice: `total` jobs in all, and `per_lane` jobs per tenant, which keeps
+//! room for every tenant however hard one of them pushes; a push past either bound is refused
+//! with the job handed back.
 //!
 //! One mutex guards everything (taken by the handlers to push and by the engine thread to take),
 //! and a condition variable wakes the engine thread. A count of queued jobs kept under that mutex
@@ -31,30 +28,27 @@ use std::collections::VecDeque;
 use std::sync::{Condvar, Mutex, MutexGuard};
 use std::time::{Duration, Instant};
 
-/// What a queued job costs the engine, in the unit the lanes are credited in.
+/// What a queued job costs the engine, in the unit its tags advance in.
 pub trait Cost {
     fn cost(&self) -> u64;
 }
 
-/// The queue's bounds and credit.
+/// The queue's bounds.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct QueueLimits {
     /// Jobs waiting in all lanes together.
     pub total: usize,
     /// Jobs waiting in one lane.
     pub per_lane: usize,
-    /// Credit each lane gets per turn.
-    pub quantum: u64,
 }
 
 impl QueueLimits {
     /// `total` jobs, shared equally by `lanes` tenants: each may hold `total / lanes`, rounded
     /// down so that the shares fit in the total together (at least one each).
-    pub fn shared(total: usize, lanes: usize, quantum: u64) -> Self {
+    pub fn shared(total: usize, lanes: usize) -> Self {
         Self {
             total: total.max(1),
             per_lane: (total / lanes.max(1)).max(1),
-            quantum: quantum.max(1),
         }
     }
 }
@@ -79,34 +73,20 @@ pub struct Budget {
     pub jobs: usize,
 }
 
-/// Which turn list a lane is on.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-enum List {
-    New,
-    Old,
+#[derive(Debug)]
+struct Queued<T> {
+    job: T,
+    cost: u64,
+    start: u64,
+    /// Arrival order, to break ties between equal start tags.
+    seq: u64,
 }
 
 #[derive(Debug)]
 struct Lane<T> {
-    jobs: VecDeque<(T, u64)>,
-    credit: u64,
-    queued_cost: u64,
-    /// The turn list it is on; `None` when it is on neither (and holds no jobs).
-    list: Option<List>,
-    /// Whether its current turn began (it was credited) in an earlier batch.
-    turn_begun: bool,
-}
-
-impl<T> Lane<T> {
-    fn new() -> Self {
-        Self {
-            jobs: VecDeque::new(),
-            credit: 0,
-            queued_cost: 0,
-            list: None,
-            turn_begun: false,
-        }
-    }
+    jobs: VecDeque<Queued<T>>,
+    /// The finish tag of the lane's last queued job.
+    finish: u64,
 }
 
 /// How long the rate estimate looks back.
@@ -115,10 +95,9 @@ const RATE_WINDOW: Duration = Duration::from_secs(5);
 #[derive(Debug)]
 struct State<T> {
     lanes: Vec<Lane<T>>,
-    /// Lanes that had nothing queued when a job came, in arrival order: their turns come first.
-    new: VecDeque<usize>,
-    /// Every other listed lane, in turn order.
-    old: VecDeque<usize>,
+    /// The start tag of the last job taken.
+    virtual_time: u64,
+    seq: u64,
     queued: usize,
     closed: bool,
     /// When the engine took how much, over the last [`RATE_WINDOW`]: the service rate.
@@ -126,37 +105,25 @@ struct State<T> {
 }
 
 impl<T> State<T> {
-    /// The lane whose turn is next (or under way), and its list.
-    fn front(&self) -> Option<(usize, List)> {
-        match self.new.front() {
-            Some(&lane) => Some((lane, List::New)),
-            None => self.old.front().map(|&lane| (lane, List::Old)),
-        }
+    /// The lane whose front job comes next: the smallest start tag, then the earliest arrival.
+    fn next_lane(&self) -> Option<usize> {
+        self.lanes
+            .iter()
+            .enumerate()
+            .filter_map(|(i, l)| l.jobs.front().map(|q| ((q.start, q.seq), i)))
+            .min()
+            .map(|(_, i)| i)
     }
 
-    fn listed(&self) -> usize {
-        self.new.len() + self.old.len()
-    }
-
-    /// Ends the turn of `lane` (the front of `list`): a lane with jobs left goes to the back of
-    /// `old`; an emptied one forgets its credit and leaves, except that a `new` lane goes to the
-    /// back of `old` once more, empty.
-    fn end_turn(&mut self, lane: usize, list: List) {
-        match list {
-            List::New => self.new.pop_front(),
-            List::Old => self.old.pop_front(),
-        };
-        let l = &mut self.lanes[lane];
-        l.turn_begun = false;
-        if l.jobs.is_empty() {
-            l.credit = 0;
-        }
-        if !l.jobs.is_empty() || list == List::New {
-            l.list = Some(List::Old);
-            self.old.push_back(lane);
-        } else {
-            l.list = None;
-        }
+    /// The cost of the jobs ordered before a job with start tag `start` that arrived after all
+    /// those queued.
+    fn cost_before(&self, start: u64) -> u64 {
+        self.lanes
+            .iter()
+            .flat_map(|l| l.jobs.iter())
+            .filter(|q| q.start <= start)
+            .map(|q| q.cost)
+            .sum()
     }
 }
 
@@ -174,9 +141,14 @@ impl<T: Cost> FairQueue<T> {
         Self {
             limits,
             state: Mutex::new(State {
-                lanes: (0..lanes.max(1)).map(|_| Lane::new()).collect(),
-                new: VecDeque::new(),
-                old: VecDeque::new(),
+                lanes: (0..lanes.max(1))
+                    .map(|_| Lane {
+                        jobs: VecDeque::new(),
+                        finish: 0,
+                    })
+                    .collect(),
+                virtual_time: 0,
+                seq: 0,
                 queued: 0,
                 closed: false,
                 taken: VecDeque::new(),
@@ -195,7 +167,7 @@ impl<T: Cost> FairQueue<T> {
         self.state.lock().unwrap_or_else(|e| e.into_inner())
     }
 
-    /// Queues `job` in `lane`'s turn order, or hands it back with the reason.
+    /// Queues `job` in `lane` with its start tag, or hands it back with the reason.
     pub fn push(&self, lane: usize, job: T) -> Result<(), (Refused, T)> {
         let mut s = self.state();
         if s.closed {
@@ -208,13 +180,17 @@ impl<T: Cost> FairQueue<T> {
             return Err((Refused::Full, job));
         }
         let cost = job.cost();
+        let start = s.virtual_time.max(s.lanes[lane].finish);
+        s.seq += 1;
+        let seq = s.seq;
         let l = &mut s.lanes[lane];
-        l.jobs.push_back((job, cost));
-        l.queued_cost += cost;
-        if l.list.is_none() {
-            l.list = Some(List::New);
-            s.new.push_back(lane);
-        }
+        l.finish = start.saturating_add(cost);
+        l.jobs.push_back(Queued {
+            job,
+            cost,
+            start,
+            seq,
+        });
         s.queued += 1;
         drop(s);
         self.ready.notify_one();
@@ -240,53 +216,26 @@ impl<T: Cost> FairQueue<T> {
         self.take_from(&mut s, budget, Instant::now())
     }
 
-    /// Deficit round robin over the lanes, as the module doc says.
+    /// Jobs in start-tag order while they fit the budget.
     fn take_from(&self, s: &mut State<T>, budget: Budget, now: Instant) -> Vec<T> {
-        let quantum = self.limits.quantum;
         let mut batch = Vec::new();
         let mut cost = 0u64;
-        // Turns in a row that took nothing: once every lane has had one, all are short of credit.
-        let mut empty_turns = 0usize;
-        'turns: while let Some((lane, list)) = s.front() {
-            if batch.len() >= budget.jobs || (!batch.is_empty() && cost >= budget.cost) {
+        while batch.len() < budget.jobs {
+            let Some(lane) = s.next_lane() else { break };
+            let next = s.lanes[lane]
+                .jobs
+                .front()
+                .expect("the next lane holds a job");
+            if !batch.is_empty() && cost.saturating_add(next.cost) > budget.cost {
                 break;
             }
-            if s.lanes[lane].jobs.is_empty() {
-                // An emptied new lane, back on the old list for one pass.
-                s.end_turn(lane, list);
-                continue;
-            }
-            let l = &mut s.lanes[lane];
-            if !l.turn_begun {
-                l.credit += quantum;
-                l.turn_begun = true;
-            }
-            let mut took = false;
-            while let Some(&(_, c)) = l.jobs.front() {
-                if c > l.credit {
-                    break;
-                }
-                if batch.len() >= budget.jobs || (!batch.is_empty() && cost + c > budget.cost) {
-                    // The batch is full; this turn goes on in the next one.
-                    break 'turns;
-                }
-                let (job, c) = l.jobs.pop_front().expect("front exists");
-                l.credit -= c;
-                l.queued_cost -= c;
-                cost += c;
-                batch.push(job);
-                took = true;
-            }
-            s.end_turn(lane, list);
-            if took {
-                empty_turns = 0;
-            } else {
-                empty_turns += 1;
-                if empty_turns >= s.listed() {
-                    skip_empty_rounds(s, quantum);
-                    empty_turns = 0;
-                }
-            }
+            let q = s.lanes[lane]
+                .jobs
+                .pop_front()
+                .expect("the next lane holds a job");
+            s.virtual_time = s.virtual_time.max(q.start);
+            cost = cost.saturating_add(q.cost);
+            batch.push(q.job);
         }
         s.queued -= batch.len();
         if !batch.is_empty() {
@@ -323,10 +272,10 @@ impl<T: Cost> FairQueue<T> {
         self.state().lanes[lane].jobs.len()
     }
 
-    /// About how long until the engine serves one more job of `lane` (for `None`, any job):
-    /// the cost of one turn of every busy lane, for a lane's next job the larger of its front
-    /// job and a quantum, at the rate the engine took cost over the last few seconds. `None`
-    /// while that rate is not known (nothing taken lately).
+    /// About how long until the engine has taken one more job of `lane`: the cost ordered
+    /// before and including the lane's front job (or, with none queued, a job it would push
+    /// now), at the rate the engine took cost over the last few seconds. For `None`, until the
+    /// next job is taken. `None` while that rate is not known (nothing taken lately).
     pub fn wait_estimate(&self, lane: Option<usize>) -> Option<Duration> {
         self.wait_estimate_at(lane, Instant::now())
     }
@@ -334,46 +283,17 @@ impl<T: Cost> FairQueue<T> {
     fn wait_estimate_at(&self, lane: Option<usize>, now: Instant) -> Option<Duration> {
         let s = self.state();
         let rate = service_rate(&s.taken, now)?;
-        let quantum = self.limits.quantum;
         let ahead = match lane {
-            Some(lane) => {
-                let front = s.lanes[lane].jobs.front().map_or(0, |(_, c)| *c);
-                let busy = s.lanes.iter().filter(|l| !l.jobs.is_empty()).count() as u64;
-                let others = busy - u64::from(!s.lanes[lane].jobs.is_empty());
-                front.max(quantum) * (1 + others)
-            }
-            None => {
-                let busy = s.lanes.iter().filter(|l| !l.jobs.is_empty()).count();
-                quantum * busy.max(1) as u64
-            }
+            Some(lane) => match s.lanes[lane].jobs.front() {
+                Some(front) => s.cost_before(front.start),
+                None => s.cost_before(s.virtual_time.max(s.lanes[lane].finish)),
+            },
+            None => s
+                .next_lane()
+                .and_then(|i| s.lanes[i].jobs.front())
+                .map_or(0, |q| q.cost),
         };
-        Some(Duration::from_secs_f64(ahead as f64 / rate))
-    }
-}
-
-/// When a whole round of turns took nothing (every front job costs more than its lane's
-/// credit), the rounds until the first of them fits would take nothing either: credit them all
-/// at once. Credits stay as round robin would have left them, one round short (the next turn
-/// adds it).
-fn skip_empty_rounds<T>(s: &mut State<T>, quantum: u64) {
-    let waiting = || {
-        s.lanes
-            .iter()
-            .filter(|l| l.list.is_some() && !l.jobs.is_empty())
-    };
-    let rounds = waiting()
-        .filter_map(|l| {
-            let (_, c) = l.jobs.front()?;
-            Some(c.saturating_sub(l.credit).div_ceil(quantum))
-        })
-        .min()
-        .unwrap_or(0);
-    if rounds > 1 {
-        for l in s.lanes.iter_mut() {
-            if l.list.is_some() && !l.jobs.is_empty() {
-                l.credit += (rounds - 1) * quantum;
-            }
-        }
+        Some(Duration::from_secs_f64(ahead.max(1) as f64 / rate))
     }
 }
 
