@@ -14,7 +14,6 @@
 pub mod adapter;
 pub mod events;
 pub mod fingerprint;
-pub mod kernels;
 pub mod lowrank;
 pub mod merged;
 pub mod names;
@@ -26,7 +25,12 @@ pub mod site;
 pub mod spectrum;
 pub mod store;
 mod sync;
+pub mod tensors;
 pub mod watcher;
+
+// Lets unit tests share the integration tests' synthetic packages, which name this crate.
+#[cfg(test)]
+extern crate self as switchyard_adapters;
 
 pub use adapter::{Adapter, TaskHead};
 pub use fingerprint::{BaseSpec, base_fingerprint};

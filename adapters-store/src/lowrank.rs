@@ -2,7 +2,7 @@
 //! adapter holds `A [r, in]` and `B [out, r]` and a scale `s = alpha / r`, and the adapted layer
 //! computes `W0 x + s B (A x)`.
 //!
-//! The hot operations run through [`crate::kernels`] straight on the factors' memory: the
+//! The hot operations run through [`switchyard_kernels`] straight on the factors' memory: the
 //! factors are held packed for the projection kernel (`A` as a weight `[r, in]`, `B` as a weight
 //! `[out, r]`), so in a model the term is fused into the base product (see [`LowRank::term`]);
 //! on its own it is two kernel calls accumulated onto an output in place (`z = x A^T` into one
@@ -11,12 +11,15 @@
 
 use candle_core::{DType, Result, Tensor};
 
-use crate::kernels::{PackedWeight, RowTerm, packed_matmul, with_f32};
+use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul};
+
+use crate::tensors::{pack_tensor, unpack_tensor, with_f32};
 
 /// One factor pair with its scale, ready to apply, merge and unmerge.
 #[derive(Debug, Clone)]
 pub struct LowRank {
-    /// `A [r, in]`, packed (its one panel of 16 rows is zero-padded when r < 16).
+    /// `A [r, in]`, packed (a last panel of fewer than 16 rows holds only those rows; the
+    /// kernel widens it per call).
     a: PackedWeight,
     /// `B [out, r]`, packed.
     b: PackedWeight,
@@ -32,8 +35,8 @@ impl LowRank {
             candle_core::bail!("factor ranks differ: A has {r} rows, B has {rb} columns");
         }
         Ok(Self {
-            a: PackedWeight::from_tensor(&a)?,
-            b: PackedWeight::from_tensor(&b)?,
+            a: pack_tensor(&a)?,
+            b: pack_tensor(&b)?,
             scale,
         })
     }
@@ -56,12 +59,12 @@ impl LowRank {
 
     /// `A [r, in]` as a new row-major tensor.
     pub fn a(&self) -> Result<Tensor> {
-        self.a.to_tensor()
+        unpack_tensor(&self.a)
     }
 
     /// `B [out, r]` as a new row-major tensor.
     pub fn b(&self) -> Result<Tensor> {
-        self.b.to_tensor()
+        unpack_tensor(&self.b)
     }
 
     /// Parameters held by the factors: `r * (in + out)`.
@@ -69,8 +72,8 @@ impl LowRank {
         self.rank() * (self.in_features() + self.out_features())
     }
 
-    /// Bytes the resident factors take in their packed layout (A's panel is padded to 16 rows
-    /// when the rank is lower).
+    /// Bytes the resident factors take in their packed layout: exactly `r * (in + out)` f32
+    /// values (packed f32 weights hold no padding).
     pub fn resident_bytes(&self) -> usize {
         self.a.resident_bytes() + self.b.resident_bytes()
     }
@@ -120,7 +123,7 @@ impl LowRank {
     }
 
     /// This pair as a term of the base product on rows `rows`, for
-    /// [`crate::kernels::packed_matmul_with`] to fuse into the base product.
+    /// [`switchyard_kernels::packed_matmul_with`] to fuse into the base product.
     pub fn term(&self, rows: std::ops::Range<usize>) -> RowTerm<'_> {
         RowTerm {
             rows,
@@ -179,6 +182,28 @@ impl LowRank {
             (self.out_features(), self.in_features()),
             &candle_core::Device::Cpu,
         )
+    }
+
+    /// `W0 + s B A` held in `w0`'s own format: the base's values as it stands for them
+    /// (dequantised), the update added in f32, and the sum packed again by the format's rules.
+    /// For f32 that is the exact merge; for bf16 each merged value is rounded to bf16 once; for
+    /// int8 and int4 every row the update touches (all of them, B being dense) gets fresh scales
+    /// (and zero points) from its merged values and is quantised again, so a merged int weight
+    /// equals `quantise(dequantise(W0) + s B A)`, within half a quantisation step of the exact
+    /// merge per value.
+    pub fn merged_packed(&self, w0: &PackedWeight) -> Result<PackedWeight> {
+        let (out, inp) = (w0.out_features(), w0.in_features());
+        if (out, inp) != (self.out_features(), self.in_features()) {
+            candle_core::bail!(
+                "weight is {out} x {inp}, the factors {} x {}",
+                self.out_features(),
+                self.in_features()
+            );
+        }
+        let mut w = w0.unpack();
+        self.accumulate_update(&mut w, 1.0)?;
+        PackedWeight::pack_as(&w, out, inp, w0.format())
+            .map_err(|e| candle_core::Error::Msg(format!("merged weight: {e}")))
     }
 
     /// `W0 + s B A` as a new tensor (one copy of `W0`, then an in-place merge).
@@ -249,6 +274,66 @@ mod tests {
         let w0 = Tensor::randn(0f32, 1.0, (48, 64), &Device::Cpu).unwrap();
         let back = lr.unmerge(&lr.merge(&w0).unwrap()).unwrap();
         assert!(max_abs_diff(&back, &w0) <= 1e-5);
+    }
+
+    /// Merging into a packed weight keeps its format, and the result is the exact merge rounded
+    /// once by that format: bf16 within 2^-9 relative, int8 and int4 within half a step of the
+    /// merged row's (or group's) new scale.
+    #[test]
+    fn merging_into_each_format_rounds_the_merged_values_once() {
+        use switchyard_kernels::WeightFormat;
+        let (r, inp, out) = (8, 64, 48);
+        let lr = pair(r, inp, out);
+        let w0: Vec<f32> = (0..out * inp)
+            .map(|i| ((i * 37 % 101) as f32 / 101.0 - 0.5) * 0.4)
+            .collect();
+        for name in [
+            "f32",
+            "bf16",
+            "int8",
+            "int8-g32",
+            "int4",
+            "int4-g64-zero-f32",
+        ] {
+            let format = WeightFormat::parse(name).unwrap();
+            let base = PackedWeight::pack_as(&w0, out, inp, format).unwrap();
+            let merged = lr.merged_packed(&base).unwrap();
+            assert_eq!(merged.format(), format);
+            let mut exact = base.unpack();
+            lr.merge_in_place(&mut exact).unwrap();
+            let got = merged.unpack();
+            let group = format.group(inp);
+            for j in 0..out {
+                for g0 in (0..inp).step_by(group) {
+                    let vals = &exact[j * inp + g0..j * inp + g0 + group];
+                    let amax = vals.iter().fold(0f32, |m, v| m.max(v.abs()));
+                    let (lo, hi) = vals
+                        .iter()
+                        .fold((0f32, 0f32), |(a, b), &v| (a.min(v), b.max(v)));
+                    for (q, &e) in vals.iter().enumerate() {
+                        let g = got[j * inp + g0 + q];
+                        let bound = match name {
+                            "f32" => 0.0,
+                            "bf16" => e.abs() * 2f32.powi(-8),
+                            "int8" | "int8-g32" => amax / 127.0 * 0.5001,
+                            "int4" => amax / 7.0 * 0.51,
+                            _ => (hi - lo) / 15.0 * 0.5001,
+                        };
+                        assert!((g - e).abs() <= bound + 1e-7, "{name}: {g} vs {e}");
+                    }
+                }
+            }
+        }
+    }
+
+    /// A was padded to 16 rows, so rank 8 held 1.5x its bytes and rank 4 2.5x (issue 13).
+    #[test]
+    fn factors_below_rank_sixteen_hold_exactly_their_bytes() {
+        for (r, inp, out) in [(4, 384, 384), (8, 384, 1536), (1, 64, 40), (20, 96, 33)] {
+            let lr = pair(r, inp, out);
+            assert_eq!(lr.resident_bytes(), r * (inp + out) * 4, "rank {r}");
+            assert_eq!(lr.resident_bytes(), lr.parameters() * 4);
+        }
     }
 
     #[test]

@@ -6,7 +6,9 @@ use std::collections::HashMap;
 
 use candle_core::{Result, Tensor};
 
-use crate::kernels::PackedWeight;
+use switchyard_kernels::PackedWeight;
+
+use crate::tensors::pack_tensor;
 
 use crate::adapter::Adapter;
 use crate::site::Site;
@@ -28,7 +30,27 @@ impl MergedWeights {
             let w0 = base_weight(site).ok_or_else(|| {
                 candle_core::Error::Msg(format!("base model has no matrix {site}"))
             })?;
-            weights.insert(*site, PackedWeight::from_tensor(&lr.merge(&w0)?)?);
+            weights.insert(*site, pack_tensor(&lr.merge(&w0)?)?);
+        }
+        Ok(Self {
+            source: adapter.id.clone(),
+            weights,
+        })
+    }
+
+    /// Builds the merged variant of `adapter` held in the base's own format: each targeted
+    /// matrix merged into the packed base weight by [`crate::LowRank::merged_packed`] (what that
+    /// rounds is said there).
+    pub fn build_packed<'w>(
+        adapter: &Adapter,
+        base_weight: impl Fn(&Site) -> Option<&'w PackedWeight>,
+    ) -> Result<Self> {
+        let mut weights = HashMap::new();
+        for (site, lr) in adapter.sites() {
+            let w0 = base_weight(site).ok_or_else(|| {
+                candle_core::Error::Msg(format!("base model has no matrix {site}"))
+            })?;
+            weights.insert(*site, lr.merged_packed(w0)?);
         }
         Ok(Self {
             source: adapter.id.clone(),

@@ -1,42 +1,23 @@
-//! The rules for the names users give adapters, and for the versions the store gives them.
-//!
-//! An adapter name is lowercase ASCII letters, digits and '-', 1 to 64 characters, and not the
-//! reserved word `base` (which addresses the base model itself). Because a name becomes a folder
-//! of the store, anything that could climb out of it (a path separator, `..`) is refused by the
-//! same rule. A version is the 16 lowercase hex digits of [`crate::package::content_version`].
+//! Adapter names and store versions, checked by the one rule of `switchyard_names` (shared with
+//! the config reader and the split book): lowercase ASCII letters, digits and '-', 1 to 64
+//! characters, no '-' at either end or doubled, and not the reserved word `base` (which addresses
+//! the base model itself). Because a name becomes a folder of the store, anything that could
+//! climb out of it (a path separator, `..`) breaks the same rule. A version is the 16 lowercase
+//! hex digits of [`crate::package::content_version`].
 
 use std::fmt;
 use std::str::FromStr;
 
-/// Longest adapter name accepted.
-pub const MAX_NAME_LEN: usize = 64;
+pub use switchyard_names::{
+    BASE_MODEL as RESERVED_NAME, MAX_NAME_LEN, NameProblem, VERSION_LEN, is_version,
+};
 
-/// The name that addresses the base model; no adapter may take it.
-pub const RESERVED_NAME: &str = "base";
-
-/// Length of a version: 16 hex digits (8 bytes of a sha256).
-pub const VERSION_LEN: usize = 16;
-
-/// Why an adapter name was refused.
+/// An adapter name that was refused, and why.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
-pub enum NameError {
-    #[error("adapter name is empty; use lowercase letters, digits and '-'")]
-    Empty,
-    #[error(
-        "adapter name {name:?} is {len} characters, over the limit of {MAX_NAME_LEN}",
-        len = name.chars().count()
-    )]
-    TooLong { name: String },
-    #[error("adapter name {name:?} is reserved for the base model")]
-    Reserved { name: String },
-    #[error(
-        "adapter name {name:?} contains a path separator {found:?}; a name is one folder of the store, use lowercase letters, digits and '-'"
-    )]
-    PathSeparator { name: String, found: char },
-    #[error(
-        "adapter name {name:?} contains {found:?}; only lowercase letters, digits and '-' are allowed"
-    )]
-    BadCharacter { name: String, found: char },
+#[error("adapter name {name:?} is not valid: {problem}")]
+pub struct NameError {
+    pub name: String,
+    pub problem: NameProblem,
 }
 
 /// A validated adapter name.
@@ -44,36 +25,12 @@ pub enum NameError {
 pub struct AdapterName(String);
 
 impl AdapterName {
-    /// Checks `name` against the rules above.
+    /// Checks `name` against the name rule.
     pub fn new(name: &str) -> Result<Self, NameError> {
-        if name.is_empty() {
-            return Err(NameError::Empty);
-        }
-        if let Some(found) = name.chars().find(|c| matches!(c, '/' | '\\')) {
-            return Err(NameError::PathSeparator {
-                name: name.to_owned(),
-                found,
-            });
-        }
-        if let Some(found) = name
-            .chars()
-            .find(|c| !(c.is_ascii_lowercase() || c.is_ascii_digit() || *c == '-'))
-        {
-            return Err(NameError::BadCharacter {
-                name: name.to_owned(),
-                found,
-            });
-        }
-        if name.len() > MAX_NAME_LEN {
-            return Err(NameError::TooLong {
-                name: name.to_owned(),
-            });
-        }
-        if name == RESERVED_NAME {
-            return Err(NameError::Reserved {
-                name: name.to_owned(),
-            });
-        }
+        switchyard_names::check_name(name).map_err(|problem| NameError {
+            name: name.to_owned(),
+            problem,
+        })?;
         Ok(Self(name.to_owned()))
     }
 
@@ -101,15 +58,6 @@ impl AsRef<str> for AdapterName {
     }
 }
 
-/// Whether `text` has the shape of a version (16 lowercase hex digits), so it is safe to use as a
-/// file name in the store.
-pub fn is_version(text: &str) -> bool {
-    text.len() == VERSION_LEN
-        && text
-            .bytes()
-            .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -122,28 +70,16 @@ mod tests {
     }
 
     #[test]
-    fn each_kind_of_bad_name_gets_its_own_error() {
-        assert_eq!(AdapterName::new(""), Err(NameError::Empty));
+    fn refusals_carry_the_rule_that_was_broken() {
+        let problem = |n: &str| AdapterName::new(n).unwrap_err().problem;
+        assert_eq!(problem(""), NameProblem::Empty);
+        assert_eq!(problem("base"), NameProblem::Reserved);
+        assert_eq!(problem("-lead"), NameProblem::LeadingDash);
         assert!(matches!(
-            AdapterName::new(&"x".repeat(65)),
-            Err(NameError::TooLong { .. })
+            problem("../etc"),
+            NameProblem::PathSeparator { .. }
         ));
-        assert!(matches!(
-            AdapterName::new("base"),
-            Err(NameError::Reserved { .. })
-        ));
-        for sep in ["a/b", "..\\x", "../etc"] {
-            assert!(
-                matches!(AdapterName::new(sep), Err(NameError::PathSeparator { .. })),
-                "{sep}"
-            );
-        }
-        for bad in ["..", "Upper", "a.b", "a_b", "a b", "é"] {
-            assert!(
-                matches!(AdapterName::new(bad), Err(NameError::BadCharacter { .. })),
-                "{bad}"
-            );
-        }
+        assert!(matches!(problem(".."), NameProblem::Character { .. }));
     }
 
     #[test]
@@ -154,13 +90,5 @@ mod tests {
         assert!(e.contains("reserved for the base model"), "{e}");
         let e = AdapterName::new(&"y".repeat(70)).unwrap_err().to_string();
         assert!(e.contains("70 characters") && e.contains("64"), "{e}");
-    }
-
-    #[test]
-    fn versions_are_sixteen_lowercase_hex_digits() {
-        assert!(is_version("0123456789abcdef"));
-        assert!(!is_version("0123456789ABCDEF"));
-        assert!(!is_version("0123456789abcde"));
-        assert!(!is_version("../../etc/passwd"));
     }
 }

@@ -215,7 +215,9 @@ impl Registry {
                     self.inner.refresh(&name)?;
                 }
                 Err(e) => return Err(e),
-                Ok(value) => return Ok(Handle::new(name, version, value, self.inner.clone())),
+                Ok((value, hit)) => {
+                    return Ok(Handle::new(name, version, value, hit, self.inner.clone()));
+                }
             }
         }
     }
@@ -229,11 +231,12 @@ impl Registry {
     ) -> Result<AdapterHandle, RegistryError> {
         let name = AdapterName::new(name)?;
         let key = (name.clone(), version.to_owned());
-        let value = self.inner.factors(&key)?;
+        let (value, hit) = self.inner.factors(&key)?;
         Ok(Handle::new(
             name,
             version.to_owned(),
             value,
+            hit,
             self.inner.clone(),
         ))
     }
@@ -255,7 +258,7 @@ impl Registry {
             .ok_or_else(|| RegistryError::NoBaseWeights { id: handle.id() })?;
         let key = (handle.name().clone(), handle.version().to_owned());
         let adapter = handle.adapter().clone();
-        let value = inner.get_or_load(
+        let (value, hit) = inner.get_or_load(
             Tier::Merged,
             &key,
             |s| &mut s.merged,
@@ -276,7 +279,7 @@ impl Registry {
                 Ok((merged, timings))
             },
         )?;
-        Ok(Handle::new(key.0, key.1, value, inner.clone()))
+        Ok(Handle::new(key.0, key.1, value, hit, inner.clone()))
     }
 
     /// Keeps the live version of `name` resident, loading it now; refused when the pinned
@@ -515,7 +518,8 @@ impl Inner {
         );
     }
 
-    /// Swaps `name` from `from` to `to`; false when the new version was refused.
+    /// Swaps `name` from `from` to `to`; false when the new version was refused or the flip was
+    /// superseded (see below).
     fn flip(&self, name: &AdapterName, from: &str, to: &str) -> bool {
         let warm = {
             let st = self.state.lock();
@@ -533,14 +537,25 @@ impl Inner {
                 }
             }
         }
-        {
+        // Adopt only if nothing moved meanwhile: the registry still resolves `name` to `from`
+        // and the pointer still names `to`. A slow flip (its preload took a while) that lost a
+        // race with a rollback or another flip must not install a version the pointer left;
+        // reading the small pointer file under the lock keeps every adoption in pointer order.
+        let adopted = {
             let mut st = self.state.lock();
-            self.adopt(&mut st, name, to);
-        }
-        if let Some(a) = preloaded {
+            let still_from = st.live.get(name).map(String::as_str) == Some(from);
+            let still_to = matches!(self.store.pointer(name), Ok(Some(p)) if p.live == to);
+            if still_from && still_to {
+                self.adopt(&mut st, name, to);
+            } else {
+                tracing::debug!(adapter = %name, from, to, "flip superseded before it finished; left to the next poll");
+            }
+            still_from && still_to
+        };
+        if let Some((a, _)) = preloaded {
             self.release(a);
         }
-        true
+        adopted
     }
 
     /// The adapter left the store entirely: stop resolving it.
@@ -553,8 +568,9 @@ impl Inner {
         self.trim(&mut st);
     }
 
-    /// The factors of one version, resident (loaded now if they were not).
-    fn factors(&self, key: &Key) -> Result<Arc<Adapter>, RegistryError> {
+    /// The factors of one version, resident (loaded now if they were not), and whether they
+    /// were resident already.
+    fn factors(&self, key: &Key) -> Result<(Arc<Adapter>, bool), RegistryError> {
         if let Some(e) = self.state.lock().refused.get(key) {
             return Err(e.clone());
         }
@@ -591,26 +607,29 @@ impl Inner {
     }
 
     /// The entry for `key` in one tier, or the outcome of loading it: the first caller loads,
-    /// every concurrent caller waits on that one load.
+    /// every concurrent caller waits on that one load. The flag says whether the entry was
+    /// resident already (a cache hit); a caller that waited on another's load missed too.
+    /// A loaded entry that would not fit the tier's budget beside what requests hold is refused
+    /// ([`RegistryError::TierFull`]), so memory stays bounded however many versions are in use.
     fn get_or_load<T: Resident>(
         &self,
         tier: Tier,
         key: &Key,
         pick: fn(&mut State) -> &mut TierState<T>,
         load: impl FnOnce() -> Result<(T, StageTimings), RegistryError>,
-    ) -> Result<Arc<T>, RegistryError> {
+    ) -> Result<(Arc<T>, bool), RegistryError> {
         let flight = {
             let mut st = self.state.lock();
             st.clock += 1;
             let tick = st.clock;
             let ts = pick(&mut st);
             if let Some(v) = ts.lru.get(key, tick) {
-                return Ok(v);
+                return Ok((v, true));
             }
             if let Some(f) = ts.flights.get(key) {
                 let f = f.clone();
                 drop(st);
-                return f.wait();
+                return f.wait().map(|v| (v, false));
             }
             let f = Arc::new(Flight::new());
             ts.flights.insert(key.clone(), f.clone());
@@ -621,8 +640,48 @@ impl Inner {
         pick(&mut st).flights.remove(key);
         let result = match outcome {
             Ok(Ok((value, timings))) => {
-                let value = Arc::new(value);
                 let bytes = value.resident_bytes();
+                let fits = {
+                    let State {
+                        factors,
+                        merged,
+                        pinned,
+                        live,
+                        ..
+                    } = &*st;
+                    match tier {
+                        Tier::Factors => factors.lru.room_for(bytes, |k| {
+                            pinned.contains(&k.0) && live.get(&k.0) == Some(&k.1)
+                        }),
+                        Tier::Merged => merged.lru.room_for(bytes, |_| false),
+                    }
+                };
+                if !fits {
+                    let r = residency(&st);
+                    let held = match tier {
+                        Tier::Factors => r.factors,
+                        Tier::Merged => r.merged,
+                    };
+                    let e = RegistryError::TierFull {
+                        id: format!("{}@{}", key.0, key.1),
+                        tier: tier.as_str(),
+                        needed: bytes,
+                        kept: held.held_bytes.max(held.pinned_bytes),
+                        budget: held.budget_bytes,
+                    };
+                    let reason = e.to_string();
+                    self.emit(
+                        &st,
+                        key,
+                        SwapKind::Refused { reason },
+                        StageTimings::default(),
+                        0,
+                    );
+                    drop(st);
+                    flight.complete(Err(e.clone()));
+                    return Err(e);
+                }
+                let value = Arc::new(value);
                 let stale = !st.is_wanted(key);
                 st.clock += 1;
                 let tick = st.clock;
@@ -661,7 +720,7 @@ impl Inner {
         };
         drop(st);
         flight.complete(result.clone());
-        result
+        result.map(|v| (v, false))
     }
 
     /// Drops a reference under the state lock, then brings the tiers back within budget.
@@ -697,5 +756,54 @@ impl Inner {
                 self.emit(st, &key, kind, StageTimings::default(), bytes);
             }
         }
+    }
+}
+
+#[cfg(test)]
+#[path = "../tests/common/mod.rs"]
+mod test_packages;
+
+#[cfg(test)]
+mod race_tests {
+    use super::*;
+    use crate::package::{Limits, PackageBytes};
+
+    fn publish(store: &Store, name: &AdapterName, tag: f32) -> String {
+        let raw = test_packages::tagged(4, tag).to_bytes().unwrap();
+        let bytes = PackageBytes::from_slice(&raw, "mem", &Limits::default()).unwrap();
+        store
+            .publish(name, bytes, "mem", Some(&test_packages::spec()))
+            .unwrap()
+            .version
+    }
+
+    /// The rollback race: a poll read the pointer at v2 and began a slow flip (preloading v2);
+    /// meanwhile the operator rolled back to v1. The late flip must not install v2, which the
+    /// pointer has left; before the fix it did, until the next poll.
+    #[test]
+    fn flip_that_finishes_after_a_rollback_does_not_adopt_the_version_the_pointer_left() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::create(dir.path(), Limits::default()).unwrap();
+        let registry = Registry::new(
+            store.clone(),
+            test_packages::spec(),
+            RegistryConfig::default(),
+            None,
+        );
+        let name = AdapterName::new("north-routing").unwrap();
+        let v1 = publish(&store, &name, 1.0);
+        assert_eq!(registry.resolve(name.as_str()).unwrap().version(), v1);
+        let v2 = publish(&store, &name, 2.0);
+        // The slow flip from v1 to v2 is under way (it read the pointer at v2) when the
+        // rollback lands.
+        store.rollback(&name).unwrap();
+        assert!(!registry.inner.flip(&name, &v1, &v2), "superseded flip");
+        assert_eq!(registry.resolve(name.as_str()).unwrap().version(), v1);
+        // A flip that is still current is adopted.
+        let v3 = publish(&store, &name, 3.0);
+        assert!(registry.inner.flip(&name, &v1, &v3));
+        assert_eq!(registry.resolve(name.as_str()).unwrap().version(), v3);
+        // And one whose starting point moved meanwhile (ABA through another flip) is not.
+        assert!(!registry.inner.flip(&name, &v1, &v3));
     }
 }

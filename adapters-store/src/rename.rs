@@ -138,7 +138,8 @@ fn match_parts(parts: &[Part], input: &str, captures: &mut HashMap<String, Strin
             .is_some_and(|tail| match_parts(rest, tail, captures)),
         Some((Part::Slot(slot), rest)) => {
             let limit = input.find('.').unwrap_or(input.len());
-            for end in (1..=limit).rev() {
+            // A name may hold any character; a slot ends only between two of them.
+            for end in (1..=limit).rev().filter(|&end| input.is_char_boundary(end)) {
                 let (value, tail) = input.split_at(end);
                 match captures.get(slot) {
                     Some(seen) if seen != value => continue,
@@ -202,6 +203,16 @@ mod tests {
         // The slot takes the longest text that still lets the rest match.
         let rule = RenameRule::parse("{a}_b=x.{a}").unwrap();
         assert_eq!(rule.apply("one_two_b").as_deref(), Some("x.one_two"));
+    }
+
+    #[test]
+    fn slot_over_a_non_ascii_name_panicked_inside_a_character() {
+        // Found by the `rename` fuzz target: trying every byte length for `{a}` split "é" inside
+        // its two bytes, and `adapter pack` panicked on a file with such a tensor name.
+        let rule = RenameRule::parse("{a}_b=x.{a}").unwrap();
+        assert_eq!(rule.apply("é"), None);
+        assert_eq!(rule.apply("é_b").as_deref(), Some("x.é"));
+        assert_eq!(rule.apply("dé_jà_b").as_deref(), Some("x.dé_jà"));
     }
 
     #[test]

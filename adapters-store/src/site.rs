@@ -110,6 +110,10 @@ impl Site {
         if layer.is_empty() || !layer.bytes().all(|b| b.is_ascii_digit()) || layer.len() > 6 {
             return None;
         }
+        // One spelling per site: `layers.07` would be a second name for `layers.7`.
+        if layer.len() > 1 && layer.starts_with('0') {
+            return None;
+        }
         let (module, factor) = rest.rsplit_once('.')?;
         let factor = match factor {
             "A" => Factor::A,
@@ -155,6 +159,24 @@ mod tests {
         ] {
             assert_eq!(Site::parse_tensor_name(bad), None, "{bad}");
         }
+    }
+
+    #[test]
+    fn layer_with_a_leading_zero_was_a_second_name_for_the_same_site() {
+        // Found by the `rename` fuzz target: `layers.09.attn.v.B` was taken for layer 9, so a
+        // package (or an `adapter pack` input renamed to it) could hold two tensors for one
+        // site, and one of them was silently dropped.
+        assert_eq!(Site::parse_tensor_name("layers.09.attn.v.B"), None);
+        assert_eq!(Site::parse_tensor_name("layers.00.attn.q.A"), None);
+        let nine = Site::new(9, Module::AttnV);
+        assert_eq!(
+            Site::parse_tensor_name("layers.9.attn.v.B"),
+            Some((nine, Factor::B))
+        );
+        assert_eq!(
+            Site::parse_tensor_name("layers.0.attn.q.A"),
+            Some((Site::new(0, Module::AttnQ), Factor::A))
+        );
     }
 
     #[test]

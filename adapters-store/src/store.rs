@@ -85,6 +85,8 @@ pub struct Published {
     pub replaced: Option<String>,
     /// False when these exact bytes were already stored (the file was not written again).
     pub new_file: bool,
+    /// These exact bytes were live already: nothing changed.
+    pub unchanged: bool,
 }
 
 /// One stored version, as listed.
@@ -209,7 +211,8 @@ impl Store {
             .as_ref()
             .map(|p| p.live.clone())
             .filter(|live| *live != version);
-        if old.as_ref().is_none_or(|p| p.live != version) {
+        let unchanged = old.as_ref().is_some_and(|p| p.live == version);
+        if !unchanged {
             let next = match &old {
                 Some(p) => p.flipped_to(&version),
                 None => Pointer {
@@ -225,6 +228,7 @@ impl Store {
             version,
             replaced,
             new_file,
+            unchanged,
         })
     }
 

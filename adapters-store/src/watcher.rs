@@ -3,11 +3,12 @@
 //! server) is followed without a restart. Polling the small pointer files is cheap and works on
 //! every file system, which change notifications do not.
 
+use std::sync::atomic::AtomicBool;
 use std::thread::JoinHandle;
 use std::time::Duration;
 
 use crate::registry::Registry;
-use crate::sync::{Arc, Condvar, Mutex};
+use crate::sync::{Arc, Condvar, Mutex, Ordering};
 
 /// How often the watcher reads the pointers unless told otherwise: a flip is noticed well within
 /// a second.
@@ -18,6 +19,16 @@ pub const DEFAULT_POLL_INTERVAL: Duration = Duration::from_millis(200);
 pub struct Watcher {
     stop: Arc<(Mutex<bool>, Condvar)>,
     thread: Option<JoinHandle<()>>,
+    alive: Arc<AtomicBool>,
+}
+
+/// Clears the watcher's alive flag when its thread ends, however it ends (a panic included).
+struct AliveGuard(Arc<AtomicBool>);
+
+impl Drop for AliveGuard {
+    fn drop(&mut self) {
+        self.0.store(false, Ordering::SeqCst);
+    }
 }
 
 impl Registry {
@@ -27,9 +38,12 @@ impl Registry {
         let stop = Arc::new((Mutex::new(false), Condvar::new()));
         let registry = self.downgrade();
         let signal = stop.clone();
+        let alive = Arc::new(AtomicBool::new(true));
+        let guard = AliveGuard(alive.clone());
         let thread = std::thread::Builder::new()
             .name("switchyard-store-watcher".to_owned())
             .spawn(move || {
+                let _guard = guard;
                 loop {
                     {
                         let (flag, cv) = &*signal;
@@ -48,11 +62,17 @@ impl Registry {
         Watcher {
             stop,
             thread: Some(thread),
+            alive,
         }
     }
 }
 
 impl Watcher {
+    /// A flag that is true while the watcher's thread runs; readiness checks it.
+    pub fn alive(&self) -> Arc<AtomicBool> {
+        self.alive.clone()
+    }
+
     /// Stops the thread and waits for it.
     pub fn stop(mut self) {
         self.shutdown();

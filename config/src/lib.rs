@@ -32,6 +32,12 @@ use rules::secret_rule;
 /// The largest batch a single forward pass accepts; beyond it one request could starve the rest.
 pub const MAX_BATCH_ROWS_LIMIT: usize = 4096;
 
+/// Bytes of text allowed per allowed prompt token when `bounds.text_bytes` is not set. Tokens of
+/// ordinary text average 3 to 6 bytes (common practice for BPE and WordPiece vocabularies of
+/// English text), so 64 leaves room for long words and non-Latin scripts while bounding what
+/// the tokenizer is asked to read.
+pub const TEXT_BYTES_PER_TOKEN: usize = 64;
+
 const KIB: u64 = 1024;
 const MIB: u64 = 1024 * KIB;
 const GIB: u64 = 1024 * MIB;
@@ -57,14 +63,19 @@ pub struct Settings {
     pub shared_batch_rows: usize,
     /// Deadline of one request, from admission to its last byte.
     pub request_timeout_ms: u64,
-    /// Largest request body; uploads carry whole adapter packages.
-    pub max_body_bytes: usize,
-    /// Most tokens one input text may have.
-    pub max_input_tokens: usize,
+    /// Largest body of an inference or outcome request (and of any request but an upload).
+    pub inference_body_bytes: usize,
+    /// Largest adapter package upload.
+    pub upload_body_bytes: usize,
+    /// Most bytes of one input text or prompt, checked before tokenising; by default
+    /// [`TEXT_BYTES_PER_TOKEN`] times `prompt_tokens`.
+    pub text_bytes: usize,
+    /// Most tokens one input text or prompt may have.
+    pub prompt_tokens: usize,
     /// Most tokens one generation may produce.
-    pub max_output_tokens: usize,
+    pub generated_tokens: usize,
     /// Most texts one embed or classify request may carry.
-    pub max_texts_per_request: usize,
+    pub texts_per_request: usize,
     /// Memory for resident adapter factors (A and B), least recently used evicted first.
     pub factor_budget_bytes: usize,
     /// Memory for merged variants; 0 turns merging off.
@@ -78,6 +89,10 @@ pub struct Settings {
     pub quota: Quota,
     /// Bearer token of the admin API; `None` disables the admin API.
     pub admin_token: Option<String>,
+    /// Whether `/metrics` answers without the admin token (for a scraper on a private network).
+    pub metrics_public: bool,
+    /// Most distinct adapter names the request metrics label; the rest count as `other`.
+    pub metrics_adapter_series: usize,
     /// API keys, the adapters each tenant may use and its quota; empty means open (no keys
     /// asked).
     pub tenants: Vec<TenantSettings>,
@@ -145,16 +160,20 @@ impl Default for Settings {
             queue_depth: 256,
             shared_batch_rows: 4,
             request_timeout_ms: 30_000,
-            max_body_bytes: (16 * MIB) as usize,
-            max_input_tokens: 256,
-            max_output_tokens: 256,
-            max_texts_per_request: 64,
+            inference_body_bytes: (2 * MIB) as usize,
+            upload_body_bytes: (64 * MIB) as usize,
+            text_bytes: 256 * TEXT_BYTES_PER_TOKEN,
+            prompt_tokens: 256,
+            generated_tokens: 256,
+            texts_per_request: 64,
             factor_budget_bytes: GIB as usize,
             merged_budget_bytes: (2 * GIB) as usize,
             promote_share: 0.9,
             promote_window_rows: 512,
             quota: Quota::default(),
             admin_token: None,
+            metrics_public: false,
+            metrics_adapter_series: 100,
             tenants: Vec::new(),
             log_format: LogFormat::Human,
             log_filter: "info".to_owned(),
@@ -194,7 +213,8 @@ impl Settings {
     }
 
     /// The work of [`Settings::load_with`] once the file is read; `path` only labels errors.
-    pub(crate) fn from_text(
+    /// Public for the config fuzz target, which feeds it text without a file.
+    pub fn from_text(
         text: &str,
         path: &Path,
         env: impl IntoIterator<Item = (String, String)>,
@@ -249,6 +269,8 @@ impl Settings {
             tenant.quota = tenant.quota.or(default_quota);
         }
         let admin_token = admin_token(src, &tenants)?;
+        let prompt_tokens =
+            size(src.whole(&read::PROMPT_TOKENS, d.prompt_tokens as u64, 1..=131_072)?);
         Ok(Settings {
             listen,
             model_dir: dir(src, &read::MODEL_DIR, overrides.model_dir.as_deref())?,
@@ -271,24 +293,30 @@ impl Settings {
                 d.request_timeout_ms,
                 1..=3_600_000,
             )?,
-            max_body_bytes: size(src.whole(
-                &read::MAX_BODY_BYTES,
-                d.max_body_bytes as u64,
+            inference_body_bytes: size(src.whole(
+                &read::INFERENCE_BODY_BYTES,
+                d.inference_body_bytes as u64,
                 KIB..=GIB,
             )?),
-            max_input_tokens: size(src.whole(
-                &read::MAX_INPUT_TOKENS,
-                d.max_input_tokens as u64,
+            upload_body_bytes: size(src.whole(
+                &read::UPLOAD_BODY_BYTES,
+                d.upload_body_bytes as u64,
+                KIB..=16 * GIB,
+            )?),
+            text_bytes: size(src.whole(
+                &read::TEXT_BYTES,
+                (prompt_tokens * TEXT_BYTES_PER_TOKEN) as u64,
+                1..=GIB,
+            )?),
+            prompt_tokens,
+            generated_tokens: size(src.whole(
+                &read::GENERATED_TOKENS,
+                d.generated_tokens as u64,
                 1..=131_072,
             )?),
-            max_output_tokens: size(src.whole(
-                &read::MAX_OUTPUT_TOKENS,
-                d.max_output_tokens as u64,
-                1..=131_072,
-            )?),
-            max_texts_per_request: size(src.whole(
-                &read::MAX_TEXTS_PER_REQUEST,
-                d.max_texts_per_request as u64,
+            texts_per_request: size(src.whole(
+                &read::TEXTS_PER_REQUEST,
+                d.texts_per_request as u64,
                 1..=10_000,
             )?),
             factor_budget_bytes: size(src.whole(
@@ -311,6 +339,12 @@ impl Settings {
             )?),
             quota: default_quota,
             admin_token,
+            metrics_public: src.flag(&read::METRICS_PUBLIC, d.metrics_public)?,
+            metrics_adapter_series: size(src.whole(
+                &read::METRICS_ADAPTER_SERIES,
+                d.metrics_adapter_series as u64,
+                1..=10_000,
+            )?),
             tenants,
             log_format: match src.text(&read::LOG_FORMAT, false)? {
                 None => d.log_format,
@@ -412,10 +446,12 @@ impl fmt::Debug for Settings {
             .field("queue_depth", &self.queue_depth)
             .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)
-            .field("max_body_bytes", &self.max_body_bytes)
-            .field("max_input_tokens", &self.max_input_tokens)
-            .field("max_output_tokens", &self.max_output_tokens)
-            .field("max_texts_per_request", &self.max_texts_per_request)
+            .field("inference_body_bytes", &self.inference_body_bytes)
+            .field("upload_body_bytes", &self.upload_body_bytes)
+            .field("text_bytes", &self.text_bytes)
+            .field("prompt_tokens", &self.prompt_tokens)
+            .field("generated_tokens", &self.generated_tokens)
+            .field("texts_per_request", &self.texts_per_request)
             .field("factor_budget_bytes", &self.factor_budget_bytes)
             .field("merged_budget_bytes", &self.merged_budget_bytes)
             .field("promote_share", &self.promote_share)
@@ -425,6 +461,8 @@ impl fmt::Debug for Settings {
                 "admin_token",
                 &self.admin_token.as_deref().map(rules::redacted),
             )
+            .field("metrics_public", &self.metrics_public)
+            .field("metrics_adapter_series", &self.metrics_adapter_series)
             .field("tenants", &self.tenants)
             .field("log_format", &self.log_format)
             .field("log_filter", &self.log_filter)

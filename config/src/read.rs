@@ -57,25 +57,29 @@ pub(crate) const REQUEST_TIMEOUT_MS: SettingKey = SettingKey::new(
     "request_timeout_ms",
     "SWITCHYARD_ENGINE_REQUEST_TIMEOUT_MS",
 );
-pub(crate) const MAX_BODY_BYTES: SettingKey = SettingKey::new(
-    "limits",
-    "max_body_bytes",
-    "SWITCHYARD_LIMITS_MAX_BODY_BYTES",
+pub(crate) const INFERENCE_BODY_BYTES: SettingKey = SettingKey::new(
+    "bounds",
+    "inference_body_bytes",
+    "SWITCHYARD_BOUNDS_INFERENCE_BODY_BYTES",
 );
-pub(crate) const MAX_INPUT_TOKENS: SettingKey = SettingKey::new(
-    "limits",
-    "max_input_tokens",
-    "SWITCHYARD_LIMITS_MAX_INPUT_TOKENS",
+pub(crate) const UPLOAD_BODY_BYTES: SettingKey = SettingKey::new(
+    "bounds",
+    "upload_body_bytes",
+    "SWITCHYARD_BOUNDS_UPLOAD_BODY_BYTES",
 );
-pub(crate) const MAX_OUTPUT_TOKENS: SettingKey = SettingKey::new(
-    "limits",
-    "max_output_tokens",
-    "SWITCHYARD_LIMITS_MAX_OUTPUT_TOKENS",
+pub(crate) const TEXT_BYTES: SettingKey =
+    SettingKey::new("bounds", "text_bytes", "SWITCHYARD_BOUNDS_TEXT_BYTES");
+pub(crate) const PROMPT_TOKENS: SettingKey =
+    SettingKey::new("bounds", "prompt_tokens", "SWITCHYARD_BOUNDS_PROMPT_TOKENS");
+pub(crate) const GENERATED_TOKENS: SettingKey = SettingKey::new(
+    "bounds",
+    "generated_tokens",
+    "SWITCHYARD_BOUNDS_GENERATED_TOKENS",
 );
-pub(crate) const MAX_TEXTS_PER_REQUEST: SettingKey = SettingKey::new(
-    "limits",
-    "max_texts_per_request",
-    "SWITCHYARD_LIMITS_MAX_TEXTS_PER_REQUEST",
+pub(crate) const TEXTS_PER_REQUEST: SettingKey = SettingKey::new(
+    "bounds",
+    "texts_per_request",
+    "SWITCHYARD_BOUNDS_TEXTS_PER_REQUEST",
 );
 pub(crate) const FACTOR_BUDGET_BYTES: SettingKey = SettingKey::new(
     "residency",
@@ -114,6 +118,13 @@ pub(crate) const QUOTA_TOKENS_PER_MINUTE: SettingKey = SettingKey::new(
 );
 pub(crate) const ADMIN_TOKEN: SettingKey =
     SettingKey::new("admin", "token", "SWITCHYARD_ADMIN_TOKEN");
+pub(crate) const METRICS_PUBLIC: SettingKey =
+    SettingKey::new("metrics", "public", "SWITCHYARD_METRICS_PUBLIC");
+pub(crate) const METRICS_ADAPTER_SERIES: SettingKey = SettingKey::new(
+    "metrics",
+    "adapter_series",
+    "SWITCHYARD_METRICS_ADAPTER_SERIES",
+);
 pub(crate) const LOG_FORMAT: SettingKey = SettingKey::new("log", "format", "SWITCHYARD_LOG_FORMAT");
 pub(crate) const LOG_FILTER: SettingKey = SettingKey::new("log", "filter", "SWITCHYARD_LOG");
 
@@ -129,10 +140,12 @@ pub const KEYS: &[SettingKey] = &[
     QUEUE_DEPTH,
     SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,
-    MAX_BODY_BYTES,
-    MAX_INPUT_TOKENS,
-    MAX_OUTPUT_TOKENS,
-    MAX_TEXTS_PER_REQUEST,
+    INFERENCE_BODY_BYTES,
+    UPLOAD_BODY_BYTES,
+    TEXT_BYTES,
+    PROMPT_TOKENS,
+    GENERATED_TOKENS,
+    TEXTS_PER_REQUEST,
     FACTOR_BUDGET_BYTES,
     MERGED_BUDGET_BYTES,
     PROMOTE_SHARE,
@@ -141,8 +154,23 @@ pub const KEYS: &[SettingKey] = &[
     QUOTA_CONCURRENT_REQUESTS,
     QUOTA_TOKENS_PER_MINUTE,
     ADMIN_TOKEN,
+    METRICS_PUBLIC,
+    METRICS_ADAPTER_SERIES,
     LOG_FORMAT,
     LOG_FILTER,
+];
+
+/// Keys of earlier releases and what replaced them, so an old file gets a pointer to the new key
+/// instead of a bare "unknown key".
+const RENAMED: &[(&str, &str)] = &[
+    ("limits", "bounds"),
+    (
+        "limits.max_body_bytes",
+        "bounds.inference_body_bytes and bounds.upload_body_bytes",
+    ),
+    ("limits.max_input_tokens", "bounds.prompt_tokens"),
+    ("limits.max_output_tokens", "bounds.generated_tokens"),
+    ("limits.max_texts_per_request", "bounds.texts_per_request"),
 ];
 
 /// The top-level key that holds the array of tenant tables.
@@ -297,6 +325,29 @@ impl<'a> Sources<'a> {
             .transpose()
     }
 
+    /// `true` or `false` (a TOML boolean, or the text `true` / `false` in the environment), or
+    /// `default` when the key is set nowhere.
+    pub(crate) fn flag(&self, key: &SettingKey, default: bool) -> Result<bool, ConfigError> {
+        let Some((raw, origin)) = self.find(key) else {
+            return Ok(default);
+        };
+        match raw {
+            Raw::Toml(Value::Boolean(b)) => Ok(*b),
+            Raw::Text(text) if text.trim() == "true" => Ok(true),
+            Raw::Text(text) if text.trim() == "false" => Ok(false),
+            Raw::Toml(other) => Err(ConfigError::invalid(
+                origin.label(key),
+                raw.shown(),
+                format!("expected true or false, found {}", type_name(other)),
+            )),
+            Raw::Text(_) => Err(ConfigError::invalid(
+                origin.label(key),
+                raw.shown(),
+                "expected true or false",
+            )),
+        }
+    }
+
     /// Text for `key` with where it came from, `None` when the key is set nowhere. An empty
     /// value is refused: leaving the key out is how to say "not set". With `secret`, errors
     /// never repeat the value.
@@ -407,7 +458,17 @@ fn sections() -> Vec<&'static str> {
     sections
 }
 
+fn renamed(old: &str) -> Option<String> {
+    RENAMED
+        .iter()
+        .find(|(was, _)| *was == old)
+        .map(|(_, now)| format!("; it was renamed: use {now}"))
+}
+
 fn hint_for_top_level(top: &str) -> String {
+    if let Some(hint) = renamed(top) {
+        return hint;
+    }
     match KEYS.iter().find(|k| k.name == top) {
         Some(k) => format!("; did you mean `{}` (in [{}])?", k.dotted(), k.section),
         None => format!("; known sections: {}", sections().join(", ")),
@@ -415,6 +476,9 @@ fn hint_for_top_level(top: &str) -> String {
 }
 
 fn hint_in_section(section: &str, name: &str) -> String {
+    if let Some(hint) = renamed(&format!("{section}.{name}")) {
+        return hint;
+    }
     if let Some(k) = KEYS.iter().find(|k| k.name == name) {
         return format!("; did you mean `{}`?", k.dotted());
     }

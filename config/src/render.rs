@@ -68,10 +68,12 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::QUEUE_DEPTH, s.queue_depth);
     page.line(&read::SHARED_BATCH_ROWS, s.shared_batch_rows);
     page.line(&read::REQUEST_TIMEOUT_MS, s.request_timeout_ms);
-    page.line(&read::MAX_BODY_BYTES, s.max_body_bytes);
-    page.line(&read::MAX_INPUT_TOKENS, s.max_input_tokens);
-    page.line(&read::MAX_OUTPUT_TOKENS, s.max_output_tokens);
-    page.line(&read::MAX_TEXTS_PER_REQUEST, s.max_texts_per_request);
+    page.line(&read::INFERENCE_BODY_BYTES, s.inference_body_bytes);
+    page.line(&read::UPLOAD_BODY_BYTES, s.upload_body_bytes);
+    page.line(&read::TEXT_BYTES, s.text_bytes);
+    page.line(&read::PROMPT_TOKENS, s.prompt_tokens);
+    page.line(&read::GENERATED_TOKENS, s.generated_tokens);
+    page.line(&read::TEXTS_PER_REQUEST, s.texts_per_request);
     page.line(&read::FACTOR_BUDGET_BYTES, s.factor_budget_bytes);
     page.line(&read::MERGED_BUDGET_BYTES, s.merged_budget_bytes);
     page.line(&read::PROMOTE_SHARE, toml::Value::Float(s.promote_share));
@@ -94,6 +96,8 @@ pub(crate) fn render(s: &Settings) -> String {
         Some(token) => page.line(&read::ADMIN_TOKEN, quoted(&redacted(token))),
         None => page.unset(&read::ADMIN_TOKEN, "the admin API is disabled"),
     }
+    page.line(&read::METRICS_PUBLIC, s.metrics_public);
+    page.line(&read::METRICS_ADAPTER_SERIES, s.metrics_adapter_series);
     page.line(&read::LOG_FORMAT, quoted(s.log_format.as_str()));
     page.line(&read::LOG_FILTER, quoted(&s.log_filter));
 

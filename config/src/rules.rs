@@ -2,7 +2,7 @@
 //! breaks, as the tail of an error message, so the caller can name the key.
 
 /// Longest tenant name, and longest adapter pattern: the same limit as adapter names.
-pub const MAX_NAME_LEN: usize = 64;
+pub use switchyard_names::MAX_NAME_LEN;
 
 /// Shortest API key or admin token: 16 characters keep a guessed key out of reach of a client
 /// that can only try keys over HTTP.
@@ -11,37 +11,20 @@ pub const MIN_SECRET_LEN: usize = 16;
 /// Longest API key or admin token; an `Authorization` header has to carry it.
 pub const MAX_SECRET_LEN: usize = 512;
 
-/// A tenant name follows the adapter name rule: lowercase letters, digits and '-', 1 to 64.
+/// A tenant name follows the adapter name rule (`switchyard_names`); `base` is allowed, since
+/// tenants and adapters do not share a namespace.
 pub(crate) fn name_rule(name: &str) -> Option<String> {
-    charset_rule(name, "lowercase letters, digits and '-'", |c| {
-        c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-'
-    })
+    switchyard_names::check_name_or_base(name)
+        .err()
+        .map(|p| p.to_string())
 }
 
 /// An adapter pattern is an adapter (or split) name that may hold `*` wildcards, each standing
 /// for any run of characters, the empty one included.
 pub(crate) fn pattern_rule(pattern: &str) -> Option<String> {
-    charset_rule(
-        pattern,
-        "lowercase letters, digits, '-' and the wildcard '*'",
-        |c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-' || c == '*',
-    )
-}
-
-fn charset_rule(text: &str, allowed: &str, ok: impl Fn(char) -> bool) -> Option<String> {
-    if text.is_empty() {
-        return Some(format!("is empty; use {allowed}"));
-    }
-    if let Some(found) = text.chars().find(|&c| !ok(c)) {
-        return Some(format!("contains {found:?}; only {allowed} are allowed"));
-    }
-    let len = text.chars().count();
-    if len > MAX_NAME_LEN {
-        return Some(format!(
-            "is {len} characters, over the limit of {MAX_NAME_LEN}"
-        ));
-    }
-    None
+    switchyard_names::check_pattern(pattern)
+        .err()
+        .map(|p| p.to_string())
 }
 
 /// An API key or admin token: 16 to 512 printable ASCII characters, no spaces (it travels in an

@@ -41,15 +41,21 @@ fn defaults_apply_without_file_or_environment() {
     assert_eq!(s.queue_depth, 256);
     assert_eq!(s.shared_batch_rows, 4);
     assert_eq!(s.request_timeout_ms, 30_000);
-    assert_eq!(s.max_body_bytes, 16 << 20);
+    assert_eq!(
+        (s.inference_body_bytes, s.upload_body_bytes),
+        (2 << 20, 64 << 20)
+    );
     assert_eq!(
         (
-            s.max_input_tokens,
-            s.max_output_tokens,
-            s.max_texts_per_request
+            s.prompt_tokens,
+            s.generated_tokens,
+            s.texts_per_request,
+            s.text_bytes
         ),
-        (256, 256, 64)
+        (256, 256, 64, 256 * 64)
     );
+    assert!(!s.metrics_public);
+    assert_eq!(s.metrics_adapter_series, 100);
     assert_eq!(s.factor_budget_bytes, 1 << 30);
     assert_eq!(s.merged_budget_bytes, 2 << 30);
     assert_eq!((s.promote_share, s.promote_window_rows), (0.9, 512));
@@ -126,10 +132,12 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::QUEUE_DEPTH, "9", "9"),
         (&read::SHARED_BATCH_ROWS, "2", "2"),
         (&read::REQUEST_TIMEOUT_MS, "1500", "1500"),
-        (&read::MAX_BODY_BYTES, "4096", "4096"),
-        (&read::MAX_INPUT_TOKENS, "128", "128"),
-        (&read::MAX_OUTPUT_TOKENS, "64", "64"),
-        (&read::MAX_TEXTS_PER_REQUEST, "8", "8"),
+        (&read::INFERENCE_BODY_BYTES, "4096", "4096"),
+        (&read::UPLOAD_BODY_BYTES, "8192", "8192"),
+        (&read::TEXT_BYTES, "1000", "1000"),
+        (&read::PROMPT_TOKENS, "128", "128"),
+        (&read::GENERATED_TOKENS, "64", "64"),
+        (&read::TEXTS_PER_REQUEST, "8", "8"),
         (&read::FACTOR_BUDGET_BYTES, "2097152", "2097152"),
         (&read::MERGED_BUDGET_BYTES, "0", "0"),
         (&read::PROMOTE_SHARE, "0.5", "0.5"),
@@ -142,6 +150,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
             "\"admin-token-0123456789\"",
             "admin-token-0123456789",
         ),
+        (&read::METRICS_PUBLIC, "true", "true"),
+        (&read::METRICS_ADAPTER_SERIES, "7", "7"),
         (&read::LOG_FORMAT, "\"json\"", "json"),
         (&read::LOG_FILTER, "\"debug\"", "debug"),
     ];
@@ -165,10 +175,12 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         queue_depth: 9,
         shared_batch_rows: 2,
         request_timeout_ms: 1500,
-        max_body_bytes: 4096,
-        max_input_tokens: 128,
-        max_output_tokens: 64,
-        max_texts_per_request: 8,
+        inference_body_bytes: 4096,
+        upload_body_bytes: 8192,
+        text_bytes: 1000,
+        prompt_tokens: 128,
+        generated_tokens: 64,
+        texts_per_request: 8,
         factor_budget_bytes: 2 << 20,
         merged_budget_bytes: 0,
         promote_share: 0.5,
@@ -179,6 +191,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
             tokens_per_minute: Some(60_000),
         },
         admin_token: Some("admin-token-0123456789".into()),
+        metrics_public: true,
+        metrics_adapter_series: 7,
         tenants: Vec::new(),
         log_format: LogFormat::Json,
         log_filter: "debug".into(),
@@ -227,23 +241,30 @@ fn each_range_is_enforced_at_both_ends() {
             "0",
         ),
         (
-            "[limits]\nmax_body_bytes = 1023",
-            "limits.max_body_bytes",
+            "[bounds]\ninference_body_bytes = 1023",
+            "bounds.inference_body_bytes",
             "1023",
         ),
         (
-            "[limits]\nmax_input_tokens = 0",
-            "limits.max_input_tokens",
+            "[bounds]\nupload_body_bytes = 1023",
+            "bounds.upload_body_bytes",
+            "1023",
+        ),
+        ("[bounds]\ntext_bytes = 0", "bounds.text_bytes", "0"),
+        ("[bounds]\nprompt_tokens = 0", "bounds.prompt_tokens", "0"),
+        (
+            "[bounds]\ngenerated_tokens = 0",
+            "bounds.generated_tokens",
             "0",
         ),
         (
-            "[limits]\nmax_output_tokens = 0",
-            "limits.max_output_tokens",
+            "[bounds]\ntexts_per_request = 0",
+            "bounds.texts_per_request",
             "0",
         ),
         (
-            "[limits]\nmax_texts_per_request = 0",
-            "limits.max_texts_per_request",
+            "[metrics]\nadapter_series = 0",
+            "metrics.adapter_series",
             "0",
         ),
         (
@@ -396,11 +417,36 @@ fn unknown_section_or_misplaced_key_gets_a_hint() {
     );
     let err = refusal("listen = \"127.0.0.1:1\"\n", &[]);
     assert!(err.contains("did you mean `server.listen`"), "{err}");
-    let err = refusal("[engine]\nmax_body_bytes = 3\n", &[]);
+    let err = refusal("[engine]\nprompt_tokens = 3\n", &[]);
+    assert!(err.contains("did you mean `bounds.prompt_tokens`"), "{err}");
+}
+
+#[test]
+fn keys_of_the_old_limits_section_point_to_their_new_names() {
+    let err = refusal("[limits]\nmax_input_tokens = 3\n", &[]);
     assert!(
-        err.contains("did you mean `limits.max_body_bytes`"),
+        err.contains("limits") && err.contains("renamed") && err.contains("bounds"),
         "{err}"
     );
+}
+
+#[test]
+fn text_bytes_follows_prompt_tokens_unless_set() {
+    let s = load_text("[bounds]\nprompt_tokens = 10\n", &[]).unwrap();
+    assert_eq!(s.text_bytes, 10 * crate::TEXT_BYTES_PER_TOKEN);
+    let s = load_text("[bounds]\nprompt_tokens = 10\ntext_bytes = 5\n", &[]).unwrap();
+    assert_eq!(s.text_bytes, 5);
+}
+
+#[test]
+fn metrics_public_takes_only_true_or_false() {
+    let err = refusal("[metrics]\npublic = \"yes\"\n", &[]);
+    assert!(
+        err.contains("metrics.public") && err.contains("true or false"),
+        "{err}"
+    );
+    let err = refusal("", &[("SWITCHYARD_METRICS_PUBLIC", "1")]);
+    assert!(err.contains("SWITCHYARD_METRICS_PUBLIC"), "{err}");
 }
 
 #[test]

@@ -15,7 +15,7 @@ fn example_config_loads() {
         s.model_dir.as_deref(),
         Some(Path::new("models/all-minilm-l6-v2"))
     );
-    assert_eq!(s.store_dir.as_deref(), Some(Path::new("demo/store")));
+    assert_eq!(s.store_dir.as_deref(), Some(Path::new("var/store")));
     assert_eq!(
         s.require_model_dir().unwrap(),
         Path::new("models/all-minilm-l6-v2")

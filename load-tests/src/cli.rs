@@ -43,6 +43,114 @@ pub enum Command {
     /// The built-in fairness scenario: starts `switchyard serve` itself with three tenants and
     /// measures a steady tenant's latency alone and while another tenant floods the server.
     Fairness(FairnessArgs),
+    /// The soak: starts `switchyard serve` itself, measures its capacity, then sends a share of
+    /// it over many adapters for a long time while adapters are published and rolled back live;
+    /// reports errors, memory and swap times per window, and exits 1 when a verdict fails.
+    Soak(SoakArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct SoakArgs {
+    /// The `switchyard` binary to start.
+    #[arg(long)]
+    pub server_bin: PathBuf,
+    /// The base model folder (an encoder: the soak sends /embed).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Folder for report.json, README.md and the charts.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Measured time after the warm-up (30m, 90s, ...).
+    #[arg(long, default_value = "30m", value_parser = parse_duration)]
+    pub duration: Duration,
+    /// Time at the start left out of the verdicts.
+    #[arg(long, default_value = "2m", value_parser = parse_duration)]
+    pub warmup: Duration,
+    /// Length of one reporting window.
+    #[arg(long, default_value = "1m", value_parser = parse_duration)]
+    pub window: Duration,
+    /// Synthetic adapters the traffic is spread over.
+    #[arg(long, default_value_t = 1000, value_parser = parse_positive_count)]
+    pub adapters: usize,
+    /// Zipf exponent of adapter popularity (above 0).
+    #[arg(long, default_value_t = 1.0, value_parser = parse_zipf)]
+    pub zipf: f64,
+    /// Share of the measured capacity to send (above 0, at most 1).
+    #[arg(long, default_value_t = 0.7, value_parser = parse_share)]
+    pub load: f64,
+    /// How long the capacity probe runs.
+    #[arg(long, default_value = "20s", value_parser = parse_duration)]
+    pub capacity_time: Duration,
+    /// Clients of the capacity probe's closed loop.
+    #[arg(long, default_value_t = 4, value_parser = parse_positive_count)]
+    pub capacity_clients: usize,
+    /// One publish or rollback this often.
+    #[arg(long, default_value = "2s", value_parser = parse_duration)]
+    pub flip_every: Duration,
+    /// How many of the most popular adapters take turns being published and rolled back.
+    #[arg(long, default_value_t = 20, value_parser = parse_positive_count)]
+    pub flipped_adapters: usize,
+    /// Rank of the synthetic adapters.
+    #[arg(long, default_value_t = 8, value_parser = parse_positive_count)]
+    pub rank: usize,
+    /// Matrices the synthetic adapters target.
+    #[arg(long, default_value = "attn.q,attn.v", value_parser = parse_targets)]
+    pub targets: Targets,
+    /// Worker threads of the open loop.
+    #[arg(long, default_value_t = 64, value_parser = parse_positive_count)]
+    pub workers: usize,
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+}
+
+/// A share: above 0 and at most 1.
+pub fn parse_share(text: &str) -> Result<f64, String> {
+    match text.trim().parse::<f64>() {
+        Ok(x) if x > 0.0 && x <= 1.0 => Ok(x),
+        _ => Err(format!(
+            "expected a share above 0 and at most 1 (0.7 is 70%), got {text:?}"
+        )),
+    }
+}
+
+/// `switchyard-load soak`.
+pub fn soak(args: &SoakArgs, command_line: &str) -> anyhow::Result<crate::soak::SoakReport> {
+    if args.flipped_adapters > args.adapters {
+        bail!(
+            "--flipped-adapters {} is more than --adapters {}",
+            args.flipped_adapters,
+            args.adapters
+        );
+    }
+    if !args.server_bin.is_file() {
+        bail!(
+            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
+            args.server_bin.display()
+        );
+    }
+    // The server runs in its own folder: paths must not depend on this one.
+    let absolute = |p: &PathBuf, flag: &str| {
+        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
+    };
+    crate::soak::run_soak(&crate::soak::SoakSettings {
+        server_bin: absolute(&args.server_bin, "--server-bin")?,
+        model_dir: absolute(&args.model, "--model")?,
+        duration: args.duration,
+        warmup: args.warmup,
+        window: args.window,
+        adapters: args.adapters,
+        zipf: args.zipf,
+        load_share: args.load,
+        capacity_time: args.capacity_time,
+        capacity_clients: args.capacity_clients,
+        flip_every: args.flip_every,
+        flipped_adapters: args.flipped_adapters,
+        rank: args.rank,
+        targets: args.targets.0.clone(),
+        workers: args.workers,
+        seed: args.seed,
+        command: command_line.to_owned(),
+    })
 }
 
 #[derive(Debug, Args)]
@@ -160,7 +268,7 @@ pub struct FairnessArgs {
     #[arg(long, default_value_t = 10.0, value_parser = parse_rate)]
     pub flood_factor: f64,
     /// The steady tenant's arrival rate as a share of the measured capacity (above 0, below 1).
-    #[arg(long, default_value_t = 0.1, value_parser = parse_share)]
+    #[arg(long, default_value_t = 0.1, value_parser = parse_steady_share)]
     pub steady_share: f64,
     /// Worker threads of a flood's open loop (requests in flight at most).
     #[arg(long, default_value_t = 256, value_parser = parse_positive_count)]
@@ -169,8 +277,8 @@ pub struct FairnessArgs {
     pub seed: u64,
 }
 
-/// A share: a number above 0 and below 1.
-pub fn parse_share(text: &str) -> Result<f64, String> {
+/// The steady tenant's share: a number above 0 and below 1 (at 1 it alone would fill the server).
+pub fn parse_steady_share(text: &str) -> Result<f64, String> {
     match text.trim().parse::<f64>() {
         Ok(x) if x > 0.0 && x < 1.0 => Ok(x),
         _ => Err(format!(
@@ -311,12 +419,23 @@ pub fn run(args: &RunArgs, command_line: &str) -> anyhow::Result<Report> {
         seed: args.seed,
     };
     let origin = std::time::Instant::now();
-    let before = swap_histograms(&parse(&client.metrics()?));
+    // /metrics takes the admin token unless the server serves it publicly; without it the run
+    // goes on and reports no swap or memory figures from the server.
+    let scrape = |client: &Client| match client.metrics() {
+        Ok(text) => swap_histograms(&parse(&text)),
+        Err(e) => {
+            eprintln!(
+                "switchyard-load: no figures from /metrics ({e:#}); give --admin-token for them"
+            );
+            Default::default()
+        }
+    };
+    let before = scrape(&client);
     let sampler = MemorySampler::start(client.clone(), origin, Duration::from_millis(250));
     let name = format!("{} adapters", targets.len());
     let records = drive(&client, &workload, &name);
     let memory = sampler.finish();
-    let after = swap_histograms(&parse(&client.metrics()?));
+    let after = scrape(&client);
     let mut scenario = Scenario::new(&name, targets.len(), &records);
     scenario.swap_metrics = after
         .iter()
@@ -464,10 +583,15 @@ mod tests {
         assert_eq!(parse_duration("1.5"), Ok(Duration::from_millis(1500)));
         assert!(parse_duration("soon").is_err());
         assert!(parse_positive_count("0").is_err());
-        assert_eq!(parse_share("0.1"), Ok(0.1));
+        assert_eq!(parse_steady_share("0.1"), Ok(0.1));
         for bad in ["0", "1", "-0.5", "lots"] {
-            assert!(parse_share(bad).unwrap_err().contains("share"), "{bad}");
+            assert!(
+                parse_steady_share(bad).unwrap_err().contains("share"),
+                "{bad}"
+            );
         }
+        assert_eq!(parse_share("1"), Ok(1.0));
+        assert!(parse_share("1.5").unwrap_err().contains("share"));
     }
 
     #[test]
@@ -477,7 +601,7 @@ mod tests {
             all.extend_from_slice(args);
             match Cli::try_parse_from(all).map_err(|e| e.to_string())?.command {
                 Command::Run(r) => Ok(r),
-                Command::Overhead(_) | Command::Fairness(_) => Err("not run".to_owned()),
+                other => Err(format!("{other:?}")),
             }
         };
         let r = parse(&["--adapter-prefix", "syn-", "--adapter-count", "3"]).unwrap();

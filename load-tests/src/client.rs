@@ -40,7 +40,7 @@ impl Default for RequestShape {
 pub struct Answer {
     /// The HTTP status; 0 when no answer came (connection refused, reset, timed out).
     pub status: u16,
-    /// `timings.swap_ms` of a successful answer.
+    /// `elapsed_ms.swap` of a successful answer.
     pub swap_ms: Option<f64>,
     /// `merged` of a successful embed or classify answer.
     pub merged: Option<bool>,
@@ -146,14 +146,22 @@ impl Client {
         }
     }
 
-    /// The text of `GET /metrics`.
+    /// The text of `GET /metrics` (with the admin token when one is set: the server asks for it
+    /// unless its metrics are configured public).
     pub fn metrics(&self) -> anyhow::Result<String> {
-        let mut resp = self
-            .agent
-            .get(format!("{}/metrics", self.url))
+        let mut req = self.agent.get(format!("{}/metrics", self.url));
+        if let Some(token) = &self.admin_token {
+            req = req.header("Authorization", format!("Bearer {token}"));
+        }
+        let mut resp = req
             .call()
             .with_context(|| format!("reading {}/metrics", self.url))?;
-        Ok(resp.body_mut().read_to_string()?)
+        let status = resp.status().as_u16();
+        let text = resp.body_mut().read_to_string()?;
+        if status != 200 {
+            bail!("{}/metrics answered {status}: {text}", self.url);
+        }
+        Ok(text)
     }
 
     /// Uploads package bytes as a new live version of `name` through the admin API.
@@ -170,9 +178,33 @@ impl Client {
             .send(bytes)
             .with_context(|| format!("uploading {name} to {}", self.url))?;
         let status = resp.status().as_u16();
-        if status != 201 {
+        // 201: a new live version; 200: these bytes were live already (nothing changed).
+        if status != 201 && status != 200 {
             let text = resp.body_mut().read_to_string().unwrap_or_default();
             bail!("uploading {name} to {} answered {status}: {text}", self.url);
+        }
+        Ok(())
+    }
+
+    /// Rolls `name` back to its previous live version through the admin API.
+    pub fn rollback(&self, name: &str) -> anyhow::Result<()> {
+        let token = self
+            .admin_token
+            .as_deref()
+            .context("rolling back needs --admin-token")?;
+        let mut resp = self
+            .agent
+            .post(format!("{}/admin/adapters/{name}/rollback", self.url))
+            .header("Authorization", format!("Bearer {token}"))
+            .send_empty()
+            .with_context(|| format!("rolling back {name} on {}", self.url))?;
+        let status = resp.status().as_u16();
+        if status != 200 {
+            let text = resp.body_mut().read_to_string().unwrap_or_default();
+            bail!(
+                "rolling back {name} on {} answered {status}: {text}",
+                self.url
+            );
         }
         Ok(())
     }
@@ -184,7 +216,7 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
     if status == 200 {
         Answer {
             status,
-            swap_ms: body["timings"]["swap_ms"].as_f64(),
+            swap_ms: body["elapsed_ms"]["swap"].as_f64(),
             merged: body["merged"].as_bool(),
             error: None,
             retry_after_s: None,
@@ -212,7 +244,7 @@ mod tests {
     fn answers_keep_swap_time_merged_flag_and_error_code() {
         let ok = read_answer(
             200,
-            r#"{"id": "r-1", "merged": true, "timings": {"queue_ms": 0.1, "swap_ms": 2.5, "total_ms": 9.0}}"#,
+            r#"{"id": "r-1", "merged": true, "elapsed_ms": {"queue": 0.1, "swap": 2.5, "total": 9.0}}"#,
         );
         assert_eq!(
             ok,

@@ -4,7 +4,8 @@
 //! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
 //! [`synthetic`] builds adapters for a run; [`report`] writes JSON and HTML with [`charts`];
 //! [`overhead`] is the built-in swap-overhead scenario and [`fairness`] the built-in fairness
-//! scenario, which start their own servers ([`server`]).
+//! scenario, which start their own servers ([`server`]); [`soak`] is the long run at a steady load
+//! with live publishes and rollbacks.
 
 pub mod charts;
 pub mod cli;
@@ -18,6 +19,7 @@ pub mod report;
 pub mod results;
 pub mod scrape;
 pub mod server;
+pub mod soak;
 pub mod stats;
 pub mod synthetic;
 pub mod workload;

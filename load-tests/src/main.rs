@@ -2,12 +2,33 @@
 //! the summary table and writes the report.
 
 use clap::Parser;
-use switchyard_load::cli::{Cli, Command, fairness, overhead, run};
+use switchyard_load::cli::{Cli, Command, fairness, overhead, run, soak};
 
 fn main() {
     let cli = Cli::parse();
     let command_line = std::env::args().collect::<Vec<_>>().join(" ");
+    if let Command::Soak(args) = &cli.command {
+        let passed = soak(args, &command_line).and_then(|report| {
+            print!("{}", report.text);
+            for p in report.write(&args.out)? {
+                eprintln!("wrote {}", p.display());
+            }
+            Ok(report.passed)
+        });
+        match passed {
+            Ok(true) => return,
+            Ok(false) => {
+                eprintln!("switchyard-load: a soak verdict failed (see the report)");
+                std::process::exit(1);
+            }
+            Err(e) => {
+                eprintln!("switchyard-load: {e:#}");
+                std::process::exit(1);
+            }
+        }
+    }
     let (result, out) = match &cli.command {
+        Command::Soak(_) => unreachable!("handled above"),
         Command::Run(args) => (run(args, &command_line), args.out.clone()),
         Command::Overhead(args) => (overhead(args, &command_line), args.out.clone()),
         Command::Fairness(args) => (fairness(args, &command_line), args.out.clone()),

@@ -134,8 +134,9 @@ pub fn run_overhead(s: &OverheadSettings) -> anyhow::Result<Report> {
     let config_off = ServerConfig::new(&s.model_dir, &store_off, false);
     let server_on = ServerProcess::start(&s.server_bin, &dir_on, &config_on)?;
     let server_off = ServerProcess::start(&s.server_bin, &dir_off, &config_off)?;
-    let client_on = Client::new(server_on.url(), None, None)?;
-    let client_off = Client::new(server_off.url(), None, None)?;
+    // The admin token also opens /metrics, which the scenario scrapes.
+    let client_on = Client::new(server_on.url(), None, Some(config_on.admin_token.clone()))?;
+    let client_off = Client::new(server_off.url(), None, Some(config_off.admin_token.clone()))?;
     let origin = Instant::now();
     let period = Duration::from_millis(250);
     let sampler_on = MemorySampler::start(client_on.clone(), origin, period);

@@ -159,7 +159,7 @@ impl Report {
             .collect();
         charts.push(Chart {
             file: "swap-histogram.svg".to_owned(),
-            caption: "Adapter swap time per request (timings.swap_ms of every answer: a resident \
+            caption: "Adapter swap time per request (elapsed_ms.swap of every answer: a resident \
                       adapter takes microseconds, a load from the store milliseconds)"
                 .to_owned(),
             svg: histogram_chart(

@@ -84,7 +84,7 @@ impl Scenario {
         }
     }
 
-    /// `timings.swap_ms` of every answered request.
+    /// `elapsed_ms.swap` of every answered request.
     pub fn swap_ms(&self) -> Vec<f64> {
         self.records.iter().filter_map(|r| r.swap_ms).collect()
     }

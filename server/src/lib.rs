@@ -7,5 +7,6 @@ pub mod engine;
 pub mod http;
 pub mod metrics;
 pub mod model;
+pub mod numbers;
 pub mod splits;
 pub mod train;

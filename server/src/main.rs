@@ -122,6 +122,12 @@ enum ConfigCommand {
 
 fn main() {
     let cli = Cli::parse();
+    // A SWITCHYARD_KERNELS naming no path, or one this CPU cannot run, stops every command here
+    // with the valid names, before any kernel runs.
+    if let Err(e) = switchyard_kernels::dispatch::chosen() {
+        eprintln!("switchyard: error: {e}");
+        std::process::exit(2);
+    }
     if let Command::Serve {
         config,
         listen,
@@ -148,6 +154,7 @@ fn main() {
             tracing_subscriber::EnvFilter::try_from_env("SWITCHYARD_LOG")
                 .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
         )
+        .with_ansi(std::io::IsTerminal::is_terminal(&io::stderr()))
         .with_writer(io::stderr)
         .init();
     let result = match cli.command {

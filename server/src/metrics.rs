@@ -1,9 +1,14 @@
-//! Prometheus metrics (text exposition format at `/metrics`), all prefixed `switchyard_`, in base
-//! units, with `_total` on counters. The engine and the handlers record into [`Metrics`]; a
-//! thread turns the registry's swap events into the swap and residency metrics.
+//! Prometheus metrics (text exposition format 0.0.4 at `/metrics`), all prefixed `switchyard_`,
+//! in base units, with `_total` on counters. The engine and the handlers record into
+//! [`Metrics`]; a thread turns the registry's swap events into the swap and residency metrics.
+//!
+//! Label values stay bounded: requests are labelled by adapter name (never by version), for at
+//! most `adapter_series` names (the first seen; later ones count as `other`), and a deleted
+//! split's series are dropped. `promtool check metrics` accepts the output (a test runs it).
 
-use std::sync::Mutex;
+use std::collections::HashSet;
 use std::sync::atomic::AtomicU64;
+use std::sync::{Mutex, PoisonError};
 
 use prometheus_client::encoding::EncodeLabelSet;
 use prometheus_client::metrics::counter::Counter;
@@ -71,7 +76,13 @@ pub struct Metrics {
     pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
     pub process_resident_bytes: Gauge,
+    /// Adapter names that have their own request series; at most `adapter_series` of them.
+    labelled_adapters: Mutex<HashSet<String>>,
+    adapter_series: usize,
 }
+
+/// The label value of requests to adapters beyond the bounded set.
+pub const OTHER_ADAPTERS: &str = "other";
 
 type AtomicI64Compat = std::sync::atomic::AtomicI64;
 
@@ -83,12 +94,13 @@ impl std::fmt::Debug for Metrics {
 
 impl Default for Metrics {
     fn default() -> Self {
-        Self::new()
+        Self::new(100)
     }
 }
 
 impl Metrics {
-    pub fn new() -> Self {
+    /// Every metric, with request series for at most `adapter_series` adapter names.
+    pub fn new(adapter_series: usize) -> Self {
         let mut registry = Registry::with_prefix("switchyard");
         let requests = Family::<RequestLabels, Counter>::default();
         registry.register(
@@ -182,6 +194,8 @@ impl Metrics {
             refusals,
             swap_events_dropped,
             process_resident_bytes,
+            labelled_adapters: Mutex::new(HashSet::new()),
+            adapter_series,
         }
     }
 
@@ -191,17 +205,21 @@ impl Metrics {
             self.process_resident_bytes.set(bytes);
         }
         let mut out = String::new();
-        let registry = self.registry.lock().unwrap();
+        let registry = self.registry.lock().unwrap_or_else(PoisonError::into_inner);
         prometheus_client::encoding::text::encode(&mut out, &registry)
             .expect("writing to a string");
-        out
+        prometheus_text(&out)
     }
 
-    pub fn count_request(&self, endpoint: &str, adapter: &str, status: u16) {
+    /// Counts one answered request. `served_by` is `name@version`, `base`, or `-` when the
+    /// request was refused before it was routed; only the name becomes a label value.
+    pub fn count_request(&self, endpoint: &str, served_by: &str, status: u16) {
+        let name = served_by.split('@').next().unwrap_or(served_by);
+        let adapter = self.adapter_label(name);
         self.requests
             .get_or_create(&RequestLabels {
                 endpoint: endpoint.to_owned(),
-                adapter: adapter.to_owned(),
+                adapter,
                 status: status.to_string(),
             })
             .inc();
@@ -215,6 +233,32 @@ impl Metrics {
                 reason: reason.to_owned(),
             })
             .inc();
+    }
+
+    /// `name` while the bounded set has room for it (or holds it already), `other` after.
+    fn adapter_label(&self, name: &str) -> String {
+        let mut seen = self
+            .labelled_adapters
+            .lock()
+            .unwrap_or_else(PoisonError::into_inner);
+        if seen.contains(name) {
+            return name.to_owned();
+        }
+        if seen.len() < self.adapter_series {
+            seen.insert(name.to_owned());
+            return name.to_owned();
+        }
+        OTHER_ADAPTERS.to_owned()
+    }
+
+    /// Drops every series of a deleted split.
+    pub fn forget_split(&self, split: &str, arms: &[String]) {
+        for arm in arms {
+            self.arm_requests.remove(&ArmLabels {
+                split: split.to_owned(),
+                arm: arm.clone(),
+            });
+        }
     }
 
     pub fn cache_event(&self, tier: Tier, outcome: &str) {
@@ -262,6 +306,36 @@ impl Metrics {
     }
 }
 
+/// prometheus-client writes OpenMetrics text; the Prometheus text format (0.0.4, what `/metrics`
+/// declares) names a counter's family with its `_total` suffix in `# HELP` and `# TYPE`, has no
+/// `# UNIT` lines and no `# EOF` terminator.
+fn prometheus_text(openmetrics: &str) -> String {
+    let counters: HashSet<&str> = openmetrics
+        .lines()
+        .filter_map(|l| l.strip_prefix("# TYPE "))
+        .filter_map(|rest| rest.strip_suffix(" counter"))
+        .collect();
+    let mut out = String::with_capacity(openmetrics.len());
+    for line in openmetrics.lines() {
+        if line == "# EOF" || line.starts_with("# UNIT ") {
+            continue;
+        }
+        let renamed = ["# HELP ", "# TYPE "].iter().find_map(|prefix| {
+            let rest = line.strip_prefix(prefix)?;
+            let (name, tail) = rest.split_once(' ')?;
+            counters
+                .contains(name)
+                .then(|| format!("{prefix}{name}_total {tail}"))
+        });
+        match renamed {
+            Some(l) => out.push_str(&l),
+            None => out.push_str(line),
+        }
+        out.push('\n');
+    }
+    out
+}
+
 /// The resident set of this process: the second field of /proc/self/statm, in pages of 4 KiB
 /// (the page size of the x86-64 and common aarch64 Linux kernels this server targets); `None`
 /// where there is no /proc.
@@ -276,8 +350,65 @@ mod tests {
     use super::*;
 
     #[test]
+    fn request_labels_stay_bounded_and_carry_no_version() {
+        let m = Metrics::new(2);
+        m.count_request("embed", "north-routing@0123456789abcdef", 200);
+        m.count_request("embed", "north-routing@fedcba9876543210", 200);
+        m.count_request("embed", "base", 200);
+        m.count_request("embed", "south-routing@0123456789abcdef", 200);
+        m.count_request("embed", "south-faq@0123456789abcdef", 200);
+        let text = m.render();
+        assert!(
+            text.contains(
+                "switchyard_requests_total{endpoint=\"embed\",adapter=\"north-routing\",status=\"200\"} 2"
+            ),
+            "{text}"
+        );
+        assert!(
+            text.contains(
+                "switchyard_requests_total{endpoint=\"embed\",adapter=\"other\",status=\"200\"} 2"
+            ),
+            "{text}"
+        );
+        assert!(!text.contains("0123456789abcdef"), "{text}");
+    }
+
+    #[test]
+    fn a_deleted_split_leaves_no_series() {
+        let m = Metrics::new(10);
+        for arm in ["incumbent", "candidate"] {
+            m.arm_requests
+                .get_or_create(&ArmLabels {
+                    split: "north-trial".into(),
+                    arm: arm.into(),
+                })
+                .inc();
+        }
+        assert!(m.render().contains("north-trial"));
+        m.forget_split("north-trial", &["incumbent".into(), "candidate".into()]);
+        assert!(!m.render().contains("north-trial"), "{}", m.render());
+    }
+
+    #[test]
+    fn counter_families_are_named_with_total_as_the_text_format_wants() {
+        let m = Metrics::new(10);
+        m.count_request("embed", "base", 200);
+        let text = m.render();
+        assert!(
+            text.contains("# TYPE switchyard_requests_total counter"),
+            "{text}"
+        );
+        assert!(text.contains("# HELP switchyard_requests_total "), "{text}");
+        assert!(!text.contains("# EOF"), "{text}");
+        assert!(
+            !text.contains("# TYPE switchyard_requests counter"),
+            "{text}"
+        );
+    }
+
+    #[test]
     fn exposition_uses_our_prefix_and_total_suffix() {
-        let m = Metrics::new();
+        let m = Metrics::new(10);
         m.count_request("embed", "base", 200);
         m.generated_tokens.inc_by(3);
         m.refused("ridgeline-north", "rate_limited");

@@ -449,25 +449,38 @@ fn an_adapter_for_another_base_is_refused_naming_the_fingerprint_rule() {
     );
 }
 
-/// Every check above again, in a child process with the portable kernels forced
-/// (`SWITCHYARD_KERNELS=portable`): what a CPU without AVX2 runs.
+/// Every check above again, in a child process per kernel path this CPU runs besides the one
+/// the checks above ran on (`SWITCHYARD_KERNELS=portable` is what a CPU without AVX2 runs);
+/// each path this CPU lacks is printed as not run.
 #[test]
-fn every_reference_check_passes_on_the_portable_kernels() {
+fn every_reference_check_passes_on_every_kernel_path() {
     if std::env::var("SWITCHYARD_KERNELS").is_ok() {
         // Already the child (or forced by the caller): the checks above cover it.
         return;
     }
-    let out = std::process::Command::new(std::env::current_exe().unwrap())
-        .env("SWITCHYARD_KERNELS", "portable")
-        .args(["--test-threads", "1", "--skip", "portable_kernels"])
-        .output()
-        .unwrap();
-    let text = String::from_utf8_lossy(&out.stdout);
-    assert!(
-        out.status.success(),
-        "reference checks failed on the portable kernels:\n{text}\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    assert!(text.contains("test result: ok"), "{text}");
-    assert!(!text.contains(" 0 passed"), "no check ran: {text}");
+    let default = switchyard_kernels::Path::best();
+    println!("path {default}: the checks above ran on it");
+    for path in switchyard_kernels::Path::ALL {
+        if path == default {
+            continue;
+        }
+        if let Some(feature) = path.missing_feature() {
+            println!("path {path}: not run: {feature} absent");
+            continue;
+        }
+        let out = std::process::Command::new(std::env::current_exe().unwrap())
+            .env("SWITCHYARD_KERNELS", path.name())
+            .args(["--test-threads", "1", "--skip", "every_kernel_path"])
+            .output()
+            .unwrap();
+        let text = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success(),
+            "reference checks failed on the {path} kernels:\n{text}\n{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(text.contains("test result: ok"), "{text}");
+        assert!(!text.contains(" 0 passed"), "no check ran: {text}");
+        println!("path {path}: every check passed");
+    }
 }

@@ -319,3 +319,64 @@ fn bad_arguments_are_refused_with_the_reason() {
         &format!("cannot reach the server at {unreachable}"),
     );
 }
+
+/// The soak in miniature (the committed 30-minute report is docs/soak/): capacity probe, open
+/// loop at 70% with publishes and rollbacks every second, and its verdicts. Only errors are
+/// asserted here, since memory and swap-time verdicts need a long run to mean anything.
+#[test]
+fn soak_in_miniature_answers_every_request_and_every_publish_and_rollback() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("soak");
+    let bin = switchyard_bin();
+    let model = base_model_dir();
+    let args = [
+        "soak",
+        "--server-bin",
+        bin.to_str().unwrap(),
+        "--model",
+        model.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+        "--duration",
+        "12s",
+        "--warmup",
+        "3s",
+        "--window",
+        "3s",
+        "--adapters",
+        "30",
+        "--flipped-adapters",
+        "4",
+        "--flip-every",
+        "1s",
+        "--capacity-time",
+        "4s",
+    ];
+    // The exit status also reflects the memory and swap verdicts, which a 12-second run on a
+    // shared machine cannot settle; the report says what each was.
+    let output = load(&args, dir.path());
+    let report = read_json(&out.join("report.json"));
+    assert_eq!(
+        report["request_errors"],
+        0,
+        "{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    assert_eq!(report["admin_errors"], 0, "{report}");
+    assert!(
+        report["admin_operations"].as_u64().unwrap() >= 8,
+        "{report}"
+    );
+    assert!(report["requests"].as_u64().unwrap() > 20, "{report}");
+    assert!(report["capacity_per_s"].as_f64().unwrap() > 0.0);
+    assert!(!report["windows"].as_array().unwrap().is_empty());
+    for chart in ["memory.svg", "latency.svg", "swap-p99.svg"] {
+        let svg = std::fs::read_to_string(out.join(chart)).unwrap();
+        assert!(svg.starts_with("<svg"), "{chart}");
+    }
+    assert!(
+        std::fs::read_to_string(out.join("README.md"))
+            .unwrap()
+            .contains("errors: pass")
+    );
+}

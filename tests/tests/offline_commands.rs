@@ -209,3 +209,31 @@ fn a_corrupt_adapter_file_is_refused_as_not_safetensors() {
         "{stderr}"
     );
 }
+
+/// `SWITCHYARD_KERNELS` naming no kernel path stops the command before any work, with the valid
+/// names.
+#[test]
+fn an_unknown_kernel_path_is_refused_with_the_valid_names() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(switchyard_tests::switchyard_bin())
+        .args([
+            "plan",
+            "--model",
+            "config.json",
+            "--rank",
+            "8",
+            "--targets",
+            "attn.q",
+        ])
+        .current_dir(dir.path())
+        .env("SWITCHYARD_KERNELS", "avx1024")
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.contains("SWITCHYARD_KERNELS=\"avx1024\"")
+            && stderr.contains("portable, avx2, avx512, avx512-bf16"),
+        "{stderr}"
+    );
+}

@@ -14,8 +14,13 @@ const MAX_INPUT_TOKENS: usize = 40;
 
 fn small_limits() -> Server {
     ServerSetup::encoder()
-        .set("limits", "max_body_bytes", &MAX_BODY_BYTES.to_string())
-        .set("limits", "max_input_tokens", &MAX_INPUT_TOKENS.to_string())
+        .set(
+            "bounds",
+            "inference_body_bytes",
+            &MAX_BODY_BYTES.to_string(),
+        )
+        .set("bounds", "upload_body_bytes", &MAX_BODY_BYTES.to_string())
+        .set("bounds", "prompt_tokens", &MAX_INPUT_TOKENS.to_string())
         .start()
 }
 
@@ -64,16 +69,7 @@ fn malformed_json_is_400_malformed_json_and_the_server_then_answers_normally() {
             &b"{\"adapter\": \"base\", \"texts\": [\"a"[..],
         ),
         ("a body that is not JSON", "application/json", b"texts=a"),
-        (
-            "a field of the wrong type",
-            "application/json",
-            br#"{"adapter": "base", "texts": "a"}"#,
-        ),
-        (
-            "an unknown field",
-            "application/json",
-            br#"{"adapter": "base", "texts": ["a"], "txets": 1}"#,
-        ),
+        ("an empty body", "application/json", b""),
         (
             "JSON without its content type",
             "text/plain",
@@ -86,7 +82,42 @@ fn malformed_json_is_400_malformed_json_and_the_server_then_answers_normally() {
 }
 
 #[test]
-fn unknown_adapter_and_unknown_split_are_404_unknown_target_and_the_server_then_answers_normally() {
+fn a_field_of_the_wrong_type_is_400_invalid_field_named_in_plain_words() {
+    let reference = EmbeddingReference::load();
+    let server = small_limits();
+    for (what, body, says) in [
+        (
+            "texts as text",
+            &br#"{"adapter": "base", "texts": "a"}"#[..],
+            "field `texts`: expected a list, found the text \"a\"",
+        ),
+        (
+            "an unknown field",
+            br#"{"adapter": "base", "texts": ["a"], "txets": 1}"#,
+            "`txets` is not a field of this request",
+        ),
+        (
+            "a missing field",
+            br#"{"adapter": "base"}"#,
+            "field `texts` is missing",
+        ),
+    ] {
+        let bad = post_raw(&server, "/embed", "application/json", body);
+        let message = bad.json()["error"]["message"]
+            .as_str()
+            .unwrap_or_default()
+            .to_owned();
+        assert!(message.contains(says), "{what}: {message}");
+        assert!(
+            !message.contains("usize") && !message.contains("alloc::"),
+            "{what}: no Rust type names: {message}"
+        );
+        refused_then_served(&server, &reference, what, bad, 400, "invalid_field");
+    }
+}
+
+#[test]
+fn unknown_adapter_is_404_unknown_target_and_unknown_split_404_unknown_split() {
     let reference = EmbeddingReference::load();
     let server = small_limits();
     let bad = server.embed(json!({"adapter": "north-nowhere"}), &["a"]);
@@ -105,7 +136,7 @@ fn unknown_adapter_and_unknown_split_are_404_unknown_target_and_the_server_then_
         "an unknown split",
         bad,
         404,
-        "unknown_target",
+        "unknown_split",
     );
 }
 

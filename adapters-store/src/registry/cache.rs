@@ -2,10 +2,11 @@
 //!
 //! An entry is *held* while anyone besides the cache owns a clone of its `Arc` (strong count
 //! above one). A held entry is never evicted: memory a request still uses is not the cache's to
-//! free. The budget bounds what is left, the bytes of entries nobody holds; [`ByteLru::trim`]
-//! restores that bound by dropping stale entries (versions no longer live) first, then the least
-//! recently used ones, skipping pinned entries. The cache is a plain map; the registry calls it
-//! under its one state lock.
+//! free. The budget bounds every byte the tier holds, held or not: [`ByteLru::room_for`] says
+//! whether a new entry fits once everything evictable is gone (the registry refuses a load that
+//! would not), and [`ByteLru::trim`] restores the bound by dropping stale entries (versions no
+//! longer live) first, then the least recently used ones, skipping held and pinned entries. The
+//! cache is a plain map; the registry calls it under its one state lock.
 
 use std::collections::HashMap;
 use std::sync::Arc;
@@ -112,8 +113,21 @@ impl<T> ByteLru<T> {
         }
     }
 
-    /// Removes entries nobody holds until the unheld bytes fit the budget: stale entries always,
-    /// then the least recently used entry that is not pinned, repeatedly. Returns what it removed.
+    /// Whether an entry of `bytes` fits the budget beside what cannot be evicted (held or
+    /// pinned entries), were everything else evicted.
+    pub(crate) fn room_for(&self, bytes: usize, pinned: impl Fn(&Key) -> bool) -> bool {
+        let kept: usize = self
+            .entries
+            .iter()
+            .filter(|(k, e)| e.held() || pinned(k))
+            .map(|(_, e)| e.bytes)
+            .sum();
+        kept.saturating_add(bytes) <= self.budget
+    }
+
+    /// Removes entries nobody holds until the tier's bytes fit the budget: stale entries always,
+    /// then the least recently used entry that is neither held nor pinned, repeatedly. Returns
+    /// what it removed.
     pub(crate) fn trim(&mut self, pinned: impl Fn(&Key) -> bool) -> Vec<(Key, usize, Removal)> {
         let mut removed = Vec::new();
         let stale: Vec<Key> = self
@@ -126,13 +140,8 @@ impl<T> ByteLru<T> {
             let e = self.entries.remove(&key).expect("listed above");
             removed.push((key, e.bytes, Removal::Freed));
         }
-        let mut unheld: usize = self
-            .entries
-            .values()
-            .filter(|e| !e.held())
-            .map(|e| e.bytes)
-            .sum();
-        if unheld <= self.budget {
+        let mut total: usize = self.entries.values().map(|e| e.bytes).sum();
+        if total <= self.budget {
             return removed;
         }
         let mut candidates: Vec<(u64, Key)> = self
@@ -143,11 +152,11 @@ impl<T> ByteLru<T> {
             .collect();
         candidates.sort();
         for (_, key) in candidates {
-            if unheld <= self.budget {
+            if total <= self.budget {
                 break;
             }
             let e = self.entries.remove(&key).expect("listed above");
-            unheld -= e.bytes;
+            total -= e.bytes;
             removed.push((key, e.bytes, Removal::Evicted));
         }
         removed
@@ -202,15 +211,37 @@ mod tests {
         lru.insert(key("c", "1"), Arc::new(3), 10, 3, false);
         let held = lru.get(&key("a", "1"), 4).unwrap();
         lru.insert(key("d", "1"), Arc::new(4), 10, 5, false);
-        // Unheld: b, c, d = 30 > 25. `a` is held (and now most recent), `b` is pinned, so `c`
-        // (least recent of the rest) goes.
+        // All of a, b, c, d = 40 > 25. `a` is held (and now most recent), `b` is pinned, so `c`
+        // and then `d` (least recent of the rest) go, leaving a + b = 20.
         let removed = lru.trim(|k| k.0.as_str() == "b");
-        assert_eq!(removed, vec![(key("c", "1"), 10, Removal::Evicted)]);
-        assert_eq!(lru.residency(|_| false).unheld_bytes(), 20);
+        assert_eq!(
+            removed,
+            vec![
+                (key("c", "1"), 10, Removal::Evicted),
+                (key("d", "1"), 10, Removal::Evicted)
+            ]
+        );
+        assert_eq!(lru.residency(|_| false).bytes, 20);
         drop(held);
-        // Now a, b, d unheld = 30: `a` (tick 4) is older than `d` (tick 5).
+        lru.insert(key("e", "1"), Arc::new(5), 10, 6, false);
+        // Now a, b, e = 30: `a` (tick 4) is older than `e` (tick 6).
         let removed = lru.trim(|k| k.0.as_str() == "b");
         assert_eq!(removed, vec![(key("a", "1"), 10, Removal::Evicted)]);
+    }
+
+    #[test]
+    fn budget_bounds_held_bytes_too() {
+        let mut lru: ByteLru<u8> = ByteLru::new(25);
+        lru.insert(key("a", "1"), Arc::new(1), 10, 1, false);
+        lru.insert(key("b", "1"), Arc::new(2), 10, 2, false);
+        assert!(lru.room_for(15, |_| false), "both unheld: evictable");
+        let held_a = lru.get(&key("a", "1"), 3).unwrap();
+        let held_b = lru.get(&key("b", "1"), 4).unwrap();
+        assert!(lru.room_for(5, |_| false));
+        assert!(!lru.room_for(6, |_| false), "20 held + 6 > 25");
+        drop((held_a, held_b));
+        assert!(lru.room_for(25, |_| false));
+        assert!(!lru.room_for(20, |k| k.0.as_str() == "a"), "a is pinned");
     }
 
     #[test]

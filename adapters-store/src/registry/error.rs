@@ -32,6 +32,16 @@ pub enum RegistryError {
         needed: usize,
         budget: usize,
     },
+    #[error(
+        "{id} needs {needed} bytes of {tier} memory, but requests in flight and pins hold {kept} of the {budget}-byte budget; retry shortly"
+    )]
+    TierFull {
+        id: String,
+        tier: &'static str,
+        needed: usize,
+        kept: usize,
+        budget: usize,
+    },
     #[error("loading {id} panicked")]
     Panicked { id: String },
 }
@@ -62,6 +72,11 @@ impl RegistryError {
                 StoreError::UnknownAdapter { .. } | StoreError::UnknownVersion { .. }
             )
         )
+    }
+
+    /// The tier's budget is held by versions in use: a retry after they finish may succeed.
+    pub fn is_tier_full(&self) -> bool {
+        matches!(self, RegistryError::TierFull { .. })
     }
 
     /// The package refusal behind this error, if it is one.

@@ -17,6 +17,8 @@ pub struct Handle<T> {
     name: AdapterName,
     version: String,
     value: Option<Arc<T>>,
+    /// The version was resident when this handle was asked for (a cache hit).
+    hit: bool,
     registry: Arc<Inner>,
 }
 
@@ -31,14 +33,22 @@ impl<T> Handle<T> {
         name: AdapterName,
         version: String,
         value: Arc<T>,
+        hit: bool,
         registry: Arc<Inner>,
     ) -> Self {
         Self {
             name,
             version,
             value: Some(value),
+            hit,
             registry,
         }
+    }
+
+    /// Whether the version was already resident when the handle was resolved (a cache hit), or
+    /// had to be loaded or built for it (a miss, also when it waited on another caller's load).
+    pub fn was_resident(&self) -> bool {
+        self.hit
     }
 
     pub fn name(&self) -> &AdapterName {
@@ -88,6 +98,7 @@ impl<T> Clone for Handle<T> {
             name: self.name.clone(),
             version: self.version.clone(),
             value: self.value.clone(),
+            hit: self.hit,
             registry: self.registry.clone(),
         }
     }

@@ -13,7 +13,8 @@ use serde_json::json;
 use switchyard_adapters::{LowRank, Module, params};
 
 use crate::commands::adapter::base::{
-    KNOWN_MODEL_TYPES, grouped, human_bytes, model_type, parse_bytes, read_config,
+    KNOWN_MODEL_TYPES, grouped, human_bytes, human_bytes_as_given, model_type, parse_bytes,
+    read_config,
 };
 
 /// A comma-separated target list, as one flag value.
@@ -240,7 +241,7 @@ pub fn run(args: &PlanArgs, mut out: impl Write) -> anyhow::Result<()> {
         writeln!(
             out,
             "budget {} ({} bytes):",
-            human_bytes(budget),
+            human_bytes_as_given(budget),
             grouped(budget)
         )?;
         writeln!(
@@ -281,7 +282,24 @@ mod tests {
         assert_eq!(p.factor_parameters, 4_194_304);
         assert_eq!(p.full_update_parameters, 268_435_456);
         assert_eq!(p.merged_bytes, 268_435_456 * 4);
-        assert!(p.unmerged_bytes >= p.factor_parameters * 4);
+        assert_eq!(p.unmerged_bytes, p.factor_parameters * 4);
+    }
+
+    /// The low-rank factors were held with A padded to 16 rows, so a rank-8 adapter held 1.5x
+    /// its bytes and a rank-4 one 2.5x, and the plan reported that; the factors now hold
+    /// exactly r * (in + out) f32 values, and the plan says so.
+    #[test]
+    fn low_rank_factors_below_rank_sixteen_are_planned_without_padding() {
+        let bert = config(
+            r#"{"model_type":"bert","hidden_size":384,"intermediate_size":1536,"num_hidden_layers":6}"#,
+        );
+        let targets = Module::parse_list("attn.q,attn.v,mlp.up").unwrap();
+        for rank in [1, 4, 8, 12, 20] {
+            let p = plan(&bert, rank, &targets).unwrap();
+            // 6 layers x (q: 384 + 384, v: 384 + 384, up: 384 + 1536) x rank, 4 bytes each.
+            assert_eq!(p.factor_parameters, 6 * (768 + 768 + 1920) * rank as u64);
+            assert_eq!(p.unmerged_bytes, p.factor_parameters * 4, "rank {rank}");
+        }
     }
 
     #[test]

@@ -22,7 +22,7 @@ use crate::engine::{Backbone, Engine, EngineConfig};
 use crate::http::auth::{Tenants, tenant_limits};
 use crate::http::error::ApiError;
 use crate::http::splits::SplitBook;
-use crate::http::{AppState, RequestLimits, SharedState, router};
+use crate::http::{AppState, Bounds, SharedState, router};
 use crate::metrics::Metrics;
 use crate::model::embedder::Embedder;
 use crate::model::generator::Generator;
@@ -64,13 +64,32 @@ fn base_weight(
 fn init_logging(settings: &Settings) {
     let filter = tracing_subscriber::EnvFilter::try_new(&settings.log_filter)
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    // Colour codes only on a terminal: in a log file or a collector they are noise.
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_writer(std::io::stderr);
     let _ = match settings.log_format {
         LogFormat::Json => builder.json().try_init(),
         LogFormat::Human => builder.try_init(),
     };
+}
+
+/// One request in flight: counted while it lives, so a client that disconnects (dropping the
+/// handler's future at an await) still leaves the count.
+struct InFlight(Arc<AtomicUsize>);
+
+impl InFlight {
+    fn enter(count: &Arc<AtomicUsize>) -> Self {
+        count.fetch_add(1, Ordering::SeqCst);
+        Self(count.clone())
+    }
+}
+
+impl Drop for InFlight {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::SeqCst);
+    }
 }
 
 /// Counts requests in flight, and refuses new work once shutdown has begun.
@@ -90,10 +109,8 @@ async fn track(
         )
         .into_response();
     }
-    inflight.fetch_add(1, Ordering::SeqCst);
-    let resp = next.run(req).await;
-    inflight.fetch_sub(1, Ordering::SeqCst);
-    resp
+    let _counted = InFlight::enter(&inflight);
+    next.run(req).await
 }
 
 pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
@@ -131,7 +148,8 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         })),
     );
     let watcher = registry.start_watcher(Duration::from_millis(250));
-    let metrics = Arc::new(Metrics::new());
+    let vital_threads = vec![("store watcher", watcher.alive())];
+    let metrics = Arc::new(Metrics::new(settings.metrics_adapter_series));
     {
         let events = registry.subscribe(1024);
         let metrics = metrics.clone();
@@ -165,16 +183,20 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         registry,
         tenants: Tenants::new(&settings.tenants),
         admin_token: settings.admin_token.clone(),
+        metrics_public: settings.metrics_public,
         metrics,
         splits,
-        limits: RequestLimits {
-            max_body_bytes: settings.max_body_bytes,
-            max_input_tokens: settings.max_input_tokens,
-            max_output_tokens: settings.max_output_tokens,
-            max_texts: settings.max_texts_per_request,
+        bounds: Bounds {
+            inference_body_bytes: settings.inference_body_bytes,
+            upload_body_bytes: settings.upload_body_bytes,
+            text_bytes: settings.text_bytes,
+            prompt_tokens: settings.prompt_tokens,
+            generated_tokens: settings.generated_tokens,
+            texts_per_request: settings.texts_per_request,
             timeout: Duration::from_millis(settings.request_timeout_ms),
         },
         ready: AtomicBool::new(true),
+        vital_threads,
     });
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)

@@ -203,7 +203,7 @@ pub fn run(args: &TourArgs, out: &mut impl Write) -> anyhow::Result<()> {
     classify_each(&client, &creds, out)?;
     let (old, new) = flip_live(&client, &creds, args, out)?;
     split_readout(&client, &creds, args, &old, &new, out)?;
-    show_metrics(&client, out)?;
+    show_metrics(&client, &creds, out)?;
     writeln!(
         out,
         "\nThe tour is done; every step got the answer it expected."
@@ -261,7 +261,7 @@ fn classify_each(client: &Client, creds: &Credentials, out: &mut impl Write) -> 
             result["label"].as_str().unwrap_or("?"),
             shown.join(", "),
             v["served_by"].as_str().unwrap_or("?"),
-            v["timings"]["swap_ms"]
+            v["elapsed_ms"]["swap"]
         )?;
     }
     if let Some((tenant, key)) = &creds.other {
@@ -518,9 +518,9 @@ fn parse_sample(line: &str) -> Option<(&str, BTreeMap<&str, &str>, f64)> {
 }
 
 /// Step 4: what swapping cost and what memory is held, from `/metrics`.
-fn show_metrics(client: &Client, out: &mut impl Write) -> anyhow::Result<()> {
+fn show_metrics(client: &Client, creds: &Credentials, out: &mut impl Write) -> anyhow::Result<()> {
     heading(out, "what swapping cost, from /metrics")?;
-    let reply = client.call("GET", "/metrics", None, None)?;
+    let reply = client.call("GET", "/metrics", Some(&creds.admin), None)?;
     ensure!(reply.status == 200, "/metrics answered {}", reply.status);
     let mut sums: BTreeMap<String, (f64, f64)> = BTreeMap::new();
     let mut resident: Vec<(String, f64)> = Vec::new();

@@ -15,10 +15,12 @@
 //! the next step, every live sequence advances one token per step, and a sequence whose client
 //! went away is dropped with its KV cache at the next step.
 
+pub mod detok;
 pub mod policy;
 pub mod queue;
 pub mod quota;
 
+use std::panic::AssertUnwindSafe;
 use std::sync::Arc;
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
@@ -35,6 +37,7 @@ use crate::model::linear::RowAdapters;
 use crate::model::llama::KvCache;
 use crate::model::rows_for_sequences;
 use crate::model::sampling::{Sampler, SamplingParams};
+use detok::Detokenizer;
 use policy::PromotionPolicy;
 use queue::{Budget, Cost, FairQueue, QueueLimits, Refused};
 use quota::{Permit, QuotaRefusal, Quotas};
@@ -192,10 +195,14 @@ pub enum GenEvent {
     },
     Done {
         finish: &'static str,
+        /// The whole output decoded at once: what the non-streamed answer returns.
+        text: String,
         /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
         /// back in case the next token completed it (usually empty).
         tail: String,
         prompt_tokens: usize,
+        /// Tokens generated, not counting an end-of-sequence token (which is not part of the
+        /// output): the length of the answer's `token_ids`.
         output_tokens: usize,
         timings: Timings,
     },
@@ -361,6 +368,11 @@ impl Engine {
         Err(self.refused(lane, e))
     }
 
+    /// Whether the engine thread is alive (readiness turns 503 if it is not).
+    pub fn is_running(&self) -> bool {
+        self.thread.as_ref().is_some_and(|t| !t.is_finished())
+    }
+
     /// Jobs waiting for the engine thread.
     pub fn queued(&self) -> usize {
         self.queue.len()
@@ -468,8 +480,15 @@ impl Worker {
                     }
                 }
             }
-            if !batch.is_empty() {
-                self.run_embed_batch(e, batch);
+            // A panic in one batch (a bug in model code) fails that batch's requests, whose
+            // reply channels drop, and the engine goes on with the next.
+            if !batch.is_empty()
+                && std::panic::catch_unwind(AssertUnwindSafe(|| self.run_embed_batch(e, batch)))
+                    .is_err()
+            {
+                tracing::error!(
+                    "an embedding batch panicked; its requests failed, the engine goes on"
+                );
             }
         }
     }
@@ -583,7 +602,7 @@ impl Worker {
                 self.took();
             }
             for job in jobs {
-                self.admit(g, job, &mut live, &eos);
+                self.admit_guarded(g, job, &mut live, &eos);
             }
             // Drop sequences whose client went away, or whose deadline passed.
             let now = Instant::now();
@@ -592,7 +611,7 @@ impl Worker {
                     tracing::debug!("client disconnected; generation stopped and its cache freed");
                     false
                 } else if now > s.job.deadline {
-                    s.finish("deadline", g, &eos, &self.metrics);
+                    s.finish("deadline", g, &self.metrics);
                     false
                 } else {
                     true
@@ -601,7 +620,22 @@ impl Worker {
             if live.is_empty() {
                 continue;
             }
-            self.decode_step(g, &mut live, &eos);
+            if std::panic::catch_unwind(AssertUnwindSafe(|| self.decode_step(g, &mut live, &eos)))
+                .is_err()
+            {
+                tracing::error!(
+                    sequences = live.len(),
+                    "a decode step panicked; its sequences failed, the engine goes on"
+                );
+                live.clear();
+            }
+        }
+    }
+
+    /// [`Worker::admit`], with a panic in the prefill failing only that request.
+    fn admit_guarded(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>, eos: &[u32]) {
+        if std::panic::catch_unwind(AssertUnwindSafe(|| self.admit(g, job, live, eos))).is_err() {
+            tracing::error!("a prefill panicked; its request failed, the engine goes on");
         }
     }
 
@@ -625,7 +659,8 @@ impl Worker {
         let mut seq = Sequence {
             cache: g.model().new_cache(),
             sampler: Sampler::new(job.sampling),
-            out: Vec::new(),
+            last: 0,
+            detok: Detokenizer::new(),
             sent_text: String::new(),
             started,
             first_token: None,
@@ -655,10 +690,7 @@ impl Worker {
 
     fn decode_step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
         let _span = tracing::trace_span!("decode_step", rows = live.len()).entered();
-        let tokens: Vec<[u32; 1]> = live
-            .iter()
-            .map(|s| [*s.out.last().expect("one token at admission")])
-            .collect();
+        let tokens: Vec<[u32; 1]> = live.iter().map(|s| [s.last]).collect();
         let token_refs: Vec<&[u32]> = tokens.iter().map(|t| t.as_slice()).collect();
         let first_key = adapter_key(&live[0].job.adapter);
         let uniform = live
@@ -714,7 +746,10 @@ struct Sequence {
     job: GenerateJob,
     cache: KvCache,
     sampler: Sampler,
-    out: Vec<u32>,
+    /// The token sampled last: the input of the next step.
+    last: u32,
+    /// The output so far (end-of-sequence token excluded) and its streamed text.
+    detok: Detokenizer,
     sent_text: String,
     started: Instant,
     first_token: Option<Duration>,
@@ -730,63 +765,42 @@ impl Sequence {
         }
         metrics.generated_tokens.inc();
         self.job.ticket.permit.spend(1);
-        let is_eos = eos.contains(&token);
-        if !is_eos {
-            self.out.push(token);
-            let text = g.decode(&self.out).unwrap_or_default();
-            // Hold back a trailing partial character until the next token completes it.
-            let ready = if text.ends_with('\u{FFFD}') {
-                ""
-            } else {
-                text.as_str()
-            };
-            let delta = if ready.starts_with(&self.sent_text) {
-                ready[self.sent_text.len()..].to_owned()
-            } else {
-                String::new()
-            };
-            if !ready.is_empty() && ready.starts_with(&self.sent_text) {
-                self.sent_text = ready.to_owned();
-            }
-            if self
-                .job
-                .events
-                .send(GenEvent::Token {
-                    id: token,
-                    text: delta,
-                })
-                .is_err()
-            {
-                return false;
-            }
-        } else {
-            self.out.push(token);
-        }
-        if is_eos {
-            self.finish("eos", g, eos, metrics);
+        self.last = token;
+        if eos.contains(&token) {
+            self.finish("eos", g, metrics);
             return false;
         }
-        if self.out.len() >= self.job.limit {
-            self.finish("limit", g, eos, metrics);
+        let decode = |ids: &[u32]| g.decode(ids).unwrap_or_default();
+        let delta = self.detok.push(token, &decode);
+        self.sent_text.push_str(&delta);
+        if self
+            .job
+            .events
+            .send(GenEvent::Token {
+                id: token,
+                text: delta,
+            })
+            .is_err()
+        {
+            return false;
+        }
+        if self.detok.ids().len() >= self.job.limit {
+            self.finish("limit", g, metrics);
             return false;
         }
         true
     }
 
-    fn finish(&self, reason: &'static str, g: &Generator, eos: &[u32], metrics: &Metrics) {
+    fn finish(&self, reason: &'static str, g: &Generator, metrics: &Metrics) {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
-        let kept: Vec<u32> = self
-            .out
-            .iter()
-            .copied()
-            .filter(|t| !eos.contains(t))
-            .collect();
+        let text = g.decode(self.detok.ids()).unwrap_or_default();
         let _ = self.job.events.send(GenEvent::Done {
             finish: reason,
-            tail: unsent_tail(&g.decode(&kept).unwrap_or_default(), &self.sent_text),
+            tail: unsent_tail(&text, &self.sent_text),
+            text,
             prompt_tokens: self.job.prompt_ids.len(),
-            output_tokens: self.out.len(),
+            output_tokens: self.detok.ids().len(),
             timings: Timings {
                 queue: self
                     .started

@@ -86,13 +86,24 @@ pub async fn upload(
             .map_err(store_error)
     })
     .await?;
-    tracing::info!(adapter = %published.name, version = %published.version, "version published and live");
+    if published.unchanged {
+        tracing::info!(adapter = %published.name, version = %published.version, "upload was the live version already; nothing changed");
+    } else {
+        tracing::info!(adapter = %published.name, version = %published.version, "version published and live");
+    }
+    // An identical re-upload changes nothing: 200 and `unchanged`, not 201.
+    let status = if published.unchanged {
+        StatusCode::OK
+    } else {
+        StatusCode::CREATED
+    };
     Ok((
-        StatusCode::CREATED,
+        status,
         Json(json!({
             "name": published.name.as_str(),
             "version": published.version,
             "live": true,
+            "unchanged": published.unchanged,
             "replaced": published.replaced,
         })),
     ))

@@ -1,5 +1,7 @@
 //! The one API error type: every way a request is refused maps to a status and a stable
-//! machine code, and leaves as `{"error": {"code": "...", "message": "..."}}`.
+//! machine code, and leaves as `{"error": {"code": "...", "message": "..."}}`. A server-side
+//! failure (5xx) also carries an `id` that the server's log line for it repeats, so an operator
+//! can find the details (which may name files on the server) that the client is not shown.
 
 use axum::Json;
 use axum::http::{HeaderValue, StatusCode, header};
@@ -15,6 +17,8 @@ pub struct ApiError {
     pub code: &'static str,
     pub message: String,
     pub retry_after_s: Option<u32>,
+    /// Set on server-side failures; logged with the failure.
+    pub id: Option<String>,
 }
 
 impl ApiError {
@@ -24,7 +28,14 @@ impl ApiError {
             code,
             message: message.into(),
             retry_after_s: None,
+            id: None,
         }
+    }
+
+    /// Adds `Retry-After: seconds` to the answer.
+    pub fn retry_after(mut self, seconds: u32) -> Self {
+        self.retry_after_s = Some(seconds);
+        self
     }
 
     pub fn bad_request(code: &'static str, message: impl Into<String>) -> Self {
@@ -39,8 +50,35 @@ impl ApiError {
         Self::new(StatusCode::CONFLICT, code, message)
     }
 
-    pub fn internal(message: impl Into<String>) -> Self {
-        Self::new(StatusCode::INTERNAL_SERVER_ERROR, "internal", message)
+    /// A server-side failure. `detail` goes to the log with the error's id; the client sees
+    /// only that id and a generic message, since details can name server paths.
+    pub fn internal(detail: impl Into<String>) -> Self {
+        let id = crate::http::inference::new_error_id();
+        tracing::error!(id, detail = detail.into(), "internal error");
+        Self::internal_with_id(
+            &id,
+            "the server failed to answer this request; it keeps serving",
+        )
+    }
+
+    /// A server-side failure already logged under `id`.
+    pub fn internal_with_id(id: &str, message: &str) -> Self {
+        Self {
+            id: Some(id.to_owned()),
+            ..Self::new(
+                StatusCode::INTERNAL_SERVER_ERROR,
+                "internal",
+                format!("{message} (error id {id})"),
+            )
+        }
+    }
+
+    /// An unknown split, worded the same whether it exists for another tenant or not.
+    pub fn unknown_split(name: &str) -> Self {
+        Self::not_found(
+            "unknown_split",
+            format!("no split named {name:?} is available to this key"),
+        )
     }
 
     /// An unknown adapter or split, worded the same whether it exists for another tenant or not.
@@ -103,7 +141,11 @@ impl From<EngineError> for ApiError {
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let body = json!({"error": {"code": self.code, "message": self.message}});
+        let mut error = json!({"code": self.code, "message": self.message});
+        if let Some(id) = &self.id {
+            error["id"] = json!(id);
+        }
+        let body = json!({ "error": error });
         let mut resp = (self.status, Json(body)).into_response();
         if let Some(s) = self.retry_after_s {
             resp.headers_mut().insert(

@@ -7,22 +7,21 @@ use std::convert::Infallible;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use axum::Json;
 use axum::extract::State;
-use axum::http::HeaderMap;
+use axum::http::StatusCode;
 use axum::response::sse::{Event, KeepAlive, Sse};
 use axum::response::{IntoResponse, Response};
+use axum::{Extension, Json};
 use serde::Deserialize;
 use serde_json::{Value, json};
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
-use crate::engine::{Backbone, EmbedJob, EngineError, GenEvent, GenerateJob, Job, Ticket, Timings};
-use crate::http::SharedState;
+use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
-use crate::http::splits::authorization;
+use crate::http::{Bounds, SharedState};
 use crate::model::sampling::SamplingParams;
 
 /// Who serves a request, fixed at admission.
@@ -33,27 +32,61 @@ pub struct Routed {
     pub swap: Duration,
 }
 
-pub fn new_response_id() -> String {
+fn random_id(prefix: &str) -> String {
     use rand::Rng;
     let n: u128 = rand::rng().random();
-    format!("r-{:024x}", n & ((1u128 << 96) - 1))
+    format!("{prefix}-{:024x}", n & ((1u128 << 96) - 1))
 }
 
+/// The id of an answer (`r-` and 24 hex digits), which `/outcomes` refers back to.
+pub fn new_response_id() -> String {
+    random_id("r")
+}
+
+/// The id of a server-side failure (`e-` and 24 hex digits), shown to the client and logged.
+pub fn new_error_id() -> String {
+    random_id("e")
+}
+
+/// A registry failure as a tenant may see it. Details such as the package's file on the server
+/// go to the log only (with the error id), never into the answer.
 fn registry_error(e: RegistryError, name: &str) -> ApiError {
     if e.is_unknown_adapter() {
         return ApiError::unknown_target("adapter", name);
     }
-    if e.package_error().is_some() {
+    if e.is_tier_full() {
+        tracing::warn!(adapter = name, error = %e, "adapter memory full");
         return ApiError::new(
-            axum::http::StatusCode::UNPROCESSABLE_ENTITY,
-            "invalid_package",
-            e.to_string(),
-        );
+            StatusCode::SERVICE_UNAVAILABLE,
+            "memory_full",
+            "the adapter memory budget is held by requests in flight; retry shortly",
+        )
+        .retry_after(1);
+    }
+    if e.package_error().is_some() {
+        let id = new_error_id();
+        tracing::error!(id, adapter = name, error = %e, "a stored version failed validation");
+        return ApiError {
+            id: Some(id.clone()),
+            ..ApiError::new(
+                StatusCode::UNPROCESSABLE_ENTITY,
+                "invalid_package",
+                format!(
+                    "the stored version of adapter {name:?} failed validation and cannot serve; an operator can find why in the server log under error id {id}"
+                ),
+            )
+        };
     }
     match e {
-        RegistryError::Name(_) => ApiError::bad_request("invalid_name", e.to_string()),
+        RegistryError::Name(n) => ApiError::bad_request("invalid_name", n.to_string()),
         other => ApiError::internal(other.to_string()),
     }
+}
+
+/// Refuses an adapter the tenant may not use. Through a split the answer names only the split:
+/// which adapter an arm serves is the operator's business, not something to show a tenant.
+fn forbidden(what: String) -> ApiError {
+    ApiError::new(StatusCode::FORBIDDEN, "forbidden_target", what)
 }
 
 /// Resolves the request's adapter or split for `tenant`, refusing what the tenant may not use
@@ -85,16 +118,17 @@ async fn route(
         (Some(a), None) => (a.to_owned(), None, None),
         (None, Some(s)) => {
             if !tenant.may_use(s) {
-                return Err(ApiError::new(
-                    axum::http::StatusCode::FORBIDDEN,
-                    "forbidden_target",
-                    format!("this key may not use split {s:?}"),
-                ));
+                return Err(forbidden(format!("this key may not use split {s:?}")));
             }
             let (index, arm) = state
                 .splits
                 .assign(s, subject)
-                .ok_or_else(|| ApiError::unknown_target("split", s))?;
+                .ok_or_else(|| ApiError::unknown_split(s))?;
+            if arm.adapter != "base" && !tenant.may_use(&arm.adapter) {
+                return Err(forbidden(format!(
+                    "split {s:?} sent this request to an arm this key may not use; ask the operator to fix the split"
+                )));
+            }
             state.splits.remember(response_id, s, index);
             state
                 .metrics
@@ -120,15 +154,10 @@ async fn route(
         });
     }
     if !tenant.may_use(&name) {
-        return Err(ApiError::new(
-            axum::http::StatusCode::FORBIDDEN,
-            "forbidden_target",
-            format!("this key may not use adapter {name:?}"),
-        ));
+        return Err(forbidden(format!("this key may not use adapter {name:?}")));
     }
     let registry = state.registry.clone();
     let start = Instant::now();
-    let loads_before = registry.load_count();
     let lookup = name.clone();
     let handle = tokio::task::spawn_blocking(move || match version {
         Some(v) => registry.resolve_version(&lookup, &v),
@@ -137,11 +166,7 @@ async fn route(
     .await
     .map_err(|e| ApiError::internal(format!("resolving the adapter: {e}")))?
     .map_err(|e| registry_error(e, &name))?;
-    let outcome = if state.registry.load_count() > loads_before {
-        "miss"
-    } else {
-        "hit"
-    };
+    let outcome = if handle.was_resident() { "hit" } else { "miss" };
     state
         .metrics
         .cache_event(switchyard_adapters::events::Tier::Factors, outcome);
@@ -204,7 +229,7 @@ async fn admit(
         adapter: routed.handle.clone(),
         admitted,
         swap: routed.swap,
-        deadline: admitted + state.limits.timeout,
+        deadline: admitted + state.bounds.timeout,
     }))?;
     Ok(routed)
 }
@@ -213,10 +238,11 @@ fn ms(d: Duration) -> f64 {
     (d.as_secs_f64() * 1e6).round() / 1e3
 }
 
-fn timings_json(t: &Timings) -> Value {
-    let mut v = json!({"queue_ms": ms(t.queue), "swap_ms": ms(t.swap), "total_ms": ms(t.total)});
+/// The `elapsed_ms` object of an answer: where the request's time went, in milliseconds.
+fn elapsed_json(t: &Timings) -> Value {
+    let mut v = json!({"queue": ms(t.queue), "swap": ms(t.swap), "total": ms(t.total)});
     if let Some(f) = t.first_token {
-        v["first_token_ms"] = json!(ms(f));
+        v["first_token"] = json!(ms(f));
     }
     v
 }
@@ -257,6 +283,60 @@ pub struct EmbedBody {
     pub texts: Vec<String>,
 }
 
+fn too_large(code: &'static str, message: String) -> ApiError {
+    ApiError::new(StatusCode::PAYLOAD_TOO_LARGE, code, message)
+}
+
+/// Refuses a text over the byte bound before any tokenizer time is spent on it.
+fn check_text_bytes(bounds: &Bounds, field: &str, text: &str) -> Result<(), ApiError> {
+    let limit = bounds.text_bytes;
+    if text.len() > limit {
+        return Err(too_large(
+            "text_too_large",
+            format!(
+                "{field} is {} bytes; the limit is {limit} bytes",
+                text.len()
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// Runs the tokenizer on the blocking pool: a long text must not hold an async worker (and with
+/// it health checks and every other request on that worker).
+async fn off_the_runtime<T: Send + 'static>(
+    f: impl FnOnce() -> anyhow::Result<T> + Send + 'static,
+) -> Result<T, ApiError> {
+    tokio::task::spawn_blocking(f)
+        .await
+        .map_err(|e| ApiError::internal(format!("tokenising task failed: {e}")))?
+        .map_err(|err| ApiError::bad_request("untokenizable", format!("{err:#}")))
+}
+
+impl EmbedBody {
+    /// The checks on the body alone, before anything is tokenised (the fuzz target
+    /// `http_bodies` runs them too): texts present, not too many, none over the byte bound.
+    pub fn check(&self, bounds: &Bounds) -> Result<(), ApiError> {
+        if self.texts.is_empty() {
+            return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
+        }
+        if self.texts.len() > bounds.texts_per_request {
+            return Err(too_large(
+                "too_many_texts",
+                format!(
+                    "{} texts in one request; the limit is {}",
+                    self.texts.len(),
+                    bounds.texts_per_request
+                ),
+            ));
+        }
+        for (i, text) in self.texts.iter().enumerate() {
+            check_text_bytes(bounds, &format!("texts[{i}]"), text)?;
+        }
+        Ok(())
+    }
+}
+
 fn encoder(state: &SharedState, endpoint: &str) -> Result<(), ApiError> {
     match &*state.backbone {
         Backbone::Encoder(_) => Ok(()),
@@ -271,52 +351,40 @@ fn encoder(state: &SharedState, endpoint: &str) -> Result<(), ApiError> {
 
 async fn run_embed(
     state: &SharedState,
-    headers: &HeaderMap,
+    tenant: &Tenant,
     body: EmbedBody,
     endpoint: &str,
     id: &str,
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
-    let tenant = state.tenants.authenticate(authorization(headers))?;
     encoder(state, endpoint)?;
-    if body.texts.is_empty() {
-        return Err(ApiError::bad_request("no_texts", "field `texts` is empty"));
-    }
-    if body.texts.len() > state.limits.max_texts {
-        return Err(ApiError::new(
-            axum::http::StatusCode::PAYLOAD_TOO_LARGE,
-            "too_many_texts",
-            format!(
-                "{} texts in one request; the limit is {}",
-                body.texts.len(),
-                state.limits.max_texts
-            ),
-        ));
-    }
-    let Backbone::Encoder(e) = &*state.backbone else {
-        unreachable!()
-    };
-    let refs: Vec<&str> = body.texts.iter().map(String::as_str).collect();
-    let (ids, counts) = e
-        .tokenize_counted(&refs)
-        .map_err(|err| ApiError::bad_request("untokenizable", format!("{err:#}")))?;
+    body.check(&state.bounds)?;
+    let backbone = state.backbone.clone();
+    let texts = body.texts;
+    let (ids, counts) = off_the_runtime(move || {
+        let Backbone::Encoder(e) = &*backbone else {
+            unreachable!("checked above")
+        };
+        let refs: Vec<&str> = texts.iter().map(String::as_str).collect();
+        e.tokenize_counted(&refs)
+    })
+    .await?;
     if let Some((i, n)) = counts
         .iter()
         .enumerate()
-        .find(|(_, n)| **n > state.limits.max_input_tokens)
+        .find(|(_, n)| **n > state.bounds.prompt_tokens)
     {
-        return Err(ApiError::new(
-            axum::http::StatusCode::PAYLOAD_TOO_LARGE,
+        return Err(too_large(
             "too_many_tokens",
             format!(
                 "texts[{i}] is {n} tokens; the limit is {}",
-                state.limits.max_input_tokens
+                state.bounds.prompt_tokens
             ),
         ));
     }
     let (reply, rx) = oneshot::channel();
     let target = Target::of(&body.adapter, &body.split, &body.subject);
     let tokens = ids.iter().map(|t| t.len() as u64).sum();
-    let routed = admit(state, &tenant, target, id, tokens, |a| {
+    let routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Embed(EmbedJob {
             ticket: a.ticket,
             ids,
@@ -328,21 +396,23 @@ async fn run_embed(
         })
     })
     .await?;
+    // The engine finishes every job it holds, also when shutting down; a reply that never
+    // comes means the batch failed inside the engine (logged there).
     let out = rx
         .await
-        .map_err(|_| ApiError::from(EngineError::ShuttingDown))??;
+        .map_err(|_| ApiError::internal("the engine dropped an embedding job"))??;
     Ok((routed, out))
 }
 
 /// `POST /embed`: one unit-length embedding per text.
 pub async fn embed(
     State(state): State<SharedState>,
-    headers: HeaderMap,
+    Extension(tenant): Extension<Arc<Tenant>>,
     ApiJson(body): ApiJson<EmbedBody>,
 ) -> Response {
     let start = Instant::now();
     let id = new_response_id();
-    match run_embed(&state, &headers, body, "embed", &id).await {
+    match run_embed(&state, &tenant, body, "embed", &id).await {
         Ok((routed, out)) => {
             finish(&state, "embed", &id, &routed.served_by, 200, start);
             Json(json!({
@@ -351,7 +421,7 @@ pub async fn embed(
                 "split": arm_json(&routed),
                 "merged": out.merged,
                 "embeddings": out.embeddings,
-                "timings": timings_json(&out.timings),
+                "elapsed_ms": elapsed_json(&out.timings),
             }))
             .into_response()
         }
@@ -365,7 +435,7 @@ pub async fn embed(
 /// `POST /classify`: a label and per-label scores per text, from the adapter's head.
 pub async fn classify(
     State(state): State<SharedState>,
-    headers: HeaderMap,
+    Extension(tenant): Extension<Arc<Tenant>>,
     ApiJson(body): ApiJson<EmbedBody>,
 ) -> Response {
     let start = Instant::now();
@@ -377,7 +447,7 @@ pub async fn classify(
                 "the base model has no classification head; name an adapter that carries one",
             ));
         }
-        let (routed, out) = run_embed(&state, &headers, body, "classify", &id).await?;
+        let (routed, out) = run_embed(&state, &tenant, body, "classify", &id).await?;
         let head = routed
             .handle
             .as_ref()
@@ -414,7 +484,7 @@ pub async fn classify(
                 "served_by": routed.served_by,
                 "split": arm_json(&routed),
                 "results": results,
-                "timings": timings_json(&timings),
+                "elapsed_ms": elapsed_json(&timings),
             }))
             .into_response()
         }
@@ -424,6 +494,9 @@ pub async fn classify(
         }
     }
 }
+
+/// Tokens a generation produces when the request gives no `max_tokens` (or the bound, if lower).
+pub const DEFAULT_MAX_TOKENS: usize = 64;
 
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -440,132 +513,139 @@ pub struct GenerateBody {
     pub stream: bool,
 }
 
+impl GenerateBody {
+    /// The checks on the body alone, before the prompt is tokenised (the fuzz target
+    /// `http_bodies` runs them too): the output token limit and the sampling parameters.
+    /// The prompt's byte bound is checked here too, so nothing is tokenised for a huge one.
+    pub fn check(&self, bounds: &Bounds) -> Result<(usize, SamplingParams), ApiError> {
+        let most = bounds.generated_tokens;
+        let limit = self.max_tokens.unwrap_or(DEFAULT_MAX_TOKENS.min(most));
+        if limit == 0 || limit > most {
+            return Err(ApiError::bad_request(
+                "invalid_max_tokens",
+                format!("max_tokens {limit} is out of range: expected 1 to {most}"),
+            ));
+        }
+        let sampling = SamplingParams {
+            temperature: self.temperature,
+            top_p: self.top_p.unwrap_or(1.0),
+            seed: self.seed.unwrap_or(0),
+        };
+        sampling
+            .validate()
+            .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
+        check_text_bytes(bounds, "prompt", &self.prompt)?;
+        Ok((limit, sampling))
+    }
+}
+
 /// `POST /generate`: a continuation, as one JSON answer or (with `"stream": true`) an SSE
-/// stream of `token` events closed by a `done` event with counts and timings.
+/// stream of `token` events closed by a `done` event with counts and elapsed times.
 pub async fn generate(
     State(state): State<SharedState>,
-    headers: HeaderMap,
+    Extension(tenant): Extension<Arc<Tenant>>,
     ApiJson(body): ApiJson<GenerateBody>,
 ) -> Response {
     let start = Instant::now();
     let id = new_response_id();
-    match start_generation(&state, &headers, &body, &id).await {
+    let stream = body.stream;
+    match start_generation(&state, &tenant, body, &id).await {
         Err(e) => {
             finish(&state, "generate", &id, "-", e.status.as_u16(), start);
             e.into_response()
         }
-        Ok((routed, rx)) if body.stream => {
-            stream_answer(state, id, routed, rx, start).into_response()
-        }
-        Ok((routed, mut rx)) => {
-            let mut text = String::new();
-            let mut tokens = Vec::new();
-            while let Some(ev) = rx.recv().await {
-                match ev {
-                    GenEvent::Token { id: t, text: piece } => {
-                        tokens.push(t);
-                        text.push_str(&piece);
-                    }
-                    GenEvent::Done {
-                        finish: reason,
-                        tail,
-                        prompt_tokens,
-                        output_tokens,
-                        timings,
-                    } => {
-                        text.push_str(&tail);
-                        finish(&state, "generate", &id, &routed.served_by, 200, start);
-                        return Json(json!({
-                            "id": id,
-                            "served_by": routed.served_by,
-                            "split": arm_json(&routed),
-                            "text": text,
-                            "token_ids": tokens,
-                            "finish": reason,
-                            "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
-                            "timings": timings_json(&timings),
-                        }))
-                        .into_response();
-                    }
-                    GenEvent::Failed(e) => {
-                        let e = ApiError::from(e);
-                        finish(
-                            &state,
-                            "generate",
-                            &id,
-                            &routed.served_by,
-                            e.status.as_u16(),
-                            start,
-                        );
-                        return e.into_response();
-                    }
-                }
-            }
-            let e = ApiError::from(EngineError::ShuttingDown);
-            finish(
-                &state,
-                "generate",
-                &id,
-                &routed.served_by,
-                e.status.as_u16(),
-                start,
-            );
-            e.into_response()
-        }
+        Ok((routed, rx)) if stream => stream_answer(state, id, routed, rx, start).into_response(),
+        Ok((routed, rx)) => whole_answer(&state, &id, &routed, rx, start)
+            .await
+            .into_response(),
     }
+}
+
+/// The non-streamed answer: the engine's events gathered into one JSON object. The `text` is the
+/// decoded output as a whole (the `done` event carries it), not the streamed pieces joined.
+async fn whole_answer(
+    state: &SharedState,
+    id: &str,
+    routed: &Routed,
+    mut rx: mpsc::UnboundedReceiver<GenEvent>,
+    start: Instant,
+) -> Response {
+    let mut tokens = Vec::new();
+    let failure = loop {
+        match rx.recv().await {
+            Some(GenEvent::Token { id: t, .. }) => tokens.push(t),
+            Some(GenEvent::Done {
+                finish: reason,
+                text,
+                prompt_tokens,
+                output_tokens,
+                timings,
+                ..
+            }) => {
+                finish(state, "generate", id, &routed.served_by, 200, start);
+                return Json(json!({
+                    "id": id,
+                    "served_by": routed.served_by,
+                    "split": arm_json(routed),
+                    "text": text,
+                    "token_ids": tokens,
+                    "finish": reason,
+                    "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
+                    "elapsed_ms": elapsed_json(&timings),
+                }))
+                .into_response();
+            }
+            Some(GenEvent::Failed(e)) => break ApiError::from(e),
+            None => break ApiError::internal("the engine dropped a generation"),
+        }
+    };
+    finish(
+        state,
+        "generate",
+        id,
+        &routed.served_by,
+        failure.status.as_u16(),
+        start,
+    );
+    failure.into_response()
 }
 
 async fn start_generation(
     state: &SharedState,
-    headers: &HeaderMap,
-    body: &GenerateBody,
+    tenant: &Tenant,
+    body: GenerateBody,
     id: &str,
 ) -> Result<(Routed, mpsc::UnboundedReceiver<GenEvent>), ApiError> {
-    let tenant = state.tenants.authenticate(authorization(headers))?;
     let Backbone::Decoder(g) = &*state.backbone else {
         return Err(ApiError::bad_request(
             "wrong_model_family",
             "/generate needs a decoder base model; this server runs an encoder (use /embed or /classify)",
         ));
     };
-    let limit = body
-        .max_tokens
-        .unwrap_or(64.min(state.limits.max_output_tokens));
-    if limit == 0 || limit > state.limits.max_output_tokens {
-        return Err(ApiError::bad_request(
-            "too_many_tokens",
-            format!(
-                "max_tokens {limit} is out of range: expected 1 to {}",
-                state.limits.max_output_tokens
-            ),
-        ));
-    }
-    let sampling = SamplingParams {
-        temperature: body.temperature,
-        top_p: body.top_p.unwrap_or(1.0),
-        seed: body.seed.unwrap_or(0),
-    };
-    sampling
-        .validate()
-        .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
-    let prompt_ids = g
-        .encode(&body.prompt)
-        .map_err(|e| ApiError::bad_request("untokenizable", format!("{e:#}")))?;
+    let (limit, sampling) = body.check(&state.bounds)?;
+    let positions = g.model().config.max_position_embeddings;
+    let backbone = state.backbone.clone();
+    let prompt = body.prompt;
+    let prompt_ids = off_the_runtime(move || {
+        let Backbone::Decoder(g) = &*backbone else {
+            unreachable!("checked above")
+        };
+        g.encode(&prompt)
+    })
+    .await?;
     if prompt_ids.is_empty() {
         return Err(ApiError::bad_request(
             "empty_prompt",
             "the prompt gives no tokens",
         ));
     }
-    let positions = g.model().config.max_position_embeddings;
-    if prompt_ids.len() > state.limits.max_input_tokens || prompt_ids.len() + limit > positions {
-        return Err(ApiError::new(
-            axum::http::StatusCode::PAYLOAD_TOO_LARGE,
+    let bound = state.bounds.prompt_tokens;
+    if prompt_ids.len() > bound || prompt_ids.len() + limit > positions {
+        return Err(too_large(
             "too_many_tokens",
             format!(
-                "the prompt is {} tokens; the limit is {} (and prompt plus max_tokens must fit the model's {positions} positions)",
+                "the prompt is {} tokens; the limit is {bound}, and the prompt plus max_tokens ({limit}) must fit the model's {positions} positions",
                 prompt_ids.len(),
-                state.limits.max_input_tokens
             ),
         ));
     }
@@ -574,7 +654,7 @@ async fn start_generation(
     // The most the generation can use: its prompt and max_tokens; what it does not generate is
     // given back when it ends.
     let tokens = (prompt_ids.len() + limit) as u64;
-    let routed = admit(state, &tenant, target, id, tokens, |a| {
+    let routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Generate(GenerateJob {
             ticket: a.ticket,
             prompt_ids,
@@ -611,6 +691,7 @@ fn stream_answer(
                     prompt_tokens,
                     output_tokens,
                     timings,
+                    ..
                 } => {
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
                     let e = Event::default().event("done").json_data(json!({
@@ -620,7 +701,7 @@ fn stream_answer(
                         "split": arm_json(&routed),
                         "finish": reason,
                         "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
-                        "timings": timings_json(&timings),
+                        "elapsed_ms": elapsed_json(&timings),
                     }));
                     let _ = tx.send(e.expect("json"));
                     return;

@@ -11,6 +11,7 @@ pub mod admin;
 pub mod auth;
 pub mod error;
 pub mod extract;
+pub mod gate;
 pub mod inference;
 pub mod splits;
 
@@ -21,6 +22,7 @@ use std::time::Duration;
 use axum::Router;
 use axum::extract::{DefaultBodyLimit, State};
 use axum::http::StatusCode;
+use axum::middleware::{from_fn, from_fn_with_state};
 use axum::response::IntoResponse;
 use axum::routing::{delete, get, post, put};
 use switchyard_adapters::registry::Registry;
@@ -30,13 +32,22 @@ use crate::metrics::Metrics;
 use auth::Tenants;
 use splits::SplitBook;
 
-/// Request limits the handlers enforce before anything is queued.
+/// What one request may ask for; the handlers refuse anything beyond it before any model work.
 #[derive(Debug, Clone)]
-pub struct RequestLimits {
-    pub max_body_bytes: usize,
-    pub max_input_tokens: usize,
-    pub max_output_tokens: usize,
-    pub max_texts: usize,
+pub struct Bounds {
+    /// Largest body of every request but an upload.
+    pub inference_body_bytes: usize,
+    /// Largest adapter package upload.
+    pub upload_body_bytes: usize,
+    /// Most bytes of one text or prompt, checked before tokenising.
+    pub text_bytes: usize,
+    /// Most tokens of one text or prompt.
+    pub prompt_tokens: usize,
+    /// Most tokens one generation may produce.
+    pub generated_tokens: usize,
+    /// Most texts in one embed or classify request.
+    pub texts_per_request: usize,
+    /// Deadline of one request, from admission to its last byte.
     pub timeout: Duration,
 }
 
@@ -47,24 +58,56 @@ pub struct AppState {
     pub registry: Registry,
     pub tenants: Tenants,
     pub admin_token: Option<String>,
+    /// `/metrics` answers without the admin token.
+    pub metrics_public: bool,
     pub metrics: Arc<Metrics>,
     pub splits: SplitBook,
-    pub limits: RequestLimits,
+    pub bounds: Bounds,
+    /// False once shutdown began.
     pub ready: AtomicBool,
+    /// Background threads whose death makes the server unfit for traffic (the store watcher):
+    /// each is a name and a flag that is true while the thread runs.
+    pub vital_threads: Vec<(&'static str, Arc<AtomicBool>)>,
+}
+
+impl AppState {
+    /// What keeps the server from serving well, in words; empty when it is ready.
+    pub fn health_problems(&self) -> Vec<String> {
+        let mut problems = Vec::new();
+        if !self.ready.load(Ordering::SeqCst) {
+            problems.push("shutting down".to_owned());
+        }
+        if !self.engine.is_running() {
+            problems.push("the engine thread stopped".to_owned());
+        }
+        for (name, alive) in &self.vital_threads {
+            if !alive.load(Ordering::SeqCst) {
+                problems.push(format!("the {name} thread stopped"));
+            }
+        }
+        problems
+    }
 }
 
 pub type SharedState = Arc<AppState>;
 
-/// The whole app.
+/// The whole app. Credentials are checked by middleware before a body is read (see [`gate`]);
+/// uploads and every other request have separate body limits; a panic anywhere answers a JSON
+/// 500 instead of dropping the connection.
 pub fn router(state: SharedState) -> Router {
-    let limit = state.limits.max_body_bytes;
-    Router::new()
+    let bounds = state.bounds.clone();
+    let inference = Router::new()
         .route("/embed", post(inference::embed))
         .route("/classify", post(inference::classify))
         .route("/generate", post(inference::generate))
         .route("/outcomes", post(splits::post_outcome))
-        .route("/admin/adapters", get(admin::list))
+        .route_layer(from_fn_with_state(state.clone(), gate::tenant));
+    let upload = Router::new()
         .route("/admin/adapters/{name}", put(admin::upload))
+        .route_layer(DefaultBodyLimit::max(bounds.upload_body_bytes))
+        .route_layer(from_fn_with_state(state.clone(), gate::admin));
+    let admin = Router::new()
+        .route("/admin/adapters", get(admin::list))
         .route("/admin/adapters/{name}/live", post(admin::set_live))
         .route("/admin/adapters/{name}/rollback", post(admin::rollback))
         .route(
@@ -81,27 +124,44 @@ pub fn router(state: SharedState) -> Router {
             put(splits::put_split).delete(splits::delete_split),
         )
         .route("/admin/splits/{name}/readout", get(splits::readout))
+        .route_layer(from_fn_with_state(state.clone(), gate::admin));
+    let metrics = Router::new()
+        .route("/metrics", get(metrics))
+        .route_layer(from_fn_with_state(state.clone(), gate::metrics));
+    Router::new()
+        .merge(inference)
+        .merge(admin)
+        .merge(metrics)
         .route("/health/live", get(|| async { "alive\n" }))
         .route("/health/ready", get(ready))
-        .route("/metrics", get(metrics))
+        .layer(DefaultBodyLimit::max(bounds.inference_body_bytes))
+        .merge(upload)
         .fallback(|| async {
             error::ApiError::not_found(
                 "no_such_endpoint",
                 "no such endpoint; see the README for the API",
             )
         })
-        .layer(DefaultBodyLimit::max(limit))
+        .method_not_allowed_fallback(|| async {
+            error::ApiError::new(
+                StatusCode::METHOD_NOT_ALLOWED,
+                "method_not_allowed",
+                "this endpoint does not take that method; see the README for the API",
+            )
+        })
+        .layer(from_fn(gate::catch_panic))
         .with_state(state)
 }
 
 async fn ready(State(state): State<SharedState>) -> impl IntoResponse {
-    if state.ready.load(Ordering::SeqCst) {
+    let problems = state.health_problems();
+    if problems.is_empty() {
         (StatusCode::OK, "ready\n").into_response()
     } else {
         error::ApiError::new(
             StatusCode::SERVICE_UNAVAILABLE,
             "not_ready",
-            "the server is not taking new work",
+            format!("the server is not taking new work: {}", problems.join("; ")),
         )
         .into_response()
     }

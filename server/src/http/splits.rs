@@ -151,6 +151,22 @@ pub fn authorization(headers: &HeaderMap) -> Option<&str> {
         .and_then(|v| v.to_str().ok())
 }
 
+/// The split a `PUT /admin/splits/{name}` body defines, validated (the fuzz target
+/// `http_bodies` runs this too); whether its adapters exist is the handler's check.
+pub fn split_from_body(name: &str, body: &Value) -> Result<Split, ApiError> {
+    let arms = body
+        .get("arms")
+        .cloned()
+        .ok_or_else(|| ApiError::bad_request("invalid_split", "field `arms` is missing"))?;
+    let arms: Vec<ArmSpec> = serde_json::from_value(arms)
+        .map_err(|e| ApiError::bad_request("invalid_split", format!("field `arms`: {e}")))?;
+    Split::new(SplitSpec {
+        name: name.to_owned(),
+        arms,
+    })
+    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))
+}
+
 /// `PUT /admin/splits/{name}`: creates or changes a split; arms that keep their name keep
 /// their counts and outcomes.
 pub async fn put_split(
@@ -160,17 +176,7 @@ pub async fn put_split(
     ApiJson(body): ApiJson<Value>,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     require_admin(&state, &headers)?;
-    let arms = body
-        .get("arms")
-        .cloned()
-        .ok_or_else(|| ApiError::bad_request("invalid_split", "field `arms` is missing"))?;
-    let arms: Vec<ArmSpec> = serde_json::from_value(arms)
-        .map_err(|e| ApiError::bad_request("invalid_split", format!("field `arms`: {e}")))?;
-    let split = Split::new(SplitSpec {
-        name: name.clone(),
-        arms,
-    })
-    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?;
+    let split = split_from_body(&name, &body)?;
     for arm in split.arms() {
         if arm.adapter != crate::splits::BASE_MODEL
             && state
@@ -303,6 +309,31 @@ pub struct OutcomeBody {
     pub value: Value,
 }
 
+/// Records an outcome's `value` in the tally of its kind: a number, or yes/no as a boolean (the
+/// fuzz target `http_bodies` runs this too). A refused value leaves both tallies as they were.
+pub fn record_outcome(
+    numeric: &mut NumericTally,
+    binary: &mut BinaryTally,
+    value: &Value,
+) -> Result<(), ApiError> {
+    match value {
+        Value::Bool(b) => binary.record(*b),
+        Value::Number(n) => {
+            let x = n.as_f64().unwrap_or(f64::NAN);
+            numeric
+                .record(x)
+                .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?;
+        }
+        _ => {
+            return Err(ApiError::bad_request(
+                "invalid_outcome",
+                "field `value` must be a number or true/false",
+            ));
+        }
+    }
+    Ok(())
+}
+
 /// `POST /outcomes`: records the outcome of one response that a split served (a number, or
 /// yes/no as a boolean); one outcome per response.
 pub async fn post_outcome(
@@ -336,21 +367,7 @@ pub async fn post_outcome(
             format!("split {split:?} no longer has that arm"),
         ));
     }
-    match &body.value {
-        Value::Bool(b) => entry.binary[arm].record(*b),
-        Value::Number(n) => {
-            let x = n.as_f64().unwrap_or(f64::NAN);
-            entry.numeric[arm]
-                .record(x)
-                .map_err(|e| ApiError::bad_request("invalid_outcome", e.to_string()))?;
-        }
-        _ => {
-            return Err(ApiError::bad_request(
-                "invalid_outcome",
-                "field `value` must be a number or true/false",
-            ));
-        }
-    }
+    record_outcome(&mut entry.numeric[arm], &mut entry.binary[arm], &body.value)?;
     let arm_name = entry.split.arms()[arm].name.clone();
     book.responses
         .get_mut(&body.response_id)

@@ -7,11 +7,11 @@ use std::collections::BTreeMap;
 use candle_core::{D, DType, Result, Tensor};
 use candle_nn::{Embedding, LayerNorm, Module as _, VarBuilder};
 use serde::Deserialize;
-use switchyard_adapters::kernels::{
+use switchyard_adapters::{BaseSpec, Module, Site};
+use switchyard_kernels::{
     PackedWeight, add_layer_norm_in_place, gelu_erf_in_place, packed_matmul_strided,
     softmax_rows_in_place,
 };
-use switchyard_adapters::{BaseSpec, Module, Site};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
 

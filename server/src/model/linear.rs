@@ -12,8 +12,9 @@ use std::ops::Range;
 use std::sync::Arc;
 
 use candle_core::{DType, Result, Tensor};
-use switchyard_adapters::kernels::{PackedWeight, RowTerm, packed_matmul_with, with_f32};
+use switchyard_adapters::tensors::{pack_tensor, unpack_tensor, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
+use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul_with};
 
 /// Which adapter each row of a flat `[rows, in]` activation carries, grouped for the layer.
 #[derive(Debug, Clone)]
@@ -115,7 +116,7 @@ pub struct AdaptedLinear {
 
 impl AdaptedLinear {
     pub fn new(site: Site, weight: Tensor, bias: Option<Tensor>) -> Result<Self> {
-        let weight = Arc::new(PackedWeight::from_tensor(&weight)?);
+        let weight = Arc::new(pack_tensor(&weight)?);
         let bias = match bias {
             Some(b) => Some(b.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?),
             None => None,
@@ -154,7 +155,7 @@ impl AdaptedLinear {
 
     /// The base weight `[out, in]`, row-major: a new tensor, unpacked from the kernel's layout.
     pub fn weight(&self) -> Result<Tensor> {
-        self.weight.to_tensor()
+        unpack_tensor(&self.weight)
     }
 
     pub fn shape(&self) -> (usize, usize) {

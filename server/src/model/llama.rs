@@ -11,8 +11,9 @@ use std::collections::BTreeMap;
 use candle_core::{DType, Result, Tensor};
 use candle_nn::{Embedding, Module as _, RmsNorm, VarBuilder};
 use serde::Deserialize;
-use switchyard_adapters::kernels::{PackedWeight, axpy, dot, packed_matmul, with_f32};
+use switchyard_adapters::tensors::{pack_tensor, with_f32};
 use switchyard_adapters::{BaseSpec, Module, Site};
+use switchyard_kernels::{PackedWeight, axpy, dot, packed_matmul};
 
 use crate::model::linear::{AdaptedLinear, RowAdapters};
 
@@ -497,7 +498,7 @@ impl LlamaModel {
         } else {
             vb.get((cfg.vocab_size, cfg.hidden_size), "lm_head.weight")?
         };
-        let lm_head = PackedWeight::from_tensor(&lm_head)?;
+        let lm_head = pack_tensor(&lm_head)?;
         let rotary = Rotary::new(cfg)?;
         Ok(Self {
             embed,

@@ -31,13 +31,14 @@ impl SamplingParams {
             && (!t.is_finite() || !(0.0..=100.0).contains(&t))
         {
             return Err(format!(
-                "temperature {t} is out of range: expected 0 to 100"
+                "temperature {} is out of range: expected 0 to 100",
+                crate::numbers::short(t)
             ));
         }
         if !self.top_p.is_finite() || self.top_p <= 0.0 || self.top_p > 1.0 {
             return Err(format!(
                 "top-p {} is out of range: expected above 0, at most 1",
-                self.top_p
+                crate::numbers::short(self.top_p)
             ));
         }
         Ok(())

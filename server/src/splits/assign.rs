@@ -21,13 +21,13 @@ use sha2::{Digest, Sha256};
 use thiserror::Error;
 
 /// The name by which a request (and an arm) addresses the base model without an adapter.
-pub const BASE_MODEL: &str = "base";
+pub use switchyard_names::BASE_MODEL;
 /// The most characters a split, arm or adapter name may have.
-pub const MAX_NAME_LEN: usize = 64;
+pub use switchyard_names::MAX_NAME_LEN;
+/// Why a name breaks the name rule (one rule for config, store and splits).
+pub use switchyard_names::NameProblem;
 /// The most arms a split may have.
 pub const MAX_ARMS: usize = 16;
-/// The most hex digits a held version may have.
-const MAX_VERSION_LEN: usize = 64;
 
 /// A split as a client defines it.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -52,17 +52,6 @@ pub struct ArmSpec {
     pub weight: f64,
 }
 
-/// Why a name breaks the name rule.
-#[derive(Debug, Clone, PartialEq, Eq, Error)]
-pub enum NameProblem {
-    #[error("it is empty")]
-    Empty,
-    #[error("it has {len} characters, more than {MAX_NAME_LEN}")]
-    TooLong { len: usize },
-    #[error("it contains {found:?}; only lowercase letters, digits and '-' are allowed")]
-    Character { found: char },
-}
-
 /// A split definition that was refused; each variant names the field it refers to.
 #[derive(Debug, Clone, PartialEq, Error)]
 pub enum SplitError {
@@ -74,11 +63,14 @@ pub enum SplitError {
     },
     #[error("{field}: {BASE_MODEL:?} is reserved for the base model")]
     ReservedName { field: String },
-    #[error("{field}: {value:?} is not a version (1 to {MAX_VERSION_LEN} lowercase hex digits)")]
+    #[error(
+        "{field}: {value:?} is not a version; {}",
+        switchyard_names::VERSION_RULE
+    )]
     InvalidVersion { field: String, value: String },
     #[error("{field}: the base model has no versions to hold")]
     VersionOnBase { field: String },
-    #[error("{field}: weight {value} is not a finite number at least 0")]
+    #[error("{field}: weight {} is not a finite number at least 0", crate::numbers::short(*value))]
     InvalidWeight { field: String, value: f64 },
     #[error("arms: a split has 1 to {MAX_ARMS} arms, this one has {count}")]
     ArmCount { count: usize },
@@ -107,28 +99,15 @@ impl SplitError {
     }
 }
 
-/// Checks the name rule shared by splits, arms and adapters: 1 to [`MAX_NAME_LEN`] characters,
-/// each a lowercase ASCII letter, a digit or '-'. `field` names the value in the error.
+/// Checks the name rule shared by splits, arms, adapters and tenants (`switchyard_names`); `base`
+/// passes here, since an arm may serve the base model and the split name's own check refuses
+/// it. `field` names the value in the error.
 pub fn check_name(field: &str, value: &str) -> Result<(), SplitError> {
-    let refuse = |problem| SplitError::InvalidName {
+    switchyard_names::check_name_or_base(value).map_err(|problem| SplitError::InvalidName {
         field: field.to_owned(),
         value: value.to_owned(),
         problem,
-    };
-    if value.is_empty() {
-        return Err(refuse(NameProblem::Empty));
-    }
-    if let Some(found) = value
-        .chars()
-        .find(|c| !(c.is_ascii_lowercase() || c.is_ascii_digit() || *c == '-'))
-    {
-        return Err(refuse(NameProblem::Character { found }));
-    }
-    // Every character is ASCII here, so bytes count characters.
-    if value.len() > MAX_NAME_LEN {
-        return Err(refuse(NameProblem::TooLong { len: value.len() }));
-    }
-    Ok(())
+    })
 }
 
 /// A validated split, ready to assign requests.
@@ -230,8 +209,7 @@ fn check_arm(index: usize, arm: &ArmSpec) -> Result<(), SplitError> {
         if arm.adapter == BASE_MODEL {
             return Err(SplitError::VersionOnBase { field });
         }
-        let hex = |c: char| c.is_ascii_digit() || ('a'..='f').contains(&c);
-        if version.is_empty() || version.len() > MAX_VERSION_LEN || !version.chars().all(hex) {
+        if !switchyard_names::is_version(version) {
             return Err(SplitError::InvalidVersion {
                 field,
                 value: version.clone(),
@@ -501,7 +479,16 @@ mod tests {
                 ..
             })
         ));
-        for bad in ["", "rear wheel", "café", "tyre.pressure", "UPPER"] {
+        for bad in [
+            "",
+            "rear wheel",
+            "café",
+            "tyre.pressure",
+            "UPPER",
+            "-lead",
+            "lead-",
+            "a--b",
+        ] {
             assert!(check_name("name", bad).is_err(), "{bad:?}");
         }
     }
@@ -535,13 +522,29 @@ mod tests {
         let spec: SplitSpec = serde_json::from_str(
             r#"{"name": "fork-test", "arms": [
                 {"name": "incumbent", "adapter": "fork-advice-v1", "weight": 0.8},
-                {"name": "candidate", "adapter": "fork-advice-v2", "version": "00ff", "weight": 0.2}
+                {"name": "candidate", "adapter": "fork-advice-v2", "version": "00ff00ff00ff00ff", "weight": 0.2}
             ]}"#,
         )
         .unwrap();
-        assert_eq!(spec.arms[1].version.as_deref(), Some("00ff"));
+        assert_eq!(spec.arms[1].version.as_deref(), Some("00ff00ff00ff00ff"));
         assert!(Split::new(spec).is_ok());
         let unknown = r#"{"name": "s", "arms": [], "seed": 3}"#;
         assert!(serde_json::from_str::<SplitSpec>(unknown).is_err());
+    }
+
+    #[test]
+    fn split_weight_moved_by_one_ulp_when_saved_and_read_back() {
+        // Found by the `http_bodies` fuzz target: without serde_json's correctly rounded float
+        // parsing, this weight read as one f64, was saved (and answered) as its shortest form,
+        // and that text read back as the neighbouring f64, so the split changed across a restart.
+        let body = r#"{"name": "fork-test", "arms": [
+            {"name": "incumbent", "adapter": "fork-advice", "weight": 111111110111111151115.1},
+            {"name": "control", "adapter": "base", "weight": 5}
+        ]}"#;
+        let spec: SplitSpec = serde_json::from_str(body).unwrap();
+        let saved = serde_json::to_string(&spec).unwrap();
+        let reread: SplitSpec = serde_json::from_str(&saved).unwrap();
+        assert_eq!(reread, spec, "saved as {saved}");
+        assert_eq!(Split::new(reread).unwrap(), Split::new(spec).unwrap());
     }
 }

@@ -128,6 +128,17 @@ pub fn human_bytes(bytes: u64) -> String {
     }
 }
 
+/// A byte count as a person would have written it: in binary units when it is a whole number of
+/// them (`1 GiB` for `--budget 1GiB`), otherwise as [`human_bytes`] does.
+pub fn human_bytes_as_given(bytes: u64) -> String {
+    for (unit, size) in [("TiB", 1u64 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20)] {
+        if bytes >= size && bytes.is_multiple_of(size) {
+            return format!("{} {unit}", bytes / size);
+        }
+    }
+    human_bytes(bytes)
+}
+
 /// A count with thousands separators: `4,194,304`.
 pub fn grouped(n: u64) -> String {
     let digits = n.to_string();
@@ -193,6 +204,10 @@ mod tests {
         assert_eq!(grouped(4_194_304), "4,194,304");
         assert_eq!(grouped(999), "999");
         assert_eq!(human_bytes(16_777_216), "16.8 MB");
+        // `plan --budget 1GiB` printed "1.07 GB".
+        assert_eq!(human_bytes_as_given(1 << 30), "1 GiB");
+        assert_eq!(human_bytes_as_given(3 << 20), "3 MiB");
+        assert_eq!(human_bytes_as_given(500_000_000), "500.0 MB");
         // 2000-03-01 00:00:00 UTC is 951868800 s after the epoch (`date -u -d @951868800`).
         let t = std::time::UNIX_EPOCH + std::time::Duration::from_secs(951_868_800);
         assert_eq!(utc(t), "2000-03-01 00:00:00");

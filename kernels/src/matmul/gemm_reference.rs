@@ -3,7 +3,7 @@
 
 pub use gemm::Parallelism;
 
-use super::zero_rows;
+use crate::threads::zero_rows;
 
 /// A read-only strided view of a row-major-or-not matrix inside a slice.
 #[derive(Debug, Clone, Copy)]
@@ -111,8 +111,8 @@ pub fn matmul_into(
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::values;
     use super::*;
+    use crate::test_values::values;
 
     fn naive(a: &[f32], b: &[f32], m: usize, k: usize, n: usize) -> Vec<f32> {
         let mut out = vec![0.0; m * n];
