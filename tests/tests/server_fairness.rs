@@ -216,3 +216,149 @@ fn a_tenant_at_its_concurrent_requests_is_refused_until_one_finishes() {
     // Once it finished, the tenant is admitted again.
     embed_as(&server, FLOOD_KEY, "base", &["after"]).ok_json();
 }
+
+/// The factor-tier misses counted in /metrics: each is a load from the store.
+fn factor_misses(server: &Server) -> u64 {
+    let metrics = server.get("/metrics", Auth::Admin).body;
+    metrics
+        .lines()
+        .find(|l| {
+            l.starts_with("switchyard_cache_events_total{")
+                && l.contains("tier=\"factors\"")
+                && l.contains("outcome=\"miss\"")
+        })
+        .map_or(0, |l| {
+            l.rsplit(' ')
+                .next()
+                .and_then(|v| v.parse::<f64>().ok())
+                .unwrap_or_else(|| panic!("unreadable counter line {l:?}")) as u64
+        })
+}
+
+fn queue_depth(server: &Server) -> u64 {
+    let metrics = server.get("/metrics", Auth::Admin).body;
+    metrics
+        .lines()
+        .find_map(|l| l.strip_prefix("switchyard_queue_depth "))
+        .and_then(|v| v.trim().parse::<f64>().ok())
+        .unwrap_or_else(|| panic!("no switchyard_queue_depth in\n{metrics}")) as u64
+}
+
+/// What /admin/adapters says is resident: (name, version, tier) for every entry.
+fn resident(server: &Server) -> Vec<(String, String, String)> {
+    let list = server.get("/admin/adapters", Auth::Admin).ok_json();
+    let mut out = Vec::new();
+    for a in list["adapters"].as_array().expect("adapters") {
+        for r in a["resident"].as_array().expect("resident") {
+            out.push((
+                a["name"].as_str().unwrap().to_owned(),
+                r["version"].as_str().unwrap().to_owned(),
+                r["tier"].as_str().unwrap().to_owned(),
+            ));
+        }
+    }
+    out.sort();
+    out
+}
+
+/// Before the fix, a request for a cold adapter was routed (the adapter loaded from the store,
+/// perhaps evicting others) and only then offered to the queue, which refused it with
+/// `tenant_queue_full`: the refused request still cost a load. Now the queue place is held
+/// first. The tenant's lane (queue_depth 2 shared by two tenants: one place) is filled by one
+/// long request waiting behind another that is running; then a request for a cold adapter is
+/// refused, and neither the resident set nor the load count changed.
+#[test]
+fn refused_request_did_not_load_or_evict_an_adapter() {
+    let server = ServerSetup::encoder()
+        .set("engine", "queue_depth", "2")
+        .tenant("flood", FLOOD_KEY, &["north-*"])
+        .tenant("calm", CALM_KEY, &[])
+        .start();
+    server.publish(
+        "north-warm",
+        &switchyard_tests::fixtures().join("minilm-qv-a.safetensors"),
+    );
+    server.publish(
+        "north-cold",
+        &switchyard_tests::fixtures().join("minilm-qv-b.safetensors"),
+    );
+    embed_as(&server, FLOOD_KEY, "north-warm", &["warm it up"]).ok_json();
+    let resident_before = resident(&server);
+    let misses_before = factor_misses(&server);
+    assert_eq!(misses_before, 1, "north-warm loaded once");
+    assert!(
+        resident_before
+            .iter()
+            .all(|(name, ..)| name != "north-cold"),
+        "{resident_before:?}"
+    );
+
+    // 64 texts of about 120 tokens: seconds of work for the engine.
+    let long: Vec<String> = (0..64)
+        .map(|i| {
+            format!(
+                "text {i}: {}",
+                "the wheel turns slowly in the rain ".repeat(15)
+            )
+        })
+        .collect();
+    let long: Vec<&str> = long.iter().map(String::as_str).collect();
+    let probe = std::thread::scope(|scope| {
+        // Two long requests: one runs, the other waits in the tenant's one place (a try that
+        // finds the place taken is refused and sent again).
+        let busy: Vec<_> = (0..2)
+            .map(|_| {
+                scope.spawn(|| {
+                    loop {
+                        let reply = embed_as(&server, FLOOD_KEY, "base", &long);
+                        if reply.status == 200 {
+                            return;
+                        }
+                        reply.assert_error(429, "tenant_queue_full");
+                    }
+                })
+            })
+            .collect();
+        // Wait until one long request is waiting (so the other is running), then ask for the
+        // cold adapter.
+        let deadline = std::time::Instant::now() + Duration::from_secs(60);
+        while queue_depth(&server) < 1 {
+            assert!(
+                std::time::Instant::now() < deadline,
+                "no request ever waited in the queue"
+            );
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        let probe = embed_as(
+            &server,
+            FLOOD_KEY,
+            "north-cold",
+            &["a request for a cold adapter"],
+        );
+        for b in busy {
+            b.join().unwrap();
+        }
+        probe
+    });
+    probe.assert_error(429, "tenant_queue_full");
+    assert!(probe.retry_after.is_some(), "{probe:?}");
+    assert_eq!(
+        resident(&server),
+        resident_before,
+        "the refused request changed residency"
+    );
+    assert_eq!(
+        factor_misses(&server),
+        misses_before,
+        "the refused request loaded an adapter"
+    );
+    // The place is free again once the lane drains: the same request now loads and answers.
+    embed_as(
+        &server,
+        FLOOD_KEY,
+        "north-cold",
+        &["a request for a cold adapter"],
+    )
+    .ok_json();
+    assert_eq!(factor_misses(&server), misses_before + 1);
+}

@@ -151,12 +151,45 @@ pub fn whole_seconds(wait: Duration) -> u64 {
     if s.is_finite() { (s as u64).max(1) } else { 1 }
 }
 
-/// A request's admission: which tenant's lane its job joins, and its hold on that tenant's
-/// quota (given back when the job is dropped; see [`quota::Permit`]).
+/// A request's admission: which tenant's lane its job joins, its hold on that tenant's quota
+/// (given back when the job is dropped; see [`quota::Permit`]) and the place it holds in that
+/// lane (given back if the ticket is dropped before its job is queued).
 #[derive(Debug)]
 pub struct Ticket {
     pub tenant: usize,
     permit: Permit,
+    place: HeldPlace,
+}
+
+/// A place held in a lane of the queue for a job not built yet. Queueing the job uses it up;
+/// dropping it unused (the adapter failed to load, the client went away) gives it back.
+struct HeldPlace {
+    queue: Option<Arc<FairQueue<Job>>>,
+    lane: usize,
+}
+
+impl HeldPlace {
+    /// The queue, for the one push into this place; afterwards there is nothing to give back.
+    fn take(&mut self) -> Option<Arc<FairQueue<Job>>> {
+        self.queue.take()
+    }
+}
+
+impl Drop for HeldPlace {
+    fn drop(&mut self) {
+        if let Some(q) = self.queue.take() {
+            q.release(self.lane);
+        }
+    }
+}
+
+impl std::fmt::Debug for HeldPlace {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("HeldPlace")
+            .field("lane", &self.lane)
+            .field("held", &self.queue.is_some())
+            .finish()
+    }
 }
 
 /// Timings every answer reports.
@@ -308,11 +341,29 @@ impl Engine {
         }
     }
 
-    /// Admits a request of `tenant` that needs `tokens` under the tenant's quota, before it is
-    /// routed; the job built for it carries the ticket.
+    /// Admits a request of `tenant` that needs `tokens`: under the tenant's quota, and with a
+    /// place held in the tenant's lane of the queue. The server calls this before it resolves
+    /// the request's adapter, so a request that would be refused never loads one (nor evicts
+    /// another to make room). The job built for it carries the ticket; a ticket dropped before
+    /// its job is queued gives back its place and the tokens it held.
     pub fn reserve(&self, tenant: usize, tokens: u64) -> Result<Ticket, EngineError> {
         match self.quotas.reserve(tenant, tokens, Instant::now()) {
-            Ok(permit) => Ok(Ticket { tenant, permit }),
+            Ok(mut permit) => match self.queue.hold(tenant) {
+                Ok(()) => Ok(Ticket {
+                    tenant,
+                    permit,
+                    place: HeldPlace {
+                        queue: Some(Arc::clone(&self.queue)),
+                        lane: tenant,
+                    },
+                }),
+                Err(why) => {
+                    // Refused after the quota admitted it: it no longer counts against it.
+                    permit.cancel();
+                    drop(permit);
+                    Err(self.queue_refusal(tenant, why))
+                }
+            },
             Err(refusal) => {
                 let retry_after = refusal
                     .wait()
@@ -329,6 +380,15 @@ impl Engine {
         }
     }
 
+    /// Refuses a request of `tenant` at once when its lane of the queue has no place free, so
+    /// that a flooding tenant's excess is answered before any work is spent on it (tokenising
+    /// it, checking its quota). A hint: [`Engine::reserve`] holds the place and decides.
+    pub fn check_room(&self, tenant: usize) -> Result<(), EngineError> {
+        self.queue
+            .room(tenant)
+            .map_err(|why| self.queue_refusal(tenant, why))
+    }
+
     /// Counts a refusal of `tenant`'s request and passes it on.
     fn refused(&self, tenant: usize, e: EngineError) -> EngineError {
         if let Some(reason) = e.refusal_code() {
@@ -337,17 +397,26 @@ impl Engine {
         e
     }
 
-    /// Queues a job in its tenant's lane, or refuses it at once when the lane holds the tenant's
-    /// share of the queue or the queue is full; a refused job's request no longer counts
-    /// against the tenant's quota.
+    /// Queues a job in the place its ticket holds. Refused only when the server began shutting
+    /// down meanwhile; a refused job's request no longer counts against the tenant's quota.
     pub fn try_submit(&self, mut job: Job) -> Result<(), EngineError> {
         let lane = job.ticket().tenant;
-        let (why, mut job) = match self.queue.push(lane, job) {
+        let pushed = match job.ticket().place.take() {
+            Some(queue) => queue.push_held(lane, job),
+            // A ticket whose place was used already: queue it within the bounds, as any job.
+            None => self.queue.push(lane, job),
+        };
+        let (why, mut job) = match pushed {
             Ok(()) => return Ok(()),
             Err(refused) => refused,
         };
         job.ticket().permit.cancel();
         drop(job);
+        Err(self.queue_refusal(lane, why))
+    }
+
+    /// The error for a request of `lane` the queue refused, counted.
+    fn queue_refusal(&self, lane: usize, why: Refused) -> EngineError {
         let limits = self.queue.limits();
         let wait = |lane| {
             self.queue
@@ -365,7 +434,7 @@ impl Engine {
                 retry_after: wait(None),
             },
         };
-        Err(self.refused(lane, e))
+        self.refused(lane, e)
     }
 
     /// Whether the engine thread is alive (readiness turns 503 if it is not).

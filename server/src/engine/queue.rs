@@ -18,7 +18,11 @@
 //! stops at the first job that does not fit (a first job larger than the budget is taken alone).
 //! The queue is bounded twice: `total` jobs in all, and `per_lane` jobs per tenant, which keeps
 //! room for every tenant however hard one of them pushes; a push past either bound is refused
-//! with the job handed back.
+//! with the job handed back. A place can be held before the job exists ([`FairQueue::hold`]):
+//! the server holds one before it resolves (and perhaps loads) the request's adapter, so a
+//! request the queue would refuse is refused before it costs a load. Held places count against
+//! both bounds until the job is pushed into them ([`FairQueue::push_held`]) or they are
+//! released ([`FairQueue::release`]).
 //!
 //! One mutex guards everything (taken by the handlers to push and by the engine thread to take),
 //! and a condition variable wakes the engine thread. A count of queued jobs kept under that mutex
@@ -87,6 +91,8 @@ struct Lane<T> {
     jobs: VecDeque<Queued<T>>,
     /// The finish tag of the lane's last queued job.
     finish: u64,
+    /// Places held for jobs not pushed yet.
+    held: usize,
 }
 
 /// How long the rate estimate looks back.
@@ -99,6 +105,8 @@ struct State<T> {
     virtual_time: u64,
     seq: u64,
     queued: usize,
+    /// Places held in all lanes together.
+    held: usize,
     closed: bool,
     /// When the engine took how much, over the last [`RATE_WINDOW`]: the service rate.
     taken: VecDeque<(Instant, u64)>,
@@ -145,11 +153,13 @@ impl<T: Cost> FairQueue<T> {
                     .map(|_| Lane {
                         jobs: VecDeque::new(),
                         finish: 0,
+                        held: 0,
                     })
                     .collect(),
                 virtual_time: 0,
                 seq: 0,
                 queued: 0,
+                held: 0,
                 closed: false,
                 taken: VecDeque::new(),
             }),
@@ -169,15 +179,59 @@ impl<T: Cost> FairQueue<T> {
 
     /// Queues `job` in `lane` with its start tag, or hands it back with the reason.
     pub fn push(&self, lane: usize, job: T) -> Result<(), (Refused, T)> {
+        match self.hold(lane) {
+            Ok(()) => self.push_held(lane, job),
+            Err(why) => Err((why, job)),
+        }
+    }
+
+    /// Whether `lane` has a place free now (a hint: another push may take it first).
+    pub fn room(&self, lane: usize) -> Result<(), Refused> {
+        self.room_in(&self.state(), lane)
+    }
+
+    fn room_in(&self, s: &State<T>, lane: usize) -> Result<(), Refused> {
+        if s.closed {
+            return Err(Refused::Closed);
+        }
+        let l = &s.lanes[lane];
+        if l.jobs.len() + l.held >= self.limits.per_lane {
+            return Err(Refused::LaneFull);
+        }
+        if s.queued + s.held >= self.limits.total {
+            return Err(Refused::Full);
+        }
+        Ok(())
+    }
+
+    /// Holds a place in `lane` for a job to come, or says why there is none.
+    pub fn hold(&self, lane: usize) -> Result<(), Refused> {
         let mut s = self.state();
+        self.room_in(&s, lane)?;
+        s.lanes[lane].held += 1;
+        s.held += 1;
+        Ok(())
+    }
+
+    /// Gives back a place held in `lane` whose job will not come.
+    pub fn release(&self, lane: usize) {
+        let mut s = self.state();
+        if s.lanes[lane].held > 0 {
+            s.lanes[lane].held -= 1;
+            s.held -= 1;
+        }
+    }
+
+    /// Queues `job` in a place held in `lane` with its start tag; refused (and the place given
+    /// back) only when the queue closed meanwhile.
+    pub fn push_held(&self, lane: usize, job: T) -> Result<(), (Refused, T)> {
+        let mut s = self.state();
+        if s.lanes[lane].held > 0 {
+            s.lanes[lane].held -= 1;
+            s.held -= 1;
+        }
         if s.closed {
             return Err((Refused::Closed, job));
-        }
-        if s.lanes[lane].jobs.len() >= self.limits.per_lane {
-            return Err((Refused::LaneFull, job));
-        }
-        if s.queued >= self.limits.total {
-            return Err((Refused::Full, job));
         }
         let cost = job.cost();
         let start = s.virtual_time.max(s.lanes[lane].finish);
@@ -265,6 +319,11 @@ impl<T: Cost> FairQueue<T> {
 
     pub fn is_empty(&self) -> bool {
         self.len() == 0
+    }
+
+    /// Places held and not yet pushed into, in all lanes.
+    pub fn held(&self) -> usize {
+        self.state().held
     }
 
     /// Jobs waiting in `lane`.

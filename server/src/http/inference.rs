@@ -210,9 +210,13 @@ struct Admission {
     deadline: Instant,
 }
 
-/// Checks the tenant's quota for a request of `tokens` tokens, routes the request to
-/// `adapter@version` and submits the job `job` builds (429 with Retry-After past the quota, the
-/// tenant's share of the queue, or a full queue). Both inference paths admit through here.
+/// Admits the request first, then loads: checks the tenant's quota for `tokens` tokens and holds
+/// a place in its lane of the queue (429 with Retry-After past the quota, the tenant's share of
+/// the queue, or a full queue), and only then routes the request to `adapter@version`, which may
+/// load the adapter and evict others. So a refused request never costs a load. If routing fails
+/// the ticket drops and gives back its place and its tokens (the request still counts against
+/// `requests_per_second`). Then it queues the job `job` builds in the held place. Both inference
+/// paths, and a split's arms, admit through here.
 async fn admit(
     state: &SharedState,
     tenant: &Tenant,
@@ -358,6 +362,8 @@ async fn run_embed(
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
     encoder(state, endpoint)?;
     body.check(&state.bounds)?;
+    // A tenant whose share of the queue is full is refused before its texts are tokenised.
+    state.engine.check_room(tenant.index)?;
     let backbone = state.backbone.clone();
     let texts = body.texts;
     let (ids, counts) = off_the_runtime(move || {
@@ -623,6 +629,8 @@ async fn start_generation(
         ));
     };
     let (limit, sampling) = body.check(&state.bounds)?;
+    // A tenant whose share of the queue is full is refused before its prompt is tokenised.
+    state.engine.check_room(tenant.index)?;
     let positions = g.model().config.max_position_embeddings;
     let backbone = state.backbone.clone();
     let prompt = body.prompt;

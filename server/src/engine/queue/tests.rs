@@ -248,6 +248,40 @@ fn each_lane_may_hold_its_share_and_the_whole_queue_its_total() {
 }
 
 #[test]
+fn a_held_place_counts_against_both_bounds_until_pushed_into_or_released() {
+    let q = FairQueue::new(
+        2,
+        QueueLimits {
+            total: 3,
+            per_lane: 2,
+        },
+    );
+    q.hold(0).unwrap();
+    q.hold(0).unwrap();
+    // Lane 0 holds its share in places alone: a third is refused, a push too.
+    assert_eq!(q.hold(0), Err(Refused::LaneFull));
+    assert_eq!(q.push(0, j(0, 9, 1)).unwrap_err().0, Refused::LaneFull);
+    q.hold(1).unwrap();
+    assert_eq!(q.hold(1), Err(Refused::Full));
+    assert_eq!((q.len(), q.held()), (0, 3));
+    // Pushing into a held place queues the job without a second check.
+    q.push_held(0, j(0, 1, 1)).unwrap();
+    assert_eq!((q.len(), q.held()), (1, 2));
+    // A released place is free for anyone.
+    q.release(1);
+    q.release(0);
+    assert_eq!((q.len(), q.held()), (1, 0));
+    q.push(1, j(1, 1, 1)).unwrap();
+    q.push(0, j(0, 2, 1)).unwrap();
+    assert_eq!(names(&q.try_take(ANY)), ["a1", "b1", "a2"]);
+    // A place held when the queue closes is given back by the refused push.
+    q.hold(1).unwrap();
+    q.close();
+    assert_eq!(q.push_held(1, j(1, 2, 1)).unwrap_err().0, Refused::Closed);
+    assert_eq!(q.held(), 0);
+}
+
+#[test]
 fn closing_refuses_new_jobs_and_lets_the_taker_drain_then_stop() {
     let q = Arc::new(queue(1));
     push_all(&q, [j(0, 1, 1), j(0, 2, 1)]);
