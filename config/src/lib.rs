@@ -4,12 +4,14 @@
 //!
 //! `read` knows where each key lives and which variable overrides it, and refuses unknown keys;
 //! [`rules`] holds the rules for names, adapter patterns and secrets; `tenants` reads
-//! `[[tenants]]`; `render` writes the effective settings back out as TOML. A refused value is a
+//! `[[tenants]]`; `quota` reads the `[quota]` default and each tenant's own limits; `render`
+//! writes the effective settings back out as TOML. A refused value is a
 //! [`ConfigError`] that names the key and the value (for an API key or the admin token, only the
 //! key). Paths are kept as written: a relative one is relative to the working directory of the
 //! process, not to the file.
 
 mod error;
+mod quota;
 mod read;
 mod render;
 pub mod rules;
@@ -21,6 +23,7 @@ use std::net::{Ipv4Addr, SocketAddr};
 use std::path::{Path, PathBuf};
 
 pub use error::ConfigError;
+pub use quota::{MAX_REQUESTS_PER_SECOND, Quota};
 pub use read::{KEYS, SettingKey};
 pub use switchyard_kernels::WeightFormat;
 
@@ -56,8 +59,12 @@ pub struct Settings {
     pub threads: usize,
     /// Most rows (sequences) one forward pass may carry.
     pub max_batch_rows: usize,
-    /// Requests admitted and waiting for the engine; one more is answered 429.
+    /// Requests admitted and waiting for the engine; one more is answered 429. Each tenant may
+    /// hold an equal share of them.
     pub queue_depth: usize,
+    /// With several tenants, the most rows in one embedding batch: it bounds what a tenant's
+    /// request can find running ahead of it.
+    pub shared_batch_rows: usize,
     /// Deadline of one request, from admission to its last byte.
     pub request_timeout_ms: u64,
     /// Largest body of an inference or outcome request (and of any request but an upload).
@@ -81,13 +88,17 @@ pub struct Settings {
     pub promote_share: f64,
     /// How many recent rows the promotion share is measured over.
     pub promote_window_rows: usize,
+    /// The quota of every tenant that does not set its own (`[quota]`), and of the one open
+    /// tenant when no tenants are configured.
+    pub quota: Quota,
     /// Bearer token of the admin API; `None` disables the admin API.
     pub admin_token: Option<String>,
     /// Whether `/metrics` answers without the admin token (for a scraper on a private network).
     pub metrics_public: bool,
     /// Most distinct adapter names the request metrics label; the rest count as `other`.
     pub metrics_adapter_series: usize,
-    /// API keys and the adapters each tenant may use; empty means open (no keys asked).
+    /// API keys, the adapters each tenant may use and its quota; empty means open (no keys
+    /// asked).
     pub tenants: Vec<TenantSettings>,
     pub log_format: LogFormat,
     /// A tracing filter (`info`, `switchyard=debug,warn`, ...).
@@ -102,7 +113,7 @@ pub struct Settings {
 }
 
 /// One `[[tenants]]` entry.
-#[derive(Clone, PartialEq, Eq)]
+#[derive(Clone, PartialEq)]
 pub struct TenantSettings {
     pub name: String,
     /// API keys, any of which identifies this tenant.
@@ -110,6 +121,8 @@ pub struct TenantSettings {
     /// Adapter (and split) name patterns, `*` matching any run of characters; `base` is always
     /// allowed and need not be listed.
     pub adapters: Vec<String>,
+    /// The tenant's effective quota: its own limits, and `[quota]`'s for those it leaves out.
+    pub quota: Quota,
 }
 
 /// How log lines are written.
@@ -156,6 +169,7 @@ impl Default for Settings {
             threads: 0,
             max_batch_rows: 32,
             queue_depth: 256,
+            shared_batch_rows: 4,
             request_timeout_ms: 30_000,
             inference_body_bytes: (2 * MIB) as usize,
             upload_body_bytes: (64 * MIB) as usize,
@@ -167,6 +181,7 @@ impl Default for Settings {
             merged_budget_bytes: (2 * GIB) as usize,
             promote_share: 0.9,
             promote_window_rows: 512,
+            quota: Quota::default(),
             admin_token: None,
             metrics_public: false,
             metrics_adapter_series: 100,
@@ -271,7 +286,11 @@ impl Settings {
             },
         };
         let size = |n: u64| usize::try_from(n).unwrap_or(usize::MAX);
-        let tenants = tenants::read_tenants(src.tenants())?;
+        let default_quota = quota::read_default_quota(src)?;
+        let mut tenants = tenants::read_tenants(src.tenants())?;
+        for tenant in &mut tenants {
+            tenant.quota = tenant.quota.or(default_quota);
+        }
         let admin_token = admin_token(src, &tenants)?;
         let prompt_tokens =
             size(src.whole(&read::PROMPT_TOKENS, d.prompt_tokens as u64, 1..=131_072)?);
@@ -299,6 +318,11 @@ impl Settings {
                 1..=MAX_BATCH_ROWS_LIMIT as u64,
             )?),
             queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
+            shared_batch_rows: size(src.whole(
+                &read::SHARED_BATCH_ROWS,
+                d.shared_batch_rows as u64,
+                1..=MAX_BATCH_ROWS_LIMIT as u64,
+            )?),
             // An hour: a deadline past that is a forgotten request, not a slow one.
             request_timeout_ms: src.whole(
                 &read::REQUEST_TIMEOUT_MS,
@@ -349,6 +373,7 @@ impl Settings {
                 d.promote_window_rows as u64,
                 1..=1_000_000,
             )?),
+            quota: default_quota,
             admin_token,
             metrics_public: src.flag(&read::METRICS_PUBLIC, d.metrics_public)?,
             metrics_adapter_series: size(src.whole(
@@ -465,6 +490,7 @@ impl fmt::Debug for Settings {
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)
             .field("queue_depth", &self.queue_depth)
+            .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)
             .field("inference_body_bytes", &self.inference_body_bytes)
             .field("upload_body_bytes", &self.upload_body_bytes)
@@ -476,6 +502,7 @@ impl fmt::Debug for Settings {
             .field("merged_budget_bytes", &self.merged_budget_bytes)
             .field("promote_share", &self.promote_share)
             .field("promote_window_rows", &self.promote_window_rows)
+            .field("quota", &self.quota)
             .field(
                 "admin_token",
                 &self.admin_token.as_deref().map(rules::redacted),
@@ -499,6 +526,7 @@ impl fmt::Debug for TenantSettings {
             .field("name", &self.name)
             .field("keys", &keys)
             .field("adapters", &self.adapters)
+            .field("quota", &self.quota)
             .finish()
     }
 }

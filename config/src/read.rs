@@ -49,6 +49,11 @@ pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
 );
 pub(crate) const QUEUE_DEPTH: SettingKey =
     SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
+pub(crate) const SHARED_BATCH_ROWS: SettingKey = SettingKey::new(
+    "engine",
+    "shared_batch_rows",
+    "SWITCHYARD_ENGINE_SHARED_BATCH_ROWS",
+);
 pub(crate) const REQUEST_TIMEOUT_MS: SettingKey = SettingKey::new(
     "engine",
     "request_timeout_ms",
@@ -98,6 +103,21 @@ pub(crate) const PROMOTE_WINDOW_ROWS: SettingKey = SettingKey::new(
     "promote_window_rows",
     "SWITCHYARD_RESIDENCY_PROMOTE_WINDOW_ROWS",
 );
+pub(crate) const QUOTA_REQUESTS_PER_SECOND: SettingKey = SettingKey::new(
+    "quota",
+    "requests_per_second",
+    "SWITCHYARD_QUOTA_REQUESTS_PER_SECOND",
+);
+pub(crate) const QUOTA_CONCURRENT_REQUESTS: SettingKey = SettingKey::new(
+    "quota",
+    "concurrent_requests",
+    "SWITCHYARD_QUOTA_CONCURRENT_REQUESTS",
+);
+pub(crate) const QUOTA_TOKENS_PER_MINUTE: SettingKey = SettingKey::new(
+    "quota",
+    "tokens_per_minute",
+    "SWITCHYARD_QUOTA_TOKENS_PER_MINUTE",
+);
 pub(crate) const ADMIN_TOKEN: SettingKey =
     SettingKey::new("admin", "token", "SWITCHYARD_ADMIN_TOKEN");
 pub(crate) const METRICS_PUBLIC: SettingKey =
@@ -128,6 +148,7 @@ pub const KEYS: &[SettingKey] = &[
     THREADS,
     MAX_BATCH_ROWS,
     QUEUE_DEPTH,
+    SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,
     INFERENCE_BODY_BYTES,
     UPLOAD_BODY_BYTES,
@@ -139,6 +160,9 @@ pub const KEYS: &[SettingKey] = &[
     MERGED_BUDGET_BYTES,
     PROMOTE_SHARE,
     PROMOTE_WINDOW_ROWS,
+    QUOTA_REQUESTS_PER_SECOND,
+    QUOTA_CONCURRENT_REQUESTS,
+    QUOTA_TOKENS_PER_MINUTE,
     ADMIN_TOKEN,
     METRICS_PUBLIC,
     METRICS_ADAPTER_SERIES,
@@ -277,32 +301,18 @@ impl<'a> Sources<'a> {
         default: u64,
         range: RangeInclusive<u64>,
     ) -> Result<u64, ConfigError> {
-        let Some((raw, origin)) = self.find(key) else {
-            return Ok(default);
-        };
-        let refuse = |rule: String| ConfigError::invalid(origin.label(key), raw.shown(), rule);
-        let number: i64 = match raw {
-            Raw::Toml(Value::Integer(n)) => *n,
-            Raw::Toml(other) => {
-                return Err(refuse(format!(
-                    "expected a whole number, found {}",
-                    type_name(other)
-                )));
-            }
-            Raw::Text(text) => text
-                .trim()
-                .replace('_', "")
-                .parse()
-                .map_err(|_| refuse("expected a whole number".to_owned()))?,
-        };
-        match u64::try_from(number) {
-            Ok(n) if range.contains(&n) => Ok(n),
-            _ => Err(refuse(format!(
-                "must be between {} and {}",
-                range.start(),
-                range.end()
-            ))),
-        }
+        Ok(self.optional_whole(key, range)?.unwrap_or(default))
+    }
+
+    /// A whole number in `range`, or `None` when the key is set nowhere.
+    pub(crate) fn optional_whole(
+        &self,
+        key: &SettingKey,
+        range: RangeInclusive<u64>,
+    ) -> Result<Option<u64>, ConfigError> {
+        self.find(key)
+            .map(|(raw, origin)| whole_in(raw, &origin.label(key), range))
+            .transpose()
     }
 
     /// A number (a TOML float or integer), or `default` when the key is set nowhere; `check`
@@ -313,28 +323,18 @@ impl<'a> Sources<'a> {
         default: f64,
         check: impl Fn(f64) -> Option<&'static str>,
     ) -> Result<f64, ConfigError> {
-        let Some((raw, origin)) = self.find(key) else {
-            return Ok(default);
-        };
-        let refuse = |rule: String| ConfigError::invalid(origin.label(key), raw.shown(), rule);
-        let number = match raw {
-            Raw::Toml(Value::Float(x)) => *x,
-            Raw::Toml(Value::Integer(n)) => *n as f64,
-            Raw::Toml(other) => {
-                return Err(refuse(format!(
-                    "expected a number, found {}",
-                    type_name(other)
-                )));
-            }
-            Raw::Text(text) => text
-                .trim()
-                .parse()
-                .map_err(|_| refuse("expected a number".to_owned()))?,
-        };
-        match check(number) {
-            None => Ok(number),
-            Some(rule) => Err(refuse(rule.to_owned())),
-        }
+        Ok(self.optional_number(key, check)?.unwrap_or(default))
+    }
+
+    /// A number that `check` accepts, or `None` when the key is set nowhere.
+    pub(crate) fn optional_number(
+        &self,
+        key: &SettingKey,
+        check: impl Fn(f64) -> Option<&'static str>,
+    ) -> Result<Option<f64>, ConfigError> {
+        self.find(key)
+            .map(|(raw, origin)| number_in(raw, &origin.label(key), check))
+            .transpose()
     }
 
     /// `true` or `false` (a TOML boolean, or the text `true` / `false` in the environment), or
@@ -394,6 +394,65 @@ impl<'a> Sources<'a> {
             ));
         }
         Ok(Some((text.to_owned(), origin)))
+    }
+}
+
+/// `raw` as a whole number in `range`; a refusal names `label` and the value.
+pub(crate) fn whole_in(
+    raw: Raw<'_>,
+    label: &str,
+    range: RangeInclusive<u64>,
+) -> Result<u64, ConfigError> {
+    let refuse = |rule: String| ConfigError::invalid(label, raw.shown(), rule);
+    let number: i64 = match raw {
+        Raw::Toml(Value::Integer(n)) => *n,
+        Raw::Toml(other) => {
+            return Err(refuse(format!(
+                "expected a whole number, found {}",
+                type_name(other)
+            )));
+        }
+        Raw::Text(text) => text
+            .trim()
+            .replace('_', "")
+            .parse()
+            .map_err(|_| refuse("expected a whole number".to_owned()))?,
+    };
+    match u64::try_from(number) {
+        Ok(n) if range.contains(&n) => Ok(n),
+        _ => Err(refuse(format!(
+            "must be between {} and {}",
+            range.start(),
+            range.end()
+        ))),
+    }
+}
+
+/// `raw` as a number (a TOML float or integer) that `check` accepts; a refusal names `label`
+/// and the value.
+pub(crate) fn number_in(
+    raw: Raw<'_>,
+    label: &str,
+    check: impl Fn(f64) -> Option<&'static str>,
+) -> Result<f64, ConfigError> {
+    let refuse = |rule: String| ConfigError::invalid(label, raw.shown(), rule);
+    let number = match raw {
+        Raw::Toml(Value::Float(x)) => *x,
+        Raw::Toml(Value::Integer(n)) => *n as f64,
+        Raw::Toml(other) => {
+            return Err(refuse(format!(
+                "expected a number, found {}",
+                type_name(other)
+            )));
+        }
+        Raw::Text(text) => text
+            .trim()
+            .parse()
+            .map_err(|_| refuse("expected a number".to_owned()))?,
+    };
+    match check(number) {
+        None => Ok(number),
+        Some(rule) => Err(refuse(rule.to_owned())),
     }
 }
 

@@ -67,6 +67,7 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::THREADS, s.threads);
     page.line(&read::MAX_BATCH_ROWS, s.max_batch_rows);
     page.line(&read::QUEUE_DEPTH, s.queue_depth);
+    page.line(&read::SHARED_BATCH_ROWS, s.shared_batch_rows);
     page.line(&read::REQUEST_TIMEOUT_MS, s.request_timeout_ms);
     page.line(&read::INFERENCE_BODY_BYTES, s.inference_body_bytes);
     page.line(&read::UPLOAD_BODY_BYTES, s.upload_body_bytes);
@@ -78,6 +79,20 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::MERGED_BUDGET_BYTES, s.merged_budget_bytes);
     page.line(&read::PROMOTE_SHARE, toml::Value::Float(s.promote_share));
     page.line(&read::PROMOTE_WINDOW_ROWS, s.promote_window_rows);
+    let q = &s.quota;
+    let no_limit = "no limit, unless a tenant sets its own";
+    match q.requests_per_second {
+        Some(rate) => page.line(&read::QUOTA_REQUESTS_PER_SECOND, toml::Value::Float(rate)),
+        None => page.unset(&read::QUOTA_REQUESTS_PER_SECOND, no_limit),
+    }
+    match q.concurrent_requests {
+        Some(n) => page.line(&read::QUOTA_CONCURRENT_REQUESTS, n),
+        None => page.unset(&read::QUOTA_CONCURRENT_REQUESTS, no_limit),
+    }
+    match q.tokens_per_minute {
+        Some(n) => page.line(&read::QUOTA_TOKENS_PER_MINUTE, n),
+        None => page.unset(&read::QUOTA_TOKENS_PER_MINUTE, no_limit),
+    }
     match &s.admin_token {
         Some(token) => page.line(&read::ADMIN_TOKEN, quoted(&redacted(token))),
         None => page.unset(&read::ADMIN_TOKEN, "the admin API is disabled"),
@@ -118,6 +133,16 @@ pub(crate) fn render(s: &Settings) -> String {
             keys.join(", "),
             adapters.join(", ")
         );
+        let q = &tenant.quota;
+        if let Some(rate) = q.requests_per_second {
+            let _ = writeln!(text, "requests_per_second = {}", toml::Value::Float(rate));
+        }
+        if let Some(n) = q.concurrent_requests {
+            let _ = writeln!(text, "concurrent_requests = {n}");
+        }
+        if let Some(n) = q.tokens_per_minute {
+            let _ = writeln!(text, "tokens_per_minute = {n}");
+        }
     }
     text
 }

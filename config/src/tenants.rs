@@ -1,6 +1,6 @@
-//! Reading `[[tenants]]`: each tenant's name, API keys and adapter patterns, checked one by one
-//! (naming `tenants[i].keys[j]` and the like) and then across tenants (names and keys unique).
-//! Tenants come from the file only; keys do not belong in an environment variable list.
+//! Reading `[[tenants]]`: each tenant's name, API keys, adapter patterns and quota, checked one
+//! by one (naming `tenants[i].keys[j]` and the like) and then across tenants (names and keys
+//! unique). Tenants come from the file only; keys do not belong in an environment variable list.
 
 use std::collections::BTreeMap;
 
@@ -8,10 +8,18 @@ use toml::{Table, Value};
 
 use crate::ConfigError;
 use crate::TenantSettings;
+use crate::quota::{self, read_tenant_quota};
 use crate::read::{Raw, TENANTS, type_name};
 use crate::rules::{name_rule, pattern_rule, secret_rule};
 
-const FIELDS: &[&str] = &["name", "keys", "adapters"];
+const FIELDS: &[&str] = &[
+    "name",
+    "keys",
+    "adapters",
+    quota::FIELDS[0],
+    quota::FIELDS[1],
+    quota::FIELDS[2],
+];
 
 /// Reads and checks the `tenants` value of the file (`None`: no tenants, the server is open).
 pub(crate) fn read_tenants(value: Option<&Value>) -> Result<Vec<TenantSettings>, ConfigError> {
@@ -99,6 +107,7 @@ fn read_tenant(at: &str, table: &Table) -> Result<TenantSettings, ConfigError> {
         name,
         keys,
         adapters,
+        quota: read_tenant_quota(at, table)?,
     })
 }
 

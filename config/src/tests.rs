@@ -39,6 +39,7 @@ fn defaults_apply_without_file_or_environment() {
     assert_eq!(s.listen.to_string(), "127.0.0.1:7070");
     assert_eq!(s.max_batch_rows, 32);
     assert_eq!(s.queue_depth, 256);
+    assert_eq!(s.shared_batch_rows, 4);
     assert_eq!(s.request_timeout_ms, 30_000);
     assert_eq!(
         (s.inference_body_bytes, s.upload_body_bytes),
@@ -64,6 +65,7 @@ fn defaults_apply_without_file_or_environment() {
     );
     assert_eq!(s.shutdown_grace_ms, 10_000);
     assert!(s.admin_token.is_none() && s.tenants.is_empty() && s.model_dir.is_none());
+    assert!(s.quota.is_unlimited(), "no quota unless one is configured");
 }
 
 #[test]
@@ -130,6 +132,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::THREADS, "3", "3"),
         (&read::MAX_BATCH_ROWS, "7", "7"),
         (&read::QUEUE_DEPTH, "9", "9"),
+        (&read::SHARED_BATCH_ROWS, "2", "2"),
         (&read::REQUEST_TIMEOUT_MS, "1500", "1500"),
         (&read::INFERENCE_BODY_BYTES, "4096", "4096"),
         (&read::UPLOAD_BODY_BYTES, "8192", "8192"),
@@ -141,6 +144,9 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::MERGED_BUDGET_BYTES, "0", "0"),
         (&read::PROMOTE_SHARE, "0.5", "0.5"),
         (&read::PROMOTE_WINDOW_ROWS, "100", "100"),
+        (&read::QUOTA_REQUESTS_PER_SECOND, "2.5", "2.5"),
+        (&read::QUOTA_CONCURRENT_REQUESTS, "4", "4"),
+        (&read::QUOTA_TOKENS_PER_MINUTE, "60000", "60000"),
         (
             &read::ADMIN_TOKEN,
             "\"admin-token-0123456789\"",
@@ -172,6 +178,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         threads: 3,
         max_batch_rows: 7,
         queue_depth: 9,
+        shared_batch_rows: 2,
         request_timeout_ms: 1500,
         inference_body_bytes: 4096,
         upload_body_bytes: 8192,
@@ -183,6 +190,11 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         merged_budget_bytes: 0,
         promote_share: 0.5,
         promote_window_rows: 100,
+        quota: Quota {
+            requests_per_second: Some(2.5),
+            concurrent_requests: Some(4),
+            tokens_per_minute: Some(60_000),
+        },
         admin_token: Some("admin-token-0123456789".into()),
         metrics_public: true,
         metrics_adapter_series: 7,
@@ -220,6 +232,16 @@ fn each_range_is_enforced_at_both_ends() {
             "100001",
         ),
         ("[engine]\nqueue_depth = -5", "engine.queue_depth", "-5"),
+        (
+            "[engine]\nshared_batch_rows = 0",
+            "engine.shared_batch_rows",
+            "0",
+        ),
+        (
+            "[engine]\nshared_batch_rows = 4097",
+            "engine.shared_batch_rows",
+            "4097",
+        ),
         (
             "[engine]\nrequest_timeout_ms = 0",
             "engine.request_timeout_ms",
@@ -696,4 +718,146 @@ fn rendered_settings_without_secrets_load_back_unchanged() {
         );
     }
     assert!(page.contains("no [[tenants]]"), "{page}");
+}
+
+#[test]
+fn tenant_quota_keys_win_over_the_default_key_by_key() {
+    let text = format!(
+        "[quota]\nrequests_per_second = 20\ntokens_per_minute = 90_000\n\
+         [[tenants]]\nname = \"ridgeline-north\"\nkeys = [\"{NORTH_KEY}\"]\n\
+         requests_per_second = 0.5\nconcurrent_requests = 3\n\
+         [[tenants]]\nname = \"ridgeline-south\"\nkeys = [\"{SOUTH_KEY}\"]\n"
+    );
+    let s = load_text(&text, &[]).unwrap();
+    let default = Quota {
+        requests_per_second: Some(20.0),
+        concurrent_requests: None,
+        tokens_per_minute: Some(90_000),
+    };
+    assert_eq!(s.quota, default);
+    // North sets its rate and concurrency and keeps the default's tokens per minute.
+    assert_eq!(
+        s.tenants[0].quota,
+        Quota {
+            requests_per_second: Some(0.5),
+            concurrent_requests: Some(3),
+            tokens_per_minute: Some(90_000),
+        }
+    );
+    // South sets nothing: the default entire.
+    assert_eq!(s.tenants[1].quota, default);
+    // Without [quota], a tenant without limits has none.
+    let s = load_text(&two_tenants(), &[]).unwrap();
+    assert!(s.tenants.iter().all(|t| t.quota.is_unlimited()));
+}
+
+#[test]
+fn quota_values_are_refused_naming_the_field_and_the_value() {
+    let tenant =
+        |line: &str| format!("[[tenants]]\nname = \"north\"\nkeys = [\"{NORTH_KEY}\"]\n{line}\n");
+    let cases = [
+        (
+            tenant("requests_per_second = 0"),
+            "`tenants[0].requests_per_second`",
+            "\"0\"",
+            "must be above 0",
+        ),
+        (
+            tenant("requests_per_second = -2.5"),
+            "`tenants[0].requests_per_second`",
+            "\"-2.5\"",
+            "must be above 0",
+        ),
+        (
+            tenant("requests_per_second = nan"),
+            "`tenants[0].requests_per_second`",
+            "\"nan\"",
+            "must be above 0",
+        ),
+        (
+            tenant("requests_per_second = 2000000"),
+            "`tenants[0].requests_per_second`",
+            "\"2000000\"",
+            "at most 1000000",
+        ),
+        (
+            tenant("requests_per_second = \"fast\""),
+            "`tenants[0].requests_per_second`",
+            "\"fast\"",
+            "expected a number, found a string",
+        ),
+        (
+            tenant("concurrent_requests = 0"),
+            "`tenants[0].concurrent_requests`",
+            "\"0\"",
+            "between 1 and 1000000",
+        ),
+        (
+            tenant("concurrent_requests = 1.5"),
+            "`tenants[0].concurrent_requests`",
+            "\"1.5\"",
+            "expected a whole number, found a float",
+        ),
+        (
+            tenant("tokens_per_minute = 0"),
+            "`tenants[0].tokens_per_minute`",
+            "\"0\"",
+            "between 1 and 1000000000000",
+        ),
+        (
+            "[quota]\ntokens_per_minute = -1\n".to_owned(),
+            "`quota.tokens_per_minute`",
+            "\"-1\"",
+            "between 1 and",
+        ),
+        (
+            "[quota]\nconcurrent_requests = true\n".to_owned(),
+            "`quota.concurrent_requests`",
+            "\"true\"",
+            "expected a whole number, found a boolean",
+        ),
+    ];
+    for (text, key, value, rule) in cases {
+        let err = refusal(&text, &[]);
+        assert!(
+            err.contains(key) && err.contains(value) && err.contains(rule),
+            "{text}: {err}"
+        );
+    }
+    let err = refusal("", &[("SWITCHYARD_QUOTA_REQUESTS_PER_SECOND", "0")]);
+    assert!(
+        err.contains("`quota.requests_per_second (SWITCHYARD_QUOTA_REQUESTS_PER_SECOND)`"),
+        "{err}"
+    );
+    let err = refusal("[quota]\nrequests_per_minute = 3\n", &[]);
+    assert!(
+        err.contains("unknown key `quota.requests_per_minute`")
+            && err.contains("requests_per_second"),
+        "{err}"
+    );
+}
+
+#[test]
+fn rendered_quotas_load_back_unchanged() {
+    let text = format!(
+        "[quota]\nconcurrent_requests = 8\n\
+         [[tenants]]\nname = \"ridgeline-north\"\nkeys = [\"{NORTH_KEY}\"]\n\
+         requests_per_second = 12.5\ntokens_per_minute = 6000\n"
+    );
+    let s = load_text(&text, &[]).unwrap();
+    let page = s.render_effective();
+    assert!(
+        page.contains("[quota]\n# requests_per_second is not set"),
+        "{page}"
+    );
+    assert!(page.contains("\nconcurrent_requests = 8\n"), "{page}");
+    assert!(
+        page.contains(
+            "requests_per_second = 12.5\nconcurrent_requests = 8\ntokens_per_minute = 6000\n"
+        ),
+        "{page}"
+    );
+    // The keys are redacted in the page; put the real one back to load it.
+    let page = page.replace("\"<redacted, 20 chars>\"", &format!("\"{NORTH_KEY}\""));
+    assert_eq!(load_text(&page, &[]).unwrap(), s, "{page}");
 }

@@ -2,7 +2,7 @@
 
 use std::path::{Path, PathBuf};
 
-use switchyard_config::{LogFormat, Settings};
+use switchyard_config::{LogFormat, Quota, Settings};
 
 fn example() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("switchyard.example.toml")
@@ -38,6 +38,16 @@ fn example_config_loads() {
         ]
     );
     assert_eq!(s.tenants[1].keys.len(), 2);
+    // North has no quota; south holds the two limits its entry sets.
+    assert!(s.tenants[0].quota.is_unlimited());
+    assert_eq!(
+        s.tenants[1].quota,
+        Quota {
+            requests_per_second: None,
+            concurrent_requests: Some(4),
+            tokens_per_minute: Some(30_000),
+        }
+    );
     assert!(s.admin_token.is_some());
     assert_eq!(s.log_format, LogFormat::Human);
 }

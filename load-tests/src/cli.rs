@@ -1,5 +1,6 @@
-//! The command line: `switchyard-load run` (a workload against a running server) and
-//! `switchyard-load overhead` (the built-in scenario, which starts its own servers). Flags are
+//! The command line: `switchyard-load run` (a workload against a running server), and the
+//! built-in scenarios `switchyard-load overhead` and `switchyard-load fairness`, which start
+//! their own servers. Flags are
 //! checked as they are parsed, so a bad value is refused with the flag and the value named.
 
 use std::path::PathBuf;
@@ -11,6 +12,7 @@ use switchyard_adapters::Module;
 
 use crate::client::{Client, RequestShape};
 use crate::driver::{Pacing, Workload, drive};
+use crate::fairness::{FairnessSettings, run_fairness};
 use crate::mix::{Kind, Mix};
 use crate::overhead::{OverheadSettings, run_overhead};
 use crate::report::Report;
@@ -38,6 +40,9 @@ pub enum Command {
     /// The built-in swap-overhead scenario: starts `switchyard serve` itself and measures base,
     /// merged, unmerged and mixed adapters side by side.
     Overhead(OverheadArgs),
+    /// The built-in fairness scenario: starts `switchyard serve` itself with three tenants and
+    /// measures a steady tenant's latency alone and while another tenant floods the server.
+    Fairness(FairnessArgs),
     /// The soak: starts `switchyard serve` itself, measures its capacity, then sends a share of
     /// it over many adapters for a long time while adapters are published and rolled back live;
     /// reports errors, memory and swap times per window, and exits 1 when a verdict fails.
@@ -240,6 +245,46 @@ pub struct OverheadArgs {
     pub targets: Targets,
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
+}
+
+#[derive(Debug, Args)]
+pub struct FairnessArgs {
+    /// The `switchyard` binary to start.
+    #[arg(long)]
+    pub server_bin: PathBuf,
+    /// The base model folder (an encoder: the scenario sends /embed).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Folder for report.json, report.html and the chart.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// A short run, for a test: one round of short phases.
+    #[arg(long)]
+    pub quick: bool,
+    /// Texts per request, for every tenant.
+    #[arg(long, default_value_t = 4, value_parser = parse_positive_count)]
+    pub texts: usize,
+    /// The flood's arrival rate as a multiple of the measured capacity.
+    #[arg(long, default_value_t = 10.0, value_parser = parse_rate)]
+    pub flood_factor: f64,
+    /// The steady tenant's arrival rate as a share of the measured capacity (above 0, below 1).
+    #[arg(long, default_value_t = 0.1, value_parser = parse_steady_share)]
+    pub steady_share: f64,
+    /// Worker threads of a flood's open loop (requests in flight at most).
+    #[arg(long, default_value_t = 256, value_parser = parse_positive_count)]
+    pub workers: usize,
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+}
+
+/// The steady tenant's share: a number above 0 and below 1 (at 1 it alone would fill the server).
+pub fn parse_steady_share(text: &str) -> Result<f64, String> {
+    match text.trim().parse::<f64>() {
+        Ok(x) if x > 0.0 && x < 1.0 => Ok(x),
+        _ => Err(format!(
+            "expected a share above 0 and below 1, got {text:?}"
+        )),
+    }
 }
 
 /// A Zipf exponent: finite and above 0.
@@ -464,6 +509,7 @@ pub fn run(args: &RunArgs, command_line: &str) -> anyhow::Result<Report> {
         table,
         memory: vec![("server".to_owned(), memory)],
         extra,
+        latency_only: false,
     })
 }
 
@@ -492,6 +538,31 @@ pub fn overhead(args: &OverheadArgs, command_line: &str) -> anyhow::Result<Repor
     })
 }
 
+/// `switchyard-load fairness`.
+pub fn fairness(args: &FairnessArgs, command_line: &str) -> anyhow::Result<Report> {
+    if !args.server_bin.is_file() {
+        bail!(
+            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
+            args.server_bin.display()
+        );
+    }
+    let absolute = |p: &PathBuf, flag: &str| {
+        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
+    };
+    run_fairness(&FairnessSettings {
+        server_bin: absolute(&args.server_bin, "--server-bin")?,
+        model_dir: absolute(&args.model, "--model")?,
+        out_dir: args.out.clone(),
+        quick: args.quick,
+        texts: args.texts,
+        flood_factor: args.flood_factor,
+        steady_share: args.steady_share,
+        workers: args.workers,
+        seed: args.seed,
+        command: command_line.to_owned(),
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -512,6 +583,15 @@ mod tests {
         assert_eq!(parse_duration("1.5"), Ok(Duration::from_millis(1500)));
         assert!(parse_duration("soon").is_err());
         assert!(parse_positive_count("0").is_err());
+        assert_eq!(parse_steady_share("0.1"), Ok(0.1));
+        for bad in ["0", "1", "-0.5", "lots"] {
+            assert!(
+                parse_steady_share(bad).unwrap_err().contains("share"),
+                "{bad}"
+            );
+        }
+        assert_eq!(parse_share("1"), Ok(1.0));
+        assert!(parse_share("1.5").unwrap_err().contains("share"));
     }
 
     #[test]

@@ -46,6 +46,8 @@ pub struct Answer {
     pub merged: Option<bool>,
     /// `error.code` of a refusal, or the transport error.
     pub error: Option<String>,
+    /// The `Retry-After` header of a refusal, in whole seconds.
+    pub retry_after_s: Option<u64>,
 }
 
 /// A blocking HTTP client of one server, with the credentials of a run.
@@ -121,16 +123,25 @@ impl Client {
         }
         let result = request.send(body.to_string()).and_then(|mut resp| {
             let status = resp.status().as_u16();
+            let retry_after = resp
+                .headers()
+                .get("retry-after")
+                .and_then(|v| v.to_str().ok())
+                .and_then(|v| v.trim().parse().ok());
             let text = resp.body_mut().read_to_string()?;
-            Ok((status, text))
+            Ok((status, text, retry_after))
         });
         match result {
-            Ok((status, text)) => read_answer(status, &text),
+            Ok((status, text, retry_after_s)) => Answer {
+                retry_after_s,
+                ..read_answer(status, &text)
+            },
             Err(e) => Answer {
                 status: 0,
                 swap_ms: None,
                 merged: None,
                 error: Some(e.to_string()),
+                retry_after_s: None,
             },
         }
     }
@@ -208,6 +219,7 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
             swap_ms: body["elapsed_ms"]["swap"].as_f64(),
             merged: body["merged"].as_bool(),
             error: None,
+            retry_after_s: None,
         }
     } else {
         Answer {
@@ -219,6 +231,7 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
                     .as_str()
                     .map_or_else(|| text.chars().take(200).collect(), str::to_owned),
             ),
+            retry_after_s: None,
         }
     }
 }
@@ -239,7 +252,8 @@ mod tests {
                 status: 200,
                 swap_ms: Some(2.5),
                 merged: Some(true),
-                error: None
+                error: None,
+                retry_after_s: None,
             }
         );
         let refused = read_answer(

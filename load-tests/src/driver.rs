@@ -57,6 +57,8 @@ pub struct Record {
     pub swap_ms: Option<f64>,
     pub merged: Option<bool>,
     pub error: Option<String>,
+    /// The `Retry-After` of a refusal, in whole seconds.
+    pub retry_after_s: Option<u64>,
     pub warmup: bool,
 }
 
@@ -102,6 +104,7 @@ impl Shared {
             swap_ms: answer.swap_ms,
             merged: answer.merged,
             error: answer.error,
+            retry_after_s: answer.retry_after_s,
             warmup,
         };
         if !warmup {

@@ -3,13 +3,15 @@
 //! [`driver`] sends the requests through [`client`] in a closed or an open loop, with the
 //! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
 //! [`synthetic`] builds adapters for a run; [`report`] writes JSON and HTML with [`charts`];
-//! [`overhead`] is the built-in swap-overhead scenario, which starts its own server ([`server`]);
-//! [`soak`] is the long run at a steady load with live publishes and rollbacks.
+//! [`overhead`] is the built-in swap-overhead scenario and [`fairness`] the built-in fairness
+//! scenario, which start their own servers ([`server`]); [`soak`] is the long run at a steady load
+//! with live publishes and rollbacks.
 
 pub mod charts;
 pub mod cli;
 pub mod client;
 pub mod driver;
+pub mod fairness;
 pub mod mix;
 pub mod overhead;
 pub mod progress;

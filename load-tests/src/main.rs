@@ -2,7 +2,7 @@
 //! the summary table and writes the report.
 
 use clap::Parser;
-use switchyard_load::cli::{Cli, Command, overhead, run, soak};
+use switchyard_load::cli::{Cli, Command, fairness, overhead, run, soak};
 
 fn main() {
     let cli = Cli::parse();
@@ -31,6 +31,7 @@ fn main() {
         Command::Soak(_) => unreachable!("handled above"),
         Command::Run(args) => (run(args, &command_line), args.out.clone()),
         Command::Overhead(args) => (overhead(args, &command_line), args.out.clone()),
+        Command::Fairness(args) => (fairness(args, &command_line), args.out.clone()),
     };
     let written = result.and_then(|report| {
         print!("{}", report.table_text());

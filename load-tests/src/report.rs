@@ -31,6 +31,8 @@ pub struct Report {
     pub memory: Vec<(String, Vec<MemorySample>)>,
     /// Further top-level JSON fields (settings, ratios, cold start).
     pub extra: serde_json::Map<String, Value>,
+    /// Only the latency chart: no swap-time or memory chart (a run of the base model alone).
+    pub latency_only: bool,
 }
 
 /// One chart: its file name, caption and SVG text.
@@ -144,6 +146,9 @@ impl Report {
                     SeriesLabelPosition::LowerRight,
                 )?,
             });
+        }
+        if self.latency_only {
+            return Ok(charts);
         }
         // Requests to the base model alone swap nothing.
         let swaps: Vec<f64> = self
@@ -368,6 +373,7 @@ mod tests {
             swap_ms: Some(0.02),
             merged: Some(false),
             error: None,
+            retry_after_s: None,
             warmup: false,
         };
         let run = RunRecords {

@@ -142,6 +142,7 @@ mod tests {
             swap_ms: (status == 200).then_some(0.5),
             merged: (status == 200).then_some(sent_s > 1.5),
             error: None,
+            retry_after_s: None,
             warmup,
         }
     }

@@ -23,6 +23,8 @@ pub struct ServerConfig {
     pub promote_share: f64,
     pub promote_window_rows: usize,
     pub queue_depth: usize,
+    /// TOML appended as it is, such as `[[tenants]]` entries.
+    pub extra_toml: String,
 }
 
 impl ServerConfig {
@@ -37,6 +39,7 @@ impl ServerConfig {
             promote_share: 0.9,
             promote_window_rows: 512,
             queue_depth: 256,
+            extra_toml: String::new(),
         }
     }
 
@@ -52,7 +55,7 @@ impl ServerConfig {
              [residency]\nfactor_budget_bytes = {}\nmerged_budget_bytes = {}\n\
              promote_share = {:?}\npromote_window_rows = {}\n\n\
              [admin]\ntoken = {:?}\n\n\
-             [log]\nfilter = \"warn\"\n",
+             [log]\nfilter = \"warn\"\n{}",
             self.model_dir.display().to_string(),
             self.store_dir.display().to_string(),
             self.queue_depth,
@@ -61,6 +64,7 @@ impl ServerConfig {
             self.promote_share,
             self.promote_window_rows,
             self.admin_token,
+            self.extra_toml,
         )
     }
 }

@@ -48,6 +48,14 @@ pub struct BaseLabels {
     pub kernels: String,
 }
 
+/// A refusal before queueing; `tenant` is a configured tenant's name (or `default`), so the
+/// series are bounded by the config.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct RefusalLabels {
+    pub tenant: String,
+    pub reason: String,
+}
+
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct ArmLabels {
     pub split: String,
@@ -72,6 +80,7 @@ pub struct Metrics {
     pub request_seconds: Histogram,
     pub generated_tokens: Counter,
     pub arm_requests: Family<ArmLabels, Counter>,
+    pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
     pub process_resident_bytes: Gauge,
     pub base_weights: Family<BaseLabels, Gauge>,
@@ -161,6 +170,12 @@ impl Metrics {
             "Requests assigned to each arm of each split",
             arm_requests.clone(),
         );
+        let refusals = Family::<RefusalLabels, Counter>::default();
+        registry.register(
+            "refusals",
+            "Requests refused by a tenant's quota or its share of the queue, by tenant and reason",
+            refusals.clone(),
+        );
         let swap_events_dropped = Counter::<u64, AtomicU64>::default();
         registry.register(
             "swap_events_dropped",
@@ -197,6 +212,7 @@ impl Metrics {
             request_seconds,
             generated_tokens,
             arm_requests,
+            refusals,
             swap_events_dropped,
             process_resident_bytes,
             base_weights,
@@ -241,6 +257,16 @@ impl Metrics {
                 endpoint: endpoint.to_owned(),
                 adapter,
                 status: status.to_string(),
+            })
+            .inc();
+    }
+
+    /// Counts a refusal of `tenant`'s request for `reason` (the error code).
+    pub fn refused(&self, tenant: &str, reason: &str) {
+        self.refusals
+            .get_or_create(&RefusalLabels {
+                tenant: tenant.to_owned(),
+                reason: reason.to_owned(),
             })
             .inc();
     }
@@ -421,7 +447,14 @@ mod tests {
         let m = Metrics::new(10);
         m.count_request("embed", "base", 200);
         m.generated_tokens.inc_by(3);
+        m.refused("ridgeline-north", "rate_limited");
         let text = m.render();
+        assert!(
+            text.contains(
+                "switchyard_refusals_total{tenant=\"ridgeline-north\",reason=\"rate_limited\"} 1"
+            ),
+            "{text}"
+        );
         assert!(
             text.contains(
                 "switchyard_requests_total{endpoint=\"embed\",adapter=\"base\",status=\"200\"} 1"

@@ -77,6 +77,13 @@ impl ServerSetup {
         self
     }
 
+    /// Sets `key` to `toml_value` in the tenant added last (`requests_per_second`, `0.5`).
+    pub fn tenant_set(mut self, key: &str, toml_value: &str) -> Self {
+        assert!(!self.tenants.is_empty(), "add a tenant first");
+        writeln!(self.tenants, "{key} = {toml_value}").unwrap();
+        self
+    }
+
     fn toml(&self, store_dir: &Path) -> String {
         let mut settings = self.settings.clone();
         settings
@@ -197,6 +204,8 @@ pub struct Server {
 pub struct Reply {
     pub status: u16,
     pub body: String,
+    /// The `Retry-After` header, where the answer has one.
+    pub retry_after: Option<String>,
 }
 
 impl Reply {
@@ -309,13 +318,21 @@ impl Server {
         };
         let mut resp = result.map_err(|e| e.to_string())?;
         let status = resp.status().as_u16();
+        let retry_after = resp
+            .headers()
+            .get("retry-after")
+            .map(|v| v.to_str().unwrap_or("<not text>").to_owned());
         let body = resp
             .body_mut()
             .with_config()
             .limit(64 << 20)
             .read_to_string()
             .map_err(|e| format!("reading the answer: {e}"))?;
-        Ok(Reply { status, body })
+        Ok(Reply {
+            status,
+            body,
+            retry_after,
+        })
     }
 
     /// `POST path` with a JSON body.

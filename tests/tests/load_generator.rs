@@ -151,6 +151,69 @@ fn quick_overhead_scenario_reports_every_scenario_as_a_ratio_to_base() {
 }
 
 #[test]
+fn quick_fairness_scenario_reports_the_steady_tenant_in_every_phase_and_the_floods_refusals() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("fairness");
+    let bin = switchyard_bin();
+    let model = base_model_dir();
+    let table = load_ok(
+        &[
+            "fairness",
+            "--server-bin",
+            bin.to_str().unwrap(),
+            "--model",
+            model.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+            "--quick",
+        ],
+        dir.path(),
+    );
+    let report = read_json(&out.join("report.json"));
+    let names: Vec<&str> = report["scenarios"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["name"].as_str().unwrap())
+        .collect();
+    assert_eq!(
+        names,
+        [
+            "steady tenant alone",
+            "steady tenant during flood",
+            "steady tenant during capped flood",
+            "flood tenant (no quota)",
+            "capped tenant (rate quota)"
+        ]
+    );
+    // The steady tenant was answered every time, in every phase.
+    let steady = &report["steady"];
+    for phase in ["alone", "during_flood", "during_capped_flood"] {
+        assert_eq!(steady["failed"][phase], 0, "{phase}");
+        assert!(steady[phase]["count"].as_u64().unwrap() > 0, "{phase}");
+    }
+    for phase in ["slowdown_during_flood", "slowdown_during_capped_flood"] {
+        let r = steady[phase]["p99"].as_f64().unwrap();
+        assert!(r.is_finite() && r > 0.0, "{phase}: {r}");
+    }
+    // Each flooding tenant was refused with its own code, every 429 with a Retry-After.
+    for (tenant, code) in [("flood", "tenant_queue_full"), ("capped", "rate_limited")] {
+        let f = &report["floods"][tenant];
+        assert!(f["refused_429"].as_u64().unwrap() > 0, "{tenant}: {f}");
+        assert!(f["codes"][code].as_u64().unwrap() > 0, "{tenant}: {f}");
+        assert_eq!(f["retry_after_s"]["missing"], 0, "{tenant}: {f}");
+        assert!(
+            f["retry_after_s"]["min"].as_f64().unwrap() >= 1.0,
+            "{tenant}"
+        );
+        assert_eq!(f["other_failures"], 0, "{tenant}: {f}");
+    }
+    assert!(report["capacity_per_s"]["three_tenants"].as_f64().unwrap() > 0.0);
+    assert!(table.contains("steady alone"), "{table}");
+    assert_charts(&out, &["latency-cdf.svg"]);
+}
+
+#[test]
 fn run_creates_synthetic_adapters_and_drives_both_loops() {
     let server = ServerSetup::encoder().start();
     let dir = tempfile::tempdir().unwrap();

@@ -203,6 +203,7 @@ pub(super) fn build_report(
         table,
         memory,
         extra,
+        latency_only: false,
     }
 }
 
@@ -225,6 +226,7 @@ mod tests {
                 swap_ms: Some(0.01),
                 merged: Some(false),
                 error: None,
+                retry_after_s: None,
                 warmup: false,
             })
             .collect();

@@ -21,7 +21,7 @@ use switchyard_kernels::WeightFormat;
 
 use crate::engine::{Backbone, Engine, EngineConfig};
 use crate::experiments::{Experiments, SqliteStore, legacy};
-use crate::http::auth::Tenants;
+use crate::http::auth::{Tenants, tenant_limits};
 use crate::http::error::ApiError;
 use crate::http::{AppState, Bounds, SharedState, router};
 use crate::metrics::Metrics;
@@ -185,8 +185,10 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         EngineConfig {
             max_batch_rows: settings.max_batch_rows,
             queue_depth: settings.queue_depth,
+            shared_batch_rows: settings.shared_batch_rows,
             promote_share: settings.promote_share,
             promote_window_rows: settings.promote_window_rows,
+            tenants: tenant_limits(&settings),
         },
         metrics.clone(),
     );
@@ -213,10 +215,12 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         ready: AtomicBool::new(true),
         vital_threads,
     });
+    let niceness = http_niceness();
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
         .thread_name("switchyard-http")
+        .on_thread_start(move || yield_to_the_engine(niceness))
         .build()
         .context("starting the async runtime")?;
     let grace = Duration::from_millis(settings.shutdown_grace_ms);
@@ -231,6 +235,50 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     }
     tracing::info!("stopped");
     result
+}
+
+/// How much lower the HTTP threads' scheduling priority is than the engine thread's (Linux
+/// niceness, added to the process's own).
+const HTTP_NICENESS: i32 = 5;
+
+/// The niceness the HTTP threads get: the calling (main) thread's plus [`HTTP_NICENESS`], at
+/// most 19. Read once, before the runtime starts, because a thread inherits the niceness of the
+/// thread that starts it (the blocking pool's threads are started by HTTP threads).
+#[allow(unsafe_code)]
+fn http_niceness() -> Option<i32> {
+    #[cfg(target_os = "linux")]
+    // SAFETY: getpriority on the calling thread reads only that thread's niceness; errno is
+    // cleared first because -1 is also a valid answer.
+    unsafe {
+        let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+        *libc::__errno_location() = 0;
+        let now = libc::getpriority(libc::PRIO_PROCESS, tid);
+        if *libc::__errno_location() == 0 {
+            return Some((now + HTTP_NICENESS).min(19));
+        }
+    }
+    None
+}
+
+/// Sets the calling thread's CPU priority to `niceness` (on Linux the niceness is per thread; any
+/// user may lower its own priority), so that on a machine with few cores the engine thread, which
+/// computes every answer, goes before the threads that read, refuse and write requests. A tenant
+/// flooding the server with requests that are refused then takes CPU from the other refusals,
+/// not from the batches other tenants wait for. The flood scenario (`switchyard-load fairness`)
+/// measures it.
+#[allow(unsafe_code)]
+fn yield_to_the_engine(niceness: Option<i32>) {
+    #[cfg(target_os = "linux")]
+    if let Some(niceness) = niceness {
+        // SAFETY: setpriority on the calling thread's id changes only that thread's niceness;
+        // no memory is passed. A refusal (it cannot happen when lowering) leaves it as it was.
+        unsafe {
+            let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+            libc::setpriority(libc::PRIO_PROCESS, tid, niceness);
+        }
+    }
+    #[cfg(not(target_os = "linux"))]
+    let _ = niceness;
 }
 
 /// Opens the experiment database (moving an earlier version's `splits.json` into it once) and

@@ -1,6 +1,13 @@
 //! The engine: one dedicated thread that owns the model and does all model compute, fed by a
 //! bounded queue that the HTTP handlers fill (a full queue is their 429).
 //!
+//! Admission first asks the tenant's [`quota`] (requests per second, concurrent requests, tokens
+//! per minute); the job then carries its [`Ticket`] into the [`queue`], which keeps one lane per
+//! tenant and serves them by start-time fair queueing (costs in rows for embedding jobs, in tokens
+//! for generations), so one tenant's flood waits behind itself and a light tenant's request goes
+//! next. Each tenant may hold only its share of the queue; past its quota or its share a request
+//! is refused with the time to wait.
+//!
 //! An encoder engine gathers queued embedding jobs into one batch up to the row limit, rows of
 //! different adapters side by side; a batch that uses only one adapter, when the promotion
 //! policy says that adapter dominates recent traffic, runs its merged variant instead. A decoder
@@ -10,15 +17,17 @@
 
 pub mod detok;
 pub mod policy;
+pub mod queue;
+pub mod quota;
 
 use std::panic::AssertUnwindSafe;
 use std::sync::Arc;
-use std::sync::atomic::{AtomicUsize, Ordering};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use switchyard_adapters::registry::{AdapterHandle, MergedHandle, Registry};
 use switchyard_adapters::{Adapter, MergedWeights};
+use switchyard_config::Quota;
 use tokio::sync::{mpsc, oneshot};
 
 use crate::metrics::Metrics;
@@ -30,6 +39,8 @@ use crate::model::rows_for_sequences;
 use crate::model::sampling::{Sampler, SamplingParams};
 use detok::Detokenizer;
 use policy::PromotionPolicy;
+use queue::{Budget, Cost, FairQueue, QueueLimits, Refused};
+use quota::{Permit, QuotaRefusal, Quotas};
 
 /// The model the engine owns: one family per server. Only one exists per process, so the size
 /// difference between the variants costs nothing.
@@ -76,21 +87,125 @@ impl Backbone {
 pub struct EngineConfig {
     pub max_batch_rows: usize,
     pub queue_depth: usize,
+    /// With several tenants, the most rows in one encoder batch.
+    pub shared_batch_rows: usize,
     pub promote_share: f64,
     pub promote_window_rows: usize,
+    /// Each tenant's name and quota, by tenant index
+    /// ([`crate::http::auth::tenant_limits`]).
+    pub tenants: Vec<TenantLimits>,
+}
+
+/// One tenant as the engine knows it: a name for the metrics, and its quota.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TenantLimits {
+    pub name: String,
+    pub quota: Quota,
 }
 
 /// Why the engine refused or failed a job.
 #[derive(Debug, Clone, thiserror::Error)]
 pub enum EngineError {
-    #[error("the queue is full ({0} jobs waiting); retry shortly")]
-    QueueFull(usize),
+    #[error("the queue is full ({waiting} requests waiting); retry in about {}", quota::wait_text(*retry_after))]
+    QueueFull {
+        waiting: usize,
+        retry_after: Duration,
+    },
+    #[error("this key already has {waiting} requests waiting, its share of the queue; retry in about {}", quota::wait_text(*retry_after))]
+    TenantQueueFull {
+        waiting: usize,
+        retry_after: Duration,
+    },
+    #[error("{refusal}")]
+    OverQuota {
+        refusal: QuotaRefusal,
+        retry_after: Duration,
+    },
     #[error("the engine is shutting down")]
     ShuttingDown,
     #[error("the request's deadline passed before it could run")]
     DeadlineExceeded,
     #[error("model computation failed: {0}")]
     Compute(String),
+}
+
+impl EngineError {
+    /// The stable code of a refusal before the job was queued (a quota or the queue's bounds),
+    /// as the API and the refusals metric name it; `None` for other errors.
+    pub fn refusal_code(&self) -> Option<&'static str> {
+        Some(match self {
+            EngineError::QueueFull { .. } => "queue_full",
+            EngineError::TenantQueueFull { .. } => "tenant_queue_full",
+            EngineError::OverQuota { refusal, .. } => match refusal {
+                QuotaRefusal::Rate { .. } => "rate_limited",
+                QuotaRefusal::Concurrency { .. } => "too_many_in_flight",
+                QuotaRefusal::Tokens { .. } => "token_quota_spent",
+                QuotaRefusal::TokensNeverFit { .. } => "over_token_quota",
+            },
+            _ => return None,
+        })
+    }
+
+    /// For a refusal that a retry can get past, how long to wait first.
+    pub fn retry_after(&self) -> Option<Duration> {
+        match self {
+            EngineError::QueueFull { retry_after, .. }
+            | EngineError::TenantQueueFull { retry_after, .. } => Some(*retry_after),
+            EngineError::OverQuota {
+                refusal: QuotaRefusal::TokensNeverFit { .. },
+                ..
+            } => None,
+            EngineError::OverQuota { retry_after, .. } => Some(*retry_after),
+            _ => None,
+        }
+    }
+}
+
+/// A wait in whole seconds, rounded up, at least 1: what a `Retry-After` header can say.
+pub fn whole_seconds(wait: Duration) -> u64 {
+    let s = wait.as_secs_f64().ceil();
+    if s.is_finite() { (s as u64).max(1) } else { 1 }
+}
+
+/// A request's admission: which tenant's lane its job joins, its hold on that tenant's quota
+/// (given back when the job is dropped; see [`quota::Permit`]) and the place it holds in that
+/// lane (given back if the ticket is dropped before its job is queued).
+#[derive(Debug)]
+pub struct Ticket {
+    pub tenant: usize,
+    permit: Permit,
+    place: HeldPlace,
+}
+
+/// A place held in a lane of the queue for a job not built yet. Queueing the job uses it up;
+/// dropping it unused (the adapter failed to load, the client went away) gives it back.
+struct HeldPlace {
+    queue: Option<Arc<FairQueue<Job>>>,
+    lane: usize,
+}
+
+impl HeldPlace {
+    /// The queue, for the one push into this place; afterwards there is nothing to give back.
+    fn take(&mut self) -> Option<Arc<FairQueue<Job>>> {
+        self.queue.take()
+    }
+}
+
+impl Drop for HeldPlace {
+    fn drop(&mut self) {
+        if let Some(q) = self.queue.take() {
+            q.release(self.lane);
+        }
+    }
+}
+
+impl std::fmt::Debug for HeldPlace {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("HeldPlace")
+            .field("lane", &self.lane)
+            .field("held", &self.queue.is_some())
+            .finish()
+    }
 }
 
 /// Timings every answer reports.
@@ -111,6 +226,7 @@ pub struct EmbedOutput {
 }
 
 pub struct EmbedJob {
+    pub ticket: Ticket,
     pub ids: Vec<Vec<u32>>,
     pub adapter: Option<AdapterHandle>,
     pub admitted: Instant,
@@ -143,6 +259,7 @@ pub enum GenEvent {
 }
 
 pub struct GenerateJob {
+    pub ticket: Ticket,
     pub prompt_ids: Vec<u32>,
     pub adapter: Option<AdapterHandle>,
     pub sampling: SamplingParams,
@@ -158,12 +275,34 @@ pub enum Job {
     Generate(GenerateJob),
 }
 
+impl Job {
+    fn ticket(&mut self) -> &mut Ticket {
+        match self {
+            Job::Embed(j) => &mut j.ticket,
+            Job::Generate(j) => &mut j.ticket,
+        }
+    }
+}
+
+/// What a job costs in its tenant's lane: rows for an embedding job, the prompt and the most
+/// tokens it may generate for a generation.
+impl Cost for Job {
+    fn cost(&self) -> u64 {
+        match self {
+            Job::Embed(j) => j.ids.len() as u64,
+            Job::Generate(j) => (j.prompt_ids.len() + j.limit) as u64,
+        }
+    }
+}
+
 /// The handlers' side of the engine.
 pub struct Engine {
-    tx: Option<mpsc::Sender<Job>>,
-    depth: Arc<AtomicUsize>,
+    queue: Arc<FairQueue<Job>>,
+    quotas: Quotas,
+    /// Tenant names by index, for the refusals metric.
+    names: Vec<String>,
+    metrics: Arc<Metrics>,
     thread: Option<JoinHandle<()>>,
-    queue_depth: usize,
 }
 
 impl std::fmt::Debug for Engine {
@@ -182,41 +321,136 @@ impl Engine {
         config: EngineConfig,
         metrics: Arc<Metrics>,
     ) -> Engine {
-        let (tx, rx) = mpsc::channel(config.queue_depth.max(1));
-        let depth = Arc::new(AtomicUsize::new(0));
+        let tenants = config.tenants.len().max(1);
+        let queue = Arc::new(FairQueue::new(
+            tenants,
+            QueueLimits::shared(config.queue_depth, tenants),
+        ));
+        let mut limits = config.tenants.clone();
+        limits.resize(
+            tenants,
+            TenantLimits {
+                name: "default".to_owned(),
+                quota: Quota::default(),
+            },
+        );
+        let quota_list: Vec<Quota> = limits.iter().map(|t| t.quota).collect();
+        let names = limits.into_iter().map(|t| t.name).collect();
         let worker = Worker {
             backbone,
             registry,
             policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
-            config: config.clone(),
-            metrics,
-            depth: depth.clone(),
+            config,
+            metrics: Arc::clone(&metrics),
+            queue: Arc::clone(&queue),
         };
         let thread = std::thread::Builder::new()
             .name("switchyard-engine".to_owned())
-            .spawn(move || worker.run(rx))
+            .spawn(move || worker.run())
             .expect("spawn the engine thread");
         Engine {
-            tx: Some(tx),
-            depth,
+            queue,
+            quotas: Quotas::new(&quota_list, Instant::now()),
+            names,
+            metrics,
             thread: Some(thread),
-            queue_depth: config.queue_depth,
         }
     }
 
-    /// Queues a job, or refuses it at once when the queue is full.
-    pub fn try_submit(&self, job: Job) -> Result<(), EngineError> {
-        let tx = self.tx.as_ref().ok_or(EngineError::ShuttingDown)?;
-        match tx.try_send(job) {
-            Ok(()) => {
-                self.depth.fetch_add(1, Ordering::SeqCst);
-                Ok(())
+    /// Admits a request of `tenant` that needs `tokens`: under the tenant's quota, and with a
+    /// place held in the tenant's lane of the queue. The server calls this before it resolves
+    /// the request's adapter, so a request that would be refused never loads one (nor evicts
+    /// another to make room). The job built for it carries the ticket; a ticket dropped before
+    /// its job is queued gives back its place and the tokens it held.
+    pub fn reserve(&self, tenant: usize, tokens: u64) -> Result<Ticket, EngineError> {
+        match self.quotas.reserve(tenant, tokens, Instant::now()) {
+            Ok(mut permit) => match self.queue.hold(tenant) {
+                Ok(()) => Ok(Ticket {
+                    tenant,
+                    permit,
+                    place: HeldPlace {
+                        queue: Some(Arc::clone(&self.queue)),
+                        lane: tenant,
+                    },
+                }),
+                Err(why) => {
+                    // Refused after the quota admitted it: it no longer counts against it.
+                    permit.cancel();
+                    drop(permit);
+                    Err(self.queue_refusal(tenant, why))
+                }
+            },
+            Err(refusal) => {
+                let retry_after = refusal
+                    .wait()
+                    .or_else(|| self.queue.wait_estimate(Some(tenant)))
+                    .unwrap_or(Duration::from_secs(1));
+                Err(self.refused(
+                    tenant,
+                    EngineError::OverQuota {
+                        refusal,
+                        retry_after,
+                    },
+                ))
             }
-            Err(mpsc::error::TrySendError::Full(_)) => {
-                Err(EngineError::QueueFull(self.queue_depth))
-            }
-            Err(mpsc::error::TrySendError::Closed(_)) => Err(EngineError::ShuttingDown),
         }
+    }
+
+    /// Refuses a request of `tenant` at once when its lane of the queue has no place free, so
+    /// that a flooding tenant's excess is answered before any work is spent on it (tokenising
+    /// it, checking its quota). A hint: [`Engine::reserve`] holds the place and decides.
+    pub fn check_room(&self, tenant: usize) -> Result<(), EngineError> {
+        self.queue
+            .room(tenant)
+            .map_err(|why| self.queue_refusal(tenant, why))
+    }
+
+    /// Counts a refusal of `tenant`'s request and passes it on.
+    fn refused(&self, tenant: usize, e: EngineError) -> EngineError {
+        if let Some(reason) = e.refusal_code() {
+            self.metrics.refused(&self.names[tenant], reason);
+        }
+        e
+    }
+
+    /// Queues a job in the place its ticket holds. Refused only when the server began shutting
+    /// down meanwhile; a refused job's request no longer counts against the tenant's quota.
+    pub fn try_submit(&self, mut job: Job) -> Result<(), EngineError> {
+        let lane = job.ticket().tenant;
+        let pushed = match job.ticket().place.take() {
+            Some(queue) => queue.push_held(lane, job),
+            // A ticket whose place was used already: queue it within the bounds, as any job.
+            None => self.queue.push(lane, job),
+        };
+        let (why, mut job) = match pushed {
+            Ok(()) => return Ok(()),
+            Err(refused) => refused,
+        };
+        job.ticket().permit.cancel();
+        drop(job);
+        Err(self.queue_refusal(lane, why))
+    }
+
+    /// The error for a request of `lane` the queue refused, counted.
+    fn queue_refusal(&self, lane: usize, why: Refused) -> EngineError {
+        let limits = self.queue.limits();
+        let wait = |lane| {
+            self.queue
+                .wait_estimate(lane)
+                .unwrap_or(Duration::from_secs(1))
+        };
+        let e = match why {
+            Refused::Closed => EngineError::ShuttingDown,
+            Refused::LaneFull => EngineError::TenantQueueFull {
+                waiting: limits.per_lane,
+                retry_after: wait(Some(lane)),
+            },
+            Refused::Full => EngineError::QueueFull {
+                waiting: limits.total,
+                retry_after: wait(None),
+            },
+        };
+        self.refused(lane, e)
     }
 
     /// Whether the engine thread is alive (readiness turns 503 if it is not).
@@ -226,12 +460,12 @@ impl Engine {
 
     /// Jobs waiting for the engine thread.
     pub fn queued(&self) -> usize {
-        self.depth.load(Ordering::SeqCst)
+        self.queue.len()
     }
 
     /// Stops taking jobs, lets the engine finish what it holds, and waits for it.
     pub fn shutdown(&mut self) {
-        self.tx.take();
+        self.queue.close();
         if let Some(t) = self.thread.take() {
             let _ = t.join();
         }
@@ -250,7 +484,7 @@ struct Worker {
     policy: PromotionPolicy,
     config: EngineConfig,
     metrics: Arc<Metrics>,
-    depth: Arc<AtomicUsize>,
+    queue: Arc<FairQueue<Job>>,
 }
 
 fn encoder_cannot_generate() -> EngineError {
@@ -264,20 +498,18 @@ fn adapter_key(h: &Option<AdapterHandle>) -> String {
 }
 
 impl Worker {
-    fn run(mut self, rx: mpsc::Receiver<Job>) {
+    fn run(mut self) {
         let backbone = self.backbone.clone();
         match &*backbone {
-            Backbone::Encoder(e) => self.run_encoder(e, rx),
-            Backbone::Decoder(g) => self.run_decoder(g, rx),
+            Backbone::Encoder(e) => self.run_encoder(e),
+            Backbone::Decoder(g) => self.run_decoder(g),
         }
         tracing::info!("engine stopped");
     }
 
+    /// The queue-depth gauge, after a take.
     fn took(&self) {
-        self.depth.fetch_sub(1, Ordering::SeqCst);
-        self.metrics
-            .queue_depth
-            .set(self.depth.load(Ordering::SeqCst) as i64);
+        self.metrics.queue_depth.set(self.queue.len() as i64);
     }
 
     /// The merged variant to run a batch that uses only `handle`, when the policy promotes it.
@@ -306,48 +538,38 @@ impl Worker {
         }
     }
 
-    fn run_encoder(&mut self, e: &Embedder, mut rx: mpsc::Receiver<Job>) {
-        let mut pending: Option<EmbedJob> = None;
-        loop {
-            let first = match pending.take() {
-                Some(j) => j,
-                None => match rx.blocking_recv() {
-                    Some(Job::Embed(j)) => {
-                        self.took();
-                        j
-                    }
-                    Some(Job::Generate(j)) => {
-                        self.took();
-                        let _ = j.events.send(GenEvent::Failed(encoder_cannot_generate()));
-                        continue;
-                    }
-                    None => return,
-                },
-            };
-            let mut batch = vec![first];
-            let mut rows: usize = batch[0].ids.len();
-            while rows < self.config.max_batch_rows {
-                match rx.try_recv() {
-                    Ok(Job::Embed(j)) => {
-                        self.took();
-                        if rows + j.ids.len() > self.config.max_batch_rows {
-                            pending = Some(j);
-                            break;
-                        }
-                        rows += j.ids.len();
-                        batch.push(j);
-                    }
-                    Ok(Job::Generate(j)) => {
-                        self.took();
+    /// Batches of up to `max_batch_rows` rows, taken from the queue in fair order. With several
+    /// tenants a batch holds at most `shared_batch_rows` rows, so what a request finds running
+    /// ahead of it is a few rows, not a full batch of someone else's; small batches cost a few
+    /// per cent of throughput on a CPU. A single job larger than the batch runs alone, in chunks.
+    fn run_encoder(&mut self, e: &Embedder) {
+        let rows = if self.config.tenants.len() > 1 {
+            self.config
+                .shared_batch_rows
+                .min(self.config.max_batch_rows)
+        } else {
+            self.config.max_batch_rows
+        };
+        let budget = Budget {
+            cost: rows.max(1) as u64,
+            jobs: usize::MAX,
+        };
+        while let Some(jobs) = self.queue.take(budget) {
+            self.took();
+            let mut batch = Vec::with_capacity(jobs.len());
+            for job in jobs {
+                match job {
+                    Job::Embed(j) => batch.push(j),
+                    Job::Generate(j) => {
                         let _ = j.events.send(GenEvent::Failed(encoder_cannot_generate()));
                     }
-                    Err(_) => break,
                 }
             }
             // A panic in one batch (a bug in model code) fails that batch's requests, whose
             // reply channels drop, and the engine goes on with the next.
-            if std::panic::catch_unwind(AssertUnwindSafe(|| self.run_embed_batch(e, batch)))
-                .is_err()
+            if !batch.is_empty()
+                && std::panic::catch_unwind(AssertUnwindSafe(|| self.run_embed_batch(e, batch)))
+                    .is_err()
             {
                 tracing::error!(
                     "an embedding batch panicked; its requests failed, the engine goes on"
@@ -365,6 +587,10 @@ impl Worker {
         }
         if live.is_empty() {
             return;
+        }
+        let mut live = live;
+        for j in &mut live {
+            j.ticket.permit.spend_all();
         }
         let _span = tracing::trace_span!("embed_batch", jobs = live.len()).entered();
         let first_key = adapter_key(&live[0].adapter);
@@ -437,33 +663,31 @@ impl Worker {
         }
     }
 
-    fn run_decoder(&mut self, g: &Generator, mut rx: mpsc::Receiver<Job>) {
+    /// Continuous batching: up to `max_batch_rows` live sequences; free places are filled from
+    /// the queue's round robin over tenants between steps. Blocks only when nothing is running.
+    fn run_decoder(&mut self, g: &Generator) {
         let mut live: Vec<Sequence> = Vec::new();
-        let mut closed = false;
         let eos = g.model().config.eos_ids();
         loop {
-            // Admit: block only when nothing is running.
-            if live.is_empty() {
-                if closed {
-                    return;
-                }
-                match rx.blocking_recv() {
-                    Some(job) => {
-                        self.took();
-                        self.admit_guarded(g, job, &mut live, &eos);
-                    }
+            let budget = Budget {
+                cost: u64::MAX,
+                jobs: self.config.max_batch_rows.saturating_sub(live.len()),
+            };
+            let jobs = if live.is_empty() {
+                match self.queue.take(budget) {
+                    Some(jobs) => jobs,
                     None => return,
                 }
+            } else if budget.jobs > 0 {
+                self.queue.try_take(budget)
+            } else {
+                Vec::new()
+            };
+            if !jobs.is_empty() {
+                self.took();
             }
-            while !closed && live.len() < self.config.max_batch_rows {
-                match rx.try_recv() {
-                    Ok(job) => {
-                        self.took();
-                        self.admit_guarded(g, job, &mut live, &eos);
-                    }
-                    Err(mpsc::error::TryRecvError::Empty) => break,
-                    Err(mpsc::error::TryRecvError::Disconnected) => closed = true,
-                }
+            for job in jobs {
+                self.admit_guarded(g, job, &mut live, &eos);
             }
             // Drop sequences whose client went away, or whose deadline passed.
             let now = Instant::now();
@@ -527,6 +751,7 @@ impl Worker {
             first_token: None,
             job,
         };
+        seq.job.ticket.permit.spend(seq.job.prompt_ids.len() as u64);
         let adapter = seq.job.adapter.as_ref().map(|h| h.adapter().clone());
         let rows = rows_for_sequences(std::slice::from_ref(&adapter), &[seq.job.prompt_ids.len()]);
         self.policy.record(&adapter_key(&seq.job.adapter), 1);
@@ -624,6 +849,7 @@ impl Sequence {
             metrics.first_token_seconds.observe(d.as_secs_f64());
         }
         metrics.generated_tokens.inc();
+        self.job.ticket.permit.spend(1);
         self.last = token;
         if eos.contains(&token) {
             self.finish("eos", g, metrics);

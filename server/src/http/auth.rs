@@ -13,7 +13,9 @@ use std::sync::Arc;
 
 use sha2::{Digest, Sha256};
 use subtle::{Choice, ConditionallySelectable, ConstantTimeEq};
-use switchyard_config::TenantSettings;
+use switchyard_config::{Settings, TenantSettings};
+
+use crate::engine::TenantLimits;
 
 /// The name that addresses the base model; every tenant may use it.
 const BASE: &str = "base";
@@ -40,6 +42,9 @@ pub enum AuthError {
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Tenant {
     pub name: String,
+    /// Its place in the configured list (0 for the open tenant): the engine keeps each tenant's
+    /// queue and quota by it ([`tenant_limits`]).
+    pub index: usize,
     patterns: Vec<String>,
 }
 
@@ -85,6 +90,7 @@ impl Tenants {
             let index = u32::try_from(index).expect("fewer than 2^32 tenants");
             tenants.push(Arc::new(Tenant {
                 name: t.name.clone(),
+                index: index as usize,
                 patterns: t.adapters.clone(),
             }));
             keys.extend(t.keys.iter().map(|k| (digest(k), index)));
@@ -92,6 +98,7 @@ impl Tenants {
         let open = settings.is_empty().then(|| {
             Arc::new(Tenant {
                 name: OPEN_TENANT.to_owned(),
+                index: 0,
                 patterns: vec!["*".to_owned()],
             })
         });
@@ -137,6 +144,26 @@ impl Tenants {
         }
         (bool::from(matched).then_some(owner as usize), compared)
     }
+}
+
+/// Each tenant's name and quota, in the order [`Tenants`] numbers them ([`Tenant::index`]): the
+/// configured tenants in the file's order, or the one open tenant (with `[quota]`'s limits) when
+/// none are configured. The engine keeps its per-tenant queues and quotas in this order.
+pub fn tenant_limits(settings: &Settings) -> Vec<TenantLimits> {
+    if settings.tenants.is_empty() {
+        return vec![TenantLimits {
+            name: OPEN_TENANT.to_owned(),
+            quota: settings.quota,
+        }];
+    }
+    settings
+        .tenants
+        .iter()
+        .map(|t| TenantLimits {
+            name: t.name.clone(),
+            quota: t.quota,
+        })
+        .collect()
 }
 
 /// Keeps key digests out of `{:?}`.
@@ -223,11 +250,13 @@ mod tests {
                 name: "ridgeline-north".into(),
                 keys: vec![NORTH_KEY.into(), NORTH_KEY_2.into()],
                 adapters: vec!["north-*".into(), "shared-faq".into()],
+                quota: Default::default(),
             },
             TenantSettings {
                 name: "ridgeline-south".into(),
                 keys: vec![SOUTH_KEY.into()],
                 adapters: vec!["south-*".into()],
+                quota: Default::default(),
             },
         ])
     }
@@ -235,6 +264,7 @@ mod tests {
     fn tenant(patterns: &[&str]) -> Tenant {
         Tenant {
             name: "t".into(),
+            index: 0,
             patterns: patterns.iter().map(|p| p.to_string()).collect(),
         }
     }
@@ -247,13 +277,13 @@ mod tests {
     fn each_key_authenticates_its_own_tenant() {
         let tenants = ridgeline();
         assert!(!tenants.is_open());
-        for (key, name) in [
-            (NORTH_KEY, "ridgeline-north"),
-            (NORTH_KEY_2, "ridgeline-north"),
-            (SOUTH_KEY, "ridgeline-south"),
+        for (key, name, index) in [
+            (NORTH_KEY, "ridgeline-north", 0),
+            (NORTH_KEY_2, "ridgeline-north", 0),
+            (SOUTH_KEY, "ridgeline-south", 1),
         ] {
             let t = tenants.authenticate(Some(&bearer(key))).unwrap();
-            assert_eq!(t.name, name, "{key}");
+            assert_eq!((t.name.as_str(), t.index), (name, index), "{key}");
         }
     }
 

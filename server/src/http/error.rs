@@ -105,9 +105,24 @@ impl From<AuthError> for ApiError {
 
 impl From<EngineError> for ApiError {
     fn from(e: EngineError) -> Self {
-        match e {
-            EngineError::QueueFull(_) => {
-                Self::new(StatusCode::TOO_MANY_REQUESTS, "queue_full", e.to_string()).retry_after(1)
+        let retry_after_s = e
+            .retry_after()
+            .map(|wait| u32::try_from(crate::engine::whole_seconds(wait)).unwrap_or(u32::MAX));
+        match &e {
+            // A refusal a retry can get past is a 429 with its wait; a request larger than a
+            // whole quota never gets past, and is a 413.
+            EngineError::QueueFull { .. }
+            | EngineError::TenantQueueFull { .. }
+            | EngineError::OverQuota { .. } => {
+                let status = match retry_after_s {
+                    Some(_) => StatusCode::TOO_MANY_REQUESTS,
+                    None => StatusCode::PAYLOAD_TOO_LARGE,
+                };
+                let code = e.refusal_code().unwrap_or("refused");
+                Self {
+                    retry_after_s,
+                    ..Self::new(status, code, e.to_string())
+                }
             }
             EngineError::ShuttingDown => Self::new(
                 StatusCode::SERVICE_UNAVAILABLE,

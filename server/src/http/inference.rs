@@ -17,7 +17,7 @@ use serde_json::{Value, json};
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
-use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Timings};
+use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
 use crate::experiments::responses::Receipt;
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
@@ -211,27 +211,36 @@ impl<'a> Target<'a> {
     }
 }
 
-/// What the engine's job needs from admission: who serves it, and the request's clock (started
-/// before the adapter was resolved, so the swap counts) and deadline.
+/// What the engine's job needs from admission: its tenant's ticket, who serves it, and the
+/// request's clock (started before the adapter was resolved, so the swap counts) and deadline.
 struct Admission {
+    ticket: Ticket,
     adapter: Option<AdapterHandle>,
     admitted: Instant,
     swap: Duration,
     deadline: Instant,
 }
 
-/// Routes the request to `adapter@version` and submits the job `job` builds (429 when the
-/// engine's queue is full). Both inference paths admit through here.
+/// Admits the request first, then loads: checks the tenant's quota for `tokens` tokens and holds
+/// a place in its lane of the queue (429 with Retry-After past the quota, the tenant's share of
+/// the queue, or a full queue), and only then routes the request to `adapter@version`, which may
+/// load the adapter and evict others. So a refused request never costs a load. If routing fails
+/// the ticket drops and gives back its place and its tokens (the request still counts against
+/// `requests_per_second`). Then it queues the job `job` builds in the held place. Both inference
+/// paths, and a split's arms, admit through here.
 async fn admit(
     state: &SharedState,
     tenant: &Tenant,
     target: Target<'_>,
     response_id: &str,
+    tokens: u64,
     job: impl FnOnce(Admission) -> Job,
 ) -> Result<Routed, ApiError> {
+    let ticket = state.engine.reserve(tenant.index, tokens)?;
     let mut routed = route(state, tenant, target, response_id).await?;
     let admitted = Instant::now() - routed.swap;
     state.engine.try_submit(job(Admission {
+        ticket,
         adapter: routed.handle.clone(),
         admitted,
         swap: routed.swap,
@@ -372,6 +381,8 @@ async fn run_embed(
 ) -> Result<(Routed, crate::engine::EmbedOutput), ApiError> {
     encoder(state, endpoint)?;
     body.check(&state.bounds)?;
+    // A tenant whose share of the queue is full is refused before its texts are tokenised.
+    state.engine.check_room(tenant.index)?;
     let backbone = state.backbone.clone();
     let texts = body.texts;
     let (ids, counts) = off_the_runtime(move || {
@@ -397,8 +408,10 @@ async fn run_embed(
     }
     let (reply, rx) = oneshot::channel();
     let target = Target::of(&body.adapter, &body.split, &body.subject);
-    let routed = admit(state, tenant, target, id, |a| {
+    let tokens = ids.iter().map(|t| t.len() as u64).sum();
+    let routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Embed(EmbedJob {
+            ticket: a.ticket,
             ids,
             adapter: a.adapter,
             admitted: a.admitted,
@@ -635,6 +648,8 @@ async fn start_generation(
         ));
     };
     let (limit, sampling) = body.check(&state.bounds)?;
+    // A tenant whose share of the queue is full is refused before its prompt is tokenised.
+    state.engine.check_room(tenant.index)?;
     let positions = g.model().config.max_position_embeddings;
     let backbone = state.backbone.clone();
     let prompt = body.prompt;
@@ -663,8 +678,12 @@ async fn start_generation(
     }
     let (tx, rx) = mpsc::unbounded_channel();
     let target = Target::of(&body.adapter, &body.split, &body.subject);
-    let routed = admit(state, tenant, target, id, |a| {
+    // The most the generation can use: its prompt and max_tokens; what it does not generate is
+    // given back when it ends.
+    let tokens = (prompt_ids.len() + limit) as u64;
+    let routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Generate(GenerateJob {
+            ticket: a.ticket,
             prompt_ids,
             adapter: a.adapter,
             sampling,
