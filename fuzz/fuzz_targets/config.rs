@@ -17,7 +17,9 @@ use std::net::SocketAddr;
 use std::path::Path;
 
 use libfuzzer_sys::fuzz_target;
-use switchyard_config::{ConfigError, MAX_BATCH_ROWS_LIMIT, Overrides, Settings, WeightFormat};
+use switchyard_config::{
+    ConfigError, MAX_BATCH_ROWS_LIMIT, Overrides, Quota, Settings, WeightFormat,
+};
 
 use switchyard_fuzz::split_at_line;
 
@@ -42,6 +44,8 @@ fn check_ranges(s: &Settings) {
     assert!(s.threads <= 1024);
     assert!((1..=MAX_BATCH_ROWS_LIMIT).contains(&s.max_batch_rows));
     assert!((1..=100_000).contains(&s.queue_depth));
+    assert!((1..=MAX_BATCH_ROWS_LIMIT).contains(&s.shared_batch_rows));
+    check_quota(&s.quota);
     assert!((1..=3_600_000).contains(&s.request_timeout_ms));
     assert!((1024..=GIB).contains(&s.inference_body_bytes));
     assert!((1024..=16 * GIB).contains(&s.upload_body_bytes));
@@ -74,6 +78,7 @@ fn check_ranges(s: &Settings) {
             assert!(secret_ok(k));
             assert!(keys.insert(k.as_str()), "keys are unique");
         }
+        check_quota(&t.quota);
         for a in &t.adapters {
             assert!(name_ok(a, true), "adapter pattern {a:?}");
         }
@@ -83,6 +88,25 @@ fn check_ranges(s: &Settings) {
         assert!(
             !keys.contains(token.as_str()),
             "the admin token is no tenant's key"
+        );
+    }
+}
+
+/// Every limit a quota sets is within its documented range (README, "Tenants share the server").
+fn check_quota(q: &Quota) {
+    if let Some(rate) = q.requests_per_second {
+        assert!(
+            rate > 0.0 && rate <= 1_000_000.0,
+            "requests_per_second {rate}"
+        );
+    }
+    if let Some(n) = q.concurrent_requests {
+        assert!((1..=1_000_000).contains(&n), "concurrent_requests {n}");
+    }
+    if let Some(n) = q.tokens_per_minute {
+        assert!(
+            (1..=1_000_000_000_000).contains(&n),
+            "tokens_per_minute {n}"
         );
     }
 }
