@@ -32,6 +32,17 @@ impl Page {
 
     fn unset(&mut self, key: &SettingKey, why: &str) {
         self.open(key);
+        // A TOML comment may hold no control character but a tab: escape any (a path may).
+        let why: String = why
+            .chars()
+            .map(|c| {
+                if c.is_control() && c != '\t' {
+                    c.escape_default().to_string()
+                } else {
+                    c.to_string()
+                }
+            })
+            .collect();
         let _ = writeln!(self.text, "# {} is not set: {why}", key.name);
     }
 
@@ -107,10 +118,7 @@ pub(crate) fn render(s: &Settings) -> String {
         }
         Some(file) => page.unset(
             &read::EXPERIMENTS_DATABASE,
-            &format!(
-                "experiments are kept in {} (the store folder)",
-                file.display()
-            ),
+            &format!("experiments are kept in {} (the store folder)", path(&file)),
         ),
         None => page.unset(&read::EXPERIMENTS_DATABASE, "no store folder either"),
     }

@@ -861,3 +861,28 @@ fn rendered_quotas_load_back_unchanged() {
     let page = page.replace("\"<redacted, 20 chars>\"", &format!("\"{NORTH_KEY}\""));
     assert_eq!(load_text(&page, &[]).unwrap(), s, "{page}");
 }
+
+/// Found by the config fuzz target: a store folder whose name held a control character (here a
+/// NUL, from `SWITCHYARD_STORE_DIR`) went raw into the rendered comment naming the experiment
+/// database, so `config check` printed text that is not TOML.
+#[test]
+fn store_dir_with_a_control_character_broke_the_rendered_comment() {
+    let s = load_text(
+        "[model]\ndir = \"models/m\"\n",
+        &[("SWITCHYARD_STORE_DIR", "store dir/\u{0}\u{7}x")],
+    )
+    .unwrap();
+    let page = s.render_effective();
+    let table: toml::Table = page
+        .parse()
+        .unwrap_or_else(|e| panic!("the rendered settings are TOML: {e}\n{page}"));
+    assert_eq!(
+        table["store"]["dir"].as_str(),
+        Some("store dir/\u{0}\u{7}x"),
+        "{page}"
+    );
+    assert!(
+        page.contains("experiments are kept in \"store dir/"),
+        "{page}"
+    );
+}
