@@ -256,7 +256,7 @@ impl<'a> Sources<'a> {
                 continue; // checked where tenants are read
             }
             if !KEYS.iter().any(|k| k.section == top) {
-                return Err(unknown(top, &hint_for_top_level(top)));
+                return Err(unknown(&key_as_written(top), &hint_for_top_level(top)));
             }
             let Value::Table(section) = value else {
                 return Err(ConfigError::invalid(
@@ -271,7 +271,7 @@ impl<'a> Sources<'a> {
             for name in section.keys() {
                 if !KEYS.iter().any(|k| k.section == top && k.name == name) {
                     return Err(unknown(
-                        &format!("{top}.{name}"),
+                        &format!("{top}.{}", key_as_written(name)),
                         &hint_in_section(top, name),
                     ));
                 }
@@ -475,6 +475,20 @@ fn renamed(old: &str) -> Option<String> {
         .iter()
         .find(|(was, _)| *was == old)
         .map(|(_, now)| format!("; it was renamed: use {now}"))
+}
+
+/// A key as TOML writes it: bare when it can be, else quoted and escaped (an empty key is `""`),
+/// so an error never names an invisible or ambiguous key.
+fn key_as_written(key: &str) -> String {
+    let bare = !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-');
+    if bare {
+        key.to_owned()
+    } else {
+        toml::Value::String(key.to_owned()).to_string()
+    }
 }
 
 fn hint_for_top_level(top: &str) -> String {

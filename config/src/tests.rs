@@ -886,3 +886,13 @@ fn store_dir_with_a_control_character_broke_the_rendered_comment() {
         "{page}"
     );
 }
+
+/// Found by the config fuzz target: a file with an empty key (`"" = 30`) was refused as
+/// "unknown key ``", naming no key at all.
+#[test]
+fn empty_key_was_refused_without_naming_it() {
+    let err = refusal("\"\" = 30\n", &[]);
+    assert!(err.contains("`\"\"`"), "{err}");
+    let err = refusal("[engine]\n\"\" = 30\n", &[]);
+    assert!(err.contains("`engine.\"\"`"), "{err}");
+}
