@@ -90,6 +90,16 @@ pub struct SoakArgs {
     /// How many of the most popular adapters take turns being published and rolled back.
     #[arg(long, default_value_t = 20, value_parser = parse_positive_count)]
     pub flipped_adapters: usize,
+    /// The server's memory for resident adapter factors, in MiB. The default holds about a
+    /// fifth of the 1,000 default adapters (rank 8 on attn.q,attn.v of a 6-layer, 384-wide
+    /// encoder), so the tier fills during the warm-up and then evicts, as a server whose catalogue
+    /// outgrows its memory does; a budget above the catalogue keeps growing as new adapters are
+    /// first asked for, and the memory verdict then measures the catalogue, not the server.
+    #[arg(long, default_value_t = 64, value_parser = parse_positive_count)]
+    pub factor_budget_mib: usize,
+    /// The server's memory for merged variants of popular adapters, in MiB (0 turns merging off).
+    #[arg(long, default_value_t = 64)]
+    pub merged_budget_mib: usize,
     /// Rank of the synthetic adapters.
     #[arg(long, default_value_t = 8, value_parser = parse_positive_count)]
     pub rank: usize,
@@ -137,6 +147,8 @@ pub fn soak(args: &SoakArgs, command_line: &str) -> anyhow::Result<crate::soak::
         model_dir: absolute(&args.model, "--model")?,
         duration: args.duration,
         warmup: args.warmup,
+        factor_budget_bytes: args.factor_budget_mib as u64 * (1 << 20),
+        merged_budget_bytes: args.merged_budget_mib as u64 * (1 << 20),
         window: args.window,
         adapters: args.adapters,
         zipf: args.zipf,
@@ -273,6 +285,11 @@ pub struct FairnessArgs {
     /// Worker threads of a flood's open loop (requests in flight at most).
     #[arg(long, default_value_t = 256, value_parser = parse_positive_count)]
     pub workers: usize,
+    /// CPU niceness (0 to 19) of the flooding client's threads. A real flood comes from other
+    /// machines and costs this one no client CPU; on one machine the load generator's own flood
+    /// threads would compete with the server for its cores. 0 measures that worse case.
+    #[arg(long, default_value_t = 19, value_parser = clap::value_parser!(i32).range(0..=19))]
+    pub flood_client_niceness: i32,
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
 }
@@ -558,6 +575,7 @@ pub fn fairness(args: &FairnessArgs, command_line: &str) -> anyhow::Result<Repor
         flood_factor: args.flood_factor,
         steady_share: args.steady_share,
         workers: args.workers,
+        flood_client_niceness: args.flood_client_niceness,
         seed: args.seed,
         command: command_line.to_owned(),
     })

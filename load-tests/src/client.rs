@@ -42,6 +42,9 @@ pub struct Answer {
     pub status: u16,
     /// `elapsed_ms.swap` of a successful answer.
     pub swap_ms: Option<f64>,
+    /// `elapsed_ms.queue` and `elapsed_ms.total` of a successful answer: the server's own view.
+    pub queue_ms: Option<f64>,
+    pub server_ms: Option<f64>,
     /// `merged` of a successful embed or classify answer.
     pub merged: Option<bool>,
     /// `error.code` of a refusal, or the transport error.
@@ -139,6 +142,8 @@ impl Client {
             Err(e) => Answer {
                 status: 0,
                 swap_ms: None,
+                queue_ms: None,
+                server_ms: None,
                 merged: None,
                 error: Some(e.to_string()),
                 retry_after_s: None,
@@ -217,6 +222,8 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
         Answer {
             status,
             swap_ms: body["elapsed_ms"]["swap"].as_f64(),
+            queue_ms: body["elapsed_ms"]["queue"].as_f64(),
+            server_ms: body["elapsed_ms"]["total"].as_f64(),
             merged: body["merged"].as_bool(),
             error: None,
             retry_after_s: None,
@@ -225,6 +232,8 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
         Answer {
             status,
             swap_ms: None,
+            queue_ms: None,
+            server_ms: None,
             merged: None,
             error: Some(
                 body["error"]["code"]
@@ -251,6 +260,8 @@ mod tests {
             Answer {
                 status: 200,
                 swap_ms: Some(2.5),
+                queue_ms: Some(0.1),
+                server_ms: Some(9.0),
                 merged: Some(true),
                 error: None,
                 retry_after_s: None,

@@ -55,6 +55,9 @@ pub struct Record {
     pub target: usize,
     pub status: u16,
     pub swap_ms: Option<f64>,
+    /// The server's `elapsed_ms.queue` and `elapsed_ms.total` of a successful answer.
+    pub queue_ms: Option<f64>,
+    pub server_ms: Option<f64>,
     pub merged: Option<bool>,
     pub error: Option<String>,
     /// The `Retry-After` of a refusal, in whole seconds.
@@ -73,7 +76,7 @@ impl Record {
 }
 
 /// Everything a run recorded, in completion order.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, Default)]
 pub struct RunRecords {
     pub records: Vec<Record>,
     pub warmup_s: f64,
@@ -102,6 +105,8 @@ impl Shared {
             target,
             status: answer.status,
             swap_ms: answer.swap_ms,
+            queue_ms: answer.queue_ms,
+            server_ms: answer.server_ms,
             merged: answer.merged,
             error: answer.error,
             retry_after_s: answer.retry_after_s,

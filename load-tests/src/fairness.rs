@@ -25,6 +25,7 @@ use std::time::Duration;
 use anyhow::{Context, bail};
 
 use crate::client::{Client, RequestShape};
+use crate::cpu_time::CpuTimes;
 use crate::driver::{Pacing, RunRecords, Workload, drive};
 use crate::mix::{Kind, Mix};
 use crate::report::Report;
@@ -48,6 +49,9 @@ pub struct FairnessSettings {
     pub steady_share: f64,
     /// Worker threads of a flood's open loop (requests in flight at most).
     pub workers: usize,
+    /// Niceness of the flooding client's threads (0 to 19, Linux): a flood from other machines
+    /// costs this machine no client CPU; on one small machine the flood's own client would.
+    pub flood_client_niceness: i32,
     pub seed: u64,
     /// The command line, for the report.
     pub command: String,
@@ -127,6 +131,8 @@ pub struct Measured {
     pub flood: Scenario,
     pub steady_during_capped: Scenario,
     pub capped: Scenario,
+    /// The machine's CPU time during the phases: alone, flood, capped flood (all rounds).
+    pub cpu: [CpuTimes; 3],
 }
 
 /// Runs the scenario and returns its report (not yet written).
@@ -196,27 +202,43 @@ pub fn run_fairness(s: &FairnessSettings) -> anyhow::Result<Report> {
     let steady_pacing = open(steady_rate, 16);
     let flood_pacing = open(flood_rate, s.workers);
     let mut pooled: [Option<Scenario>; 5] = Default::default();
+    // CPU time of the machine during each phase: alone, flood, capped flood.
+    let mut cpu = [CpuTimes::default(); 3];
+    let mut timed = |slot: usize, f: &mut dyn FnMut()| {
+        let before = CpuTimes::now();
+        f();
+        if let (Some(b), Some(a)) = (before, CpuTimes::now()) {
+            cpu[slot] = cpu[slot].plus(&a.since(&b));
+        }
+    };
     for round in 0..plan.rounds {
         let tag = format!("[{}/{}]", round + 1, plan.rounds);
         let seed = s.seed.wrapping_add(round as u64 * 1000);
-        let alone = phase(&plan, &shape, &steady, steady_pacing, seed);
-        let alone = drive(
-            alone.client,
-            &alone.workload,
-            &format!("steady tenant alone {tag}"),
-        );
-        let (with_flood, flood_run) = side_by_side(
-            phase(&plan, &shape, &steady, steady_pacing, seed + 1),
-            phase(&plan, &shape, &flood, flood_pacing, seed + 2),
-            &format!("steady tenant during flood {tag}"),
-            &format!("flood tenant {tag}"),
-        );
-        let (with_capped, capped_run) = side_by_side(
-            phase(&plan, &shape, &steady, steady_pacing, seed + 3),
-            phase(&plan, &shape, &capped, flood_pacing, seed + 4),
-            &format!("steady tenant during capped flood {tag}"),
-            &format!("capped tenant {tag}"),
-        );
+        let mut alone = RunRecords::default();
+        timed(0, &mut || {
+            let p = phase(&plan, &shape, &steady, steady_pacing, seed);
+            alone = drive(p.client, &p.workload, &format!("steady tenant alone {tag}"));
+        });
+        let (mut with_flood, mut flood_run) = Default::default();
+        timed(1, &mut || {
+            (with_flood, flood_run) = side_by_side(
+                phase(&plan, &shape, &steady, steady_pacing, seed + 1),
+                phase(&plan, &shape, &flood, flood_pacing, seed + 2),
+                &format!("steady tenant during flood {tag}"),
+                &format!("flood tenant {tag}"),
+                s.flood_client_niceness,
+            );
+        });
+        let (mut with_capped, mut capped_run) = Default::default();
+        timed(2, &mut || {
+            (with_capped, capped_run) = side_by_side(
+                phase(&plan, &shape, &steady, steady_pacing, seed + 3),
+                phase(&plan, &shape, &capped, flood_pacing, seed + 4),
+                &format!("steady tenant during capped flood {tag}"),
+                &format!("capped tenant {tag}"),
+                s.flood_client_niceness,
+            );
+        });
         let parts = [
             Scenario::new("steady tenant alone", 0, &alone),
             Scenario::new("steady tenant during flood", 0, &with_flood),
@@ -246,6 +268,7 @@ pub fn run_fairness(s: &FairnessSettings) -> anyhow::Result<Report> {
         flood: c,
         steady_during_capped: d,
         capped: e,
+        cpu,
     };
     for steady in [
         &measured.steady_alone,
@@ -296,21 +319,43 @@ fn phase<'a>(
     }
 }
 
-/// Two tenants' workloads at the same time; each returns when its last answer came.
+/// Two tenants' workloads at the same time; each returns when its last answer came. The second
+/// (the flood) runs its threads at `second_niceness`.
 fn side_by_side(
     first: Phase<'_>,
     second: Phase<'_>,
     first_label: &str,
     second_label: &str,
+    second_niceness: i32,
 ) -> (RunRecords, RunRecords) {
     std::thread::scope(|scope| {
         let a = scope.spawn(|| drive(first.client, &first.workload, first_label));
-        let b = scope.spawn(|| drive(second.client, &second.workload, second_label));
+        let b = scope.spawn(|| {
+            lower_this_thread(second_niceness);
+            drive(second.client, &second.workload, second_label)
+        });
         (
             a.join().expect("the first workload's thread"),
             b.join().expect("the second workload's thread"),
         )
     })
+}
+
+/// Lowers the calling thread's CPU priority to `niceness`; on Linux the niceness is per thread and
+/// the threads it then starts (the open loop's workers) inherit it. Elsewhere it does nothing.
+#[allow(unsafe_code)]
+fn lower_this_thread(niceness: i32) {
+    #[cfg(target_os = "linux")]
+    if niceness > 0 {
+        // SAFETY: setpriority on the calling thread's id changes only that thread's niceness;
+        // no memory is passed. Lowering one's own priority is always allowed.
+        unsafe {
+            let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+            libc::setpriority(libc::PRIO_PROCESS, tid, niceness);
+        }
+    }
+    #[cfg(not(target_os = "linux"))]
+    let _ = niceness;
 }
 
 /// Answered requests per second of a closed loop of one tenant, measured after a warm-up.
@@ -373,5 +418,45 @@ mod tests {
             ),
             "{text}"
         );
+    }
+
+    /// The niceness field (19th) of a thread's /proc stat line.
+    #[cfg(target_os = "linux")]
+    fn niceness_of_this_thread() -> i32 {
+        let stat =
+            std::fs::read_to_string("/proc/thread-self/stat").expect("/proc/thread-self/stat");
+        // The command name (field 2) may hold spaces; count fields after its closing parenthesis.
+        let after = &stat[stat.rfind(')').expect("a stat line") + 2..];
+        after
+            .split(' ')
+            .nth(16)
+            .expect("the niceness field")
+            .parse()
+            .expect("a number")
+    }
+
+    /// The flood's client threads must run lowered, and so must the workers they start, or the
+    /// report's "niceness" line is untrue.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn flood_client_threads_and_their_workers_ran_lowered() {
+        let before = std::thread::spawn(niceness_of_this_thread).join().unwrap();
+        let (own, worker) = std::thread::spawn(move || {
+            lower_this_thread((before + 7).min(19));
+            let own = niceness_of_this_thread();
+            (
+                own,
+                std::thread::spawn(niceness_of_this_thread).join().unwrap(),
+            )
+        })
+        .join()
+        .unwrap();
+        assert_eq!(own, (before + 7).min(19));
+        assert_eq!(
+            worker, own,
+            "a worker thread did not inherit the lowered priority"
+        );
+        // Other threads of the process are left as they were.
+        assert_eq!(niceness_of_this_thread(), before);
     }
 }

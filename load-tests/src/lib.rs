@@ -2,7 +2,7 @@
 //! request names (Zipf popularity) and when it is sent (Poisson arrivals); [`mix`] which endpoint;
 //! [`driver`] sends the requests through [`client`] in a closed or an open loop, with the
 //! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
-//! [`synthetic`] builds adapters for a run; [`report`] writes JSON and HTML with [`charts`];
+//! [`synthetic`] builds adapters for a run; [`cpu_time`] reads the CPU time the host took; [`report`] writes JSON and HTML with [`charts`];
 //! [`overhead`] is the built-in swap-overhead scenario and [`fairness`] the built-in fairness
 //! scenario, which start their own servers ([`server`]); [`soak`] is the long run at a steady load
 //! with live publishes and rollbacks.
@@ -10,6 +10,7 @@
 pub mod charts;
 pub mod cli;
 pub mod client;
+pub mod cpu_time;
 pub mod driver;
 pub mod fairness;
 pub mod mix;

@@ -371,6 +371,8 @@ mod tests {
             target: 0,
             status: 200,
             swap_ms: Some(0.02),
+            queue_ms: None,
+            server_ms: None,
             merged: Some(false),
             error: None,
             retry_after_s: None,

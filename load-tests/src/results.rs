@@ -140,6 +140,8 @@ mod tests {
             target: 0,
             status,
             swap_ms: (status == 200).then_some(0.5),
+            queue_ms: None,
+            server_ms: None,
             merged: (status == 200).then_some(sent_s > 1.5),
             error: None,
             retry_after_s: None,

@@ -46,6 +46,9 @@ pub struct SoakSettings {
     pub duration: Duration,
     /// Time at the start left out of the verdicts (adapters come in, caches fill).
     pub warmup: Duration,
+    /// The server's residency budgets (`[residency]`), in bytes.
+    pub factor_budget_bytes: u64,
+    pub merged_budget_bytes: u64,
     /// Length of one reporting window.
     pub window: Duration,
     pub adapters: usize,
@@ -88,6 +91,9 @@ struct Window {
     swap_p99_ms: Option<f64>,
     /// Largest resident set scraped in the window.
     rss_bytes: Option<f64>,
+    /// Largest bytes of the factor and merged tiers scraped in the window.
+    factors_bytes: Option<f64>,
+    merged_bytes: Option<f64>,
     admin_ops: usize,
     admin_errors: usize,
 }
@@ -138,7 +144,9 @@ pub fn run_soak(s: &SoakSettings) -> anyhow::Result<SoakReport> {
     let store = work.path().join("store");
     eprintln!("soak: writing {} synthetic adapters", names.len());
     write_into_store(&store, &base, &spec, &names)?;
-    let config = crate::server::ServerConfig::new(&s.model_dir, &store, true);
+    let mut config = crate::server::ServerConfig::new(&s.model_dir, &store, true);
+    config.factor_budget_bytes = s.factor_budget_bytes;
+    config.merged_budget_bytes = s.merged_budget_bytes;
     let server = crate::server::ServerProcess::start(&s.server_bin, work.path(), &config)?;
     let client = Client::new(server.url(), None, Some(config.admin_token.clone()))?;
     client.check_ready()?;
@@ -279,18 +287,28 @@ fn windows(
                 errors: mine.iter().filter(|r| !r.ok()).count(),
                 latency: LatencySummary::of(&ok),
                 swap_p99_ms: percentile(&sorted(&swaps), 0.99),
-                rss_bytes: memory
-                    .iter()
-                    .filter(|m| m.at_s >= lo && m.at_s < hi)
-                    .filter_map(|m| m.process)
-                    .fold(None, |acc: Option<f64>, v| {
-                        Some(acc.map_or(v, |a| a.max(v)))
-                    }),
+                rss_bytes: largest(memory, lo, hi, |m| m.process),
+                factors_bytes: largest(memory, lo, hi, |m| Some(m.factors)),
+                merged_bytes: largest(memory, lo, hi, |m| Some(m.merged)),
                 admin_ops: my_ops.len(),
                 admin_errors: my_ops.iter().filter(|o| !o.ok).count(),
             }
         })
         .collect()
+}
+
+/// The largest of one figure over the samples taken in `[lo, hi)`.
+fn largest(
+    memory: &[MemorySample],
+    lo: f64,
+    hi: f64,
+    figure: impl Fn(&MemorySample) -> Option<f64>,
+) -> Option<f64> {
+    memory
+        .iter()
+        .filter(|m| m.at_s >= lo && m.at_s < hi)
+        .filter_map(figure)
+        .reduce(f64::max)
 }
 
 fn median(values: &[f64]) -> Option<f64> {
@@ -339,7 +357,8 @@ fn build_report(
 
     let mut text = format!(
         "capacity {capacity:.1} requests/s (closed loop, {} clients); sent {rate:.1}/s ({:.0}%) for {:.0} s after a {:.0} s warm-up\n\
-         {} adapters, Zipf {}, rank {}, one publish or rollback every {:.1} s on the {} most popular\n\n",
+         {} adapters, Zipf {}, rank {}, one publish or rollback every {:.1} s on the {} most popular\n\
+         residency budgets: factors {:.0} MiB, merged {:.0} MiB\n\n",
         s.capacity_clients,
         s.load_share * 100.0,
         s.duration.as_secs_f64(),
@@ -348,12 +367,24 @@ fn build_report(
         s.zipf,
         s.rank,
         s.flip_every.as_secs_f64(),
-        s.flipped_adapters
+        s.flipped_adapters,
+        s.factor_budget_bytes as f64 / f64::from(1 << 20),
+        s.merged_budget_bytes as f64 / f64::from(1 << 20),
     );
     text.push_str(&format!(
-        "{:>8} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>6}\n",
-        "from_s", "requests", "errors", "p50_ms", "p99_ms", "swap_p99_ms", "rss_MB", "admin"
+        "{:>8} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>6}\n",
+        "from_s",
+        "requests",
+        "errors",
+        "p50_ms",
+        "p99_ms",
+        "swap_p99_ms",
+        "rss_MB",
+        "factors_MB",
+        "merged_MB",
+        "admin"
     ));
+    let megabytes = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{:.1}", v / 1e6));
     for w in &windows {
         let lat = |f: fn(&LatencySummary) -> f64| {
             w.latency
@@ -361,15 +392,16 @@ fn build_report(
                 .map_or("-".to_owned(), |l| format!("{:.1}", f(l)))
         };
         text.push_str(&format!(
-            "{:>8.0} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>6}{}\n",
+            "{:>8.0} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>6}{}\n",
             w.start_s,
             w.requests,
             w.errors,
             lat(|l| l.p50_ms),
             lat(|l| l.p99_ms),
             w.swap_p99_ms.map_or("-".to_owned(), |v| format!("{v:.3}")),
-            w.rss_bytes
-                .map_or("-".to_owned(), |v| format!("{:.1}", v / 1e6)),
+            megabytes(w.rss_bytes),
+            megabytes(w.factors_bytes),
+            megabytes(w.merged_bytes),
             w.admin_ops,
             if w.start_s < warm_s {
                 "  (warm-up)"
@@ -407,6 +439,8 @@ fn build_report(
         "settings": {
             "duration_s": s.duration.as_secs_f64(),
             "warmup_s": warm_s,
+            "factor_budget_bytes": s.factor_budget_bytes,
+            "merged_budget_bytes": s.merged_budget_bytes,
             "window_s": s.window.as_secs_f64(),
             "adapters": s.adapters,
             "zipf": s.zipf,
@@ -442,6 +476,8 @@ fn build_report(
             "latency": w.latency.as_ref().map(LatencySummary::to_json),
             "swap_p99_ms": w.swap_p99_ms.map(round3),
             "rss_bytes": w.rss_bytes,
+            "factors_bytes": w.factors_bytes,
+            "merged_bytes": w.merged_bytes,
             "admin_operations": w.admin_ops,
             "admin_errors": w.admin_errors,
         })).collect::<Vec<_>>(),

@@ -1,13 +1,16 @@
 //! The CPU fast-path benchmark: every figure is a ratio of two timings taken side by side in
 //! one run, interleaved round by round, so the shared machine's noise hits both sides alike.
 //!
-//!   cargo bench -p switchyard-server --bench cpu_paths [-- --rounds N] [-- --skip-decoder]
+//!   cargo bench -p switchyard-server --bench cpu_paths -- [--rounds N] [--skip-encoder]
+//!       [--skip-decoder] [--small-decoder]
 //!
 //! Sections: the MiniLM encoder at batch 32 x 64 tokens (base, merged, unmerged adapters of
-//! several shapes, eight adapters mixed); merging a rank-16 adapter into a 2048 x 2048 matrix in
-//! place against B·A alone; and a synthetic 2048-wide, 16-layer Llama-family decoder at batch 1
-//! (against weight bytes / measured read bandwidth) and batch 16. Results go to stdout as a
-//! table and to target/bench/cpu_paths.json; scripts/bench-cpu adds torch's figures.
+//! several shapes, eight adapters mixed), then the same batch with the weights held as f32, bf16,
+//! int8 and int4; merging a rank-16 adapter into a 2048 x 2048 matrix in place against B·A alone;
+//! and a synthetic Llama-family decoder of the 1B class (seeded pattern weights, about 4.2 GB in
+//! f32; `--small-decoder` for a narrower one) in each format at batch 1 (against resident bytes /
+//! measured read bandwidth), batch 16, and batch 8 with eight adapters. Results go to stdout and
+//! to target/bench/cpu_paths.json; scripts/bench-cpu adds torch's figures.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -282,22 +285,118 @@ fn read_bandwidth() -> f64 {
     best
 }
 
-fn decoder_section(report: &mut Report, rounds: usize) {
+/// The formats the per-format rows measure, f32 first (the other rows' reference).
+fn formats() -> Vec<(&'static str, WeightFormat)> {
+    ["f32", "bf16", "int8", "int4"]
+        .into_iter()
+        .map(|n| (n, WeightFormat::parse(n).expect("a format name")))
+        .collect()
+}
+
+/// The MiniLM encoder with its weights held in each format: base rows/s against f32's (same
+/// batch, rounds interleaved), and eight mixed rank-16 q,v adapters against each format's base.
+fn encoder_formats_section(report: &mut Report, rounds: usize) {
+    let dir = std::env::var("SWITCHYARD_BASE_MODEL_DIR").unwrap_or_else(|_| {
+        concat!(env!("CARGO_MANIFEST_DIR"), "/../models/all-minilm-l6-v2").to_owned()
+    });
+    let models: Vec<(&str, Embedder)> = formats()
+        .into_iter()
+        .map(|(name, f)| {
+            (
+                name,
+                Embedder::load_as(std::path::Path::new(&dir), f).unwrap(),
+            )
+        })
+        .collect();
+    let e = &models[0].1;
+    let inputs = std::fs::read_to_string(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../tests/reference/fixtures/bench-inputs.txt"
+    ))
+    .unwrap();
+    let texts: Vec<&str> = inputs.lines().take(32).collect();
+    let mut ids = e.tokenize(&texts).unwrap();
+    for seq in &mut ids {
+        seq.resize(64, seq[seq.len() - 2]);
+    }
+    let spec = e.spec().clone();
+    let qv = [Module::AttnQ, Module::AttnV];
+    let set: Vec<Arc<Adapter>> = (0..8)
+        .map(|i| synthetic_adapter(&spec, 16, &qv, 20 + i))
+        .collect();
+    let (b, t) = (ids.len(), 64);
+    let dev = Device::Cpu;
+    let flat: Vec<u32> = ids.iter().flatten().copied().collect();
+    let ids_t = Tensor::from_vec(flat, (b, t), &dev).unwrap();
+    let mask = Tensor::ones((b, t), DType::U32, &dev).unwrap();
+    let rows: Vec<Option<Arc<Adapter>>> = (0..b).map(|i| Some(set[i % 8].clone())).collect();
+    let mixed = RowAdapters::per_sequence(&rows, &vec![t; b]);
+    let base = RowAdapters::base(b * t);
+    let run = |m: &Embedder, rows: &RowAdapters| {
+        let start = Instant::now();
+        let h = m.model().forward(&ids_t, &mask, rows).unwrap();
+        let _ = switchyard_server::model::bert::mean_pool_normalise(&h, &mask).unwrap();
+        start.elapsed().as_secs_f64()
+    };
+    for (_, m) in &models {
+        run(m, &base);
+    }
+    let mut times = vec![(Vec::new(), Vec::new()); models.len()];
+    for _ in 0..rounds {
+        for (i, (_, m)) in models.iter().enumerate() {
+            times[i].0.push(run(m, &base));
+            times[i].1.push(run(m, &mixed));
+        }
+    }
+    let f32_time = median(times[0].0.clone());
+    println!(
+        "encoder batch 32 x 64 tokens per weight format (kernel path {}):",
+        switchyard_kernels::dispatch::active()
+    );
+    for (i, (name, _)) in models.iter().enumerate() {
+        let t_base = median(times[i].0.clone());
+        let t_mixed = median(times[i].1.clone());
+        report.add(
+            &format!("encoder_{name}_rows_per_s"),
+            format!(
+                "  {name}: {:.1} rows/s, {:.3}x the f32 time; 8 mixed rank-16 q,v adapters {:.3}x its base",
+                b as f64 / t_base,
+                t_base / f32_time,
+                t_mixed / t_base
+            ),
+            b as f64 / t_base,
+        );
+        report.json.insert(
+            format!("encoder_{name}_mixed8_r16_ratio"),
+            serde_json::json!(t_mixed / t_base),
+        );
+    }
+}
+
+/// The decoder shape of the measurement: the 1B class (hidden 2048, 16 layers, intermediate
+/// 8192, 32 heads over 8 key-value heads, vocabulary 32000, tied embeddings), or with `--small`
+/// a narrower one (intermediate 5632, vocabulary 8192) that fits a small machine's memory twice.
+fn decoder_checkpoint(small: bool) -> (LlamaConfig, Checkpoint) {
+    let (h, inter, vocab, heads, kv_heads) = if small {
+        (2048usize, 5632usize, 8192usize, 16usize, 4usize)
+    } else {
+        (2048, 8192, 32000, 32, 8)
+    };
     let cfg: LlamaConfig = serde_json::from_value(serde_json::json!({
-        "vocab_size": 8192, "hidden_size": 2048, "intermediate_size": 5632,
-        "num_hidden_layers": 16, "num_attention_heads": 16, "num_key_value_heads": 4,
-        "rms_norm_eps": 1e-5, "max_position_embeddings": 1024, "rope_theta": 10000.0
+        "vocab_size": vocab, "hidden_size": h, "intermediate_size": inter,
+        "num_hidden_layers": 16, "num_attention_heads": heads, "num_key_value_heads": kv_heads,
+        "rms_norm_eps": 1e-5, "max_position_embeddings": 1024, "rope_theta": 10000.0,
+        "tie_word_embeddings": true
     }))
     .unwrap();
-    let (h, i, kv) = (2048usize, 5632usize, 4 * 128usize);
+    let kv = kv_heads * (h / heads);
     let mut tensors = std::collections::HashMap::new();
     let mut seed = 100;
     let mut put = |name: String, shape: &[usize], scale: f32| {
         seed += 1;
         tensors.insert(name, tensor(shape, seed, scale));
     };
-    put("model.embed_tokens.weight".into(), &[8192, h], 0.5);
-    put("lm_head.weight".into(), &[8192, h], 0.02);
+    put("model.embed_tokens.weight".into(), &[vocab, h], 0.02);
     put("model.norm.weight".into(), &[h], 1.0);
     for l in 0..16 {
         let p = format!("model.layers.{l}");
@@ -306,9 +405,9 @@ fn decoder_section(report: &mut Report, rounds: usize) {
             ("self_attn.k_proj", vec![kv, h]),
             ("self_attn.v_proj", vec![kv, h]),
             ("self_attn.o_proj", vec![h, h]),
-            ("mlp.gate_proj", vec![i, h]),
-            ("mlp.up_proj", vec![i, h]),
-            ("mlp.down_proj", vec![h, i]),
+            ("mlp.gate_proj", vec![inter, h]),
+            ("mlp.up_proj", vec![inter, h]),
+            ("mlp.down_proj", vec![h, inter]),
         ] {
             let scale = 1.0 / (shape[1] as f32).sqrt();
             put(format!("{p}.{n}.weight"), &shape, scale);
@@ -316,86 +415,121 @@ fn decoder_section(report: &mut Report, rounds: usize) {
         put(format!("{p}.input_layernorm.weight"), &[h], 1.0);
         put(format!("{p}.post_attention_layernorm.weight"), &[h], 1.0);
     }
-    let weight_bytes: usize = tensors
-        .iter()
-        .filter(|(n, _)| !n.contains("embed_tokens"))
-        .map(|(_, t)| t.elem_count() * 4)
-        .sum();
     let ckpt = Checkpoint::from_tensors(serde_json::Value::Null, &tensors).unwrap();
-    drop(tensors);
-    let model = LlamaModel::new(&cfg, &Weights::new(&ckpt, WeightFormat::F32)).unwrap();
-    drop(ckpt);
+    (cfg, ckpt)
+}
+
+/// Time per decoded token of `batch` sequences (each after an untimed 8-token prompt), with the
+/// adapters `adapters(batch)` picks for a step of one token per sequence.
+fn decode_time(
+    model: &LlamaModel,
+    batch: usize,
+    steps: usize,
+    adapters: &dyn Fn(usize, usize) -> RowAdapters,
+) -> f64 {
+    let vocab = model.config().vocab_size;
+    let prompt: Vec<u32> = (0..8).map(|t| (t * 37 % vocab) as u32).collect();
+    let mut caches: Vec<_> = (0..batch).map(|_| model.new_cache()).collect();
+    let prompts: Vec<&[u32]> = (0..batch).map(|_| prompt.as_slice()).collect();
+    let mut cache_refs: Vec<_> = caches.iter_mut().collect();
+    model
+        .forward_last(&prompts, &mut cache_refs, &adapters(batch, prompt.len()))
+        .unwrap();
+    let start = Instant::now();
+    for step in 0..steps {
+        let toks: Vec<[u32; 1]> = (0..batch)
+            .map(|b| [((step * 31 + b * 7) % vocab) as u32])
+            .collect();
+        let refs: Vec<&[u32]> = toks.iter().map(|t| t.as_slice()).collect();
+        let mut cache_refs: Vec<_> = caches.iter_mut().collect();
+        model
+            .forward_last(&refs, &mut cache_refs, &adapters(batch, 1))
+            .unwrap();
+    }
+    start.elapsed().as_secs_f64() / steps as f64
+}
+
+/// The decoder in each weight format: batch-1 time per token against that format's resident
+/// bytes over the measured read bandwidth, batch 16 against batch 1, and eight sequences with
+/// eight different rank-16 q,v adapters against eight on the base.
+fn decoder_section(report: &mut Report, rounds: usize, small: bool) {
+    let (cfg, ckpt) = decoder_checkpoint(small);
     let bw = read_bandwidth();
-    let floor = weight_bytes as f64 / bw;
     report.add(
         "read_bandwidth_gbs",
         format!(
-            "decoder 2048 wide, 16 layers: read bandwidth {:.1} GB/s, weights {:.2} GB",
+            "decoder {} (hidden 2048, 16 layers, intermediate {}, vocabulary {}, tied head), kernel path {}: read bandwidth {:.1} GB/s",
+            if small { "small shape" } else { "1B-class shape" },
+            cfg.intermediate_size,
+            cfg.vocab_size,
+            switchyard_kernels::dispatch::active(),
             bw / 1e9,
-            weight_bytes as f64 / 1e9
         ),
         bw / 1e9,
     );
-
-    let prompt: Vec<u32> = (0..32).map(|t| (t * 37 % 8192) as u32).collect();
-    let steps = 8;
-    let decode = |batch: usize| -> f64 {
-        let mut caches: Vec<_> = (0..batch).map(|_| model.new_cache()).collect();
-        // Every sequence's prompt in one prefill call (not timed).
-        let prompts: Vec<&[u32]> = (0..batch).map(|_| prompt.as_slice()).collect();
-        let mut cache_refs: Vec<_> = caches.iter_mut().collect();
-        model
-            .forward_last(
-                &prompts,
-                &mut cache_refs,
-                &RowAdapters::base(batch * prompt.len()),
-            )
-            .unwrap();
-        let start = Instant::now();
-        for step in 0..steps {
-            let toks: Vec<[u32; 1]> = (0..batch)
-                .map(|b| [((step * 31 + b * 7) % 8192) as u32])
+    let rounds = rounds.clamp(1, 3);
+    for (name, format) in formats() {
+        let model = LlamaModel::new(&cfg, &Weights::new(&ckpt, format)).unwrap();
+        let bytes = model.resident_bytes();
+        let floor = bytes as f64 / bw;
+        let spec = model.spec("llama", format!("bench-decoder-{name}"));
+        let set: Vec<Arc<Adapter>> = (0..8)
+            .map(|i| synthetic_adapter(&spec, 16, &[Module::AttnQ, Module::AttnV], 40 + i))
+            .collect();
+        let base = |_: usize, rows: usize| RowAdapters::base(rows);
+        let base = |batch: usize, per: usize| base(batch, batch * per);
+        let mixed = |batch: usize, per: usize| {
+            let rows: Vec<Option<Arc<Adapter>>> = (0..batch)
+                .map(|i| Some(set[i % set.len()].clone()))
                 .collect();
-            let refs: Vec<&[u32]> = toks.iter().map(|t| t.as_slice()).collect();
-            let mut cache_refs: Vec<_> = caches.iter_mut().collect();
-            model
-                .forward_last(&refs, &mut cache_refs, &RowAdapters::base(batch))
-                .unwrap();
+            RowAdapters::per_sequence(&rows, &vec![per; batch])
+        };
+        let (mut one, mut sixteen, mut eight, mut eight_mixed) =
+            (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+        for _ in 0..rounds {
+            one.push(decode_time(&model, 1, 8, &base));
+            sixteen.push(decode_time(&model, 16, 8, &base));
+            eight.push(decode_time(&model, 8, 8, &base));
+            eight_mixed.push(decode_time(&model, 8, 8, &mixed));
         }
-        start.elapsed().as_secs_f64() / steps as f64
-    };
-    let mut one = Vec::new();
-    let mut sixteen = Vec::new();
-    for _ in 0..rounds.clamp(1, 3) {
-        one.push(decode(1));
-        sixteen.push(decode(16));
-    }
-    let (t1, t16) = (median(one), median(sixteen));
-    report.add(
-        "decode_b1_ms_per_token",
-        format!(
-            "  batch 1: {:.1} ms per token, {:.2}x the bandwidth floor ({:.1} ms)",
+        let (t1, t16) = (median(one), median(sixteen));
+        let (t8, t8m) = (median(eight), median(eight_mixed));
+        let speedup = (16.0 / t16) / (1.0 / t1);
+        report.add(
+            &format!("decode_{name}_b1_ms_per_token"),
+            format!(
+                "  {name}: {:.2} GB resident; batch 1 {:.1} ms per token = {:.2}x the floor ({:.1} ms); batch 16 {:.1} tokens/s = {:.2}x batch 1; 8 mixed rank-16 q,v adapters {:.3}x base at batch 8",
+                bytes as f64 / 1e9,
+                t1 * 1e3,
+                t1 / floor,
+                floor * 1e3,
+                16.0 / t16,
+                speedup,
+                t8m / t8
+            ),
             t1 * 1e3,
-            t1 / floor,
-            floor * 1e3
-        ),
-        t1 * 1e3,
-    );
-    report.add(
-        "decode_b1_floor_ratio",
-        format!("  batch 1 / floor: {:.3}", t1 / floor),
-        t1 / floor,
-    );
-    let speedup = (16.0 / t16) / (1.0 / t1);
-    report.add(
-        "decode_b16_speedup",
-        format!(
-            "  batch 16: {:.1} tokens/s, {:.2}x the tokens/s of batch 1",
-            16.0 / t16,
-            speedup
-        ),
-        speedup,
-    );
+        );
+        for (key, value) in [
+            ("resident_gb", bytes as f64 / 1e9),
+            ("b1_floor_ratio", t1 / floor),
+            ("b16_speedup", speedup),
+            ("mixed8_r16_ratio", t8m / t8),
+        ] {
+            report
+                .json
+                .insert(format!("decode_{name}_{key}"), serde_json::json!(value));
+        }
+        if name == "f32" {
+            // The keys earlier reports used.
+            report.json.insert(
+                "decode_b1_floor_ratio".into(),
+                serde_json::json!(t1 / floor),
+            );
+            report
+                .json
+                .insert("decode_b16_speedup".into(), serde_json::json!(speedup));
+        }
+    }
 }
 
 fn main() {
@@ -409,16 +543,22 @@ fn main() {
     let mut report = Report {
         json: serde_json::Map::new(),
     };
+    report.json.insert(
+        "kernel_path".into(),
+        serde_json::json!(switchyard_kernels::dispatch::active().name()),
+    );
     println!(
         "switchyard CPU paths ({} threads, {rounds} interleaved rounds; lower ratios are better)",
         rayon::current_num_threads()
     );
-    if !args.iter().any(|a| a == "--skip-encoder") {
+    let flag = |name: &str| args.iter().any(|a| a == name);
+    if !flag("--skip-encoder") {
         encoder_section(&mut report, rounds);
+        encoder_formats_section(&mut report, rounds);
     }
     merge_section(&mut report, rounds);
-    if !args.iter().any(|a| a == "--skip-decoder") {
-        decoder_section(&mut report, rounds);
+    if !flag("--skip-decoder") {
+        decoder_section(&mut report, rounds, flag("--small-decoder"));
     }
     let out = concat!(env!("CARGO_MANIFEST_DIR"), "/../target/bench");
     std::fs::create_dir_all(out).unwrap();

@@ -128,6 +128,11 @@ fn retry_after_comes_from_the_request_rate_quota() {
         "{}",
         refused.body
     );
+    // Over its rate, a request is refused before its texts are tokenised: a text of some 1,000
+    // tokens, over `prompt_tokens` (256) but under `text_bytes`, is not read by the tokenizer,
+    // so the answer is the rate's 429, not the 413 tokenising would have found.
+    let long = "wheel ".repeat(1000);
+    embed_as(&server, FLOOD_KEY, "base", &[&long]).assert_error(429, "rate_limited");
     for _ in 0..5 {
         embed_as(&server, CALM_KEY, "base", &["where is my wheel"]).ok_json();
     }

@@ -6,6 +6,7 @@ use std::collections::BTreeMap;
 use serde_json::{Value, json};
 
 use super::{CAPPED, FLOOD, FairnessSettings, Measured, Plan, STEADY};
+use crate::driver::Record;
 use crate::report::Report;
 use crate::results::Scenario;
 use crate::stats::{LatencySummary, percentile, round3, sorted};
@@ -304,9 +305,17 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             retry(&capped),
         ),
         format!(
-            "Machine: {cpus} CPUs, shared by the server, this load generator (the flood's HTTP \
-             requests and 429s cost CPU too) and any other work on it; the ratios within one run \
-             are what to read."
+            "Machine: {cpus} CPUs, shared by the server, this load generator and any other work on \
+             it; the ratios within one run are what to read. The flooding client's threads ran at \
+             niceness {} (--flood-client-niceness; 0 lets them compete with the server as equals): \
+             a real flood comes from other machines, and its client's CPU is not the server's. \
+             The server still parses and refuses every flood request on these cores. CPU time \
+             the virtual machine's host took for other work (steal) during the phases: {} alone, \
+             {} during the flood, {} during the capped flood.",
+            s.flood_client_niceness,
+            m.cpu[0].stolen_percent(),
+            m.cpu[1].stolen_percent(),
+            m.cpu[2].stolen_percent(),
         ),
     ];
 
@@ -318,6 +327,7 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             "flood_factor": s.flood_factor,
             "steady_share": s.steady_share,
             "flood_workers": s.workers,
+            "flood_client_niceness": s.flood_client_niceness,
             "rounds": plan.rounds,
             "warmup_s": plan.warmup.as_secs_f64(),
             "measured_s_per_phase_and_round": plan.duration.as_secs_f64(),
@@ -350,6 +360,16 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
             },
             "slowdown_during_flood": slow_flood.to_json(),
             "slowdown_during_capped_flood": slow_capped.to_json(),
+            "machine_cpu": {
+                "alone": m.cpu[0].to_json(),
+                "during_flood": m.cpu[1].to_json(),
+                "during_capped_flood": m.cpu[2].to_json(),
+            },
+            "where_the_time_went": {
+                "alone": time_split(&m.steady_alone),
+                "during_flood": time_split(&m.steady_during_flood),
+                "during_capped_flood": time_split(&m.steady_during_capped),
+            },
         }),
     );
     extra.insert(
@@ -380,6 +400,30 @@ pub fn build_report(s: &FairnessSettings, plan: &Plan, m: &Measured) -> Report {
     }
 }
 
+/// Where a phase's answered requests spent their time, p50 and p99 of each part: waiting in the
+/// server's queue (`elapsed_ms.queue`), in the server after the queue (its `total` less `queue`:
+/// the batch, tokenising, writing the answer), and outside the server's count (the client's
+/// latency less the server's `total`: HTTP on both sides, the client's own scheduling).
+fn time_split(scenario: &Scenario) -> Value {
+    let answered: Vec<&Record> = scenario
+        .records
+        .iter()
+        .filter(|r| r.ok() && r.server_ms.is_some())
+        .collect();
+    let part = |f: &dyn Fn(&Record) -> Option<f64>| {
+        let values = sorted(&answered.iter().filter_map(|r| f(r)).collect::<Vec<_>>());
+        json!({
+            "p50_ms": percentile(&values, 0.5).map(round3),
+            "p99_ms": percentile(&values, 0.99).map(round3),
+        })
+    };
+    json!({
+        "queue": part(&|r| r.queue_ms),
+        "in_server_after_queue": part(&|r| Some(r.server_ms? - r.queue_ms.unwrap_or(0.0))),
+        "outside_server": part(&|r| Some(r.latency_ms - r.server_ms?)),
+    })
+}
+
 fn codes_text(codes: &BTreeMap<String, usize>) -> String {
     if codes.is_empty() {
         return "no refusals".to_owned();
@@ -405,6 +449,8 @@ mod tests {
             target: 0,
             status,
             swap_ms: None,
+            queue_ms: None,
+            server_ms: None,
             merged: None,
             error: error.map(str::to_owned),
             retry_after_s,

@@ -224,6 +224,8 @@ mod tests {
                 target: 0,
                 status: 200,
                 swap_ms: Some(0.01),
+                queue_ms: None,
+                server_ms: None,
                 merged: Some(false),
                 error: None,
                 retry_after_s: None,

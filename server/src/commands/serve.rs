@@ -128,6 +128,10 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         // SAFETY-free: set before any rayon pool exists; candle and the kernels read it.
         let _ = rayon_threads(settings.threads);
     }
+    // The compute pool is the engine's: a request's texts are tokenised one after another on
+    // the (lowered) blocking thread that handles it, not spread over the pool, where they would
+    // queue between the engine's own parallel work and take its priority.
+    tokenizers::utils::parallelism::set_parallelism(false);
     let started = Instant::now();
     let backbone = Arc::new(load_backbone(&model_dir, settings.model_weights)?);
     let kernels = switchyard_kernels::dispatch::active();

@@ -380,26 +380,34 @@ impl Engine {
                     Err(self.queue_refusal(tenant, why))
                 }
             },
-            Err(refusal) => {
-                let retry_after = refusal
-                    .wait()
-                    .or_else(|| self.queue.wait_estimate(Some(tenant)))
-                    .unwrap_or(Duration::from_secs(1));
-                Err(self.refused(
-                    tenant,
-                    EngineError::OverQuota {
-                        refusal,
-                        retry_after,
-                    },
-                ))
-            }
+            Err(refusal) => Err(self.over_quota(tenant, refusal)),
         }
     }
 
-    /// Refuses a request of `tenant` at once when its lane of the queue has no place free, so
-    /// that a flooding tenant's excess is answered before any work is spent on it (tokenising
-    /// it, checking its quota). A hint: [`Engine::reserve`] holds the place and decides.
+    /// A quota refusal of `tenant`'s request, counted, with the wait its limit says (or, for
+    /// concurrency, the queue's estimate).
+    fn over_quota(&self, tenant: usize, refusal: QuotaRefusal) -> EngineError {
+        let retry_after = refusal
+            .wait()
+            .or_else(|| self.queue.wait_estimate(Some(tenant)))
+            .unwrap_or(Duration::from_secs(1));
+        self.refused(
+            tenant,
+            EngineError::OverQuota {
+                refusal,
+                retry_after,
+            },
+        )
+    }
+
+    /// Refuses a request of `tenant` at once when its request rate or concurrency quota would
+    /// refuse it, or its lane of the queue has no place free, so that a flooding tenant's excess
+    /// is answered before any work is spent on it (tokenising it). A hint: [`Engine::reserve`]
+    /// takes from the quota, holds the place and decides.
     pub fn check_room(&self, tenant: usize) -> Result<(), EngineError> {
+        self.quotas
+            .precheck(tenant, Instant::now())
+            .map_err(|refusal| self.over_quota(tenant, refusal))?;
         self.queue
             .room(tenant)
             .map_err(|why| self.queue_refusal(tenant, why))

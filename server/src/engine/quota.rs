@@ -149,6 +149,31 @@ impl Quotas {
         Self { tenants }
     }
 
+    /// Whether a request of `tenant` would be refused now by a limit that does not depend on its
+    /// size (the request rate or the concurrent requests), without taking anything: the server
+    /// asks before it tokenises a request, so a tenant far over its rate costs no tokenizer time.
+    /// A hint: [`Quotas::reserve`] decides.
+    pub fn precheck(&self, tenant: usize, now: Instant) -> Result<(), QuotaRefusal> {
+        let quota = &self.tenants[tenant];
+        if let Some(limit) = quota.limits.concurrent_requests
+            && quota.in_flight.load(Ordering::SeqCst) >= limit
+        {
+            return Err(QuotaRefusal::Concurrency { limit });
+        }
+        let mut buckets = quota.buckets();
+        if let Some(b) = buckets.requests.as_mut() {
+            b.refill(now);
+            let wait = b.wait_for(1.0);
+            if !wait.is_zero() {
+                return Err(QuotaRefusal::Rate {
+                    per_second: b.per_second,
+                    wait,
+                });
+            }
+        }
+        Ok(())
+    }
+
     /// Admits one request of `tenant` needing `tokens`, or says which limit refuses it and how
     /// long that limit says to wait. Nothing is taken from a bucket unless every limit admits.
     pub fn reserve(
@@ -351,6 +376,38 @@ mod tests {
         assert_close(wait, secs(0.3));
         let _c = q.reserve(0, 1, t0 + secs(0.5)).unwrap();
         assert!(q.reserve(0, 1, t0 + secs(0.5)).is_err());
+    }
+
+    /// The check before tokenising refuses what reserve would refuse for rate or concurrency,
+    /// and never takes from the bucket itself: a tenant under its rate keeps all of it.
+    #[test]
+    fn precheck_refuses_a_tenant_over_its_rate_or_concurrency_without_spending() {
+        let t0 = Instant::now();
+        let q = Quotas::new(
+            &[quota(Some(2.0), None, None), quota(None, Some(1), None)],
+            t0,
+        );
+        for _ in 0..5 {
+            assert_eq!(q.precheck(0, t0), Ok(()));
+        }
+        let _a = q.reserve(0, 1, t0).unwrap();
+        let _b = q.reserve(0, 1, t0).unwrap();
+        assert_eq!(
+            q.precheck(0, t0),
+            Err(QuotaRefusal::Rate {
+                per_second: 2.0,
+                wait: secs(0.5)
+            })
+        );
+        assert_eq!(q.precheck(0, t0 + secs(0.5)), Ok(()));
+        let held = q.reserve(1, 1, t0).unwrap();
+        assert_eq!(
+            q.precheck(1, t0),
+            Err(QuotaRefusal::Concurrency { limit: 1 })
+        );
+        drop(held);
+        assert_eq!(q.precheck(1, t0), Ok(()));
+        assert_eq!(q.in_flight(1), 0);
     }
 
     #[test]

@@ -626,6 +626,11 @@ impl LlamaModel {
         self.logits(&hidden.index_select(&idx, 0)?)
     }
 
+    /// The configuration the model was built from.
+    pub fn config(&self) -> &LlamaConfig {
+        &self.config
+    }
+
     pub fn spec(&self, model_type: &str, fingerprint: String) -> BaseSpec {
         let mut targets = BTreeMap::new();
         for block in &self.blocks {
