@@ -2,7 +2,7 @@
 //! request names (Zipf popularity) and when it is sent (Poisson arrivals); [`mix`] which endpoint;
 //! [`driver`] sends the requests through [`client`] in a closed or an open loop, with the
 //! [`progress`] line; [`results`] and [`stats`] summarise them; [`scrape`] reads /metrics;
-//! [`synthetic`] builds adapters for a run; [`cpu_time`] reads the CPU time the host took; [`report`] writes JSON and HTML with [`charts`];
+//! [`synthetic`] builds adapters for a run; [`cpu_time`] reads the CPU time the host took; [`proc_status`] a process's memory by kind; [`report`] writes JSON and HTML with [`charts`];
 //! [`overhead`] is the built-in swap-overhead scenario and [`fairness`] the built-in fairness
 //! scenario, which start their own servers ([`server`]); [`soak`] is the long run at a steady load
 //! with live publishes and rollbacks.
@@ -15,6 +15,7 @@ pub mod driver;
 pub mod fairness;
 pub mod mix;
 pub mod overhead;
+pub mod proc_status;
 pub mod progress;
 pub mod report;
 pub mod results;

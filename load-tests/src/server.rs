@@ -145,6 +145,11 @@ impl ServerProcess {
         })
     }
 
+    /// The server's process id.
+    pub fn pid(&self) -> u32 {
+        self.child.id()
+    }
+
     pub fn url(&self) -> &str {
         &self.url
     }

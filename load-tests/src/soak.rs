@@ -9,7 +9,8 @@
 //! `load_share` of that capacity over all the adapters with Zipf popularity for `duration`.
 //! Meanwhile an admin thread, every `flip_every`, either publishes a new version of one of the
 //! most popular adapters (which goes live at once) or rolls the previous one back, and a scraper
-//! reads `/metrics` for the process's resident set. The run is cut into windows; each window's
+//! reads `/metrics` for the process's resident set (and `/proc/PID/status` for its anonymous and
+//! file-backed parts and its threads). The run is cut into windows; each window's
 //! requests, errors, latency, swap times and memory are reported, with three verdicts:
 //!
 //! - errors: no request and no admin operation failed;
@@ -31,6 +32,7 @@ use crate::charts::{Axis, SeriesLabelPosition, line_chart};
 use crate::client::{Client, RequestShape};
 use crate::driver::{Pacing, Record, Workload, drive};
 use crate::mix::{Kind, Mix};
+use crate::proc_status::{ProcSample, ProcSampler};
 use crate::results::Scenario;
 use crate::scrape::{MemorySample, MemorySampler};
 use crate::stats::{LatencySummary, percentile, round3, sorted};
@@ -94,6 +96,11 @@ struct Window {
     /// Largest bytes of the factor and merged tiers scraped in the window.
     factors_bytes: Option<f64>,
     merged_bytes: Option<f64>,
+    /// Largest anonymous and file-backed resident bytes and thread count of the server process
+    /// in the window (`/proc/PID/status`; none where that cannot be read).
+    anon_bytes: Option<f64>,
+    file_bytes: Option<f64>,
+    threads: Option<f64>,
     admin_ops: usize,
     admin_errors: usize,
 }
@@ -181,6 +188,7 @@ pub fn run_soak(s: &SoakSettings) -> anyhow::Result<SoakReport> {
 
     let origin = Instant::now();
     let sampler = MemorySampler::start(client.clone(), origin, Duration::from_secs(2));
+    let proc_sampler = ProcSampler::start(server.pid(), origin, Duration::from_secs(2));
     let stop = Arc::new(AtomicBool::new(false));
     let admin = {
         let client = client.clone();
@@ -211,8 +219,17 @@ pub fn run_soak(s: &SoakSettings) -> anyhow::Result<SoakReport> {
     stop.store(true, Ordering::Relaxed);
     let ops = admin.join().unwrap_or_default();
     let memory = sampler.finish();
+    let process = proc_sampler.finish();
     drop(server);
-    Ok(build_report(s, capacity, rate, &run.records, &ops, &memory))
+    Ok(build_report(
+        s,
+        capacity,
+        rate,
+        &run.records,
+        &ops,
+        &memory,
+        &process,
+    ))
 }
 
 /// Every `every`: a new version of the next adapter in turn (even ticks) or a rollback of the
@@ -262,6 +279,7 @@ fn windows(
     records: &[Record],
     ops: &[AdminOp],
     memory: &[MemorySample],
+    process: &[ProcSample],
 ) -> Vec<Window> {
     let width = s.window.as_secs_f64().max(1.0);
     let end = s.warmup.as_secs_f64() + s.duration.as_secs_f64();
@@ -290,6 +308,9 @@ fn windows(
                 rss_bytes: largest(memory, lo, hi, |m| m.process),
                 factors_bytes: largest(memory, lo, hi, |m| Some(m.factors)),
                 merged_bytes: largest(memory, lo, hi, |m| Some(m.merged)),
+                anon_bytes: largest_of(process, lo, hi, |p| p.anon),
+                file_bytes: largest_of(process, lo, hi, |p| p.file),
+                threads: largest_of(process, lo, hi, |p| p.threads),
                 admin_ops: my_ops.len(),
                 admin_errors: my_ops.iter().filter(|o| !o.ok).count(),
             }
@@ -311,6 +332,20 @@ fn largest(
         .reduce(f64::max)
 }
 
+/// The largest of one figure of the process samples taken in `[lo, hi)`.
+fn largest_of(
+    process: &[ProcSample],
+    lo: f64,
+    hi: f64,
+    figure: impl Fn(&ProcSample) -> f64,
+) -> Option<f64> {
+    process
+        .iter()
+        .filter(|p| p.at_s >= lo && p.at_s < hi)
+        .map(figure)
+        .reduce(f64::max)
+}
+
 fn median(values: &[f64]) -> Option<f64> {
     percentile(&sorted(values), 0.5)
 }
@@ -322,9 +357,10 @@ fn build_report(
     records: &[Record],
     ops: &[AdminOp],
     memory: &[MemorySample],
+    process: &[ProcSample],
 ) -> SoakReport {
     let warm_s = s.warmup.as_secs_f64();
-    let windows = windows(s, records, ops, memory);
+    let windows = windows(s, records, ops, memory, process);
     let measured: Vec<&Window> = windows.iter().filter(|w| w.start_s >= warm_s).collect();
     let request_errors: usize = records.iter().filter(|r| !r.ok()).count();
     let admin_errors = ops.iter().filter(|o| !o.ok).count();
@@ -372,7 +408,7 @@ fn build_report(
         s.merged_budget_bytes as f64 / f64::from(1 << 20),
     );
     text.push_str(&format!(
-        "{:>8} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>6}\n",
+        "{:>8} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>8} {:>8} {:>7} {:>6}\n",
         "from_s",
         "requests",
         "errors",
@@ -382,6 +418,9 @@ fn build_report(
         "rss_MB",
         "factors_MB",
         "merged_MB",
+        "anon_MB",
+        "file_MB",
+        "threads",
         "admin"
     ));
     let megabytes = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{:.1}", v / 1e6));
@@ -392,7 +431,7 @@ fn build_report(
                 .map_or("-".to_owned(), |l| format!("{:.1}", f(l)))
         };
         text.push_str(&format!(
-            "{:>8.0} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>6}{}\n",
+            "{:>8.0} {:>8} {:>6} {:>9} {:>9} {:>12} {:>9} {:>10} {:>9} {:>8} {:>8} {:>7} {:>6}{}\n",
             w.start_s,
             w.requests,
             w.errors,
@@ -402,6 +441,9 @@ fn build_report(
             megabytes(w.rss_bytes),
             megabytes(w.factors_bytes),
             megabytes(w.merged_bytes),
+            megabytes(w.anon_bytes),
+            megabytes(w.file_bytes),
+            w.threads.map_or("-".to_owned(), |t| format!("{t:.0}")),
             w.admin_ops,
             if w.start_s < warm_s {
                 "  (warm-up)"
@@ -478,6 +520,9 @@ fn build_report(
             "rss_bytes": w.rss_bytes,
             "factors_bytes": w.factors_bytes,
             "merged_bytes": w.merged_bytes,
+            "anon_bytes": w.anon_bytes,
+            "file_bytes": w.file_bytes,
+            "threads": w.threads,
             "admin_operations": w.admin_ops,
             "admin_errors": w.admin_errors,
         })).collect::<Vec<_>>(),

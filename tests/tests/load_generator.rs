@@ -369,7 +369,23 @@ fn soak_in_miniature_answers_every_request_and_every_publish_and_rollback() {
     );
     assert!(report["requests"].as_u64().unwrap() > 20, "{report}");
     assert!(report["capacity_per_s"].as_f64().unwrap() > 0.0);
-    assert!(!report["windows"].as_array().unwrap().is_empty());
+    let windows = report["windows"].as_array().unwrap();
+    assert!(!windows.is_empty());
+    // The windows say what the factor tier held and, on Linux, the server process's anonymous
+    // and file-backed memory and threads: what tells a filling cache from a leak. (Samples come
+    // every 2 s into 3-s windows; a scrape slowed by a busy machine may leave one window out.)
+    let having = |key: &str| windows.iter().filter(|w| w[key].as_f64().is_some()).count();
+    assert!(2 * having("factors_bytes") > windows.len(), "{report}");
+    if cfg!(target_os = "linux") {
+        assert!(2 * having("anon_bytes") > windows.len(), "{report}");
+        assert!(
+            windows
+                .iter()
+                .filter_map(|w| w["threads"].as_f64())
+                .all(|t| t >= 2.0),
+            "{report}"
+        );
+    }
     for chart in ["memory.svg", "latency.svg", "swap-p99.svg"] {
         let svg = std::fs::read_to_string(out.join(chart)).unwrap();
         assert!(svg.starts_with("<svg"), "{chart}");
