@@ -3,10 +3,9 @@
 //! can be told apart as anonymous memory (the heap), file-backed pages (mapped files) or more
 //! threads.
 
-use std::sync::Arc;
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
+
+use crate::scrape::Periodic;
 
 /// One reading, in bytes (and a count of threads).
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -35,42 +34,23 @@ pub fn parse_status(text: &str, at_s: f64) -> Option<ProcSample> {
 
 /// Reads `/proc/PID/status` every `period` on its own thread until stopped.
 #[derive(Debug)]
-pub struct ProcSampler {
-    stop: Arc<AtomicBool>,
-    thread: JoinHandle<Vec<ProcSample>>,
-}
+pub struct ProcSampler(Periodic<ProcSample>);
 
 impl ProcSampler {
     /// Starts sampling process `pid`; times are seconds since `origin`. Where there is no such
     /// file (not Linux, or the process ended) it collects nothing.
     pub fn start(pid: u32, origin: Instant, period: Duration) -> Self {
-        let stop = Arc::new(AtomicBool::new(false));
-        let flag = Arc::clone(&stop);
         let path = format!("/proc/{pid}/status");
-        let thread = std::thread::spawn(move || {
-            let mut out = Vec::new();
-            while !flag.load(Ordering::Relaxed) {
-                let at = origin.elapsed().as_secs_f64();
-                if let Some(s) = std::fs::read_to_string(&path)
-                    .ok()
-                    .and_then(|t| parse_status(&t, at))
-                {
-                    out.push(s);
-                }
-                let next = Duration::from_secs_f64(at) + period;
-                while !flag.load(Ordering::Relaxed) && origin.elapsed() < next {
-                    std::thread::sleep(Duration::from_millis(10));
-                }
-            }
-            out
-        });
-        Self { stop, thread }
+        Self(Periodic::start(origin, period, move |at| {
+            std::fs::read_to_string(&path)
+                .ok()
+                .and_then(|t| parse_status(&t, at))
+        }))
     }
 
     /// Stops and returns the samples.
     pub fn finish(self) -> Vec<ProcSample> {
-        self.stop.store(true, Ordering::Relaxed);
-        self.thread.join().unwrap_or_default()
+        self.0.finish()
     }
 }
 

@@ -203,25 +203,28 @@ pub fn memory_sample(samples: &[Sample], at_s: f64) -> MemorySample {
     }
 }
 
-/// Scrapes /metrics every `period` on its own thread until stopped.
+/// A reading taken every `period` on its own thread until stopped: what the samplers of a run
+/// share. `read` gets the seconds since `origin` and returns the sample, or nothing when that
+/// reading failed.
 #[derive(Debug)]
-pub struct MemorySampler {
+pub struct Periodic<T> {
     stop: Arc<AtomicBool>,
-    thread: JoinHandle<Vec<MemorySample>>,
+    thread: JoinHandle<Vec<T>>,
 }
 
-impl MemorySampler {
-    /// Starts sampling; times are seconds since `origin`.
-    pub fn start(client: Client, origin: Instant, period: Duration) -> Self {
+impl<T: Send + 'static> Periodic<T> {
+    pub fn start(
+        origin: Instant,
+        period: Duration,
+        mut read: impl FnMut(f64) -> Option<T> + Send + 'static,
+    ) -> Self {
         let stop = Arc::new(AtomicBool::new(false));
         let flag = Arc::clone(&stop);
         let thread = std::thread::spawn(move || {
             let mut out = Vec::new();
             while !flag.load(Ordering::Relaxed) {
                 let at = origin.elapsed().as_secs_f64();
-                if let Ok(text) = client.metrics() {
-                    out.push(memory_sample(&parse(&text), at));
-                }
+                out.extend(read(at));
                 let next = Duration::from_secs_f64(at) + period;
                 while !flag.load(Ordering::Relaxed) && origin.elapsed() < next {
                     std::thread::sleep(Duration::from_millis(10));
@@ -233,9 +236,30 @@ impl MemorySampler {
     }
 
     /// Stops and returns the samples.
-    pub fn finish(self) -> Vec<MemorySample> {
+    pub fn finish(self) -> Vec<T> {
         self.stop.store(true, Ordering::Relaxed);
         self.thread.join().unwrap_or_default()
+    }
+}
+
+/// Scrapes /metrics every `period` on its own thread until stopped.
+#[derive(Debug)]
+pub struct MemorySampler(Periodic<MemorySample>);
+
+impl MemorySampler {
+    /// Starts sampling; times are seconds since `origin`.
+    pub fn start(client: Client, origin: Instant, period: Duration) -> Self {
+        Self(Periodic::start(origin, period, move |at| {
+            client
+                .metrics()
+                .ok()
+                .map(|text| memory_sample(&parse(&text), at))
+        }))
+    }
+
+    /// Stops and returns the samples.
+    pub fn finish(self) -> Vec<MemorySample> {
+        self.0.finish()
     }
 }
 

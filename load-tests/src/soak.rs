@@ -305,12 +305,12 @@ fn windows(
                 errors: mine.iter().filter(|r| !r.ok()).count(),
                 latency: LatencySummary::of(&ok),
                 swap_p99_ms: percentile(&sorted(&swaps), 0.99),
-                rss_bytes: largest(memory, lo, hi, |m| m.process),
-                factors_bytes: largest(memory, lo, hi, |m| Some(m.factors)),
-                merged_bytes: largest(memory, lo, hi, |m| Some(m.merged)),
-                anon_bytes: largest_of(process, lo, hi, |p| p.anon),
-                file_bytes: largest_of(process, lo, hi, |p| p.file),
-                threads: largest_of(process, lo, hi, |p| p.threads),
+                rss_bytes: largest(memory, lo, hi, |m| m.at_s, |m| m.process),
+                factors_bytes: largest(memory, lo, hi, |m| m.at_s, |m| Some(m.factors)),
+                merged_bytes: largest(memory, lo, hi, |m| m.at_s, |m| Some(m.merged)),
+                anon_bytes: largest(process, lo, hi, |p| p.at_s, |p| Some(p.anon)),
+                file_bytes: largest(process, lo, hi, |p| p.at_s, |p| Some(p.file)),
+                threads: largest(process, lo, hi, |p| p.at_s, |p| Some(p.threads)),
                 admin_ops: my_ops.len(),
                 admin_errors: my_ops.iter().filter(|o| !o.ok).count(),
             }
@@ -318,31 +318,18 @@ fn windows(
         .collect()
 }
 
-/// The largest of one figure over the samples taken in `[lo, hi)`.
-fn largest(
-    memory: &[MemorySample],
+/// The largest of one figure over the samples taken in `[lo, hi)`; `at` is a sample's time.
+fn largest<S>(
+    samples: &[S],
     lo: f64,
     hi: f64,
-    figure: impl Fn(&MemorySample) -> Option<f64>,
+    at: impl Fn(&S) -> f64,
+    figure: impl Fn(&S) -> Option<f64>,
 ) -> Option<f64> {
-    memory
+    samples
         .iter()
-        .filter(|m| m.at_s >= lo && m.at_s < hi)
+        .filter(|m| at(m) >= lo && at(m) < hi)
         .filter_map(figure)
-        .reduce(f64::max)
-}
-
-/// The largest of one figure of the process samples taken in `[lo, hi)`.
-fn largest_of(
-    process: &[ProcSample],
-    lo: f64,
-    hi: f64,
-    figure: impl Fn(&ProcSample) -> f64,
-) -> Option<f64> {
-    process
-        .iter()
-        .filter(|p| p.at_s >= lo && p.at_s < hi)
-        .map(figure)
         .reduce(f64::max)
 }
 

@@ -94,6 +94,21 @@ impl Bucket {
         }
     }
 
+    /// As the request-rate bucket: refilled to `now`, whether it holds one more request (nothing
+    /// is taken), or the rate refusal with its wait.
+    fn admits_one_request(&mut self, now: Instant) -> Result<(), QuotaRefusal> {
+        self.refill(now);
+        let wait = self.wait_for(1.0);
+        if wait.is_zero() {
+            Ok(())
+        } else {
+            Err(QuotaRefusal::Rate {
+                per_second: self.per_second,
+                wait,
+            })
+        }
+    }
+
     fn give_back(&mut self, amount: f64) {
         self.level = (self.level + amount).min(self.capacity);
     }
@@ -161,17 +176,10 @@ impl Quotas {
             return Err(QuotaRefusal::Concurrency { limit });
         }
         let mut buckets = quota.buckets();
-        if let Some(b) = buckets.requests.as_mut() {
-            b.refill(now);
-            let wait = b.wait_for(1.0);
-            if !wait.is_zero() {
-                return Err(QuotaRefusal::Rate {
-                    per_second: b.per_second,
-                    wait,
-                });
-            }
+        match buckets.requests.as_mut() {
+            Some(b) => b.admits_one_request(now),
+            None => Ok(()),
         }
-        Ok(())
     }
 
     /// Admits one request of `tenant` needing `tokens`, or says which limit refuses it and how
@@ -208,14 +216,7 @@ impl Quotas {
             tokens: token_bucket,
         } = &mut *buckets;
         if let Some(b) = requests.as_mut() {
-            b.refill(now);
-            let wait = b.wait_for(1.0);
-            if !wait.is_zero() {
-                return Err(QuotaRefusal::Rate {
-                    per_second: b.per_second,
-                    wait,
-                });
-            }
+            b.admits_one_request(now)?;
         }
         if let (Some(b), Some(per_minute)) = (token_bucket.as_mut(), limits.tokens_per_minute) {
             if tokens > per_minute {
