@@ -97,12 +97,18 @@ impl Report {
     }
 }
 
-fn encoder_section(report: &mut Report, rounds: usize) {
-    let dir = std::env::var("SWITCHYARD_BASE_MODEL_DIR").unwrap_or_else(|_| {
-        concat!(env!("CARGO_MANIFEST_DIR"), "/../models/all-minilm-l6-v2").to_owned()
-    });
-    let e = Embedder::load(std::path::Path::new(&dir))
-        .expect("load MiniLM (run scripts/fetch-base-model.sh)");
+/// The MiniLM folder: `SWITCHYARD_BASE_MODEL_DIR`, or models/all-minilm-l6-v2.
+fn minilm_dir() -> std::path::PathBuf {
+    std::env::var("SWITCHYARD_BASE_MODEL_DIR")
+        .unwrap_or_else(|_| {
+            concat!(env!("CARGO_MANIFEST_DIR"), "/../models/all-minilm-l6-v2").to_owned()
+        })
+        .into()
+}
+
+/// The benchmark's batch: the first 32 lines of bench-inputs.txt, each exactly 64 tokens (the
+/// shape the goal names; padding repeats the token before the last), as ids and an all-ones mask.
+fn bench_batch(e: &Embedder) -> (Tensor, Tensor) {
     let inputs = std::fs::read_to_string(concat!(
         env!("CARGO_MANIFEST_DIR"),
         "/../tests/reference/fixtures/bench-inputs.txt"
@@ -111,9 +117,18 @@ fn encoder_section(report: &mut Report, rounds: usize) {
     let texts: Vec<&str> = inputs.lines().take(32).collect();
     let mut ids = e.tokenize(&texts).unwrap();
     for seq in &mut ids {
-        // Exactly 64 tokens per row: the shape the goal names.
         seq.resize(64, seq[seq.len() - 2]);
     }
+    let (b, t) = (ids.len(), 64);
+    let flat: Vec<u32> = ids.iter().flatten().copied().collect();
+    let ids_t = Tensor::from_vec(flat, (b, t), &Device::Cpu).unwrap();
+    let mask = Tensor::ones((b, t), DType::U32, &Device::Cpu).unwrap();
+    (ids_t, mask)
+}
+
+fn encoder_section(report: &mut Report, rounds: usize) {
+    let e = Embedder::load(&minilm_dir()).expect("load MiniLM (run scripts/fetch-base-model.sh)");
+    let (ids_t, mask) = bench_batch(&e);
     let spec = e.spec().clone();
     let qv = [Module::AttnQ, Module::AttnV];
     let all = [
@@ -137,12 +152,7 @@ fn encoder_section(report: &mut Report, rounds: usize) {
     let merged =
         Arc::new(MergedWeights::build_packed(&r16qv, |s| e.model().base_weight(s)).unwrap());
 
-    let b = ids.len();
-    let t = 64;
-    let dev = Device::Cpu;
-    let flat: Vec<u32> = ids.iter().flatten().copied().collect();
-    let ids_t = Tensor::from_vec(flat, (b, t), &dev).unwrap();
-    let mask = Tensor::ones((b, t), DType::U32, &dev).unwrap();
+    let (b, t) = ids_t.dims2().unwrap();
     let run = |rows: &RowAdapters| {
         let start = Instant::now();
         let h = e.model().forward(&ids_t, &mask, rows).unwrap();
@@ -296,39 +306,19 @@ fn formats() -> Vec<(&'static str, WeightFormat)> {
 /// The MiniLM encoder with its weights held in each format: base rows/s against f32's (same
 /// batch, rounds interleaved), and eight mixed rank-16 q,v adapters against each format's base.
 fn encoder_formats_section(report: &mut Report, rounds: usize) {
-    let dir = std::env::var("SWITCHYARD_BASE_MODEL_DIR").unwrap_or_else(|_| {
-        concat!(env!("CARGO_MANIFEST_DIR"), "/../models/all-minilm-l6-v2").to_owned()
-    });
+    let dir = minilm_dir();
     let models: Vec<(&str, Embedder)> = formats()
         .into_iter()
-        .map(|(name, f)| {
-            (
-                name,
-                Embedder::load_as(std::path::Path::new(&dir), f).unwrap(),
-            )
-        })
+        .map(|(name, f)| (name, Embedder::load_as(&dir, f).unwrap()))
         .collect();
     let e = &models[0].1;
-    let inputs = std::fs::read_to_string(concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/../tests/reference/fixtures/bench-inputs.txt"
-    ))
-    .unwrap();
-    let texts: Vec<&str> = inputs.lines().take(32).collect();
-    let mut ids = e.tokenize(&texts).unwrap();
-    for seq in &mut ids {
-        seq.resize(64, seq[seq.len() - 2]);
-    }
+    let (ids_t, mask) = bench_batch(e);
     let spec = e.spec().clone();
     let qv = [Module::AttnQ, Module::AttnV];
     let set: Vec<Arc<Adapter>> = (0..8)
         .map(|i| synthetic_adapter(&spec, 16, &qv, 20 + i))
         .collect();
-    let (b, t) = (ids.len(), 64);
-    let dev = Device::Cpu;
-    let flat: Vec<u32> = ids.iter().flatten().copied().collect();
-    let ids_t = Tensor::from_vec(flat, (b, t), &dev).unwrap();
-    let mask = Tensor::ones((b, t), DType::U32, &dev).unwrap();
+    let (b, t) = ids_t.dims2().unwrap();
     let rows: Vec<Option<Arc<Adapter>>> = (0..b).map(|i| Some(set[i % 8].clone())).collect();
     let mixed = RowAdapters::per_sequence(&rows, &vec![t; b]);
     let base = RowAdapters::base(b * t);
