@@ -8,11 +8,20 @@
 //! of start tag (ties in arrival order), and the virtual time is the start tag of the last job
 //! taken. So a tenant's tags run ahead of the virtual time by the cost it has queued: a tenant
 //! with a backlog of a hundred jobs has tags far ahead, while one that sends a job now and then
-//! gets a tag at the virtual time and goes next, behind only the batch under way. A tenant that
-//! was idle starts again at the virtual time (it saves nothing up); one that sends a job the
-//! moment its last one was taken continues from that job's finish tag (it gets its share, not
-//! more). Over any stretch in which two tenants both have jobs waiting, the cost each is served
-//! differs by at most the largest job.
+//! gets a tag at the virtual time and goes next, behind only the batch under way. One that sends
+//! a job the moment its last one was taken continues from that job's finish tag (it gets its
+//! share, not more).
+//!
+//! A tenant back from idle may start a bounded `burst` of cost *before* the virtual time: its
+//! start tag is the later of (virtual time − burst) and its last finish tag. A light tenant's
+//! requests come in clumps (several arrive together, then none for a while); without the burst
+//! the second request of a clump would take turns with a flooding tenant's backlog, one batch
+//! each, and the clump's last request would wait as many batches as the clump is long, twice
+//! over. With it, the whole clump (up to `burst`) goes before the backlog. What a tenant gains so
+//! is bounded: it has to be idle while the virtual time moves on by `burst` to save it up again,
+//! and over any stretch in which two tenants both have jobs waiting, the cost each is served
+//! differs by at most the largest job plus the burst (Goyal et al.'s bound, with the burst
+//! added). A burst of 0 is plain start-time fair queueing.
 //!
 //! [`FairQueue::take`] fills one batch up to a budget (cost and job count), in tag order, and
 //! stops at the first job that does not fit (a first job larger than the budget is taken alone).
@@ -44,6 +53,9 @@ pub struct QueueLimits {
     pub total: usize,
     /// Jobs waiting in one lane.
     pub per_lane: usize,
+    /// The cost a tenant back from idle may be served ahead of the tenants with a backlog (see
+    /// the module doc); 0 for none.
+    pub burst: u64,
 }
 
 impl QueueLimits {
@@ -53,7 +65,13 @@ impl QueueLimits {
         Self {
             total: total.max(1),
             per_lane: (total / lanes.max(1)).max(1),
+            burst: 0,
         }
+    }
+
+    /// These bounds with a burst of `burst` (see the module doc).
+    pub fn with_burst(self, burst: u64) -> Self {
+        Self { burst, ..self }
     }
 }
 
@@ -234,7 +252,10 @@ impl<T: Cost> FairQueue<T> {
             return Err((Refused::Closed, job));
         }
         let cost = job.cost();
-        let start = s.virtual_time.max(s.lanes[lane].finish);
+        let start = s
+            .virtual_time
+            .saturating_sub(self.limits.burst)
+            .max(s.lanes[lane].finish);
         s.seq += 1;
         let seq = s.seq;
         let l = &mut s.lanes[lane];
@@ -345,7 +366,11 @@ impl<T: Cost> FairQueue<T> {
         let ahead = match lane {
             Some(lane) => match s.lanes[lane].jobs.front() {
                 Some(front) => s.cost_before(front.start),
-                None => s.cost_before(s.virtual_time.max(s.lanes[lane].finish)),
+                None => s.cost_before(
+                    s.virtual_time
+                        .saturating_sub(self.limits.burst)
+                        .max(s.lanes[lane].finish),
+                ),
             },
             None => s
                 .next_lane()

@@ -32,6 +32,7 @@ fn queue(lanes: usize) -> FairQueue<J> {
         QueueLimits {
             total: 1000,
             per_lane: 1000,
+            burst: 0,
         },
     )
 }
@@ -158,8 +159,20 @@ fn shares_are_equal_by_cost_not_by_job_count() {
     assert!(rows[0].abs_diff(rows[1]) <= 4, "rows served {rows:?}");
 }
 
+/// A queue of `lanes` lanes with a burst of `burst`.
+fn queue_with_burst(lanes: usize, burst: u64) -> FairQueue<J> {
+    FairQueue::new(
+        lanes,
+        QueueLimits {
+            total: 1000,
+            per_lane: 1000,
+            burst,
+        },
+    )
+}
+
 #[test]
-fn an_idle_tenant_saves_nothing_up() {
+fn without_a_burst_an_idle_tenant_saves_nothing_up() {
     // a's one job is served; then b's ten (tags 0..9) are, and the virtual time is 9. a's next
     // five start at 9, not at 1: they interleave with b's next five instead of all going first.
     let q = queue(2);
@@ -175,6 +188,60 @@ fn an_idle_tenant_saves_nothing_up() {
             "a2", "a3", "b11", "a4", "b12", "a5", "b13", "a6", "b14", "b15"
         ]
     );
+}
+
+#[test]
+fn an_idle_tenant_saves_up_to_its_burst_and_no_more() {
+    // The same history with a burst of 3: the virtual time is 9, so a's next jobs start at
+    // 9 - 3 = 6 (tags 6, 7, 8, 9, 10) and b's at 10: a's first four go before b's backlog, its
+    // fifth (tag 10) ties with b11 and, pushed earlier, goes first too.
+    let q = queue_with_burst(2, 3);
+    q.push(0, j(0, 1, 1)).unwrap();
+    assert_eq!(names(&q.try_take(ANY)), ["a1"]);
+    push_all(&q, (1..=10).map(|n| j(1, n, 1)));
+    assert_eq!(q.try_take(ANY).len(), 10);
+    push_all(&q, (2..=8).map(|n| j(0, n, 1)));
+    push_all(&q, (11..=15).map(|n| j(1, n, 1)));
+    assert_eq!(
+        names(&drain_one_by_one(&q)),
+        [
+            "a2", "a3", "a4", "a5", "a6", "b11", "a7", "b12", "a8", "b13", "b14", "b15"
+        ]
+    );
+}
+
+#[test]
+fn a_light_tenants_clump_goes_before_a_floods_backlog_within_the_burst() {
+    // b floods: 200 jobs of 4 rows queued, taken one 4-row batch at a time. a is light: three
+    // 4-row requests arrive together. Plain fair queueing takes turns (a, b, a, b, a): a's last
+    // request waits five batches. With a burst of 8 rows a's clump starts at the virtual time
+    // minus 8 (tags V-8, V-4, V) and all three go before b's next.
+    let batch = Budget { cost: 4, jobs: 100 };
+    for (burst, expected) in [
+        (0, vec!["a1", "b11", "a2", "b12", "a3"]),
+        (8, vec!["a1", "a2", "a3", "b11", "b12"]),
+    ] {
+        let q = queue_with_burst(2, burst);
+        push_all(&q, (1..=200).map(|n| j(1, n, 4)));
+        for _ in 0..10 {
+            q.try_take(batch);
+        }
+        push_all(&q, (1..=3).map(|n| j(0, n, 4)));
+        let order: Vec<J> = (0..5).flat_map(|_| q.try_take(batch)).collect();
+        assert_eq!(names(&order), expected, "burst {burst}");
+    }
+}
+
+#[test]
+fn a_tenant_that_never_idles_gains_nothing_from_the_burst() {
+    // Both tenants always have work queued: the burst applies to neither (their last finish
+    // tags are ahead of the virtual time), and they alternate exactly as without it.
+    let q = queue_with_burst(2, 8);
+    push_all(&q, (1..=50).map(|n| j(0, n, 1)));
+    push_all(&q, (1..=50).map(|n| j(1, n, 1)));
+    let order = drain_one_by_one(&q);
+    let first_twenty: Vec<usize> = order.iter().take(20).map(|j| j.lane).collect();
+    assert_eq!(first_twenty, [0, 1].repeat(10));
 }
 
 #[test]
@@ -234,6 +301,7 @@ fn each_lane_may_hold_its_share_and_the_whole_queue_its_total() {
         QueueLimits {
             total: 3,
             per_lane: 2,
+            burst: 0,
         },
     );
     push_all(&q, (1..=2).map(|n| j(0, n, 1)));
@@ -254,6 +322,7 @@ fn a_held_place_counts_against_both_bounds_until_pushed_into_or_released() {
         QueueLimits {
             total: 3,
             per_lane: 2,
+            burst: 0,
         },
     );
     q.hold(0).unwrap();
