@@ -141,6 +141,14 @@ impl<T> State<T> {
             .map(|(_, i)| i)
     }
 
+    /// The start tag a job pushed into `lane` now gets: the later of (virtual time - `burst`)
+    /// and the lane's last finish tag.
+    fn next_start(&self, lane: usize, burst: u64) -> u64 {
+        self.virtual_time
+            .saturating_sub(burst)
+            .max(self.lanes[lane].finish)
+    }
+
     /// The cost of the jobs ordered before a job with start tag `start` that arrived after all
     /// those queued.
     fn cost_before(&self, start: u64) -> u64 {
@@ -252,10 +260,7 @@ impl<T: Cost> FairQueue<T> {
             return Err((Refused::Closed, job));
         }
         let cost = job.cost();
-        let start = s
-            .virtual_time
-            .saturating_sub(self.limits.burst)
-            .max(s.lanes[lane].finish);
+        let start = s.next_start(lane, self.limits.burst);
         s.seq += 1;
         let seq = s.seq;
         let l = &mut s.lanes[lane];
@@ -366,11 +371,7 @@ impl<T: Cost> FairQueue<T> {
         let ahead = match lane {
             Some(lane) => match s.lanes[lane].jobs.front() {
                 Some(front) => s.cost_before(front.start),
-                None => s.cost_before(
-                    s.virtual_time
-                        .saturating_sub(self.limits.burst)
-                        .max(s.lanes[lane].finish),
-                ),
+                None => s.cost_before(s.next_start(lane, self.limits.burst)),
             },
             None => s
                 .next_lane()

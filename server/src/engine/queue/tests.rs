@@ -27,14 +27,7 @@ fn j(lane: usize, n: u32, cost: u64) -> J {
 }
 
 fn queue(lanes: usize) -> FairQueue<J> {
-    FairQueue::new(
-        lanes,
-        QueueLimits {
-            total: 1000,
-            per_lane: 1000,
-            burst: 0,
-        },
-    )
+    queue_with_burst(lanes, 0)
 }
 
 const ANY: Budget = Budget {
@@ -171,15 +164,21 @@ fn queue_with_burst(lanes: usize, burst: u64) -> FairQueue<J> {
     )
 }
 
+/// The history both idle-tenant tests start from: a's one job is served, then b's ten (tags
+/// 0..9); the virtual time is 9 and a's last finish tag 1.
+fn serve_a_once_then_ten_of_b(q: &FairQueue<J>) {
+    q.push(0, j(0, 1, 1)).unwrap();
+    assert_eq!(names(&q.try_take(ANY)), ["a1"]);
+    push_all(q, (1..=10).map(|n| j(1, n, 1)));
+    assert_eq!(q.try_take(ANY).len(), 10);
+}
+
 #[test]
 fn without_a_burst_an_idle_tenant_saves_nothing_up() {
     // a's one job is served; then b's ten (tags 0..9) are, and the virtual time is 9. a's next
     // five start at 9, not at 1: they interleave with b's next five instead of all going first.
     let q = queue(2);
-    q.push(0, j(0, 1, 1)).unwrap();
-    assert_eq!(names(&q.try_take(ANY)), ["a1"]);
-    push_all(&q, (1..=10).map(|n| j(1, n, 1)));
-    assert_eq!(q.try_take(ANY).len(), 10);
+    serve_a_once_then_ten_of_b(&q);
     push_all(&q, (2..=6).map(|n| j(0, n, 1)));
     push_all(&q, (11..=15).map(|n| j(1, n, 1)));
     assert_eq!(
@@ -196,10 +195,7 @@ fn an_idle_tenant_saves_up_to_its_burst_and_no_more() {
     // 9 - 3 = 6 (tags 6, 7, 8, 9, 10) and b's at 10: a's first four go before b's backlog, its
     // fifth (tag 10) ties with b11 and, pushed earlier, goes first too.
     let q = queue_with_burst(2, 3);
-    q.push(0, j(0, 1, 1)).unwrap();
-    assert_eq!(names(&q.try_take(ANY)), ["a1"]);
-    push_all(&q, (1..=10).map(|n| j(1, n, 1)));
-    assert_eq!(q.try_take(ANY).len(), 10);
+    serve_a_once_then_ten_of_b(&q);
     push_all(&q, (2..=8).map(|n| j(0, n, 1)));
     push_all(&q, (11..=15).map(|n| j(1, n, 1)));
     assert_eq!(
