@@ -188,7 +188,9 @@ fn main() {
     drop(big);
     let peak = |path: Path| match path {
         Path::Avx2 => (!p8.is_empty()).then(|| median(p8.clone())),
-        Path::Avx512 | Path::Avx512Bf16 => (!p16.is_empty()).then(|| median(p16.clone())),
+        Path::Avx512 | Path::Avx512Bf16 | Path::Amx => {
+            (!p16.is_empty()).then(|| median(p16.clone()))
+        }
         Path::Portable => None,
     };
     let bandwidth = median(bw);
@@ -249,43 +251,48 @@ fn main() {
             weights: 32,
         },
     ];
-    println!("\nf32 weights, GFLOP/s per path (fraction of that path's FMA peak)");
-    print!("{:<38} {:>4} {:>5} {:>5}", "shape", "m", "k", "n");
-    for p in &paths {
-        print!(" {:>20}", p.name());
-    }
-    println!();
-    for shape in shapes.iter().filter(|s| s.what.contains(only)) {
-        let x: Vec<f32> = (0..shape.m * shape.k)
-            .map(|_| rng.random_range(-1.0..1.0))
-            .collect();
-        let w: Vec<f32> = (0..shape.n * shape.k)
-            .map(|_| rng.random_range(-0.1..0.1))
-            .collect();
-        let one = PackedWeight::pack(&w, shape.n, shape.k);
-        let ws = vec![one; shape.weights];
-        let mut y = vec![0f32; shape.m * shape.n];
-        let flops = 2.0 * (shape.m * shape.k * shape.n) as f64;
-        // Enough calls per timing for about 50 ms of work at 50 GFLOP/s.
-        let calls = ((2.5e9 / flops) as usize).max(shape.weights);
-        let mut rates = vec![Vec::new(); paths.len()];
-        for _ in 0..repeats {
-            for (r, &path) in rates.iter_mut().zip(&paths) {
-                r.push(flops / seconds_per_call(path, &ws, &x, &mut y, shape.m, calls) / 1e9);
-            }
-        }
-        print!(
-            "{:<38} {:>4} {:>5} {:>5}",
-            shape.what, shape.m, shape.k, shape.n
+    for format in [WeightFormat::F32, WeightFormat::Bf16] {
+        println!(
+            "\n{format} weights, GFLOP/s per path (fraction of that path's f32 FMA peak; bf16 on \
+         avx512-bf16 and amx multiplies bf16 inputs, so it can pass 1)"
         );
-        for (r, &path) in rates.into_iter().zip(&paths) {
-            let rate = median(r);
-            match peak(path) {
-                Some(p) => print!(" {:>12.1} ({:.2})", rate, rate / p),
-                None => print!(" {rate:>20.1}"),
-            }
+        print!("{:<38} {:>4} {:>5} {:>5}", "shape", "m", "k", "n");
+        for p in &paths {
+            print!(" {:>20}", p.name());
         }
         println!();
+        for shape in shapes.iter().filter(|s| s.what.contains(only)) {
+            let x: Vec<f32> = (0..shape.m * shape.k)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect();
+            let w: Vec<f32> = (0..shape.n * shape.k)
+                .map(|_| rng.random_range(-0.1..0.1))
+                .collect();
+            let one = PackedWeight::pack_as(&w, shape.n, shape.k, format).unwrap();
+            let ws = vec![one; shape.weights];
+            let mut y = vec![0f32; shape.m * shape.n];
+            let flops = 2.0 * (shape.m * shape.k * shape.n) as f64;
+            // Enough calls per timing for about 50 ms of work at 50 GFLOP/s.
+            let calls = ((2.5e9 / flops) as usize).max(shape.weights);
+            let mut rates = vec![Vec::new(); paths.len()];
+            for _ in 0..repeats {
+                for (r, &path) in rates.iter_mut().zip(&paths) {
+                    r.push(flops / seconds_per_call(path, &ws, &x, &mut y, shape.m, calls) / 1e9);
+                }
+            }
+            print!(
+                "{:<38} {:>4} {:>5} {:>5}",
+                shape.what, shape.m, shape.k, shape.n
+            );
+            for (r, &path) in rates.into_iter().zip(&paths) {
+                let rate = median(r);
+                match peak(path) {
+                    Some(p) => print!(" {:>12.1} ({:.2})", rate, rate / p),
+                    None => print!(" {rate:>20.1}"),
+                }
+            }
+            println!();
+        }
     }
 
     let formats = [

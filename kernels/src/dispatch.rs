@@ -23,6 +23,11 @@ pub enum Path {
     /// AVX-512F plus AVX-512-BF16: bf16 weights multiplied by `vdpbf16ps`, with each row's
     /// inputs rounded to bf16 (every other format as on `avx512`).
     Avx512Bf16,
+    /// AVX-512-BF16 plus Intel's tile unit (AMX): bf16 weights multiplied 16 rows by 16 columns
+    /// by 32 inputs per instruction once a product has at least 8 rows (fewer, and every other
+    /// format, as on `avx512-bf16`). Needs the operating system's leave to use the tile state,
+    /// which the process asks for on first use.
+    Amx,
 }
 
 /// `SWITCHYARD_KERNELS` named no path, or one this CPU cannot run.
@@ -42,7 +47,13 @@ pub enum PathError {
 
 impl Path {
     /// Every path, lowest first.
-    pub const ALL: [Path; 4] = [Path::Portable, Path::Avx2, Path::Avx512, Path::Avx512Bf16];
+    pub const ALL: [Path; 5] = [
+        Path::Portable,
+        Path::Avx2,
+        Path::Avx512,
+        Path::Avx512Bf16,
+        Path::Amx,
+    ];
 
     /// The name `SWITCHYARD_KERNELS` takes and reports print.
     pub fn name(self) -> &'static str {
@@ -51,6 +62,7 @@ impl Path {
             Path::Avx2 => "avx2",
             Path::Avx512 => "avx512",
             Path::Avx512Bf16 => "avx512-bf16",
+            Path::Amx => "amx",
         }
     }
 
@@ -66,6 +78,16 @@ impl Path {
             Path::Avx2 => &["avx2", "fma", "f16c"],
             Path::Avx512 => &["avx2", "fma", "f16c", "avx512f"],
             Path::Avx512Bf16 => &["avx2", "fma", "f16c", "avx512f", "avx512_bf16"],
+            Path::Amx => &[
+                "avx2",
+                "fma",
+                "f16c",
+                "avx512f",
+                "avx512vl",
+                "avx512_bf16",
+                "amx_bf16",
+                "amx_tile",
+            ],
         }
     }
 
@@ -116,7 +138,12 @@ fn has_feature(name: &str) -> bool {
             "fma" => std::arch::is_x86_feature_detected!("fma"),
             "f16c" => std::arch::is_x86_feature_detected!("f16c"),
             "avx512f" => std::arch::is_x86_feature_detected!("avx512f"),
+            "avx512vl" => std::arch::is_x86_feature_detected!("avx512vl"),
             "avx512_bf16" => std::arch::is_x86_feature_detected!("avx512bf16"),
+            "amx_bf16" => crate::matmul::amx::cpu_has_amx_bf16(),
+            // The tile instructions, the operating system saving their state, and its leave
+            // for this process to use them.
+            "amx_tile" => crate::matmul::amx::tiles_granted(),
             _ => false,
         }
     }
@@ -165,11 +192,17 @@ pub(crate) fn micro_kernel(path: Path, format: FormatKind) -> MicroKernel {
         (Path::Avx2, FormatKind::Bf16) => return micro::avx2::BF16,
         (Path::Avx2, FormatKind::Int8) => return micro::avx2::INT8,
         (Path::Avx2, FormatKind::Int4) => return micro::avx2::INT4,
-        (Path::Avx512 | Path::Avx512Bf16, FormatKind::F32) => return micro::avx512::F32,
+        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::F32) => {
+            return micro::avx512::F32;
+        }
         (Path::Avx512, FormatKind::Bf16) => return micro::avx512::BF16,
-        (Path::Avx512Bf16, FormatKind::Bf16) => return micro::avx512bf16::BF16,
-        (Path::Avx512 | Path::Avx512Bf16, FormatKind::Int8) => return micro::avx512::INT8,
-        (Path::Avx512 | Path::Avx512Bf16, FormatKind::Int4) => return micro::avx512::INT4,
+        (Path::Avx512Bf16 | Path::Amx, FormatKind::Bf16) => return micro::avx512bf16::BF16,
+        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::Int8) => {
+            return micro::avx512::INT8;
+        }
+        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::Int4) => {
+            return micro::avx512::INT4;
+        }
     }
     let _ = path;
     micro::portable::kernel(format)
@@ -186,7 +219,7 @@ mod tests {
         }
         let err = Path::parse("avx1024").unwrap_err().to_string();
         assert!(
-            err.contains("\"avx1024\"") && err.contains("portable, avx2, avx512, avx512-bf16"),
+            err.contains("\"avx1024\"") && err.contains("portable, avx2, avx512, avx512-bf16, amx"),
             "{err}"
         );
     }

@@ -8,8 +8,8 @@
 //! (one rounding, `f32(q - z) * s`, the same formula everywhere). Two paths therefore differ by at
 //! most `2 (k + r + 2) eps M`, and the portable path is within `(k + r + 2) eps M` of the exact
 //! sum. The `s x A^T` down product rounds once more per step, which the `+ 2` covers. The
-//! avx512-bf16 path also rounds each input to bf16 (relative error up to 2^-9), so it gets
-//! `2^-9 M_base` more.
+//! avx512-bf16 and amx paths also round each input to bf16 (relative error up to 2^-9) for a
+//! bf16 weight, so they get `2^-9 M_base` more.
 
 use super::*;
 use crate::test_values::values;
@@ -162,7 +162,7 @@ impl Case {
 
 /// The extra relative rounding a path applies to each base product (its inputs in bf16).
 fn input_rounding(path: Path, format: WeightFormat) -> f64 {
-    if path == Path::Avx512Bf16 && format == WeightFormat::Bf16 {
+    if path >= Path::Avx512Bf16 && format == WeightFormat::Bf16 {
         2f64.powi(-9)
     } else {
         0.0

@@ -3,6 +3,8 @@
 //! across the thread pool ([`blocks`] holds the cache blocking inside one part), each register
 //! tile then handed to the micro-kernel the dispatch picked ([`crate::micro`]).
 
+#[cfg(target_arch = "x86_64")]
+pub(crate) mod amx;
 mod blocks;
 #[cfg(test)]
 mod format_tests;
@@ -130,6 +132,11 @@ pub fn packed_matmul_on(
                 (true, None) => {}
             }
         }
+        return;
+    }
+    #[cfg(target_arch = "x86_64")]
+    if path == Path::Amx && w.format == WeightFormat::Bf16 && m >= amx::MIN_ROWS {
+        amx::matmul(y, x, m, w, accumulate, bias, terms);
         return;
     }
     let panels = n.div_ceil(PANEL);

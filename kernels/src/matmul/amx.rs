@@ -1,0 +1,408 @@
+//! The AMX path for bf16 weights: Intel's tile registers multiply a 16-row by 32-input tile of
+//! bf16 rows by a 32-input by 16-column tile of bf16 weights into 16 x 16 f32 sums in one
+//! instruction (`tdpbf16ps`), about sixteen times the work of one AVX-512-BF16 instruction.
+//!
+//! The packed bf16 panel is already in the layout the instruction reads for its second operand
+//! (each 64-byte row of a weight tile holds the pairs of two inputs for 16 columns, see
+//! [`crate::pack`]), so a weight tile is 16 pair rows of a panel, read in place. The input rows
+//! are rounded to bf16 once per call, row-major, padded with zeros to whole tiles; each task
+//! then computes blocks of 32 rows by 2 panels in four sum tiles (2 input tiles and 2 weight
+//! tiles per 32 inputs) and adds the bias and what the output held as it stores them. A
+//! product's low-rank terms are added afterwards on the AVX-512 path, in f32, as their own two
+//! small products (rank steps each way).
+//!
+//! Rust has no stable AMX intrinsics: the tile instructions are inline assembly, and the tile
+//! registers are touched by nothing else in the process (the compiler never allocates them), so
+//! their contents live from one `asm!` block to the next within a task. Linux hands the tile
+//! state to a process only after it asks (`arch_prctl(ARCH_REQ_XCOMP_PERM)`), which
+//! [`tiles_granted`] does once; without that grant the path is not available.
+#![allow(unsafe_code)]
+
+use std::arch::asm;
+use std::arch::x86_64::*;
+
+use super::{RowTerm, packed_matmul_on};
+use crate::dispatch::Path;
+use crate::pack::quant::bf16_from_f32;
+use crate::pack::{Block, PANEL, PackedWeight};
+use crate::threads::rayon_threads;
+
+/// Rows per tile (the most a tile register holds).
+const TILE_ROWS: usize = 16;
+/// Inputs per step: one 64-byte tile row of bf16.
+const STEP: usize = 32;
+/// Rows per block: two input tiles.
+const BLOCK: usize = 2 * TILE_ROWS;
+/// Fewer rows than this go to the AVX-512-BF16 micro-kernel: a tile of mostly padding
+/// multiplies zeros, and with few rows the product is bound by reading the weights anyway.
+pub(crate) const MIN_ROWS: usize = 8;
+
+/// Whether this CPU has the tile instructions for bf16 (CPUID leaf 7: AMX-BF16 and AMX-TILE).
+pub(crate) fn cpu_has_amx_bf16() -> bool {
+    let leaf = __cpuid_count(7, 0);
+    leaf.edx & (1 << 22) != 0 && leaf.edx & (1 << 24) != 0
+}
+
+/// Whether the operating system saves the tile state (XCR0 bits 17 and 18) and gave this
+/// process leave to use it: asked once, on first call.
+pub(crate) fn tiles_granted() -> bool {
+    static GRANTED: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *GRANTED.get_or_init(|| cpu_has_amx_bf16() && os_saves_tiles() && ask_for_tiles())
+}
+
+fn os_saves_tiles() -> bool {
+    if __cpuid(1).ecx & (1 << 27) == 0 {
+        return false;
+    }
+    // SAFETY: OSXSAVE (checked just above) says XGETBV may run.
+    unsafe { xcr0() & (3 << 17) == 3 << 17 }
+}
+
+#[target_feature(enable = "xsave")]
+unsafe fn xcr0() -> u64 {
+    // SAFETY: the caller's contract.
+    unsafe { _xgetbv(0) }
+}
+
+#[cfg(target_os = "linux")]
+fn ask_for_tiles() -> bool {
+    const SYS_ARCH_PRCTL: usize = 158;
+    const ARCH_REQ_XCOMP_PERM: usize = 0x1023;
+    const XFEATURE_XTILEDATA: usize = 18;
+    let ret: isize;
+    // SAFETY: arch_prctl(ARCH_REQ_XCOMP_PERM, XTILEDATA) only changes which register state
+    // the kernel saves for this process; the syscall clobbers rcx and r11, declared.
+    unsafe {
+        asm!(
+            "syscall",
+            inlateout("rax") SYS_ARCH_PRCTL as isize => ret,
+            in("rdi") ARCH_REQ_XCOMP_PERM,
+            in("rsi") XFEATURE_XTILEDATA,
+            lateout("rcx") _,
+            lateout("r11") _,
+            options(nostack)
+        );
+    }
+    ret == 0
+}
+
+#[cfg(not(target_os = "linux"))]
+fn ask_for_tiles() -> bool {
+    false
+}
+
+/// The tile configuration every task loads: palette 1, tiles 0-7 each 16 rows of 64 bytes
+/// (0-3 the sums, 4-5 the input rows, 6-7 the weights).
+#[repr(C, align(64))]
+struct TileConfig {
+    palette: u8,
+    start_row: u8,
+    reserved: [u8; 14],
+    colsb: [u16; 16],
+    rows: [u8; 16],
+}
+
+const CONFIG: TileConfig = {
+    let mut c = TileConfig {
+        palette: 1,
+        start_row: 0,
+        reserved: [0; 14],
+        colsb: [0; 16],
+        rows: [0; 16],
+    };
+    let mut t = 0;
+    while t < 8 {
+        c.colsb[t] = 64;
+        c.rows[t] = TILE_ROWS as u8;
+        t += 1;
+    }
+    c
+};
+
+/// Loads [`CONFIG`] into this thread's tile unit.
+///
+/// # Safety
+/// The CPU has AMX and the process was granted the tile state ([`tiles_granted`]).
+#[target_feature(enable = "avx512f")]
+unsafe fn configure() {
+    // SAFETY: CONFIG is 64 readable bytes, aligned; the caller's contract covers the rest.
+    unsafe { asm!("ldtilecfg [{0}]", in(reg) &CONFIG, options(nostack, readonly)) }
+}
+
+/// Frees this thread's tile state, so that the kernel does not save it at every switch.
+///
+/// # Safety
+/// As [`configure`].
+unsafe fn release() {
+    // SAFETY: the caller's contract.
+    unsafe { asm!("tilerelease", options(nostack, nomem)) }
+}
+
+/// The 32 x 32 block `c` (rows 128 bytes apart) = rows `a0` and `a0 + 16 lda` (bf16, `lda`
+/// bytes apart) times panels `b0` and `b1` (pair rows 64 bytes apart), over `steps` steps of
+/// 32 inputs; the last step's weights from `tail` (two 1 KB tiles) when given.
+///
+/// # Safety
+/// The tiles are configured ([`configure`]); `a0` holds 32 rows of `steps * 64` bytes, `lda`
+/// apart; `b0` and `b1` hold `steps` (or, with a tail, `steps - 1`) tiles of 1 KB; `c` holds
+/// 32 rows of 128 bytes.
+#[allow(clippy::too_many_arguments)]
+unsafe fn block(
+    a0: *const u16,
+    lda: usize,
+    b0: *const u32,
+    b1: *const u32,
+    steps: usize,
+    tail: Option<&[u32; 2 * 16 * PANEL]>,
+    c: *mut f32,
+) {
+    // SAFETY: every address below lies in the regions the caller's contract names; the tile
+    // registers hold nothing the compiler relies on.
+    unsafe {
+        asm!(
+            "tilezero tmm0",
+            "tilezero tmm1",
+            "tilezero tmm2",
+            "tilezero tmm3",
+            options(nostack, nomem)
+        );
+        let a1 = a0.byte_add(TILE_ROWS * lda);
+        for s in 0..steps {
+            let (w0, w1) = match tail {
+                Some(t) if s + 1 == steps => (t.as_ptr(), t.as_ptr().add(16 * PANEL)),
+                _ => (b0.add(s * 16 * PANEL), b1.add(s * 16 * PANEL)),
+            };
+            asm!(
+                "tileloadd tmm4, [{a0} + {lda}*1]",
+                "tileloadd tmm5, [{a1} + {lda}*1]",
+                "tileloadd tmm6, [{w0} + {ldb}*1]",
+                "tileloadd tmm7, [{w1} + {ldb}*1]",
+                "tdpbf16ps tmm0, tmm4, tmm6",
+                "tdpbf16ps tmm1, tmm4, tmm7",
+                "tdpbf16ps tmm2, tmm5, tmm6",
+                "tdpbf16ps tmm3, tmm5, tmm7",
+                a0 = in(reg) a0.byte_add(s * 64),
+                a1 = in(reg) a1.byte_add(s * 64),
+                w0 = in(reg) w0,
+                w1 = in(reg) w1,
+                lda = in(reg) lda,
+                ldb = in(reg) 64usize,
+                options(nostack, readonly)
+            );
+        }
+        asm!(
+            "tilestored [{c0} + {ldc}*1], tmm0",
+            "tilestored [{c1} + {ldc}*1], tmm1",
+            "tilestored [{c2} + {ldc}*1], tmm2",
+            "tilestored [{c3} + {ldc}*1], tmm3",
+            c0 = in(reg) c,
+            c1 = in(reg) c.add(PANEL),
+            c2 = in(reg) c.add(TILE_ROWS * 2 * PANEL),
+            c3 = in(reg) c.add(TILE_ROWS * 2 * PANEL + PANEL),
+            ldc = in(reg) 2 * PANEL * 4,
+            options(nostack)
+        );
+    }
+}
+
+/// Rows `x[m, k]` rounded to bf16 (to nearest even) into `dst`, row `i` at `i * ld`, zeros
+/// from `k` to `ld` and in the rows from `m` to `dst.len() / ld`.
+fn rows_to_bf16(dst: &mut [u16], ld: usize, x: &[f32], m: usize, k: usize) {
+    use rayon::prelude::*;
+    let convert = |(i, row): (usize, &mut [u16])| {
+        if i >= m {
+            row.fill(0);
+            return;
+        }
+        let src = &x[i * k..(i + 1) * k];
+        let whole = k / 16 * 16;
+        // SAFETY: the path is only chosen where the CPU has AVX-512-BF16 (it needs AMX-BF16,
+        // which implies it, and the feature list checks it).
+        unsafe { convert16s(&mut row[..whole], &src[..whole]) };
+        for (d, &v) in row[whole..k].iter_mut().zip(&src[whole..]) {
+            *d = bf16_from_f32(v);
+        }
+        row[k..].fill(0);
+    };
+    if m * k >= 1 << 16 && rayon_threads() > 1 {
+        dst.par_chunks_mut(ld).enumerate().for_each(convert);
+    } else {
+        dst.chunks_mut(ld).enumerate().for_each(convert);
+    }
+}
+
+#[target_feature(enable = "avx512f,avx512bf16,avx512vl")]
+unsafe fn convert16s(dst: &mut [u16], src: &[f32]) {
+    for (d, s) in dst.chunks_exact_mut(16).zip(src.chunks_exact(16)) {
+        // SAFETY: both chunks hold 16 values.
+        unsafe {
+            let v = _mm512_loadu_ps(s.as_ptr());
+            let h: __m256i = std::mem::transmute(_mm512_cvtneps_pbh(v));
+            _mm256_storeu_si256(d.as_mut_ptr().cast(), h);
+        }
+    }
+}
+
+/// The output, shared by the tasks: each writes its own rows and columns.
+#[derive(Clone, Copy)]
+struct Out(*mut f32);
+
+impl Out {
+    /// `len` elements from element `at`.
+    ///
+    /// # Safety
+    /// They lie in the output and no other task writes them.
+    #[allow(clippy::mut_from_ref)]
+    unsafe fn slice(&self, at: usize, len: usize) -> &mut [f32] {
+        // SAFETY: the caller's contract.
+        unsafe { std::slice::from_raw_parts_mut(self.0.add(at), len) }
+    }
+}
+// SAFETY: tasks write disjoint elements (their rows of their panels) and nothing reads them
+// until every task has finished.
+unsafe impl Send for Out {}
+unsafe impl Sync for Out {}
+
+thread_local! {
+    /// The rows in bf16 and the terms' down products, reused from call to call.
+    static SCRATCH: std::cell::RefCell<(Vec<u16>, Vec<f32>)> =
+        const { std::cell::RefCell::new((Vec::new(), Vec::new())) };
+}
+
+/// [`super::packed_matmul_with`] for a bf16 weight on the tile unit: see the module comment.
+/// The arguments were checked as `packed_matmul_on` checks them.
+///
+/// # Panics
+/// When [`Path::Amx`] cannot run here or `w` is not bf16.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn matmul(
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+) {
+    use rayon::prelude::*;
+    assert!(
+        Path::Amx.available() && w.format == crate::WeightFormat::Bf16,
+        "the AMX path runs bf16 weights where the CPU has it"
+    );
+    let (n, k) = (w.out, w.inp);
+    let steps = k.div_ceil(STEP);
+    let ld = steps * STEP;
+    let blocks = m.div_ceil(BLOCK);
+    let panels = n.div_ceil(PANEL);
+    let pairs = panels.div_ceil(2);
+    let (mut abuf, mut down) = SCRATCH.with_borrow_mut(std::mem::take);
+    abuf.resize(blocks * BLOCK * ld, 0);
+    rows_to_bf16(&mut abuf, ld, x, m, k);
+    // Each panel's tiles; the last step's weights copied into zeros when the panel's pair
+    // rows do not fill it (the tile would otherwise read the next panel, or past the end).
+    let full = k.div_ceil(2) / 16;
+    let panel = |p: usize| -> *const u32 {
+        let Block::Bf16(b) = w.block(p, 0, k) else {
+            unreachable!("the AMX path got another format")
+        };
+        b.as_ptr()
+    };
+    let tail_of = |p: usize, dst: &mut [u32]| {
+        let Block::Bf16(b) = w.block(p, 0, k) else {
+            unreachable!("the AMX path got another format")
+        };
+        let rest = &b[full * 16 * PANEL..];
+        dst.fill(0);
+        dst[..rest.len()].copy_from_slice(rest);
+    };
+    let out = Out(y.as_mut_ptr());
+    let a = &abuf[..];
+    // One block of 32 rows by the panel pair `pp`: computed, then stored with the bias and
+    // what the output held.
+    let one = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
+        let p0 = 2 * pp;
+        let p1 = (p0 + 1).min(panels - 1);
+        let has_tail = full < steps;
+        if has_tail {
+            tail_of(p0, &mut tail[..16 * PANEL]);
+            tail_of(p1, &mut tail[16 * PANEL..]);
+        }
+        // SAFETY: the rows of block rb are in `a` (padded to whole blocks), each panel holds
+        // `full` whole tiles and the tail the rest; `c` is 32 x 32.
+        unsafe {
+            block(
+                a.as_ptr().add(rb * BLOCK * ld),
+                ld * 2,
+                panel(p0),
+                panel(p1),
+                steps,
+                has_tail.then_some(&*tail),
+                c.as_mut_ptr(),
+            );
+        }
+        let rows = BLOCK.min(m - rb * BLOCK);
+        for q in 0..(p1 - p0 + 1) {
+            let j0 = (p0 + q) * PANEL;
+            let cols = PANEL.min(n - j0);
+            for i in 0..rows {
+                let src = &c[i * 2 * PANEL + q * PANEL..][..cols];
+                // SAFETY: row rb * 32 + i < m and columns j0..j0 + cols < n: this task's own
+                // elements of y (see Out).
+                let dst = unsafe { out.slice((rb * BLOCK + i) * n + j0, cols) };
+                match (accumulate, bias.map(|b| &b[j0..j0 + cols])) {
+                    (false, None) => dst.copy_from_slice(src),
+                    (false, Some(b)) => {
+                        for ((d, &s), &b) in dst.iter_mut().zip(src).zip(b) {
+                            *d = s + b;
+                        }
+                    }
+                    (true, None) => dst.iter_mut().zip(src).for_each(|(d, &s)| *d += s),
+                    (true, Some(b)) => {
+                        for ((d, &s), &b) in dst.iter_mut().zip(src).zip(b) {
+                            *d += s + b;
+                        }
+                    }
+                }
+            }
+        }
+    };
+    let task = |range_rb: std::ops::Range<usize>, range_pp: std::ops::Range<usize>| {
+        let mut c = [0f32; BLOCK * 2 * PANEL];
+        let mut tail = [0u32; 512];
+        // SAFETY: the caller's contract (tiles granted); the configuration is per thread.
+        unsafe { configure() };
+        for rb in range_rb {
+            for pp in range_pp.clone() {
+                one(rb, pp, &mut c, &mut tail);
+            }
+        }
+        // SAFETY: as above.
+        unsafe { release() };
+    };
+    let threads = rayon_threads();
+    if threads <= 1 || m * n * k < (1 << 20) {
+        task(0..blocks, 0..pairs);
+    } else if blocks >= 2 * threads {
+        (0..blocks)
+            .into_par_iter()
+            .for_each(|rb| task(rb..rb + 1, 0..pairs));
+    } else {
+        let per = pairs.div_ceil(threads * 4).max(1);
+        (0..pairs.div_ceil(per)).into_par_iter().for_each(|b| {
+            task(0..blocks, b * per..((b + 1) * per).min(pairs));
+        });
+    }
+    // The terms, in f32 on the AVX-512 path: y[rows] += s (x[rows] A^T) B^T.
+    for t in terms {
+        let (rows, r) = (t.rows.clone(), t.a.out);
+        let mr = rows.len();
+        down.clear();
+        down.resize(mr * r, 0.0);
+        let xs = &x[rows.start * k..rows.end * k];
+        packed_matmul_on(Path::Avx512, &mut down, xs, mr, t.a, false, None, &[]);
+        down.iter_mut().for_each(|v| *v *= t.scale);
+        let ys = &mut y[rows.start * n..rows.end * n];
+        packed_matmul_on(Path::Avx512, ys, &down, mr, t.b, true, None, &[]);
+    }
+    SCRATCH.with_borrow_mut(|s| *s = (abuf, down));
+}
