@@ -138,14 +138,31 @@ unsafe fn release() {
     unsafe { asm!("tilerelease", options(nostack, nomem)) }
 }
 
-/// The 32 x 32 block `c` (rows 128 bytes apart) = rows `a0` and `a0 + 16 lda` (bf16, `lda`
-/// bytes apart) times panels `b0` and `b1` (pair rows 64 bytes apart), over `steps` steps of
-/// 32 inputs; the last step's weights from `tail` (two 1 KB tiles) when given.
+/// Four sum tiles at `c` (rows `ld` bytes apart): rows 0-15 and 16-31 (`down` elements on) of
+/// columns 0-15 and 16-31.
+#[derive(Clone, Copy)]
+struct Tiles {
+    c: *const f32,
+    ld: usize,
+    down: usize,
+}
+
+impl Tiles {
+    fn at(&self, t: usize) -> *const f32 {
+        self.c
+            .wrapping_add(if t >= 2 { self.down } else { 0 })
+            .wrapping_add(if t % 2 == 1 { PANEL } else { 0 })
+    }
+}
+
+/// The 32 x 32 block `out` = `init` (zeros when `None`) + rows `a0` and `a0 + 16 lda` (bf16,
+/// `lda` bytes apart) times panels `b0` and `b1` (pair rows 64 bytes apart), over `steps`
+/// steps of 32 inputs; the last step's weights from `tail` (two 1 KB tiles) when given.
 ///
 /// # Safety
 /// The tiles are configured ([`configure`]); `a0` holds 32 rows of `steps * 64` bytes, `lda`
-/// apart; `b0` and `b1` hold `steps` (or, with a tail, `steps - 1`) tiles of 1 KB; `c` holds
-/// 32 rows of 128 bytes.
+/// apart; `b0` and `b1` hold `steps` (or, with a tail, `steps - 1`) tiles of 1 KB; `init` and
+/// `out` describe 16-row tiles of 64 bytes that can be read (and, for `out`, written).
 #[allow(clippy::too_many_arguments)]
 unsafe fn block(
     a0: *const u16,
@@ -154,18 +171,33 @@ unsafe fn block(
     b1: *const u32,
     steps: usize,
     tail: Option<&[u32; 2 * 16 * PANEL]>,
-    c: *mut f32,
+    init: Option<Tiles>,
+    out: Tiles,
 ) {
     // SAFETY: every address below lies in the regions the caller's contract names; the tile
     // registers hold nothing the compiler relies on.
     unsafe {
-        asm!(
-            "tilezero tmm0",
-            "tilezero tmm1",
-            "tilezero tmm2",
-            "tilezero tmm3",
-            options(nostack, nomem)
-        );
+        match init {
+            None => asm!(
+                "tilezero tmm0",
+                "tilezero tmm1",
+                "tilezero tmm2",
+                "tilezero tmm3",
+                options(nostack, nomem)
+            ),
+            Some(t) => asm!(
+                "tileloadd tmm0, [{c0} + {ld}*1]",
+                "tileloadd tmm1, [{c1} + {ld}*1]",
+                "tileloadd tmm2, [{c2} + {ld}*1]",
+                "tileloadd tmm3, [{c3} + {ld}*1]",
+                c0 = in(reg) t.at(0),
+                c1 = in(reg) t.at(1),
+                c2 = in(reg) t.at(2),
+                c3 = in(reg) t.at(3),
+                ld = in(reg) t.ld,
+                options(nostack, readonly)
+            ),
+        }
         let a1 = a0.byte_add(TILE_ROWS * lda);
         for s in 0..steps {
             let (w0, w1) = match tail {
@@ -191,15 +223,15 @@ unsafe fn block(
             );
         }
         asm!(
-            "tilestored [{c0} + {ldc}*1], tmm0",
-            "tilestored [{c1} + {ldc}*1], tmm1",
-            "tilestored [{c2} + {ldc}*1], tmm2",
-            "tilestored [{c3} + {ldc}*1], tmm3",
-            c0 = in(reg) c,
-            c1 = in(reg) c.add(PANEL),
-            c2 = in(reg) c.add(TILE_ROWS * 2 * PANEL),
-            c3 = in(reg) c.add(TILE_ROWS * 2 * PANEL + PANEL),
-            ldc = in(reg) 2 * PANEL * 4,
+            "tilestored [{c0} + {ld}*1], tmm0",
+            "tilestored [{c1} + {ld}*1], tmm1",
+            "tilestored [{c2} + {ld}*1], tmm2",
+            "tilestored [{c3} + {ld}*1], tmm3",
+            c0 = in(reg) out.at(0),
+            c1 = in(reg) out.at(1),
+            c2 = in(reg) out.at(2),
+            c3 = in(reg) out.at(3),
+            ld = in(reg) out.ld,
             options(nostack)
         );
     }
@@ -327,20 +359,44 @@ pub(crate) fn matmul(
             tail_of(p0, &mut tail[..16 * PANEL]);
             tail_of(p1, &mut tail[16 * PANEL..]);
         }
-        // SAFETY: the rows of block rb are in `a` (padded to whole blocks), each panel holds
-        // `full` whole tiles and the tail the rest; `c` is 32 x 32.
-        unsafe {
-            block(
-                a.as_ptr().add(rb * BLOCK * ld),
-                ld * 2,
-                panel(p0),
-                panel(p1),
-                steps,
-                has_tail.then_some(&*tail),
-                c.as_mut_ptr(),
-            );
-        }
         let rows = BLOCK.min(m - rb * BLOCK);
+        let a0 = a.as_ptr().wrapping_add(rb * BLOCK * ld);
+        let tail = has_tail.then_some(&*tail);
+        // A whole block (32 rows, two full panels) goes straight into y, starting from the
+        // bias (a tile row read 16 times: stride 0) or from what y holds; any other block goes
+        // through `c`.
+        if rows == BLOCK && p1 == p0 + 1 && (p1 + 1) * PANEL <= n && !(accumulate && bias.is_some())
+        {
+            let j0 = p0 * PANEL;
+            let y0 = out.0.wrapping_add(rb * BLOCK * n + j0);
+            let into = Tiles {
+                c: y0,
+                ld: n * 4,
+                down: TILE_ROWS * n,
+            };
+            let init = match (accumulate, bias) {
+                (true, _) => Some(into),
+                (false, Some(b)) => Some(Tiles {
+                    c: b[j0..].as_ptr(),
+                    ld: 0,
+                    down: 0,
+                }),
+                (false, None) => None,
+            };
+            // SAFETY: the rows of block rb are in `a` (padded to whole blocks), each panel
+            // holds `full` whole tiles and the tail the rest; rows rb * 32.. + 32 <= m and
+            // columns j0..j0 + 32 <= n are this task's own elements of y (see Out); the bias
+            // holds columns j0..j0 + 32.
+            unsafe { block(a0, ld * 2, panel(p0), panel(p1), steps, tail, init, into) };
+            return;
+        }
+        let scratch = Tiles {
+            c: c.as_ptr(),
+            ld: 2 * PANEL * 4,
+            down: TILE_ROWS * 2 * PANEL,
+        };
+        // SAFETY: as above, with `c` 32 x 32.
+        unsafe { block(a0, ld * 2, panel(p0), panel(p1), steps, tail, None, scratch) };
         for q in 0..(p1 - p0 + 1) {
             let j0 = (p0 + q) * PANEL;
             let cols = PANEL.min(n - j0);

@@ -419,3 +419,65 @@ fn packing_from_rows_and_reading_one_row_match_the_whole_matrix_in_every_format(
         Err(crate::QuantError::NotFinite { row: 2, .. })
     ));
 }
+
+#[test]
+fn every_path_adds_onto_the_output_with_and_without_a_bias_for_every_format() {
+    // The ways a product starts (zeros, the bias, what the output holds, both), for whole
+    // blocks of rows and panels and for narrow ones: the amx path stores whole blocks straight
+    // into the output and the rest through a buffer. Portable is the reference; the bound is
+    // the base product's magnitude times the bf16 input rounding plus f32 summation, and a few
+    // ulps of what was added.
+    let paths = super::tests::paths();
+    for &(m, k, n) in &[(64, 96, 64), (45, 70, 40)] {
+        let x = values(m * k, 31);
+        let w: Vec<f32> = values(n * k, 32).iter().map(|v| v * 0.1).collect();
+        let bias = values(n, 33);
+        let start = values(m * n, 34);
+        for format in formats() {
+            let packed = PackedWeight::pack_as(&w, n, k, format).unwrap();
+            let wd = packed.unpack();
+            for accumulate in [false, true] {
+                for b in [None, Some(&bias[..])] {
+                    let run = |path: Path| {
+                        let mut y = if accumulate {
+                            start.clone()
+                        } else {
+                            vec![f32::NAN; m * n]
+                        };
+                        packed_matmul_on(path, &mut y, &x, m, &packed, accumulate, b, &[]);
+                        y
+                    };
+                    let portable = run(Path::Portable);
+                    for &path in &paths {
+                        let got = run(path);
+                        for i in 0..m {
+                            for j in 0..n {
+                                let base: f64 = (0..k)
+                                    .map(|q| (x[i * k + q] as f64 * wd[j * k + q] as f64).abs())
+                                    .sum();
+                                let added = b.map_or(0.0, |b| b[j].abs() as f64)
+                                    + if accumulate {
+                                        start[i * n + j].abs() as f64
+                                    } else {
+                                        0.0
+                                    };
+                                let tol = (2.0 * (k + 2) as f64 * EPS
+                                    + input_rounding(path, format))
+                                    * base
+                                    + 4.0 * EPS * added
+                                    + 1e-30;
+                                let (g, p) = (got[i * n + j], portable[i * n + j]);
+                                assert!(
+                                    (g as f64 - p as f64).abs() <= tol,
+                                    "{m}x{k}x{n} {format} {path} accumulate {accumulate} bias {}: \
+                                     row {i} column {j}: {g} vs portable {p} (tolerance {tol:e})",
+                                    b.is_some()
+                                );
+                            }
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
