@@ -36,6 +36,8 @@ pub(crate) const SHUTDOWN_GRACE_MS: SettingKey = SettingKey::new(
     "shutdown_grace_ms",
     "SWITCHYARD_SERVER_SHUTDOWN_GRACE_MS",
 );
+pub(crate) const HUGE_PAGES: SettingKey =
+    SettingKey::new("server", "huge_pages", "SWITCHYARD_SERVER_HUGE_PAGES");
 pub(crate) const MODEL_DIR: SettingKey = SettingKey::new("model", "dir", "SWITCHYARD_MODEL_DIR");
 pub(crate) const MODEL_WEIGHTS: SettingKey =
     SettingKey::new("model", "weights", "SWITCHYARD_MODEL_WEIGHTS");
@@ -142,6 +144,7 @@ pub(crate) const KEEP_RESPONSES_DAYS: SettingKey = SettingKey::new(
 pub const KEYS: &[SettingKey] = &[
     LISTEN,
     SHUTDOWN_GRACE_MS,
+    HUGE_PAGES,
     MODEL_DIR,
     MODEL_WEIGHTS,
     STORE_DIR,

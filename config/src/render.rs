@@ -63,6 +63,7 @@ pub(crate) fn render(s: &Settings) -> String {
     };
     page.line(&read::LISTEN, quoted(&s.listen.to_string()));
     page.line(&read::SHUTDOWN_GRACE_MS, s.shutdown_grace_ms);
+    page.line(&read::HUGE_PAGES, s.huge_pages);
     match &s.model_dir {
         Some(dir) => page.line(&read::MODEL_DIR, path(dir)),
         None => page.unset(

@@ -64,6 +64,7 @@ fn defaults_apply_without_file_or_environment() {
         (LogFormat::Human, "info")
     );
     assert_eq!(s.shutdown_grace_ms, 10_000);
+    assert!(!s.huge_pages);
     assert!(s.admin_token.is_none() && s.tenants.is_empty() && s.model_dir.is_none());
     assert!(s.quota.is_unlimited(), "no quota unless one is configured");
 }
@@ -126,6 +127,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
     let values: &[(&SettingKey, &str, &str)] = &[
         (&read::LISTEN, "\"0.0.0.0:9000\"", "0.0.0.0:9000"),
         (&read::SHUTDOWN_GRACE_MS, "1234", "1234"),
+        (&read::HUGE_PAGES, "true", "true"),
         (&read::MODEL_DIR, "\"m\"", "m"),
         (&read::MODEL_WEIGHTS, "\"int4-g64\"", "int4-g64"),
         (&read::STORE_DIR, "\"s\"", "s"),
@@ -202,6 +204,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         log_format: LogFormat::Json,
         log_filter: "debug".into(),
         shutdown_grace_ms: 1234,
+        huge_pages: true,
         experiments_database: Some("e.sqlite".into()),
         keep_responses_days: 7,
     };
