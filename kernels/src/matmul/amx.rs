@@ -8,8 +8,9 @@
 //! are rounded to bf16 once per call, row-major, padded with zeros to whole tiles; each task
 //! then computes blocks of 32 rows by 2 panels in four sum tiles (2 input tiles and 2 weight
 //! tiles per 32 inputs) and adds the bias and what the output held as it stores them. A
-//! product's low-rank terms are added afterwards on the AVX-512 path, in f32, as their own two
-//! small products (rank steps each way).
+//! product's low-rank terms stay f32: each term's down product `s x A^T` is computed first, on
+//! the AVX-512 path, and each block adds its rows' `z B^T` for its two panels right after
+//! storing them, while they are in cache.
 //!
 //! Rust has no stable AMX intrinsics: the tile instructions are inline assembly, and the tile
 //! registers are touched by nothing else in the process (the compiler never allocates them), so
@@ -275,6 +276,23 @@ unsafe fn convert16s(dst: &mut [u16], src: &[f32]) {
     }
 }
 
+/// `dst[c] += z . b[:, c]` for the `dst.len()` columns of a panel of `B` (`b[q * width + c]`,
+/// `width = dst.len()`).
+///
+/// # Safety
+/// The CPU has AVX-512F.
+#[target_feature(enable = "avx512f")]
+unsafe fn add_up_product(dst: &mut [f32], z: &[f32], b: &[f32]) {
+    let width = dst.len();
+    let mut acc = [0f32; PANEL];
+    for (q, &zq) in z.iter().enumerate() {
+        for (a, &bv) in acc[..width].iter_mut().zip(&b[q * width..(q + 1) * width]) {
+            *a += zq * bv;
+        }
+    }
+    dst.iter_mut().zip(&acc).for_each(|(d, a)| *d += a);
+}
+
 /// The output, shared by the tasks: each writes its own rows and columns.
 #[derive(Clone, Copy)]
 struct Out(*mut f32);
@@ -347,11 +365,45 @@ pub(crate) fn matmul(
         dst.fill(0);
         dst[..rest.len()].copy_from_slice(rest);
     };
+    // Each term's down product `s x A^T` for its rows, in f32 on the AVX-512 path, one after
+    // another in `down`; the blocks add `z B^T` to their rows as they store them.
+    let mut starts = Vec::with_capacity(terms.len());
+    down.clear();
+    for t in terms {
+        let (rows, r) = (t.rows.clone(), t.a.out);
+        let at = down.len();
+        starts.push(at);
+        down.resize(at + rows.len() * r, 0.0);
+        let xs = &x[rows.start * k..rows.end * k];
+        let z = &mut down[at..];
+        packed_matmul_on(Path::Avx512, z, xs, rows.len(), t.a, false, None, &[]);
+        z.iter_mut().for_each(|v| *v *= t.scale);
+    }
     let out = Out(y.as_mut_ptr());
     let a = &abuf[..];
+    let z_all = &down[..];
+    // The low-rank terms' up products for rows r0..r0 + rows and panels p0..=p1, added to y.
+    let add_terms = |r0: usize, rows: usize, p0: usize, p1: usize| {
+        for (t, &at) in terms.iter().zip(&starts) {
+            let (lo, hi) = (t.rows.start.max(r0), t.rows.end.min(r0 + rows));
+            let r = t.a.out;
+            for i in lo..hi {
+                let z = &z_all[at + (i - t.rows.start) * r..][..r];
+                for p in p0..=p1 {
+                    let (j0, width) = (p * PANEL, t.b.panel_width(p));
+                    let b = &t.b.f32_values()[p * PANEL * r..][..width * r];
+                    // SAFETY: row i < m and columns j0..j0 + width <= n are this task's own
+                    // elements of y (see Out).
+                    let dst = unsafe { out.slice(i * n + j0, width) };
+                    // SAFETY: Path::Amx (checked above) includes AVX-512F.
+                    unsafe { add_up_product(dst, z, b) };
+                }
+            }
+        }
+    };
     // One block of 32 rows by the panel pair `pp`: computed, then stored with the bias and
     // what the output held.
-    let one = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
+    let base = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
         let p0 = 2 * pp;
         let p1 = (p0 + 1).min(panels - 1);
         let has_tail = full < steps;
@@ -422,6 +474,13 @@ pub(crate) fn matmul(
             }
         }
     };
+    let one = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
+        base(rb, pp, c, tail);
+        if !terms.is_empty() {
+            let rows = BLOCK.min(m - rb * BLOCK);
+            add_terms(rb * BLOCK, rows, 2 * pp, (2 * pp + 1).min(panels - 1));
+        }
+    };
     let task = |range_rb: std::ops::Range<usize>, range_pp: std::ops::Range<usize>| {
         let mut c = [0f32; BLOCK * 2 * PANEL];
         let mut tail = [0u32; 512];
@@ -447,18 +506,6 @@ pub(crate) fn matmul(
         (0..pairs.div_ceil(per)).into_par_iter().for_each(|b| {
             task(0..blocks, b * per..((b + 1) * per).min(pairs));
         });
-    }
-    // The terms, in f32 on the AVX-512 path: y[rows] += s (x[rows] A^T) B^T.
-    for t in terms {
-        let (rows, r) = (t.rows.clone(), t.a.out);
-        let mr = rows.len();
-        down.clear();
-        down.resize(mr * r, 0.0);
-        let xs = &x[rows.start * k..rows.end * k];
-        packed_matmul_on(Path::Avx512, &mut down, xs, mr, t.a, false, None, &[]);
-        down.iter_mut().for_each(|v| *v *= t.scale);
-        let ys = &mut y[rows.start * n..rows.end * n];
-        packed_matmul_on(Path::Avx512, ys, &down, mr, t.b, true, None, &[]);
     }
     SCRATCH.with_borrow_mut(|s| *s = (abuf, down));
 }
