@@ -22,7 +22,7 @@
 use std::arch::asm;
 use std::arch::x86_64::*;
 
-use super::{RowTerm, packed_matmul_on};
+use super::{RowTerm, packed_matmul_strided};
 use crate::dispatch::Path;
 use crate::pack::quant::bf16_from_f32;
 use crate::pack::{Block, PANEL, PackedWeight};
@@ -284,6 +284,20 @@ unsafe fn convert16s(dst: &mut [u16], src: &[f32]) {
 #[target_feature(enable = "avx512f")]
 unsafe fn add_up_product(dst: &mut [f32], z: &[f32], b: &[f32]) {
     let width = dst.len();
+    if let Ok(dst) = <&mut [f32; PANEL]>::try_from(&mut *dst) {
+        // A whole panel: one 16-wide multiply-add per step.
+        let mut acc = [0f32; PANEL];
+        for (&zq, bq) in z.iter().zip(b.chunks_exact(PANEL)) {
+            let bq: &[f32; PANEL] = bq.try_into().unwrap();
+            for c in 0..PANEL {
+                acc[c] += zq * bq[c];
+            }
+        }
+        for c in 0..PANEL {
+            dst[c] += acc[c];
+        }
+        return;
+    }
     let mut acc = [0f32; PANEL];
     for (q, &zq) in z.iter().enumerate() {
         for (a, &bv) in acc[..width].iter_mut().zip(&b[q * width..(q + 1) * width]) {
@@ -376,7 +390,9 @@ pub(crate) fn matmul(
         down.resize(at + rows.len() * r, 0.0);
         let xs = &x[rows.start * k..rows.end * k];
         let z = &mut down[at..];
-        packed_matmul_on(Path::Avx512, z, xs, rows.len(), t.a, false, None, &[]);
+        // On this thread: a few small products, where handing each to the pool costs more
+        // than it computes.
+        packed_matmul_strided(z, r, xs, k, rows.len(), t.a, false);
         z.iter_mut().for_each(|v| *v *= t.scale);
     }
     let out = Out(y.as_mut_ptr());
