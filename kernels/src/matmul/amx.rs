@@ -23,7 +23,6 @@ use std::arch::asm;
 use std::arch::x86_64::*;
 
 use super::{RowTerm, packed_matmul_strided};
-use crate::dispatch::Path;
 use crate::pack::quant::bf16_from_f32;
 use crate::pack::{Block, PANEL, PackedWeight};
 use crate::threads::rayon_threads;
@@ -337,7 +336,7 @@ thread_local! {
 /// The arguments were checked as `packed_matmul_on` checks them.
 ///
 /// # Panics
-/// When [`Path::Amx`] cannot run here or `w` is not bf16.
+/// When [`crate::Path::Amx`] cannot run here or `w` is not bf16.
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn matmul(
     y: &mut [f32],
@@ -350,7 +349,8 @@ pub(crate) fn matmul(
 ) {
     use rayon::prelude::*;
     assert!(
-        Path::Amx.available() && w.format == crate::WeightFormat::Bf16,
+        // The tile grant is asked once and kept (the full feature list is not read per call).
+        tiles_granted() && w.format == crate::WeightFormat::Bf16,
         "the AMX path runs bf16 weights where the CPU has it"
     );
     let (n, k) = (w.out, w.inp);
@@ -365,17 +365,15 @@ pub(crate) fn matmul(
     // Each panel's tiles; the last step's weights copied into zeros when the panel's pair
     // rows do not fill it (the tile would otherwise read the next panel, or past the end).
     let full = k.div_ceil(2) / 16;
-    let panel = |p: usize| -> *const u32 {
+    let words = |p: usize| -> &[u32] {
         let Block::Bf16(b) = w.block(p, 0, k) else {
             unreachable!("the AMX path got another format")
         };
-        b.as_ptr()
+        b
     };
+    let panel = |p: usize| words(p).as_ptr();
     let tail_of = |p: usize, dst: &mut [u32]| {
-        let Block::Bf16(b) = w.block(p, 0, k) else {
-            unreachable!("the AMX path got another format")
-        };
-        let rest = &b[full * 16 * PANEL..];
+        let rest = &words(p)[full * 16 * PANEL..];
         dst.fill(0);
         dst[..rest.len()].copy_from_slice(rest);
     };
