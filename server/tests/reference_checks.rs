@@ -331,13 +331,24 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
             Some(minilm_adapter("minilm-all")),
         ];
         let mixed = e.embed(&refs, &adapters).unwrap();
+        // A row's f32 sums may differ in the last bit with the batch around it (which thread
+        // takes which rows, whole or edge blocks: about 1e-7 here). Where a bf16 weight rounds
+        // its inputs to bf16 (avx512-bf16, amx), such a bit can move a value across a rounding
+        // boundary, a change of 2^-9 of it, so there the bar is the bf16 one: 3-6e-4 measured
+        // on an AMX Xeon, 2e-3 allowed. Every other format and path keeps 1e-5.
+        let batch_bar =
+            if format == WeightFormat::Bf16 && path >= switchyard_kernels::Path::Avx512Bf16 {
+                2e-3
+            } else {
+                1e-5
+            };
         for (i, adapter) in adapters.iter().enumerate() {
             let alone = e
                 .embed(&refs[i..=i], std::slice::from_ref(adapter))
                 .unwrap();
             let d = max_abs(&mixed[i..=i], &alone);
             assert!(
-                d <= 1e-5,
+                d <= batch_bar,
                 "{name} row {i}: mixed batch differs from the row alone by {d}"
             );
         }
@@ -350,9 +361,11 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
 /// transformers' tiny decoders (fixtures/weight-formats.json). The rounding being identical,
 /// what is left is summation order, so the f32 checks' bars hold: embeddings cosine >= 0.99999
 /// and max abs difference <= 1e-4, logits within 1e-3 and the same 16 greedy tokens. On the
-/// avx512-bf16 and amx paths a bf16 weight multiplies inputs rounded to bf16, which the
-/// reference does not do, so there bf16 is held to cosine 0.9999 and logits within 0.05 instead
-/// (printed).
+/// avx512-bf16 and amx paths a bf16 weight multiplies inputs rounded to bf16. For the tiny
+/// decoders the reference does that too ("logits-inputs-bf16": a hook rounds the input of every
+/// projection and of the output head), so their logits keep the 1e-3 bar; MiniLM's embeddings
+/// have no such reference and are held to cosine 0.9999 and max abs difference 1e-2 there
+/// (printed). Greedy tokens are compared the same way ("greedy-inputs-bf16").
 #[test]
 fn reduced_formats_match_the_python_reference_of_their_rounding() {
     use switchyard_kernels::WeightFormat;
@@ -363,11 +376,11 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
     for name in fx["formats"].as_array().unwrap() {
         let name = name.as_str().unwrap();
         let inputs_rounded = name == "bf16" && path >= switchyard_kernels::Path::Avx512Bf16;
-        let (min_cos, max_diff, logit_diff) = if inputs_rounded {
-            println!("{name} on {path}: inputs rounded to bf16 on this path; looser bars");
-            (0.9999, 1e-2, 0.05)
+        let (min_cos, max_diff) = if inputs_rounded {
+            println!("{name} on {path}: inputs rounded to bf16 on this path; looser MiniLM bars");
+            (0.9999, 1e-2)
         } else {
-            (0.99999, 1e-4, 1e-3)
+            (0.99999, 1e-4)
         };
         let want = &fx["minilm"][name];
         let e = embedder_as(name);
@@ -404,22 +417,34 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
                 )
                 .unwrap();
             let got: Vec<Vec<f32>> = model.logits(&hidden).unwrap().to_vec2().unwrap();
-            let d = max_abs(&got, &matrix(&want["logits"]));
-            println!("{name} on {path}: {dir} logits max abs difference {d:.2e}");
-            assert!(d <= logit_diff, "{name} {dir}: logits differ by {d}");
-            if !inputs_rounded {
-                let greedy = generator
-                    .generate(&[GenerateRequest {
-                        prompt_ids: ids(&reference["prompt_ids"]),
-                        adapter: None,
-                        limit: 16,
-                        sampling: SamplingParams::default(),
-                        stop_at_eos: false,
-                    }])
-                    .unwrap()
-                    .remove(0);
-                assert_eq!(greedy, ids(&want["greedy"]), "{name} {dir}: greedy tokens");
-            }
+            let key = if inputs_rounded {
+                "logits-inputs-bf16"
+            } else {
+                "logits"
+            };
+            let d = max_abs(&got, &matrix(&want[key]));
+            println!("{name} on {path}: {dir} logits max abs difference {d:.2e} (against {key})");
+            assert!(d <= 1e-3, "{name} {dir}: logits differ by {d} from {key}");
+            let greedy = generator
+                .generate(&[GenerateRequest {
+                    prompt_ids: ids(&reference["prompt_ids"]),
+                    adapter: None,
+                    limit: 16,
+                    sampling: SamplingParams::default(),
+                    stop_at_eos: false,
+                }])
+                .unwrap()
+                .remove(0);
+            let key = if inputs_rounded {
+                "greedy-inputs-bf16"
+            } else {
+                "greedy"
+            };
+            assert_eq!(
+                greedy,
+                ids(&want[key]),
+                "{name} {dir}: greedy tokens ({key})"
+            );
         }
     }
 }

@@ -185,8 +185,28 @@ def tiny(name: str) -> dict:
         agree = next((i for i, (x, y) in enumerate(zip(greedy, ref["greedy"])) if x != y), len(greedy))
         print(f"[{name}] {fmt}: greedy agrees with f32 for {agree} of {len(greedy)} tokens")
         out[fmt] = {"logits": g.f32_list(logits), "greedy": greedy}
+        if fmt == "bf16":
+            logits, greedy = inputs_bf16(m, ref["input_ids"], ref["prompt_ids"])
+            out[fmt]["logits-inputs-bf16"] = g.f32_list(logits)
+            out[fmt]["greedy-inputs-bf16"] = greedy
         del m
     return out
+
+
+@torch.no_grad()
+def inputs_bf16(model, ids: list, prompt_ids: list):
+    """The bf16 model's logits and 16 greedy tokens when every product with a bf16 weight (each projection and the
+    output head) first rounds its input to bf16, as switchyard's avx512-bf16 and amx paths do
+    (VDPBF16PS and TDPBF16PS take bf16 pairs on both sides); the sums stay f32."""
+    linears = list(g.llama_linears(model).values()) + [model.lm_head]
+    hooks = [lin.register_forward_pre_hook(
+        lambda _m, args: (args[0].to(torch.bfloat16).to(torch.float32),) + tuple(args[1:]))
+        for lin in linears]
+    try:
+        return g.logits_of(model, ids), g.greedy(model, prompt_ids)[0]
+    finally:
+        for h in hooks:
+            h.remove()
 
 
 def main() -> None:
