@@ -11,7 +11,7 @@
 
 use candle_core::{DType, Result, Tensor};
 
-use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul};
+use switchyard_kernels::{PackedWeight, RowTerm, add_rank_update, packed_matmul};
 
 use crate::tensors::{pack_tensor, unpack_tensor, with_f32};
 
@@ -150,16 +150,13 @@ impl LowRank {
         if w.len() != out * inp {
             candle_core::bail!("weight holds {} values, expected {out} x {inp}", w.len());
         }
-        // W [out, in] += (sign s B) [out, r] times A [r, in]: the projection kernel with B's rows
-        // as its input rows and A^T [in, r] as its weight, accumulating onto W, so W is read and
-        // written once, in row blocks across the threads.
+        // W [out, in] += (sign s B) [out, r] times A [r, in], W read and written once, in
+        // groups of rows across the threads (see switchyard_kernels::add_rank_update).
         let a = self.a.unpack();
         let mut b = self.b.unpack();
         let s = sign * self.scale as f32;
         b.iter_mut().for_each(|v| *v *= s);
-        let mut a_t = PackedWeight::empty();
-        a_t.repack_strided(&a, inp, r, 1, inp);
-        packed_matmul(w, &b, out, &a_t, true);
+        add_rank_update(w, out, inp, &b, &a, r);
         Ok(())
     }
 

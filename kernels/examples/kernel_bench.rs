@@ -10,6 +10,10 @@
 //!    time per product, in GB/s, beside the read bandwidth. Decode cycles through enough weights
 //!    (512 MB of each format) that they come from memory, as in a real step.
 //!
+//! 4. Merging a rank-16 update into a 2048 x 2048 f32 weight in place (`W += B A`): the
+//!    rank-update kernel against the same update through the projection kernel (B's rows as its
+//!    input, A^T as its weight, accumulating), ms per merge on each path.
+//!
 //! Paths this CPU lacks are listed as not run. Run: `cargo run --release -p switchyard-kernels
 //! --example kernel-bench` (add `-- --repeats N`, or `-- --only TEXT` for the rows whose
 //! description holds TEXT). Every figure is the median of the repeats; the paths of one row
@@ -18,7 +22,7 @@
 use std::time::Instant;
 
 use rand::{Rng, SeedableRng};
-use switchyard_kernels::{PackedWeight, Path, WeightFormat, packed_matmul_on};
+use switchyard_kernels::{PackedWeight, Path, WeightFormat, add_rank_update_on, packed_matmul_on};
 
 /// A model shape: rows of input, inner (input) features, output features.
 struct Shape {
@@ -295,6 +299,10 @@ fn main() {
         }
     }
 
+    if "merge".contains(only) || only.is_empty() {
+        merge_section(&paths, repeats, &mut rng);
+    }
+
     let formats = [
         "f32",
         "bf16",
@@ -339,5 +347,50 @@ fn main() {
             print!(" {:>12.1} ({:.2})", rate, rate / bandwidth);
         }
         println!();
+    }
+}
+
+/// `W += B A` for a rank-16 update of a 2048 x 2048 weight, per path: the rank-update kernel
+/// and the projection kernel doing the same update, alternating within each repeat.
+fn merge_section(paths: &[Path], repeats: usize, rng: &mut rand_chacha::ChaCha8Rng) {
+    let (out, inp, r) = (2048, 2048, 16);
+    let a: Vec<f32> = (0..r * inp).map(|_| rng.random_range(-0.1..0.1)).collect();
+    let b: Vec<f32> = (0..out * r).map(|_| rng.random_range(-0.1..0.1)).collect();
+    let mut w: Vec<f32> = (0..out * inp)
+        .map(|_| rng.random_range(-0.1..0.1))
+        .collect();
+    let mut a_t = PackedWeight::empty();
+    a_t.repack_strided(&a, inp, r, 1, inp);
+    let calls = 20;
+    println!(
+        "\nmerge rank {r} into {out} x {inp} in place, ms per merge (GFLOP/s): rank-update kernel \
+         | projection kernel accumulating"
+    );
+    let flops = 2.0 * (out * inp * r) as f64;
+    for &path in paths {
+        let (mut own, mut via) = (Vec::new(), Vec::new());
+        for _ in 0..repeats {
+            let s = Instant::now();
+            for _ in 0..calls {
+                add_rank_update_on(path, &mut w, out, inp, &b, &a, r);
+            }
+            own.push(s.elapsed().as_secs_f64() / calls as f64);
+            let s = Instant::now();
+            for _ in 0..calls {
+                packed_matmul_on(path, &mut w, &b, out, &a_t, true, None, &[]);
+            }
+            via.push(s.elapsed().as_secs_f64() / calls as f64);
+        }
+        std::hint::black_box(&w);
+        let (o, v) = (median(own), median(via));
+        println!(
+            "{:<12} {:>8.3} ({:>5.0}) | {:>8.3} ({:>5.0})   {:.2}x",
+            path.name(),
+            o * 1e3,
+            flops / o / 1e9,
+            v * 1e3,
+            flops / v / 1e9,
+            v / o
+        );
     }
 }

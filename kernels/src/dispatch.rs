@@ -2,7 +2,7 @@
 //! micro-kernel serves each weight format on that path.
 //!
 //! A path is an instruction-set level. It is detected once, at first use, unless
-//! `SWITCHYARD_KERNELS` names one (`portable`, `avx2`, `avx512`, `avx512-bf16`): an unknown
+//! `SWITCHYARD_KERNELS` names one (`portable`, `avx2`, `avx512`, `avx512-bf16`, `amx`): an unknown
 //! name, or a path this CPU cannot run, is refused with a message that lists the valid names
 //! (see [`chosen`]). Adding an instruction set is one new micro-kernel file under `micro/` and
 //! one line of [`micro_kernel`].

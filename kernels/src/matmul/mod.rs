@@ -10,6 +10,7 @@ mod blocks;
 mod format_tests;
 #[cfg(test)]
 mod gemm_reference;
+mod rank_update;
 #[cfg(test)]
 mod tests;
 
@@ -17,6 +18,7 @@ use crate::dispatch::{Path, active};
 use crate::pack::{PANEL, PackedWeight, WeightFormat};
 use crate::threads::{rayon_threads, zero_rows};
 use blocks::{Buffers, Part, Run, panels_into, run_panels};
+pub use rank_update::{add_rank_update, add_rank_update_on};
 
 /// Inner-dimension block of the many-rows path: one panel's slice of it (384 x 16 floats,
 /// 24 KB) stays in L1 while every row tile passes over it.
