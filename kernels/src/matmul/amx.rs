@@ -380,18 +380,35 @@ pub(crate) fn matmul(
     // Each term's down product `s x A^T` for its rows, in f32 on the AVX-512 path, one after
     // another in `down`; the blocks add `z B^T` to their rows as they store them.
     let mut starts = Vec::with_capacity(terms.len());
-    down.clear();
+    let mut total = 0;
     for t in terms {
-        let (rows, r) = (t.rows.clone(), t.a.out);
-        let at = down.len();
-        starts.push(at);
-        down.resize(at + rows.len() * r, 0.0);
-        let xs = &x[rows.start * k..rows.end * k];
-        let z = &mut down[at..];
-        // On this thread: a few small products, where handing each to the pool costs more
-        // than it computes.
-        packed_matmul_strided(z, r, xs, k, rows.len(), t.a, false);
+        starts.push(total);
+        total += t.rows.len() * t.a.out;
+    }
+    down.clear();
+    down.resize(total, 0.0);
+    let mut slices = Vec::with_capacity(terms.len());
+    let mut rest = &mut down[..];
+    for t in terms {
+        let (z, tail) = rest.split_at_mut(t.rows.len() * t.a.out);
+        slices.push(z);
+        rest = tail;
+    }
+    let down_product = |(t, z): (&RowTerm<'_>, &mut &mut [f32])| {
+        let xs = &x[t.rows.start * k..t.rows.end * k];
+        packed_matmul_strided(z, t.a.out, xs, k, t.rows.len(), t.a, false);
         z.iter_mut().for_each(|v| *v *= t.scale);
+    };
+    // Across the pool when there are several terms with enough work between them (a mixed
+    // batch: one term per sequence); one small term runs on this thread, where handing it to
+    // the pool would cost more than it computes.
+    if terms.len() > 1 && total * k >= 1 << 20 && rayon_threads() > 1 {
+        terms
+            .par_iter()
+            .zip(slices.par_iter_mut())
+            .for_each(down_product);
+    } else {
+        terms.iter().zip(slices.iter_mut()).for_each(down_product);
     }
     let out = Out(y.as_mut_ptr());
     let a = &abuf[..];

@@ -224,8 +224,15 @@ fn every_path_agrees_with_the_portable_path_for_every_format_at_decode_sizes() {
 #[test]
 fn every_path_agrees_with_the_portable_path_for_every_format_with_many_rows() {
     // Full tiles and remainders of both tile heights (6 and 12), one row block and several
-    // (72 rows each; the pool splits them), a short inner dimension, odd sizes everywhere.
-    for &(m, k, n) in &[(13, 64, 48), (37, 33, 17), (150, 384, 37), (300, 200, 64)] {
+    // (72 rows each; the pool splits them), a short inner dimension, odd sizes everywhere;
+    // the last with terms enough work that the amx path splits their down products too.
+    for &(m, k, n) in &[
+        (13, 64, 48),
+        (37, 33, 17),
+        (150, 384, 37),
+        (300, 200, 64),
+        (300, 384, 64),
+    ] {
         check_case(&Case::new(m, k, n, false, 3), &format!("{m}x{k}x{n}"));
         check_case(
             &Case::new(m, k, n, true, 4),
