@@ -57,4 +57,8 @@ impl Decode for Bf16 {
         // SAFETY: as for `pair`.
         unsafe { self.pair(j)[0] }
     }
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<Row> {
+        None
+    }
 }

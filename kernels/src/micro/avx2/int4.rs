@@ -1,6 +1,6 @@
 //! The AVX2 int4 micro-kernel: each byte holds two inputs' 4-bit values (low nibble first),
-//! widened to i32, less the group's zero point (8 when symmetric), converted and multiplied by
-//! the group's scales, in registers.
+//! widened to i32, less the group's zero point (8 when symmetric) and converted in registers;
+//! the tile applies the group's scales (see `reduced_tile`).
 
 use std::arch::x86_64::*;
 
@@ -57,14 +57,8 @@ impl Int4 {
     #[inline]
     unsafe fn nibbles(&self, v: [__m256i; 2]) -> Row {
         [
-            _mm256_mul_ps(
-                _mm256_cvtepi32_ps(_mm256_sub_epi32(v[0], self.z[0])),
-                self.s[0],
-            ),
-            _mm256_mul_ps(
-                _mm256_cvtepi32_ps(_mm256_sub_epi32(v[1], self.z[1])),
-                self.s[1],
-            ),
+            _mm256_cvtepi32_ps(_mm256_sub_epi32(v[0], self.z[0])),
+            _mm256_cvtepi32_ps(_mm256_sub_epi32(v[1], self.z[1])),
         ]
     }
 
@@ -134,5 +128,9 @@ impl Decode for Int4 {
         let low = _mm256_set1_epi32(15);
         // SAFETY: register arithmetic only.
         unsafe { self.nibbles([_mm256_and_si256(v[0], low), _mm256_and_si256(v[1], low)]) }
+    }
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<Row> {
+        Some(self.s)
     }
 }

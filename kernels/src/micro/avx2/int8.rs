@@ -1,5 +1,5 @@
-//! The AVX2 int8 micro-kernel: 16 signed bytes per input widened to i32, converted, and
-//! multiplied by their group's scales, in registers.
+//! The AVX2 int8 micro-kernel: 16 signed bytes per input widened to i32 and converted in
+//! registers; the tile applies the group's scales (see `reduced_tile`).
 
 use std::arch::x86_64::*;
 
@@ -46,8 +46,8 @@ impl Int8 {
             )
         };
         [
-            _mm256_mul_ps(_mm256_cvtepi32_ps(_mm256_cvtepi8_epi32(b0)), self.s[0]),
-            _mm256_mul_ps(_mm256_cvtepi32_ps(_mm256_cvtepi8_epi32(b1)), self.s[1]),
+            _mm256_cvtepi32_ps(_mm256_cvtepi8_epi32(b0)),
+            _mm256_cvtepi32_ps(_mm256_cvtepi8_epi32(b1)),
         ]
     }
 }
@@ -79,5 +79,9 @@ impl Decode for Int8 {
     unsafe fn first(&self, j: usize) -> Row {
         // SAFETY: the block holds input 2j (the caller's contract).
         unsafe { self.input(2 * j) }
+    }
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<Row> {
+        Some(self.s)
     }
 }

@@ -68,11 +68,20 @@ pub(super) trait Decode {
     /// # Safety
     /// The block holds input `2j`; [`Decode::group`] was called for its group.
     unsafe fn first(&self, j: usize) -> Row;
+    /// The current group's 16 scales, when [`Decode::pair`] and [`Decode::first`] give values
+    /// before them (see [`reduced_tile`] for where they are applied). `None` when the values
+    /// are final (bf16).
+    ///
+    /// # Safety
+    /// AVX2 is present; [`Decode::group`] was called.
+    unsafe fn scales(&self) -> Option<Row>;
 }
 
-/// A reduced-format tile: the block walked group by group, inputs in pairs (with fewer than 4
-/// rows the pair's two inputs go to separate accumulators, so two multiply-add chains run side
-/// by side), then [`finish`].
+/// A reduced-format tile: the block walked group by group, inputs in pairs, then [`finish`].
+/// With fewer than 4 rows (decode) the pair's two inputs go to separate accumulators, so two
+/// multiply-add chains run side by side, and each group is summed unscaled and multiplied by
+/// its scales once at its end ([`Decode::scales`]), which takes a multiply off every decoded
+/// vector; with more rows each decoded vector is scaled once and serves every row.
 ///
 /// # Safety
 /// AVX2, FMA and F16C are present; `t.check` passed; `d` decodes `t.b`.
@@ -85,11 +94,6 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     group: usize,
 ) {
     let split = R < 4;
-    let pa = t.a.as_ptr();
-    let (step, lda) = match t.lda {
-        None => (R, 1),
-        Some(lda) => (1, lda),
-    };
     let zero = _mm256_setzero_ps();
     let mut acc: [[Row; R]; 2] = [[[zero; 2]; R]; 2];
     let kb = t.kb;
@@ -97,7 +101,10 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     while q0 < kb {
         let end = (q0 + group).min(kb);
         // SAFETY: the group starting at q0 is in the block (the caller's check).
-        unsafe { d.group(q0 / group) };
+        let scales = unsafe {
+            d.group(q0 / group);
+            d.scales()
+        };
         if let Some((next, len)) = t.next {
             let (from, to) = ((q0 * D::BYTES).min(len), (end * D::BYTES).min(len));
             for off in (from..to).step_by(64) {
@@ -105,33 +112,23 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
                 _mm_prefetch::<_MM_HINT_T1>(next.wrapping_add(off).cast());
             }
         }
-        let mut q = q0;
-        while q + 2 <= end {
-            // SAFETY: q + 1 < end <= kb: in the block, and inputs q, q + 1 of every row are in
-            // `a` (the caller's check).
-            unsafe {
-                let w = d.pair(q / 2);
-                for (s, ws) in w.iter().enumerate() {
-                    let set = if split { s } else { 0 };
-                    for i in 0..R {
-                        let x = _mm256_broadcast_ss(&*pa.add((q + s) * step + i * lda));
-                        acc[set][i][0] = _mm256_fmadd_ps(x, ws[0], acc[set][i][0]);
-                        acc[set][i][1] = _mm256_fmadd_ps(x, ws[1], acc[set][i][1]);
+        if split {
+            let mut part: [[Row; R]; 2] = [[[zero; 2]; R]; 2];
+            // SAFETY: inputs q0..end are in the block and in `a` (the caller's check).
+            unsafe { group_sums::<D, R>(t, &d, q0, end, None, true, &mut part) };
+            for set in 0..2 {
+                for i in 0..R {
+                    for h in 0..2 {
+                        acc[set][i][h] = match scales {
+                            Some(s) => _mm256_fmadd_ps(part[set][i][h], s[h], acc[set][i][h]),
+                            None => _mm256_add_ps(acc[set][i][h], part[set][i][h]),
+                        };
                     }
                 }
             }
-            q += 2;
-        }
-        if q < end {
-            // SAFETY: q < kb, as above.
-            unsafe {
-                let w = d.first(q / 2);
-                for i in 0..R {
-                    let x = _mm256_broadcast_ss(&*pa.add(q * step + i * lda));
-                    acc[0][i][0] = _mm256_fmadd_ps(x, w[0], acc[0][i][0]);
-                    acc[0][i][1] = _mm256_fmadd_ps(x, w[1], acc[0][i][1]);
-                }
-            }
+        } else {
+            // SAFETY: as above.
+            unsafe { group_sums::<D, R>(t, &d, q0, end, scales, false, &mut acc) };
         }
         q0 = end;
     }
@@ -143,6 +140,64 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     }
     // SAFETY: as the caller's.
     unsafe { finish::<R>(t, c, acc[0]) }
+}
+
+/// Inputs `q0..end` of one group into `sums`: each decoded vector (times `scales`, when
+/// given) times each row's input; a pair's second input into `sums[1]` when `split`.
+///
+/// # Safety
+/// AVX2, FMA and F16C are present; inputs `q0..end` are in the block and in `t.a` for every
+/// row; [`Decode::group`] was called for their group.
+#[target_feature(enable = "avx2,fma,f16c")]
+#[inline]
+#[allow(clippy::too_many_arguments)]
+unsafe fn group_sums<D: Decode, const R: usize>(
+    t: &Tile<'_>,
+    d: &D,
+    q0: usize,
+    end: usize,
+    scales: Option<Row>,
+    split: bool,
+    sums: &mut [[Row; R]; 2],
+) {
+    let pa = t.a.as_ptr();
+    let (step, lda) = match t.lda {
+        None => (R, 1),
+        Some(lda) => (1, lda),
+    };
+    let scaled = |v: Row| {
+        scales.map_or(v, |s| {
+            [_mm256_mul_ps(v[0], s[0]), _mm256_mul_ps(v[1], s[1])]
+        })
+    };
+    let mut q = q0;
+    while q + 2 <= end {
+        // SAFETY: q + 1 < end: in the block, and inputs q, q + 1 of every row are in `a`.
+        unsafe {
+            let w = d.pair(q / 2);
+            for (s, ws) in w.iter().enumerate() {
+                let ws = scaled(*ws);
+                let set = if split { s } else { 0 };
+                for i in 0..R {
+                    let x = _mm256_broadcast_ss(&*pa.add((q + s) * step + i * lda));
+                    sums[set][i][0] = _mm256_fmadd_ps(x, ws[0], sums[set][i][0]);
+                    sums[set][i][1] = _mm256_fmadd_ps(x, ws[1], sums[set][i][1]);
+                }
+            }
+        }
+        q += 2;
+    }
+    if q < end {
+        // SAFETY: q < end, as above.
+        unsafe {
+            let w = scaled(d.first(q / 2));
+            for i in 0..R {
+                let x = _mm256_broadcast_ss(&*pa.add(q * step + i * lda));
+                sums[0][i][0] = _mm256_fmadd_ps(x, w[0], sums[0][i][0]);
+                sums[0][i][1] = _mm256_fmadd_ps(x, w[1], sums[0][i][1]);
+            }
+        }
+    }
 }
 
 /// The end of every AVX2 tile: the low-rank steps in the same accumulators, then the bias and

@@ -49,4 +49,9 @@ impl Decode for Bf16 {
         let v = unsafe { _mm512_loadu_si512(self.b.add(j * PANEL).cast()) };
         _mm512_castsi512_ps(_mm512_slli_epi32::<16>(v))
     }
+
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<__m512> {
+        None
+    }
 }

@@ -1,6 +1,6 @@
 //! The AVX-512F int4 micro-kernel: each byte holds two inputs' 4-bit values (low nibble
-//! first), widened to i32, less the group's zero point (8 when symmetric), converted and
-//! multiplied by the group's scales, in registers.
+//! first), widened to i32, less the group's zero point (8 when symmetric) and converted, in
+//! registers; the tile applies the group's scales (see `reduced_tile`).
 
 use std::arch::x86_64::*;
 
@@ -56,10 +56,7 @@ impl Int4 {
     #[target_feature(enable = "avx512f,avx2,fma,f16c")]
     #[inline]
     unsafe fn value(&self, nibbles: __m512i) -> __m512 {
-        _mm512_mul_ps(
-            _mm512_cvtepi32_ps(_mm512_sub_epi32(nibbles, self.z)),
-            self.s,
-        )
+        _mm512_cvtepi32_ps(_mm512_sub_epi32(nibbles, self.z))
     }
 
     #[target_feature(enable = "avx512f,avx2,fma,f16c")]
@@ -109,5 +106,10 @@ impl Decode for Int4 {
     unsafe fn first(&self, j: usize) -> __m512 {
         // SAFETY: as for `pair`.
         unsafe { self.value(_mm512_and_si512(self.bytes(j), _mm512_set1_epi32(15))) }
+    }
+
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<__m512> {
+        Some(self.s)
     }
 }

@@ -1,5 +1,5 @@
-//! The AVX-512F int8 micro-kernel: 16 signed bytes per input widened to i32, converted, and
-//! multiplied by their group's scales, in registers.
+//! The AVX-512F int8 micro-kernel: 16 signed bytes per input widened to i32 and converted in
+//! registers; the tile applies the group's scales (see `reduced_tile`).
 
 use std::arch::x86_64::*;
 
@@ -39,7 +39,7 @@ impl Int8 {
     unsafe fn input(&self, q: usize) -> __m512 {
         // SAFETY: the block holds input q: 16 bytes (the caller's contract).
         let b = unsafe { _mm_loadu_si128(self.q.add(q * PANEL).cast()) };
-        _mm512_mul_ps(_mm512_cvtepi32_ps(_mm512_cvtepi8_epi32(b)), self.s)
+        _mm512_cvtepi32_ps(_mm512_cvtepi8_epi32(b))
     }
 }
 
@@ -65,5 +65,10 @@ impl Decode for Int8 {
     unsafe fn first(&self, j: usize) -> __m512 {
         // SAFETY: the block holds input 2j (the caller's contract).
         unsafe { self.input(2 * j) }
+    }
+
+    #[inline(always)]
+    unsafe fn scales(&self) -> Option<__m512> {
+        Some(self.s)
     }
 }

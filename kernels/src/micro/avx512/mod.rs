@@ -66,11 +66,20 @@ pub(super) trait Decode {
     /// # Safety
     /// The block holds input `2j`; [`Decode::group`] was called for its group.
     unsafe fn first(&self, j: usize) -> __m512;
+    /// The current group's 16 scales, when [`Decode::pair`] and [`Decode::first`] give values
+    /// before them (see [`reduced_tile`] for where they are applied). `None` when the values
+    /// are final (bf16).
+    ///
+    /// # Safety
+    /// AVX-512F is present; [`Decode::group`] was called.
+    unsafe fn scales(&self) -> Option<__m512>;
 }
 
-/// A reduced-format tile: the block walked group by group, inputs in pairs (with fewer than 8
-/// rows the pair's two inputs go to separate accumulators, so more multiply-add chains run side
-/// by side), then [`finish`].
+/// A reduced-format tile: the block walked group by group, inputs in pairs, then [`finish`].
+/// With fewer than 8 rows (decode) the pair's two inputs go to separate accumulators, so more
+/// multiply-add chains run side by side, and each group is summed unscaled and multiplied by
+/// its scales once at its end ([`Decode::scales`]), which takes a multiply off every decoded
+/// vector; with more rows each decoded vector is scaled once and serves every row.
 ///
 /// # Safety
 /// AVX-512F is present; `t.check` passed; `d` decodes `t.b`.
@@ -83,18 +92,16 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     group: usize,
 ) {
     let split = R < 8;
-    let pa = t.a.as_ptr();
-    let (step, lda) = match t.lda {
-        None => (R, 1),
-        Some(lda) => (1, lda),
-    };
     let mut acc = [[_mm512_setzero_ps(); R]; 2];
     let kb = t.kb;
     let mut q0 = 0;
     while q0 < kb {
         let end = (q0 + group).min(kb);
         // SAFETY: the group starting at q0 is in the block (the caller's check).
-        unsafe { d.group(q0 / group) };
+        let scales = unsafe {
+            d.group(q0 / group);
+            d.scales()
+        };
         if let Some((next, len)) = t.next {
             let (from, to) = ((q0 * D::BYTES).min(len), (end * D::BYTES).min(len));
             for off in (from..to).step_by(64) {
@@ -102,31 +109,21 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
                 _mm_prefetch::<_MM_HINT_T1>(next.wrapping_add(off).cast());
             }
         }
-        let mut q = q0;
-        while q + 2 <= end {
-            // SAFETY: q + 1 < end <= kb: in the block, and inputs q, q + 1 of every row are in
-            // `a` (the caller's check).
-            unsafe {
-                let w = d.pair(q / 2);
-                for (s, ws) in w.iter().enumerate() {
-                    let set = if split { s } else { 0 };
-                    for i in 0..R {
-                        let x = _mm512_set1_ps(*pa.add((q + s) * step + i * lda));
-                        acc[set][i] = _mm512_fmadd_ps(x, *ws, acc[set][i]);
-                    }
-                }
-            }
-            q += 2;
-        }
-        if q < end {
-            // SAFETY: q < kb, as above.
-            unsafe {
-                let w = d.first(q / 2);
+        if split {
+            let mut part = [[_mm512_setzero_ps(); R]; 2];
+            // SAFETY: inputs q0..end are in the block and in `a` (the caller's check).
+            unsafe { group_sums::<D, R>(t, &d, q0, end, None, true, &mut part) };
+            for set in 0..2 {
                 for i in 0..R {
-                    let x = _mm512_set1_ps(*pa.add(q * step + i * lda));
-                    acc[0][i] = _mm512_fmadd_ps(x, w, acc[0][i]);
+                    acc[set][i] = match scales {
+                        Some(s) => _mm512_fmadd_ps(part[set][i], s, acc[set][i]),
+                        None => _mm512_add_ps(acc[set][i], part[set][i]),
+                    };
                 }
             }
+        } else {
+            // SAFETY: as above.
+            unsafe { group_sums::<D, R>(t, &d, q0, end, scales, false, &mut acc) };
         }
         q0 = end;
     }
@@ -137,6 +134,58 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     }
     // SAFETY: as the caller's.
     unsafe { finish::<R>(t, c, acc[0]) }
+}
+
+/// Inputs `q0..end` of one group into `sums`: each decoded vector (times `scales`, when
+/// given) times each row's input; a pair's second input into `sums[1]` when `split`.
+///
+/// # Safety
+/// AVX-512F is present; inputs `q0..end` are in the block and in `t.a` for every row;
+/// [`Decode::group`] was called for their group.
+#[target_feature(enable = "avx512f,avx2,fma,f16c")]
+#[inline]
+#[allow(clippy::too_many_arguments)]
+unsafe fn group_sums<D: Decode, const R: usize>(
+    t: &Tile<'_>,
+    d: &D,
+    q0: usize,
+    end: usize,
+    scales: Option<__m512>,
+    split: bool,
+    sums: &mut [[__m512; R]; 2],
+) {
+    let pa = t.a.as_ptr();
+    let (step, lda) = match t.lda {
+        None => (R, 1),
+        Some(lda) => (1, lda),
+    };
+    let scaled = |v: __m512| scales.map_or(v, |s| _mm512_mul_ps(v, s));
+    let mut q = q0;
+    while q + 2 <= end {
+        // SAFETY: q + 1 < end: in the block, and inputs q, q + 1 of every row are in `a`.
+        unsafe {
+            let w = d.pair(q / 2);
+            for (s, ws) in w.iter().enumerate() {
+                let ws = scaled(*ws);
+                let set = if split { s } else { 0 };
+                for i in 0..R {
+                    let x = _mm512_set1_ps(*pa.add((q + s) * step + i * lda));
+                    sums[set][i] = _mm512_fmadd_ps(x, ws, sums[set][i]);
+                }
+            }
+        }
+        q += 2;
+    }
+    if q < end {
+        // SAFETY: q < end, as above.
+        unsafe {
+            let w = scaled(d.first(q / 2));
+            for i in 0..R {
+                let x = _mm512_set1_ps(*pa.add(q * step + i * lda));
+                sums[0][i] = _mm512_fmadd_ps(x, w, sums[0][i]);
+            }
+        }
+    }
 }
 
 /// The end of every AVX-512 tile: the low-rank steps in the same accumulators, then the bias
