@@ -289,3 +289,58 @@ fn strided_packing_and_products_read_and_write_only_their_views() {
         }
     }
 }
+
+/// A product with `Then::GeluErf` gives exactly the product followed by the GELU over its
+/// output, on every path and weight format, with a bias, with and without adding onto the
+/// output, and with a low-rank term: whole and edge blocks of the amx path (rows 8 to 70,
+/// outputs not a multiple of 32) and the few-rows and many-rows splits of the others.
+#[test]
+fn a_product_then_gelu_equals_the_product_followed_by_gelu_on_every_path() {
+    let (k, r) = (70, 3);
+    for path in paths() {
+        for format in ["f32", "bf16", "int8", "int4"] {
+            let format = WeightFormat::parse(format).unwrap();
+            for &(m, n) in &[(1, 40), (8, 33), (33, 70), (70, 96)] {
+                let w = PackedWeight::pack_as(&values(n * k, 5), n, k, format).unwrap();
+                let x: Vec<f32> = values(m * k, 6).iter().map(|v| v * 3.0).collect();
+                let bias = values(n, 7);
+                let a = PackedWeight::pack(&values(r * k, 8), r, k);
+                let b = PackedWeight::pack(&values(n * r, 9), n, r);
+                let terms = [RowTerm {
+                    rows: m / 3..m,
+                    a: &a,
+                    b: &b,
+                    scale: 0.5,
+                }];
+                for accumulate in [false, true] {
+                    let start = values(m * n, 10);
+                    let mut want = start.clone();
+                    packed_matmul_on(path, &mut want, &x, m, &w, accumulate, Some(&bias), &terms);
+                    crate::vector::gelu_erf_in_place(&mut want);
+                    let mut got = start.clone();
+                    packed_matmul_then_on(
+                        path,
+                        &mut got,
+                        &x,
+                        m,
+                        &w,
+                        accumulate,
+                        Some(&bias),
+                        &terms,
+                        Then::GeluErf,
+                    );
+                    assert!(
+                        got.iter()
+                            .zip(&want)
+                            .all(|(g, w)| g.to_bits() == w.to_bits()),
+                        "{path} {format} {m}x{k}x{n} accumulate {accumulate}: differs"
+                    );
+                    assert!(
+                        got.iter().any(|&v| v < 0.0) && got.iter().any(|&v| v > 1.0),
+                        "{path} {format}: the outputs do not span the GELU's bend"
+                    );
+                }
+            }
+        }
+    }
+}
