@@ -21,8 +21,8 @@ pub mod vector;
 
 pub use dispatch::{Path, PathError};
 pub use matmul::{
-    RowTerm, Then, add_rank_update, add_rank_update_on, packed_matmul, packed_matmul_on,
-    packed_matmul_strided, packed_matmul_then, packed_matmul_then_on, packed_matmul_with,
+    RowTerm, add_rank_update, add_rank_update_on, packed_matmul, packed_matmul_on,
+    packed_matmul_strided, packed_matmul_with,
 };
 pub use pack::{PANEL, PackedWeight, QuantError, WeightFormat};
 pub use vector::{

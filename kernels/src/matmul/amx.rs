@@ -346,7 +346,6 @@ pub(crate) fn matmul(
     accumulate: bool,
     bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
-    then: super::Then,
 ) {
     use rayon::prelude::*;
     assert!(
@@ -508,19 +507,9 @@ pub(crate) fn matmul(
     };
     let one = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
         base(rb, pp, c, tail);
-        let rows = BLOCK.min(m - rb * BLOCK);
         if !terms.is_empty() {
+            let rows = BLOCK.min(m - rb * BLOCK);
             add_terms(rb * BLOCK, rows, 2 * pp, (2 * pp + 1).min(panels - 1));
-        }
-        if then == super::Then::GeluErf {
-            // The block's outputs are final and in L1: the activation now, not in a pass of
-            // its own over the whole output.
-            let (j0, j1) = (2 * pp * PANEL, ((2 * pp + 2) * PANEL).min(n));
-            for i in rb * BLOCK..rb * BLOCK + rows {
-                // SAFETY: row i < m and columns j0..j1 <= n are this task's own elements of y
-                // (see Out).
-                crate::vector::gelu_erf_in_place(unsafe { out.slice(i * n + j0, j1 - j0) });
-            }
         }
     };
     let task = |range_rb: std::ops::Range<usize>, range_pp: std::ops::Range<usize>| {

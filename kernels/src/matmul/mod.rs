@@ -101,71 +101,6 @@ pub fn packed_matmul_on(
     bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
 ) {
-    packed_matmul_then_on(path, y, x, m, w, accumulate, bias, terms, Then::Store);
-}
-
-/// What a product does to its outputs once they are final (bias, low-rank terms and, when
-/// accumulating, what `y` held, all added).
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Then {
-    /// Stores them.
-    Store,
-    /// Applies the exact GELU ([`crate::vector::gelu_erf_in_place`]) to them: on the amx path
-    /// to each block as it is stored, while it is in L1, instead of a pass of its own over the
-    /// whole output; on the others after the product.
-    GeluErf,
-}
-
-/// [`packed_matmul_with`] followed by `then` on the outputs, on the active path.
-#[allow(clippy::too_many_arguments)]
-pub fn packed_matmul_then(
-    y: &mut [f32],
-    x: &[f32],
-    m: usize,
-    w: &PackedWeight,
-    accumulate: bool,
-    bias: Option<&[f32]>,
-    terms: &[RowTerm<'_>],
-    then: Then,
-) {
-    packed_matmul_then_on(active(), y, x, m, w, accumulate, bias, terms, then);
-}
-
-/// [`packed_matmul_then`] on a path chosen by the caller.
-///
-/// # Panics
-/// When this CPU cannot run `path`.
-#[allow(clippy::too_many_arguments)]
-pub fn packed_matmul_then_on(
-    path: Path,
-    y: &mut [f32],
-    x: &[f32],
-    m: usize,
-    w: &PackedWeight,
-    accumulate: bool,
-    bias: Option<&[f32]>,
-    terms: &[RowTerm<'_>],
-    then: Then,
-) {
-    let done = product(path, y, x, m, w, accumulate, bias, terms, then);
-    if !done && then == Then::GeluErf {
-        crate::vector::gelu_erf_in_place(&mut y[..m * w.out]);
-    }
-}
-
-/// The product of [`packed_matmul_then_on`]; true when it applied `then` itself (the amx path).
-#[allow(clippy::too_many_arguments)]
-fn product(
-    path: Path,
-    y: &mut [f32],
-    x: &[f32],
-    m: usize,
-    w: &PackedWeight,
-    accumulate: bool,
-    bias: Option<&[f32]>,
-    terms: &[RowTerm<'_>],
-    then: Then,
-) -> bool {
     use rayon::prelude::*;
     let (n, k) = (w.out, w.inp);
     for t in terms {
@@ -187,7 +122,7 @@ fn product(
         "the bias does not fit the product"
     );
     if m == 0 || n == 0 {
-        return false;
+        return;
     }
     if k == 0 {
         // No input features: the base product and every term's down product are zero.
@@ -199,12 +134,12 @@ fn product(
                 (true, None) => {}
             }
         }
-        return false;
+        return;
     }
     #[cfg(target_arch = "x86_64")]
     if path == Path::Amx && w.format == WeightFormat::Bf16 && m >= amx::MIN_ROWS {
-        amx::matmul(y, x, m, w, accumulate, bias, terms, then);
-        return true;
+        amx::matmul(y, x, m, w, accumulate, bias, terms);
+        return;
     }
     let panels = n.div_ceil(PANEL);
     let threads = rayon_threads();
@@ -222,13 +157,13 @@ fn product(
         for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
             block(i, yb);
         }
-        return false;
+        return;
     }
     if row_blocks >= 2 * threads {
         y.par_chunks_mut(BLOCK_ROWS * n)
             .enumerate()
             .for_each(|(i, yb)| block(i, yb));
-        return false;
+        return;
     }
     // Few rows: the rows are packed (and the terms' down products computed) once, here; the
     // panels are split, about four blocks per thread, each computed into its own part of one
@@ -271,7 +206,6 @@ fn product(
     }
     bufs.out = scratch;
     BUFFERS.with_borrow_mut(|b| *b = bufs);
-    false
 }
 
 /// [`packed_matmul`] on strided rows, on the calling thread: `y[i * y_stride + j] (+)=

@@ -11,7 +11,8 @@ use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
-    PackedWeight, Then, add_layer_norm_in_place, packed_matmul_strided, softmax_rows_in_place,
+    PackedWeight, add_layer_norm_in_place, gelu_erf_in_place, packed_matmul_strided,
+    softmax_rows_in_place,
 };
 
 use crate::model::checkpoint::Weights;
@@ -173,15 +174,10 @@ impl Layer {
         self.o
             .forward_rows_into(&a.ctx, rows, adapters, &mut a.attn)?;
         self.attn_norm.apply(&mut a.attn, x)?;
-        // The exact GELU is applied by the product as it stores its outputs.
-        let then = match self.act {
-            Activation::GeluErf => Then::GeluErf,
-            _ => Then::Store,
-        };
         self.up
-            .forward_rows_then(&a.attn, rows, adapters, &mut a.inner, then)?;
+            .forward_rows_into(&a.attn, rows, adapters, &mut a.inner)?;
         match self.act {
-            Activation::GeluErf => {}
+            Activation::GeluErf => gelu_erf_in_place(&mut a.inner),
             Activation::GeluTanh => a.inner.par_chunks_mut(1 << 14).for_each(|c| {
                 c.iter_mut().for_each(|v| {
                     let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);

@@ -14,7 +14,7 @@ use std::sync::Arc;
 use candle_core::{DType, Result, Tensor};
 use switchyard_adapters::tensors::{pack_tensor, unpack_tensor, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
-use switchyard_kernels::{PackedWeight, RowTerm, Then, packed_matmul_then};
+use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul_with};
 
 use crate::model::checkpoint::Weights;
 
@@ -234,19 +234,6 @@ impl AdaptedLinear {
         adapters: &RowAdapters,
         y: &mut Vec<f32>,
     ) -> Result<()> {
-        self.forward_rows_then(xs, rows, adapters, y, Then::Store)
-    }
-
-    /// [`Self::forward_rows_into`], then `then` on the outputs (the exact GELU of an encoder's
-    /// up projection, which the amx path applies to each block as it stores it).
-    pub fn forward_rows_then(
-        &self,
-        xs: &[f32],
-        rows: usize,
-        adapters: &RowAdapters,
-        y: &mut Vec<f32>,
-        then: Then,
-    ) -> Result<()> {
         let (out_dim, in_dim) = self.shape();
         if rows != adapters.rows || xs.len() != rows * in_dim {
             candle_core::bail!(
@@ -280,16 +267,7 @@ impl AdaptedLinear {
             }
             terms.extend(group.runs.iter().map(|run| lr.term(run.clone())));
         }
-        packed_matmul_then(
-            y,
-            xs,
-            rows,
-            weight,
-            false,
-            self.bias.as_deref(),
-            &terms,
-            then,
-        );
+        packed_matmul_with(y, xs, rows, weight, false, self.bias.as_deref(), &terms);
         Ok(())
     }
 }
