@@ -53,6 +53,25 @@ fn matrix(v: &Value) -> Vec<Vec<f32>> {
         .collect()
 }
 
+/// 16 greedy tokens after the fixture's prompt (`reference["prompt_ids"]`), base or with
+/// `adapter`, not stopping at the end token (transformers' reference does not).
+fn greedy_tokens(
+    generator: &Generator,
+    reference: &Value,
+    adapter: Option<Arc<Adapter>>,
+) -> Vec<u32> {
+    generator
+        .generate(&[GenerateRequest {
+            prompt_ids: ids(&reference["prompt_ids"]),
+            adapter,
+            limit: 16,
+            sampling: SamplingParams::default(),
+            stop_at_eos: false,
+        }])
+        .unwrap()
+        .remove(0)
+}
+
 fn ids(v: &Value) -> Vec<u32> {
     v.as_array()
         .unwrap()
@@ -425,16 +444,7 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
             let d = max_abs(&got, &matrix(&want[key]));
             println!("{name} on {path}: {dir} logits max abs difference {d:.2e} (against {key})");
             assert!(d <= 1e-3, "{name} {dir}: logits differ by {d} from {key}");
-            let greedy = generator
-                .generate(&[GenerateRequest {
-                    prompt_ids: ids(&reference["prompt_ids"]),
-                    adapter: None,
-                    limit: 16,
-                    sampling: SamplingParams::default(),
-                    stop_at_eos: false,
-                }])
-                .unwrap()
-                .remove(0);
+            let greedy = greedy_tokens(&generator, &reference, None);
             let key = if inputs_rounded {
                 "greedy-inputs-bf16"
             } else {
@@ -556,17 +566,7 @@ impl Decoder {
     }
 
     fn greedy(&self, adapter: Option<Arc<Adapter>>) -> Vec<u32> {
-        let prompt_ids = ids(&self.reference["prompt_ids"]);
-        self.generator
-            .generate(&[GenerateRequest {
-                prompt_ids,
-                adapter,
-                limit: 16,
-                sampling: SamplingParams::default(),
-                stop_at_eos: false,
-            }])
-            .unwrap()
-            .remove(0)
+        greedy_tokens(&self.generator, &self.reference, adapter)
     }
 
     fn check_against_transformers(&self) {
@@ -661,16 +661,7 @@ fn tiny_decoders_in_each_weight_format_stay_close_to_the_transformers_logits() {
             let got: Vec<Vec<f32>> = model.logits(&hidden).unwrap().to_vec2().unwrap();
             let c = min_cosine(&got, &want);
             let d = max_abs(&got, &want);
-            let greedy = generator
-                .generate(&[GenerateRequest {
-                    prompt_ids: ids(&reference["prompt_ids"]),
-                    adapter: None,
-                    limit: 16,
-                    sampling: SamplingParams::default(),
-                    stop_at_eos: false,
-                }])
-                .unwrap()
-                .remove(0);
+            let greedy = greedy_tokens(&generator, &reference, None);
             let agree = greedy
                 .iter()
                 .zip(&greedy_want)

@@ -88,6 +88,30 @@ fn run_rows(path: Path, w: &mut [f32], n: usize, inp: usize, b: &[f32], a: &[f32
     portable_rows(w, n, inp, b, a, r);
 }
 
+/// Rows `0..n` of `w` (`inp` apart) with their `b` rows (`r` apart), handed to `group` as
+/// pointers to the first row of each group of [`GROUP`] rows and then of each row left over,
+/// with the group's row count.
+fn by_groups(
+    w: &mut [f32],
+    n: usize,
+    inp: usize,
+    b: &[f32],
+    r: usize,
+    mut group: impl FnMut(*mut f32, *const f32, usize),
+) {
+    assert!(
+        w.len() >= n * inp && b.len() >= n * r,
+        "rows do not fit their slices"
+    );
+    let mut i = 0;
+    while i < n {
+        let rows = if i + GROUP <= n { GROUP } else { 1 };
+        // In bounds: row i < n of each (asserted above).
+        group(w[i * inp..].as_mut_ptr(), b[i * r..].as_ptr(), rows);
+        i += rows;
+    }
+}
+
 /// The reference: each row of `w` gets `b[i, j] a[j, :]` added for `j` in order, a multiply
 /// and an add per value and rank (the compiler vectorises each pass over the row, which stays
 /// in L1). The vector bodies fuse the multiply and the add, so they round a little differently.
@@ -115,33 +139,17 @@ mod avx512 {
     /// AVX-512F present; `w` holds `n * inp`, `b` `n * r`, `a` `r * inp` values.
     #[target_feature(enable = "avx512f")]
     pub(super) unsafe fn rows(w: &mut [f32], n: usize, inp: usize, b: &[f32], a: &[f32], r: usize) {
-        let mut i = 0;
-        while i + GROUP <= n {
-            // SAFETY: rows i..i + GROUP exist.
+        super::by_groups(w, n, inp, b, r, |wp, bp, rows| {
+            // SAFETY: `by_groups` hands out rows that exist in `w` and `b`; the features are
+            // this function's.
             unsafe {
-                group::<GROUP>(
-                    w.as_mut_ptr().add(i * inp),
-                    inp,
-                    b.as_ptr().add(i * r),
-                    a,
-                    r,
-                )
-            };
-            i += GROUP;
-        }
-        while i < n {
-            // SAFETY: row i exists.
-            unsafe {
-                group::<1>(
-                    w.as_mut_ptr().add(i * inp),
-                    inp,
-                    b.as_ptr().add(i * r),
-                    a,
-                    r,
-                )
-            };
-            i += 1;
-        }
+                if rows == GROUP {
+                    group::<GROUP>(wp, inp, bp, a, r)
+                } else {
+                    group::<1>(wp, inp, bp, a, r)
+                }
+            }
+        });
     }
 
     /// Rows `0..R` from `w` (`inp` apart) += their `b` rows (`r` apart) times `a`.
@@ -220,33 +228,17 @@ mod avx2 {
     /// AVX2 and FMA present; `w` holds `n * inp`, `b` `n * r`, `a` `r * inp` values.
     #[target_feature(enable = "avx2,fma")]
     pub(super) unsafe fn rows(w: &mut [f32], n: usize, inp: usize, b: &[f32], a: &[f32], r: usize) {
-        let mut i = 0;
-        while i + GROUP <= n {
-            // SAFETY: rows i..i + GROUP exist.
+        super::by_groups(w, n, inp, b, r, |wp, bp, rows| {
+            // SAFETY: `by_groups` hands out rows that exist in `w` and `b`; the features are
+            // this function's.
             unsafe {
-                group::<GROUP>(
-                    w.as_mut_ptr().add(i * inp),
-                    inp,
-                    b.as_ptr().add(i * r),
-                    a,
-                    r,
-                )
-            };
-            i += GROUP;
-        }
-        while i < n {
-            // SAFETY: row i exists.
-            unsafe {
-                group::<1>(
-                    w.as_mut_ptr().add(i * inp),
-                    inp,
-                    b.as_ptr().add(i * r),
-                    a,
-                    r,
-                )
-            };
-            i += 1;
-        }
+                if rows == GROUP {
+                    group::<GROUP>(wp, inp, bp, a, r)
+                } else {
+                    group::<1>(wp, inp, bp, a, r)
+                }
+            }
+        });
     }
 
     /// # Safety
