@@ -61,7 +61,7 @@ impl Adapter {
     }
 
     /// Bytes held by the resident factors (and head). Every tensor counted here owns its memory
-    /// (see [`owned`]), so this is what the adapter really keeps alive.
+    /// (see `owned`), so this is what the adapter really keeps alive.
     pub fn resident_bytes(&self) -> usize {
         let head = self
             .head

@@ -4,12 +4,12 @@
 //! store's pointer the first time, then kept current by [`Registry::poll_once`], which the
 //! [`crate::watcher`] thread calls), and returns a [`Handle`] to that version's factors, loading
 //! them on first use. Loads are single-flight: concurrent first requests for one version share one
-//! load ([`flight`]). Factors live in one byte-bounded LRU, merged variants ([`Registry::merged`])
-//! in a second; both are [`cache::ByteLru`]s, which never evict what a handle still holds. A
+//! load (`flight`). Factors live in one byte-bounded LRU, merged variants ([`Registry::merged`])
+//! in a second; both are `cache::ByteLru`s, which never evict what a handle still holds. A
 //! pinned adapter's live version is never evicted. Each thing that happens is a
 //! [`SwapEvent`] sent to subscribers.
 //!
-//! All shared state sits behind one lock (through [`crate::sync`]); loading and merging run
+//! All shared state sits behind one lock (through `crate::sync`); loading and merging run
 //! outside it.
 
 mod cache;

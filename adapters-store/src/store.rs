@@ -7,7 +7,7 @@
 //! ```
 //!
 //! Writers (publish, set live, rollback, retire) take the adapter's lock, so two processes never
-//! interleave their steps; every file they write is replaced atomically ([`fsio`]), and a version
+//! interleave their steps; every file they write is replaced atomically (`fsio`), and a version
 //! file is in place and synced before any pointer names it. Readers take no lock: the rename
 //! guarantees they see one whole pointer, and the pointer only ever names versions on disk.
 //! Retiring the live version is refused, and retiring an older one drops it from the history.

@@ -5,7 +5,7 @@
 //! `SWITCHYARD_KERNELS` names one (`portable`, `avx2`, `avx512`, `avx512-bf16`, `amx`): an unknown
 //! name, or a path this CPU cannot run, is refused with a message that lists the valid names
 //! (see [`chosen`]). Adding an instruction set is one new micro-kernel file under `micro/` and
-//! one line of [`micro_kernel`].
+//! one line of `micro_kernel`.
 
 use crate::micro::{self, MicroKernel};
 use crate::pack::FormatKind;

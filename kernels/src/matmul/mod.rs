@@ -1,7 +1,7 @@
 //! The macro loop of the projection kernel: the public products ([`packed_matmul`],
 //! [`packed_matmul_with`], [`packed_matmul_strided`]) split into row blocks and panel ranges
-//! across the thread pool ([`blocks`] holds the cache blocking inside one part), each register
-//! tile then handed to the micro-kernel the dispatch picked ([`crate::micro`]).
+//! across the thread pool (`blocks` holds the cache blocking inside one part), each register
+//! tile then handed to the micro-kernel the dispatch picked (`crate::micro`).
 
 #[cfg(target_arch = "x86_64")]
 pub(crate) mod amx;

@@ -1,5 +1,5 @@
 //! Weights packed once, in the order the micro-kernels read them, in one of the formats of
-//! [`WeightFormat`] ([`quant`] holds the rounding rules); [`rows`] packs input rows per call.
+//! [`WeightFormat`] ([`quant`] holds the rounding rules); `rows` packs input rows per call.
 //!
 //! Every format uses the same panels: [`PANEL`] output rows side by side, input-major inside a
 //! panel, so a micro-kernel reads a panel front to back as one stream and uses every value it

@@ -5,7 +5,7 @@
 //! - [`encoder`] is a differentiable copy of the serving encoder with the base weights frozen;
 //! - [`fit`] runs the epochs: cross-entropy on `softmax(W e + b)`, where `e` is the unit-length
 //!   pooled embedding exactly as `/classify` computes it;
-//! - [`measure`] scores examples through the serving path ([`Embedder`] and
+//! - [`measure`] scores examples through the serving path ([`crate::model::embedder::Embedder`] and
 //!   [`crate::model::classify::scores`]), so accuracy is what users of `/classify` get.
 
 pub mod data;
