@@ -118,6 +118,13 @@ impl Path {
             .unwrap_or(Path::Portable)
     }
 
+    /// Whether a product with a weight held in `format` rounds its input rows to bf16 on this
+    /// path (bf16 on avx512-bf16 and amx, whose instructions take bf16 on both sides): read
+    /// from the micro-kernel table, so tests and tolerances follow what the kernels do.
+    pub fn rounds_inputs_to_bf16(self, format: crate::WeightFormat) -> bool {
+        micro_kernel(self, format.kind()).bf16_rows
+    }
+
     /// True when the AVX2+FMA vector pieces (softmax, GELU, layer norm, dot) run.
     pub(crate) fn avx2(self) -> bool {
         self >= Path::Avx2

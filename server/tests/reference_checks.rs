@@ -355,12 +355,11 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
         // its inputs to bf16 (avx512-bf16, amx), such a bit can move a value across a rounding
         // boundary, a change of 2^-9 of it, so there the bar is the bf16 one: 3-6e-4 measured
         // on an AMX Xeon, 2e-3 allowed. Every other format and path keeps 1e-5.
-        let batch_bar =
-            if format == WeightFormat::Bf16 && path >= switchyard_kernels::Path::Avx512Bf16 {
-                2e-3
-            } else {
-                1e-5
-            };
+        let batch_bar = if path.rounds_inputs_to_bf16(format) {
+            2e-3
+        } else {
+            1e-5
+        };
         for (i, adapter) in adapters.iter().enumerate() {
             let alone = e
                 .embed(&refs[i..=i], std::slice::from_ref(adapter))
@@ -394,7 +393,7 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
     let refs: Vec<&str> = s.iter().map(String::as_str).collect();
     for name in fx["formats"].as_array().unwrap() {
         let name = name.as_str().unwrap();
-        let inputs_rounded = name == "bf16" && path >= switchyard_kernels::Path::Avx512Bf16;
+        let inputs_rounded = path.rounds_inputs_to_bf16(WeightFormat::parse(name).unwrap());
         let (min_cos, max_diff) = if inputs_rounded {
             println!("{name} on {path}: inputs rounded to bf16 on this path; looser MiniLM bars");
             (0.9999, 1e-2)
@@ -436,23 +435,17 @@ fn reduced_formats_match_the_python_reference_of_their_rounding() {
                 )
                 .unwrap();
             let got: Vec<Vec<f32>> = model.logits(&hidden).unwrap().to_vec2().unwrap();
-            let key = if inputs_rounded {
-                "logits-inputs-bf16"
-            } else {
-                "logits"
-            };
-            let d = max_abs(&got, &matrix(&want[key]));
+            // The reference that rounds the same inputs, where this path rounds them.
+            let suffix = if inputs_rounded { "-inputs-bf16" } else { "" };
+            let key = format!("logits{suffix}");
+            let d = max_abs(&got, &matrix(&want[&key]));
             println!("{name} on {path}: {dir} logits max abs difference {d:.2e} (against {key})");
             assert!(d <= 1e-3, "{name} {dir}: logits differ by {d} from {key}");
             let greedy = greedy_tokens(&generator, &reference, None);
-            let key = if inputs_rounded {
-                "greedy-inputs-bf16"
-            } else {
-                "greedy"
-            };
+            let key = format!("greedy{suffix}");
             assert_eq!(
                 greedy,
-                ids(&want[key]),
+                ids(&want[&key]),
                 "{name} {dir}: greedy tokens ({key})"
             );
         }

@@ -379,12 +379,7 @@ pub(crate) fn matmul(
     };
     // Each term's down product `s x A^T` for its rows, in f32 on the AVX-512 path, one after
     // another in `down`; the blocks add `z B^T` to their rows as they store them.
-    let mut starts = Vec::with_capacity(terms.len());
-    let mut total = 0;
-    for t in terms {
-        starts.push(total);
-        total += t.rows.len() * t.a.out;
-    }
+    let total: usize = terms.iter().map(|t| t.rows.len() * t.a.out).sum();
     down.clear();
     down.resize(total, 0.0);
     let mut slices = Vec::with_capacity(terms.len());
@@ -412,14 +407,15 @@ pub(crate) fn matmul(
     }
     let out = Out(y.as_mut_ptr());
     let a = &abuf[..];
-    let z_all = &down[..];
+    // Each term's down products, read-only from here on.
+    let zs: Vec<&[f32]> = slices.into_iter().map(|z| &*z).collect();
     // The low-rank terms' up products for rows r0..r0 + rows and panels p0..=p1, added to y.
     let add_terms = |r0: usize, rows: usize, p0: usize, p1: usize| {
-        for (t, &at) in terms.iter().zip(&starts) {
+        for (t, zt) in terms.iter().zip(&zs) {
             let (lo, hi) = (t.rows.start.max(r0), t.rows.end.min(r0 + rows));
             let r = t.a.out;
             for i in lo..hi {
-                let z = &z_all[at + (i - t.rows.start) * r..][..r];
+                let z = &zt[(i - t.rows.start) * r..][..r];
                 for p in p0..=p1 {
                     let (j0, width) = (p * PANEL, t.b.panel_width(p));
                     let b = &t.b.f32_values()[p * PANEL * r..][..width * r];

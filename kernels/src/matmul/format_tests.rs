@@ -162,7 +162,7 @@ impl Case {
 
 /// The extra relative rounding a path applies to each base product (its inputs in bf16).
 fn input_rounding(path: Path, format: WeightFormat) -> f64 {
-    if path >= Path::Avx512Bf16 && format == WeightFormat::Bf16 {
+    if path.rounds_inputs_to_bf16(format) {
         2f64.powi(-9)
     } else {
         0.0
