@@ -14,7 +14,8 @@
 //!    rank-update kernel against the same update through the projection kernel (B's rows as its
 //!    input, A^T as its weight, accumulating), ms per merge on each path.
 //!
-//! Paths this CPU lacks are listed as not run. Run: `cargo run --release -p switchyard-kernels
+//! Our kernels alone: oneDNN, where it is loaded, is turned off here (`scripts/bench-onednn`
+//! compares the two). Paths this CPU lacks are listed as not run. Run: `cargo run --release -p switchyard-kernels
 //! --example kernel-bench` (add `-- --repeats N`, or `-- --only TEXT` for the rows whose
 //! description holds TEXT). Every figure is the median of the repeats; the paths of one row
 //! alternate within each repeat, so load on a shared machine hits them alike.
@@ -170,6 +171,8 @@ fn main() {
         .and_then(|v| v.parse().ok())
         .unwrap_or(7usize);
     let only = flag(&args, "--only").unwrap_or_default();
+    // Our kernels alone: products oneDNN would take stay ours (scripts/bench-onednn compares).
+    switchyard_kernels::onednn::set_enabled(false);
     let paths: Vec<Path> = Path::ALL.into_iter().filter(|p| p.available()).collect();
     println!(
         "kernel-bench: {} threads, median of {repeats}",

@@ -13,6 +13,7 @@
 pub mod dispatch;
 pub mod matmul;
 mod micro;
+pub mod onednn;
 pub mod pack;
 #[cfg(test)]
 mod test_values;

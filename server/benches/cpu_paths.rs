@@ -523,6 +523,11 @@ fn decoder_section(report: &mut Report, rounds: usize, small: bool) {
 }
 
 fn main() {
+    // As the server does at start: oneDNN (where found) loaded before any thread starts.
+    // SAFETY: no other thread has started yet.
+    #[allow(unsafe_code)]
+    let library = unsafe { switchyard_kernels::onednn::load_at_start() };
+    println!("{library}");
     let args: Vec<String> = std::env::args().collect();
     let rounds = args
         .iter()

@@ -138,6 +138,13 @@ fn main() {
         eprintln!("switchyard: error: {e}");
         std::process::exit(2);
     }
+    // oneDNN (optional, found at run time) is loaded while this is the only thread: loading may
+    // set OMP_WAIT_POLICY (see kernels::onednn).
+    // SAFETY: no other thread has started yet.
+    #[allow(unsafe_code)]
+    unsafe {
+        switchyard_kernels::onednn::load_at_start()
+    };
     if let Command::Serve {
         config,
         listen,

@@ -46,6 +46,8 @@ pub struct CacheLabels {
 pub struct BaseLabels {
     pub weights: String,
     pub kernels: String,
+    /// `onednn` when large f32 products go to oneDNN, else `none`.
+    pub library: String,
 }
 
 /// A refusal before queueing; `tenant` is a configured tenant's name (or `default`), so the
@@ -191,7 +193,7 @@ impl Metrics {
         let base_weights = Family::<BaseLabels, Gauge>::default();
         registry.register(
             "base_weights_info",
-            "The base model's weight format and the kernel path in use (value 1; one series)",
+            "The base model's weight format, the kernel path and the library (onednn or none) in use (value 1; one series)",
             base_weights.clone(),
         );
         let base_weight_bytes = Gauge::default();
@@ -222,13 +224,14 @@ impl Metrics {
         }
     }
 
-    /// Records the base model's weight format, the kernel path and the weights' bytes.
-    pub fn set_base(&self, weights: &str, kernels: &str, bytes: usize) {
+    /// Records the base model's weight format, the kernel path, the library and the weights' bytes.
+    pub fn set_base(&self, weights: &str, kernels: &str, library: &str, bytes: usize) {
         self.base_weights.clear();
         self.base_weights
             .get_or_create(&BaseLabels {
                 weights: weights.to_owned(),
                 kernels: kernels.to_owned(),
+                library: library.to_owned(),
             })
             .set(1);
         self.base_weight_bytes

@@ -747,8 +747,10 @@ fn an_adapter_for_another_base_is_refused_naming_the_fingerprint_rule() {
 }
 
 /// Every check above again, in a child process per kernel path this CPU runs besides the one
-/// the checks above ran on (`SWITCHYARD_KERNELS=portable` is what a CPU without AVX2 runs);
-/// each path this CPU lacks is printed as not run.
+/// the checks above ran on (`SWITCHYARD_KERNELS=portable` is what a CPU without AVX2 runs),
+/// and, where oneDNN is loaded and takes the large f32 products (see `kernels::onednn`), once
+/// more on the default path with it off (`SWITCHYARD_ONEDNN=off`), so our own kernels run
+/// every check too; each path this CPU lacks is printed as not run.
 #[test]
 fn every_reference_check_passes_on_every_kernel_path() {
     if std::env::var("SWITCHYARD_KERNELS").is_ok() {
@@ -756,7 +758,15 @@ fn every_reference_check_passes_on_every_kernel_path() {
         return;
     }
     let default = switchyard_kernels::Path::best();
-    println!("path {default}: the checks above ran on it");
+    let f32_library =
+        switchyard_kernels::onednn::in_use(default, switchyard_kernels::WeightFormat::F32);
+    println!(
+        "path {default}: the checks above ran on it ({})",
+        f32_library
+            .as_deref()
+            .unwrap_or("our kernels for every product")
+    );
+    let mut runs = Vec::new();
     for path in switchyard_kernels::Path::ALL {
         if path == default {
             continue;
@@ -765,19 +775,39 @@ fn every_reference_check_passes_on_every_kernel_path() {
             println!("path {path}: not run: {feature} absent");
             continue;
         }
-        let out = std::process::Command::new(std::env::current_exe().unwrap())
-            .env("SWITCHYARD_KERNELS", path.name())
-            .args(["--test-threads", "1", "--skip", "every_kernel_path"])
-            .output()
-            .unwrap();
+        runs.push((path, false));
+    }
+    if f32_library.is_some() {
+        runs.push((default, true));
+    } else {
+        println!(
+            "{}: no run without it",
+            switchyard_kernels::onednn::status()
+        );
+    }
+    for (path, library_off) in runs {
+        let mut child = std::process::Command::new(std::env::current_exe().unwrap());
+        child.env("SWITCHYARD_KERNELS", path.name()).args([
+            "--test-threads",
+            "1",
+            "--skip",
+            "every_kernel_path",
+        ]);
+        let label = if library_off {
+            child.env("SWITCHYARD_ONEDNN", "off");
+            format!("path {path} with oneDNN off")
+        } else {
+            format!("path {path}")
+        };
+        let out = child.output().unwrap();
         let text = String::from_utf8_lossy(&out.stdout);
         assert!(
             out.status.success(),
-            "reference checks failed on the {path} kernels:\n{text}\n{}",
+            "reference checks failed on {label}:\n{text}\n{}",
             String::from_utf8_lossy(&out.stderr)
         );
         assert!(text.contains("test result: ok"), "{text}");
         assert!(!text.contains(" 0 passed"), "no check ran: {text}");
-        println!("path {path}: every check passed");
+        println!("{label}: every check passed");
     }
 }

@@ -57,13 +57,17 @@ fn a_server_with_int8_weights_embeds_close_to_the_reference_and_names_its_format
     let listing = server.get("/admin/adapters", Auth::Admin).ok_json();
     assert_eq!(listing["base"]["weights"], "int8", "{listing}");
     assert_eq!(listing["base"]["kernels"], kernels, "{listing}");
+    assert!(listing["base"]["library"].is_null(), "{listing}");
     // MiniLM holds 90.3 MB of f32 weights; in int8 about a quarter of that.
     let bytes = listing["base"]["weight_bytes"].as_u64().unwrap();
     assert!((15_000_000..40_000_000).contains(&bytes), "{listing}");
 
     let page = server.get("/metrics", Auth::Admin);
     assert_eq!(page.status, 200);
-    let info = format!("switchyard_base_weights_info{{weights=\"int8\",kernels=\"{kernels}\"}} 1");
+    // int8 products never go to oneDNN, so the library is `none` whatever this machine has.
+    let info = format!(
+        "switchyard_base_weights_info{{weights=\"int8\",kernels=\"{kernels}\",library=\"none\"}} 1"
+    );
     assert!(page.body.contains(&info), "no {info} in\n{}", page.body);
     assert!(
         page.body

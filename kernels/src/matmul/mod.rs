@@ -40,6 +40,64 @@ thread_local! {
     static BUFFERS: std::cell::RefCell<Buffers> = std::cell::RefCell::new(Buffers::default());
 }
 
+/// Rows from which an f32 product goes to oneDNN when it is loaded: at 64 rows its AVX-512
+/// matmul, reading our packed panels, ran 2.2x ours, at 16 rows (`dnnl_sgemm`) 0.45x
+/// (`scripts/bench-onednn`, the AMX Xeon).
+pub const LIBRARY_ROWS_F32: usize = 64;
+
+/// The product on oneDNN (see [`crate::onednn`]) when it is loaded and takes this one: f32
+/// weights whose packed panels are one of its layouts (inputs a multiple of 16, outputs of
+/// 16), enough rows, a path with AVX-512 (what it was measured against), and a call from
+/// outside the rayon pool. Then each low-rank term runs on our kernel: its down product from
+/// its rows of `x`, its up product added to its rows of `y`. `false` when it did not run
+/// (nothing written).
+///
+/// bf16 weights stay on our kernels: oneDNN reads our 16-wide bf16 panels (its `BA16a16b2a`)
+/// at 0.6-1.0x our AMX kernel, and is faster only in the 64-wide layout it prefers, which
+/// would mean a second copy of every weight or a new layout for every bf16 kernel.
+#[cfg(target_arch = "x86_64")]
+#[allow(clippy::too_many_arguments)]
+fn library_product(
+    path: Path,
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+) -> bool {
+    let (n, k) = (w.out, w.inp);
+    let fits = w.format == WeightFormat::F32
+        && path >= Path::Avx512
+        && m >= LIBRARY_ROWS_F32
+        && k.is_multiple_of(16)
+        && n.is_multiple_of(PANEL);
+    if !fits || rayon::current_thread_index().is_some() {
+        return false;
+    }
+    let Some(lib) = crate::onednn::get() else {
+        return false;
+    };
+    let crate::pack::Values::F32(d) = &w.values else {
+        return false;
+    };
+    let y = &mut y[..m * n];
+    let weights = (d.as_ptr().cast(), d.len() * 4);
+    let ran = lib.matmul(y, x.as_ptr(), m, k, n, weights, accumulate, bias);
+    if ran.is_err() {
+        return false;
+    }
+    for t in terms {
+        let (rows, r) = (t.rows.len(), t.a.out);
+        let mut z = vec![0f32; rows * r];
+        packed_matmul_strided(&mut z, r, &x[t.rows.start * k..], k, rows, t.a, false);
+        z.iter_mut().for_each(|v| *v *= t.scale);
+        packed_matmul_strided(&mut y[t.rows.start * n..], n, &z, r, rows, t.b, true);
+    }
+    true
+}
+
 /// `y[m, out] = (accumulate ? y : 0) + x[m, in] W^T` with `W` packed (see [`PackedWeight`]): the
 /// one product every projection runs, from a decode step's single row to a prefill of thousands.
 ///
@@ -134,6 +192,10 @@ pub fn packed_matmul_on(
                 (true, None) => {}
             }
         }
+        return;
+    }
+    #[cfg(target_arch = "x86_64")]
+    if library_product(path, y, x, m, w, accumulate, bias, terms) {
         return;
     }
     #[cfg(target_arch = "x86_64")]

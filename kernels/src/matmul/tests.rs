@@ -289,3 +289,75 @@ fn strided_packing_and_products_read_and_write_only_their_views() {
         }
     }
 }
+
+/// oneDNN's product (where it is loaded and this CPU has AVX-512) against the portable path,
+/// with what the models pass it: a bias, accumulation, and two low-rank terms on runs of rows.
+/// Printed as not run where oneDNN is absent or off.
+#[test]
+fn onednn_products_with_bias_accumulation_and_terms_match_the_portable_path() {
+    let path = Path::best();
+    if !crate::onednn::takes(path, WeightFormat::F32) {
+        println!(
+            "oneDNN product: not run on path {path}: {}",
+            crate::onednn::status()
+        );
+        return;
+    }
+    let (m, k, n, r) = (2 * LIBRARY_ROWS_F32 + 3, 384, 160, 8);
+    let x = values(m * k, 71);
+    let w = PackedWeight::pack(&values(n * k, 72), n, k);
+    let (a1, b1) = (
+        PackedWeight::pack(&values(r * k, 73), r, k),
+        PackedWeight::pack(&values(n * r, 74), n, r),
+    );
+    let (a2, b2) = (
+        PackedWeight::pack(&values(2 * r * k, 75), 2 * r, k),
+        PackedWeight::pack(&values(n * 2 * r, 76), n, 2 * r),
+    );
+    let terms = [
+        RowTerm {
+            rows: 3..70,
+            a: &a1,
+            b: &b1,
+            scale: 0.5,
+        },
+        RowTerm {
+            rows: 90..m,
+            a: &a2,
+            b: &b2,
+            scale: -1.25,
+        },
+    ];
+    let bias = values(n, 77);
+    let start = values(m * n, 78);
+    for (accumulate, bias) in [
+        (false, None),
+        (false, Some(&bias[..])),
+        (true, Some(&bias[..])),
+    ] {
+        let mut want = start.clone();
+        packed_matmul_on(
+            Path::Portable,
+            &mut want,
+            &x,
+            m,
+            &w,
+            accumulate,
+            bias,
+            &terms,
+        );
+        let mut got = start.clone();
+        packed_matmul_on(path, &mut got, &x, m, &w, accumulate, bias, &terms);
+        for (i, (g, e)) in got.iter().zip(&want).enumerate() {
+            assert!(
+                (g - e).abs() < 1e-3 * (1.0 + e.abs()),
+                "accumulate={accumulate} bias={}: element {i}: {g} vs {e}",
+                bias.is_some()
+            );
+        }
+    }
+    println!(
+        "oneDNN product: ran on path {path}, {}",
+        crate::onednn::status()
+    );
+}

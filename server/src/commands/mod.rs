@@ -21,9 +21,12 @@ with -zero (a zero point) and -f32 (f32 scales) combinable, e.g. int4-g64-zero-f
 /// The one line the offline commands print on stderr about the model they loaded: the weight
 /// format, the kernel path and the bytes the weights hold.
 pub fn model_line(format: WeightFormat, weight_bytes: usize, secs: f64) -> String {
+    let path = switchyard_kernels::dispatch::active();
+    let library = switchyard_kernels::onednn::in_use(path, format)
+        .map(|l| format!(", {l}"))
+        .unwrap_or_default();
     format!(
-        "model loaded in {secs:.2} s: weights {format} ({}), kernels {}",
+        "model loaded in {secs:.2} s: weights {format} ({}), kernels {path}{library}",
         crate::commands::adapter::base::human_bytes(weight_bytes as u64),
-        switchyard_kernels::dispatch::active()
     )
 }

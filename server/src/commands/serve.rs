@@ -173,7 +173,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     let started = Instant::now();
     let backbone = Arc::new(load_backbone(&model_dir, settings.model_weights)?);
     let kernels = switchyard_kernels::dispatch::active();
-    tracing::info!(model = %model_dir.display(), family = backbone.family(), fingerprint = %backbone.spec().fingerprint, weights = %settings.model_weights, kernels = %kernels, weight_bytes = backbone.weight_bytes(), secs = started.elapsed().as_secs_f64(), "base model loaded");
+    tracing::info!(model = %model_dir.display(), family = backbone.family(), fingerprint = %backbone.spec().fingerprint, weights = %settings.model_weights, kernels = %kernels, library = %switchyard_kernels::onednn::status(), weight_bytes = backbone.weight_bytes(), secs = started.elapsed().as_secs_f64(), "base model loaded");
     if !store_dir.exists() {
         std::fs::create_dir_all(&store_dir)
             .with_context(|| format!("creating the store folder {}", store_dir.display()))?;
@@ -204,9 +204,11 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
     let watcher = registry.start_watcher(Duration::from_millis(250));
     let vital_threads = vec![("store watcher", watcher.alive())];
     let metrics = Arc::new(Metrics::new(settings.metrics_adapter_series));
+    let library = switchyard_kernels::onednn::in_use(kernels, settings.model_weights);
     metrics.set_base(
         &settings.model_weights.to_string(),
         kernels.name(),
+        if library.is_some() { "onednn" } else { "none" },
         backbone.weight_bytes(),
     );
     {

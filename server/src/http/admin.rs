@@ -222,6 +222,10 @@ pub async fn list(
     let base = json!({
         "weights": state.backbone.weights_format().to_string(),
         "kernels": switchyard_kernels::dispatch::active().name(),
+        "library": switchyard_kernels::onednn::in_use(
+            switchyard_kernels::dispatch::active(),
+            state.backbone.weights_format(),
+        ),
         "weight_bytes": state.backbone.weight_bytes(),
     });
     blocking(&state, move |r| {
