@@ -88,14 +88,51 @@ fn library_product(
     if ran.is_err() {
         return false;
     }
-    for t in terms {
-        let (rows, r) = (t.rows.len(), t.a.out);
-        let mut z = vec![0f32; rows * r];
-        packed_matmul_strided(&mut z, r, &x[t.rows.start * k..], k, rows, t.a, false);
-        z.iter_mut().for_each(|v| *v *= t.scale);
-        packed_matmul_strided(&mut y[t.rows.start * n..], n, &z, r, rows, t.b, true);
-    }
+    library_terms(y, x, k, n, terms);
     true
+}
+
+/// Rows per task of [`library_terms`]: enough that a task's two small products outweigh
+/// handing it to the pool, few enough that one adapter's batch splits across the threads.
+const TERM_ROWS: usize = 128;
+
+/// Each term's `s (x A^T) B^T` added to its rows of `y` (the base product already there): its
+/// rows cut into tasks of [`TERM_ROWS`], spread over the pool, each task's down product into
+/// a small buffer and its up product straight into its own rows of `y`.
+#[cfg(target_arch = "x86_64")]
+fn library_terms(y: &mut [f32], x: &[f32], k: usize, n: usize, terms: &[RowTerm<'_>]) {
+    use rayon::prelude::*;
+    let mut tasks: Vec<(&RowTerm<'_>, std::ops::Range<usize>)> = terms
+        .iter()
+        .flat_map(|t| {
+            t.rows
+                .clone()
+                .step_by(TERM_ROWS)
+                .map(move |r0| (t, r0..(r0 + TERM_ROWS).min(t.rows.end)))
+        })
+        .collect();
+    tasks.sort_by_key(|(_, rows)| rows.start);
+    // The tasks' rows of y, cut apart (terms never overlap, so neither do tasks).
+    let mut parts = Vec::with_capacity(tasks.len());
+    let (mut rest, mut at) = (y, 0);
+    for (_, rows) in &tasks {
+        let (_, tail) = rest.split_at_mut((rows.start - at) * n);
+        let (mine, tail) = tail.split_at_mut(rows.len() * n);
+        parts.push(mine);
+        (rest, at) = (tail, rows.end);
+    }
+    let task = |((t, rows), ys): ((&RowTerm<'_>, std::ops::Range<usize>), &mut [f32])| {
+        let r = t.a.out;
+        let mut z = vec![0f32; rows.len() * r];
+        packed_matmul_strided(&mut z, r, &x[rows.start * k..], k, rows.len(), t.a, false);
+        z.iter_mut().for_each(|v| *v *= t.scale);
+        packed_matmul_strided(ys, n, &z, r, rows.len(), t.b, true);
+    };
+    if tasks.len() > 1 && rayon_threads() > 1 {
+        tasks.into_par_iter().zip(parts).for_each(task);
+    } else {
+        tasks.into_iter().zip(parts).for_each(task);
+    }
 }
 
 /// `y[m, out] = (accumulate ? y : 0) + x[m, in] W^T` with `W` packed (see [`PackedWeight`]): the
