@@ -142,6 +142,10 @@ pub(super) unsafe fn reduced_tile<D: Decode, const R: usize>(
     unsafe { finish::<R>(t, c, acc[0]) }
 }
 
+/// Bytes ahead of the inputs being multiplied that [`group_sums`] fetches for few rows when
+/// the tile has no next block to fetch (a whole panel as one block).
+const FETCH_AHEAD: usize = 4096;
+
 /// Inputs `q0..end` of one group into `sums`: each decoded vector (times `scales`, when
 /// given) times each row's input; a pair's second input into `sums[1]` when `split`.
 ///
@@ -170,8 +174,19 @@ unsafe fn group_sums<D: Decode, const R: usize>(
             [_mm256_mul_ps(v[0], s[0]), _mm256_mul_ps(v[1], s[1])]
         })
     };
+    // A whole panel read as one block (decode) is one long stream: fetched ahead here, since
+    // the hardware's prefetch alone leaves the few-rows tiles waiting on memory.
+    let ahead = (split && t.next.is_none()).then(|| t.b.bytes().0);
     let mut q = q0;
     while q + 2 <= end {
+        if let Some(base) = ahead {
+            let at = q * D::BYTES + FETCH_AHEAD;
+            for off in (0..2 * D::BYTES).step_by(64) {
+                // A prefetch never faults; the address is computed without `add`. Past the
+                // block it fetches the next panel, which the macro loop reads next.
+                _mm_prefetch::<_MM_HINT_T0>(base.wrapping_add(at + off).cast());
+            }
+        }
         // SAFETY: q + 1 < end: in the block, and inputs q, q + 1 of every row are in `a`.
         unsafe {
             let w = d.pair(q / 2);
