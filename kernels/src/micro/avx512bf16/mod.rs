@@ -35,6 +35,9 @@ fn run(t: &Tile<'_>, c: &mut [f32]) {
     unsafe { for_rows!(t.rows, rows, t, c) }
 }
 
+/// Bytes ahead that a few-rows tile fetches when it has no next block to fetch.
+const FETCH_AHEAD: usize = 4096;
+
 #[target_feature(enable = "avx512bf16,avx512f,avx2,fma,f16c")]
 unsafe fn rows<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
     let Block::Bf16(b) = t.b else {
@@ -53,6 +56,11 @@ unsafe fn rows<const R: usize>(t: &Tile<'_>, c: &mut [f32]) {
         unsafe {
             if j * PANEL * 4 < nlen {
                 _mm_prefetch::<_MM_HINT_T1>(pn.wrapping_add(j * PANEL * 4).cast());
+            } else if split && t.next.is_none() {
+                // A whole panel read as one block (decode) is one long stream: fetched ahead,
+                // past the block into the next panel, which the macro loop reads next.
+                let at = pb.wrapping_add(j * PANEL + FETCH_AHEAD / 4);
+                _mm_prefetch::<_MM_HINT_T0>(at.cast());
             }
             let w: __m512bh = std::mem::transmute(_mm512_loadu_si512(pb.add(j * PANEL).cast()));
             for i in 0..R {
