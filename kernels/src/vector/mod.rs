@@ -1,6 +1,7 @@
 //! The vector pieces around the projection kernel, on plain slices: dot and axpy (the decoder's
 //! attention), softmax rows, the exact GELU, and the residual add with its layer norm. Each has a
-//! portable body and an AVX2+FMA one, chosen by [`crate::dispatch`].
+//! portable body and an AVX2+FMA one (the layer norm and the GELU also an AVX-512F one), chosen
+//! by [`crate::dispatch`].
 
 #[cfg(test)]
 mod tests;
@@ -9,6 +10,11 @@ use crate::dispatch::active;
 
 fn use_avx2() -> bool {
     active().avx2()
+}
+
+/// Whether the active path has AVX-512F (the layer norm and the GELU then run sixteen wide).
+fn use_avx512() -> bool {
+    active() >= crate::Path::Avx512
 }
 use crate::threads::rayon_threads;
 
@@ -317,19 +323,41 @@ pub fn add_layer_norm_in_place(
 
 #[inline(always)]
 fn norm_rows(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f32], eps: f32) {
+    norm_rows_lanes::<8>(x, residual, gamma, beta, eps)
+}
+
+/// The layer norm rows with `L` partial sums, so the loops vectorise `L` wide without
+/// reordering one sum.
+#[inline(always)]
+fn norm_rows_lanes<const L: usize>(
+    x: &mut [f32],
+    residual: &[f32],
+    gamma: &[f32],
+    beta: &[f32],
+    eps: f32,
+) {
     let width = gamma.len();
     for (row, res) in x.chunks_mut(width).zip(residual.chunks(width)) {
-        // Eight partial sums, so the loop vectorises without reordering one sum.
-        let mut acc = [0f32; 8];
-        for (i, (v, r)) in row.iter_mut().zip(res).enumerate() {
+        let mut acc = [0f32; L];
+        let (whole, rest) = row.split_at_mut(width / L * L);
+        let (res_whole, res_rest) = res.split_at(width / L * L);
+        for (vs, rs) in whole.chunks_exact_mut(L).zip(res_whole.chunks_exact(L)) {
+            for l in 0..L {
+                vs[l] += rs[l];
+                acc[l] += vs[l];
+            }
+        }
+        for (l, (v, r)) in rest.iter_mut().zip(res_rest).enumerate() {
             *v += r;
-            acc[i % 8] += *v;
+            acc[l] += *v;
         }
         let mean = acc.iter().sum::<f32>() / width as f32;
-        let mut sq = [0f32; 8];
-        for (i, v) in row.iter().enumerate() {
-            let d = v - mean;
-            sq[i % 8] += d * d;
+        let mut sq = [0f32; L];
+        for vs in row.chunks(L) {
+            for (l, v) in vs.iter().enumerate() {
+                let d = v - mean;
+                sq[l] += d * d;
+            }
         }
         let inv = 1.0 / (sq.iter().sum::<f32>() / width as f32 + eps).sqrt();
         for ((v, g), b) in row.iter_mut().zip(gamma).zip(beta) {
@@ -343,8 +371,12 @@ fn norm_rows_dispatch(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f3
     {
         // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
         #[allow(unsafe_code)]
-        unsafe {
-            norm_rows_avx2(x, residual, gamma, beta, eps)
+        if use_avx512() {
+            // SAFETY: the active path has AVX-512F, so this CPU does.
+            unsafe { norm_rows_avx512(x, residual, gamma, beta, eps) }
+        } else {
+            // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
+            unsafe { norm_rows_avx2(x, residual, gamma, beta, eps) }
         }
     }
     #[cfg(not(target_arch = "x86_64"))]
@@ -357,6 +389,14 @@ fn norm_rows_dispatch(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f3
 #[target_feature(enable = "avx2,fma")]
 unsafe fn norm_rows_avx2(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f32], eps: f32) {
     norm_rows(x, residual, gamma, beta, eps)
+}
+
+/// The same loops sixteen wide, compiled for AVX-512F.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx512f,avx2,fma")]
+unsafe fn norm_rows_avx512(x: &mut [f32], residual: &[f32], gamma: &[f32], beta: &[f32], eps: f32) {
+    norm_rows_lanes::<16>(x, residual, gamma, beta, eps)
 }
 
 /// The exact (erf) GELU in place: `x <- x/2 (1 + erf(x / sqrt 2))`.
@@ -391,8 +431,12 @@ fn gelu_erf_dispatch(xs: &mut [f32]) {
     {
         // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
         #[allow(unsafe_code)]
-        unsafe {
-            gelu_erf_avx2(xs)
+        if use_avx512() {
+            // SAFETY: the active path has AVX-512F, so this CPU does.
+            unsafe { gelu_erf_avx512(xs) }
+        } else {
+            // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
+            unsafe { gelu_erf_avx2(xs) }
         }
     }
     #[cfg(not(target_arch = "x86_64"))]
@@ -405,5 +449,13 @@ fn gelu_erf_dispatch(xs: &mut [f32]) {
 #[allow(unsafe_code)]
 #[target_feature(enable = "avx2,fma")]
 unsafe fn gelu_erf_avx2(xs: &mut [f32]) {
+    gelu_erf_portable(xs)
+}
+
+/// The same loop compiled for AVX-512F: sixteen wide.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx512f,avx2,fma")]
+unsafe fn gelu_erf_avx512(xs: &mut [f32]) {
     gelu_erf_portable(xs)
 }
