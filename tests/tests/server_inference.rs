@@ -171,3 +171,142 @@ fn generate_json_answer_from_the_tiny_decoder_carries_the_reference_greedy_token
         json!({"prompt_tokens": reference.prompt_tokens, "output_tokens": 16})
     );
 }
+
+/// `end_at.texts`: the generation ends where an end text first appears in transformers' greedy
+/// output (tests/reference/generate.py), the end text and everything after it are never sent,
+/// and an end text that never completes holds nothing back for good.
+#[test]
+fn generate_ends_at_an_end_text_without_sending_it() {
+    let reference = greedy_reference();
+    let server = ServerSetup::tiny_decoder().start();
+    let ask = |end_at: serde_json::Value, stream: bool| {
+        json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 16,
+               "end_at": end_at, "stream": stream})
+    };
+    // "mechanic" is a word of the reference output; "ust mech" spans more than one token.
+    for end in ["mechanic", "ust mech"] {
+        let at = reference.text.find(end).expect("in the reference text");
+        let before = &reference.text[..at];
+
+        let answer = server
+            .post(
+                "/generate",
+                Auth::None,
+                &ask(json!({"texts": ["zzz", end]}), false),
+            )
+            .ok_json();
+        assert_eq!(answer["text"], before, "{answer}");
+        assert_eq!(answer["finish"], "end_text");
+        assert_eq!(answer["ended_by"], end);
+        let ids = answer["token_ids"].as_array().unwrap();
+        assert!(ids.len() < 16, "{answer}");
+        assert_eq!(
+            ids[..],
+            json!(reference.greedy[..ids.len()]).as_array().unwrap()[..]
+        );
+        assert_eq!(answer["counts"]["output_tokens"], ids.len());
+
+        let events = server.post_sse("/generate", Auth::None, &ask(json!({"texts": [end]}), true));
+        let (done, tokens) = events.split_last().unwrap();
+        let sent: String = tokens
+            .iter()
+            .map(|e| e.data["text"].as_str().unwrap())
+            .collect();
+        assert_eq!(sent, before, "what was streamed: {events:?}");
+        assert_eq!(done.event, "done");
+        assert_eq!(
+            (done.data["finish"].as_str(), done.data["tail"].as_str()),
+            (Some("end_text"), Some(""))
+        );
+        assert_eq!(done.data["ended_by"], end);
+    }
+
+    // "mechanics" begins where "mechanic" is but never completes: the held-back text goes out
+    // and the whole reference text arrives (streamed pieces plus the closing tail).
+    let events = server.post_sse(
+        "/generate",
+        Auth::None,
+        &ask(json!({"texts": ["mechanics"]}), true),
+    );
+    let (done, tokens) = events.split_last().unwrap();
+    let mut sent: String = tokens
+        .iter()
+        .map(|e| e.data["text"].as_str().unwrap())
+        .collect();
+    sent.push_str(done.data["tail"].as_str().unwrap());
+    assert_eq!(sent, reference.text);
+    assert_eq!(done.data["finish"], "limit");
+    assert!(done.data["ended_by"].is_null(), "{done:?}");
+}
+
+/// `end_at.token_ids`: sampling a listed token ends the generation; the token is not part of
+/// the output, which equals the same request cut by `max_tokens` just before it.
+#[test]
+fn generate_ends_at_an_end_token_and_refuses_bad_end_at_values() {
+    let reference = greedy_reference();
+    let server = ServerSetup::tiny_decoder().start();
+    let end_token = reference.greedy[7];
+    let first = reference
+        .greedy
+        .iter()
+        .position(|&t| t == end_token)
+        .unwrap();
+    let answer = server
+        .post(
+            "/generate",
+            Auth::None,
+            &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 16,
+                    "end_at": {"token_ids": [end_token]}}),
+        )
+        .ok_json();
+    let cut = server
+        .post(
+            "/generate",
+            Auth::None,
+            &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": first}),
+        )
+        .ok_json();
+    assert_eq!(answer["token_ids"], json!(reference.greedy[..first]));
+    assert_eq!(answer["text"], cut["text"]);
+    assert_eq!(answer["finish"], "end_token");
+    assert_eq!(answer["ended_by"], end_token);
+    assert_eq!(answer["counts"]["output_tokens"], first);
+
+    let bad = |end_at: serde_json::Value| {
+        server.post(
+            "/generate",
+            Auth::None,
+            &json!({"adapter": "base", "prompt": reference.prompt, "end_at": end_at}),
+        )
+    };
+    let reply = bad(json!({"texts": ["ok", ""]}));
+    reply.assert_error(400, "invalid_end_at");
+    assert!(
+        reply.body.contains("end_at.texts[1] is 0 bytes"),
+        "{}",
+        reply.body
+    );
+    let reply = bad(json!({"token_ids": [3, 4_000_000]}));
+    reply.assert_error(400, "invalid_end_at");
+    assert!(
+        reply.body.contains("end_at.token_ids[1] is 4000000"),
+        "{}",
+        reply.body
+    );
+    let reply = bad(json!({"texts": vec!["a"; 9]}));
+    reply.assert_error(400, "invalid_end_at");
+    let reply = bad(json!({"words": ["a"]}));
+    assert_eq!(reply.status, 400, "{}", reply.body);
+    assert!(reply.body.contains("words"), "{}", reply.body);
+    // The server still answers.
+    assert_eq!(
+        server
+            .post(
+                "/generate",
+                Auth::None,
+                &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 2})
+            )
+            .ok_json()["finish"],
+        "limit"
+    );
+}

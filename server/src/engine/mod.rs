@@ -16,6 +16,7 @@
 //! went away is dropped with its KV cache at the next step.
 
 pub mod detok;
+pub mod end_at;
 pub mod policy;
 pub mod queue;
 pub mod quota;
@@ -244,7 +245,11 @@ pub enum GenEvent {
     },
     Done {
         finish: &'static str,
-        /// The whole output decoded at once: what the non-streamed answer returns.
+        /// The end text or end token id that ended the generation (`finish` is `end_text` or
+        /// `end_token`).
+        ended_by: Option<serde_json::Value>,
+        /// The whole output decoded at once (cut before an end text that ended it): what the
+        /// non-streamed answer returns.
         text: String,
         /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
         /// back in case the next token completed it (usually empty).
@@ -264,6 +269,8 @@ pub struct GenerateJob {
     pub adapter: Option<AdapterHandle>,
     pub sampling: SamplingParams,
     pub limit: usize,
+    /// Texts and token ids that end the generation (not part of its output).
+    pub end_at: end_at::EndAt,
     pub admitted: Instant,
     pub swap: Duration,
     pub deadline: Instant,
@@ -760,6 +767,7 @@ impl Worker {
             last: 0,
             detok: Detokenizer::new(),
             sent_text: String::new(),
+            holder: end_at::Holder::default(),
             started,
             first_token: None,
             job,
@@ -849,6 +857,8 @@ struct Sequence {
     /// The output so far (end-of-sequence token excluded) and its streamed text.
     detok: Detokenizer,
     sent_text: String,
+    /// Decoded text held back while it may be the start of an end text.
+    holder: end_at::Holder,
     started: Instant,
     first_token: Option<Duration>,
 }
@@ -868,18 +878,32 @@ impl Sequence {
             self.finish("eos", g, metrics);
             return false;
         }
+        if self.job.end_at.token_ids.contains(&token) {
+            self.end(("end_token", token.into()), None, g, metrics);
+            return false;
+        }
         let decode = |ids: &[u32]| g.decode(ids).unwrap_or_default();
         let delta = self.detok.push(token, &decode);
-        self.sent_text.push_str(&delta);
+        let (send, ended) = match self.holder.push(&self.job.end_at.texts, &delta) {
+            end_at::Step::Send(send) => (send, None),
+            end_at::Step::End { send, index } => (send, Some(index)),
+        };
+        self.sent_text.push_str(&send);
         if self
             .job
             .events
             .send(GenEvent::Token {
                 id: token,
-                text: delta,
+                text: send,
             })
             .is_err()
         {
+            return false;
+        }
+        if let Some(index) = ended {
+            let text = self.job.end_at.texts[index].clone();
+            let sent = self.sent_text.clone();
+            self.end(("end_text", text.into()), Some(sent), g, metrics);
             return false;
         }
         if self.detok.ids().len() >= self.job.limit {
@@ -890,11 +914,24 @@ impl Sequence {
     }
 
     fn finish(&self, reason: &'static str, g: &Generator, metrics: &Metrics) {
+        self.end((reason, serde_json::Value::Null), None, g, metrics)
+    }
+
+    /// Sends the `Done` event: `text` is the output when an end text cut it (what was sent),
+    /// otherwise the whole output decoded at once.
+    fn end(
+        &self,
+        (reason, ended_by): (&'static str, serde_json::Value),
+        text: Option<String>,
+        g: &Generator,
+        metrics: &Metrics,
+    ) {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
-        let text = g.decode(self.detok.ids()).unwrap_or_default();
+        let text = text.unwrap_or_else(|| g.decode(self.detok.ids()).unwrap_or_default());
         let _ = self.job.events.send(GenEvent::Done {
             finish: reason,
+            ended_by: (!ended_by.is_null()).then_some(ended_by),
             tail: unsent_tail(&text, &self.sent_text),
             text,
             prompt_tokens: self.job.prompt_ids.len(),

@@ -17,6 +17,7 @@ use serde_json::{Value, json};
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
+use crate::engine::end_at::EndAt;
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
 use crate::experiments::responses::Receipt;
 use crate::http::auth::Tenant;
@@ -536,6 +537,56 @@ pub struct GenerateBody {
     pub seed: Option<u64>,
     #[serde(default)]
     pub stream: bool,
+    /// Texts and token ids that end the generation; neither is part of the output.
+    pub end_at: Option<EndAtBody>,
+}
+
+/// `end_at` in a generate request.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct EndAtBody {
+    #[serde(default)]
+    pub texts: Vec<String>,
+    #[serde(default)]
+    pub token_ids: Vec<u32>,
+}
+
+/// The most end texts one request may give, and the longest one in bytes.
+pub const MAX_END_TEXTS: usize = 8;
+pub const MAX_END_TEXT_BYTES: usize = 256;
+/// The most end token ids one request may give.
+pub const MAX_END_TOKENS: usize = 32;
+
+impl EndAtBody {
+    /// The request's end texts and token ids, checked (token ids against the vocabulary later,
+    /// when the model is known).
+    pub fn check(&self) -> Result<EndAt, ApiError> {
+        let bad = |m: String| ApiError::bad_request("invalid_end_at", m);
+        if self.texts.len() > MAX_END_TEXTS {
+            return Err(bad(format!(
+                "end_at.texts has {} texts; the limit is {MAX_END_TEXTS}",
+                self.texts.len()
+            )));
+        }
+        for (i, t) in self.texts.iter().enumerate() {
+            if t.is_empty() || t.len() > MAX_END_TEXT_BYTES {
+                return Err(bad(format!(
+                    "end_at.texts[{i}] is {} bytes; expected 1 to {MAX_END_TEXT_BYTES}",
+                    t.len()
+                )));
+            }
+        }
+        if self.token_ids.len() > MAX_END_TOKENS {
+            return Err(bad(format!(
+                "end_at.token_ids has {} ids; the limit is {MAX_END_TOKENS}",
+                self.token_ids.len()
+            )));
+        }
+        Ok(EndAt {
+            texts: self.texts.clone(),
+            token_ids: self.token_ids.clone(),
+        })
+    }
 }
 
 impl GenerateBody {
@@ -560,6 +611,9 @@ impl GenerateBody {
             .validate()
             .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
         check_text_bytes(bounds, "prompt", &self.prompt)?;
+        if let Some(end_at) = &self.end_at {
+            end_at.check()?;
+        }
         Ok((limit, sampling))
     }
 }
@@ -601,6 +655,7 @@ async fn whole_answer(
             Some(GenEvent::Token { id: t, .. }) => tokens.push(t),
             Some(GenEvent::Done {
                 finish: reason,
+                ended_by,
                 text,
                 prompt_tokens,
                 output_tokens,
@@ -615,6 +670,7 @@ async fn whole_answer(
                     "text": text,
                     "token_ids": tokens,
                     "finish": reason,
+                    "ended_by": ended_by,
                     "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
                     "elapsed_ms": elapsed_json(&timings),
                 }))
@@ -648,6 +704,27 @@ async fn start_generation(
         ));
     };
     let (limit, sampling) = body.check(&state.bounds)?;
+    let end_at = body
+        .end_at
+        .as_ref()
+        .map(EndAtBody::check)
+        .transpose()?
+        .unwrap_or_default();
+    let vocab = g.model().config.vocab_size;
+    if let Some((i, id)) = end_at
+        .token_ids
+        .iter()
+        .enumerate()
+        .find(|&(_, &id)| id as usize >= vocab)
+    {
+        return Err(ApiError::bad_request(
+            "invalid_end_at",
+            format!(
+                "end_at.token_ids[{i}] is {id}; this model's token ids are 0 to {}",
+                vocab - 1
+            ),
+        ));
+    }
     // A tenant whose share of the queue is full is refused before its prompt is tokenised.
     state.engine.check_room(tenant.index)?;
     let positions = g.model().config.max_position_embeddings;
@@ -688,6 +765,7 @@ async fn start_generation(
             adapter: a.adapter,
             sampling,
             limit,
+            end_at,
             admitted: a.admitted,
             swap: a.swap,
             deadline: a.deadline,
@@ -714,6 +792,7 @@ fn stream_answer(
                     .json_data(json!({"text": text, "token_id": t})),
                 GenEvent::Done {
                     finish: reason,
+                    ended_by,
                     tail,
                     prompt_tokens,
                     output_tokens,
@@ -727,6 +806,7 @@ fn stream_answer(
                         "served_by": routed.served_by,
                         "split": arm_json(&routed),
                         "finish": reason,
+                        "ended_by": ended_by,
                         "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
                         "elapsed_ms": elapsed_json(&timings),
                     }));
