@@ -310,3 +310,48 @@ fn generate_ends_at_an_end_token_and_refuses_bad_end_at_values() {
         "limit"
     );
 }
+
+/// A prompt over `bounds.prompt_tokens`, or a prompt plus `max_tokens` over the model's
+/// positions (the tiny decoder has 128), is refused with a message that names the limit and
+/// by how much it was exceeded; the server then answers normally.
+#[test]
+fn generate_over_a_token_limit_says_which_limit_and_by_how_much() {
+    let reference = greedy_reference();
+    let n = reference.prompt_tokens;
+    let server = ServerSetup::tiny_decoder()
+        .set("bounds", "prompt_tokens", &(n - 3).to_string())
+        .start();
+    let reply = server.post(
+        "/generate",
+        Auth::None,
+        &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 4}),
+    );
+    reply.assert_error(413, "too_many_tokens");
+    let want = format!(
+        "the prompt is {n} tokens, 3 over this server's limit of {} (bounds.prompt_tokens)",
+        n - 3
+    );
+    assert!(reply.body.contains(&want), "{}", reply.body);
+
+    let server = ServerSetup::tiny_decoder().start();
+    let max_tokens = 128 - n + 5;
+    let reply = server.post(
+        "/generate",
+        Auth::None,
+        &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": max_tokens}),
+    );
+    reply.assert_error(413, "too_many_tokens");
+    let want = format!(
+        "plus max_tokens ({max_tokens}) is 133 tokens, 5 over the model's context of 128 positions; lower max_tokens to {} or less",
+        128 - n
+    );
+    assert!(reply.body.contains(&want), "{}", reply.body);
+    let ok = server
+        .post(
+            "/generate",
+            Auth::None,
+            &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 128 - n}),
+        )
+        .ok_json();
+    assert_eq!(ok["counts"]["output_tokens"], 128 - n);
+}

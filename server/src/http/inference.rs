@@ -743,13 +743,24 @@ async fn start_generation(
             "the prompt gives no tokens",
         ));
     }
-    let bound = state.bounds.prompt_tokens;
-    if prompt_ids.len() > bound || prompt_ids.len() + limit > positions {
+    let (bound, n) = (state.bounds.prompt_tokens, prompt_ids.len());
+    if n > bound {
         return Err(too_large(
             "too_many_tokens",
             format!(
-                "the prompt is {} tokens; the limit is {bound}, and the prompt plus max_tokens ({limit}) must fit the model's {positions} positions",
-                prompt_ids.len(),
+                "the prompt is {n} tokens, {} over this server's limit of {bound} (bounds.prompt_tokens)",
+                n - bound
+            ),
+        ));
+    }
+    if n + limit > positions {
+        return Err(too_large(
+            "too_many_tokens",
+            format!(
+                "the prompt ({n} tokens) plus max_tokens ({limit}) is {} tokens, {} over the model's context of {positions} positions; lower max_tokens to {} or less",
+                n + limit,
+                n + limit - positions,
+                positions.saturating_sub(n),
             ),
         ));
     }
