@@ -9,7 +9,7 @@
 //! - a refused body is a 400 or a 413 with one of the endpoint's documented codes;
 //! - a body that passes has its fields in range: 1 to `texts_per_request` texts, each at most
 //!   `text_bytes`; `max_tokens` 1 to `generated_tokens` (64 or the bound when absent), a prompt
-//!   of at most `text_bytes`, temperature finite in [0, 100], top-p
+//!   or (exclusively) messages of at most `text_bytes`, temperature finite in [0, 100], top-p
 //!   finite in (0, 1]; an outcome lands in exactly one tally, a number finite, and a refused one
 //!   in none;
 //! - a split that passes has a valid name, 1 to 16 arms with unique valid names, finite weights
@@ -138,7 +138,16 @@ fn generate(body: &[u8], limits: &Bounds) {
             if body.max_tokens.is_none() {
                 assert_eq!(max_tokens, 64.min(limits.generated_tokens));
             }
-            assert!(body.prompt.len() <= limits.text_bytes);
+            // Exactly one of prompt and messages, within the byte bound.
+            match (&body.prompt, &body.messages) {
+                (Some(p), None) => assert!(p.len() <= limits.text_bytes),
+                (None, Some(m)) => {
+                    assert!(!m.is_empty());
+                    let bytes: usize = m.iter().map(|m| m.role.len() + m.content.len()).sum();
+                    assert!(bytes <= limits.text_bytes);
+                }
+                other => panic!("passed with prompt and messages {other:?}"),
+            }
             if let Some(t) = sampling.temperature {
                 assert!(
                     t.is_finite() && (0.0..=100.0).contains(&t),
@@ -150,7 +159,13 @@ fn generate(body: &[u8], limits: &Bounds) {
         }
         Err(e) => refused(
             &e,
-            &["invalid_max_tokens", "invalid_sampling", "text_too_large"],
+            &[
+                "invalid_max_tokens",
+                "invalid_sampling",
+                "text_too_large",
+                "invalid_messages",
+                "invalid_end_at",
+            ],
         ),
     }
 }

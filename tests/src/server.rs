@@ -46,7 +46,8 @@ impl ServerSetup {
         Self::with_model(fixtures().join("tiny-llama"))
     }
 
-    fn with_model(model_dir: PathBuf) -> Self {
+    /// A server of the model in `model_dir` (a folder the test made, say).
+    pub fn with_model(model_dir: PathBuf) -> Self {
         Self {
             model_dir,
             settings: BTreeMap::new(),

@@ -355,3 +355,103 @@ fn generate_over_a_token_limit_says_which_limit_and_by_how_much() {
         .ok_json();
     assert_eq!(ok["counts"]["output_tokens"], 128 - n);
 }
+
+/// The tiny decoder with a chat template in its tokenizer_config.json (the file and the
+/// expected renderings from tests/reference/chat.py, run through transformers'
+/// `apply_chat_template` and LlamaForCausalLM): `messages` in a generate request are rendered
+/// with the generation prompt added, tokenised as transformers does (the same prompt token
+/// count) and continued with transformers' greedy tokens; a role the template refuses is a 400
+/// with the template's own message; a model without a template refuses messages.
+#[test]
+fn generate_with_messages_renders_the_checkpoints_chat_template_like_transformers() {
+    let fx = read_json(&fixtures().join("tiny-llama-chat.json"));
+    let dir = tempfile::tempdir().unwrap();
+    let model = dir.path().join("tiny-llama-chat");
+    std::fs::create_dir(&model).unwrap();
+    for entry in std::fs::read_dir(fixtures().join("tiny-llama")).unwrap() {
+        let entry = entry.unwrap();
+        std::fs::copy(entry.path(), model.join(entry.file_name())).unwrap();
+    }
+    std::fs::write(
+        model.join("tokenizer_config.json"),
+        serde_json::to_string_pretty(&fx["tokenizer_config"]).unwrap(),
+    )
+    .unwrap();
+    let server = ServerSetup::with_model(model).start();
+    for case in fx["cases"].as_array().unwrap() {
+        let greedy = case["greedy"].as_array().unwrap();
+        let answer = server
+            .post(
+                "/generate",
+                Auth::None,
+                &json!({"adapter": "base", "messages": case["messages"], "max_tokens": greedy.len()}),
+            )
+            .ok_json();
+        assert_eq!(
+            answer["counts"]["prompt_tokens"],
+            case["prompt_ids"].as_array().unwrap().len(),
+            "rendered by transformers as {}",
+            case["rendered"]
+        );
+        assert_eq!(answer["token_ids"], case["greedy"], "{}", case["rendered"]);
+    }
+
+    let reply = server.post(
+        "/generate",
+        Auth::None,
+        &json!({"adapter": "base", "messages": [{"role": "tool", "content": "x"}]}),
+    );
+    reply.assert_error(400, "invalid_messages");
+    assert!(
+        reply
+            .body
+            .contains("roles are system, user and assistant; got tool"),
+        "{}",
+        reply.body
+    );
+    assert!(
+        fx["refusal_of_role_tool"]
+            .as_str()
+            .unwrap()
+            .contains("roles are system, user and assistant; got tool"),
+        "transformers refused with the same words"
+    );
+    for (body, code) in [
+        (
+            json!({"adapter": "base", "messages": []}),
+            "invalid_messages",
+        ),
+        (
+            json!({"adapter": "base", "prompt": "a", "messages": [{"role": "user", "content": "b"}]}),
+            "invalid_messages",
+        ),
+        (json!({"adapter": "base"}), "invalid_messages"),
+        (
+            json!({"adapter": "base", "messages": [{"role": "user", "text": "b"}]}),
+            "invalid_field",
+        ),
+    ] {
+        server
+            .post("/generate", Auth::None, &body)
+            .assert_error(400, code);
+    }
+
+    let plain = ServerSetup::tiny_decoder().start();
+    let reply = plain.post(
+        "/generate",
+        Auth::None,
+        &json!({"adapter": "base", "messages": [{"role": "user", "content": "hello"}]}),
+    );
+    reply.assert_error(400, "no_chat_template");
+    // Both servers still answer.
+    for s in [&server, &plain] {
+        let ok = s
+            .post(
+                "/generate",
+                Auth::None,
+                &json!({"adapter": "base", "prompt": "a wheel", "max_tokens": 2}),
+            )
+            .ok_json();
+        assert_eq!(ok["counts"]["output_tokens"], 2);
+    }
+}

@@ -24,6 +24,7 @@ use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::http::{Bounds, SharedState};
+use crate::model::chat::ChatMessage;
 use crate::model::sampling::SamplingParams;
 
 /// Who serves a request, fixed at admission.
@@ -530,7 +531,10 @@ pub struct GenerateBody {
     pub adapter: Option<String>,
     pub split: Option<String>,
     pub subject: Option<String>,
-    pub prompt: String,
+    /// The prompt text, or (instead) `messages`.
+    pub prompt: Option<String>,
+    /// A conversation, rendered with the checkpoint's chat template.
+    pub messages: Option<Vec<ChatMessage>>,
     pub max_tokens: Option<usize>,
     pub temperature: Option<f64>,
     pub top_p: Option<f64>,
@@ -554,6 +558,8 @@ pub struct EndAtBody {
 /// The most end texts one request may give, and the longest one in bytes.
 pub const MAX_END_TEXTS: usize = 8;
 pub const MAX_END_TEXT_BYTES: usize = 256;
+/// The most messages one generate request may give.
+pub const MAX_MESSAGES: usize = 256;
 /// The most end token ids one request may give.
 pub const MAX_END_TOKENS: usize = 32;
 
@@ -610,7 +616,45 @@ impl GenerateBody {
         sampling
             .validate()
             .map_err(|m| ApiError::bad_request("invalid_sampling", m))?;
-        check_text_bytes(bounds, "prompt", &self.prompt)?;
+        match (&self.prompt, &self.messages) {
+            (Some(prompt), None) => check_text_bytes(bounds, "prompt", prompt)?,
+            (None, Some(messages)) => {
+                if messages.is_empty() || messages.len() > MAX_MESSAGES {
+                    return Err(ApiError::bad_request(
+                        "invalid_messages",
+                        format!(
+                            "messages has {} entries; expected 1 to {MAX_MESSAGES}",
+                            messages.len()
+                        ),
+                    ));
+                }
+                let bytes: usize = messages
+                    .iter()
+                    .map(|m| m.role.len() + m.content.len())
+                    .sum();
+                if bytes > bounds.text_bytes {
+                    return Err(too_large(
+                        "text_too_large",
+                        format!(
+                            "messages are {bytes} bytes (roles and contents); the limit is {} bytes",
+                            bounds.text_bytes
+                        ),
+                    ));
+                }
+            }
+            (Some(_), Some(_)) => {
+                return Err(ApiError::bad_request(
+                    "invalid_messages",
+                    "give either prompt or messages, not both",
+                ));
+            }
+            (None, None) => {
+                return Err(ApiError::bad_request(
+                    "invalid_messages",
+                    "give a prompt (text) or messages (a list of role and content)",
+                ));
+            }
+        }
         if let Some(end_at) = &self.end_at {
             end_at.check()?;
         }
@@ -729,14 +773,37 @@ async fn start_generation(
     state.engine.check_room(tenant.index)?;
     let positions = g.model().config.max_position_embeddings;
     let backbone = state.backbone.clone();
-    let prompt = body.prompt;
-    let prompt_ids = off_the_runtime(move || {
-        let Backbone::Decoder(g) = &*backbone else {
-            unreachable!("checked above")
-        };
-        g.encode(&prompt)
-    })
-    .await?;
+    let prompt_ids = match (body.prompt, body.messages) {
+        (Some(prompt), _) => {
+            off_the_runtime(move || {
+                let Backbone::Decoder(g) = &*backbone else {
+                    unreachable!("checked above")
+                };
+                g.encode(&prompt)
+            })
+            .await?
+        }
+        (None, messages) => {
+            let messages = messages.unwrap_or_default();
+            if g.chat_template().is_none() {
+                return Err(ApiError::bad_request(
+                    "no_chat_template",
+                    "this model has no chat template (no chat_template.jinja, and no chat_template in its tokenizer_config.json): send a prompt instead of messages",
+                ));
+            }
+            let rendered = off_the_runtime(move || {
+                let Backbone::Decoder(g) = &*backbone else {
+                    unreachable!("checked above")
+                };
+                let template = g.chat_template().expect("checked above");
+                Ok(template
+                    .render(&messages)
+                    .and_then(|text| g.encode_rendered(&text).map_err(|e| e.to_string())))
+            })
+            .await?;
+            rendered.map_err(|m| ApiError::bad_request("invalid_messages", m))?
+        }
+    };
     if prompt_ids.is_empty() {
         return Err(ApiError::bad_request(
             "empty_prompt",

@@ -31,6 +31,8 @@ pub struct Generator {
     tokenizer: Tokenizer,
     spec: BaseSpec,
     format: WeightFormat,
+    /// The checkpoint's chat template, where it has one.
+    chat: Option<crate::model::chat::ChatTemplate>,
 }
 
 impl Generator {
@@ -50,11 +52,13 @@ impl Generator {
         let fingerprint = base_fingerprint(ckpt.model_type(), &ckpt.tensor_shapes());
         let spec = model.spec(ckpt.model_type(), fingerprint);
         let tokenizer = load_tokenizer(&ckpt.tokenizer_path())?;
+        let chat = crate::model::chat::ChatTemplate::load(dir)?;
         Ok(Self {
             model,
             tokenizer,
             spec,
             format,
+            chat,
         })
     }
 
@@ -76,6 +80,20 @@ impl Generator {
             .tokenizer
             .encode(text, true)
             .map_err(|e| anyhow::anyhow!("tokenising the prompt: {e}"))?;
+        Ok(enc.get_ids().to_vec())
+    }
+
+    /// The checkpoint's chat template, where it has one.
+    pub fn chat_template(&self) -> Option<&crate::model::chat::ChatTemplate> {
+        self.chat.as_ref()
+    }
+
+    /// Token ids of a rendered chat prompt: no special tokens added (the template wrote them).
+    pub fn encode_rendered(&self, text: &str) -> anyhow::Result<Vec<u32>> {
+        let enc = self
+            .tokenizer
+            .encode(text, false)
+            .map_err(|e| anyhow::anyhow!("tokenising the rendered chat prompt: {e}"))?;
         Ok(enc.get_ids().to_vec())
     }
 

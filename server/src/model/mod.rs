@@ -2,6 +2,7 @@
 //! adapter-aware linear layer both use, checkpoint loading and sampling.
 
 pub mod bert;
+pub mod chat;
 pub mod checkpoint;
 pub mod classify;
 pub mod embedder;
