@@ -623,6 +623,22 @@ fn tiny_llama_with_biases_tied_embeddings_and_top_level_rope_theta_matches_trans
     decoder("tiny-llama-bias-tied").check_against_transformers();
 }
 
+/// Mistral (tests/reference/families.py, transformers' MistralForCausalLM): a sliding window of
+/// 6 positions, shorter than the 11-token input and the 14-token prompt, so the logits (1e-3)
+/// and all 16 greedy tokens hold only if the window is honoured (without it transformers'
+/// logits move by up to 10.9); with and without an adapter on all seven projections.
+#[test]
+fn tiny_mistral_with_its_sliding_window_matches_transformers() {
+    decoder("tiny-mistral").check_against_transformers();
+}
+
+/// Qwen2 (tests/reference/families.py, transformers' Qwen2ForCausalLM): biases on q, k and v
+/// but not o, rope theta 1e6; with and without an adapter on all seven projections.
+#[test]
+fn tiny_qwen2_with_its_qkv_biases_matches_transformers() {
+    decoder("tiny-qwen2").check_against_transformers();
+}
+
 /// The tiny decoders with their weights held in bf16, int8 and int4, against transformers' f32
 /// logits and greedy tokens (tiny-llama*-reference.json). Held to the least cosine, position by
 /// position, between the logit rows (floors set under the least measured over both models:

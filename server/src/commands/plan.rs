@@ -64,11 +64,11 @@ fn field(config: &serde_json::Value, key: &str, file: &Path) -> anyhow::Result<u
         .with_context(|| format!("{} has no `{key}` (a whole number)", file.display()))
 }
 
-/// Shapes of every adaptable matrix of a bert or llama config (the layouts our encoder and
+/// Shapes of every adaptable matrix of a bert or llama-family config (the layouts our encoder and
 /// decoder runtimes build).
 pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Result<ConfigShapes> {
     let kind = model_type(config, file)?;
-    if !matches!(kind.as_str(), "bert" | "llama") {
+    if !matches!(kind.as_str(), "bert" | "llama" | "mistral" | "qwen2") {
         bail!(
             "{} has model_type {kind:?}; switchyard plans for {KNOWN_MODEL_TYPES}",
             file.display()
@@ -86,7 +86,7 @@ pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Re
             shapes.insert(Module::MlpUp, (inter, hidden));
             shapes.insert(Module::MlpDown, (hidden, inter));
         }
-        "llama" => {
+        "llama" | "mistral" | "qwen2" => {
             let heads = field(config, "num_attention_heads", file)?;
             let kv_heads = match config.get("num_key_value_heads") {
                 Some(serde_json::Value::Null) | None => heads,

@@ -82,7 +82,7 @@ pub fn load_backbone(dir: &Path, format: WeightFormat) -> anyhow::Result<Backbon
         "bert" => Ok(Backbone::Encoder(Embedder::load_as(dir, format)?)),
         "llama" | "mistral" | "qwen2" => Ok(Backbone::Decoder(Generator::load_as(dir, format)?)),
         other => anyhow::bail!(
-            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama and its relatives)",
+            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama, mistral, qwen2)",
             config.display()
         ),
     }

@@ -82,7 +82,30 @@ pub struct LlamaConfig {
     pub bos_token_id: Option<TokenIds>,
     #[serde(default)]
     pub eos_token_id: Option<TokenIds>,
+    /// `llama`, `mistral` or `qwen2` (the relatives this runtime implements).
+    #[serde(default = "default_model_type")]
+    pub model_type: String,
+    #[serde(default)]
+    pub hidden_act: Option<String>,
+    /// Attention over at most this many positions (the query's own included), on the layers
+    /// that slide (Mistral: every layer; Qwen2: per `use_sliding_window`, `max_window_layers`;
+    /// any family: per `layer_types` where the config lists them).
+    #[serde(default)]
+    pub sliding_window: Option<usize>,
+    #[serde(default)]
+    pub use_sliding_window: Option<bool>,
+    #[serde(default)]
+    pub max_window_layers: Option<usize>,
+    #[serde(default)]
+    pub layer_types: Option<Vec<String>>,
 }
+
+fn default_model_type() -> String {
+    "llama".into()
+}
+
+/// The `model_type`s the decoder runtime implements.
+pub const DECODER_TYPES: [&str; 3] = ["llama", "mistral", "qwen2"];
 
 fn default_rms_eps() -> f64 {
     1e-6
@@ -114,6 +137,69 @@ impl LlamaConfig {
         self.rope_theta
             .or(self.rope().rope_theta)
             .unwrap_or(10_000.0)
+    }
+
+    /// Refuses what this runtime does not implement, naming the config field.
+    pub fn check_supported(&self) -> Result<()> {
+        if !DECODER_TYPES.contains(&self.model_type.as_str()) {
+            candle_core::bail!(
+                "config.json: model_type {:?} is not a decoder switchyard runs (supported: {})",
+                self.model_type,
+                DECODER_TYPES.join(", ")
+            );
+        }
+        if let Some(act) = self.hidden_act.as_deref()
+            && act != "silu"
+        {
+            candle_core::bail!(
+                "config.json: hidden_act {act:?} is not supported for model_type {:?} (supported: silu)",
+                self.model_type
+            );
+        }
+        if self.sliding_window == Some(0) {
+            candle_core::bail!("config.json: sliding_window 0 leaves nothing to attend to");
+        }
+        self.windows().map(|_| ())
+    }
+
+    /// Each layer's attention window (`None`: every earlier position).
+    pub fn windows(&self) -> Result<Vec<Option<usize>>> {
+        let layers = self.num_hidden_layers;
+        if let Some(types) = &self.layer_types {
+            if types.len() != layers {
+                candle_core::bail!(
+                    "config.json: layer_types lists {} layers; num_hidden_layers is {layers}",
+                    types.len()
+                );
+            }
+            return types
+                .iter()
+                .enumerate()
+                .map(|(i, t)| match (t.as_str(), self.sliding_window) {
+                    ("full_attention", _) => Ok(None),
+                    ("sliding_attention", Some(w)) => Ok(Some(w)),
+                    ("sliding_attention", None) => candle_core::bail!(
+                        "config.json: layer_types[{i}] is sliding_attention but sliding_window is not set"
+                    ),
+                    (other, _) => candle_core::bail!(
+                        "config.json: layer_types[{i}] {other:?} is not supported (supported: full_attention, sliding_attention)"
+                    ),
+                })
+                .collect();
+        }
+        Ok(match self.model_type.as_str() {
+            "mistral" => vec![self.sliding_window; layers],
+            // Qwen2 configs without layer_types: the layers from max_window_layers on slide
+            // when use_sliding_window is set (what transformers 5.24's Qwen2Config derives for
+            // its layer_types; checked with that library).
+            "qwen2" if self.use_sliding_window == Some(true) => {
+                let from = self.max_window_layers.unwrap_or(0);
+                (0..layers)
+                    .map(|i| if i >= from { self.sliding_window } else { None })
+                    .collect()
+            }
+            _ => vec![None; layers],
+        })
     }
 
     pub fn eos_ids(&self) -> Vec<u32> {
@@ -312,10 +398,17 @@ struct Block {
     heads: usize,
     kv_heads: usize,
     head_dim: usize,
+    /// Positions a query attends to at most (its own included); `None`: all earlier ones.
+    window: Option<usize>,
 }
 
 impl Block {
-    fn new(cfg: &LlamaConfig, layer: usize, vb: &Weights<'_>) -> Result<Self> {
+    fn new(
+        cfg: &LlamaConfig,
+        layer: usize,
+        window: Option<usize>,
+        vb: &Weights<'_>,
+    ) -> Result<Self> {
         let h = cfg.hidden_size;
         let d = cfg.head_dim();
         let q_out = cfg.num_attention_heads * d;
@@ -337,6 +430,7 @@ impl Block {
             heads: cfg.num_attention_heads,
             kv_heads: cfg.kv_heads(),
             head_dim: d,
+            window,
         })
     }
 
@@ -377,7 +471,7 @@ impl Block {
             lc.write(past, &k[span.clone()], &v[span], hkv, d);
         }
         let caches: Vec<&KvCache> = caches.iter().map(|c| &**c).collect();
-        let attn = attention(&q, spans, &caches, layer, hq, hkv, d);
+        let attn = attention(&q, spans, &caches, layer, (hq, hkv, d), self.window);
         let attn = Tensor::from_vec(attn, (rows, hq * d), x.device())?;
         let x = (x + self.o.forward(&attn, adapters)?)?;
         let h = self.post_norm.forward(&x)?;
@@ -395,9 +489,8 @@ fn attention(
     spans: &[(usize, usize)],
     caches: &[&KvCache],
     layer: usize,
-    hq: usize,
-    hkv: usize,
-    d: usize,
+    (hq, hkv, d): (usize, usize, usize),
+    window: Option<usize>,
 ) -> Vec<f32> {
     use rayon::prelude::*;
     let rows = q.len() / (hq * d);
@@ -421,9 +514,11 @@ fn attention(
                 let row = start + j;
                 let qr = &q[(row * hq + h) * d..(row * hq + h + 1) * d];
                 let seen = past + j + 1;
-                let s = &mut scores[..seen];
+                // With a window, the query sees only the last `w` positions, its own included.
+                let first = window.map_or(0, |w| seen.saturating_sub(w));
+                let s = &mut scores[..seen - first];
                 let mut max = f32::NEG_INFINITY;
-                for (l, sl) in s.iter_mut().enumerate() {
+                for (l, sl) in (first..).zip(s.iter_mut()) {
                     *sl = dot(qr, &keys[l * d..(l + 1) * d]) * scale;
                     max = max.max(*sl);
                 }
@@ -434,7 +529,7 @@ fn attention(
                 }
                 let o = &mut out[row * d..(row + 1) * d];
                 o.fill(0.0);
-                for (l, &p) in s.iter().enumerate() {
+                for (l, &p) in (first..).zip(s.iter()) {
                     axpy(o, p / sum, &values[l * d..(l + 1) * d]);
                 }
             }
@@ -497,11 +592,15 @@ impl LlamaModel {
                 cfg.kv_heads()
             );
         }
+        cfg.check_supported()?;
         let m = vb.pp("model");
         let (vocab, h) = (cfg.vocab_size, cfg.hidden_size);
         let embed = Arc::new(m.pp("embed_tokens").packed("weight", vocab, h)?);
-        let blocks = (0..cfg.num_hidden_layers)
-            .map(|i| Block::new(cfg, i, &m.pp(format!("layers.{i}"))))
+        let blocks = cfg
+            .windows()?
+            .into_iter()
+            .enumerate()
+            .map(|(i, w)| Block::new(cfg, i, w, &m.pp(format!("layers.{i}"))))
             .collect::<Result<Vec<_>>>()?;
         let norm = rms_norm(h, cfg.rms_norm_eps, &m.pp("norm"))?;
         let lm_head = if cfg.tie_word_embeddings {
@@ -817,5 +916,76 @@ mod tests {
         assert!(max_abs(&together[0], &alone_a[0]) < 1e-5);
         assert!(max_abs(&together[1], &alone_b[0]) < 1e-5);
         assert_eq!((ca.len(), cb.len()), (71, 8));
+    }
+
+    fn config(extra: serde_json::Value) -> LlamaConfig {
+        let mut v = serde_json::json!({
+            "vocab_size": 8, "hidden_size": 8, "intermediate_size": 8,
+            "num_hidden_layers": 3, "num_attention_heads": 2,
+        });
+        v.as_object_mut()
+            .unwrap()
+            .extend(extra.as_object().unwrap().clone());
+        serde_json::from_value(v).unwrap()
+    }
+
+    fn refusal(extra: serde_json::Value) -> String {
+        config(extra).check_supported().unwrap_err().to_string()
+    }
+
+    #[test]
+    fn unsupported_config_values_are_refused_naming_the_field() {
+        assert!(refusal(serde_json::json!({"model_type": "gpt2"})).contains("model_type \"gpt2\""));
+        assert!(
+            refusal(serde_json::json!({"model_type": "mistral", "hidden_act": "gelu"}))
+                .contains("hidden_act \"gelu\"")
+        );
+        assert!(
+            refusal(serde_json::json!({"layer_types": ["full_attention", "chunked_attention", "full_attention"]}))
+                .contains("layer_types[1] \"chunked_attention\"")
+        );
+        assert!(
+            refusal(serde_json::json!({"layer_types": ["full_attention"]}))
+                .contains("layer_types lists 1 layers; num_hidden_layers is 3")
+        );
+        assert!(
+            refusal(serde_json::json!({"layer_types": ["full_attention", "sliding_attention", "full_attention"]}))
+                .contains("layer_types[1] is sliding_attention but sliding_window is not set")
+        );
+        assert!(refusal(serde_json::json!({"sliding_window": 0})).contains("sliding_window 0"));
+    }
+
+    #[test]
+    fn each_family_reads_its_windows_from_its_own_fields() {
+        let w = |extra| config(extra).windows().unwrap();
+        assert_eq!(
+            w(serde_json::json!({"sliding_window": 4})),
+            vec![None; 3],
+            "llama has none"
+        );
+        assert_eq!(
+            w(serde_json::json!({"model_type": "mistral", "sliding_window": 4})),
+            vec![Some(4); 3]
+        );
+        assert_eq!(
+            w(
+                serde_json::json!({"model_type": "qwen2", "sliding_window": 4, "use_sliding_window": false})
+            ),
+            vec![None; 3]
+        );
+        assert_eq!(
+            w(
+                serde_json::json!({"model_type": "qwen2", "sliding_window": 4,
+                "use_sliding_window": true, "max_window_layers": 2})
+            ),
+            vec![None, None, Some(4)]
+        );
+        assert_eq!(
+            w(
+                serde_json::json!({"model_type": "mistral", "sliding_window": 4,
+                "layer_types": ["sliding_attention", "full_attention", "sliding_attention"]})
+            ),
+            vec![Some(4), None, Some(4)]
+        );
     }
 }

@@ -1,0 +1,166 @@
+#!/usr/bin/env python3
+"""Writes the tiny decoders of the Llama relatives switchyard runs (Mistral with a sliding
+attention window, Qwen2 with q/k/v biases) and their references, in the layout generate.py
+writes for tiny-llama (`tiny-mistral/`, `tiny-mistral-reference.json`,
+`tiny-mistral-all.safetensors`, and the same for tiny-qwen2).
+
+Run with the venv made by setup-venv.sh, after generate.py (it reuses tiny-llama's tokenizer):
+
+    tests/reference/.venv/bin/python tests/reference/families.py
+
+Each model is transformers' own class for its family (MistralForCausalLM, Qwen2ForCausalLM) with
+seeded random weights (generate.py's rule), eager attention, f32, two threads. The Mistral
+window (6 positions) is shorter than the 11-token input and the 14-token prompt, so both the
+full-sequence logits and every greedy step depend on it being honoured. One adapter per model
+targets all seven projections; its reference runs transformers on the merged weights.
+"""
+
+from __future__ import annotations
+
+import copy
+import shutil
+import sys
+from pathlib import Path
+
+import torch
+import transformers
+from tokenizers import Tokenizer
+from transformers import MistralConfig, MistralForCausalLM, Qwen2Config, Qwen2ForCausalLM
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import generate as g  # noqa: E402
+
+ALL = ["attn.q", "attn.k", "attn.v", "attn.o", "mlp.gate", "mlp.up", "mlp.down"]
+
+FAMILIES = {
+    "tiny-mistral": dict(
+        config_class=MistralConfig,
+        model_class=MistralForCausalLM,
+        config=dict(sliding_window=6, head_dim=16, rope_theta=10000.0, rms_norm_eps=1e-6),
+        biases=False,
+        model_seed=301,
+        adapter=("tiny-mistral-all", 4, 8, ALL, 31, 0.15, 0.15),
+    ),
+    "tiny-qwen2": dict(
+        config_class=Qwen2Config,
+        model_class=Qwen2ForCausalLM,
+        config=dict(use_sliding_window=False, rope_theta=1000000.0, rms_norm_eps=1e-6),
+        biases=True,
+        model_seed=302,
+        adapter=("tiny-qwen2-all", 4, 8, ALL, 32, 0.15, 0.15),
+    ),
+}
+
+
+def build(name: str, spec: dict, tk: Tokenizer) -> dict:
+    out_dir = g.FIXTURES / name
+    if out_dir.exists():
+        shutil.rmtree(out_dir)
+    out_dir.mkdir(parents=True)
+    c = dict(spec["config"])
+    theta = c.pop("rope_theta")
+    config = spec["config_class"](
+        vocab_size=tk.get_vocab_size(),
+        hidden_size=64,
+        intermediate_size=128,
+        num_hidden_layers=2,
+        num_attention_heads=4,
+        num_key_value_heads=2,
+        max_position_embeddings=128,
+        hidden_act="silu",
+        tie_word_embeddings=False,
+        rope_parameters={"rope_type": "default", "rope_theta": theta},
+        bos_token_id=tk.token_to_id("<s>"),
+        eos_token_id=tk.token_to_id("</s>"),
+        pad_token_id=tk.token_to_id("<pad>"),
+        initializer_range=0.02,
+        attn_implementation="eager",
+        **c,
+    )
+    torch.manual_seed(spec["model_seed"])
+    model = spec["model_class"](config).eval()
+    g.init_llama_weights(model, spec["model_seed"], biases=spec["biases"], embed_std=1.0)
+    model.save_pretrained(str(out_dir), safe_serialization=True)
+    tk.save(str(out_dir / "tokenizer.json"))
+    reloaded = spec["model_class"].from_pretrained(str(out_dir), attn_implementation="eager",
+                                                   local_files_only=True).eval()
+    fp = g.base_fingerprint(out_dir)
+
+    input_ids = tk.encode(g.TINY_INPUT_SENTENCE).ids
+    prompt_ids = tk.encode(g.TINY_PROMPT).ids
+    logits = g.logits_of(model, input_ids)
+    assert torch.equal(logits, g.logits_of(reloaded, input_ids)), "reloaded model differs"
+    window = c.get("sliding_window")
+    if window:
+        # The window matters: without it transformers' own logits differ.
+        unwindowed = copy.deepcopy(model)
+        unwindowed.config.sliding_window = None
+        for layer in unwindowed.model.layers:
+            layer.self_attn.sliding_window = None
+        if hasattr(unwindowed.config, "layer_types"):
+            unwindowed.config.layer_types = ["full_attention"] * config.num_hidden_layers
+            for layer in unwindowed.model.layers:
+                if hasattr(layer, "attention_type"):
+                    layer.attention_type = "full_attention"
+        gap = float((g.logits_of(unwindowed, input_ids) - logits).abs().max())
+        print(f"[{name}] sliding window {window}: logits move by up to {gap:.3f} without it")
+        assert gap > 1e-2, f"{name}: the window does not change the logits"
+    greedy, margins = g.greedy(model, prompt_ids)
+    assert min(margins) >= g.MIN_MARGIN, f"{name}: greedy margin too small; pick another seed"
+    print(f"[{name}] fingerprint {fp}; greedy {greedy} -> {tk.decode(greedy)!r}; "
+          f"least margin {min(margins):.4f}")
+    result = {
+        "generated_by": g.versions() | {"script": "tests/reference/families.py"},
+        "model_dir": f"tests/reference/fixtures/{name}",
+        "base_fingerprint": fp,
+        "model_seed": spec["model_seed"],
+        "vocab_size": tk.get_vocab_size(),
+        "input_text": g.TINY_INPUT_SENTENCE,
+        "input_ids": input_ids,
+        "logits": g.f32_list(logits),
+        "prompt": g.TINY_PROMPT,
+        "prompt_ids": prompt_ids,
+        "greedy": greedy,
+        "greedy_text": tk.decode(greedy),
+        "greedy_min_margin": g.f32(min(margins)),
+        "greedy_margins": [g.f32(m) for m in margins],
+        "adapters": {},
+    }
+    aname, rank, alpha, targets, seed, a_std, b_std = spec["adapter"]
+    base_weights = {k: v.weight.detach() for k, v in g.llama_linears(model).items()}
+    tensors = g.make_adapter(base_weights, targets, rank, alpha, seed, a_std, b_std,
+                             config.num_hidden_layers)
+    desc = (f"switchyard reference fixture {aname} for {name}: seed {seed}, rank {rank}, alpha "
+            f"{g.alpha_str(alpha)}, targets {' '.join(targets)} in all {config.num_hidden_layers} "
+            f"layers, A=randn*{a_std}, B=randn*{b_std}")
+    path = g.FIXTURES / f"{aname}.safetensors"
+    g.save_adapter(path, tensors, fingerprint=fp, rank=rank, alpha=alpha, task="generate",
+                   description=desc)
+    merged = copy.deepcopy(model)
+    g.merge_adapter(g.llama_linears(merged), tensors, rank, alpha)
+    lg = g.logits_of(merged, input_ids)
+    gr, am = g.greedy(merged, prompt_ids)
+    assert gr != greedy, f"{aname}: greedy equals base; scale the factors up"
+    assert min(am) >= g.MIN_MARGIN, f"{aname}: greedy margin too small"
+    print(f"[{name}] {aname}: greedy {gr}; least margin {min(am):.4f}")
+    result["adapters"][aname] = {
+        "file": path.name, "rank": rank, "alpha": alpha, "scale": alpha / rank,
+        "targets": targets, "seed": seed, "a_std": a_std, "b_std": b_std,
+        "logits": g.f32_list(lg), "greedy": gr, "greedy_text": tk.decode(gr),
+        "greedy_min_margin": g.f32(min(am)), "greedy_margins": [g.f32(m) for m in am],
+    }
+    g.dump_json(result, g.FIXTURES / f"{name}-reference.json")
+    return result
+
+
+def main() -> None:
+    torch.set_num_threads(g.THREADS)
+    torch.use_deterministic_algorithms(True)
+    transformers.logging.set_verbosity_error()
+    tk = Tokenizer.from_file(str(g.FIXTURES / "tiny-llama" / "tokenizer.json"))
+    for name, spec in FAMILIES.items():
+        build(name, spec, tk)
+
+
+if __name__ == "__main__":
+    main()
