@@ -639,6 +639,15 @@ fn tiny_qwen2_with_its_qkv_biases_matches_transformers() {
     decoder("tiny-qwen2").check_against_transformers();
 }
 
+/// Llama with `linear` (factor 4) and `llama3` (factor 8, original context 8) rope scaling
+/// (tests/reference/families.py, transformers' LlamaForCausalLM): transformers' logits move by
+/// up to 6.2 without the scaling, so these hold only if it is applied as transformers does.
+#[test]
+fn tiny_llamas_with_linear_and_llama3_rope_scaling_match_transformers() {
+    decoder("tiny-llama-rope-linear").check_against_transformers();
+    decoder("tiny-llama-rope-llama3").check_against_transformers();
+}
+
 /// The tiny decoders with their weights held in bf16, int8 and int4, against transformers' f32
 /// logits and greedy tokens (tiny-llama*-reference.json). Held to the least cosine, position by
 /// position, between the logit rows (floors set under the least measured over both models:

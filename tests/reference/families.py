@@ -1,6 +1,7 @@
 #!/usr/bin/env python3
 """Writes the tiny decoders of the Llama relatives switchyard runs (Mistral with a sliding
-attention window, Qwen2 with q/k/v biases) and their references, in the layout generate.py
+attention window, Qwen2 with q/k/v biases, Llama with `linear` and `llama3` rope scaling) and
+their references, in the layout generate.py
 writes for tiny-llama (`tiny-mistral/`, `tiny-mistral-reference.json`,
 `tiny-mistral-all.safetensors`, and the same for tiny-qwen2).
 
@@ -25,7 +26,14 @@ from pathlib import Path
 import torch
 import transformers
 from tokenizers import Tokenizer
-from transformers import MistralConfig, MistralForCausalLM, Qwen2Config, Qwen2ForCausalLM
+from transformers import (
+    LlamaConfig,
+    LlamaForCausalLM,
+    MistralConfig,
+    MistralForCausalLM,
+    Qwen2Config,
+    Qwen2ForCausalLM,
+)
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import generate as g  # noqa: E402
@@ -49,6 +57,27 @@ FAMILIES = {
         model_seed=302,
         adapter=("tiny-qwen2-all", 4, 8, ALL, 32, 0.15, 0.15),
     ),
+    # Llama with rope scaling: an original context of 8 positions, so the scaling changes the
+    # rotation of the lower frequencies within the 11-token input and the 30-position greedy run.
+    "tiny-llama-rope-linear": dict(
+        config_class=LlamaConfig,
+        model_class=LlamaForCausalLM,
+        config=dict(head_dim=16, rope_theta=10000.0, rms_norm_eps=1e-6,
+                    rope_extra={"rope_type": "linear", "factor": 4.0}),
+        biases=False,
+        model_seed=303,
+        adapter=("tiny-llama-rope-linear-all", 4, 8, ALL, 33, 0.15, 0.15),
+    ),
+    "tiny-llama-rope-llama3": dict(
+        config_class=LlamaConfig,
+        model_class=LlamaForCausalLM,
+        config=dict(head_dim=16, rope_theta=10000.0, rms_norm_eps=1e-6,
+                    rope_extra={"rope_type": "llama3", "factor": 8.0, "low_freq_factor": 1.0,
+                                "high_freq_factor": 4.0, "original_max_position_embeddings": 8}),
+        biases=False,
+        model_seed=304,
+        adapter=("tiny-llama-rope-llama3-all", 4, 8, ALL, 34, 0.15, 0.15),
+    ),
 }
 
 
@@ -59,6 +88,7 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
     out_dir.mkdir(parents=True)
     c = dict(spec["config"])
     theta = c.pop("rope_theta")
+    rope = {"rope_type": "default", "rope_theta": theta} | c.pop("rope_extra", {})
     config = spec["config_class"](
         vocab_size=tk.get_vocab_size(),
         hidden_size=64,
@@ -69,7 +99,7 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
         max_position_embeddings=128,
         hidden_act="silu",
         tie_word_embeddings=False,
-        rope_parameters={"rope_type": "default", "rope_theta": theta},
+        rope_parameters=rope,
         bos_token_id=tk.token_to_id("<s>"),
         eos_token_id=tk.token_to_id("</s>"),
         pad_token_id=tk.token_to_id("<pad>"),
@@ -105,6 +135,15 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
         gap = float((g.logits_of(unwindowed, input_ids) - logits).abs().max())
         print(f"[{name}] sliding window {window}: logits move by up to {gap:.3f} without it")
         assert gap > 1e-2, f"{name}: the window does not change the logits"
+    if rope["rope_type"] != "default":
+        # The scaling matters: with the default rope transformers' logits differ.
+        plain_config = copy.deepcopy(config)
+        plain_config.rope_parameters = {"rope_type": "default", "rope_theta": theta}
+        plain = spec["model_class"](plain_config).eval()
+        plain.load_state_dict(model.state_dict())
+        gap = float((g.logits_of(plain, input_ids) - logits).abs().max())
+        print(f"[{name}] rope {rope['rope_type']}: logits move by up to {gap:.3f} without it")
+        assert gap > 1e-2, f"{name}: the rope scaling does not change the logits"
     greedy, margins = g.greedy(model, prompt_ids)
     assert min(margins) >= g.MIN_MARGIN, f"{name}: greedy margin too small; pick another seed"
     print(f"[{name}] fingerprint {fp}; greedy {greedy} -> {tk.decode(greedy)!r}; "
@@ -158,8 +197,10 @@ def main() -> None:
     torch.use_deterministic_algorithms(True)
     transformers.logging.set_verbosity_error()
     tk = Tokenizer.from_file(str(g.FIXTURES / "tiny-llama" / "tokenizer.json"))
+    only = sys.argv[1:]
     for name, spec in FAMILIES.items():
-        build(name, spec, tk)
+        if not only or name in only:
+            build(name, spec, tk)
 
 
 if __name__ == "__main__":
