@@ -639,6 +639,15 @@ fn tiny_qwen2_with_its_qkv_biases_matches_transformers() {
     decoder("tiny-qwen2").check_against_transformers();
 }
 
+/// Gemma (tests/reference/families.py, transformers' GemmaForCausalLM): norms that scale by
+/// 1 + weight, GeGLU with the tanh GELU, embeddings scaled by sqrt(hidden), a tied head and a
+/// head dim (24) that is not hidden / heads; with and without an adapter on all seven
+/// projections.
+#[test]
+fn tiny_gemma_matches_transformers() {
+    decoder("tiny-gemma").check_against_transformers();
+}
+
 /// Llama with `linear` (factor 4) and `llama3` (factor 8, original context 8) rope scaling
 /// (tests/reference/families.py, transformers' LlamaForCausalLM): transformers' logits move by
 /// up to 6.2 without the scaling, so these hold only if it is applied as transformers does.

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Writes the tiny decoders of the Llama relatives switchyard runs (Mistral with a sliding
-attention window, Qwen2 with q/k/v biases, Llama with `linear` and `llama3` rope scaling) and
-their references, in the layout generate.py
+attention window, Qwen2 with q/k/v biases, Gemma, Llama with `linear` and `llama3` rope
+scaling) and their references, in the layout generate.py
 writes for tiny-llama (`tiny-mistral/`, `tiny-mistral-reference.json`,
 `tiny-mistral-all.safetensors`, and the same for tiny-qwen2).
 
@@ -27,6 +27,8 @@ import torch
 import transformers
 from tokenizers import Tokenizer
 from transformers import (
+    GemmaConfig,
+    GemmaForCausalLM,
     LlamaConfig,
     LlamaForCausalLM,
     MistralConfig,
@@ -56,6 +58,18 @@ FAMILIES = {
         biases=True,
         model_seed=302,
         adapter=("tiny-qwen2-all", 4, 8, ALL, 32, 0.15, 0.15),
+    ),
+    # Gemma: norms scale by 1 + weight, GeGLU (gelu_pytorch_tanh), embeddings scaled by
+    # sqrt(hidden), tied output head; a head dim of 24 (so q has 96 outputs, not 64).
+    "tiny-gemma": dict(
+        config_class=GemmaConfig,
+        model_class=GemmaForCausalLM,
+        config=dict(head_dim=24, rope_theta=10000.0, rms_norm_eps=1e-6,
+                    hidden_activation="gelu_pytorch_tanh", tie_word_embeddings=True),
+        biases=False,
+        model_seed=305,
+        embed_std=0.05,
+        adapter=("tiny-gemma-all", 4, 8, ALL, 35, 0.15, 0.15),
     ),
     # Llama with rope scaling: an original context of 8 positions, so the scaling changes the
     # rotation of the lower frequencies within the 11-token input and the 30-position greedy run.
@@ -97,8 +111,8 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
         num_attention_heads=4,
         num_key_value_heads=2,
         max_position_embeddings=128,
-        hidden_act="silu",
-        tie_word_embeddings=False,
+        **({} if "hidden_activation" in c else {"hidden_act": "silu"}),
+        **({} if "tie_word_embeddings" in c else {"tie_word_embeddings": False}),
         rope_parameters=rope,
         bos_token_id=tk.token_to_id("<s>"),
         eos_token_id=tk.token_to_id("</s>"),
@@ -109,7 +123,8 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
     )
     torch.manual_seed(spec["model_seed"])
     model = spec["model_class"](config).eval()
-    g.init_llama_weights(model, spec["model_seed"], biases=spec["biases"], embed_std=1.0)
+    g.init_llama_weights(model, spec["model_seed"], biases=spec["biases"],
+                         embed_std=spec.get("embed_std", 1.0))
     model.save_pretrained(str(out_dir), safe_serialization=True)
     tk.save(str(out_dir / "tokenizer.json"))
     reloaded = spec["model_class"].from_pretrained(str(out_dir), attn_implementation="eager",

@@ -68,7 +68,7 @@ fn field(config: &serde_json::Value, key: &str, file: &Path) -> anyhow::Result<u
 /// decoder runtimes build).
 pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Result<ConfigShapes> {
     let kind = model_type(config, file)?;
-    if !matches!(kind.as_str(), "bert" | "llama" | "mistral" | "qwen2") {
+    if kind != "bert" && !crate::model::llama::DECODER_TYPES.contains(&kind.as_str()) {
         bail!(
             "{} has model_type {kind:?}; switchyard plans for {KNOWN_MODEL_TYPES}",
             file.display()
@@ -86,7 +86,7 @@ pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Re
             shapes.insert(Module::MlpUp, (inter, hidden));
             shapes.insert(Module::MlpDown, (hidden, inter));
         }
-        "llama" | "mistral" | "qwen2" => {
+        _ => {
             let heads = field(config, "num_attention_heads", file)?;
             let kv_heads = match config.get("num_key_value_heads") {
                 Some(serde_json::Value::Null) | None => heads,
@@ -104,7 +104,6 @@ pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Re
             shapes.insert(Module::MlpUp, (inter, hidden));
             shapes.insert(Module::MlpDown, (hidden, inter));
         }
-        _ => unreachable!("checked above"),
     }
     Ok(ConfigShapes {
         model_type: kind,

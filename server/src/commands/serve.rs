@@ -80,9 +80,11 @@ pub fn load_backbone(dir: &Path, format: WeightFormat) -> anyhow::Result<Backbon
     let model_type = v.get("model_type").and_then(|m| m.as_str()).unwrap_or("");
     match model_type {
         "bert" => Ok(Backbone::Encoder(Embedder::load_as(dir, format)?)),
-        "llama" | "mistral" | "qwen2" => Ok(Backbone::Decoder(Generator::load_as(dir, format)?)),
+        t if crate::model::llama::DECODER_TYPES.contains(&t) => {
+            Ok(Backbone::Decoder(Generator::load_as(dir, format)?))
+        }
         other => anyhow::bail!(
-            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama, mistral, qwen2)",
+            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama, mistral, qwen2, gemma)",
             config.display()
         ),
     }

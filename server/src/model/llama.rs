@@ -74,8 +74,9 @@ pub struct LlamaConfig {
     pub rope_scaling: Option<RopeParameters>,
     #[serde(default = "default_rms_eps")]
     pub rms_norm_eps: f64,
+    /// Absent: tied for Gemma (its config's default), untied otherwise; see [`Self::tied`].
     #[serde(default)]
-    pub tie_word_embeddings: bool,
+    pub tie_word_embeddings: Option<bool>,
     #[serde(default = "default_max_positions")]
     pub max_position_embeddings: usize,
     #[serde(default)]
@@ -87,6 +88,9 @@ pub struct LlamaConfig {
     pub model_type: String,
     #[serde(default)]
     pub hidden_act: Option<String>,
+    /// Gemma's name for the MLP activation (it takes precedence over `hidden_act` there).
+    #[serde(default)]
+    pub hidden_activation: Option<String>,
     /// Attention over at most this many positions (the query's own included), on the layers
     /// that slide (Mistral: every layer; Qwen2: per `use_sliding_window`, `max_window_layers`;
     /// any family: per `layer_types` where the config lists them).
@@ -105,7 +109,16 @@ fn default_model_type() -> String {
 }
 
 /// The `model_type`s the decoder runtime implements.
-pub const DECODER_TYPES: [&str; 3] = ["llama", "mistral", "qwen2"];
+pub const DECODER_TYPES: [&str; 4] = ["llama", "mistral", "qwen2", "gemma"];
+
+/// The MLP's gate activation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Activation {
+    /// `silu` (Llama, Mistral, Qwen2).
+    Silu,
+    /// `gelu_pytorch_tanh`: GELU by its tanh approximation (Gemma's GeGLU).
+    GeluTanh,
+}
 
 fn default_rms_eps() -> f64 {
     1e-6
@@ -148,18 +161,46 @@ impl LlamaConfig {
                 DECODER_TYPES.join(", ")
             );
         }
-        if let Some(act) = self.hidden_act.as_deref()
-            && act != "silu"
-        {
-            candle_core::bail!(
-                "config.json: hidden_act {act:?} is not supported for model_type {:?} (supported: silu)",
-                self.model_type
-            );
-        }
+        self.activation()?;
         if self.sliding_window == Some(0) {
             candle_core::bail!("config.json: sliding_window 0 leaves nothing to attend to");
         }
         self.windows().map(|_| ())
+    }
+
+    fn is_gemma(&self) -> bool {
+        self.model_type == "gemma"
+    }
+
+    /// Whether the output head is the embedding table.
+    pub fn tied(&self) -> bool {
+        self.tie_word_embeddings.unwrap_or(self.is_gemma())
+    }
+
+    /// The MLP activation: Gemma's `hidden_activation` (default `gelu_pytorch_tanh`), else
+    /// `hidden_act` (default `silu`); anything else is refused naming the field.
+    pub fn activation(&self) -> Result<Activation> {
+        let (field, name) = match (&self.hidden_activation, self.is_gemma()) {
+            (Some(a), true) => ("hidden_activation", a.as_str()),
+            (None, true) => (
+                "hidden_act",
+                self.hidden_act.as_deref().unwrap_or("gelu_pytorch_tanh"),
+            ),
+            _ => ("hidden_act", self.hidden_act.as_deref().unwrap_or("silu")),
+        };
+        match name {
+            "silu" => Ok(Activation::Silu),
+            "gelu_pytorch_tanh" => Ok(Activation::GeluTanh),
+            other => candle_core::bail!(
+                "config.json: {field} {other:?} is not supported for model_type {:?} (supported: silu, gelu_pytorch_tanh)",
+                self.model_type
+            ),
+        }
+    }
+
+    /// Gemma scales the embedding rows by the square root of the hidden size.
+    fn embed_scale(&self) -> Option<f32> {
+        self.is_gemma().then(|| (self.hidden_size as f32).sqrt())
     }
 
     /// Each layer's attention window (`None`: every earlier position).
@@ -400,6 +441,7 @@ struct Block {
     head_dim: usize,
     /// Positions a query attends to at most (its own included); `None`: all earlier ones.
     window: Option<usize>,
+    act: Activation,
 }
 
 impl Block {
@@ -418,12 +460,12 @@ impl Block {
             AdaptedLinear::load(Site::new(layer, m), inp, out, &vb.pp(name))
         };
         Ok(Self {
-            input_norm: rms_norm(h, cfg.rms_norm_eps, &vb.pp("input_layernorm"))?,
+            input_norm: rms_norm(cfg, &vb.pp("input_layernorm"))?,
             q: lin(Module::AttnQ, h, q_out, "self_attn.q_proj")?,
             k: lin(Module::AttnK, h, kv_out, "self_attn.k_proj")?,
             v: lin(Module::AttnV, h, kv_out, "self_attn.v_proj")?,
             o: lin(Module::AttnO, q_out, h, "self_attn.o_proj")?,
-            post_norm: rms_norm(h, cfg.rms_norm_eps, &vb.pp("post_attention_layernorm"))?,
+            post_norm: rms_norm(cfg, &vb.pp("post_attention_layernorm"))?,
             gate: lin(Module::MlpGate, h, i, "mlp.gate_proj")?,
             up: lin(Module::MlpUp, h, i, "mlp.up_proj")?,
             down: lin(Module::MlpDown, i, h, "mlp.down_proj")?,
@@ -431,6 +473,7 @@ impl Block {
             kv_heads: cfg.kv_heads(),
             head_dim: d,
             window,
+            act: cfg.activation()?,
         })
     }
 
@@ -475,7 +518,12 @@ impl Block {
         let attn = Tensor::from_vec(attn, (rows, hq * d), x.device())?;
         let x = (x + self.o.forward(&attn, adapters)?)?;
         let h = self.post_norm.forward(&x)?;
-        let gated = (self.gate.forward(&h, adapters)?.silu()? * self.up.forward(&h, adapters)?)?;
+        let gate = self.gate.forward(&h, adapters)?;
+        let gate = match self.act {
+            Activation::Silu => gate.silu()?,
+            Activation::GeluTanh => gate.gelu()?,
+        };
+        let gated = (gate * self.up.forward(&h, adapters)?)?;
         x + self.down.forward(&gated, adapters)?
     }
 }
@@ -563,8 +611,16 @@ fn attention(
     out
 }
 
-fn rms_norm(size: usize, eps: f64, w: &Weights<'_>) -> Result<RmsNorm> {
-    Ok(RmsNorm::new(w.tensor("weight", &[size])?, eps))
+/// An RMS norm over the hidden size; Gemma's weights are offsets from 1 (it scales by
+/// `1 + weight`), so 1 is added once at load.
+fn rms_norm(cfg: &LlamaConfig, w: &Weights<'_>) -> Result<RmsNorm> {
+    let weight = w.tensor("weight", &[cfg.hidden_size])?;
+    let weight = if cfg.is_gemma() {
+        weight.affine(1.0, 1.0)?
+    } else {
+        weight
+    };
+    Ok(RmsNorm::new(weight, cfg.rms_norm_eps))
 }
 
 /// A Llama-family decoder.
@@ -602,8 +658,8 @@ impl LlamaModel {
             .enumerate()
             .map(|(i, w)| Block::new(cfg, i, w, &m.pp(format!("layers.{i}"))))
             .collect::<Result<Vec<_>>>()?;
-        let norm = rms_norm(h, cfg.rms_norm_eps, &m.pp("norm"))?;
-        let lm_head = if cfg.tie_word_embeddings {
+        let norm = rms_norm(cfg, &m.pp("norm"))?;
+        let lm_head = if cfg.tied() {
             embed.clone()
         } else {
             Arc::new(vb.packed("lm_head.weight", vocab, h)?)
@@ -669,6 +725,9 @@ impl LlamaModel {
                 );
             }
             self.embed.row_into(id as usize, row);
+            if let Some(scale) = self.config.embed_scale() {
+                row.iter_mut().for_each(|v| *v *= scale);
+            }
         }
         let mut x = Tensor::from_vec(table, (rows, h), &dev)?;
         for (layer, block) in self.blocks.iter().enumerate() {

@@ -11,7 +11,7 @@ use crate::model::embedder::Embedder;
 use crate::model::generator::Generator;
 
 /// The model families a base folder can hold, by config.json's `model_type`.
-pub const KNOWN_MODEL_TYPES: &str = "bert (encoder) and llama, mistral and qwen2 (decoders)";
+pub const KNOWN_MODEL_TYPES: &str = "bert (encoder) and llama, mistral, qwen2 and gemma (decoders)";
 
 /// Reads `config.json` from a model folder, or the file itself when `path` is a JSON file.
 pub fn read_config(path: &Path) -> anyhow::Result<(PathBuf, serde_json::Value)> {
@@ -47,7 +47,9 @@ pub fn base_spec(dir: &Path) -> anyhow::Result<BaseSpec> {
     let (file, config) = read_config(dir)?;
     let spec = match model_type(&config, &file)?.as_str() {
         "bert" => Embedder::load(dir)?.spec().clone(),
-        "llama" | "mistral" | "qwen2" => Generator::load(dir)?.spec().clone(),
+        t if crate::model::llama::DECODER_TYPES.contains(&t) => {
+            Generator::load(dir)?.spec().clone()
+        }
         other => bail!(
             "{} has model_type {other:?}; switchyard knows {KNOWN_MODEL_TYPES}",
             file.display()
