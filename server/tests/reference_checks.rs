@@ -648,6 +648,15 @@ fn tiny_gemma_matches_transformers() {
     decoder("tiny-gemma").check_against_transformers();
 }
 
+/// Phi-3 (tests/reference/families.py, transformers' Phi3ForCausalLM): q, k and v fused in
+/// `qkv_proj` and gate and up in `gate_up_proj`, held as the canonical modules' own layers; the
+/// adapter on all seven projections is merged by the reference into its rows of the fused
+/// weights; a sliding window of 6.
+#[test]
+fn tiny_phi3_with_its_fused_projections_matches_transformers() {
+    decoder("tiny-phi3").check_against_transformers();
+}
+
 /// Llama with `linear` (factor 4) and `llama3` (factor 8, original context 8) rope scaling
 /// (tests/reference/families.py, transformers' LlamaForCausalLM): transformers' logits move by
 /// up to 6.2 without the scaling, so these hold only if it is applied as transformers does.

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Writes the tiny decoders of the Llama relatives switchyard runs (Mistral with a sliding
-attention window, Qwen2 with q/k/v biases, Gemma, Llama with `linear` and `llama3` rope
-scaling) and their references, in the layout generate.py
+attention window, Qwen2 with q/k/v biases, Gemma, Phi-3 with its fused projections, Llama with
+`linear` and `llama3` rope scaling) and their references, in the layout generate.py
 writes for tiny-llama (`tiny-mistral/`, `tiny-mistral-reference.json`,
 `tiny-mistral-all.safetensors`, and the same for tiny-qwen2).
 
@@ -33,6 +33,8 @@ from transformers import (
     LlamaForCausalLM,
     MistralConfig,
     MistralForCausalLM,
+    Phi3Config,
+    Phi3ForCausalLM,
     Qwen2Config,
     Qwen2ForCausalLM,
 )
@@ -71,6 +73,17 @@ FAMILIES = {
         embed_std=0.05,
         adapter=("tiny-gemma-all", 4, 8, ALL, 35, 0.15, 0.15),
     ),
+    # Phi-3: q, k and v fused into qkv_proj, gate and up into gate_up_proj; a sliding window
+    # of 6. Adapters target the canonical modules; the reference merges each into its rows of
+    # the fused weight.
+    "tiny-phi3": dict(
+        config_class=Phi3Config,
+        model_class=Phi3ForCausalLM,
+        config=dict(sliding_window=6, rope_theta=10000.0, rms_norm_eps=1e-6),
+        biases=False,
+        model_seed=306,
+        adapter=("tiny-phi3-all", 4, 8, ALL, 36, 0.15, 0.15),
+    ),
     # Llama with rope scaling: an original context of 8 positions, so the scaling changes the
     # rotation of the lower frequencies within the 11-token input and the 30-position greedy run.
     "tiny-llama-rope-linear": dict(
@@ -93,6 +106,44 @@ FAMILIES = {
         adapter=("tiny-llama-rope-llama3-all", 4, 8, ALL, 34, 0.15, 0.15),
     ),
 }
+
+
+def fused_rows(model, config) -> dict:
+    """(layer, module) -> (fused Linear, first row, rows): where each canonical projection of a
+    Phi-3 layer lives in its fused weights (qkv_proj: q, k, v; gate_up_proj: gate, up)."""
+    d = config.hidden_size // config.num_attention_heads
+    q, kv, i = config.num_attention_heads * d, config.num_key_value_heads * d, config.intermediate_size
+    out = {}
+    for n, layer in enumerate(model.model.layers):
+        qkv, gate_up = layer.self_attn.qkv_proj, layer.mlp.gate_up_proj
+        out[(n, "attn.q")] = (qkv, 0, q)
+        out[(n, "attn.k")] = (qkv, q, kv)
+        out[(n, "attn.v")] = (qkv, q + kv, kv)
+        out[(n, "attn.o")] = (layer.self_attn.o_proj, 0, config.hidden_size)
+        out[(n, "mlp.gate")] = (gate_up, 0, i)
+        out[(n, "mlp.up")] = (gate_up, i, i)
+        out[(n, "mlp.down")] = (layer.mlp.down_proj, 0, config.hidden_size)
+    return out
+
+
+@torch.no_grad()
+def merge_fused(model, config, tensors: dict, rank: int, alpha: float) -> None:
+    """W[rows] += (alpha / r) B A for each canonical projection, in its rows of the fused weight."""
+    s = alpha / rank
+    for (n, m), (lin, first, rows) in fused_rows(model, config).items():
+        key = f"layers.{n}.{m}"
+        if key + ".A" in tensors:
+            delta = s * (tensors[key + ".B"] @ tensors[key + ".A"])
+            assert delta.shape[0] == rows
+            lin.weight[first:first + rows].add_(delta)
+
+
+def linears_of(model, config) -> dict:
+    """(layer, module) -> the base weight [out, in] of each canonical projection."""
+    if hasattr(model.model.layers[0].self_attn, "qkv_proj"):
+        return {k: lin.weight[first:first + rows].detach()
+                for k, (lin, first, rows) in fused_rows(model, config).items()}
+    return {k: v.weight.detach() for k, v in g.llama_linears(model).items()}
 
 
 def build(name: str, spec: dict, tk: Tokenizer) -> dict:
@@ -181,7 +232,7 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
         "adapters": {},
     }
     aname, rank, alpha, targets, seed, a_std, b_std = spec["adapter"]
-    base_weights = {k: v.weight.detach() for k, v in g.llama_linears(model).items()}
+    base_weights = linears_of(model, config)
     tensors = g.make_adapter(base_weights, targets, rank, alpha, seed, a_std, b_std,
                              config.num_hidden_layers)
     desc = (f"switchyard reference fixture {aname} for {name}: seed {seed}, rank {rank}, alpha "
@@ -191,7 +242,10 @@ def build(name: str, spec: dict, tk: Tokenizer) -> dict:
     g.save_adapter(path, tensors, fingerprint=fp, rank=rank, alpha=alpha, task="generate",
                    description=desc)
     merged = copy.deepcopy(model)
-    g.merge_adapter(g.llama_linears(merged), tensors, rank, alpha)
+    if hasattr(model.model.layers[0].self_attn, "qkv_proj"):
+        merge_fused(merged, config, tensors, rank, alpha)
+    else:
+        g.merge_adapter(g.llama_linears(merged), tensors, rank, alpha)
     lg = g.logits_of(merged, input_ids)
     gr, am = g.greedy(merged, prompt_ids)
     assert gr != greedy, f"{aname}: greedy equals base; scale the factors up"

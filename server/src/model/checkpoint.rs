@@ -282,6 +282,35 @@ impl Checkpoint {
         Ok(packed)
     }
 
+    /// Rows `rows` of a 2-D tensor `[out, inp]` packed in `format` as a weight of their own (a
+    /// projection fused with others in the checkpoint, such as Phi-3's `qkv_proj`).
+    pub fn packed_rows(
+        &self,
+        name: &str,
+        (out, inp): (usize, usize),
+        rows: std::ops::Range<usize>,
+        format: WeightFormat,
+    ) -> anyhow::Result<PackedWeight> {
+        let e = self.entry(name, &[out, inp])?;
+        anyhow::ensure!(
+            rows.start <= rows.end && rows.end <= out,
+            "{name}: rows {rows:?} are outside its {out} rows"
+        );
+        let bytes = self.bytes(e);
+        let size = float_size(e.dtype).unwrap_or(4);
+        let first = rows.start;
+        let packed = PackedWeight::pack_rows(rows.len(), inp, format, |j, row| {
+            let j = first + j;
+            convert(e.dtype, &bytes[j * inp * size..(j + 1) * inp * size], row)
+        })
+        .with_context(|| format!("converting rows {rows:?} of {name} to {format}"))?;
+        // The parts are read in order; the last one releases the tensor's pages.
+        if rows.end == out {
+            self.files[e.file].1.release(e.start..e.end);
+        }
+        Ok(packed)
+    }
+
     /// A variable builder over every floating-point tensor as f32 (a full copy: for training,
     /// whose differentiable encoder computes in f32 candle tensors).
     pub fn var_builder(&self) -> anyhow::Result<VarBuilder<'static>> {
@@ -409,6 +438,19 @@ impl<'a> Weights<'a> {
     pub fn packed(&self, name: &str, out: usize, inp: usize) -> candle_core::Result<PackedWeight> {
         self.ckpt
             .packed(&self.name(name), out, inp, self.format)
+            .map_err(|e| candle_core::Error::Msg(format!("{e:#}")))
+    }
+
+    /// Rows `rows` of a 2-D weight `[out, inp]`, packed in this view's format as a weight of
+    /// their own.
+    pub fn packed_rows(
+        &self,
+        name: &str,
+        shape: (usize, usize),
+        rows: std::ops::Range<usize>,
+    ) -> candle_core::Result<PackedWeight> {
+        self.ckpt
+            .packed_rows(&self.name(name), shape, rows, self.format)
             .map_err(|e| candle_core::Error::Msg(format!("{e:#}")))
     }
 }

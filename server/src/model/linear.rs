@@ -156,6 +156,23 @@ impl AdaptedLinear {
         Self::new(site, weight, bias)
     }
 
+    /// Rows `rows` of a fused projection `[fused_out, in_dim]` (no bias) as a layer of its own:
+    /// Phi-3's `qkv_proj` gives `attn.q`, `attn.k` and `attn.v` this way, `gate_up_proj` gives
+    /// `mlp.gate` and `mlp.up`, so adapters target the same canonical modules as elsewhere.
+    pub fn load_rows(
+        site: Site,
+        in_dim: usize,
+        fused_out: usize,
+        rows: std::ops::Range<usize>,
+        w: &Weights<'_>,
+    ) -> Result<Self> {
+        let weight = w.packed_rows("weight", (fused_out, in_dim), rows)?;
+        if w.contains("bias") {
+            candle_core::bail!("a fused projection with a bias is not supported");
+        }
+        Self::new(site, weight, None)
+    }
+
     /// The base weight as held (packed, in the model's format): what a merged variant of this
     /// layer is built from.
     pub fn packed_weight(&self) -> &Arc<PackedWeight> {

@@ -35,6 +35,10 @@ pub struct RopeParameters {
     pub high_freq_factor: Option<f64>,
     #[serde(default)]
     pub original_max_position_embeddings: Option<usize>,
+    /// The share of each head's dimensions that rotate (Phi-3's configs name it; only 1 is
+    /// supported).
+    #[serde(default)]
+    pub partial_rotary_factor: Option<f64>,
 }
 
 /// A token id field that checkpoints write either as one number or as a list.
@@ -102,6 +106,8 @@ pub struct LlamaConfig {
     pub max_window_layers: Option<usize>,
     #[serde(default)]
     pub layer_types: Option<Vec<String>>,
+    #[serde(default)]
+    pub partial_rotary_factor: Option<f64>,
 }
 
 fn default_model_type() -> String {
@@ -109,7 +115,7 @@ fn default_model_type() -> String {
 }
 
 /// The `model_type`s the decoder runtime implements.
-pub const DECODER_TYPES: [&str; 4] = ["llama", "mistral", "qwen2", "gemma"];
+pub const DECODER_TYPES: [&str; 5] = ["llama", "mistral", "qwen2", "gemma", "phi3"];
 
 /// The MLP's gate activation.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -162,6 +168,16 @@ impl LlamaConfig {
             );
         }
         self.activation()?;
+        if let Some(f) = self
+            .rope()
+            .partial_rotary_factor
+            .or(self.partial_rotary_factor)
+            && f != 1.0
+        {
+            candle_core::bail!(
+                "config.json: partial_rotary_factor {f} is not supported (only 1: every dimension of a head rotates)"
+            );
+        }
         if self.sliding_window == Some(0) {
             candle_core::bail!("config.json: sliding_window 0 leaves nothing to attend to");
         }
@@ -229,7 +245,7 @@ impl LlamaConfig {
                 .collect();
         }
         Ok(match self.model_type.as_str() {
-            "mistral" => vec![self.sliding_window; layers],
+            "mistral" | "phi3" => vec![self.sliding_window; layers],
             // Qwen2 configs without layer_types: the layers from max_window_layers on slide
             // when use_sliding_window is set (what transformers 5.24's Qwen2Config derives for
             // its layer_types; checked with that library).
@@ -459,15 +475,56 @@ impl Block {
         let lin = |m: Module, inp: usize, out: usize, name: &str| {
             AdaptedLinear::load(Site::new(layer, m), inp, out, &vb.pp(name))
         };
+        // Phi-3 fuses q, k and v into one projection (rows in that order) and gate and up into
+        // another (gate first); each part is held as its own layer.
+        let part = |m: Module, fused: &str, fused_out: usize, rows: std::ops::Range<usize>| {
+            AdaptedLinear::load_rows(Site::new(layer, m), h, fused_out, rows, &vb.pp(fused))
+        };
+        let ((q, k, v), (gate, up)) = if cfg.model_type == "phi3" {
+            let qkv = q_out + 2 * kv_out;
+            (
+                (
+                    part(Module::AttnQ, "self_attn.qkv_proj", qkv, 0..q_out)?,
+                    part(
+                        Module::AttnK,
+                        "self_attn.qkv_proj",
+                        qkv,
+                        q_out..q_out + kv_out,
+                    )?,
+                    part(
+                        Module::AttnV,
+                        "self_attn.qkv_proj",
+                        qkv,
+                        q_out + kv_out..qkv,
+                    )?,
+                ),
+                (
+                    part(Module::MlpGate, "mlp.gate_up_proj", 2 * i, 0..i)?,
+                    part(Module::MlpUp, "mlp.gate_up_proj", 2 * i, i..2 * i)?,
+                ),
+            )
+        } else {
+            (
+                (
+                    lin(Module::AttnQ, h, q_out, "self_attn.q_proj")?,
+                    lin(Module::AttnK, h, kv_out, "self_attn.k_proj")?,
+                    lin(Module::AttnV, h, kv_out, "self_attn.v_proj")?,
+                ),
+                (
+                    lin(Module::MlpGate, h, i, "mlp.gate_proj")?,
+                    lin(Module::MlpUp, h, i, "mlp.up_proj")?,
+                ),
+            )
+        };
         Ok(Self {
             input_norm: rms_norm(cfg, &vb.pp("input_layernorm"))?,
-            q: lin(Module::AttnQ, h, q_out, "self_attn.q_proj")?,
-            k: lin(Module::AttnK, h, kv_out, "self_attn.k_proj")?,
-            v: lin(Module::AttnV, h, kv_out, "self_attn.v_proj")?,
+            q,
+            k,
+            v,
             o: lin(Module::AttnO, q_out, h, "self_attn.o_proj")?,
             post_norm: rms_norm(cfg, &vb.pp("post_attention_layernorm"))?,
-            gate: lin(Module::MlpGate, h, i, "mlp.gate_proj")?,
-            up: lin(Module::MlpUp, h, i, "mlp.up_proj")?,
+            gate,
+            up,
             down: lin(Module::MlpDown, i, h, "mlp.down_proj")?,
             heads: cfg.num_attention_heads,
             kv_heads: cfg.kv_heads(),
@@ -1012,6 +1069,15 @@ mod tests {
                 .contains("layer_types[1] is sliding_attention but sliding_window is not set")
         );
         assert!(refusal(serde_json::json!({"sliding_window": 0})).contains("sliding_window 0"));
+        assert!(
+            refusal(serde_json::json!({"model_type": "phi3",
+                "rope_parameters": {"rope_type": "default", "partial_rotary_factor": 0.75}}))
+            .contains("partial_rotary_factor 0.75")
+        );
+        assert!(
+            refusal(serde_json::json!({"model_type": "gemma", "hidden_activation": "gelu"}))
+                .contains("hidden_activation \"gelu\"")
+        );
     }
 
     #[test]
