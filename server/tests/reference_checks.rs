@@ -854,3 +854,94 @@ fn every_reference_check_passes_on_every_kernel_path() {
         println!("{label}: every check passed");
     }
 }
+
+/// Packs one of the peft-layout adapters (tests/reference/peft_layouts.py) with the real
+/// binary's `adapter pack FILE --rules NAME`, rank and alpha read from its adapter_config.json,
+/// and loads the package for `model`.
+fn pack_peft(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter> {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("packed.safetensors");
+    let input = fixtures()
+        .join("peft")
+        .join(folder)
+        .join("adapter_model.safetensors");
+    let ran = std::process::Command::new(env!("CARGO_BIN_EXE_switchyard"))
+        .args(["adapter", "pack"])
+        .arg(&input)
+        .args(["--rules", rules, "--task", task, "--model"])
+        .arg(model)
+        .arg("--output")
+        .arg(&out)
+        .output()
+        .unwrap();
+    let said = String::from_utf8_lossy(&ran.stdout);
+    assert!(
+        ran.status.success(),
+        "{said}{}",
+        String::from_utf8_lossy(&ran.stderr)
+    );
+    let spec = if task == "embed" {
+        embedder().spec().clone()
+    } else {
+        Generator::load(model).unwrap().spec().clone()
+    };
+    load_adapter(&out, &spec).unwrap()
+}
+
+/// One flag imports an adapter as the peft library saves it (PyPI peft 0.21.2, made by
+/// tests/reference/peft_layouts.py with random factors on every projection): the packed MiniLM
+/// adapter (rank 4, alpha 8 read from adapter_config.json) gives the sentence embeddings peft's
+/// own PeftModel gives through sentence-transformers (cosine >= 0.99999), and the packed
+/// tiny-llama adapter (rank 8, alpha 4) the logits peft gives (within 1e-3).
+#[test]
+fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
+    let reference = read_json(&fixtures().join("peft").join("reference.json"));
+
+    let adapter = pack_peft("minilm", "peft-bert", "embed", &base_model_dir());
+    assert_eq!((adapter.meta.rank, adapter.meta.alpha), (4, 8.0));
+    assert_eq!(
+        adapter.sites().count(),
+        6 * 6,
+        "six projections in six layers"
+    );
+    let texts: Vec<String> = reference["minilm"]["texts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap().to_owned())
+        .collect();
+    let refs: Vec<&str> = texts.iter().map(String::as_str).collect();
+    let got = embedder()
+        .embed(&refs, &vec![Some(adapter.clone()); refs.len()])
+        .unwrap();
+    let want = matrix(&reference["minilm"]["embeddings"]);
+    let least = min_cosine(&got, &want);
+    assert!(
+        least >= 0.99999,
+        "peft MiniLM adapter: least cosine {least}"
+    );
+    let base = embedder().embed(&refs, &vec![None; refs.len()]).unwrap();
+    assert!(
+        cosine(&got[0], &base[0]) < 0.99,
+        "the adapter moves the embeddings"
+    );
+
+    let model = fixtures().join("tiny-llama");
+    let adapter = pack_peft("tiny-llama", "peft-llama", "generate", &model);
+    assert_eq!((adapter.meta.rank, adapter.meta.alpha), (8, 4.0));
+    assert_eq!(
+        adapter.sites().count(),
+        2 * 7,
+        "seven projections in two layers"
+    );
+    let d = decoder("tiny-llama");
+    let input = ids(&reference["tiny_llama"]["input_ids"]);
+    let got = d.logits(&input, RowAdapters::uniform(Some(adapter), input.len()));
+    let gap = max_abs(&got, &matrix(&reference["tiny_llama"]["logits"]));
+    assert!(
+        gap <= 1e-3,
+        "peft tiny-llama adapter: logits differ by {gap}"
+    );
+    let base = max_abs(&got, &matrix(&d.reference["logits"]));
+    assert!(base > 0.1, "the adapter moves the logits ({base})");
+}

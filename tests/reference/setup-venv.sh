@@ -14,6 +14,7 @@ pins=(
     "tokenizers==0.23.3"
     "numpy==2.4.6"
     "scipy==1.17.1"
+    "peft==0.21.2"
 )
 
 if [ ! -x "$venv/bin/python" ]; then

@@ -14,6 +14,7 @@ use switchyard_adapters::site::Factor;
 use switchyard_adapters::{AdapterPackage, PackageMeta, Site, Task};
 
 use super::base::{LimitArgs, base_spec};
+use super::rules::RuleFile;
 
 fn parse_rule(text: &str) -> Result<RenameRule, String> {
     RenameRule::parse(text).map_err(|e| e.to_string())
@@ -26,6 +27,7 @@ fn parse_task(text: &str) -> Result<Task, String> {
 
 #[derive(Debug, Clone, clap::Args)]
 #[command(group = clap::ArgGroup::new("base").required(true).args(["fingerprint", "model"]))]
+#[command(group = clap::ArgGroup::new("naming").required(true).multiple(true).args(["rules", "rule_file"]))]
 pub struct PackArgs {
     /// A safetensors file holding the factor tensors (any names, any float dtype).
     pub input: PathBuf,
@@ -37,14 +39,22 @@ pub struct PackArgs {
     /// more characters other than '.'. Repeatable; the first matching rule wins. Targets are
     /// layers.N.MODULE.A [r, in] / .B [out, r], MODULE one of attn.q attn.k attn.v attn.o
     /// mlp.gate mlp.up mlp.down, plus head.weight and head.bias.
-    #[arg(long = "rename", value_name = "PATTERN=TEMPLATE", value_parser = parse_rule, required = true)]
+    #[arg(long = "rename", value_name = "PATTERN=TEMPLATE", value_parser = parse_rule)]
     pub rules: Vec<RenameRule>,
-    /// The rank r (rows of every A); taken from the factors when omitted.
+    /// A rule file for a whole layout instead of --rename flags: a built-in name (peft-bert,
+    /// peft-llama: adapters as the peft library saves them) or a path to one (see
+    /// config/rename/). Its rules apply after any --rename rules; rank and alpha come from the
+    /// settings file it names beside the input (peft: adapter_config.json) unless given here.
+    #[arg(long = "rules", value_name = "NAME-OR-PATH")]
+    pub rule_file: Option<String>,
+    /// The rank r (rows of every A); from the rule file's settings, else the factors, when
+    /// omitted.
     #[arg(long)]
     pub rank: Option<usize>,
-    /// The LoRA alpha; the update is scaled by alpha / rank.
+    /// The LoRA alpha; the update is scaled by alpha / rank. Required unless the rule file
+    /// reads it.
     #[arg(long)]
-    pub alpha: f64,
+    pub alpha: Option<f64>,
     /// What the adapter is for: generate, embed or classify.
     #[arg(long, value_parser = parse_task)]
     pub task: Task,
@@ -75,6 +85,25 @@ pub fn run(args: &PackArgs, mut out: impl Write) -> anyhow::Result<()> {
         ),
         None => None,
     };
+    let file_rules = args.rule_file.as_deref().map(RuleFile::load).transpose()?;
+    let settings = match &file_rules {
+        Some(f) => f.read_settings(&args.input)?,
+        None => Default::default(),
+    };
+    let rules: Vec<RenameRule> = args
+        .rules
+        .iter()
+        .chain(file_rules.iter().flat_map(|f| f.rules.iter()))
+        .cloned()
+        .collect();
+    let alpha = args
+        .alpha
+        .or(settings.alpha)
+        .with_context(|| match &file_rules {
+            Some(f) => format!("give --alpha: the rule file {} does not read one", f.source),
+            None => "give --alpha (or --rules with a rule file that reads it)".to_owned(),
+        })?;
+    let rank = args.rank.or(settings.rank);
     let input = candle_core::safetensors::load(&args.input, &Device::Cpu)
         .with_context(|| format!("reading {} as safetensors", args.input.display()))?;
     let mut names: Vec<&String> = input.keys().collect();
@@ -82,7 +111,7 @@ pub fn run(args: &PackArgs, mut out: impl Write) -> anyhow::Result<()> {
     let mut renamed: BTreeMap<String, (String, Tensor)> = BTreeMap::new();
     let mut unmatched = Vec::new();
     for name in names {
-        let Some(new) = rename(&args.rules, name) else {
+        let Some(new) = rename(&rules, name) else {
             unmatched.push(name.as_str());
             continue;
         };
@@ -106,7 +135,7 @@ pub fn run(args: &PackArgs, mut out: impl Write) -> anyhow::Result<()> {
     if !unmatched.is_empty() && !args.drop_unmatched {
         let shown: Vec<&str> = unmatched.iter().take(8).copied().collect();
         bail!(
-            "{}: {} tensor(s) match no --rename rule: {}{}; add a rule for them or pass --drop-unmatched",
+            "{}: {} tensor(s) match no rename rule: {}{}; add a rule for them or pass --drop-unmatched",
             args.input.display(),
             unmatched.len(),
             shown.join(", "),
@@ -117,7 +146,12 @@ pub fn run(args: &PackArgs, mut out: impl Write) -> anyhow::Result<()> {
             }
         );
     }
-    let pkg = build(args, renamed, spec.as_ref().map(|s| s.fingerprint.clone()))?;
+    let pkg = build(
+        args,
+        (rank, alpha),
+        renamed,
+        spec.as_ref().map(|s| s.fingerprint.clone()),
+    )?;
     let bytes = pkg.to_bytes()?;
     let file = args.output.display().to_string();
     // Read back as any package is, so a bad pack is refused here and not at publish time.
@@ -153,6 +187,7 @@ pub fn run(args: &PackArgs, mut out: impl Write) -> anyhow::Result<()> {
 
 fn build(
     args: &PackArgs,
+    (rank, alpha): (Option<usize>, f64),
     renamed: BTreeMap<String, (String, Tensor)>,
     model_fingerprint: Option<String>,
 ) -> anyhow::Result<AdapterPackage> {
@@ -174,7 +209,7 @@ fn build(
             },
         }
     }
-    let rank = match args.rank {
+    let rank = match rank {
         Some(r) => r,
         None => a_parts
             .values()
@@ -204,7 +239,7 @@ fn build(
         meta: PackageMeta {
             base_fingerprint,
             rank,
-            alpha: args.alpha,
+            alpha,
             task: args.task,
             labels: args.labels.clone(),
             description: args.description.clone(),

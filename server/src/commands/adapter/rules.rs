@@ -1,0 +1,252 @@
+//! Rule files for `switchyard adapter pack --rules`: the rename rules of one layout of adapters
+//! trained elsewhere, as data (TOML), with where that layout keeps its rank and alpha.
+//!
+//! A rule file holds `about` (one line), `rules` (`PATTERN=TEMPLATE` texts, as `--rename` takes
+//! them) and optionally `[settings]`: `file` (a JSON file beside the weights), `rank` and `alpha`
+//! (its keys holding them), `must_be_unset` (keys that must be absent, false, null, 0 or empty)
+//! and `must_be` (keys that must hold exactly a given text). The files shipped with switchyard
+//! live in `config/rename/` and are built into the binary, so `--rules NAME` works anywhere;
+//! `--rules PATH` reads any other file.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, bail};
+use serde::Deserialize;
+use switchyard_adapters::rename::RenameRule;
+
+/// The rule files shipped with switchyard, by name.
+pub const BUILT_IN: [(&str, &str); 2] = [
+    (
+        "peft-bert",
+        include_str!("../../../../config/rename/peft-bert.toml"),
+    ),
+    (
+        "peft-llama",
+        include_str!("../../../../config/rename/peft-llama.toml"),
+    ),
+];
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RuleFileText {
+    about: String,
+    rules: Vec<String>,
+    settings: Option<Settings>,
+}
+
+/// Where a layout keeps its rank and alpha, and what its settings must not ask for.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Settings {
+    pub file: String,
+    pub rank: Option<String>,
+    pub alpha: Option<String>,
+    #[serde(default)]
+    pub must_be_unset: Vec<String>,
+    #[serde(default)]
+    pub must_be: BTreeMap<String, String>,
+}
+
+/// A parsed rule file.
+#[derive(Debug, Clone)]
+pub struct RuleFile {
+    /// The name or path it was given as.
+    pub source: String,
+    pub about: String,
+    pub rules: Vec<RenameRule>,
+    pub settings: Option<Settings>,
+}
+
+/// Rank and alpha read from a settings file.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Read {
+    pub rank: Option<usize>,
+    pub alpha: Option<f64>,
+    pub from: Option<PathBuf>,
+}
+
+impl RuleFile {
+    /// A built-in rule file by name, or a file at `name_or_path`.
+    pub fn load(name_or_path: &str) -> anyhow::Result<Self> {
+        let text = match BUILT_IN.iter().find(|(n, _)| *n == name_or_path) {
+            Some((_, text)) => (*text).to_owned(),
+            None => {
+                let path = Path::new(name_or_path);
+                if !path.exists() {
+                    let names: Vec<&str> = BUILT_IN.iter().map(|(n, _)| *n).collect();
+                    bail!(
+                        "--rules {name_or_path:?} is neither a built-in rule file ({}) nor a file",
+                        names.join(", ")
+                    );
+                }
+                std::fs::read_to_string(path)
+                    .with_context(|| format!("reading the rule file {}", path.display()))?
+            }
+        };
+        Self::parse(name_or_path, &text)
+    }
+
+    /// Parses the text of a rule file; errors name `source` and what is wrong.
+    pub fn parse(source: &str, text: &str) -> anyhow::Result<Self> {
+        let parsed: RuleFileText =
+            toml::from_str(text).with_context(|| format!("rule file {source}"))?;
+        if parsed.rules.is_empty() {
+            bail!("rule file {source}: `rules` is empty");
+        }
+        let rules = parsed
+            .rules
+            .iter()
+            .enumerate()
+            .map(|(i, r)| {
+                RenameRule::parse(r).with_context(|| format!("rule file {source}: rules[{i}]"))
+            })
+            .collect::<anyhow::Result<Vec<_>>>()?;
+        Ok(Self {
+            source: source.to_owned(),
+            about: parsed.about,
+            rules,
+            settings: parsed.settings,
+        })
+    }
+
+    /// Rank and alpha from the settings file beside `weights` (nothing when the rule file names
+    /// no settings file); refuses settings the package cannot express, naming the key.
+    pub fn read_settings(&self, weights: &Path) -> anyhow::Result<Read> {
+        let Some(s) = &self.settings else {
+            return Ok(Read::default());
+        };
+        let path = weights.parent().unwrap_or(Path::new(".")).join(&s.file);
+        let text = std::fs::read_to_string(&path).with_context(|| {
+            format!(
+                "reading {} (rule file {} reads rank and alpha from it)",
+                path.display(),
+                self.source
+            )
+        })?;
+        let v: serde_json::Value = serde_json::from_str(&text)
+            .with_context(|| format!("{} is not JSON", path.display()))?;
+        let shown = path.display();
+        for key in &s.must_be_unset {
+            let set = match v.get(key) {
+                None | Some(serde_json::Value::Null) => false,
+                Some(serde_json::Value::Bool(b)) => *b,
+                Some(serde_json::Value::Number(n)) => n.as_f64() != Some(0.0),
+                Some(serde_json::Value::String(t)) => !t.is_empty(),
+                Some(serde_json::Value::Array(a)) => !a.is_empty(),
+                Some(serde_json::Value::Object(o)) => !o.is_empty(),
+            };
+            if set {
+                bail!(
+                    "{shown}: `{key}` is {}; a package holds one low-rank update per module scaled by alpha / rank, which cannot express it",
+                    v[key]
+                );
+            }
+        }
+        for (key, want) in &s.must_be {
+            if v.get(key).and_then(|x| x.as_str()) != Some(want.as_str()) {
+                bail!(
+                    "{shown}: `{key}` is {}; this layout is packed only when it is {want:?}",
+                    v.get(key).cloned().unwrap_or(serde_json::Value::Null)
+                );
+            }
+        }
+        let number = |key: &Option<String>| -> anyhow::Result<Option<f64>> {
+            match key {
+                None => Ok(None),
+                Some(k) => v
+                    .get(k)
+                    .and_then(|x| x.as_f64())
+                    .map(Some)
+                    .with_context(|| format!("{shown}: no number under `{k}`")),
+            }
+        };
+        let rank = match number(&s.rank)? {
+            Some(r) if r >= 1.0 && r.fract() == 0.0 => Some(r as usize),
+            Some(r) => bail!(
+                "{shown}: `{}` is {r}, not a whole rank",
+                s.rank.as_deref().unwrap_or_default()
+            ),
+            None => None,
+        };
+        Ok(Read {
+            rank,
+            alpha: number(&s.alpha)?,
+            from: Some(path),
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_built_in_rule_files_parse_and_map_the_layouts_they_name() {
+        let bert = RuleFile::load("peft-bert").unwrap();
+        let rename = |rules: &[RenameRule], n: &str| switchyard_adapters::rename::rename(rules, n);
+        assert_eq!(
+            rename(
+                &bert.rules,
+                "base_model.model.encoder.layer.3.attention.output.dense.lora_B.weight"
+            )
+            .as_deref(),
+            Some("layers.3.attn.o.B")
+        );
+        assert_eq!(
+            rename(
+                &bert.rules,
+                "base_model.model.bert.encoder.layer.0.output.dense.lora_A.weight"
+            )
+            .as_deref(),
+            Some("layers.0.mlp.down.A")
+        );
+        let llama = RuleFile::load("peft-llama").unwrap();
+        assert_eq!(
+            rename(
+                &llama.rules,
+                "base_model.model.model.layers.11.mlp.gate_proj.lora_A.weight"
+            )
+            .as_deref(),
+            Some("layers.11.mlp.gate.A")
+        );
+        assert!(rename(&llama.rules, "base_model.model.lm_head.lora_A.weight").is_none());
+    }
+
+    #[test]
+    fn settings_the_package_cannot_express_are_refused_naming_the_key() {
+        let dir = tempfile::tempdir().unwrap();
+        let weights = dir.path().join("adapter_model.safetensors");
+        let rules = RuleFile::load("peft-llama").unwrap();
+        let write = |v: serde_json::Value| {
+            std::fs::write(dir.path().join("adapter_config.json"), v.to_string()).unwrap()
+        };
+        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "none", "rank_pattern": {}}));
+        let read = rules.read_settings(&weights).unwrap();
+        assert_eq!((read.rank, read.alpha), (Some(8), Some(16.0)));
+        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "none", "use_rslora": true}));
+        let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
+        assert!(e.contains("`use_rslora` is true"), "{e}");
+        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "all"}));
+        let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
+        assert!(e.contains("`bias` is \"all\""), "{e}");
+        write(serde_json::json!({"lora_alpha": 16, "bias": "none"}));
+        let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
+        assert!(e.contains("no number under `r`"), "{e}");
+    }
+
+    #[test]
+    fn a_bad_rule_file_is_refused_naming_the_file_and_the_rule() {
+        let e = format!(
+            "{:#}",
+            RuleFile::parse(
+                "mine.toml",
+                "about = \"x\"\nrules = [\"a.{n}=b\", \"nope\"]"
+            )
+            .unwrap_err()
+        );
+        assert!(e.contains("rule file mine.toml: rules[1]"), "{e}");
+        let e = format!("{:#}", RuleFile::load("no-such-layout").unwrap_err());
+        assert!(e.contains("peft-bert, peft-llama"), "{e}");
+    }
+}

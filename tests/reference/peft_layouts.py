@@ -1,0 +1,119 @@
+#!/usr/bin/env python3
+"""Writes adapters in the layout the peft library saves (adapter_model.safetensors and
+adapter_config.json) for a BERT-family and a Llama-family base, with that library's own outputs,
+for switchyard's rule files (config/rename/peft-bert.toml, peft-llama.toml) and
+`switchyard adapter pack FILE --rules NAME`.
+
+Run with the venv made by setup-venv.sh, after generate.py (it reads the MiniLM base model the
+way generate.py does, and the tiny-llama fixture):
+
+    tests/reference/.venv/bin/python tests/reference/peft_layouts.py
+
+Nothing is trained: peft's LoraConfig(init_lora_weights=False) leaves both factors random, and
+every factor is then redrawn from one seeded generator (A ~ randn * 0.1, B ~ randn * 0.1) so the
+update is non-zero and reproducible. Ranks and alphas differ between the two (4/8 on MiniLM, 8/4
+on tiny-llama) so a scale read wrongly shows. The references are peft's own forward passes (the
+adapter unmerged, through PeftModel): MiniLM sentence embeddings through sentence-transformers
+(mean pooling, L2 normalised) and tiny-llama's logits over its input sentence.
+
+Writes, under tests/reference/fixtures/peft/:
+- minilm/adapter_model.safetensors, minilm/adapter_config.json
+- tiny-llama/adapter_model.safetensors, tiny-llama/adapter_config.json
+- reference.json: versions, the texts and ids, and the outputs.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+
+os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+os.environ.setdefault("CUDA_VISIBLE_DEVICES", "")
+
+import peft  # noqa: E402
+import torch  # noqa: E402
+from peft import LoraConfig, get_peft_model  # noqa: E402
+from sentence_transformers import SentenceTransformer  # noqa: E402
+from transformers import LlamaForCausalLM  # noqa: E402
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import generate as g  # noqa: E402
+
+OUT = g.FIXTURES / "peft"
+
+
+@torch.no_grad()
+def redraw(model, seed: int) -> None:
+    """Every lora_A / lora_B weight from one seeded generator, in named_parameters() order."""
+    gen = torch.Generator().manual_seed(seed)
+    n = 0
+    for name, p in model.named_parameters():
+        if ".lora_A." in name or ".lora_B." in name:
+            p.copy_(torch.randn(tuple(p.shape), generator=gen, dtype=torch.float32) * 0.1)
+            n += 1
+    assert n > 0, "no factors found"
+
+
+def save(model, folder: Path) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    model.save_pretrained(str(folder), safe_serialization=True)
+    # Only the two files an adapter is shared as.
+    for p in folder.iterdir():
+        if p.name not in ("adapter_model.safetensors", "adapter_config.json"):
+            p.unlink()
+    cfg = json.loads((folder / "adapter_config.json").read_text())
+    # Paths and versions of this machine are not part of the fixture.
+    cfg["base_model_name_or_path"] = None
+    cfg.pop("revision", None)
+    (folder / "adapter_config.json").write_text(json.dumps(cfg, indent=2, sort_keys=True) + "\n")
+
+
+def minilm() -> dict:
+    st = SentenceTransformer(str(g.resolve_base_model_dir()), device="cpu")
+    bert = st[0].auto_model
+    config = LoraConfig(r=4, lora_alpha=8, init_lora_weights=False,
+                        target_modules=["query", "key", "value", "attention.output.dense",
+                                        "intermediate.dense", "output.dense"])
+    wrapped = get_peft_model(bert, config)
+    redraw(wrapped, 41)
+    wrapped.eval()
+    st[0].auto_model = wrapped
+    texts = g.EMBED_SENTENCES[:6]
+    emb = st.encode(texts, convert_to_tensor=True, normalize_embeddings=True, batch_size=8).to(torch.float32)
+    save(wrapped, OUT / "minilm")
+    return {"texts": texts, "embeddings": g.f32_list(emb)}
+
+
+def tiny_llama() -> dict:
+    model = LlamaForCausalLM.from_pretrained(str(g.FIXTURES / "tiny-llama"), attn_implementation="eager",
+                                             local_files_only=True).eval()
+    config = LoraConfig(r=8, lora_alpha=4, init_lora_weights=False,
+                        target_modules=["q_proj", "k_proj", "v_proj", "o_proj", "gate_proj", "up_proj",
+                                        "down_proj"])
+    wrapped = get_peft_model(model, config)
+    redraw(wrapped, 42)
+    wrapped.eval()
+    ref = json.loads((g.FIXTURES / "tiny-llama-reference.json").read_text())
+    ids = ref["input_ids"]
+    with torch.no_grad():
+        logits = wrapped(input_ids=torch.tensor([ids]), use_cache=False).logits[0].to(torch.float32)
+    save(wrapped, OUT / "tiny-llama")
+    return {"input_ids": ids, "logits": g.f32_list(logits)}
+
+
+def main() -> None:
+    torch.set_num_threads(g.THREADS)
+    torch.use_deterministic_algorithms(True)
+    out = {
+        "generated_by": g.versions() | {"peft": peft.__version__, "script": "tests/reference/peft_layouts.py"},
+        "minilm": minilm(),
+        "tiny_llama": tiny_llama(),
+    }
+    g.dump_json(out, OUT / "reference.json")
+    print(f"wrote {OUT}")
+
+
+if __name__ == "__main__":
+    main()
