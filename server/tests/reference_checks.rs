@@ -945,3 +945,72 @@ fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
     let base = max_abs(&got, &matrix(&d.reference["logits"]));
     assert!(base > 0.1, "the adapter moves the logits ({base})");
 }
+
+/// Copies a model folder (one level of subfolders, as sentence-transformers lays it out).
+fn copy_model(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for entry in std::fs::read_dir(from).unwrap() {
+        let entry = entry.unwrap();
+        let target = to.join(entry.file_name());
+        if entry.file_type().unwrap().is_dir() {
+            copy_model(&entry.path(), &target);
+        } else {
+            std::fs::copy(entry.path(), target).unwrap();
+        }
+    }
+}
+
+/// The pooling comes from the model folder's own sentence-transformers files: MiniLM with its
+/// pooling changed to the CLS token unnormalised, the last token normalised and the mean
+/// unnormalised (tests/reference/pooling.py: the same modules.json and 1_Pooling/config.json,
+/// and sentence-transformers' encode of each) gives sentence-transformers' vectors, direction
+/// (cosine >= 0.99999) and length (within 1e-4 relative).
+#[test]
+fn minilm_pools_as_its_sentence_transformers_files_say() {
+    let reference = read_json(&fixtures().join("pooling-reference.json"));
+    let texts: Vec<String> = reference["texts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap().to_owned())
+        .collect();
+    let refs: Vec<&str> = texts.iter().map(String::as_str).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for (name, variant) in reference["variants"].as_object().unwrap() {
+        let folder = dir.path().join(name);
+        copy_model(&base_model_dir(), &folder);
+        let write = |file: &str, v: &Value| {
+            std::fs::write(folder.join(file), serde_json::to_string_pretty(v).unwrap()).unwrap()
+        };
+        write("modules.json", &variant["modules"]);
+        write("1_Pooling/config.json", &variant["pooling_config"]);
+        let e = Embedder::load(&folder).unwrap();
+        let got = e.embed(&refs, &vec![None; refs.len()]).unwrap();
+        let want = matrix(&variant["embeddings"]);
+        let least = min_cosine(&got, &want);
+        assert!(least >= 0.99999, "{name}: least cosine {least}");
+        for (g, w) in got.iter().zip(&want) {
+            let norm = |v: &[f32]| v.iter().map(|x| (*x as f64).powi(2)).sum::<f64>().sqrt();
+            let (ng, nw) = (norm(g), norm(w));
+            assert!(
+                (ng - nw).abs() <= 1e-4 * nw,
+                "{name}: length {ng} against {nw}"
+            );
+        }
+        println!(
+            "{name}: pooling {} normalise {}, least cosine {least:.7}",
+            e.pooling().mode.name(),
+            e.pooling().normalize
+        );
+    }
+    // A pooling switchyard does not implement is refused naming the file and the field.
+    let folder = dir.path().join("max");
+    copy_model(&base_model_dir(), &folder);
+    std::fs::write(
+        folder.join("1_Pooling/config.json"),
+        r#"{"pooling_mode_mean_tokens": false, "pooling_mode_max_tokens": true}"#,
+    )
+    .unwrap();
+    let e = format!("{:#}", Embedder::load(&folder).err().unwrap());
+    assert!(e.contains("pooling_mode_max_tokens is true"), "{e}");
+}

@@ -11,7 +11,7 @@ use switchyard_adapters::{Adapter, BaseSpec, base_fingerprint};
 use switchyard_kernels::WeightFormat;
 use tokenizers::{Tokenizer, TruncationParams};
 
-use crate::model::bert::{BertConfig, BertModel, mean_pool_normalise};
+use crate::model::bert::{BertConfig, BertModel};
 use crate::model::checkpoint::{Checkpoint, Weights, load_tokenizer};
 use crate::model::linear::RowAdapters;
 
@@ -24,6 +24,7 @@ pub struct Embedder {
     spec: BaseSpec,
     max_tokens: usize,
     format: WeightFormat,
+    pooling: Pooling,
 }
 
 impl Embedder {
@@ -56,6 +57,7 @@ impl Embedder {
             }))
             .map_err(|e| anyhow::anyhow!("setting truncation: {e}"))?;
         tokenizer.with_padding(None);
+        let pooling = Pooling::read(dir)?;
         Ok(Self {
             model,
             tokenizer,
@@ -63,7 +65,13 @@ impl Embedder {
             spec,
             max_tokens,
             format,
+            pooling,
         })
+    }
+
+    /// How token states become the sentence vector (from the sentence-transformers files).
+    pub fn pooling(&self) -> Pooling {
+        self.pooling
     }
 
     /// The format the base weights are held in.
@@ -165,7 +173,7 @@ impl Embedder {
         let ids_t = Tensor::from_vec(flat_ids, (b, t), &dev)?;
         let mask_t = Tensor::from_vec(flat_mask, (b, t), &dev)?;
         let hidden = self.model.forward(&ids_t, &mask_t, rows)?;
-        let pooled = mean_pool_normalise(&hidden, &mask_t)?;
+        let pooled = self.pooling.apply(&hidden, &mask_t)?;
         Ok(pooled.to_vec2::<f32>()?)
     }
 }
@@ -180,4 +188,145 @@ fn sentence_max_tokens(dir: &Path) -> Option<usize> {
     let text = std::fs::read_to_string(dir.join("sentence_bert_config.json")).ok()?;
     let v: serde_json::Value = serde_json::from_str(&text).ok()?;
     v.get("max_seq_length")?.as_u64().map(|n| n as usize)
+}
+
+/// How token states become one sentence vector, as a sentence-transformers folder describes it
+/// (`modules.json`, and the pooling module's `config.json`): the mean over real tokens, the first
+/// token (CLS) or the last real token, then L2-normalised when a `Normalize` module follows.
+/// A folder without `modules.json` gets the mean, normalised (what MiniLM-style models use).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Pooling {
+    pub mode: PoolingMode,
+    pub normalize: bool,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum PoolingMode {
+    Mean,
+    Cls,
+    LastToken,
+}
+
+impl PoolingMode {
+    pub fn name(self) -> &'static str {
+        match self {
+            PoolingMode::Mean => "mean",
+            PoolingMode::Cls => "cls",
+            PoolingMode::LastToken => "last token",
+        }
+    }
+}
+
+impl Default for Pooling {
+    fn default() -> Self {
+        Self {
+            mode: PoolingMode::Mean,
+            normalize: true,
+        }
+    }
+}
+
+impl Pooling {
+    /// Reads the sentence-transformers files in `dir`; refuses modules and pooling modes this
+    /// runtime does not implement, naming the file and the field.
+    pub fn read(dir: &Path) -> anyhow::Result<Self> {
+        let modules_path = dir.join("modules.json");
+        if !modules_path.exists() {
+            return Ok(Self::default());
+        }
+        let shown = modules_path.display();
+        let modules: Vec<serde_json::Value> = serde_json::from_str(
+            &std::fs::read_to_string(&modules_path).with_context(|| format!("reading {shown}"))?,
+        )
+        .with_context(|| format!("{shown} is not a JSON list of modules"))?;
+        let mut pooling = None;
+        let mut normalize = false;
+        for (i, m) in modules.iter().enumerate() {
+            let kind = m["type"].as_str().unwrap_or_default();
+            match kind.rsplit('.').next().unwrap_or_default() {
+                "Transformer" => {}
+                "Pooling" => {
+                    let path = dir.join(m["path"].as_str().unwrap_or_default());
+                    pooling = Some(Self::read_pooling(&path.join("config.json"))?);
+                }
+                "Normalize" => normalize = true,
+                _ => anyhow::bail!(
+                    "{shown}: module {i} is {kind:?}; switchyard runs Transformer, Pooling and Normalize modules only"
+                ),
+            }
+        }
+        Ok(Self {
+            mode: pooling.with_context(|| format!("{shown} lists no Pooling module"))?,
+            normalize,
+        })
+    }
+
+    fn read_pooling(path: &Path) -> anyhow::Result<PoolingMode> {
+        let shown = path.display();
+        let v: serde_json::Value = serde_json::from_str(
+            &std::fs::read_to_string(path).with_context(|| format!("reading {shown}"))?,
+        )
+        .with_context(|| format!("{shown} is not JSON"))?;
+        let on = |k: &str| v.get(k).and_then(|x| x.as_bool()).unwrap_or(false);
+        for k in [
+            "pooling_mode_max_tokens",
+            "pooling_mode_mean_sqrt_len_tokens",
+            "pooling_mode_weightedmean_tokens",
+        ] {
+            if on(k) {
+                anyhow::bail!(
+                    "{shown}: {k} is true; switchyard pools by mean, CLS token or last token"
+                );
+            }
+        }
+        let modes: Vec<PoolingMode> = [
+            ("pooling_mode_mean_tokens", PoolingMode::Mean),
+            ("pooling_mode_cls_token", PoolingMode::Cls),
+            ("pooling_mode_lasttoken", PoolingMode::LastToken),
+        ]
+        .into_iter()
+        .filter(|(k, _)| on(k))
+        .map(|(_, m)| m)
+        .collect();
+        match modes[..] {
+            [one] => Ok(one),
+            [] => anyhow::bail!("{shown}: no pooling mode is true"),
+            _ => anyhow::bail!(
+                "{shown}: more than one pooling mode is true (their vectors would be joined); switchyard takes one"
+            ),
+        }
+    }
+
+    /// `[b, t, h]` token states and their `[b, t]` mask (real tokens first in each row) →
+    /// `[b, h]` sentence vectors.
+    pub fn apply(&self, hidden: &Tensor, mask: &Tensor) -> candle_core::Result<Tensor> {
+        use candle_core::{D, DType};
+        let pooled = match self.mode {
+            PoolingMode::Mean => {
+                let m = mask.to_dtype(DType::F32)?.unsqueeze(D::Minus1)?;
+                let summed = hidden.broadcast_mul(&m)?.sum(1)?;
+                let counts = m.sum(1)?.clamp(1e-9, f64::MAX)?;
+                summed.broadcast_div(&counts)?
+            }
+            PoolingMode::Cls => hidden.narrow(1, 0, 1)?.squeeze(1)?,
+            PoolingMode::LastToken => {
+                let lens: Vec<u32> = mask.to_dtype(DType::U32)?.sum(1)?.to_vec1()?;
+                let rows = lens
+                    .iter()
+                    .enumerate()
+                    .map(|(b, &n)| hidden.get(b)?.get(n.saturating_sub(1) as usize))
+                    .collect::<candle_core::Result<Vec<_>>>()?;
+                Tensor::stack(&rows, 0)?
+            }
+        };
+        if !self.normalize {
+            return Ok(pooled);
+        }
+        let norm = pooled
+            .sqr()?
+            .sum_keepdim(D::Minus1)?
+            .sqrt()?
+            .clamp(1e-12, f64::MAX)?;
+        pooled.broadcast_div(&norm)
+    }
 }

@@ -13,7 +13,7 @@ use rand::Rng;
 use switchyard_adapters::{Module, Site};
 use switchyard_kernels::{PackedWeight, WeightFormat};
 
-use crate::model::bert::{BertConfig, mean_pool_normalise};
+use crate::model::bert::BertConfig;
 use crate::model::checkpoint::Checkpoint;
 
 /// A projection of the base: `weight [out, in]`, `bias [out]`.
@@ -62,6 +62,8 @@ pub struct FrozenEncoder {
     heads: usize,
     eps: f64,
     pub hidden_size: usize,
+    /// The checkpoint's own pooling (sentence-transformers files), as serving applies it.
+    pooling: crate::model::embedder::Pooling,
 }
 
 /// The trainable factors of one adapter: per site `A [r, in]` and `B [out, r]`, scale `alpha / r`.
@@ -171,6 +173,7 @@ impl FrozenEncoder {
                 cfg.hidden_act
             );
         }
+        let pooling = crate::model::embedder::Pooling::read(&ckpt.dir)?;
         let vb = ckpt.var_builder()?;
         let vb = if vb.contains_tensor("bert.embeddings.word_embeddings.weight") {
             vb.pp("bert")
@@ -221,6 +224,7 @@ impl FrozenEncoder {
             heads: cfg.num_attention_heads,
             eps: cfg.layer_norm_eps,
             hidden_size: h,
+            pooling,
         })
     }
 
@@ -273,7 +277,7 @@ impl FrozenEncoder {
             let inner = proj(&attn, Module::MlpUp)?.gelu_erf()?;
             x = self.norm(&(proj(&inner, Module::MlpDown)? + attn)?, &layer.out_norm)?;
         }
-        mean_pool_normalise(&x, mask)
+        self.pooling.apply(&x, mask)
     }
 
     fn norm(&self, x: &Tensor, n: &Norm) -> candle_core::Result<Tensor> {
