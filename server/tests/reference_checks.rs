@@ -1014,3 +1014,43 @@ fn minilm_pools_as_its_sentence_transformers_files_say() {
     let e = format!("{:#}", Embedder::load(&folder).err().unwrap());
     assert!(e.contains("pooling_mode_max_tokens is true"), "{e}");
 }
+
+/// RoBERTa and XLM-R (tests/reference/encoders.py, transformers' RobertaModel and
+/// XLMRobertaModel on tiny seeded models; their positions start at pad_token_id + 1): a padded
+/// batch of four sentences of 56 to 63 tokens embeds as transformers' mean-pooled, normalised
+/// last hidden states (cosine >= 0.99999), with and without an adapter on all six projections.
+#[test]
+fn tiny_roberta_and_xlm_roberta_embed_like_transformers() {
+    for name in ["tiny-roberta", "tiny-xlm-roberta"] {
+        let reference = read_json(&fixtures().join(format!("{name}-reference.json")));
+        let e = Embedder::load(&fixtures().join(name)).unwrap();
+        assert_eq!(
+            e.spec().fingerprint,
+            reference["base_fingerprint"].as_str().unwrap()
+        );
+        let texts: Vec<&str> = reference["texts"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|t| t.as_str().unwrap())
+            .collect();
+        let tokens = e.tokenize(&texts).unwrap();
+        let want_ids: Vec<Vec<u32>> = reference["input_ids"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(ids)
+            .collect();
+        assert_eq!(tokens, want_ids, "{name}: token ids");
+        let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
+        let least = min_cosine(&got, &matrix(&reference["embeddings"]));
+        assert!(least >= 0.99999, "{name}: least cosine {least}");
+        for (aname, want) in reference["adapters"].as_object().unwrap() {
+            let adapter =
+                load_adapter(&fixtures().join(want["file"].as_str().unwrap()), e.spec()).unwrap();
+            let got = e.embed(&texts, &vec![Some(adapter); texts.len()]).unwrap();
+            let least = min_cosine(&got, &matrix(&want["embeddings"]));
+            assert!(least >= 0.99999, "{name} + {aname}: least cosine {least}");
+        }
+    }
+}

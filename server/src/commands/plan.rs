@@ -68,7 +68,8 @@ fn field(config: &serde_json::Value, key: &str, file: &Path) -> anyhow::Result<u
 /// decoder runtimes build).
 pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Result<ConfigShapes> {
     let kind = model_type(config, file)?;
-    if kind != "bert" && !crate::model::llama::DECODER_TYPES.contains(&kind.as_str()) {
+    let encoder = crate::model::bert::ENCODER_TYPES.contains(&kind.as_str());
+    if !encoder && !crate::model::llama::DECODER_TYPES.contains(&kind.as_str()) {
         bail!(
             "{} has model_type {kind:?}; switchyard plans for {KNOWN_MODEL_TYPES}",
             file.display()
@@ -78,15 +79,15 @@ pub fn shapes_from_config(config: &serde_json::Value, file: &Path) -> anyhow::Re
     let inter = field(config, "intermediate_size", file)?;
     let layers = field(config, "num_hidden_layers", file)?;
     let mut shapes = BTreeMap::new();
-    match kind.as_str() {
-        "bert" => {
+    match encoder {
+        true => {
             for m in [Module::AttnQ, Module::AttnK, Module::AttnV, Module::AttnO] {
                 shapes.insert(m, (hidden, hidden));
             }
             shapes.insert(Module::MlpUp, (inter, hidden));
             shapes.insert(Module::MlpDown, (hidden, inter));
         }
-        _ => {
+        false => {
             let heads = field(config, "num_attention_heads", file)?;
             let kv_heads = match config.get("num_key_value_heads") {
                 Some(serde_json::Value::Null) | None => heads,

@@ -79,12 +79,14 @@ pub fn load_backbone(dir: &Path, format: WeightFormat) -> anyhow::Result<Backbon
         serde_json::from_str(&text).with_context(|| format!("parsing {}", config.display()))?;
     let model_type = v.get("model_type").and_then(|m| m.as_str()).unwrap_or("");
     match model_type {
-        "bert" => Ok(Backbone::Encoder(Embedder::load_as(dir, format)?)),
+        t if crate::model::bert::ENCODER_TYPES.contains(&t) => {
+            Ok(Backbone::Encoder(Embedder::load_as(dir, format)?))
+        }
         t if crate::model::llama::DECODER_TYPES.contains(&t) => {
             Ok(Backbone::Decoder(Generator::load_as(dir, format)?))
         }
         other => anyhow::bail!(
-            "{}: model_type {other:?} is not supported (encoders: bert; decoders: llama, mistral, qwen2, gemma)",
+            "{}: model_type {other:?} is not supported (encoders: bert, roberta, xlm-roberta; decoders: llama, mistral, qwen2, gemma, phi3)",
             config.display()
         ),
     }

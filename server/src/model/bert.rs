@@ -35,6 +35,35 @@ pub struct BertConfig {
     pub layer_norm_eps: f64,
     #[serde(default)]
     pub position_embedding_type: Option<String>,
+    /// `bert`, or `roberta` / `xlm-roberta` (positions counted from `pad_token_id + 1`).
+    #[serde(default = "default_encoder_type")]
+    pub model_type: String,
+    #[serde(default)]
+    pub pad_token_id: Option<u32>,
+}
+
+fn default_encoder_type() -> String {
+    "bert".to_owned()
+}
+
+/// The `model_type`s the encoder runtime implements.
+pub const ENCODER_TYPES: [&str; 3] = ["bert", "roberta", "xlm-roberta"];
+
+impl BertConfig {
+    /// The first position id of a sequence: 0 for BERT; RoBERTa and XLM-R count from
+    /// `pad_token_id + 1` (their position table keeps the first rows for padding).
+    pub fn position_offset(&self) -> usize {
+        match self.model_type.as_str() {
+            "roberta" | "xlm-roberta" => self.pad_token_id.unwrap_or(1) as usize + 1,
+            _ => 0,
+        }
+    }
+
+    /// The most tokens one sequence may have.
+    pub fn max_tokens(&self) -> usize {
+        self.max_position_embeddings
+            .saturating_sub(self.position_offset())
+    }
 }
 
 fn default_act() -> String {
@@ -53,6 +82,8 @@ fn default_ln_eps() -> f64 {
 struct Embeddings {
     word: Arc<PackedWeight>,
     position: Embedding,
+    /// The position id of a sequence's first token.
+    position_offset: u32,
     token_type: Embedding,
     norm: LayerNorm,
 }
@@ -70,6 +101,7 @@ impl Embeddings {
                     .packed("weight", cfg.vocab_size, h)?,
             ),
             position: table("position_embeddings", cfg.max_position_embeddings)?,
+            position_offset: cfg.position_offset() as u32,
             token_type: table("token_type_embeddings", cfg.type_vocab_size)?,
             norm: LayerNorm::new(
                 ln.tensor("weight", &[h])?,
@@ -91,7 +123,8 @@ impl Embeddings {
             self.word.row_into(id as usize, row);
         }
         let words = Tensor::from_vec(words, (b, t, h), ids.device())?;
-        let positions = Tensor::arange(0u32, t as u32, ids.device())?;
+        let first = self.position_offset;
+        let positions = Tensor::arange(first, first + t as u32, ids.device())?;
         let x = words
             .add(&self.token_type.forward(type_ids)?)?
             .broadcast_add(&self.position.forward(&positions)?)?;
@@ -329,16 +362,25 @@ pub struct BertModel {
 }
 
 impl BertModel {
-    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.` prefix on
-    /// the tensor names is detected and skipped. Every matrix is held in `vb.format`.
+    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.` or
+    /// `roberta.` prefix on the tensor names is detected and skipped. Every matrix is held in `vb.format`.
     pub fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
         if let Some(kind) = &cfg.position_embedding_type
             && kind != "absolute"
         {
             candle_core::bail!("config.json position_embedding_type {kind:?} is not supported");
         }
+        if !ENCODER_TYPES.contains(&cfg.model_type.as_str()) {
+            candle_core::bail!(
+                "config.json: model_type {:?} is not an encoder switchyard runs (supported: {})",
+                cfg.model_type,
+                ENCODER_TYPES.join(", ")
+            );
+        }
         let vb = if vb.contains("bert.embeddings.word_embeddings.weight") {
             vb.pp("bert")
+        } else if vb.contains("roberta.embeddings.word_embeddings.weight") {
+            vb.pp("roberta")
         } else {
             vb.clone()
         };

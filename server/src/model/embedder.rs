@@ -43,7 +43,9 @@ impl Embedder {
             .with_context(|| format!("building the encoder from {}", dir.display()))?;
         let fingerprint = base_fingerprint(ckpt.model_type(), &ckpt.tensor_shapes());
         let spec = model.spec(ckpt.model_type(), fingerprint);
-        let max_tokens = sentence_max_tokens(dir).unwrap_or(cfg.max_position_embeddings);
+        let max_tokens = sentence_max_tokens(dir)
+            .unwrap_or(cfg.max_tokens())
+            .min(cfg.max_tokens());
         let mut untruncated = load_tokenizer(&ckpt.tokenizer_path())?;
         untruncated
             .with_truncation(None)

@@ -167,6 +167,12 @@ impl FrozenEncoder {
                 ckpt.dir.display()
             )
         })?;
+        if cfg.model_type != "bert" {
+            bail!(
+                "training supports model_type \"bert\"; config.json has {:?} (serving it works; train the adapter elsewhere and bring it in with `adapter pack --rules`)",
+                cfg.model_type
+            );
+        }
         if cfg.hidden_act != "gelu" {
             bail!(
                 "training supports hidden_act \"gelu\"; config.json has {:?}",

@@ -11,7 +11,8 @@ use crate::model::embedder::Embedder;
 use crate::model::generator::Generator;
 
 /// The model families a base folder can hold, by config.json's `model_type`.
-pub const KNOWN_MODEL_TYPES: &str = "bert (encoder) and llama, mistral, qwen2 and gemma (decoders)";
+pub const KNOWN_MODEL_TYPES: &str =
+    "bert, roberta and xlm-roberta (encoders) and llama, mistral, qwen2, gemma and phi3 (decoders)";
 
 /// Reads `config.json` from a model folder, or the file itself when `path` is a JSON file.
 pub fn read_config(path: &Path) -> anyhow::Result<(PathBuf, serde_json::Value)> {
@@ -46,7 +47,7 @@ pub fn model_type(config: &serde_json::Value, file: &Path) -> anyhow::Result<Str
 pub fn base_spec(dir: &Path) -> anyhow::Result<BaseSpec> {
     let (file, config) = read_config(dir)?;
     let spec = match model_type(&config, &file)?.as_str() {
-        "bert" => Embedder::load(dir)?.spec().clone(),
+        t if crate::model::bert::ENCODER_TYPES.contains(&t) => Embedder::load(dir)?.spec().clone(),
         t if crate::model::llama::DECODER_TYPES.contains(&t) => {
             Generator::load(dir)?.spec().clone()
         }
