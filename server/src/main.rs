@@ -47,8 +47,22 @@ enum Command {
         #[arg(long)]
         adapter: Option<PathBuf>,
         /// The text to continue.
-        #[arg(long)]
-        prompt: String,
+        #[arg(
+            long,
+            required_unless_present = "messages",
+            conflicts_with = "messages"
+        )]
+        prompt: Option<String>,
+        /// A JSON file holding a list of {"role", "content"} messages, rendered with the
+        /// checkpoint's chat template (instead of --prompt).
+        #[arg(long, value_name = "FILE.json")]
+        messages: Option<PathBuf>,
+        /// End the output where this text appears (not printed). Repeatable.
+        #[arg(long = "end-at", value_name = "TEXT")]
+        end_texts: Vec<String>,
+        /// End the output when this token id is sampled (not printed). Repeatable.
+        #[arg(long = "end-token", value_name = "ID")]
+        end_tokens: Vec<u32>,
         /// Most new tokens to generate.
         #[arg(long, default_value_t = 64)]
         limit: usize,
@@ -197,6 +211,9 @@ fn main() {
             model,
             adapter,
             prompt,
+            messages,
+            end_texts,
+            end_tokens,
             limit,
             temperature,
             top_p,
@@ -206,7 +223,15 @@ fn main() {
             &generate::GenerateOptions {
                 model,
                 adapter,
-                prompt,
+                input: match (prompt, messages) {
+                    (Some(p), _) => generate::Input::Prompt(p),
+                    (None, Some(file)) => generate::Input::Messages(file),
+                    (None, None) => unreachable!("clap requires one"),
+                },
+                end_at: switchyard_server::engine::end_at::EndAt {
+                    texts: end_texts,
+                    token_ids: end_tokens,
+                },
                 limit,
                 sampling: SamplingParams {
                     temperature,

@@ -67,6 +67,7 @@ fn greedy_tokens(
             limit: 16,
             sampling: SamplingParams::default(),
             stop_at_eos: false,
+            end_at: Default::default(),
         }])
         .unwrap()
         .remove(0)
@@ -736,6 +737,7 @@ fn batched_decode_of_different_lengths_and_adapters_equals_each_sequence_alone()
         limit,
         sampling: SamplingParams::default(),
         stop_at_eos: false,
+        end_at: Default::default(),
     })
     .collect();
     let together = d.generator.generate(&requests).unwrap();
@@ -765,6 +767,7 @@ fn sampling_with_a_seed_is_repeatable_and_stays_in_vocabulary() {
             seed: 42,
         },
         stop_at_eos: false,
+        end_at: Default::default(),
     };
     let a = d.generator.generate(std::slice::from_ref(&req)).unwrap();
     let b = d.generator.generate(std::slice::from_ref(&req)).unwrap();

@@ -2,6 +2,8 @@
 //! temporary directory, texts on stdin, JSON on stdout, checked against the reference fixtures
 //! (sentence-transformers embeddings, transformers greedy tokens; see tests/reference/README.md).
 
+use std::path::Path;
+
 use switchyard_tests::embeddings::{cosine, rows};
 use switchyard_tests::{base_model_dir, fixtures, read_json, run_switchyard};
 
@@ -540,4 +542,84 @@ fn checkpoints_in_bf16_f16_and_shards_load_and_embed_as_the_f32_file_does() {
     let (got, _) = embed_with_weights(&f16, "f32");
     assert!(least(&got) >= 0.9999, "f16 file as f32: {}", least(&got));
     assert!(least(&got) < 1.0 - 1e-9, "the f16 copy changed nothing");
+}
+
+/// `generate --end-at TEXT` ends where the text first appears in transformers' greedy
+/// continuation (tiny-llama-reference.json) and prints what comes before it; `--end-token ID`
+/// ends at that token, which is not printed; `--messages FILE` renders a conversation with the
+/// checkpoint's chat template (tiny-llama-chat.json: transformers' greedy continuation of it).
+#[test]
+fn generate_command_ends_at_texts_and_tokens_and_renders_messages() {
+    let fx = read_json(&fixtures().join("tiny-llama-reference.json"));
+    let dir = tempfile::tempdir().unwrap();
+    let model = fixtures().join("tiny-llama");
+    let text = fx["greedy_text"].as_str().unwrap();
+    let run = |extra: &[&str], model: &Path| {
+        let mut args = vec!["generate", "--model", model.to_str().unwrap()];
+        if !extra.contains(&"--limit") {
+            args.extend_from_slice(&["--limit", "16"]);
+        }
+        args.extend_from_slice(extra);
+        let out = run_switchyard(&args, "", dir.path());
+        let stderr = String::from_utf8_lossy(&out.stderr).into_owned();
+        assert!(out.status.success(), "{stderr}");
+        (String::from_utf8(out.stdout).unwrap(), stderr)
+    };
+    let prompt = fx["prompt"].as_str().unwrap();
+    let (out, err) = run(&["--prompt", prompt, "--end-at", "mechanic"], &model);
+    let cut = &text[..text.find("mechanic").unwrap()];
+    assert_eq!(out.trim_end_matches('\n'), cut);
+    assert!(err.contains("ended at the end text \"mechanic\""), "{err}");
+    assert!(
+        !err.contains("generated 16 tokens"),
+        "it stops early: {err}"
+    );
+
+    let greedy: Vec<u64> = fx["greedy"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_u64().unwrap())
+        .collect();
+    let first = greedy.iter().position(|&t| t == greedy[7]).unwrap();
+    let (out, err) = run(
+        &["--prompt", prompt, "--end-token", &greedy[7].to_string()],
+        &model,
+    );
+    let (before, _) = run(&["--prompt", prompt, "--limit", &first.to_string()], &model);
+    assert_eq!(out, before);
+    assert!(err.contains(&format!("end token {}", greedy[7])), "{err}");
+
+    // A chat model: tiny-llama with the chat template of tests/reference/chat.py.
+    let chat = read_json(&fixtures().join("tiny-llama-chat.json"));
+    let chat_model = dir.path().join("chat-model");
+    std::fs::create_dir(&chat_model).unwrap();
+    for entry in std::fs::read_dir(&model).unwrap() {
+        let entry = entry.unwrap();
+        std::fs::copy(entry.path(), chat_model.join(entry.file_name())).unwrap();
+    }
+    std::fs::write(
+        chat_model.join("tokenizer_config.json"),
+        chat["tokenizer_config"].to_string(),
+    )
+    .unwrap();
+    let case = &chat["cases"][1];
+    let file = dir.path().join("conversation.json");
+    std::fs::write(&file, case["messages"].to_string()).unwrap();
+    let (out, err) = run(
+        &["--messages", file.to_str().unwrap(), "--limit", "8"],
+        &chat_model,
+    );
+    assert!(err.contains("generated 8 tokens"), "{err}");
+    // The same continuation as the server gives for these messages (checked there against
+    // transformers' greedy ids): decode those ids with the model's tokenizer.
+    let ids: Vec<u32> = case["greedy"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_u64().unwrap() as u32)
+        .collect();
+    let tokenizer = tokenizers::Tokenizer::from_file(model.join("tokenizer.json")).unwrap();
+    let decoded = tokenizer.decode(&ids, true).unwrap();
+    assert_eq!(out.trim_end_matches('\n'), decoded);
 }

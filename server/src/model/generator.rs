@@ -23,6 +23,9 @@ pub struct GenerateRequest {
     pub sampling: SamplingParams,
     /// Stop at the checkpoint's end-of-sequence token.
     pub stop_at_eos: bool,
+    /// Stop when one of these texts appears in the output, or one of these tokens is sampled
+    /// (the caller cuts them off: see [`crate::engine::end_at`]).
+    pub end_at: crate::engine::end_at::EndAt,
 }
 
 /// A decoder checkpoint ready to generate.
@@ -106,6 +109,18 @@ impl Generator {
     /// Generates every request together: each prompt is prefilled into its own cache, then
     /// the live sequences advance one token per batched step until each reaches its limit (or
     /// its end-of-sequence token). Returns the new token ids of each request.
+    /// Whether a sequence whose output is `out` (its last token just sampled) stops here.
+    fn ends(&self, req: &GenerateRequest, out: &[u32], eos: &[u32]) -> bool {
+        let last = out.last().copied().unwrap_or_default();
+        out.len() >= req.limit
+            || (req.stop_at_eos && eos.contains(&last))
+            || req.end_at.token_ids.contains(&last)
+            || (!req.end_at.texts.is_empty() && {
+                let text = self.decode(out).unwrap_or_default();
+                req.end_at.texts.iter().any(|t| text.contains(t.as_str()))
+            })
+    }
+
     pub fn generate(&self, requests: &[GenerateRequest]) -> anyhow::Result<Vec<Vec<u32>>> {
         let eos = self.model.config.eos_ids();
         let mut caches: Vec<KvCache> = requests.iter().map(|_| self.model.new_cache()).collect();
@@ -128,7 +143,7 @@ impl Generator {
                     .forward_last(&[&req.prompt_ids], &mut [&mut caches[i]], &rows)?;
             let token = samplers[i].next(&logits.get(0)?.to_vec1::<f32>()?);
             outputs[i].push(token);
-            if !(req.stop_at_eos && eos.contains(&token)) && outputs[i].len() < req.limit {
+            if !self.ends(req, &outputs[i], &eos) {
                 live.push(i);
             }
         }
@@ -160,9 +175,7 @@ impl Generator {
             for (row, &i) in live.iter().enumerate() {
                 let token = samplers[i].next(&logits[row]);
                 outputs[i].push(token);
-                if !(requests[i].stop_at_eos && eos.contains(&token))
-                    && outputs[i].len() < requests[i].limit
-                {
+                if !self.ends(&requests[i], &outputs[i], &eos) {
                     still.push(i);
                 }
             }
