@@ -59,6 +59,9 @@ pub struct Settings {
     pub threads: usize,
     /// Most rows (sequences) one forward pass may carry.
     pub max_batch_rows: usize,
+    /// Most tokens one decoder step carries: every running generation's next token, and prompt
+    /// tokens being prefilled in chunks up to this (a long prompt no longer stalls the others).
+    pub step_tokens: usize,
     /// Requests admitted and waiting for the engine; one more is answered 429. Each tenant may
     /// hold an equal share of them.
     pub queue_depth: usize,
@@ -172,6 +175,7 @@ impl Default for Settings {
             store_dir: None,
             threads: 0,
             max_batch_rows: 32,
+            step_tokens: 256,
             queue_depth: 256,
             shared_batch_rows: 4,
             request_timeout_ms: 30_000,
@@ -322,6 +326,7 @@ impl Settings {
                 d.max_batch_rows as u64,
                 1..=MAX_BATCH_ROWS_LIMIT as u64,
             )?),
+            step_tokens: size(src.whole(&read::STEP_TOKENS, d.step_tokens as u64, 1..=65_536)?),
             queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
             shared_batch_rows: size(src.whole(
                 &read::SHARED_BATCH_ROWS,
@@ -495,6 +500,7 @@ impl fmt::Debug for Settings {
             .field("store_dir", &self.store_dir)
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)
+            .field("step_tokens", &self.step_tokens)
             .field("queue_depth", &self.queue_depth)
             .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)

@@ -49,6 +49,8 @@ pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
     "max_batch_rows",
     "SWITCHYARD_ENGINE_MAX_BATCH_ROWS",
 );
+pub(crate) const STEP_TOKENS: SettingKey =
+    SettingKey::new("engine", "step_tokens", "SWITCHYARD_ENGINE_STEP_TOKENS");
 pub(crate) const QUEUE_DEPTH: SettingKey =
     SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
 pub(crate) const SHARED_BATCH_ROWS: SettingKey = SettingKey::new(
@@ -150,6 +152,7 @@ pub const KEYS: &[SettingKey] = &[
     STORE_DIR,
     THREADS,
     MAX_BATCH_ROWS,
+    STEP_TOKENS,
     QUEUE_DEPTH,
     SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,

@@ -455,3 +455,45 @@ fn generate_with_messages_renders_the_checkpoints_chat_template_like_transformer
         assert_eq!(ok["counts"]["output_tokens"], 2);
     }
 }
+
+/// With `engine.step_tokens = 3` a 14-token prompt is prefilled in five chunks, sharing each
+/// step with the other generations: four concurrent requests (two streamed) each still get
+/// transformers' 16 greedy tokens (tests/reference/generate.py), which holds only if every
+/// chunk lands at its positions in its own sequence's cache.
+#[test]
+fn chunked_and_batched_prefill_keep_the_reference_greedy_tokens() {
+    let reference = greedy_reference();
+    let server = ServerSetup::tiny_decoder()
+        .set("engine", "step_tokens", "3")
+        .start();
+    let body = |stream: bool| json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 16, "stream": stream});
+    std::thread::scope(|scope| {
+        let runs: Vec<_> = (0..4)
+            .map(|i| {
+                let server = &server;
+                let body = body(i % 2 == 1);
+                scope.spawn(move || {
+                    if i % 2 == 1 {
+                        server
+                            .post_sse("/generate", Auth::None, &body)
+                            .iter()
+                            .filter(|e| e.event == "token")
+                            .map(|e| e.data["token_id"].as_u64().unwrap())
+                            .collect::<Vec<u64>>()
+                    } else {
+                        let answer = server.post("/generate", Auth::None, &body).ok_json();
+                        answer["token_ids"]
+                            .as_array()
+                            .unwrap()
+                            .iter()
+                            .map(|t| t.as_u64().unwrap())
+                            .collect()
+                    }
+                })
+            })
+            .collect();
+        for (i, run) in runs.into_iter().enumerate() {
+            assert_eq!(run.join().unwrap(), reference.greedy, "request {i}");
+        }
+    });
+}

@@ -232,6 +232,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         Some(registry.clone()),
         EngineConfig {
             max_batch_rows: settings.max_batch_rows,
+            step_tokens: settings.step_tokens,
             queue_depth: settings.queue_depth,
             shared_batch_rows: settings.shared_batch_rows,
             promote_share: settings.promote_share,

@@ -87,6 +87,8 @@ impl Backbone {
 #[derive(Debug, Clone)]
 pub struct EngineConfig {
     pub max_batch_rows: usize,
+    /// Most tokens one decoder step carries (decodes, then prompt chunks).
+    pub step_tokens: usize,
     pub queue_depth: usize,
     /// With several tenants, the most rows in one encoder batch.
     pub shared_batch_rows: usize,
@@ -707,7 +709,7 @@ impl Worker {
                 self.took();
             }
             for job in jobs {
-                self.admit_guarded(g, job, &mut live, &eos);
+                self.admit_guarded(g, job, &mut live);
             }
             // Drop sequences whose client went away, or whose deadline passed.
             let now = Instant::now();
@@ -725,26 +727,28 @@ impl Worker {
             if live.is_empty() {
                 continue;
             }
-            if std::panic::catch_unwind(AssertUnwindSafe(|| self.decode_step(g, &mut live, &eos)))
-                .is_err()
+            if std::panic::catch_unwind(AssertUnwindSafe(|| self.step(g, &mut live, &eos))).is_err()
             {
                 tracing::error!(
                     sequences = live.len(),
-                    "a decode step panicked; its sequences failed, the engine goes on"
+                    "a decoder step panicked; its sequences failed, the engine goes on"
                 );
                 live.clear();
             }
         }
     }
 
-    /// [`Worker::admit`], with a panic in the prefill failing only that request.
-    fn admit_guarded(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>, eos: &[u32]) {
-        if std::panic::catch_unwind(AssertUnwindSafe(|| self.admit(g, job, live, eos))).is_err() {
-            tracing::error!("a prefill panicked; its request failed, the engine goes on");
+    /// [`Worker::admit`], with a panic there failing only that request.
+    fn admit_guarded(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>) {
+        if std::panic::catch_unwind(AssertUnwindSafe(|| self.admit(g, job, live))).is_err() {
+            tracing::error!(
+                "admitting a generation panicked; its request failed, the engine goes on"
+            );
         }
     }
 
-    fn admit(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>, eos: &[u32]) {
+    /// Takes a job into the running set; its prompt is prefilled by the next steps, in chunks.
+    fn admit(&mut self, g: &Generator, job: Job, live: &mut Vec<Sequence>) {
         let job = match job {
             Job::Generate(j) => j,
             Job::Embed(j) => {
@@ -760,77 +764,127 @@ impl Worker {
                 .send(GenEvent::Failed(EngineError::DeadlineExceeded));
             return;
         }
-        let started = Instant::now();
+        if job.prompt_ids.is_empty() {
+            let _ = job.events.send(GenEvent::Failed(EngineError::Compute(
+                "a generation needs at least one prompt token".into(),
+            )));
+            return;
+        }
         let mut seq = Sequence {
             cache: g.model().new_cache(),
             sampler: Sampler::new(job.sampling),
             last: 0,
+            prefilled: 0,
             detok: Detokenizer::new(),
             sent_text: String::new(),
             holder: end_at::Holder::default(),
-            started,
+            started: Instant::now(),
             first_token: None,
             job,
         };
         seq.job.ticket.permit.spend(seq.job.prompt_ids.len() as u64);
-        let adapter = seq.job.adapter.as_ref().map(|h| h.adapter().clone());
-        let rows = rows_for_sequences(std::slice::from_ref(&adapter), &[seq.job.prompt_ids.len()]);
-        self.policy.record(&adapter_key(&seq.job.adapter), 1);
-        let prompt = seq.job.prompt_ids.clone();
-        match g
-            .model()
-            .forward_last(&[&prompt], &mut [&mut seq.cache], &rows)
-        {
-            Ok(logits) => match logits.get(0).and_then(|l| l.to_vec1::<f32>()) {
-                Ok(l) => {
-                    let token = seq.sampler.next(&l);
-                    if seq.push(g, token, eos, &self.metrics) {
-                        live.push(seq);
-                    }
-                }
-                Err(e) => seq.fail(e.to_string()),
-            },
-            Err(e) => seq.fail(e.to_string()),
-        }
+        live.push(seq);
     }
 
-    fn decode_step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
-        let _span = tracing::trace_span!("decode_step", rows = live.len()).entered();
-        let tokens: Vec<[u32; 1]> = live.iter().map(|s| [s.last]).collect();
-        let token_refs: Vec<&[u32]> = tokens.iter().map(|t| t.as_slice()).collect();
-        let first_key = adapter_key(&live[0].job.adapter);
-        let uniform = live
+    /// One forward pass over the running set: each generating sequence's next token, then
+    /// prompt chunks of the sequences still prefilling, in admission order, as far as
+    /// `step_tokens` allows (at least [`MIN_PREFILL_TOKENS`] when generations fill it, so a
+    /// prompt always advances). Several prompts share the pass; a prompt longer than the budget
+    /// takes several steps while the generations keep stepping. A sequence whose prompt is done
+    /// samples its first token from this pass.
+    fn step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
+        let decoding = live.iter().filter(|s| s.prefilling() == 0).count();
+        let mut room = self
+            .config
+            .step_tokens
+            .saturating_sub(decoding)
+            .max(MIN_PREFILL_TOKENS);
+        // Each taking part: its index in `live` and how many new tokens it brings.
+        let mut parts: Vec<(usize, usize)> = Vec::with_capacity(live.len());
+        for (i, s) in live.iter().enumerate() {
+            match s.prefilling() {
+                0 => parts.push((i, 1)),
+                left if room > 0 => {
+                    let n = left.min(room);
+                    room -= n;
+                    parts.push((i, n));
+                }
+                _ => {}
+            }
+        }
+        let _span = tracing::trace_span!("decoder_step", sequences = parts.len()).entered();
+        let inputs: Vec<Vec<u32>> = parts
             .iter()
-            .all(|s| adapter_key(&s.job.adapter) == first_key);
-        let merged = match (&live[0].job.adapter, uniform) {
+            .map(|&(i, n)| {
+                let s = &live[i];
+                match s.prefilling() {
+                    0 => vec![s.last],
+                    _ => s.job.prompt_ids[s.prefilled..s.prefilled + n].to_vec(),
+                }
+            })
+            .collect();
+        let token_refs: Vec<&[u32]> = inputs.iter().map(Vec::as_slice).collect();
+        let first_key = adapter_key(&live[parts[0].0].job.adapter);
+        let uniform = parts
+            .iter()
+            .all(|&(i, _)| adapter_key(&live[i].job.adapter) == first_key);
+        let merged = match (&live[parts[0].0].job.adapter, uniform) {
             (Some(h), true) => self.merged_for(h),
             _ => None,
         };
-        for s in live.iter() {
-            self.policy.record(&adapter_key(&s.job.adapter), 1);
+        for &(i, _) in &parts {
+            self.policy.record(&adapter_key(&live[i].job.adapter), 1);
         }
+        let lengths: Vec<usize> = parts.iter().map(|&(_, n)| n).collect();
         let rows = match &merged {
-            Some((m, _)) => {
-                RowAdapters::merged(Arc::<MergedWeights>::clone(m.weights()), live.len())
-            }
+            Some((m, _)) => RowAdapters::merged(
+                Arc::<MergedWeights>::clone(m.weights()),
+                lengths.iter().sum(),
+            ),
             None => {
-                let adapters: Vec<Option<Arc<Adapter>>> = live
+                let adapters: Vec<Option<Arc<Adapter>>> = parts
                     .iter()
-                    .map(|s| s.job.adapter.as_ref().map(|h| h.adapter().clone()))
+                    .map(|&(i, _)| live[i].job.adapter.as_ref().map(|h| h.adapter().clone()))
                     .collect();
-                rows_for_sequences(&adapters, &vec![1; live.len()])
+                rows_for_sequences(&adapters, &lengths)
             }
         };
-        self.metrics.batch_rows.observe(live.len() as f64);
-        let mut caches: Vec<&mut KvCache> = live.iter_mut().map(|s| &mut s.cache).collect();
+        self.metrics.batch_rows.observe(parts.len() as f64);
+        let taking: Vec<bool> = {
+            let mut t = vec![false; live.len()];
+            parts.iter().for_each(|&(i, _)| t[i] = true);
+            t
+        };
+        let mut caches: Vec<&mut KvCache> = live
+            .iter_mut()
+            .zip(&taking)
+            .filter(|(_, t)| **t)
+            .map(|(s, _)| &mut s.cache)
+            .collect();
         let logits = g
             .model()
             .forward_last(&token_refs, &mut caches, &rows)
             .and_then(|l| l.to_vec2::<f32>());
         match logits {
             Ok(rows) => {
+                let mut brought: Vec<Option<(usize, Vec<f32>)>> = vec![None; live.len()];
+                for (&(i, n), l) in parts.iter().zip(rows) {
+                    brought[i] = Some((n, l));
+                }
                 let mut keep = Vec::with_capacity(live.len());
-                for (mut s, l) in live.drain(..).zip(rows) {
+                for (mut s, b) in live.drain(..).zip(brought) {
+                    let Some((n, l)) = b else {
+                        keep.push(s);
+                        continue;
+                    };
+                    if s.prefilling() > 0 {
+                        s.prefilled += n;
+                        if s.prefilling() > 0 {
+                            // A chunk of a longer prompt: its logits are not used.
+                            keep.push(s);
+                            continue;
+                        }
+                    }
                     let token = s.sampler.next(&l);
                     if s.push(g, token, eos, &self.metrics) {
                         keep.push(s);
@@ -839,7 +893,7 @@ impl Worker {
                 *live = keep;
             }
             Err(e) => {
-                tracing::error!(error = %e, "decode step failed");
+                tracing::error!(error = %e, "decoder step failed");
                 for s in live.drain(..) {
                     s.fail(e.to_string());
                 }
@@ -848,12 +902,18 @@ impl Worker {
     }
 }
 
+/// Prompt tokens a decoder step prefills at least, however many generations it carries, so a
+/// waiting prompt always advances.
+const MIN_PREFILL_TOKENS: usize = 1;
+
 struct Sequence {
     job: GenerateJob,
     cache: KvCache,
     sampler: Sampler,
     /// The token sampled last: the input of the next step.
     last: u32,
+    /// Prompt tokens already in the cache (the rest are prefilled by the coming steps).
+    prefilled: usize,
     /// The output so far (end-of-sequence token excluded) and its streamed text.
     detok: Detokenizer,
     sent_text: String,
@@ -864,6 +924,11 @@ struct Sequence {
 }
 
 impl Sequence {
+    /// Prompt tokens not yet prefilled (0 once the sequence generates).
+    fn prefilling(&self) -> usize {
+        self.job.prompt_ids.len() - self.prefilled
+    }
+
     /// Records a new token, streams its text, and says whether the sequence goes on.
     fn push(&mut self, g: &Generator, token: u32, eos: &[u32], metrics: &Metrics) -> bool {
         if self.first_token.is_none() {
