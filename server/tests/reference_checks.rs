@@ -858,14 +858,15 @@ fn every_reference_check_passes_on_every_kernel_path() {
     }
 }
 
-/// Packs one of the peft-layout adapters (tests/reference/peft_layouts.py) with the real
+/// Packs one of the adapters in the common training library's layout
+/// (tests/reference/foreign_layouts.py) with the real
 /// binary's `adapter pack FILE --rules NAME`, rank and alpha read from its adapter_config.json,
 /// and loads the package for `model`.
-fn pack_peft(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter> {
+fn pack_foreign(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter> {
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("packed.safetensors");
     let input = fixtures()
-        .join("peft")
+        .join("foreign")
         .join(folder)
         .join("adapter_model.safetensors");
     let ran = std::process::Command::new(env!("CARGO_BIN_EXE_switchyard"))
@@ -891,16 +892,16 @@ fn pack_peft(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter
     load_adapter(&out, &spec).unwrap()
 }
 
-/// One flag imports an adapter as the peft library saves it (PyPI peft 0.21.2, made by
-/// tests/reference/peft_layouts.py with random factors on every projection): the packed MiniLM
-/// adapter (rank 4, alpha 8 read from adapter_config.json) gives the sentence embeddings peft's
-/// own PeftModel gives through sentence-transformers (cosine >= 0.99999), and the packed
-/// tiny-llama adapter (rank 8, alpha 4) the logits peft gives (within 1e-3).
+/// One flag imports an adapter as the common LoRA training library saves it (the PyPI version
+/// pinned in tests/reference/setup-venv.sh, made by tests/reference/foreign_layouts.py with
+/// random factors on every projection): the packed MiniLM adapter (rank 4, alpha 8 read from
+/// the library's JSON config) gives the sentence embeddings the library's own wrapped model gives through sentence-transformers (cosine >= 0.99999), and the packed
+/// tiny-llama adapter (rank 8, alpha 4) the logits the library gives (within 1e-3).
 #[test]
-fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
-    let reference = read_json(&fixtures().join("peft").join("reference.json"));
+fn adapters_in_the_common_training_layout_pack_with_one_flag_and_match_its_outputs() {
+    let reference = read_json(&fixtures().join("foreign").join("reference.json"));
 
-    let adapter = pack_peft("minilm", "peft-bert", "embed", &base_model_dir());
+    let adapter = pack_foreign("minilm", "common-bert", "embed", &base_model_dir());
     assert_eq!((adapter.meta.rank, adapter.meta.alpha), (4, 8.0));
     assert_eq!(
         adapter.sites().count(),
@@ -921,7 +922,7 @@ fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
     let least = min_cosine(&got, &want);
     assert!(
         least >= 0.99999,
-        "peft MiniLM adapter: least cosine {least}"
+        "foreign MiniLM adapter: least cosine {least}"
     );
     let base = embedder().embed(&refs, &vec![None; refs.len()]).unwrap();
     assert!(
@@ -930,7 +931,7 @@ fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
     );
 
     let model = fixtures().join("tiny-llama");
-    let adapter = pack_peft("tiny-llama", "peft-llama", "generate", &model);
+    let adapter = pack_foreign("tiny-llama", "common-llama", "generate", &model);
     assert_eq!((adapter.meta.rank, adapter.meta.alpha), (8, 4.0));
     assert_eq!(
         adapter.sites().count(),
@@ -943,7 +944,7 @@ fn adapters_in_the_peft_layout_pack_with_one_flag_and_match_peft_outputs() {
     let gap = max_abs(&got, &matrix(&reference["tiny_llama"]["logits"]));
     assert!(
         gap <= 1e-3,
-        "peft tiny-llama adapter: logits differ by {gap}"
+        "foreign tiny-llama adapter: logits differ by {gap}"
     );
     let base = max_abs(&got, &matrix(&d.reference["logits"]));
     assert!(base > 0.1, "the adapter moves the logits ({base})");

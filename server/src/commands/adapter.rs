@@ -42,7 +42,7 @@ pub enum AdapterCommand {
     /// Delete a stored version that is not live.
     Retire(store::RetireArgs),
     /// Build a package from any safetensors file of factor tensors, mapping its tensor names
-    /// onto ours with --rename rules or a rule file for a whole layout (--rules peft-llama).
+    /// onto ours with --rename rules or a rule file for a whole layout (--rules common-llama).
     Pack(pack::PackArgs),
     /// Train a classify adapter (low-rank factors and a head) on an encoder base from a JSONL
     /// file of {"text", "label"} lines; accuracy on the held-out split after every epoch.

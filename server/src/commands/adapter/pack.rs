@@ -41,10 +41,10 @@ pub struct PackArgs {
     /// mlp.gate mlp.up mlp.down, plus head.weight and head.bias.
     #[arg(long = "rename", value_name = "PATTERN=TEMPLATE", value_parser = parse_rule)]
     pub rules: Vec<RenameRule>,
-    /// A rule file for a whole layout instead of --rename flags: a built-in name (peft-bert,
-    /// peft-llama: adapters as the peft library saves them) or a path to one (see
+    /// A rule file for a whole layout instead of --rename flags: a built-in name (common-bert,
+    /// common-llama: adapters as the common LoRA training library saves them) or a path to one (see
     /// config/rename/). Its rules apply after any --rename rules; rank and alpha come from the
-    /// settings file it names beside the input (peft: adapter_config.json) unless given here.
+    /// settings file it names beside the input (for those two: the library's JSON config) unless given here.
     #[arg(long = "rules", value_name = "NAME-OR-PATH")]
     pub rule_file: Option<String>,
     /// The rank r (rows of every A); from the rule file's settings, else the factors, when

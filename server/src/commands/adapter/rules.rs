@@ -18,12 +18,12 @@ use switchyard_adapters::rename::RenameRule;
 /// The rule files shipped with switchyard, by name.
 pub const BUILT_IN: [(&str, &str); 2] = [
     (
-        "peft-bert",
-        include_str!("../../../../config/rename/peft-bert.toml"),
+        "common-bert",
+        include_str!("../../../../config/rename/common-bert.toml"),
     ),
     (
-        "peft-llama",
-        include_str!("../../../../config/rename/peft-llama.toml"),
+        "common-llama",
+        include_str!("../../../../config/rename/common-llama.toml"),
     ),
 ];
 
@@ -183,7 +183,7 @@ mod tests {
 
     #[test]
     fn the_built_in_rule_files_parse_and_map_the_layouts_they_name() {
-        let bert = RuleFile::load("peft-bert").unwrap();
+        let bert = RuleFile::load("common-bert").unwrap();
         let rename = |rules: &[RenameRule], n: &str| switchyard_adapters::rename::rename(rules, n);
         assert_eq!(
             rename(
@@ -201,7 +201,7 @@ mod tests {
             .as_deref(),
             Some("layers.0.mlp.down.A")
         );
-        let llama = RuleFile::load("peft-llama").unwrap();
+        let llama = RuleFile::load("common-llama").unwrap();
         assert_eq!(
             rename(
                 &llama.rules,
@@ -217,7 +217,7 @@ mod tests {
     fn settings_the_package_cannot_express_are_refused_naming_the_key() {
         let dir = tempfile::tempdir().unwrap();
         let weights = dir.path().join("adapter_model.safetensors");
-        let rules = RuleFile::load("peft-llama").unwrap();
+        let rules = RuleFile::load("common-llama").unwrap();
         let write = |v: serde_json::Value| {
             std::fs::write(dir.path().join("adapter_config.json"), v.to_string()).unwrap()
         };
@@ -247,6 +247,6 @@ mod tests {
         );
         assert!(e.contains("rule file mine.toml: rules[1]"), "{e}");
         let e = format!("{:#}", RuleFile::load("no-such-layout").unwrap_err());
-        assert!(e.contains("peft-bert, peft-llama"), "{e}");
+        assert!(e.contains("common-bert, common-llama"), "{e}");
     }
 }

@@ -1,25 +1,25 @@
 #!/usr/bin/env python3
-"""Writes adapters in the layout the peft library saves (adapter_model.safetensors and
-adapter_config.json) for a BERT-family and a Llama-family base, with that library's own outputs,
-for switchyard's rule files (config/rename/peft-bert.toml, peft-llama.toml) and
-`switchyard adapter pack FILE --rules NAME`.
+"""Writes adapters in the layout the common LoRA training library (PyPI; its version is pinned
+in setup-venv.sh) saves: its safetensors file of factors beside its JSON config, for a
+BERT-family and a Llama-family base, with that library's own outputs, for switchyard's rule
+files (config/rename/common-bert.toml, common-llama.toml) and `switchyard adapter pack FILE
+--rules NAME`.
 
 Run with the venv made by setup-venv.sh, after generate.py (it reads the MiniLM base model the
 way generate.py does, and the tiny-llama fixture):
 
-    tests/reference/.venv/bin/python tests/reference/peft_layouts.py
+    tests/reference/.venv/bin/python tests/reference/foreign_layouts.py
 
-Nothing is trained: peft's LoraConfig(init_lora_weights=False) leaves both factors random, and
-every factor is then redrawn from one seeded generator (A ~ randn * 0.1, B ~ randn * 0.1) so the
-update is non-zero and reproducible. Ranks and alphas differ between the two (4/8 on MiniLM, 8/4
-on tiny-llama) so a scale read wrongly shows. The references are peft's own forward passes (the
-adapter unmerged, through PeftModel): MiniLM sentence embeddings through sentence-transformers
-(mean pooling, L2 normalised) and tiny-llama's logits over its input sentence.
+Nothing is trained: the library's adapter settings with its random initialisation of both factors,
+then every factor redrawn from one seeded generator (A, B ~ randn * 0.1) so the update is
+non-zero and reproducible. Ranks and alphas differ between the two (4/8 on MiniLM, 8/4 on
+tiny-llama) so a scale read wrongly shows. The references are the library's own forward passes
+(the adapter unmerged, through its wrapped model): MiniLM sentence embeddings through
+sentence-transformers (mean pooling, L2 normalised) and tiny-llama's logits over its input
+sentence.
 
-Writes, under tests/reference/fixtures/peft/:
-- minilm/adapter_model.safetensors, minilm/adapter_config.json
-- tiny-llama/adapter_model.safetensors, tiny-llama/adapter_config.json
-- reference.json: versions, the texts and ids, and the outputs.
+Writes, under tests/reference/fixtures/foreign/: minilm/ and tiny-llama/ (the two files as the
+library saves them) and reference.json (versions, the texts and ids, and the outputs).
 """
 
 from __future__ import annotations
@@ -41,7 +41,7 @@ from transformers import LlamaForCausalLM  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import generate as g  # noqa: E402
 
-OUT = g.FIXTURES / "peft"
+OUT = g.FIXTURES / "foreign"
 
 
 @torch.no_grad()
@@ -66,6 +66,9 @@ def save(model, folder: Path) -> None:
     cfg = json.loads((folder / "adapter_config.json").read_text())
     # Paths and versions of this machine are not part of the fixture.
     cfg["base_model_name_or_path"] = None
+    # The library writes its target list in set order, which changes from run to run.
+    if isinstance(cfg.get("target_modules"), list):
+        cfg["target_modules"] = sorted(cfg["target_modules"])
     cfg.pop("revision", None)
     (folder / "adapter_config.json").write_text(json.dumps(cfg, indent=2, sort_keys=True) + "\n")
 
@@ -107,7 +110,8 @@ def main() -> None:
     torch.set_num_threads(g.THREADS)
     torch.use_deterministic_algorithms(True)
     out = {
-        "generated_by": g.versions() | {"peft": peft.__version__, "script": "tests/reference/peft_layouts.py"},
+        "generated_by": g.versions() | {"lora_library": peft.__version__,
+                                        "script": "tests/reference/foreign_layouts.py"},
         "minilm": minilm(),
         "tiny_llama": tiny_llama(),
     }
