@@ -860,7 +860,7 @@ fn every_reference_check_passes_on_every_kernel_path() {
 
 /// Packs one of the adapters in the common training library's layout
 /// (tests/reference/foreign_layouts.py) with the real
-/// binary's `adapter pack FILE --rules NAME`, rank and alpha read from its adapter_config.json,
+/// binary's `adapter pack FILE --rules NAME`, rank and alpha read from the JSON config beside it,
 /// and loads the package for `model`.
 fn pack_foreign(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter> {
     let dir = tempfile::tempdir().unwrap();

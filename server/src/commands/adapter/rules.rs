@@ -216,21 +216,31 @@ mod tests {
     #[test]
     fn settings_the_package_cannot_express_are_refused_naming_the_key() {
         let dir = tempfile::tempdir().unwrap();
-        let weights = dir.path().join("adapter_model.safetensors");
+        let weights = dir.path().join("factors.safetensors");
         let rules = RuleFile::load("common-llama").unwrap();
-        let write = |v: serde_json::Value| {
-            std::fs::write(dir.path().join("adapter_config.json"), v.to_string()).unwrap()
+        // The settings file and its keys, as the rule file names them.
+        let s = rules.settings.clone().unwrap();
+        let (rank, alpha) = (s.rank.unwrap(), s.alpha.unwrap());
+        let write = |extra: serde_json::Value, with_rank: bool| {
+            let mut v = serde_json::json!({ alpha.as_str(): 16, "bias": "none" });
+            if with_rank {
+                v[rank.as_str()] = 8.into();
+            }
+            for (k, x) in extra.as_object().unwrap() {
+                v[k] = x.clone();
+            }
+            std::fs::write(dir.path().join(&s.file), v.to_string()).unwrap()
         };
-        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "none", "rank_pattern": {}}));
+        write(serde_json::json!({"rank_pattern": {}}), true);
         let read = rules.read_settings(&weights).unwrap();
         assert_eq!((read.rank, read.alpha), (Some(8), Some(16.0)));
-        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "none", "use_rslora": true}));
+        write(serde_json::json!({"use_rslora": true}), true);
         let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
         assert!(e.contains("`use_rslora` is true"), "{e}");
-        write(serde_json::json!({"r": 8, "lora_alpha": 16, "bias": "all"}));
+        write(serde_json::json!({"bias": "all"}), true);
         let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
         assert!(e.contains("`bias` is \"all\""), "{e}");
-        write(serde_json::json!({"lora_alpha": 16, "bias": "none"}));
+        write(serde_json::json!({}), false);
         let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
         assert!(e.contains("no number under `r`"), "{e}");
     }
