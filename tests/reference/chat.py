@@ -32,6 +32,9 @@ import torch  # noqa: E402
 import transformers  # noqa: E402
 from transformers import AutoTokenizer, LlamaForCausalLM  # noqa: E402
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import generate as g  # noqa: E402
+
 HERE = Path(__file__).resolve().parent
 FIXTURES = HERE / "fixtures"
 MODEL = FIXTURES / "tiny-llama"
@@ -73,20 +76,6 @@ CONVERSATIONS = [
 ]
 
 
-@torch.no_grad()
-def greedy(model, prompt_ids: list) -> tuple[list, list]:
-    seq = list(prompt_ids)
-    new, margins = [], []
-    for _ in range(STEPS):
-        last = model(input_ids=torch.tensor([seq]), use_cache=False).logits[0, -1].to(torch.float32)
-        top = torch.topk(last, 2)
-        nxt = int(top.indices[0])
-        margins.append(float(top.values[0] - top.values[1]))
-        seq.append(nxt)
-        new.append(nxt)
-    return new, margins
-
-
 def ids_of(encoded) -> list:
     """apply_chat_template(tokenize=True) gives a list, or a mapping with input_ids."""
     if hasattr(encoded, "keys"):
@@ -110,7 +99,7 @@ def main() -> None:
             rendered = tok.apply_chat_template(messages, tokenize=False, add_generation_prompt=True)
             ids = ids_of(tok.apply_chat_template(messages, tokenize=True, add_generation_prompt=True))
             assert ids == tok(rendered, add_special_tokens=False)["input_ids"], "tokenising differs"
-            out, margins = greedy(model, ids)
+            out, margins = g.greedy(model, ids, steps=STEPS)
             assert min(margins) >= MIN_MARGIN, f"greedy margin {min(margins)} too small"
             print(f"{rendered!r} -> {len(ids)} ids, greedy {out} {tok.decode(out)!r}, "
                   f"least margin {min(margins):.4f}")

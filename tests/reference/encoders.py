@@ -34,14 +34,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import generate as g  # noqa: E402
 
 ALL = ["attn.q", "attn.k", "attn.v", "attn.o", "mlp.up", "mlp.down"]
-MODULES = {
-    "attn.q": lambda l: l.attention.self.query,
-    "attn.k": lambda l: l.attention.self.key,
-    "attn.v": lambda l: l.attention.self.value,
-    "attn.o": lambda l: l.attention.output.dense,
-    "mlp.up": lambda l: l.intermediate.dense,
-    "mlp.down": lambda l: l.output.dense,
-}
+MODULES = g.BERT_MODULES  # the same module names: RoBERTa and XLM-R keep BERT's layer layout
 
 ENCODERS = {
     "tiny-roberta": (RobertaConfig, RobertaModel, 401, ("tiny-roberta-all", 4, 8, ALL, 51, 0.2, 0.2)),
