@@ -62,6 +62,10 @@ pub struct Settings {
     /// Most tokens one decoder step carries: every running generation's next token, and prompt
     /// tokens being prefilled in chunks up to this (a long prompt no longer stalls the others).
     pub step_tokens: usize,
+    /// Bytes of KV cache the running generations may plan for together (positions of prompt
+    /// plus max_tokens, times the model's bytes per position); 0: no limit. A generation that
+    /// does not fit waits for room; one that could never fit is refused.
+    pub kv_budget_bytes: u64,
     /// Requests admitted and waiting for the engine; one more is answered 429. Each tenant may
     /// hold an equal share of them.
     pub queue_depth: usize,
@@ -176,6 +180,7 @@ impl Default for Settings {
             threads: 0,
             max_batch_rows: 32,
             step_tokens: 256,
+            kv_budget_bytes: 0,
             queue_depth: 256,
             shared_batch_rows: 4,
             request_timeout_ms: 30_000,
@@ -327,6 +332,7 @@ impl Settings {
                 1..=MAX_BATCH_ROWS_LIMIT as u64,
             )?),
             step_tokens: size(src.whole(&read::STEP_TOKENS, d.step_tokens as u64, 1..=65_536)?),
+            kv_budget_bytes: src.whole(&read::KV_BUDGET_BYTES, d.kv_budget_bytes, 0..=1 << 50)?,
             queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
             shared_batch_rows: size(src.whole(
                 &read::SHARED_BATCH_ROWS,
@@ -501,6 +507,7 @@ impl fmt::Debug for Settings {
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)
             .field("step_tokens", &self.step_tokens)
+            .field("kv_budget_bytes", &self.kv_budget_bytes)
             .field("queue_depth", &self.queue_depth)
             .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)

@@ -51,6 +51,11 @@ pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
 );
 pub(crate) const STEP_TOKENS: SettingKey =
     SettingKey::new("engine", "step_tokens", "SWITCHYARD_ENGINE_STEP_TOKENS");
+pub(crate) const KV_BUDGET_BYTES: SettingKey = SettingKey::new(
+    "engine",
+    "kv_budget_bytes",
+    "SWITCHYARD_ENGINE_KV_BUDGET_BYTES",
+);
 pub(crate) const QUEUE_DEPTH: SettingKey =
     SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
 pub(crate) const SHARED_BATCH_ROWS: SettingKey = SettingKey::new(
@@ -153,6 +158,7 @@ pub const KEYS: &[SettingKey] = &[
     THREADS,
     MAX_BATCH_ROWS,
     STEP_TOKENS,
+    KV_BUDGET_BYTES,
     QUEUE_DEPTH,
     SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,

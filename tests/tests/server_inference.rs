@@ -497,3 +497,57 @@ fn chunked_and_batched_prefill_keep_the_reference_greedy_tokens() {
         }
     });
 }
+
+/// `engine.kv_budget_bytes`: the tiny decoder holds 512 bytes of KV cache per position (2
+/// layers x keys and values x 2 heads x 16 dims x 4 bytes), so its 14-token prompt plus 16
+/// new tokens plans 15,360 bytes. With a budget of 20,000 only one such generation runs at a
+/// time: four concurrent requests wait their turn and each still gets transformers' greedy
+/// tokens; a request that could never fit is refused with 413 and the numbers.
+#[test]
+fn a_kv_budget_makes_generations_wait_and_refuses_one_that_never_fits() {
+    let reference = greedy_reference();
+    let server = ServerSetup::tiny_decoder()
+        .set("engine", "kv_budget_bytes", "20000")
+        .start();
+    let body = json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 16});
+    std::thread::scope(|scope| {
+        let runs: Vec<_> = (0..4)
+            .map(|_| {
+                let (server, body) = (&server, &body);
+                scope.spawn(move || server.post("/generate", Auth::None, body).ok_json())
+            })
+            .collect();
+        for run in runs {
+            assert_eq!(run.join().unwrap()["token_ids"], json!(reference.greedy));
+        }
+    });
+    // One generation at a time: every forward pass carried one sequence.
+    let page = server.get("/metrics", Auth::Admin).body;
+    let value = |prefix: &str| -> f64 {
+        page.lines()
+            .find_map(|l| l.strip_prefix(prefix))
+            .unwrap_or_else(|| panic!("no {prefix} in\n{page}"))
+            .trim()
+            .parse()
+            .unwrap()
+    };
+    let (one, all) = (
+        value("switchyard_batch_rows_bucket{le=\"1.0\"}"),
+        value("switchyard_batch_rows_count"),
+    );
+    assert!(all >= 4.0 * 16.0 && one == all, "passes with one row {one} of {all}");
+    let n = reference.prompt_tokens;
+    let too_many = 20_000 / 512 - n + 1;
+    let reply = server.post(
+        "/generate",
+        Auth::None,
+        &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": too_many}),
+    );
+    reply.assert_error(413, "kv_budget_exceeded");
+    let want = format!(
+        "needs {} bytes of KV cache ({} positions of prompt and max_tokens, 512 bytes each); the engine's kv_budget_bytes is 20000, so prompt plus max_tokens may be at most 39 positions",
+        (n + too_many) * 512,
+        n + too_many
+    );
+    assert!(reply.body.contains(&want), "{}", reply.body);
+}

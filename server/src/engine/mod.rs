@@ -89,6 +89,8 @@ pub struct EngineConfig {
     pub max_batch_rows: usize,
     /// Most tokens one decoder step carries (decodes, then prompt chunks).
     pub step_tokens: usize,
+    /// KV-cache bytes the running generations may plan for together; 0: no limit.
+    pub kv_budget_bytes: u64,
     pub queue_depth: usize,
     /// With several tenants, the most rows in one encoder batch.
     pub shared_batch_rows: usize,
@@ -312,6 +314,8 @@ pub struct Engine {
     names: Vec<String>,
     metrics: Arc<Metrics>,
     thread: Option<JoinHandle<()>>,
+    /// KV-cache bytes the running generations may plan for together; 0: no limit.
+    kv_budget_bytes: u64,
 }
 
 impl std::fmt::Debug for Engine {
@@ -357,6 +361,7 @@ impl Engine {
             metrics: Arc::clone(&metrics),
             queue: Arc::clone(&queue),
         };
+        let kv_budget_bytes = worker.config.kv_budget_bytes;
         let thread = std::thread::Builder::new()
             .name("switchyard-engine".to_owned())
             .spawn(move || worker.run())
@@ -367,7 +372,13 @@ impl Engine {
             names,
             metrics,
             thread: Some(thread),
+            kv_budget_bytes,
         }
+    }
+
+    /// KV-cache bytes the running generations may plan for together; 0: no limit.
+    pub fn kv_budget_bytes(&self) -> u64 {
+        self.kv_budget_bytes
     }
 
     /// Admits a request of `tenant` that needs `tokens`: under the tenant's quota, and with a
@@ -689,18 +700,28 @@ impl Worker {
     /// the queue's round robin over tenants between steps. Blocks only when nothing is running.
     fn run_decoder(&mut self, g: &Generator) {
         let mut live: Vec<Sequence> = Vec::new();
+        // Jobs taken from the queue that wait for room in the KV budget, in the queue's order.
+        let mut waiting: std::collections::VecDeque<Job> = std::collections::VecDeque::new();
         let eos = g.model().config.eos_ids();
+        let per_position = g.model().kv_bytes_per_position();
+        let planned = |job: &Job| match job {
+            Job::Generate(j) => (j.prompt_ids.len() + j.limit) as u64 * per_position,
+            Job::Embed(_) => 0,
+        };
         loop {
             let budget = Budget {
                 cost: u64::MAX,
-                jobs: self.config.max_batch_rows.saturating_sub(live.len()),
+                jobs: self
+                    .config
+                    .max_batch_rows
+                    .saturating_sub(live.len() + waiting.len()),
             };
-            let jobs = if live.is_empty() {
+            let jobs = if live.is_empty() && waiting.is_empty() {
                 match self.queue.take(budget) {
                     Some(jobs) => jobs,
                     None => return,
                 }
-            } else if budget.jobs > 0 {
+            } else if budget.jobs > 0 && waiting.is_empty() {
                 self.queue.try_take(budget)
             } else {
                 Vec::new()
@@ -708,7 +729,21 @@ impl Worker {
             if !jobs.is_empty() {
                 self.took();
             }
-            for job in jobs {
+            waiting.extend(jobs);
+            // Admit in order while the planned KV bytes fit (always when nothing runs: a job
+            // that could never fit was refused before it was queued).
+            let kv_budget = self.config.kv_budget_bytes;
+            let mut in_use: u64 = live
+                .iter()
+                .map(|s| (s.job.prompt_ids.len() + s.job.limit) as u64 * per_position)
+                .sum();
+            while let Some(job) = waiting.front() {
+                let need = planned(job);
+                if kv_budget > 0 && !live.is_empty() && in_use + need > kv_budget {
+                    break;
+                }
+                in_use += need;
+                let job = waiting.pop_front().expect("a front job");
                 self.admit_guarded(g, job, &mut live);
             }
             // Drop sequences whose client went away, or whose deadline passed.

@@ -831,6 +831,19 @@ async fn start_generation(
             ),
         ));
     }
+    let kv_budget = state.engine.kv_budget_bytes();
+    let per_position = g.model().kv_bytes_per_position();
+    let kv_need = (prompt_ids.len() + limit) as u64 * per_position;
+    if kv_budget > 0 && kv_need > kv_budget {
+        return Err(too_large(
+            "kv_budget_exceeded",
+            format!(
+                "this generation needs {kv_need} bytes of KV cache ({} positions of prompt and max_tokens, {per_position} bytes each); the engine's kv_budget_bytes is {kv_budget}, so prompt plus max_tokens may be at most {} positions",
+                prompt_ids.len() + limit,
+                kv_budget / per_position
+            ),
+        ));
+    }
     let (tx, rx) = mpsc::unbounded_channel();
     let target = Target::of(&body.adapter, &body.split, &body.subject);
     // The most the generation can use: its prompt and max_tokens; what it does not generate is

@@ -732,6 +732,11 @@ impl LlamaModel {
         })
     }
 
+    /// Bytes one position of a sequence's KV cache holds (keys and values of every layer, f32).
+    pub fn kv_bytes_per_position(&self) -> u64 {
+        (self.blocks.len() * 2 * self.config.kv_heads() * self.config.head_dim() * 4) as u64
+    }
+
     /// A cache for one new sequence.
     pub fn new_cache(&self) -> KvCache {
         KvCache {
