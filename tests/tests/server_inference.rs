@@ -535,7 +535,10 @@ fn a_kv_budget_makes_generations_wait_and_refuses_one_that_never_fits() {
         value("switchyard_batch_rows_bucket{le=\"1.0\"}"),
         value("switchyard_batch_rows_count"),
     );
-    assert!(all >= 4.0 * 16.0 && one == all, "passes with one row {one} of {all}");
+    assert!(
+        all >= 4.0 * 16.0 && one == all,
+        "passes with one row {one} of {all}"
+    );
     let n = reference.prompt_tokens;
     let too_many = 20_000 / 512 - n + 1;
     let reply = server.post(
