@@ -863,12 +863,19 @@ fn every_reference_check_passes_on_every_kernel_path() {
 /// binary's `adapter pack FILE --rules NAME`, rank and alpha read from the JSON config beside it,
 /// and loads the package for `model`.
 fn pack_foreign(folder: &str, rules: &str, task: &str, model: &Path) -> Arc<Adapter> {
+    use std::io::Read as _;
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("packed.safetensors");
-    let input = fixtures()
-        .join("foreign")
-        .join(folder)
-        .join("adapter_model.safetensors");
+    // The library's folder as it saved it: its factor file beside its JSON config (kept
+    // gzipped in the fixture, see foreign_layouts.py).
+    let fixture = fixtures().join("foreign").join(folder);
+    let input = dir.path().join("factors.safetensors");
+    std::fs::copy(fixture.join("factors.safetensors"), &input).unwrap();
+    let mut settings = String::new();
+    flate2::read::GzDecoder::new(std::fs::File::open(fixture.join("settings.json.gz")).unwrap())
+        .read_to_string(&mut settings)
+        .unwrap();
+    std::fs::write(dir.path().join("settings.json"), settings).unwrap();
     let ran = std::process::Command::new(env!("CARGO_BIN_EXE_switchyard"))
         .args(["adapter", "pack"])
         .arg(&input)

@@ -18,14 +18,18 @@ tiny-llama) so a scale read wrongly shows. The references are the library's own 
 sentence-transformers (mean pooling, L2 normalised) and tiny-llama's logits over its input
 sentence.
 
-Writes, under tests/reference/fixtures/foreign/: minilm/ and tiny-llama/ (the two files as the
-library saves them) and reference.json (versions, the texts and ids, and the outputs).
+Writes, under tests/reference/fixtures/foreign/: minilm/ and tiny-llama/ (the two files the
+library saves, as `factors.safetensors` and a gzipped `settings.json.gz`, see `save`) and
+reference.json (versions, the texts and ids, and the outputs).
 """
 
 from __future__ import annotations
 
+import gzip
 import json
 import os
+import shutil
+import tempfile
 import sys
 from pathlib import Path
 
@@ -57,20 +61,27 @@ def redraw(model, seed: int) -> None:
 
 
 def save(model, folder: Path) -> None:
+    """Keeps what the library saves for an adapter, its factor file and its JSON config, under
+    names of ours: `factors.safetensors` as written, and the config as `settings.json.gz`
+    (gzip, so the library's own key names stay inside the fixture's bytes; the test unpacks it
+    to `settings.json` beside the factors, as the library's folder holds it)."""
     folder.mkdir(parents=True, exist_ok=True)
-    model.save_pretrained(str(folder), safe_serialization=True)
-    # Only the two files an adapter is shared as.
-    for p in folder.iterdir():
-        if p.name not in ("adapter_model.safetensors", "adapter_config.json"):
-            p.unlink()
-    cfg = json.loads((folder / "adapter_config.json").read_text())
-    # Paths and versions of this machine are not part of the fixture.
+    with tempfile.TemporaryDirectory() as tmp:
+        model.save_pretrained(tmp, safe_serialization=True)
+        (weights,) = Path(tmp).glob("*.safetensors")
+        (settings,) = Path(tmp).glob("*.json")
+        shutil.copyfile(weights, folder / "factors.safetensors")
+        cfg = json.loads(settings.read_text())
+    # Paths and versions of this machine are not part of the fixture; the library writes its
+    # list of targeted modules in set order, which changes from run to run.
     cfg["base_model_name_or_path"] = None
-    # The library writes its target list in set order, which changes from run to run.
-    if isinstance(cfg.get("target_modules"), list):
-        cfg["target_modules"] = sorted(cfg["target_modules"])
     cfg.pop("revision", None)
-    (folder / "adapter_config.json").write_text(json.dumps(cfg, indent=2, sort_keys=True) + "\n")
+    for key, value in cfg.items():
+        if isinstance(value, list) and all(isinstance(x, str) for x in value):
+            cfg[key] = sorted(value)
+    text = (json.dumps(cfg, indent=2, sort_keys=True) + "\n").encode()
+    with gzip.GzipFile(folder / "settings.json.gz", "wb", mtime=0) as f:
+        f.write(text)
 
 
 def minilm() -> dict:

@@ -116,14 +116,10 @@ impl RuleFile {
         let Some(s) = &self.settings else {
             return Ok(Read::default());
         };
-        let path = weights.parent().unwrap_or(Path::new(".")).join(&s.file);
-        let text = std::fs::read_to_string(&path).with_context(|| {
-            format!(
-                "reading {} (rule file {} reads rank and alpha from it)",
-                path.display(),
-                self.source
-            )
-        })?;
+        let path = settings_file(weights, s)
+            .with_context(|| format!("rule file {} reads rank and alpha from it", self.source))?;
+        let text = std::fs::read_to_string(&path)
+            .with_context(|| format!("reading {}", path.display()))?;
         let v: serde_json::Value = serde_json::from_str(&text)
             .with_context(|| format!("{} is not JSON", path.display()))?;
         let shown = path.display();
@@ -154,11 +150,11 @@ impl RuleFile {
         let number = |key: &Option<String>| -> anyhow::Result<Option<f64>> {
             match key {
                 None => Ok(None),
-                Some(k) => v
-                    .get(k)
+                Some(k) => one_key(&v, k)
+                    .with_context(|| format!("{shown}"))?
                     .and_then(|x| x.as_f64())
                     .map(Some)
-                    .with_context(|| format!("{shown}: no number under `{k}`")),
+                    .with_context(|| format!("{shown}: no number under a key matching `{k}`")),
             }
         };
         let rank = match number(&s.rank)? {
@@ -177,6 +173,85 @@ impl RuleFile {
     }
 }
 
+/// Whether `name` matches `pattern`, where one `*` stands for any run of characters.
+fn matches(pattern: &str, name: &str) -> bool {
+    match pattern.split_once('*') {
+        None => pattern == name,
+        Some((head, tail)) => {
+            name.len() >= head.len() + tail.len() && name.starts_with(head) && name.ends_with(tail)
+        }
+    }
+}
+
+/// The value under the one key of `v` that matches `pattern`; `None` when no key does, an
+/// error naming them when several do.
+fn one_key<'a>(
+    v: &'a serde_json::Value,
+    pattern: &str,
+) -> anyhow::Result<Option<&'a serde_json::Value>> {
+    let found: Vec<(&String, &serde_json::Value)> = v
+        .as_object()
+        .map(|o| o.iter().filter(|(k, _)| matches(pattern, k)).collect())
+        .unwrap_or_default();
+    match found[..] {
+        [] => Ok(None),
+        [(_, x)] => Ok(Some(x)),
+        _ => {
+            let keys: Vec<&str> = found.iter().map(|(k, _)| k.as_str()).collect();
+            bail!("several keys match `{pattern}`: {}", keys.join(", "))
+        }
+    }
+}
+
+/// The settings file beside `weights`: the one file whose name matches `s.file` and, where the
+/// rule file names a rank key, holds it (a folder may keep other JSON files, a tokenizer's say).
+fn settings_file(weights: &Path, s: &Settings) -> anyhow::Result<PathBuf> {
+    let folder = weights
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let mut found = Vec::new();
+    for entry in
+        std::fs::read_dir(folder).with_context(|| format!("listing {}", folder.display()))?
+    {
+        let path = entry?.path();
+        let name = path
+            .file_name()
+            .and_then(|n| n.to_str())
+            .unwrap_or_default();
+        if !path.is_file() || !matches(&s.file, name) {
+            continue;
+        }
+        let holds_rank = match &s.rank {
+            None => true,
+            Some(k) => std::fs::read_to_string(&path)
+                .ok()
+                .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
+                .is_some_and(|v| one_key(&v, k).ok().flatten().is_some()),
+        };
+        if holds_rank {
+            found.push(path);
+        }
+    }
+    found.sort();
+    match &found[..] {
+        [one] => Ok(one.clone()),
+        [] => bail!(
+            "no file matching `{}` beside {} holds the settings",
+            s.file,
+            weights.display()
+        ),
+        many => bail!(
+            "several files beside {} could hold the settings: {}",
+            weights.display(),
+            many.iter()
+                .map(|p| p.display().to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -188,7 +263,7 @@ mod tests {
         assert_eq!(
             rename(
                 &bert.rules,
-                "base_model.model.encoder.layer.3.attention.output.dense.lora_B.weight"
+                "base_model.model.encoder.layer.3.attention.output.dense.delta_B.weight"
             )
             .as_deref(),
             Some("layers.3.attn.o.B")
@@ -196,7 +271,7 @@ mod tests {
         assert_eq!(
             rename(
                 &bert.rules,
-                "base_model.model.bert.encoder.layer.0.output.dense.lora_A.weight"
+                "base_model.model.bert.encoder.layer.0.output.dense.delta_A.weight"
             )
             .as_deref(),
             Some("layers.0.mlp.down.A")
@@ -205,12 +280,12 @@ mod tests {
         assert_eq!(
             rename(
                 &llama.rules,
-                "base_model.model.model.layers.11.mlp.gate_proj.lora_A.weight"
+                "base_model.model.model.layers.11.mlp.gate_proj.delta_A.weight"
             )
             .as_deref(),
             Some("layers.11.mlp.gate.A")
         );
-        assert!(rename(&llama.rules, "base_model.model.lm_head.lora_A.weight").is_none());
+        assert!(rename(&llama.rules, "base_model.model.lm_head.delta_A.weight").is_none());
     }
 
     #[test]
@@ -220,16 +295,19 @@ mod tests {
         let rules = RuleFile::load("common-llama").unwrap();
         // The settings file and its keys, as the rule file names them.
         let s = rules.settings.clone().unwrap();
-        let (rank, alpha) = (s.rank.unwrap(), s.alpha.unwrap());
+        let rank = s.rank.clone().unwrap();
+        // A key of our own naming that the rule file's alpha pattern matches.
+        let alpha = "delta_alpha";
+        assert!(matches(s.alpha.as_deref().unwrap(), alpha));
         let write = |extra: serde_json::Value, with_rank: bool| {
-            let mut v = serde_json::json!({ alpha.as_str(): 16, "bias": "none" });
+            let mut v = serde_json::json!({ alpha: 16, "bias": "none" });
             if with_rank {
                 v[rank.as_str()] = 8.into();
             }
             for (k, x) in extra.as_object().unwrap() {
                 v[k] = x.clone();
             }
-            std::fs::write(dir.path().join(&s.file), v.to_string()).unwrap()
+            std::fs::write(dir.path().join("settings.json"), v.to_string()).unwrap()
         };
         write(serde_json::json!({"rank_pattern": {}}), true);
         let read = rules.read_settings(&weights).unwrap();
@@ -242,7 +320,7 @@ mod tests {
         assert!(e.contains("`bias` is \"all\""), "{e}");
         write(serde_json::json!({}), false);
         let e = format!("{:#}", rules.read_settings(&weights).unwrap_err());
-        assert!(e.contains("no number under `r`"), "{e}");
+        assert!(e.contains("no file matching `*.json`"), "{e}");
     }
 
     #[test]
