@@ -156,7 +156,9 @@ fn encoder_section(report: &mut Report, rounds: usize) {
     let run = |rows: &RowAdapters| {
         let start = Instant::now();
         let h = e.model().forward(&ids_t, &mask, rows).unwrap();
-        let _ = switchyard_server::model::bert::mean_pool_normalise(&h, &mask).unwrap();
+        let _ = switchyard_server::model::embedder::Pooling::default()
+            .apply(&h, &mask)
+            .unwrap();
         start.elapsed().as_secs_f64()
     };
     let n = b * t;
@@ -325,7 +327,9 @@ fn encoder_formats_section(report: &mut Report, rounds: usize) {
     let run = |m: &Embedder, rows: &RowAdapters| {
         let start = Instant::now();
         let h = m.model().forward(&ids_t, &mask, rows).unwrap();
-        let _ = switchyard_server::model::bert::mean_pool_normalise(&h, &mask).unwrap();
+        let _ = switchyard_server::model::embedder::Pooling::default()
+            .apply(&h, &mask)
+            .unwrap();
         start.elapsed().as_secs_f64()
     };
     for (_, m) in &models {

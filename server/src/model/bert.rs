@@ -6,7 +6,7 @@ use std::collections::BTreeMap;
 
 use std::sync::Arc;
 
-use candle_core::{D, DType, Result, Tensor};
+use candle_core::{DType, Result, Tensor};
 use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
@@ -476,18 +476,4 @@ impl BertModel {
         }
         n
     }
-}
-
-/// Mean of the hidden states over real tokens, then L2-normalised: `[b, t, h]` → `[b, h]`.
-pub fn mean_pool_normalise(hidden: &Tensor, mask: &Tensor) -> Result<Tensor> {
-    let m = mask.to_dtype(DType::F32)?.unsqueeze(D::Minus1)?;
-    let summed = hidden.broadcast_mul(&m)?.sum(1)?;
-    let counts = m.sum(1)?.clamp(1e-9, f64::MAX)?;
-    let mean = summed.broadcast_div(&counts)?;
-    let norm = mean
-        .sqr()?
-        .sum_keepdim(D::Minus1)?
-        .sqrt()?
-        .clamp(1e-12, f64::MAX)?;
-    mean.broadcast_div(&norm)
 }

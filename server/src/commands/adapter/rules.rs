@@ -116,12 +116,8 @@ impl RuleFile {
         let Some(s) = &self.settings else {
             return Ok(Read::default());
         };
-        let path = settings_file(weights, s)
+        let (path, v) = settings_file(weights, s)
             .with_context(|| format!("rule file {} reads rank and alpha from it", self.source))?;
-        let text = std::fs::read_to_string(&path)
-            .with_context(|| format!("reading {}", path.display()))?;
-        let v: serde_json::Value = serde_json::from_str(&text)
-            .with_context(|| format!("{} is not JSON", path.display()))?;
         let shown = path.display();
         for key in &s.must_be_unset {
             let set = match v.get(key) {
@@ -203,9 +199,10 @@ fn one_key<'a>(
     }
 }
 
-/// The settings file beside `weights`: the one file whose name matches `s.file` and, where the
-/// rule file names a rank key, holds it (a folder may keep other JSON files, a tokenizer's say).
-fn settings_file(weights: &Path, s: &Settings) -> anyhow::Result<PathBuf> {
+/// The settings file beside `weights`, read: the one JSON file whose name matches `s.file` and,
+/// where the rule file names a rank key, holds it (a folder may keep other JSON files, a
+/// tokenizer's say).
+fn settings_file(weights: &Path, s: &Settings) -> anyhow::Result<(PathBuf, serde_json::Value)> {
     let folder = weights
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
@@ -222,20 +219,23 @@ fn settings_file(weights: &Path, s: &Settings) -> anyhow::Result<PathBuf> {
         if !path.is_file() || !matches(&s.file, name) {
             continue;
         }
+        let Some(v) = std::fs::read_to_string(&path)
+            .ok()
+            .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
+        else {
+            continue;
+        };
         let holds_rank = match &s.rank {
             None => true,
-            Some(k) => std::fs::read_to_string(&path)
-                .ok()
-                .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
-                .is_some_and(|v| one_key(&v, k).ok().flatten().is_some()),
+            Some(k) => one_key(&v, k).ok().flatten().is_some(),
         };
         if holds_rank {
-            found.push(path);
+            found.push((path, v));
         }
     }
-    found.sort();
-    match &found[..] {
-        [one] => Ok(one.clone()),
+    found.sort_by(|a, b| a.0.cmp(&b.0));
+    match &mut found[..] {
+        [one] => Ok(std::mem::take(one)),
         [] => bail!(
             "no file matching `{}` beside {} holds the settings",
             s.file,
@@ -245,7 +245,7 @@ fn settings_file(weights: &Path, s: &Settings) -> anyhow::Result<PathBuf> {
             "several files beside {} could hold the settings: {}",
             weights.display(),
             many.iter()
-                .map(|p| p.display().to_string())
+                .map(|(p, _)| p.display().to_string())
                 .collect::<Vec<_>>()
                 .join(", ")
         ),
