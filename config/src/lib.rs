@@ -66,6 +66,9 @@ pub struct Settings {
     /// plus max_tokens, times the model's bytes per position); 0: no limit. A generation that
     /// does not fit waits for room; one that could never fit is refused.
     pub kv_budget_bytes: u64,
+    /// Bytes of finished prompts' KV cache kept for later prompts that begin the same way on the
+    /// same adapter version (least recently used first out); 0: no prefix cache.
+    pub prefix_cache_bytes: u64,
     /// Requests admitted and waiting for the engine; one more is answered 429. Each tenant may
     /// hold an equal share of them.
     pub queue_depth: usize,
@@ -181,6 +184,7 @@ impl Default for Settings {
             max_batch_rows: 32,
             step_tokens: 256,
             kv_budget_bytes: 0,
+            prefix_cache_bytes: 256 * MIB,
             queue_depth: 256,
             shared_batch_rows: 4,
             request_timeout_ms: 30_000,
@@ -333,6 +337,11 @@ impl Settings {
             )?),
             step_tokens: size(src.whole(&read::STEP_TOKENS, d.step_tokens as u64, 1..=65_536)?),
             kv_budget_bytes: src.whole(&read::KV_BUDGET_BYTES, d.kv_budget_bytes, 0..=1 << 50)?,
+            prefix_cache_bytes: src.whole(
+                &read::PREFIX_CACHE_BYTES,
+                d.prefix_cache_bytes,
+                0..=1 << 50,
+            )?,
             queue_depth: size(src.whole(&read::QUEUE_DEPTH, d.queue_depth as u64, 1..=100_000)?),
             shared_batch_rows: size(src.whole(
                 &read::SHARED_BATCH_ROWS,
@@ -508,6 +517,7 @@ impl fmt::Debug for Settings {
             .field("max_batch_rows", &self.max_batch_rows)
             .field("step_tokens", &self.step_tokens)
             .field("kv_budget_bytes", &self.kv_budget_bytes)
+            .field("prefix_cache_bytes", &self.prefix_cache_bytes)
             .field("queue_depth", &self.queue_depth)
             .field("shared_batch_rows", &self.shared_batch_rows)
             .field("request_timeout_ms", &self.request_timeout_ms)

@@ -56,6 +56,11 @@ pub(crate) const KV_BUDGET_BYTES: SettingKey = SettingKey::new(
     "kv_budget_bytes",
     "SWITCHYARD_ENGINE_KV_BUDGET_BYTES",
 );
+pub(crate) const PREFIX_CACHE_BYTES: SettingKey = SettingKey::new(
+    "engine",
+    "prefix_cache_bytes",
+    "SWITCHYARD_ENGINE_PREFIX_CACHE_BYTES",
+);
 pub(crate) const QUEUE_DEPTH: SettingKey =
     SettingKey::new("engine", "queue_depth", "SWITCHYARD_ENGINE_QUEUE_DEPTH");
 pub(crate) const SHARED_BATCH_ROWS: SettingKey = SettingKey::new(
@@ -159,6 +164,7 @@ pub const KEYS: &[SettingKey] = &[
     MAX_BATCH_ROWS,
     STEP_TOKENS,
     KV_BUDGET_BYTES,
+    PREFIX_CACHE_BYTES,
     QUEUE_DEPTH,
     SHARED_BATCH_ROWS,
     REQUEST_TIMEOUT_MS,

@@ -80,6 +80,7 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::MAX_BATCH_ROWS, s.max_batch_rows);
     page.line(&read::STEP_TOKENS, s.step_tokens);
     page.line(&read::KV_BUDGET_BYTES, s.kv_budget_bytes);
+    page.line(&read::PREFIX_CACHE_BYTES, s.prefix_cache_bytes);
     page.line(&read::QUEUE_DEPTH, s.queue_depth);
     page.line(&read::SHARED_BATCH_ROWS, s.shared_batch_rows);
     page.line(&read::REQUEST_TIMEOUT_MS, s.request_timeout_ms);

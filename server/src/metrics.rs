@@ -58,6 +58,13 @@ pub struct RefusalLabels {
     pub reason: String,
 }
 
+/// Where a prompt token's keys and values came from: `prefilled` by a forward pass, or `reused`
+/// from the prefix cache.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct PromptLabels {
+    pub source: String,
+}
+
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct ArmLabels {
     pub split: String,
@@ -81,6 +88,8 @@ pub struct Metrics {
     pub first_token_seconds: Histogram,
     pub request_seconds: Histogram,
     pub generated_tokens: Counter,
+    pub prompt_tokens: Family<PromptLabels, Counter>,
+    pub prefix_cache_bytes: Gauge,
     pub arm_requests: Family<ArmLabels, Counter>,
     pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
@@ -166,6 +175,18 @@ impl Metrics {
             "Tokens generated",
             generated_tokens.clone(),
         );
+        let prompt_tokens = Family::<PromptLabels, Counter>::default();
+        registry.register(
+            "prompt_tokens",
+            "Prompt tokens of generations, by source: prefilled, or reused from the prefix cache",
+            prompt_tokens.clone(),
+        );
+        let prefix_cache_bytes = Gauge::default();
+        registry.register(
+            "prefix_cache_bytes",
+            "Bytes of prompt KV cache the prefix cache holds",
+            prefix_cache_bytes.clone(),
+        );
         let arm_requests = Family::<ArmLabels, Counter>::default();
         registry.register(
             "split_requests",
@@ -213,6 +234,8 @@ impl Metrics {
             first_token_seconds,
             request_seconds,
             generated_tokens,
+            prompt_tokens,
+            prefix_cache_bytes,
             arm_requests,
             refusals,
             swap_events_dropped,
@@ -221,6 +244,17 @@ impl Metrics {
             base_weight_bytes,
             labelled_adapters: Mutex::new(HashSet::new()),
             adapter_series,
+        }
+    }
+
+    /// Counts a generation's prompt tokens: `reused` from the prefix cache, the rest prefilled.
+    pub fn prompt_tokens(&self, total: usize, reused: usize) {
+        for (source, n) in [("reused", reused), ("prefilled", total - reused)] {
+            self.prompt_tokens
+                .get_or_create(&PromptLabels {
+                    source: source.to_owned(),
+                })
+                .inc_by(n as u64);
         }
     }
 

@@ -142,7 +142,7 @@ fn generate_stream_from_the_tiny_decoder_sends_the_reference_greedy_tokens() {
     assert_eq!(done.event, "done", "{done:?}");
     assert_eq!(
         done.data["counts"],
-        json!({"prompt_tokens": reference.prompt_tokens, "output_tokens": 16})
+        json!({"prompt_tokens": reference.prompt_tokens, "reused_prompt_tokens": 0, "output_tokens": 16})
     );
     assert_eq!(done.data["finish"], "limit");
     assert_eq!(done.data["served_by"], "base");
@@ -168,7 +168,7 @@ fn generate_json_answer_from_the_tiny_decoder_carries_the_reference_greedy_token
     assert_eq!(answer["finish"], "limit");
     assert_eq!(
         answer["counts"],
-        json!({"prompt_tokens": reference.prompt_tokens, "output_tokens": 16})
+        json!({"prompt_tokens": reference.prompt_tokens, "reused_prompt_tokens": 0, "output_tokens": 16})
     );
 }
 
@@ -553,4 +553,87 @@ fn a_kv_budget_makes_generations_wait_and_refuses_one_that_never_fits() {
         n + too_many
     );
     assert!(reply.body.contains(&want), "{}", reply.body);
+}
+
+/// The prefix cache: a prompt prefilled once on an adapter version is reused by the next prompt
+/// that begins with its tokens on the same version (all but the last token, whose logits pick
+/// the first new token), and the answer is still transformers' greedy tokens for that adapter
+/// (tests/reference/generate.py). A cache made on the base, on another adapter, or on another
+/// version of the same adapter is never used: each of those first requests prefills everything
+/// and gets its own reference tokens, which a borrowed cache would change.
+#[test]
+fn the_prefix_cache_is_reused_on_the_same_adapter_version_and_never_across() {
+    let reference = greedy_reference();
+    let fx = read_json(&fixtures().join("tiny-llama-reference.json"));
+    let greedy_of = |adapter: &str| fx["adapters"][adapter]["greedy"].clone();
+    let server = ServerSetup::tiny_decoder().start();
+    let v1 = server.publish("helper", &fixtures().join("tiny-llama-qv.safetensors"));
+    server.publish("other", &fixtures().join("tiny-llama-all.safetensors"));
+    let n = reference.prompt_tokens;
+    let run = |adapter: &str| {
+        let answer = server
+            .post(
+                "/generate",
+                Auth::None,
+                &json!({"adapter": adapter, "prompt": reference.prompt, "max_tokens": 16}),
+            )
+            .ok_json();
+        (
+            answer["token_ids"].clone(),
+            answer["counts"]["reused_prompt_tokens"].as_u64().unwrap(),
+        )
+    };
+    let base = json!(reference.greedy);
+    assert_eq!(run("base"), (base.clone(), 0), "first on the base");
+    assert_eq!(
+        run("base"),
+        (base.clone(), n as u64 - 1),
+        "again on the base"
+    );
+    let qv = greedy_of("tiny-llama-qv");
+    assert_eq!(run("helper"), (qv.clone(), 0), "first on helper@{v1}");
+    assert_eq!(
+        run("helper"),
+        (qv.clone(), n as u64 - 1),
+        "again on helper@{v1}"
+    );
+    let all = greedy_of("tiny-llama-all");
+    assert_eq!(run("other"), (all.clone(), 0), "first on another adapter");
+    // A new version of `helper` (the other factors) goes live: its first request prefills.
+    let v2 = server.publish("helper", &fixtures().join("tiny-llama-all.safetensors"));
+    assert_ne!(v1, v2);
+    assert_eq!(run("helper"), (all.clone(), 0), "first on helper@{v2}");
+    assert_eq!(run("helper"), (all, n as u64 - 1), "again on helper@{v2}");
+    // Rolled back, the old version finds its own cache again.
+    server
+        .post("/admin/adapters/helper/rollback", Auth::Admin, &json!({}))
+        .ok_json();
+    assert_eq!(run("helper"), (qv, n as u64 - 1), "back on helper@{v1}");
+    let page = server.get("/metrics", Auth::Admin).body;
+    let reused = (n as u64 - 1) * 4;
+    assert!(
+        page.contains(&format!(
+            "switchyard_prompt_tokens_total{{source=\"reused\"}} {reused}"
+        )),
+        "{page}"
+    );
+    assert!(
+        page.lines()
+            .any(|l| l.starts_with("switchyard_prefix_cache_bytes ") && !l.ends_with(" 0")),
+        "{page}"
+    );
+    // Off: nothing is reused.
+    let off = ServerSetup::tiny_decoder()
+        .set("engine", "prefix_cache_bytes", "0")
+        .start();
+    for _ in 0..2 {
+        let answer = off
+            .post(
+                "/generate",
+                Auth::None,
+                &json!({"adapter": "base", "prompt": reference.prompt, "max_tokens": 4}),
+            )
+            .ok_json();
+        assert_eq!(answer["counts"]["reused_prompt_tokens"], 0);
+    }
 }

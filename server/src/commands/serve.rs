@@ -234,6 +234,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
             max_batch_rows: settings.max_batch_rows,
             step_tokens: settings.step_tokens,
             kv_budget_bytes: settings.kv_budget_bytes,
+            prefix_cache_bytes: settings.prefix_cache_bytes,
             queue_depth: settings.queue_depth,
             shared_batch_rows: settings.shared_batch_rows,
             promote_share: settings.promote_share,

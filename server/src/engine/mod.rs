@@ -13,11 +13,14 @@
 //! policy says that adapter dominates recent traffic, runs its merged variant instead. A decoder
 //! engine does continuous batching: new sequences are prefilled between decode steps and join
 //! the next step, every live sequence advances one token per step, and a sequence whose client
-//! went away is dropped with its KV cache at the next step.
+//! went away is dropped with its KV cache at the next step. A prompt that begins like one
+//! prefilled before on the same adapter version starts from a copy of that one's KV cache (the
+//! [`prefix`] cache) and prefills only the rest.
 
 pub mod detok;
 pub mod end_at;
 pub mod policy;
+pub mod prefix;
 pub mod queue;
 pub mod quota;
 
@@ -40,6 +43,7 @@ use crate::model::rows_for_sequences;
 use crate::model::sampling::{Sampler, SamplingParams};
 use detok::Detokenizer;
 use policy::PromotionPolicy;
+use prefix::PrefixCache;
 use queue::{Budget, Cost, FairQueue, QueueLimits, Refused};
 use quota::{Permit, QuotaRefusal, Quotas};
 
@@ -91,6 +95,9 @@ pub struct EngineConfig {
     pub step_tokens: usize,
     /// KV-cache bytes the running generations may plan for together; 0: no limit.
     pub kv_budget_bytes: u64,
+    /// Bytes of prompt KV cache kept for later prompts with the same beginning on the same
+    /// adapter version; 0: off.
+    pub prefix_cache_bytes: u64,
     pub queue_depth: usize,
     /// With several tenants, the most rows in one encoder batch.
     pub shared_batch_rows: usize,
@@ -259,6 +266,8 @@ pub enum GenEvent {
         /// back in case the next token completed it (usually empty).
         tail: String,
         prompt_tokens: usize,
+        /// Prompt tokens whose KV cache came from the prefix cache instead of a prefill.
+        reused_tokens: usize,
         /// Tokens generated, not counting an end-of-sequence token (which is not part of the
         /// output): the length of the answer's `token_ids`.
         output_tokens: usize,
@@ -357,6 +366,7 @@ impl Engine {
             backbone,
             registry,
             policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
+            prefixes: PrefixCache::new(config.prefix_cache_bytes),
             config,
             metrics: Arc::clone(&metrics),
             queue: Arc::clone(&queue),
@@ -514,6 +524,8 @@ struct Worker {
     backbone: Arc<Backbone>,
     registry: Option<Registry>,
     policy: PromotionPolicy,
+    /// Prefilled prompts' KV caches, by adapter version (decoder engines only).
+    prefixes: PrefixCache<KvCache>,
     config: EngineConfig,
     metrics: Arc<Metrics>,
     queue: Arc<FairQueue<Job>>,
@@ -805,11 +817,29 @@ impl Worker {
             )));
             return;
         }
+        // A stored prompt with the same beginning on the same adapter version gives its cache;
+        // the last prompt token is always prefilled, as its logits pick the first new token.
+        let (cache, reused) = match self.prefixes.find(
+            &adapter_key(&job.adapter),
+            &job.prompt_ids,
+            job.prompt_ids.len() - 1,
+        ) {
+            Some(found) => {
+                let room = job.prompt_ids.len() + job.limit;
+                (
+                    g.model().cache_prefix(found.cache, found.shared, room),
+                    found.shared,
+                )
+            }
+            None => (g.model().new_cache(), 0),
+        };
+        self.metrics.prompt_tokens(job.prompt_ids.len(), reused);
         let mut seq = Sequence {
-            cache: g.model().new_cache(),
+            cache,
             sampler: Sampler::new(job.sampling),
             last: 0,
-            prefilled: 0,
+            prefilled: reused,
+            reused,
             detok: Detokenizer::new(),
             sent_text: String::new(),
             holder: end_at::Holder::default(),
@@ -919,6 +949,7 @@ impl Worker {
                             keep.push(s);
                             continue;
                         }
+                        self.keep_prefix(g, &s);
                     }
                     let token = s.sampler.next(&l);
                     if s.push(g, token, eos, &self.metrics) {
@@ -937,6 +968,26 @@ impl Worker {
     }
 }
 
+impl Worker {
+    /// Offers a sequence's just-prefilled prompt to the prefix cache (a copy of its KV cache,
+    /// which holds exactly the prompt's positions now).
+    fn keep_prefix(&mut self, g: &Generator, s: &Sequence) {
+        if !self.prefixes.enabled() {
+            return;
+        }
+        let prompt = &s.job.prompt_ids;
+        let bytes = prompt.len() as u64 * g.model().kv_bytes_per_position();
+        let model = g.model();
+        self.prefixes
+            .keep(&adapter_key(&s.job.adapter), prompt, bytes, || {
+                model.cache_prefix(&s.cache, prompt.len(), prompt.len())
+            });
+        self.metrics
+            .prefix_cache_bytes
+            .set(self.prefixes.held_bytes() as i64);
+    }
+}
+
 /// Prompt tokens a decoder step prefills at least, however many generations it carries, so a
 /// waiting prompt always advances.
 const MIN_PREFILL_TOKENS: usize = 1;
@@ -949,6 +1000,8 @@ struct Sequence {
     last: u32,
     /// Prompt tokens already in the cache (the rest are prefilled by the coming steps).
     prefilled: usize,
+    /// Prompt tokens whose cache was copied from the prefix cache.
+    reused: usize,
     /// The output so far (end-of-sequence token excluded) and its streamed text.
     detok: Detokenizer,
     sent_text: String,
@@ -1035,6 +1088,7 @@ impl Sequence {
             tail: unsent_tail(&text, &self.sent_text),
             text,
             prompt_tokens: self.job.prompt_ids.len(),
+            reused_tokens: self.reused,
             output_tokens: self.detok.ids().len(),
             timings: Timings {
                 queue: self

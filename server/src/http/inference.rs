@@ -702,6 +702,7 @@ async fn whole_answer(
                 ended_by,
                 text,
                 prompt_tokens,
+                reused_tokens,
                 output_tokens,
                 timings,
                 ..
@@ -715,7 +716,7 @@ async fn whole_answer(
                     "token_ids": tokens,
                     "finish": reason,
                     "ended_by": ended_by,
-                    "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
+                    "counts": {"prompt_tokens": prompt_tokens, "reused_prompt_tokens": reused_tokens, "output_tokens": output_tokens},
                     "elapsed_ms": elapsed_json(&timings),
                 }))
                 .into_response();
@@ -886,6 +887,7 @@ fn stream_answer(
                     ended_by,
                     tail,
                     prompt_tokens,
+                    reused_tokens,
                     output_tokens,
                     timings,
                     ..
@@ -898,7 +900,7 @@ fn stream_answer(
                         "split": arm_json(&routed),
                         "finish": reason,
                         "ended_by": ended_by,
-                        "counts": {"prompt_tokens": prompt_tokens, "output_tokens": output_tokens},
+                        "counts": {"prompt_tokens": prompt_tokens, "reused_prompt_tokens": reused_tokens, "output_tokens": output_tokens},
                         "elapsed_ms": elapsed_json(&timings),
                     }));
                     let _ = tx.send(e.expect("json"));

@@ -363,6 +363,24 @@ impl LayerCache {
         }
     }
 
+    /// A layer holding the first `len` positions of this one, with room for exactly `capacity`
+    /// (at least `len`).
+    fn prefix(&self, len: usize, capacity: usize, heads: usize, dim: usize) -> LayerCache {
+        let capacity = capacity.max(len);
+        let mut out = LayerCache {
+            keys: vec![0f32; heads * capacity * dim],
+            values: vec![0f32; heads * capacity * dim],
+            capacity,
+        };
+        for g in 0..heads {
+            let (k, v) = self.head(g, len, dim);
+            let dst = g * out.capacity * dim;
+            out.keys[dst..dst + len * dim].copy_from_slice(k);
+            out.values[dst..dst + len * dim].copy_from_slice(v);
+        }
+        out
+    }
+
     /// The first `len` keys and values of head `g`, `[len, dim]` each.
     fn head(&self, g: usize, len: usize, dim: usize) -> (&[f32], &[f32]) {
         let start = g * self.capacity * dim;
@@ -745,6 +763,25 @@ impl LlamaModel {
         }
     }
 
+    /// A cache holding the first `len` positions of `cache` (a prompt's shared beginning), with
+    /// room for `capacity` positions before it must grow.
+    pub fn cache_prefix(&self, cache: &KvCache, len: usize, capacity: usize) -> KvCache {
+        assert!(
+            len <= cache.len,
+            "a prefix of at most the cache's {} positions",
+            cache.len
+        );
+        let (heads, dim) = (self.config.kv_heads(), self.config.head_dim());
+        KvCache {
+            layers: cache
+                .layers
+                .iter()
+                .map(|l| l.prefix(len, capacity, heads, dim))
+                .collect(),
+            len,
+        }
+    }
+
     /// Runs new tokens of several sequences in one pass and returns the final hidden state of
     /// every new token, `[sum of lengths, hidden]`, sequence after sequence. Each cache grows by
     /// its sequence's tokens. `adapters` covers the same rows.
@@ -1037,6 +1074,41 @@ mod tests {
         assert!(max_abs(&together[0], &alone_a[0]) < 1e-5);
         assert!(max_abs(&together[1], &alone_b[0]) < 1e-5);
         assert_eq!((ca.len(), cb.len()), (71, 8));
+    }
+
+    /// A prompt's shared beginning copied out of another prompt's cache, then the rest prefilled,
+    /// gives the logits of the whole prompt prefilled from nothing.
+    #[test]
+    fn a_copied_cache_prefix_continues_like_a_fresh_prefill() {
+        let model = tiny();
+        let shared: Vec<u32> = (0..90).map(|i| (i * 7 % 50) as u32).collect();
+        let first = [shared.clone(), vec![1, 2, 3]].concat();
+        let second = [shared.clone(), vec![9, 8]].concat();
+        let mut stored = model.new_cache();
+        model
+            .forward_last(&[&first], &mut [&mut stored], &RowAdapters::base(93))
+            .unwrap();
+        let mut reused = model.cache_prefix(&stored, 90, 100);
+        assert_eq!((reused.len(), reused.capacity()), (90, 100));
+        let got = model
+            .forward_last(&[&[9, 8]], &mut [&mut reused], &RowAdapters::base(2))
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        let mut fresh = model.new_cache();
+        let want = model
+            .forward_last(&[&second], &mut [&mut fresh], &RowAdapters::base(92))
+            .unwrap()
+            .to_vec2::<f32>()
+            .unwrap();
+        let d = max_abs(&got[0], &want[0]);
+        assert!(d < 1e-5, "logits differ by {d}");
+        // It grows past its capacity like any cache.
+        let more: Vec<u32> = (0..20).collect();
+        model
+            .forward_last(&[&more], &mut [&mut reused], &RowAdapters::base(20))
+            .unwrap();
+        assert_eq!(reused.len(), 112);
     }
 
     fn config(extra: serde_json::Value) -> LlamaConfig {
