@@ -281,6 +281,19 @@ impl Registry {
         Ok(Handle::new(key.0, key.1, value, hit, inner.clone()))
     }
 
+    /// The merged variant of the version `handle` holds when it is already built, without
+    /// building it (the engine asks this on its own thread and builds elsewhere).
+    pub fn merged_ready(&self, handle: &AdapterHandle) -> Option<MergedHandle> {
+        let key = (handle.name().clone(), handle.version().to_owned());
+        let value = {
+            let mut st = self.inner.state.lock();
+            st.clock += 1;
+            let tick = st.clock;
+            st.merged.lru.get(&key, tick)?
+        };
+        Some(Handle::new(key.0, key.1, value, true, self.inner.clone()))
+    }
+
     /// Keeps the live version of `name` resident, loading it now; refused when the pinned
     /// factors would not fit the factor budget.
     pub fn pin(&self, name: &str) -> Result<(), RegistryError> {

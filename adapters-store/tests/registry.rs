@@ -211,10 +211,14 @@ fn merged_variants_are_built_once_and_bounded_by_their_own_budget() {
     publish(&store, "b", 2.0);
     let events = registry.subscribe(64);
     let a = registry.resolve("a").unwrap();
+    assert!(registry.merged_ready(&a).is_none(), "not built yet");
     let m1 = registry.merged(&a).unwrap();
     let m2 = registry.merged(&a).unwrap();
+    let ready = registry.merged_ready(&a).expect("built now");
     assert_eq!(registry.merge_count(), 1);
     assert!(Arc::ptr_eq(m1.weights(), m2.weights()));
+    assert!(Arc::ptr_eq(m1.weights(), ready.weights()));
+    drop(ready);
     assert_eq!(m1.resident_bytes(), merged_one);
     // Zero base: merged = s·B·A with every A and B value 1 and s = alpha / r = 2, so each entry
     // is 2 × Σ_r 1·1 = 2 × 4 = 8.

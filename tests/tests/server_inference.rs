@@ -34,6 +34,40 @@ fn embed_with_base_and_two_uploaded_adapters_equals_the_reference_embeddings() {
     }
 }
 
+/// A merged variant is built off the engine thread: the request that finds its adapter
+/// promoted (a full window of 8 rows, all its own) is answered unmerged at once, a thread builds
+/// the variant, and later answers run merged. Merged or not, the embeddings equal
+/// sentence-transformers' for that adapter (minilm-embeddings.json).
+#[test]
+fn a_promoted_adapter_is_merged_off_the_engine_thread_and_answers_the_same() {
+    let reference = EmbeddingReference::load();
+    let server = ServerSetup::encoder()
+        .set("residency", "promote_window_rows", "8")
+        .start();
+    let texts = reference.texts();
+    let rows = texts.len();
+    assert!(rows >= 4, "two requests fill the 8-row window");
+    let fixture = "minilm-qv-a";
+    server.publish(fixture, &fixtures().join(format!("{fixture}.safetensors")));
+    let mut merged_at = None;
+    for i in 0..40 {
+        let answer = server.embed(json!({"adapter": fixture}), &texts).ok_json();
+        assert_embeddings_close(&answer["embeddings"], reference.adapter(fixture), fixture);
+        let merged = answer["merged"].as_bool().unwrap();
+        if i * rows < 8 || i == 8usize.div_ceil(rows) {
+            // Before the window is full, and the request that first finds it promoted.
+            assert!(!merged, "request {i} waited for a merge: {answer}");
+        }
+        if merged {
+            merged_at = Some(i);
+            break;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+    assert!(merged_at.is_some(), "never merged:\n{}", server.log());
+    assert!(server.log().contains("merged variant built"), "{}", server.log());
+}
+
 /// `model.weights = "int8"` in the config: the server holds the base model in int8 (converted
 /// at load from the checkpoint's f32), its embeddings stay within the int8 bar (cosine >= 0.995)
 /// of the sentence-transformers f32 reference (minilm-embeddings.json), and the start-up log,

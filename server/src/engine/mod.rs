@@ -367,6 +367,7 @@ impl Engine {
             registry,
             policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
             prefixes: PrefixCache::new(config.prefix_cache_bytes),
+            merges: Arc::default(),
             config,
             metrics: Arc::clone(&metrics),
             queue: Arc::clone(&queue),
@@ -520,12 +521,30 @@ impl Drop for Engine {
     }
 }
 
+/// A merged variant being built off the engine thread, or one whose build failed (and when).
+enum MergeBuild {
+    Running,
+    Failed(Instant),
+}
+
+/// How long a merged variant whose build failed (its tier full, say) runs unmerged before the
+/// engine tries to build it again.
+const MERGE_RETRY_AFTER: Duration = Duration::from_secs(30);
+
+/// Locks a mutex, taking it over from a thread that panicked while holding it (the map it
+/// guards stays consistent: every change is one insert or remove).
+fn lock<T>(m: &std::sync::Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(|p| p.into_inner())
+}
+
 struct Worker {
     backbone: Arc<Backbone>,
     registry: Option<Registry>,
     policy: PromotionPolicy,
     /// Prefilled prompts' KV caches, by adapter version (decoder engines only).
     prefixes: PrefixCache<KvCache>,
+    /// Merged variants being built off the engine thread, by `name@version`.
+    merges: Arc<std::sync::Mutex<std::collections::HashMap<String, MergeBuild>>>,
     config: EngineConfig,
     metrics: Arc<Metrics>,
     queue: Arc<FairQueue<Job>>,
@@ -556,30 +575,58 @@ impl Worker {
         self.metrics.queue_depth.set(self.queue.len() as i64);
     }
 
-    /// The merged variant to run a batch that uses only `handle`, when the policy promotes it.
+    /// The merged variant to run a batch that uses only `handle`, when the policy promotes it
+    /// and it is built. One not built yet is built on a thread of its own while this batch and
+    /// the next run unmerged, so a merge never holds up the engine; a build that failed is not
+    /// tried again for [`MERGE_RETRY_AFTER`].
     fn merged_for(&mut self, handle: &AdapterHandle) -> Option<(MergedHandle, Duration)> {
         let registry = self.registry.as_ref()?;
         if !registry.merging_enabled() || !self.policy.promotes(&handle.id()) {
             return None;
         }
-        let start = Instant::now();
-        let before = registry.merge_count();
-        match registry.merged(handle) {
-            Ok(m) => {
-                let outcome = if registry.merge_count() > before {
-                    "miss"
-                } else {
-                    "hit"
-                };
-                self.metrics
-                    .cache_event(switchyard_adapters::events::Tier::Merged, outcome);
-                Some((m, start.elapsed()))
-            }
-            Err(e) => {
-                tracing::warn!(adapter = %handle.id(), error = %e, "merged variant unavailable; running unmerged");
-                None
-            }
+        if let Some(m) = registry.merged_ready(handle) {
+            self.metrics
+                .cache_event(switchyard_adapters::events::Tier::Merged, "hit");
+            return Some((m, Duration::ZERO));
         }
+        let id = handle.id();
+        {
+            let mut builds = lock(&self.merges);
+            match builds.get(&id) {
+                Some(MergeBuild::Running) => return None,
+                Some(MergeBuild::Failed(at)) if at.elapsed() < MERGE_RETRY_AFTER => return None,
+                _ => {}
+            }
+            builds.insert(id.clone(), MergeBuild::Running);
+        }
+        self.metrics
+            .cache_event(switchyard_adapters::events::Tier::Merged, "miss");
+        let (registry, builds) = (registry.clone(), Arc::clone(&self.merges));
+        let (name, version) = (handle.name().to_string(), handle.version().to_owned());
+        let spawned = std::thread::Builder::new()
+            .name("switchyard-merge".to_owned())
+            .spawn(move || {
+                let start = Instant::now();
+                let built = registry
+                    .resolve_version(&name, &version)
+                    .and_then(|h| registry.merged(&h).map(drop));
+                let mut builds = lock(&builds);
+                match built {
+                    Ok(()) => {
+                        tracing::info!(adapter = %id, elapsed_ms = start.elapsed().as_millis() as u64, "merged variant built");
+                        builds.remove(&id);
+                    }
+                    Err(e) => {
+                        tracing::warn!(adapter = %id, error = %e, "merged variant unavailable; running unmerged");
+                        builds.insert(id, MergeBuild::Failed(Instant::now()));
+                    }
+                }
+            });
+        if let Err(e) = spawned {
+            tracing::warn!(error = %e, "could not start a merge thread; running unmerged");
+            lock(&self.merges).remove(&handle.id());
+        }
+        None
     }
 
     /// Batches of up to `max_batch_rows` rows, taken from the queue in fair order. With several
