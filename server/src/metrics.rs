@@ -90,6 +90,7 @@ pub struct Metrics {
     pub generated_tokens: Counter,
     pub prompt_tokens: Family<PromptLabels, Counter>,
     pub prefix_cache_bytes: Gauge,
+    pub engine_restarts: Counter,
     pub arm_requests: Family<ArmLabels, Counter>,
     pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
@@ -187,6 +188,12 @@ impl Metrics {
             "Bytes of prompt KV cache the prefix cache holds",
             prefix_cache_bytes.clone(),
         );
+        let engine_restarts = Counter::default();
+        registry.register(
+            "engine_restarts",
+            "Times the engine loop restarted after a panic outside a batch",
+            engine_restarts.clone(),
+        );
         let arm_requests = Family::<ArmLabels, Counter>::default();
         registry.register(
             "split_requests",
@@ -236,6 +243,7 @@ impl Metrics {
             generated_tokens,
             prompt_tokens,
             prefix_cache_bytes,
+            engine_restarts,
             arm_requests,
             refusals,
             swap_events_dropped,

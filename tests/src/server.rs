@@ -33,6 +33,7 @@ pub struct ServerSetup {
     model_dir: PathBuf,
     settings: BTreeMap<String, BTreeMap<String, String>>,
     tenants: String,
+    env: Vec<(String, String)>,
 }
 
 impl ServerSetup {
@@ -52,6 +53,7 @@ impl ServerSetup {
             model_dir,
             settings: BTreeMap::new(),
             tenants: String::new(),
+            env: Vec::new(),
         }
         .set("server", "listen", "\"127.0.0.1:0\"")
         .set("admin", "token", &format!("{ADMIN_TOKEN:?}"))
@@ -63,6 +65,12 @@ impl ServerSetup {
             .entry(section.to_owned())
             .or_default()
             .insert(key.to_owned(), toml_value.to_owned());
+        self
+    }
+
+    /// Sets an environment variable of the server process (the test-only fault triggers).
+    pub fn env(mut self, name: &str, value: &str) -> Self {
+        self.env.push((name.to_owned(), value.to_owned()));
         self
     }
 
@@ -112,11 +120,12 @@ impl ServerSetup {
         let dir = tempfile::tempdir().unwrap();
         let config = dir.path().join("switchyard.toml");
         std::fs::write(&config, self.toml(&dir.path().join("store"))).unwrap();
-        let (child, addr) = spawn(dir.path(), &config);
+        let (child, addr) = spawn(dir.path(), &config, &self.env);
         Server {
             child: Some(child),
             addr,
             config,
+            env: self.env,
             agent: agent(),
             dir,
         }
@@ -133,7 +142,7 @@ fn agent() -> ureq::Agent {
 
 /// Starts `switchyard serve --config CONFIG` in `dir`, with its log in `dir/server.log`, and
 /// waits for the `switchyard listening on http://ADDR` line.
-fn spawn(dir: &Path, config: &Path) -> (Child, String) {
+fn spawn(dir: &Path, config: &Path, env: &[(String, String)]) -> (Child, String) {
     let log = std::fs::OpenOptions::new()
         .create(true)
         .append(true)
@@ -154,6 +163,7 @@ fn spawn(dir: &Path, config: &Path) -> (Child, String) {
             command.env_remove(name);
         }
     }
+    command.envs(env.iter().map(|(k, v)| (k, v)));
     let mut child = command.spawn().expect("start switchyard serve");
     let stdout = child.stdout.take().unwrap();
     let (tx, rx) = mpsc::channel();
@@ -196,6 +206,7 @@ pub struct Server {
     child: Option<Child>,
     addr: String,
     config: PathBuf,
+    env: Vec<(String, String)>,
     agent: ureq::Agent,
     dir: tempfile::TempDir,
 }
@@ -447,7 +458,7 @@ impl Server {
             "the server did not exit cleanly on SIGTERM ({status:?}); log:\n{}",
             self.log()
         );
-        let (child, addr) = spawn(self.dir.path(), &self.config);
+        let (child, addr) = spawn(self.dir.path(), &self.config, &self.env);
         self.child = Some(child);
         self.addr = addr;
         self.agent = agent();
@@ -476,7 +487,7 @@ impl Server {
     /// the new process listens on a new port.
     pub fn start_again(&mut self) {
         assert!(self.child.is_none(), "the server is still running");
-        let (child, addr) = spawn(self.dir.path(), &self.config);
+        let (child, addr) = spawn(self.dir.path(), &self.config, &self.env);
         self.child = Some(child);
         self.addr = addr;
         self.agent = agent();

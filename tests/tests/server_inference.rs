@@ -65,7 +65,11 @@ fn a_promoted_adapter_is_merged_off_the_engine_thread_and_answers_the_same() {
         std::thread::sleep(std::time::Duration::from_millis(50));
     }
     assert!(merged_at.is_some(), "never merged:\n{}", server.log());
-    assert!(server.log().contains("merged variant built"), "{}", server.log());
+    assert!(
+        server.log().contains("merged variant built"),
+        "{}",
+        server.log()
+    );
 }
 
 /// `model.weights = "int8"` in the config: the server holds the base model in int8 (converted
@@ -670,4 +674,83 @@ fn the_prefix_cache_is_reused_on_the_same_adapter_version_and_never_across() {
             .ok_json();
         assert_eq!(answer["counts"]["reused_prompt_tokens"], 0);
     }
+}
+
+/// A panic in the engine (set off on purpose by the debug build's test triggers, on a prompt
+/// token) fails only the work it hit. Inside a forward pass it is caught there; outside one, in
+/// the decoder loop, the engine restarts (counted in `switchyard_engine_restarts_total`), and
+/// either way the next request is answered and readiness stays 200. After three restarts within
+/// a minute a fourth panic stops the engine: readiness turns 503 naming it, and requests are
+/// refused with 503 `engine_stopped` instead of hanging.
+#[test]
+fn an_engine_panic_fails_only_its_work_and_the_engine_restarts_or_stops_visibly() {
+    let reference = greedy_reference();
+    let fx = read_json(&fixtures().join("tiny-llama-reference.json"));
+    // The first token of the greedy prompt sets off a panic in a step; the first token of the
+    // logits text one in the decoder loop.
+    let in_step = fx["prompt_ids"][0].as_u64().unwrap();
+    let in_loop = fx["input_ids"][0].as_u64().unwrap();
+    let server = ServerSetup::tiny_decoder()
+        .env("SWITCHYARD_TEST_PANIC_IN_STEP", &in_step.to_string())
+        .env("SWITCHYARD_TEST_PANIC_IN_LOOP", &in_loop.to_string())
+        .start();
+    let generate = |prompt: &str| {
+        server.post(
+            "/generate",
+            Auth::None,
+            &json!({"adapter": "base", "prompt": prompt, "max_tokens": 4}),
+        )
+    };
+    let healthy = || {
+        assert_eq!(
+            server.get("/health/ready", Auth::None).status,
+            200,
+            "{}",
+            server.log()
+        );
+        let ok = generate("wheel spokes").ok_json();
+        assert_eq!(ok["counts"]["output_tokens"], 4);
+    };
+    let restarts = || {
+        let page = server.get("/metrics", Auth::Admin).body;
+        page.lines()
+            .find_map(|l| l.strip_prefix("switchyard_engine_restarts_total "))
+            .unwrap_or_else(|| panic!("no restarts counter in\n{page}"))
+            .trim()
+            .parse::<u64>()
+            .unwrap()
+    };
+    healthy();
+    assert_eq!(generate(&reference.prompt).status, 500);
+    healthy();
+    assert_eq!(restarts(), 0, "a panic in a step is caught there");
+    let loop_prompt = fx["input_text"].as_str().unwrap();
+    for n in 1..=3 {
+        assert_eq!(generate(loop_prompt).status, 500);
+        healthy();
+        assert_eq!(restarts(), n);
+    }
+    assert!(server.log().contains("it restarts"), "{}", server.log());
+    // A fourth within the minute: the engine stops, and says so (the thread ends just after
+    // the failed request is answered).
+    assert_eq!(generate(loop_prompt).status, 500);
+    let start = std::time::Instant::now();
+    let ready = loop {
+        let ready = server.get("/health/ready", Auth::None);
+        if ready.status != 200 || start.elapsed() > std::time::Duration::from_secs(10) {
+            break ready;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    };
+    assert_eq!(ready.status, 503, "{}", ready.body);
+    assert!(
+        ready.body.contains("the engine thread stopped"),
+        "{}",
+        ready.body
+    );
+    generate("wheel spokes").assert_error(503, "engine_stopped");
+    // Only a new process can compute again: liveness fails too, so a supervisor restarts it.
+    server
+        .get("/health/live", Auth::None)
+        .assert_error(503, "engine_stopped");
 }

@@ -135,6 +135,10 @@ pub enum EngineError {
     },
     #[error("the engine is shutting down")]
     ShuttingDown,
+    #[error(
+        "the engine stopped after panicking {MAX_RESTARTS} times within a minute; this server can no longer compute (its log says why)"
+    )]
+    Stopped,
     #[error("the request's deadline passed before it could run")]
     DeadlineExceeded,
     #[error("model computation failed: {0}")]
@@ -325,6 +329,8 @@ pub struct Engine {
     thread: Option<JoinHandle<()>>,
     /// KV-cache bytes the running generations may plan for together; 0: no limit.
     kv_budget_bytes: u64,
+    /// Set by the engine thread when it stops for good after repeated panics.
+    stopped: Arc<std::sync::atomic::AtomicBool>,
 }
 
 impl std::fmt::Debug for Engine {
@@ -368,11 +374,14 @@ impl Engine {
             policy: PromotionPolicy::new(config.promote_window_rows, config.promote_share),
             prefixes: PrefixCache::new(config.prefix_cache_bytes),
             merges: Arc::default(),
+            panics: PanicTriggers::from_env(),
+            stopped: Arc::default(),
             config,
             metrics: Arc::clone(&metrics),
             queue: Arc::clone(&queue),
         };
         let kv_budget_bytes = worker.config.kv_budget_bytes;
+        let stopped = Arc::clone(&worker.stopped);
         let thread = std::thread::Builder::new()
             .name("switchyard-engine".to_owned())
             .spawn(move || worker.run())
@@ -384,6 +393,7 @@ impl Engine {
             metrics,
             thread: Some(thread),
             kv_budget_bytes,
+            stopped,
         }
     }
 
@@ -483,6 +493,9 @@ impl Engine {
                 .unwrap_or(Duration::from_secs(1))
         };
         let e = match why {
+            Refused::Closed if self.stopped.load(std::sync::atomic::Ordering::SeqCst) => {
+                EngineError::Stopped
+            }
             Refused::Closed => EngineError::ShuttingDown,
             Refused::LaneFull => EngineError::TenantQueueFull {
                 waiting: limits.per_lane,
@@ -499,6 +512,11 @@ impl Engine {
     /// Whether the engine thread is alive (readiness turns 503 if it is not).
     pub fn is_running(&self) -> bool {
         self.thread.as_ref().is_some_and(|t| !t.is_finished())
+    }
+
+    /// Whether the engine stopped for good after repeated panics (not a shutdown).
+    pub fn has_stopped(&self) -> bool {
+        self.stopped.load(std::sync::atomic::Ordering::SeqCst)
     }
 
     /// Jobs waiting for the engine thread.
@@ -543,6 +561,9 @@ struct Worker {
     policy: PromotionPolicy,
     /// Prefilled prompts' KV caches, by adapter version (decoder engines only).
     prefixes: PrefixCache<KvCache>,
+    panics: PanicTriggers,
+    /// Set when the engine stops for good after repeated panics.
+    stopped: Arc<std::sync::atomic::AtomicBool>,
     /// Merged variants being built off the engine thread, by `name@version`.
     merges: Arc<std::sync::Mutex<std::collections::HashMap<String, MergeBuild>>>,
     config: EngineConfig,
@@ -560,14 +581,112 @@ fn adapter_key(h: &Option<AdapterHandle>) -> String {
         .unwrap_or_else(|| "base".to_owned())
 }
 
+/// Restarts the engine may make within [`RESTART_WINDOW`] after panics outside a batch; one more
+/// and it stops for good (readiness turns 503 and queued work is failed).
+const MAX_RESTARTS: usize = 3;
+const RESTART_WINDOW: Duration = Duration::from_secs(60);
+
+/// Token ids that make the engine panic on purpose, read from the environment in debug builds
+/// only, so tests can check that a panic fails only what it must and the engine recovers:
+/// `SWITCHYARD_TEST_PANIC_IN_STEP` (inside a forward pass, caught there) and
+/// `SWITCHYARD_TEST_PANIC_IN_LOOP` (in the decoder loop outside any pass, caught by the
+/// restart). Release builds never read them.
+#[derive(Debug, Default, Clone, Copy)]
+struct PanicTriggers {
+    in_step: Option<u32>,
+    in_loop: Option<u32>,
+}
+
+impl PanicTriggers {
+    fn from_env() -> Self {
+        if !cfg!(debug_assertions) {
+            return Self::default();
+        }
+        let read = |name: &str| std::env::var(name).ok().and_then(|v| v.parse().ok());
+        Self {
+            in_step: read("SWITCHYARD_TEST_PANIC_IN_STEP"),
+            in_loop: read("SWITCHYARD_TEST_PANIC_IN_LOOP"),
+        }
+    }
+
+    fn fire(trigger: Option<u32>, ids: &[u32], place: &str) {
+        if let Some(t) = trigger
+            && ids.contains(&t)
+        {
+            panic!("test panic {place}: token {t}");
+        }
+    }
+}
+
 impl Worker {
+    /// Runs the engine loop; a panic that escapes it (one outside a batch or a step, which are
+    /// caught where they happen) fails the work it held, is logged and counted, and the loop
+    /// starts again, up to [`MAX_RESTARTS`] times a minute. Past that the engine stops: the queue
+    /// closes, what waits in it is failed, and readiness reports the engine stopped.
     fn run(mut self) {
         let backbone = self.backbone.clone();
-        match &*backbone {
-            Backbone::Encoder(e) => self.run_encoder(e),
-            Backbone::Decoder(g) => self.run_decoder(g),
+        let mut restarts: std::collections::VecDeque<Instant> = Default::default();
+        loop {
+            let ran = std::panic::catch_unwind(AssertUnwindSafe(|| match &*backbone {
+                Backbone::Encoder(e) => self.run_encoder(e),
+                Backbone::Decoder(g) => self.run_decoder(g),
+            }));
+            if ran.is_ok() {
+                break;
+            }
+            let now = Instant::now();
+            while restarts
+                .front()
+                .is_some_and(|t| now.duration_since(*t) > RESTART_WINDOW)
+            {
+                restarts.pop_front();
+            }
+            if restarts.len() >= MAX_RESTARTS {
+                tracing::error!(
+                    restarts = restarts.len(),
+                    window_s = RESTART_WINDOW.as_secs(),
+                    "the engine panicked again after {MAX_RESTARTS} restarts within {} s; it stops, queued work fails and readiness turns 503",
+                    RESTART_WINDOW.as_secs()
+                );
+                self.stopped
+                    .store(true, std::sync::atomic::Ordering::SeqCst);
+                self.queue.close();
+                self.fail_queued();
+                return;
+            }
+            restarts.push_back(now);
+            self.metrics.engine_restarts.inc();
+            tracing::error!(
+                restart = restarts.len(),
+                "the engine panicked outside a batch; the work it was running failed, and it restarts"
+            );
         }
         tracing::info!("engine stopped");
+    }
+
+    /// Fails every job still queued (the engine stopped for good).
+    fn fail_queued(&self) {
+        let all = Budget {
+            cost: u64::MAX,
+            jobs: usize::MAX,
+        };
+        loop {
+            let jobs = self.queue.try_take(all);
+            if jobs.is_empty() {
+                break;
+            }
+            for job in jobs {
+                match job {
+                    Job::Embed(j) => {
+                        let _ = j.reply.send(Err(EngineError::Stopped));
+                    }
+                    Job::Generate(j) => {
+                        let _ = j.events.send(GenEvent::Failed(EngineError::Stopped));
+                    }
+                }
+            }
+        }
+        self.took();
     }
 
     /// The queue-depth gauge, after a take.
@@ -803,6 +922,9 @@ impl Worker {
                 }
                 in_use += need;
                 let job = waiting.pop_front().expect("a front job");
+                if let Job::Generate(j) = &job {
+                    PanicTriggers::fire(self.panics.in_loop, &j.prompt_ids, "in the decoder loop");
+                }
                 self.admit_guarded(g, job, &mut live);
             }
             // Drop sequences whose client went away, or whose deadline passed.
@@ -935,6 +1057,9 @@ impl Worker {
                 }
             })
             .collect();
+        for ids in &inputs {
+            PanicTriggers::fire(self.panics.in_step, ids, "in a decoder step");
+        }
         let token_refs: Vec<&[u32]> = inputs.iter().map(Vec::as_slice).collect();
         let first_key = adapter_key(&live[parts[0].0].job.adapter);
         let uniform = parts

@@ -129,6 +129,11 @@ impl From<EngineError> for ApiError {
                 "shutting_down",
                 e.to_string(),
             ),
+            EngineError::Stopped => Self::new(
+                StatusCode::SERVICE_UNAVAILABLE,
+                "engine_stopped",
+                e.to_string(),
+            ),
             EngineError::DeadlineExceeded => Self::new(
                 StatusCode::GATEWAY_TIMEOUT,
                 "deadline_exceeded",

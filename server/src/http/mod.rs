@@ -131,7 +131,7 @@ pub fn router(state: SharedState) -> Router {
         .merge(inference)
         .merge(admin)
         .merge(metrics)
-        .route("/health/live", get(|| async { "alive\n" }))
+        .route("/health/live", get(live))
         .route("/health/ready", get(ready))
         .layer(DefaultBodyLimit::max(bounds.inference_body_bytes))
         .merge(upload)
@@ -150,6 +150,21 @@ pub fn router(state: SharedState) -> Router {
         })
         .layer(from_fn(gate::catch_panic))
         .with_state(state)
+}
+
+/// Alive unless the engine stopped for good after repeated panics: then only a new process can
+/// compute again, and a supervisor that restarts on a failed liveness check should do so.
+async fn live(State(state): State<SharedState>) -> impl IntoResponse {
+    if state.engine.has_stopped() {
+        error::ApiError::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "engine_stopped",
+            "the engine stopped after repeated panics; restart the process (its log says why)",
+        )
+        .into_response()
+    } else {
+        (StatusCode::OK, "alive\n").into_response()
+    }
 }
 
 async fn ready(State(state): State<SharedState>) -> impl IntoResponse {
