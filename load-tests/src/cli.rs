@@ -47,6 +47,38 @@ pub enum Command {
     /// it over many adapters for a long time while adapters are published and rolled back live;
     /// reports errors, memory and swap times per window, and exits 1 when a verdict fails.
     Soak(SoakArgs),
+    /// The language-model serving scenario, on a decoder model folder: starts `switchyard serve`
+    /// itself (three servers) and measures time to first token with and without chunked prefill
+    /// while long prompts arrive, decode speed over 8 adapters against the base, and the prefix
+    /// cache's second request against its first.
+    Serving(ServingArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct ServingArgs {
+    /// The `switchyard` binary to start (a release build: cargo build --release -p switchyard-server).
+    #[arg(long)]
+    pub server_bin: PathBuf,
+    /// A decoder model folder (Llama layout): config.json, safetensors and tokenizer.json.
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Folder for serving.json and serving.txt.
+    #[arg(long, default_value = "serving-report")]
+    pub out: PathBuf,
+    /// Tokens of each of the 4 long prompts that arrive while short requests run.
+    #[arg(long, default_value_t = 2048, value_parser = parse_positive_count)]
+    pub long_tokens: usize,
+    /// Tokens of the system prompt the prefix-cache case shares.
+    #[arg(long, default_value_t = 1000, value_parser = parse_positive_count)]
+    pub system_tokens: usize,
+    /// Tokens each of the 16 decoding sequences generates.
+    #[arg(long, default_value_t = 64, value_parser = parse_positive_count)]
+    pub decode_tokens: usize,
+    /// Rounds of each case, alternating between the compared servers or targets.
+    #[arg(long, default_value_t = 3, value_parser = parse_positive_count)]
+    pub rounds: usize,
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
 }
 
 #[derive(Debug, Args)]
@@ -550,6 +582,33 @@ pub fn overhead(args: &OverheadArgs, command_line: &str) -> anyhow::Result<Repor
         clients: args.clients,
         rank: args.rank,
         targets: args.targets.0.clone(),
+        seed: args.seed,
+        command: command_line.to_owned(),
+    })
+}
+
+/// `switchyard-load serving`.
+pub fn serving(
+    args: &ServingArgs,
+    command_line: &str,
+) -> anyhow::Result<crate::serving::ServingReport> {
+    if !args.server_bin.is_file() {
+        bail!(
+            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
+            args.server_bin.display()
+        );
+    }
+    let absolute = |p: &PathBuf, flag: &str| {
+        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
+    };
+    crate::serving::run_serving(&crate::serving::ServingSettings {
+        server_bin: absolute(&args.server_bin, "--server-bin")?,
+        model_dir: absolute(&args.model, "--model")?,
+        out_dir: args.out.clone(),
+        long_tokens: args.long_tokens,
+        system_tokens: args.system_tokens,
+        rounds: args.rounds,
+        decode_tokens: args.decode_tokens,
         seed: args.seed,
         command: command_line.to_owned(),
     })

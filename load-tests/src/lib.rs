@@ -5,7 +5,8 @@
 //! [`synthetic`] builds adapters for a run; [`cpu_time`] reads the CPU time the host took; [`proc_status`] a process's memory by kind; [`report`] writes JSON and HTML with [`charts`];
 //! [`overhead`] is the built-in swap-overhead scenario and [`fairness`] the built-in fairness
 //! scenario, which start their own servers ([`server`]); [`soak`] is the long run at a steady load
-//! with live publishes and rollbacks.
+//! with live publishes and rollbacks; [`serving`] measures the decoder scheduler (chunked
+//! prefill, decoding over adapters, the prefix cache).
 
 pub mod charts;
 pub mod cli;
@@ -21,6 +22,7 @@ pub mod report;
 pub mod results;
 pub mod scrape;
 pub mod server;
+pub mod serving;
 pub mod soak;
 pub mod stats;
 pub mod synthetic;

@@ -2,7 +2,7 @@
 //! the summary table and writes the report.
 
 use clap::Parser;
-use switchyard_load::cli::{Cli, Command, fairness, overhead, run, soak};
+use switchyard_load::cli::{Cli, Command, fairness, overhead, run, serving, soak};
 
 fn main() {
     let cli = Cli::parse();
@@ -27,8 +27,26 @@ fn main() {
             }
         }
     }
+    if let Command::Serving(args) = &cli.command {
+        let written = serving(args, &command_line).and_then(|report| {
+            print!("{}", report.text);
+            report.write(&args.out)
+        });
+        match written {
+            Ok(paths) => {
+                for p in paths {
+                    eprintln!("wrote {}", p.display());
+                }
+                return;
+            }
+            Err(e) => {
+                eprintln!("switchyard-load: {e:#}");
+                std::process::exit(1);
+            }
+        }
+    }
     let (result, out) = match &cli.command {
-        Command::Soak(_) => unreachable!("handled above"),
+        Command::Soak(_) | Command::Serving(_) => unreachable!("handled above"),
         Command::Run(args) => (run(args, &command_line), args.out.clone()),
         Command::Overhead(args) => (overhead(args, &command_line), args.out.clone()),
         Command::Fairness(args) => (fairness(args, &command_line), args.out.clone()),

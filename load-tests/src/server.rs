@@ -23,6 +23,8 @@ pub struct ServerConfig {
     pub promote_share: f64,
     pub promote_window_rows: usize,
     pub queue_depth: usize,
+    /// More `[engine]` settings, as TOML lines.
+    pub engine_toml: String,
     /// TOML appended as it is, such as `[[tenants]]` entries.
     pub extra_toml: String,
 }
@@ -39,6 +41,7 @@ impl ServerConfig {
             promote_share: 0.9,
             promote_window_rows: 512,
             queue_depth: 256,
+            engine_toml: String::new(),
             extra_toml: String::new(),
         }
     }
@@ -51,7 +54,7 @@ impl ServerConfig {
             "[server]\nlisten = \"127.0.0.1:0\"\n\n\
              [model]\ndir = {:?}\n\n\
              [store]\ndir = {:?}\n\n\
-             [engine]\nqueue_depth = {}\n\n\
+             [engine]\nqueue_depth = {}\n{}\n\
              [residency]\nfactor_budget_bytes = {}\nmerged_budget_bytes = {}\n\
              promote_share = {:?}\npromote_window_rows = {}\n\n\
              [admin]\ntoken = {:?}\n\n\
@@ -59,6 +62,7 @@ impl ServerConfig {
             self.model_dir.display().to_string(),
             self.store_dir.display().to_string(),
             self.queue_depth,
+            self.engine_toml,
             self.factor_budget_bytes,
             self.merged_budget_bytes,
             self.promote_share,

@@ -396,3 +396,61 @@ fn soak_in_miniature_answers_every_request_and_every_publish_and_rollback() {
             .contains("errors: pass")
     );
 }
+
+/// The serving scenario on the tiny decoder, with prompts cut to its 128 positions: it starts its
+/// three servers, every case answers, the decode case produced tokens on both sides, and the
+/// prefix case's second request reused the shared system prompt while its first reused nothing.
+/// Times are not asserted.
+#[test]
+fn the_serving_scenario_measures_each_case_on_a_decoder() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("serving");
+    let model = switchyard_tests::fixtures().join("tiny-llama");
+    let text = load_ok(
+        &[
+            "serving",
+            "--server-bin",
+            switchyard_bin().to_str().unwrap(),
+            "--model",
+            model.to_str().unwrap(),
+            "--long-tokens",
+            "90",
+            "--system-tokens",
+            "60",
+            "--decode-tokens",
+            "4",
+            "--rounds",
+            "2",
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        dir.path(),
+    );
+    assert!(text.contains("chunked / whole"), "{text}");
+    let report = read_json(&out.join("serving.json"));
+    let chunked = &report["chunked_prefill"];
+    for key in ["short_first_token_chunked", "short_first_token_whole"] {
+        assert!(
+            chunked[key]["count"].as_u64().unwrap() > 0,
+            "{key}: {report}"
+        );
+    }
+    // 2 rounds x 2 servers x 4 long prompts.
+    assert_eq!(chunked["long_prompt_tokens"].as_array().unwrap().len(), 16);
+    let decode = &report["decode"];
+    for key in ["base_tokens_per_s", "adapters_tokens_per_s"] {
+        let v = decode[key].as_array().unwrap();
+        assert_eq!(v.len(), 2);
+        assert!(
+            v.iter().all(|x| x.as_f64().unwrap() > 0.0),
+            "{key}: {report}"
+        );
+    }
+    let rows = report["prefix_cache"].as_array().unwrap();
+    assert_eq!(rows.len(), 2);
+    for row in rows {
+        assert_eq!(row["first_reused_tokens"], 0, "{row}");
+        let reused = row["second_reused_tokens"].as_u64().unwrap();
+        assert!(reused >= 40, "the system prompt was reused: {row}");
+    }
+}
