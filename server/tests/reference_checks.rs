@@ -15,7 +15,7 @@ use switchyard_server::model::generator::{GenerateRequest, Generator};
 use switchyard_server::model::linear::RowAdapters;
 use switchyard_server::model::load_adapter;
 use switchyard_server::model::sampling::SamplingParams;
-use switchyard_tests::{base_model_dir, fixtures, read_json};
+use switchyard_tests::{base_model_dir, fixtures, mpnet_model_dir, read_json};
 
 fn embedder() -> &'static Embedder {
     static E: OnceLock<Embedder> = OnceLock::new();
@@ -1026,13 +1026,16 @@ fn minilm_pools_as_its_sentence_transformers_files_say() {
     assert!(e.contains("pooling_mode_max_tokens is true"), "{e}");
 }
 
-/// RoBERTa and XLM-R (tests/reference/encoders.py, transformers' RobertaModel and
-/// XLMRobertaModel on tiny seeded models; their positions start at pad_token_id + 1): a padded
-/// batch of four sentences of 56 to 63 tokens embeds as transformers' mean-pooled, normalised
-/// last hidden states (cosine >= 0.99999), with and without an adapter on all six projections.
+/// RoBERTa, XLM-R and MPNet (tests/reference/encoders.py, transformers' RobertaModel,
+/// XLMRobertaModel and MPNetModel on tiny seeded models; RoBERTa's and XLM-R's positions start
+/// at pad_token_id + 1, MPNet's at 2 whatever its pad id (3 here, so the two rules differ), and
+/// MPNet adds its relative position bias, whose table is large enough in the fixture that
+/// leaving it out drops the cosine to about 0.995): a padded batch of four
+/// sentences of 56 to 63 tokens embeds as transformers' mean-pooled, normalised last hidden
+/// states (cosine >= 0.99999), with and without an adapter on all six projections.
 #[test]
-fn tiny_roberta_and_xlm_roberta_embed_like_transformers() {
-    for name in ["tiny-roberta", "tiny-xlm-roberta"] {
+fn tiny_roberta_xlm_roberta_and_mpnet_embed_like_transformers() {
+    for name in ["tiny-roberta", "tiny-xlm-roberta", "tiny-mpnet"] {
         let reference = read_json(&fixtures().join(format!("{name}-reference.json")));
         let e = Embedder::load(&fixtures().join(name)).unwrap();
         assert_eq!(
@@ -1063,5 +1066,51 @@ fn tiny_roberta_and_xlm_roberta_embed_like_transformers() {
             let least = min_cosine(&got, &matrix(&want["embeddings"]));
             assert!(least >= 0.99999, "{name} + {aname}: least cosine {least}");
         }
+    }
+}
+
+/// The real all-mpnet-base-v2 (fetched by scripts/fetch-mpnet.sh, never committed) through
+/// switchyard's own embedder: its token ids match the model's tokenizer as sentence-transformers
+/// calls it, and each sentence of one padded batch (7 to 143 tokens, the longest past MPNet's
+/// farthest relative position bucket) embeds as sentence-transformers' `encode` does
+/// (tests/reference/mpnet_model.py, fixtures/mpnet-embeddings.json), cosine >= 0.99999.
+#[test]
+fn all_mpnet_base_v2_embeds_like_sentence_transformers() {
+    let reference = read_json(&fixtures().join("mpnet-embeddings.json"));
+    let dir = mpnet_model_dir();
+    let e = Embedder::load(&dir).unwrap();
+    assert_eq!(
+        e.spec().fingerprint,
+        reference["base_fingerprint"].as_str().unwrap(),
+        "{} is not the checkpoint the fixture was made from",
+        dir.display()
+    );
+    assert_eq!(
+        e.max_tokens() as u64,
+        reference["max_seq_length"].as_u64().unwrap()
+    );
+    let texts: Vec<&str> = reference["sentences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap())
+        .collect();
+    let want_ids: Vec<Vec<u32>> = reference["input_ids"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(ids)
+        .collect();
+    assert_eq!(e.tokenize(&texts).unwrap(), want_ids, "token ids");
+    let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
+    let want = matrix(&reference["embeddings"]);
+    assert_eq!(got.len(), want.len());
+    for (i, (g, w)) in got.iter().zip(&want).enumerate() {
+        let c = cosine(g, w);
+        println!(
+            "all-mpnet-base-v2 sentence {i}: cosine {c:.9} (1 - cosine {:.1e})",
+            1.0 - c
+        );
+        assert!(c >= 0.99999, "sentence {i}: cosine {c} < 0.99999");
     }
 }
