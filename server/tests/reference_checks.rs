@@ -1076,6 +1076,23 @@ fn tiny_roberta_xlm_roberta_and_mpnet_embed_like_transformers() {
     }
 }
 
+/// An encoder whose config.json names a `model_type` the runtime does not implement is refused
+/// at load with a message naming the field, the value and the types it does run (mpnet among
+/// them), rather than run as the nearest family.
+#[test]
+fn an_unknown_encoder_model_type_is_refused_naming_the_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let folder = dir.path().join("tiny");
+    copy_model(&fixtures().join("tiny-mpnet"), &folder);
+    let config = folder.join("config.json");
+    let mut v = read_json(&config);
+    v["model_type"] = Value::from("mpnet-large-v9");
+    std::fs::write(&config, serde_json::to_string(&v).unwrap()).unwrap();
+    let e = format!("{:#}", Embedder::load(&folder).err().unwrap());
+    assert!(e.contains("model_type \"mpnet-large-v9\""), "{e}");
+    assert!(e.contains("bert, roberta, xlm-roberta, mpnet"), "{e}");
+}
+
 /// The real all-mpnet-base-v2 (fetched by scripts/fetch-mpnet.sh, never committed) through
 /// switchyard's own embedder: its token ids match the model's tokenizer as sentence-transformers
 /// calls it, and each sentence of one padded batch (7 to 143 tokens, the longest past MPNet's

@@ -234,9 +234,9 @@ impl Layer {
         [&self.q, &self.k, &self.v, &self.o, &self.up, &self.down]
     }
 
-    /// `x [b * t, h]` into `a.out`; `bias` is added to the attention scores. Everything runs on plain slices
-    /// in the reused buffers of `a`: the projections write straight into them, the activation
-    /// and the residual add with its layer norm run in place.
+    /// `x [b * t, h]` into `a.out`; `bias` is added to the attention scores. Everything runs
+    /// on plain slices in the reused buffers of `a`: the projections write straight into them,
+    /// the activation and the residual add with its layer norm run in place.
     fn forward(
         &self,
         x: &[f32],
@@ -439,8 +439,9 @@ pub struct BertModel {
 }
 
 impl BertModel {
-    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.`,
-    /// `roberta.` or `mpnet.` prefix on the tensor names is detected and skipped. Every matrix is held in `vb.format`.
+    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.`, `roberta.`
+    /// or `mpnet.` prefix on the tensor names is detected and skipped. Every matrix is held in
+    /// `vb.format`.
     pub fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
         if let Some(kind) = &cfg.position_embedding_type
             && kind != "absolute"
