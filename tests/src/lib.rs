@@ -1,5 +1,6 @@
 //! Helpers for the integration tests: find the built `switchyard` binary, the reference
-//! fixtures and the base model, each with a message that says how to get it when it is missing.
+//! fixtures and the fetched models, each with a message that says how to get it when it is
+//! missing.
 //! [`server`] runs `switchyard serve` and talks HTTP to it; [`embeddings`] holds the reference
 //! embeddings and the closeness rule.
 
@@ -24,12 +25,34 @@ pub fn fixtures() -> PathBuf {
 
 /// The embedded default base model; panics with instructions when it is not there.
 pub fn base_model_dir() -> PathBuf {
-    let dir = std::env::var_os("SWITCHYARD_BASE_MODEL_DIR")
+    fetched_model_dir(
+        "the base model",
+        "SWITCHYARD_BASE_MODEL_DIR",
+        "all-minilm-l6-v2",
+        "fetch-base-model.sh",
+    )
+}
+
+/// all-mpnet-base-v2, the second real encoder the reference checks run; panics with
+/// instructions when it is not there.
+pub fn mpnet_model_dir() -> PathBuf {
+    fetched_model_dir(
+        "all-mpnet-base-v2",
+        "SWITCHYARD_MPNET_DIR",
+        "all-mpnet-base-v2",
+        "fetch-mpnet.sh",
+    )
+}
+
+/// A model a script fetches into `models/{folder}` (or where `env` points): its folder, or a
+/// panic that names the script.
+fn fetched_model_dir(what: &str, env: &str, folder: &str, script: &str) -> PathBuf {
+    let dir = std::env::var_os(env)
         .map(PathBuf::from)
-        .unwrap_or_else(|| workspace_root().join("models/all-minilm-l6-v2"));
+        .unwrap_or_else(|| workspace_root().join("models").join(folder));
     assert!(
         dir.join("model.safetensors").is_file(),
-        "the base model is not at {}: run scripts/fetch-base-model.sh (the test command does)",
+        "{what} is not at {}: run scripts/{script} (the test command does)",
         dir.display()
     );
     dir

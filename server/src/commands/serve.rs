@@ -86,8 +86,10 @@ pub fn load_backbone(dir: &Path, format: WeightFormat) -> anyhow::Result<Backbon
             Ok(Backbone::Decoder(Generator::load_as(dir, format)?))
         }
         other => anyhow::bail!(
-            "{}: model_type {other:?} is not supported (encoders: bert, roberta, xlm-roberta; decoders: llama, mistral, qwen2, gemma, phi3)",
-            config.display()
+            "{}: model_type {other:?} is not supported (encoders: {}; decoders: {})",
+            config.display(),
+            crate::model::bert::ENCODER_TYPES.join(", "),
+            crate::model::llama::DECODER_TYPES.join(", ")
         ),
     }
 }

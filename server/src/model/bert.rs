@@ -1,5 +1,6 @@
-//! The encoder family (BERT and its small descendants such as MiniLM): embeddings, a stack of
-//! post-norm transformer layers, and the hidden states they give. Pooling lives in
+//! The encoder family (BERT and its descendants: MiniLM, RoBERTa, XLM-R, MPNet): embeddings, a
+//! stack of post-norm transformer layers, and the hidden states they give. What MPNet adds (its
+//! relative position bias) lives in [`crate::model::mpnet`]; pooling in
 //! [`crate::model::embedder`]. Every projection is an [`AdaptedLinear`].
 
 use std::collections::BTreeMap;
@@ -17,6 +18,7 @@ use switchyard_kernels::{
 
 use crate::model::checkpoint::Weights;
 use crate::model::linear::{AdaptedLinear, RowAdapters};
+use crate::model::mpnet::{self, RelativePositionBias};
 
 /// The fields of a BERT-family config.json this runtime reads.
 #[derive(Debug, Clone, Deserialize)]
@@ -35,11 +37,18 @@ pub struct BertConfig {
     pub layer_norm_eps: f64,
     #[serde(default)]
     pub position_embedding_type: Option<String>,
-    /// `bert`, or `roberta` / `xlm-roberta` (positions counted from `pad_token_id + 1`).
+    /// `bert`, `roberta`, `xlm-roberta` or `mpnet` (see [`BertConfig::position_offset`]).
     #[serde(default = "default_encoder_type")]
     pub model_type: String,
     #[serde(default)]
     pub pad_token_id: Option<u32>,
+    /// MPNet's count of relative position buckets.
+    #[serde(default = "default_buckets")]
+    pub relative_attention_num_buckets: usize,
+}
+
+fn default_buckets() -> usize {
+    32
 }
 
 fn default_encoder_type() -> String {
@@ -47,16 +56,22 @@ fn default_encoder_type() -> String {
 }
 
 /// The `model_type`s the encoder runtime implements.
-pub const ENCODER_TYPES: [&str; 3] = ["bert", "roberta", "xlm-roberta"];
+pub const ENCODER_TYPES: [&str; 4] = ["bert", "roberta", "xlm-roberta", "mpnet"];
 
 impl BertConfig {
     /// The first position id of a sequence: 0 for BERT; RoBERTa and XLM-R count from
-    /// `pad_token_id + 1` (their position table keeps the first rows for padding).
+    /// `pad_token_id + 1` (their position table keeps the first rows for padding); MPNet from 2
+    /// whatever its `pad_token_id` (transformers' MPNetEmbeddings fixes its padding index at 1).
     pub fn position_offset(&self) -> usize {
         match self.model_type.as_str() {
             "roberta" | "xlm-roberta" => self.pad_token_id.unwrap_or(1) as usize + 1,
+            "mpnet" => 2,
             _ => 0,
         }
+    }
+
+    fn is_mpnet(&self) -> bool {
+        self.model_type == "mpnet"
     }
 
     /// The most tokens one sequence may have.
@@ -84,7 +99,8 @@ struct Embeddings {
     position: Embedding,
     /// The position id of a sequence's first token.
     position_offset: u32,
-    token_type: Embedding,
+    /// None for MPNet, which has no token types.
+    token_type: Option<Embedding>,
     norm: LayerNorm,
 }
 
@@ -102,7 +118,10 @@ impl Embeddings {
             ),
             position: table("position_embeddings", cfg.max_position_embeddings)?,
             position_offset: cfg.position_offset() as u32,
-            token_type: table("token_type_embeddings", cfg.type_vocab_size)?,
+            token_type: match cfg.is_mpnet() {
+                true => None,
+                false => Some(table("token_type_embeddings", cfg.type_vocab_size)?),
+            },
             norm: LayerNorm::new(
                 ln.tensor("weight", &[h])?,
                 ln.tensor("bias", &[h])?,
@@ -111,7 +130,8 @@ impl Embeddings {
         })
     }
 
-    fn forward(&self, ids: &Tensor, type_ids: &Tensor) -> Result<Tensor> {
+    /// Every token has type 0 (one segment per input).
+    fn forward(&self, ids: &Tensor) -> Result<Tensor> {
         let (b, t) = ids.dims2()?;
         let (vocab, h) = (self.word.out_features(), self.word.in_features());
         let flat: Vec<u32> = ids.flatten_all()?.to_vec1()?;
@@ -125,12 +145,38 @@ impl Embeddings {
         let words = Tensor::from_vec(words, (b, t, h), ids.device())?;
         let first = self.position_offset;
         let positions = Tensor::arange(first, first + t as u32, ids.device())?;
-        let x = words
-            .add(&self.token_type.forward(type_ids)?)?
-            .broadcast_add(&self.position.forward(&positions)?)?;
+        let words = match &self.token_type {
+            Some(types) => words.broadcast_add(&types.embeddings().get(0)?)?,
+            None => words,
+        };
+        let x = words.broadcast_add(&self.position.forward(&positions)?)?;
         self.norm.forward(&x)
     }
 }
+
+/// Where a layer's parts sit under `encoder.layer.{i}`, by family.
+pub(crate) struct LayerNames {
+    pub q: &'static str,
+    pub k: &'static str,
+    pub v: &'static str,
+    pub o: &'static str,
+    pub attn_norm: &'static str,
+    pub up: &'static str,
+    pub down: &'static str,
+    pub out_norm: &'static str,
+}
+
+/// BERT's names, which RoBERTa and XLM-R keep.
+const BERT_LAYER_NAMES: LayerNames = LayerNames {
+    q: "attention.self.query",
+    k: "attention.self.key",
+    v: "attention.self.value",
+    o: "attention.output.dense",
+    attn_norm: "attention.output.LayerNorm",
+    up: "intermediate.dense",
+    down: "output.dense",
+    out_norm: "output.LayerNorm",
+};
 
 struct Layer {
     q: AdaptedLinear,
@@ -159,6 +205,11 @@ impl Layer {
         let lin = |m: Module, inp: usize, out: usize, name: &str| {
             AdaptedLinear::load(Site::new(layer, m), inp, out, &vb.pp(name))
         };
+        let names = match cfg.is_mpnet() {
+            true => &mpnet::LAYER_NAMES,
+            false => &BERT_LAYER_NAMES,
+        };
+        let eps = cfg.layer_norm_eps;
         let act = match cfg.hidden_act.as_str() {
             "gelu" => Activation::GeluErf,
             "gelu_new" | "gelu_pytorch_tanh" => Activation::GeluTanh,
@@ -166,14 +217,14 @@ impl Layer {
             other => candle_core::bail!("config.json hidden_act {other:?} is not supported"),
         };
         Ok(Self {
-            q: lin(Module::AttnQ, h, h, "attention.self.query")?,
-            k: lin(Module::AttnK, h, h, "attention.self.key")?,
-            v: lin(Module::AttnV, h, h, "attention.self.value")?,
-            o: lin(Module::AttnO, h, h, "attention.output.dense")?,
-            attn_norm: Norm::load(h, cfg.layer_norm_eps, &vb.pp("attention.output.LayerNorm"))?,
-            up: lin(Module::MlpUp, h, i, "intermediate.dense")?,
-            down: lin(Module::MlpDown, i, h, "output.dense")?,
-            out_norm: Norm::load(h, cfg.layer_norm_eps, &vb.pp("output.LayerNorm"))?,
+            q: lin(Module::AttnQ, h, h, names.q)?,
+            k: lin(Module::AttnK, h, h, names.k)?,
+            v: lin(Module::AttnV, h, h, names.v)?,
+            o: lin(Module::AttnO, h, h, names.o)?,
+            attn_norm: Norm::load(h, eps, &vb.pp(names.attn_norm))?,
+            up: lin(Module::MlpUp, h, i, names.up)?,
+            down: lin(Module::MlpDown, i, h, names.down)?,
+            out_norm: Norm::load(h, eps, &vb.pp(names.out_norm))?,
             heads: cfg.num_attention_heads,
             act,
         })
@@ -183,17 +234,15 @@ impl Layer {
         [&self.q, &self.k, &self.v, &self.o, &self.up, &self.down]
     }
 
-    /// `x [b * t, h]` into `a.out`; `key_bias [b, t]` is added to every score of that key (0
-    /// for a real token, a large negative number for padding). Everything runs on plain slices
-    /// in the reused buffers of `a`: the projections write straight into them, the activation
-    /// and the residual add with its layer norm run in place.
-    #[allow(clippy::too_many_arguments)]
+    /// `x [b * t, h]` into `a.out`; `bias` is added to the attention scores. Everything runs
+    /// on plain slices in the reused buffers of `a`: the projections write straight into them,
+    /// the activation and the residual add with its layer norm run in place.
     fn forward(
         &self,
         x: &[f32],
         b: usize,
         t: usize,
-        key_bias: &[f32],
+        bias: &ScoreBias<'_>,
         adapters: &RowAdapters,
         a: &mut Activations,
     ) -> Result<()> {
@@ -203,7 +252,7 @@ impl Layer {
         self.q.forward_rows_into(x, rows, adapters, &mut a.q)?;
         self.k.forward_rows_into(x, rows, adapters, &mut a.k)?;
         self.v.forward_rows_into(x, rows, adapters, &mut a.v)?;
-        attention(&a.q, &a.k, &a.v, key_bias, b, t, h, self.heads, &mut a.ctx);
+        attention(&a.q, &a.k, &a.v, bias, b, t, h, self.heads, &mut a.ctx);
         self.o
             .forward_rows_into(&a.ctx, rows, adapters, &mut a.attn)?;
         self.attn_norm.apply(&mut a.attn, x)?;
@@ -304,6 +353,15 @@ impl Norm {
     }
 }
 
+/// What is added to the scaled attention scores before the softmax.
+struct ScoreBias<'a> {
+    /// `[b, t]`: added to every score of that key (0 for a real token, a large negative number
+    /// for padding).
+    keys: &'a [f32],
+    /// `[heads, t, t]`, the same for every sequence: MPNet's relative position bias.
+    positions: Option<&'a [f32]>,
+}
+
 /// Multi-head self-attention over `q`, `k`, `v` `[b * t, h]` (heads side by side in each row),
 /// giving the context `[b * t, h]` in the same layout. Per sequence and head: that head's keys
 /// and (transposed) values are packed for the projection kernel, the scores `Q K^T` run through
@@ -315,7 +373,7 @@ fn attention(
     q: &[f32],
     k: &[f32],
     v: &[f32],
-    key_bias: &[f32],
+    bias: &ScoreBias<'_>,
     b: usize,
     t: usize,
     h: usize,
@@ -331,7 +389,9 @@ fn attention(
         let mut scores = vec![0f32; t * t];
         let mut keys = PackedWeight::empty();
         let mut values = PackedWeight::empty();
-        let bias = &key_bias[s * t..(s + 1) * t];
+        let key_bias = &bias.keys[s * t..(s + 1) * t];
+        // With a position bias, each query row has its own bias row: that bias plus the keys'.
+        let mut row_bias = vec![0f32; if bias.positions.is_some() { t * t } else { 0 }];
         let base = s * t * h;
         for hd in 0..heads {
             let off = base + hd * dh;
@@ -339,7 +399,22 @@ fn attention(
             keys.repack_strided(&k[off..], t, dh, h, 1);
             values.repack_strided(&v[off..], dh, t, 1, h);
             packed_matmul_strided(&mut scores, t, &q[off..], h, t, &keys, false);
-            softmax_rows_in_place(&mut scores, t, scale, bias);
+            match bias.positions {
+                None => softmax_rows_in_place(&mut scores, t, scale, key_bias),
+                Some(positions) => {
+                    let head = &positions[hd * t * t..(hd + 1) * t * t];
+                    for ((r, p), row) in row_bias
+                        .chunks_mut(t)
+                        .zip(head.chunks(t))
+                        .zip(scores.chunks_mut(t))
+                    {
+                        r.iter_mut()
+                            .zip(p.iter().zip(key_bias))
+                            .for_each(|(r, (p, k))| *r = p + k);
+                        softmax_rows_in_place(row, t, scale, r);
+                    }
+                }
+            }
             packed_matmul_strided(&mut out[hd * dh..], h, &scores, t, t, &values, false);
         }
     };
@@ -358,12 +433,15 @@ fn attention(
 pub struct BertModel {
     embeddings: Embeddings,
     layers: Vec<Layer>,
+    /// MPNet's, shared by every layer.
+    relative_bias: Option<RelativePositionBias>,
     pub config: BertConfig,
 }
 
 impl BertModel {
-    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.` or
-    /// `roberta.` prefix on the tensor names is detected and skipped. Every matrix is held in `vb.format`.
+    /// Builds the encoder from `vb`, which points at the checkpoint root; a `bert.`, `roberta.`
+    /// or `mpnet.` prefix on the tensor names is detected and skipped. Every matrix is held in
+    /// `vb.format`.
     pub fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
         if let Some(kind) = &cfg.position_embedding_type
             && kind != "absolute"
@@ -377,20 +455,22 @@ impl BertModel {
                 ENCODER_TYPES.join(", ")
             );
         }
-        let vb = if vb.contains("bert.embeddings.word_embeddings.weight") {
-            vb.pp("bert")
-        } else if vb.contains("roberta.embeddings.word_embeddings.weight") {
-            vb.pp("roberta")
-        } else {
-            vb.clone()
-        };
+        let vb = ["bert", "roberta", "mpnet"]
+            .into_iter()
+            .find(|p| vb.contains(&format!("{p}.embeddings.word_embeddings.weight")))
+            .map_or_else(|| vb.clone(), |p| vb.pp(p));
         let embeddings = Embeddings::new(cfg, &vb.pp("embeddings"))?;
         let layers = (0..cfg.num_hidden_layers)
             .map(|i| Layer::new(cfg, i, &vb.pp(format!("encoder.layer.{i}"))))
             .collect::<Result<Vec<_>>>()?;
+        let relative_bias = match cfg.is_mpnet() {
+            true => Some(RelativePositionBias::load(cfg, &vb.pp("encoder"))?),
+            false => None,
+        };
         Ok(Self {
             embeddings,
             layers,
+            relative_bias,
             config: cfg.clone(),
         })
     }
@@ -399,8 +479,7 @@ impl BertModel {
     /// real token, 0 for padding). `adapters` covers `b * t` rows, sequence by sequence.
     pub fn forward(&self, ids: &Tensor, mask: &Tensor, adapters: &RowAdapters) -> Result<Tensor> {
         let _span = tracing::trace_span!("bert_forward").entered();
-        let type_ids = ids.zeros_like()?;
-        let embedded = self.embeddings.forward(ids, &type_ids)?;
+        let embedded = self.embeddings.forward(ids)?;
         let (b, t, h) = embedded.dims3()?;
         // Additive mask: 0 where a key is a real token, a large negative number where it is padding.
         let key_bias: Vec<f32> = ((mask.to_dtype(DType::F32)? - 1.0)? * 1e9)?
@@ -412,6 +491,11 @@ impl BertModel {
                 key_bias.len()
             );
         }
+        let positions = self.relative_bias.as_ref().map(|r| r.for_length(t));
+        let bias = ScoreBias {
+            keys: &key_bias,
+            positions: positions.as_deref(),
+        };
         let mut x = embedded
             .to_dtype(DType::F32)?
             .flatten_all()?
@@ -419,7 +503,7 @@ impl BertModel {
         // Taken out of the thread-local, not borrowed: a rayon wait inside may run other work here.
         let mut acts = ACTIVATIONS.with_borrow_mut(std::mem::take);
         let done = self.layers.iter().try_for_each(|layer| {
-            layer.forward(&x, b, t, &key_bias, adapters, &mut acts)?;
+            layer.forward(&x, b, t, &bias, adapters, &mut acts)?;
             std::mem::swap(&mut x, &mut acts.out);
             Ok::<_, candle_core::Error>(())
         });
@@ -464,7 +548,11 @@ impl BertModel {
         let small = |t: &Tensor| t.elem_count() * 4;
         let mut n = e.word.resident_bytes()
             + small(e.position.embeddings())
-            + small(e.token_type.embeddings())
+            + e.token_type.as_ref().map_or(0, |x| small(x.embeddings()))
+            + self
+                .relative_bias
+                .as_ref()
+                .map_or(0, |r| r.resident_bytes())
             + 2 * self.config.hidden_size * 4;
         for l in &self.layers {
             n += l

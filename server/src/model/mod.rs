@@ -1,5 +1,6 @@
-//! Model runtimes: the encoder (BERT family) and decoder (Llama family) families, the one
-//! adapter-aware linear layer both use, checkpoint loading and sampling.
+//! Model runtimes: the encoder (BERT family, with RoBERTa, XLM-R and MPNet) and decoder (Llama
+//! family) families, the one adapter-aware linear layer both use, checkpoint loading and
+//! sampling.
 
 pub mod bert;
 pub mod chat;
@@ -9,6 +10,7 @@ pub mod embedder;
 pub mod generator;
 pub mod linear;
 pub mod llama;
+pub mod mpnet;
 pub mod sampling;
 
 use std::path::Path;

@@ -11,8 +11,7 @@ use crate::model::embedder::Embedder;
 use crate::model::generator::Generator;
 
 /// The model families a base folder can hold, by config.json's `model_type`.
-pub const KNOWN_MODEL_TYPES: &str =
-    "bert, roberta and xlm-roberta (encoders) and llama, mistral, qwen2, gemma and phi3 (decoders)";
+pub const KNOWN_MODEL_TYPES: &str = "bert, roberta, xlm-roberta and mpnet (encoders) and llama, mistral, qwen2, gemma and phi3 (decoders)";
 
 /// Reads `config.json` from a model folder, or the file itself when `path` is a JSON file.
 pub fn read_config(path: &Path) -> anyhow::Result<(PathBuf, serde_json::Value)> {
