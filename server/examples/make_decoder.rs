@@ -1,14 +1,15 @@
 //! Writes a Llama-family decoder checkpoint of a given size with seeded pattern weights, for
 //! measuring loading and decoding on a model of real size (nothing is learned; the text it
-//! generates means nothing). The folder gets `config.json`, a word-level `tokenizer.json` of the
-//! model's vocabulary (`<w0>`, `<w1>`, ...), and the weights as one safetensors file or as shards
-//! with `model.safetensors.index.json`, in f32 or bf16, written tensor by tensor (at most one
-//! shard's tensors in memory).
+//! generates means nothing, but prompts tokenise as real text does). The folder gets
+//! `config.json`, a copy of the `tokenizer.json` given (scripts/fetch-tokenizer.sh fetches the
+//! 32,000-token Llama-2 vocabulary one these shapes are sized for), and the weights as one
+//! safetensors file or as shards with `model.safetensors.index.json`, in f32 or bf16, written
+//! tensor by tensor (at most one shard's tensors in memory).
 //!
-//!   cargo run --release -p switchyard-server --example make_decoder -- \
-//!       --shape 1b --dtype f32 --out target/decoders/1b-f32
-//!   cargo run --release -p switchyard-server --example make_decoder -- \
-//!       --shape 7b --dtype bf16 --shard-gb 2 --out target/decoders/7b-bf16
+//!   cargo run --release -p switchyard-server --example make_decoder -- --shape 1b --dtype f32 \
+//!       --tokenizer models/l2-tokenizer/tokenizer.json --out target/decoders/1b-f32
+//!   cargo run --release -p switchyard-server --example make_decoder -- --shape 7b --dtype bf16 \
+//!       --shard-gb 2 --tokenizer models/l2-tokenizer/tokenizer.json --out target/decoders/7b-bf16
 //!
 //! Shapes: `1b` (hidden 2048, 16 layers, intermediate 8192, 32 heads over 8 key-value heads,
 //! vocabulary 32000, tied embeddings: 1.1 billion weights, 4.2 GB in f32) and `7b` (hidden 4096,
@@ -145,33 +146,6 @@ fn config_json(s: &Shape, dtype: &str) -> serde_json::Value {
     })
 }
 
-/// A word-level tokenizer whose vocabulary is `<unk>`, `<s>`, `</s>`, then `<w3>` ... one entry
-/// per id, split on whitespace: any id the model emits decodes to something.
-fn tokenizer_json(vocab: usize) -> serde_json::Value {
-    let mut words = serde_json::Map::new();
-    for (i, special) in ["<unk>", "<s>", "</s>"].iter().enumerate() {
-        words.insert((*special).to_owned(), serde_json::json!(i));
-    }
-    for i in 3..vocab {
-        words.insert(format!("<w{i}>"), serde_json::json!(i));
-    }
-    serde_json::json!({
-        "version": "1.0",
-        "truncation": null,
-        "padding": null,
-        "added_tokens": [
-            {"id": 0, "content": "<unk>", "single_word": false, "lstrip": false, "rstrip": false, "normalized": false, "special": true},
-            {"id": 1, "content": "<s>", "single_word": false, "lstrip": false, "rstrip": false, "normalized": false, "special": true},
-            {"id": 2, "content": "</s>", "single_word": false, "lstrip": false, "rstrip": false, "normalized": false, "special": true}
-        ],
-        "normalizer": null,
-        "pre_tokenizer": {"type": "WhitespaceSplit"},
-        "post_processor": null,
-        "decoder": {"type": "WordPiece", "prefix": "##", "cleanup": false},
-        "model": {"type": "WordLevel", "vocab": words, "unk_token": "<unk>"}
-    })
-}
-
 fn write_shard(
     path: &Path,
     shard: &[(String, Vec<usize>, Vec<u8>)],
@@ -204,6 +178,19 @@ fn main() -> anyhow::Result<()> {
         other => bail!("--dtype must be f32 or bf16, got {other:?}"),
     };
     let out = PathBuf::from(value("--out").context("--out DIR is required")?);
+    let tokenizer_file = PathBuf::from(
+        value("--tokenizer").context("--tokenizer FILE (a tokenizer.json) is required")?,
+    );
+    // Every id the tokenizer can produce must have an embedding row.
+    let tokens =
+        switchyard_server::model::checkpoint::load_tokenizer(&tokenizer_file)?.get_vocab_size(true);
+    if tokens > shape.vocab {
+        bail!(
+            "{} has {tokens} tokens, more than the {} rows of the model's vocabulary",
+            tokenizer_file.display(),
+            shape.vocab
+        );
+    }
     // 0: one file.
     let shard_bytes: f64 = value("--shard-gb")
         .map(|v| v.parse::<f64>().context("--shard-gb is a number of GB"))
@@ -267,10 +254,8 @@ fn main() -> anyhow::Result<()> {
         out.join("config.json"),
         serde_json::to_string_pretty(&config_json(&shape, dtype_name))?,
     )?;
-    std::fs::write(
-        out.join("tokenizer.json"),
-        serde_json::to_string(&tokenizer_json(shape.vocab))?,
-    )?;
+    std::fs::copy(&tokenizer_file, out.join("tokenizer.json"))
+        .with_context(|| format!("copying {}", tokenizer_file.display()))?;
     println!(
         "{}: {:.2} GB of {} weights in {count} file(s)",
         out.display(),

@@ -58,6 +58,22 @@ fn fetched_model_dir(what: &str, env: &str, folder: &str, script: &str) -> PathB
     dir
 }
 
+/// The fetched 32,000-token Llama-2 vocabulary tokenizer.json (`SWITCHYARD_L2_TOKENIZER_DIR`,
+/// else models/l2-tokenizer); panics with instructions when it is not there, so a test that
+/// needs it fails rather than passes unchecked.
+pub fn l2_tokenizer() -> PathBuf {
+    let dir = std::env::var_os("SWITCHYARD_L2_TOKENIZER_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| workspace_root().join("models/l2-tokenizer"));
+    let file = dir.join("tokenizer.json");
+    assert!(
+        file.is_file(),
+        "the Llama-2 vocabulary tokenizer is not at {}: run scripts/fetch-tokenizer.sh (the test command does)",
+        file.display()
+    );
+    file
+}
+
 /// The `switchyard` binary built next to the running test executable.
 pub fn switchyard_bin() -> PathBuf {
     built_bin("switchyard", "switchyard-server")
