@@ -2,7 +2,7 @@
 //! by side in one run on a decoder base (a Llama-layout model folder). It writes 8 synthetic
 //! adapters into a fresh store, starts three servers on the same model, and measures:
 //!
-//! - **chunked prefill**: time to first token of short requests sent one after another while 4
+//! - **chunked prefill**: time to first token of short requests arriving every 100 ms while 4
 //!   long prompts arrive at once, on a server with `engine.step_tokens = 256` (a long prompt is
 //!   prefilled a chunk per step) against one with a step as large as the bounds allow (each long
 //!   prompt prefilled in one pass); the prefix cache is off on both, so every prompt is computed;
@@ -70,6 +70,8 @@ const ADAPTERS: usize = 8;
 const SEQUENCES: usize = 16;
 const LONG_PROMPTS: usize = 4;
 const CHUNKED_STEP: usize = 256;
+/// How often a short request arrives while the long prompts are prefilled.
+const SHORT_EVERY: Duration = Duration::from_millis(100);
 
 fn adapter_names() -> Vec<String> {
     (0..ADAPTERS).map(|i| format!("serve-{i}")).collect()
@@ -329,15 +331,25 @@ pub fn run_serving(s: &ServingSettings) -> anyhow::Result<ServingReport> {
             let done = std::sync::atomic::AtomicUsize::new(0);
             let (short_ms, long_answers) = std::thread::scope(|scope| {
                 let done = &done;
+                // Short requests arrive every SHORT_EVERY (an open loop: a stalled one does not
+                // hold back the next), from before the long prompts until they all answered.
                 let shorts = scope.spawn(move || -> anyhow::Result<Vec<f64>> {
-                    let g = Gen::new(server);
-                    let mut seen = Vec::new();
-                    while done.load(std::sync::atomic::Ordering::SeqCst) < LONG_PROMPTS {
-                        seen.push(g.generate("base", short, 2)?.first_token_ms);
-                    }
-                    Ok(seen)
+                    std::thread::scope(|inner| {
+                        let mut sent = Vec::new();
+                        while done.load(std::sync::atomic::Ordering::SeqCst) < LONG_PROMPTS {
+                            sent.push(inner.spawn(move || {
+                                Gen::new(server)
+                                    .generate("base", short, 2)
+                                    .map(|a| a.first_token_ms)
+                            }));
+                            std::thread::sleep(SHORT_EVERY);
+                        }
+                        sent.into_iter()
+                            .map(|h| h.join().expect("a short request"))
+                            .collect()
+                    })
                 });
-                std::thread::sleep(Duration::from_millis(200));
+                std::thread::sleep(SHORT_EVERY * 2);
                 let longs: Vec<_> = longs
                     .iter()
                     .map(|p| {
@@ -355,8 +367,8 @@ pub fn run_serving(s: &ServingSettings) -> anyhow::Result<ServingReport> {
                 (shorts.join().expect("the short requests"), long_answers)
             });
             let short_ms = short_ms?;
-            // The first short request was sent before the long prompts arrived.
-            ttft[case].extend(short_ms.into_iter().skip(1));
+            // The first two short requests were sent before the long prompts arrived.
+            ttft[case].extend(short_ms.into_iter().skip(2));
             for a in long_answers {
                 let a = a?;
                 long_ttft[case].push(a.first_token_ms);

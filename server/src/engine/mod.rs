@@ -1028,24 +1028,26 @@ impl Worker {
     /// samples its first token from this pass.
     fn step(&mut self, g: &Generator, live: &mut Vec<Sequence>, eos: &[u32]) {
         let decoding = live.iter().filter(|s| s.prefilling() == 0).count();
-        let mut room = self
+        let room = self
             .config
             .step_tokens
             .saturating_sub(decoding)
             .max(MIN_PREFILL_TOKENS);
+        let grants = prefill_grants(
+            &live.iter().map(Sequence::prefilling).collect::<Vec<_>>(),
+            room,
+        );
         // Each taking part: its index in `live` and how many new tokens it brings.
-        let mut parts: Vec<(usize, usize)> = Vec::with_capacity(live.len());
-        for (i, s) in live.iter().enumerate() {
-            match s.prefilling() {
-                0 => parts.push((i, 1)),
-                left if room > 0 => {
-                    let n = left.min(room);
-                    room -= n;
-                    parts.push((i, n));
-                }
-                _ => {}
-            }
-        }
+        let parts: Vec<(usize, usize)> = live
+            .iter()
+            .zip(&grants)
+            .enumerate()
+            .filter_map(|(i, (s, &granted))| match s.prefilling() {
+                0 => Some((i, 1)),
+                _ if granted > 0 => Some((i, granted)),
+                _ => None,
+            })
+            .collect();
         let _span = tracing::trace_span!("decoder_step", sequences = parts.len()).entered();
         let inputs: Vec<Vec<u32>> = parts
             .iter()
@@ -1157,6 +1159,63 @@ impl Worker {
         self.metrics
             .prefix_cache_bytes
             .set(self.prefixes.held_bytes() as i64);
+    }
+}
+
+/// How many prompt tokens each sequence prefills in one step, out of `room`, given the prompt
+/// tokens each has left (0 for one that generates; the slice is in admission order). The oldest
+/// prompt still prefilling is granted a quarter of the room first (at least one token), so no
+/// prompt waits forever; the rest goes to the prompts with the fewest tokens left, so a short
+/// prompt that arrives while long ones prefill finishes in the next step instead of waiting
+/// for all of them.
+fn prefill_grants(left: &[usize], mut room: usize) -> Vec<usize> {
+    let mut grants = vec![0; left.len()];
+    let waiting: Vec<usize> = (0..left.len()).filter(|&i| left[i] > 0).collect();
+    let Some(&oldest) = waiting.first() else {
+        return grants;
+    };
+    let first = left[oldest].min((room / 4).max(1)).min(room);
+    grants[oldest] = first;
+    room -= first;
+    let mut shortest = waiting;
+    shortest.sort_by_key(|&i| (left[i] - grants[i], i));
+    for i in shortest {
+        if room == 0 {
+            break;
+        }
+        let n = (left[i] - grants[i]).min(room);
+        grants[i] += n;
+        room -= n;
+    }
+    grants
+}
+
+#[cfg(test)]
+mod grant_tests {
+    use super::prefill_grants;
+
+    #[test]
+    fn a_short_prompt_goes_ahead_of_long_ones_and_the_oldest_always_advances() {
+        // Two long prompts prefilling, a decode, and a short prompt that just arrived: the short
+        // one finishes, the rest goes to the oldest (now the long one with the fewest left).
+        assert_eq!(
+            prefill_grants(&[2000, 2000, 0, 12], 255),
+            vec![243, 0, 0, 12]
+        );
+        // The short one alone with the room: all of it, in one step.
+        assert_eq!(prefill_grants(&[0, 12], 255), vec![0, 12]);
+        // However many short prompts keep arriving, the oldest gets its quarter.
+        assert_eq!(
+            prefill_grants(&[2000, 100, 100, 100], 256),
+            vec![64, 100, 92, 0]
+        );
+        // The smallest room still moves the oldest.
+        assert_eq!(prefill_grants(&[50, 3], 1), vec![1, 0]);
+        assert_eq!(prefill_grants(&[0, 0], 10), vec![0, 0]);
+        // Never more than the room, never more than a prompt has left.
+        let g = prefill_grants(&[5, 7, 300], 64);
+        assert!(g.iter().sum::<usize>() <= 64);
+        assert_eq!(&g[..2], &[5, 7]);
     }
 }
 
