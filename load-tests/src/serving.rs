@@ -299,7 +299,9 @@ pub fn run_serving(s: &ServingSettings) -> anyhow::Result<ServingReport> {
         let dir = work.path().join(name);
         std::fs::create_dir_all(&dir)?;
         let mut config = ServerConfig::new(&s.model_dir, &store, false);
-        config.engine_toml = engine.to_owned();
+        // A long prompt prefilled whole on a busy machine may take longer than the default
+        // request timeout; the scenario measures waits, it does not want them cut.
+        config.engine_toml = format!("{engine}request_timeout_ms = 600000\n");
         config.extra_toml = bounds.clone();
         ServerProcess::start(&s.server_bin, &dir, &config)
     };
