@@ -11,12 +11,14 @@
 //! a small threshold, because the test runs at every readout and a false alarm would send
 //! someone hunting for a bug that is not there.
 //!
-//! Arms of weight 0 take no part in the test; one that received requests all the same is a
-//! mismatch outright (p-value 0), since the weights say it cannot happen. What the check cannot
-//! know: requests are counted per arm record, so after a weight change that kept the arm records
-//! the counts mix two allocations and the check compares them with the current weights only;
-//! and with sticky assignment, counts of requests (not subjects) are not independent draws, so a
-//! few heavy subjects can trip it. The readout says which figures it compared.
+//! Arms of weight 0 take no part in the test, requests or not: an arm set to 0 (a candidate rolled
+//! back) keeps the requests it served before, and those say nothing about today's allocation.
+//! What the check cannot know: requests are counted per arm record, and an edit that only
+//! changes weights keeps the records, so after a reweighting the counts mix two allocations and
+//! the check compares them with the current weights only (it will flag the split until the new
+//! allocation dominates; recreating the split starts the counts afresh). And with sticky
+//! assignment, counts of requests (not subjects) are not independent draws, so a few heavy
+//! subjects can trip it. The readout lists the counts and shares it compared.
 
 use serde::Serialize;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
@@ -28,14 +30,13 @@ pub struct AssignmentCheck {
     pub requests: Vec<u64>,
     /// Each arm's share of requests by its weight.
     pub expected_shares: Vec<f64>,
-    /// Pearson's statistic over the arms of positive weight; `None` when there is no test
-    /// (no requests, or fewer than two arms of positive weight) or when an arm of weight 0 got
-    /// requests.
+    /// Pearson's statistic over the arms of positive weight; `None` when there is no test (no
+    /// requests to them, or fewer than two of them).
     pub chi_square: Option<f64>,
     /// `k − 1` for `k` arms of positive weight.
     pub degrees_of_freedom: Option<u64>,
-    /// Upper tail of the chi-square distribution at the statistic; 0 when an arm of weight 0 got
-    /// requests; `None` when there is nothing to test.
+    /// Upper tail of the chi-square distribution at the statistic; `None` when there is nothing
+    /// to test.
     pub p_value: Option<f64>,
     /// The threshold below which a mismatch is flagged.
     pub alarm_below: f64,
@@ -72,22 +73,13 @@ pub fn assignment_check(requests: &[u64], weights: &[f64], alarm_below: f64) -> 
         alarm_below,
         mismatch: false,
     };
-    let total: f64 = requests.iter().map(|&r| r as f64).sum();
     let positive = || {
         requests
             .iter()
             .zip(&check.expected_shares)
             .filter(|(_, share)| **share > 0.0)
     };
-    let impossible = requests
-        .iter()
-        .zip(&check.expected_shares)
-        .any(|(&r, &share)| share == 0.0 && r > 0);
-    if impossible {
-        check.p_value = Some(0.0);
-        check.mismatch = true;
-        return check;
-    }
+    let total: f64 = positive().map(|(&r, _)| r as f64).sum();
     let arms = positive().count() as u64;
     if total == 0.0 || arms < 2 {
         return check;
@@ -147,14 +139,14 @@ mod tests {
     }
 
     #[test]
-    fn zero_weight_arm_with_requests_is_a_mismatch_outright() {
-        let check = assignment_check(&[40, 3, 0], &[1.0, 0.0, 1.0], 0.001);
-        assert_eq!(check.p_value, Some(0.0));
-        assert_eq!(check.chi_square, None);
-        assert!(check.mismatch);
-        // Without requests it is left out: two arms of positive weight, one degree of freedom.
-        let check = assignment_check(&[40, 0, 38], &[1.0, 0.0, 1.0], 0.001);
+    fn zero_weight_arms_are_left_out_with_the_requests_they_served() {
+        // A candidate rolled back to weight 0 after serving 300 requests: the other two arms
+        // are tested on their own counts, one degree of freedom.
+        let check = assignment_check(&[40, 300, 38], &[1.0, 0.0, 1.0], 0.001);
+        assert_eq!(check.expected_shares, vec![0.5, 0.0, 0.5]);
         assert_eq!(check.degrees_of_freedom, Some(1));
+        // (1² + 1²)/39.
+        assert!((check.chi_square.unwrap() - 2.0 / 39.0).abs() < 1e-12);
         assert!(!check.mismatch);
     }
 
