@@ -170,4 +170,27 @@ mod tests {
         assert_eq!(check.chi_square, Some(0.0));
         assert_eq!(check.p_value, Some(1.0));
     }
+
+    proptest::proptest! {
+        /// Any counts against any valid weights: no panic, shares that sum to 1, a p-value in
+        /// [0, 1] or none, and a mismatch only with a p-value below the threshold.
+        #[test]
+        fn any_counts_and_weights_give_a_sound_check(
+            arms in proptest::collection::vec(
+                (proptest::num::u64::ANY, 0.0..f64::MAX),
+                1..6,
+            )
+        ) {
+            let requests: Vec<u64> = arms.iter().map(|a| a.0).collect();
+            let mut weights: Vec<f64> = arms.iter().map(|a| a.1).collect();
+            weights[0] = weights[0].max(1.0);
+            let check = assignment_check(&requests, &weights, 0.001);
+            let sum: f64 = check.expected_shares.iter().sum();
+            proptest::prop_assert!((sum - 1.0).abs() < 1e-9, "{:?}", check);
+            if let Some(p) = check.p_value {
+                proptest::prop_assert!((0.0..=1.0).contains(&p), "{:?}", check);
+            }
+            proptest::prop_assert_eq!(check.mismatch, check.p_value.is_some_and(|p| p < 0.001));
+        }
+    }
 }

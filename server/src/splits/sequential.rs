@@ -308,4 +308,47 @@ mod tests {
         assert!(line.effective_count.is_finite() && line.effective_count > 1e18);
         assert_eq!(line.p_value, Some(1.0));
     }
+
+    proptest::proptest! {
+        /// Whatever stored tallies hold (any count, mean and spread, infinities and NaN included)
+        /// and whatever mixing variance, the always-valid figures come without a panic, finite
+        /// or absent, the p-value in [0, 1] and the interval around the difference.
+        #[test]
+        fn any_stored_tallies_give_finite_always_valid_figures(
+            arms in proptest::collection::vec(
+                (proptest::num::u64::ANY, proptest::num::f64::ANY, proptest::num::f64::ANY,
+                 proptest::num::u64::ANY),
+                2..3,
+            ),
+            tau2 in proptest::num::f64::POSITIVE,
+        ) {
+            let numeric: Vec<NumericTally> = arms
+                .iter()
+                .map(|&(n, mean, m2, _)| NumericTally::from_parts(super::super::NumericParts {
+                    count: n,
+                    shift: 0.0,
+                    shifted_mean: mean,
+                    squared_deviations: m2,
+                }))
+                .collect();
+            let binary: Vec<BinaryTally> = arms
+                .iter()
+                .map(|&(n, _, _, k)| BinaryTally::from_counts(n, k.min(n)).unwrap())
+                .collect();
+            let lines = [
+                always_valid_numeric(&numeric[1], &numeric[0], tau2),
+                always_valid_proportion(&binary[1], &binary[0], tau2),
+            ];
+            for line in lines.into_iter().flatten() {
+                proptest::prop_assert!(line.difference.is_finite(), "{:?}", line);
+                if let Some(p) = line.p_value {
+                    proptest::prop_assert!((0.0..=1.0).contains(&p), "{:?}", line);
+                }
+                if let Some(i) = line.interval {
+                    proptest::prop_assert!(i.low.is_finite() && i.high.is_finite(), "{:?}", line);
+                    proptest::prop_assert!(i.low <= line.difference && line.difference <= i.high);
+                }
+            }
+        }
+    }
 }
