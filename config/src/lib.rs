@@ -124,6 +124,12 @@ pub struct Settings {
     pub experiments_database: Option<PathBuf>,
     /// How many days a response's record (which arm answered it) is kept for a late outcome.
     pub keep_responses_days: u64,
+    /// τ² of the always-valid split comparisons (a normal mixture), in units of one outcome's
+    /// variance (`[experiments] mixing_variance`).
+    pub mixing_variance: f64,
+    /// A split readout flags its requests per arm as not matching the weights below this
+    /// chi-square p-value (`[experiments] assignment_alarm_p`).
+    pub assignment_alarm_p: f64,
 }
 
 /// One `[[tenants]]` entry.
@@ -209,6 +215,8 @@ impl Default for Settings {
             huge_pages: false,
             experiments_database: None,
             keep_responses_days: 30,
+            mixing_variance: 0.1,
+            assignment_alarm_p: 0.001,
         }
     }
 }
@@ -440,6 +448,14 @@ impl Settings {
                 d.keep_responses_days,
                 1..=3650,
             )?,
+            mixing_variance: src.number(&read::MIXING_VARIANCE, d.mixing_variance, |x| {
+                (!(x > 0.0 && x <= 1e6)).then_some("must be above 0 and at most 1e6")
+            })?,
+            assignment_alarm_p: src.number(
+                &read::ASSIGNMENT_ALARM_P,
+                d.assignment_alarm_p,
+                |x| (!(x > 0.0 && x <= 0.5)).then_some("must be above 0 and at most 0.5"),
+            )?,
         })
     }
 }
@@ -545,6 +561,8 @@ impl fmt::Debug for Settings {
             .field("huge_pages", &self.huge_pages)
             .field("experiments_database", &self.experiments_database)
             .field("keep_responses_days", &self.keep_responses_days)
+            .field("mixing_variance", &self.mixing_variance)
+            .field("assignment_alarm_p", &self.assignment_alarm_p)
             .finish()
     }
 }

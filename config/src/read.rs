@@ -150,6 +150,16 @@ pub(crate) const KEEP_RESPONSES_DAYS: SettingKey = SettingKey::new(
     "keep_responses_days",
     "SWITCHYARD_EXPERIMENTS_KEEP_RESPONSES_DAYS",
 );
+pub(crate) const MIXING_VARIANCE: SettingKey = SettingKey::new(
+    "experiments",
+    "mixing_variance",
+    "SWITCHYARD_EXPERIMENTS_MIXING_VARIANCE",
+);
+pub(crate) const ASSIGNMENT_ALARM_P: SettingKey = SettingKey::new(
+    "experiments",
+    "assignment_alarm_p",
+    "SWITCHYARD_EXPERIMENTS_ASSIGNMENT_ALARM_P",
+);
 
 /// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
 /// setting that is not scalar; it comes from the file only.
@@ -188,6 +198,8 @@ pub const KEYS: &[SettingKey] = &[
     LOG_FILTER,
     EXPERIMENTS_DATABASE,
     KEEP_RESPONSES_DAYS,
+    MIXING_VARIANCE,
+    ASSIGNMENT_ALARM_P,
 ];
 
 /// Keys of earlier releases and what replaced them, so an old file gets a pointer to the new key

@@ -127,6 +127,8 @@ pub(crate) fn render(s: &Settings) -> String {
         None => page.unset(&read::EXPERIMENTS_DATABASE, "no store folder either"),
     }
     page.line(&read::KEEP_RESPONSES_DAYS, s.keep_responses_days);
+    page.line(&read::MIXING_VARIANCE, s.mixing_variance);
+    page.line(&read::ASSIGNMENT_ALARM_P, s.assignment_alarm_p);
 
     let mut text = page.text;
     if s.tenants.is_empty() {

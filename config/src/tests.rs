@@ -163,6 +163,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::LOG_FILTER, "\"debug\"", "debug"),
         (&read::EXPERIMENTS_DATABASE, "\"e.sqlite\"", "e.sqlite"),
         (&read::KEEP_RESPONSES_DAYS, "7", "7"),
+        (&read::MIXING_VARIANCE, "0.25", "0.25"),
+        (&read::ASSIGNMENT_ALARM_P, "0.01", "0.01"),
     ];
     assert_eq!(values.len(), KEYS.len(), "a key in KEYS is missing here");
     let mut file = String::new();
@@ -213,6 +215,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         huge_pages: true,
         experiments_database: Some("e.sqlite".into()),
         keep_responses_days: 7,
+        mixing_variance: 0.25,
+        assignment_alarm_p: 0.01,
     };
     assert_eq!(from_file, expected);
 }
@@ -327,6 +331,16 @@ fn each_range_is_enforced_at_both_ends() {
             "[experiments]\nkeep_responses_days = 3651",
             "experiments.keep_responses_days",
             "3651",
+        ),
+        (
+            "[experiments]\nmixing_variance = 0",
+            "experiments.mixing_variance",
+            "0",
+        ),
+        (
+            "[experiments]\nassignment_alarm_p = 0.6",
+            "experiments.assignment_alarm_p",
+            "0.6",
         ),
         ("[experiments]\ndatabase = \"\"", "experiments.database", ""),
     ];

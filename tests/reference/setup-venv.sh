@@ -2,6 +2,10 @@
 # Creates tests/reference/.venv with the pinned Python libraries that generate.py and time_embed.py
 # use. Idempotent: an existing venv that already has exactly these versions is left alone.
 # torch comes from PyPI (its default Linux wheel is the CUDA build; it runs on CPU here).
+# confseq (for sequential.py) is built from source: it needs Boost's headers (Debian's
+# libboost-dev) and a C++ compiler. Its own build requirements pin a pybind11 that does not
+# compile against Python 3.11, so it is built without build isolation against the newer
+# pybind11 pinned below.
 set -euo pipefail
 
 here=$(cd "$(dirname "$0")" && pwd)
@@ -15,6 +19,14 @@ pins=(
     "numpy==2.4.6"
     "scipy==1.17.1"
     "peft==0.21.2"
+    "confseq==0.0.11"
+)
+# What confseq is built with (see above).
+build_pins=(
+    "pybind11==2.13.6"
+    "scikit-build==0.18.1"
+    "cmake==3.31.6"
+    "ninja==1.11.1.4"
 )
 
 if [ ! -x "$venv/bin/python" ]; then
@@ -39,6 +51,12 @@ PY
     exit 0
 fi
 
+if [ ! -d /usr/include/boost/math ]; then
+    echo "setup-venv: confseq needs Boost's headers: apt-get install libboost-dev" >&2
+    exit 1
+fi
 echo "setup-venv: installing ${pins[*]} (torch is large; this can take a few minutes)" >&2
-"$venv/bin/python" -m pip install --disable-pip-version-check --quiet "${pins[@]}"
+"$venv/bin/python" -m pip install --disable-pip-version-check --quiet \
+    "${build_pins[@]}" setuptools wheel
+"$venv/bin/python" -m pip install --disable-pip-version-check --quiet --no-build-isolation "${pins[@]}"
 echo "setup-venv: done" >&2

@@ -175,13 +175,43 @@ fn split_weighted_80_20_over_2000_subjects_holds_its_weights_and_keeps_each_subj
         );
         if i == 0 {
             assert!(numeric["versus_first"].is_null(), "{arm}");
+            assert!(numeric["versus_first_always_valid"].is_null(), "{arm}");
         } else {
-            for comparison in [&numeric["versus_first"], &arm["yes_no"]["versus_first"]] {
-                let p = comparison["p_value"].as_f64().unwrap_or(f64::NAN);
-                assert!((0.0..=1.0).contains(&p), "{name}: p-value {comparison}");
+            for kind in ["numeric", "yes_no"] {
+                // Both kinds of figure, each saying which it is.
+                for (field, validity) in [
+                    ("versus_first", "fixed_sample"),
+                    ("versus_first_always_valid", "always_valid"),
+                ] {
+                    let comparison = &arm[kind][field];
+                    assert_eq!(comparison["validity"], validity, "{name}: {comparison}");
+                    let p = comparison["p_value"].as_f64().unwrap_or(f64::NAN);
+                    assert!((0.0..=1.0).contains(&p), "{name}: p-value {comparison}");
+                }
+                // The always-valid interval is the wider one: it pays for being read at will.
+                let width = |field: &str| {
+                    let i = &arm[kind][field]["interval"];
+                    i["high"].as_f64().unwrap() - i["low"].as_f64().unwrap()
+                };
+                assert!(
+                    width("versus_first_always_valid") > width("versus_first"),
+                    "{name} {kind}: {arm}"
+                );
             }
         }
     }
+    assert_eq!(readout["always_valid"]["mixing_variance"], json!(0.1));
+    // Sticky 80/20 by subject hash: the requests follow the weights, so no alarm.
+    let check = &readout["assignment_check"];
+    assert_eq!(check["expected_shares"], json!([0.8, 0.2]), "{check}");
+    assert_eq!(
+        check["requests"],
+        json!([requests_now["incumbent"], requests_now["candidate"]]),
+        "{check}"
+    );
+    assert_eq!(check["alarm_below"], json!(0.001), "{check}");
+    assert_eq!(check["degrees_of_freedom"], json!(1), "{check}");
+    assert_eq!(check["mismatch"], json!(false), "{check}");
 
     server.restart();
     let after = serve_subjects(&server, &sample);
@@ -405,6 +435,58 @@ fn outcome_posted_by_another_tenant_is_answered_as_an_unknown_response() {
         readout["arms"][0]["yes_no"]["summary"]["count"],
         json!(1),
         "only the serving tenant's outcome counts: {readout}"
+    );
+}
+
+/// The assignment check flags a split whose requests do not follow its weights. Here the cause
+/// is an edit: 50/50 traffic, then a reweighting to 90/10 that keeps the arm records (same
+/// treatments), so the counts no longer match the weights; the README names this case. An arm
+/// rolled back to weight 0 leaves the check, with the requests it served.
+#[test]
+fn assignment_check_flags_requests_that_do_not_follow_the_weights() {
+    let server = ServerSetup::encoder().start();
+    server.publish("intent-a", &fixtures().join("minilm-qv-a.safetensors"));
+    server.publish("intent-b", &fixtures().join("minilm-qv-b.safetensors"));
+    let even = json!([
+        {"name": "incumbent", "adapter": "intent-a", "weight": 1},
+        {"name": "candidate", "adapter": "intent-b", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "intent-check", even).status, 201);
+    let served = responses_by_arm(
+        &server,
+        "intent-check",
+        "c",
+        &["incumbent", "candidate"],
+        60,
+    );
+    let check = readout(&server, "intent-check")["assignment_check"].clone();
+    assert_eq!(check["mismatch"], json!(false), "{check}");
+    assert_eq!(check["expected_shares"], json!([0.5, 0.5]), "{check}");
+    let requests: Vec<u64> = ["incumbent", "candidate"]
+        .iter()
+        .map(|a| served[*a].len() as u64)
+        .collect();
+    assert_eq!(check["requests"], json!(requests), "{check}");
+
+    let skewed = json!([
+        {"name": "incumbent", "adapter": "intent-a", "weight": 9},
+        {"name": "candidate", "adapter": "intent-b", "weight": 1},
+    ]);
+    assert_eq!(put_split(&server, "intent-check", skewed).status, 200);
+    let check = readout(&server, "intent-check")["assignment_check"].clone();
+    assert_eq!(check["mismatch"], json!(true), "{check}");
+    assert!(check["p_value"].as_f64().unwrap() < 0.001, "{check}");
+
+    let rolled_back = json!([
+        {"name": "incumbent", "adapter": "intent-a", "weight": 1},
+        {"name": "candidate", "adapter": "intent-b", "weight": 0},
+    ]);
+    assert_eq!(put_split(&server, "intent-check", rolled_back).status, 200);
+    let check = readout(&server, "intent-check")["assignment_check"].clone();
+    assert_eq!(check["mismatch"], json!(false), "{check}");
+    assert!(
+        check["p_value"].is_null(),
+        "one arm left: nothing to test: {check}"
     );
 }
 

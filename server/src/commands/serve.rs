@@ -256,6 +256,10 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         metrics_public: settings.metrics_public,
         metrics,
         splits,
+        readout: crate::splits::ReadoutSettings {
+            mixing_variance: settings.mixing_variance,
+            assignment_alarm_p: settings.assignment_alarm_p,
+        },
         bounds: Bounds {
             inference_body_bytes: settings.inference_body_bytes,
             upload_body_bytes: settings.upload_body_bytes,

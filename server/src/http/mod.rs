@@ -61,6 +61,8 @@ pub struct AppState {
     pub metrics_public: bool,
     pub metrics: Arc<Metrics>,
     pub splits: crate::experiments::Experiments,
+    /// The parameters of split readouts (`[experiments]` in the configuration).
+    pub readout: crate::splits::ReadoutSettings,
     pub bounds: Bounds,
     /// False once shutdown began.
     pub ready: AtomicBool,

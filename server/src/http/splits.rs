@@ -17,7 +17,8 @@ use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
 use crate::splits::{
-    ArmSpec, BinaryTally, NumericTally, Split, SplitSpec, binary_readout, numeric_readout,
+    ArmSpec, BinaryTally, NumericTally, ReadoutSettings, Split, SplitSpec, always_valid_numeric,
+    always_valid_proportion, assignment_check, binary_readout, numeric_readout, sequential,
 };
 
 pub fn authorization(headers: &HeaderMap) -> Option<&str> {
@@ -170,9 +171,10 @@ pub async fn list(
 }
 
 /// `GET /admin/splits/{name}/readout`: per current arm, requests, outcomes, mean and 95%
-/// interval, and the difference to the first arm with its interval and p-value (Welch's t-test
-/// for numbers, the two-proportion z-test for yes/no); then the arm records edits replaced, with
-/// their own summaries.
+/// interval, and the difference to the first arm twice over: with the fixed-sample interval and
+/// p-value (Welch's t-test for numbers, the two-proportion z-test for yes/no) and with the
+/// always-valid ones ([`sequential`]); the assignment check of requests against weights; then
+/// the arm records edits replaced, with their own summaries.
 pub async fn readout(
     State(state): State<SharedState>,
     headers: HeaderMap,
@@ -185,12 +187,39 @@ pub async fn readout(
     })
     .await?
     .ok_or_else(|| unknown_split(&name))?;
-    Ok(Json(readout_json(&split)))
+    Ok(Json(readout_json(&split, &state.readout)))
 }
 
-fn readout_json(split: &SplitState) -> Value {
+fn readout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
     let numeric: Vec<NumericTally> = split.arms.iter().map(|a| a.numeric).collect();
     let binary: Vec<BinaryTally> = split.arms.iter().map(|a| a.yes_no).collect();
+    let tau2 = settings.mixing_variance;
+    // Per arm, the always-valid comparison with the first arm (none for the first arm itself).
+    let numeric_watched: Vec<Value> = numeric
+        .iter()
+        .enumerate()
+        .map(|(i, arm)| {
+            json!(
+                (i > 0)
+                    .then(|| always_valid_numeric(arm, &numeric[0], tau2))
+                    .flatten()
+            )
+        })
+        .collect();
+    let binary_watched: Vec<Value> = binary
+        .iter()
+        .enumerate()
+        .map(|(i, arm)| {
+            json!(
+                (i > 0)
+                    .then(|| always_valid_proportion(arm, &binary[0], tau2))
+                    .flatten()
+            )
+        })
+        .collect();
+    let requests: Vec<u64> = split.arms.iter().map(|a| a.requests).collect();
+    let weights: Vec<f64> = split.arms.iter().map(|a| a.arm.spec.weight).collect();
+    let check = assignment_check(&requests, &weights, settings.assignment_alarm_p);
     let (numeric, binary) = (numeric_readout(&numeric), binary_readout(&binary));
     let arm_line = |a: &ArmTally| {
         json!({
@@ -205,12 +234,17 @@ fn readout_json(split: &SplitState) -> Value {
         .arms
         .iter()
         .zip(numeric.iter().zip(&binary))
-        .map(|(a, (numeric, binary))| {
-            let mut line = arm_line(a);
-            line["numeric"] = json!(numeric);
-            line["yes_no"] = json!(binary);
-            line
-        })
+        .zip(numeric_watched.into_iter().zip(binary_watched))
+        .map(
+            |((a, (numeric, binary)), (numeric_watched, binary_watched))| {
+                let mut line = arm_line(a);
+                line["numeric"] = json!(numeric);
+                line["numeric"]["versus_first_always_valid"] = numeric_watched;
+                line["yes_no"] = json!(binary);
+                line["yes_no"]["versus_first_always_valid"] = binary_watched;
+                line
+            },
+        )
         .collect();
     let replaced: Vec<Value> = split
         .replaced
@@ -226,6 +260,12 @@ fn readout_json(split: &SplitState) -> Value {
         "split": split.name,
         "generation": split.generation,
         "confidence": crate::splits::CONFIDENCE_LEVEL,
+        "always_valid": {
+            "method": sequential::METHOD,
+            "mixing_variance": tau2,
+            "min_outcomes_per_arm": crate::splits::MIN_OUTCOMES_PER_ARM,
+        },
+        "assignment_check": check,
         "arms": arms,
         "replaced_arms": replaced,
     })

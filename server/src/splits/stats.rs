@@ -47,6 +47,8 @@ use serde::Serialize;
 use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
 use thiserror::Error;
 
+use super::sequential::Validity;
+
 /// The confidence level of every interval in a readout.
 pub const CONFIDENCE_LEVEL: f64 = 0.95;
 
@@ -65,7 +67,7 @@ pub struct Interval {
 
 impl Interval {
     /// `centre ± half_width`; `None` when either end is not finite.
-    fn around_finite(centre: f64, half_width: f64) -> Option<Self> {
+    pub(crate) fn around_finite(centre: f64, half_width: f64) -> Option<Self> {
         let interval = Self {
             low: centre - half_width,
             high: centre + half_width,
@@ -204,7 +206,7 @@ impl NumericTally {
     }
 
     /// Squared standard error of the mean, `s² / n`.
-    fn mean_variance(&self) -> Option<f64> {
+    pub(crate) fn mean_variance(&self) -> Option<f64> {
         self.variance().and_then(|v| finite(v / self.count as f64))
     }
 
@@ -295,6 +297,8 @@ pub struct NumericSummary {
 /// One arm's numeric outcomes against the first arm's: Welch's t-test of `mean_i − mean_0`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct WelchComparison {
+    /// Always [`Validity::FixedSample`]: says which kind the figures are.
+    pub validity: Validity,
     /// `mean_i − mean_0`.
     pub difference: f64,
     /// `None` (as are the three below) when an arm has fewer than two outcomes or both are
@@ -321,6 +325,8 @@ pub struct BinarySummary {
 /// One arm's yes/no outcomes against the first arm's.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct ProportionComparison {
+    /// Always [`Validity::FixedSample`]: says which kind the figures are.
+    pub validity: Validity,
     /// `p_i − p_0`.
     pub difference: f64,
     /// Unpooled normal interval; `None` when both proportions are 0 or 1 (zero standard error).
@@ -399,6 +405,7 @@ fn readout<T, S, C, L>(
 pub fn welch_comparison(arm: &NumericTally, first: &NumericTally) -> Option<WelchComparison> {
     let difference = finite(arm.mean()? - first.mean()?)?;
     let mut comparison = WelchComparison {
+        validity: Validity::FixedSample,
         difference,
         interval: None,
         t_statistic: None,
@@ -472,6 +479,7 @@ pub fn proportion_comparison(
         .flatten();
 
     Some(ProportionComparison {
+        validity: Validity::FixedSample,
         difference,
         interval,
         z_statistic,
