@@ -754,3 +754,52 @@ fn an_engine_panic_fails_only_its_work_and_the_engine_restarts_or_stops_visibly(
         .get("/health/live", Auth::None)
         .assert_error(503, "engine_stopped");
 }
+
+/// Six concurrent generations over the base and two adapters, interleaved (the engine groups
+/// each step's sequences by adapter, so rows and caches are reordered within the step): each
+/// still gets transformers' greedy tokens for its own adapter (tests/reference/generate.py).
+#[test]
+fn interleaved_generations_over_several_adapters_each_get_their_own_reference_tokens() {
+    let reference = greedy_reference();
+    let fx = read_json(&fixtures().join("tiny-llama-reference.json"));
+    let server = ServerSetup::tiny_decoder()
+        .set("engine", "prefix_cache_bytes", "0")
+        .start();
+    server.publish("qv", &fixtures().join("tiny-llama-qv.safetensors"));
+    server.publish("all", &fixtures().join("tiny-llama-all.safetensors"));
+    let want = |adapter: &str| match adapter {
+        "qv" => fx["adapters"]["tiny-llama-qv"]["greedy"].clone(),
+        "all" => fx["adapters"]["tiny-llama-all"]["greedy"].clone(),
+        _ => json!(reference.greedy),
+    };
+    let order = ["qv", "base", "all", "qv", "all", "base"];
+    std::thread::scope(|scope| {
+        let runs: Vec<_> = order
+            .iter()
+            .map(|adapter| {
+                let server = &server;
+                let body =
+                    json!({"adapter": adapter, "prompt": reference.prompt, "max_tokens": 16});
+                scope.spawn(move || server.post("/generate", Auth::None, &body).ok_json())
+            })
+            .collect();
+        for (adapter, run) in order.iter().zip(runs) {
+            assert_eq!(run.join().unwrap()["token_ids"], want(adapter), "{adapter}");
+        }
+    });
+    // They shared forward passes: some pass carried more than one row.
+    let page = server.get("/metrics", Auth::Admin).body;
+    let one: f64 = page
+        .lines()
+        .find_map(|l| l.strip_prefix("switchyard_batch_rows_bucket{le=\"1.0\"} "))
+        .unwrap()
+        .parse()
+        .unwrap();
+    let all: f64 = page
+        .lines()
+        .find_map(|l| l.strip_prefix("switchyard_batch_rows_count "))
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert!(one < all, "every pass carried one row ({one} of {all})");
+}

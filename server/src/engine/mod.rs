@@ -1048,6 +1048,17 @@ impl Worker {
                 _ => None,
             })
             .collect();
+        // Sequences of one adapter side by side, so the layer reads each adapter's factors once
+        // per step for all its rows instead of once per sequence.
+        let adapter_of = |i: usize| {
+            live[i]
+                .job
+                .adapter
+                .as_ref()
+                .map(|h| Arc::as_ptr(h.adapter()) as usize)
+        };
+        let mut parts = parts;
+        parts.sort_by_key(|&(i, _)| (adapter_of(i), i));
         let _span = tracing::trace_span!("decoder_step", sequences = parts.len()).entered();
         let inputs: Vec<Vec<u32>> = parts
             .iter()
@@ -1089,16 +1100,12 @@ impl Worker {
             }
         };
         self.metrics.batch_rows.observe(parts.len() as f64);
-        let taking: Vec<bool> = {
-            let mut t = vec![false; live.len()];
-            parts.iter().for_each(|&(i, _)| t[i] = true);
-            t
-        };
-        let mut caches: Vec<&mut KvCache> = live
-            .iter_mut()
-            .zip(&taking)
-            .filter(|(_, t)| **t)
-            .map(|(s, _)| &mut s.cache)
+        // The caches in the order of `parts`.
+        let mut slots: Vec<Option<&mut KvCache>> =
+            live.iter_mut().map(|s| Some(&mut s.cache)).collect();
+        let mut caches: Vec<&mut KvCache> = parts
+            .iter()
+            .map(|&(i, _)| slots[i].take().expect("each sequence takes part once"))
             .collect();
         let logits = g
             .model()
