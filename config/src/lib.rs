@@ -48,6 +48,9 @@ const GIB: u64 = 1024 * MIB;
 pub struct Settings {
     /// Address the HTTP server binds (`[server] listen`).
     pub listen: SocketAddr,
+    /// This server's name among several behind one front (`[server] replica`): every response
+    /// carries it. Unset: the machine's host name.
+    pub replica: Option<String>,
     /// Folder of the base model checkpoint (config.json, *.safetensors, tokenizer.json).
     pub model_dir: Option<PathBuf>,
     /// The format the base model's weights are held in once loaded (`[model] weights`):
@@ -183,6 +186,7 @@ impl Default for Settings {
     fn default() -> Self {
         Self {
             listen: SocketAddr::from((Ipv4Addr::LOCALHOST, 7070)),
+            replica: None,
             model_dir: None,
             model_weights: WeightFormat::F32,
             store_dir: None,
@@ -320,8 +324,26 @@ impl Settings {
         let admin_token = admin_token(src, &tenants)?;
         let prompt_tokens =
             size(src.whole(&read::PROMPT_TOKENS, d.prompt_tokens as u64, 1..=131_072)?);
+        let replica = match src.text(&read::REPLICA, false)? {
+            None => d.replica,
+            Some((text, origin)) => {
+                let ok = text.len() <= 64
+                    && text
+                        .bytes()
+                        .all(|b| b.is_ascii_alphanumeric() || b"-_.".contains(&b));
+                if !ok {
+                    return Err(ConfigError::invalid(
+                        origin.label(&read::REPLICA),
+                        text.as_str(),
+                        "expected up to 64 letters, digits, '-', '_' or '.' (it goes into a response header)",
+                    ));
+                }
+                Some(text)
+            }
+        };
         Ok(Settings {
             listen,
+            replica,
             model_dir: dir(src, &read::MODEL_DIR, overrides.model_dir.as_deref())?,
             model_weights: match overrides.model_weights {
                 Some(format) => format,
@@ -526,6 +548,7 @@ impl fmt::Debug for Settings {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.debug_struct("Settings")
             .field("listen", &self.listen)
+            .field("replica", &self.replica)
             .field("model_dir", &self.model_dir)
             .field("model_weights", &self.model_weights)
             .field("store_dir", &self.store_dir)

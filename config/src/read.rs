@@ -31,6 +31,8 @@ impl SettingKey {
 }
 
 pub(crate) const LISTEN: SettingKey = SettingKey::new("server", "listen", "SWITCHYARD_LISTEN");
+pub(crate) const REPLICA: SettingKey =
+    SettingKey::new("server", "replica", "SWITCHYARD_SERVER_REPLICA");
 pub(crate) const SHUTDOWN_GRACE_MS: SettingKey = SettingKey::new(
     "server",
     "shutdown_grace_ms",
@@ -165,6 +167,7 @@ pub(crate) const ASSIGNMENT_ALARM_P: SettingKey = SettingKey::new(
 /// setting that is not scalar; it comes from the file only.
 pub const KEYS: &[SettingKey] = &[
     LISTEN,
+    REPLICA,
     SHUTDOWN_GRACE_MS,
     HUGE_PAGES,
     MODEL_DIR,

@@ -62,6 +62,10 @@ pub(crate) fn render(s: &Settings) -> String {
         section: "",
     };
     page.line(&read::LISTEN, quoted(&s.listen.to_string()));
+    match &s.replica {
+        Some(name) => page.line(&read::REPLICA, quoted(name)),
+        None => page.unset(&read::REPLICA, "the machine's host name"),
+    }
     page.line(&read::SHUTDOWN_GRACE_MS, s.shutdown_grace_ms);
     page.line(&read::HUGE_PAGES, s.huge_pages);
     match &s.model_dir {

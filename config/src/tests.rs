@@ -126,6 +126,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
     // One value per key, none of them the default, so a key that is not wired up shows.
     let values: &[(&SettingKey, &str, &str)] = &[
         (&read::LISTEN, "\"0.0.0.0:9000\"", "0.0.0.0:9000"),
+        (&read::REPLICA, "\"north-2\"", "north-2"),
         (&read::SHUTDOWN_GRACE_MS, "1234", "1234"),
         (&read::HUGE_PAGES, "true", "true"),
         (&read::MODEL_DIR, "\"m\"", "m"),
@@ -179,6 +180,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
     assert_eq!(from_file, from_env);
     let expected = Settings {
         listen: "0.0.0.0:9000".parse().unwrap(),
+        replica: Some("north-2".to_owned()),
         model_dir: Some("m".into()),
         model_weights: WeightFormat::parse("int4-g64").unwrap(),
         store_dir: Some("s".into()),

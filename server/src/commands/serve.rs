@@ -271,6 +271,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         },
         ready: AtomicBool::new(true),
         vital_threads,
+        replica: crate::http::replica_name(settings.replica.as_deref()),
     });
     let niceness = http_niceness();
     let runtime = tokio::runtime::Builder::new_multi_thread()

@@ -106,7 +106,20 @@ async fn route(
         adapter,
         split,
         subject,
+        route,
     } = target;
+    // The body decides; a routing header that names something else sent the request to a
+    // replica chosen for another adapter, which a client should hear about.
+    if let (Some(key), Some(named)) = (route, adapter.or(split))
+        && key != named
+    {
+        return Err(ApiError::bad_request(
+            "route_mismatch",
+            format!(
+                "the {ROUTE_HEADER} header says {key:?} but the body names {named:?}; they must agree (the body decides what runs)"
+            ),
+        ));
+    }
     let mut recorded = None;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
@@ -191,12 +204,25 @@ async fn route(
     })
 }
 
+/// The routing key header a front hashes on to send an adapter's requests to one replica.
+pub const ROUTE_HEADER: &str = "Switchyard-Route";
+
+/// The `Switchyard-Route` header's value, when present (a value that is not text is kept as
+/// its lossy text, so it can only mismatch).
+fn route_header(headers: &axum::http::HeaderMap) -> Option<String> {
+    headers
+        .get(ROUTE_HEADER)
+        .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
+}
+
 /// What a request body names: an adapter or a split, and the subject of a sticky assignment.
 #[derive(Clone, Copy)]
 struct Target<'a> {
     adapter: Option<&'a str>,
     split: Option<&'a str>,
     subject: Option<&'a str>,
+    /// The routing key a front (nginx) hashed on: the `Switchyard-Route` header.
+    route: Option<&'a str>,
 }
 
 impl<'a> Target<'a> {
@@ -204,11 +230,13 @@ impl<'a> Target<'a> {
         adapter: &'a Option<String>,
         split: &'a Option<String>,
         subject: &'a Option<String>,
+        route: &'a Option<String>,
     ) -> Self {
         Self {
             adapter: adapter.as_deref(),
             split: split.as_deref(),
             subject: subject.as_deref(),
+            route: route.as_deref(),
         }
     }
 }
@@ -306,6 +334,9 @@ pub struct EmbedBody {
     pub split: Option<String>,
     pub subject: Option<String>,
     pub texts: Vec<String>,
+    /// The `Switchyard-Route` header, when the request carried one (not a body field).
+    #[serde(skip)]
+    pub route: Option<String>,
 }
 
 fn too_large(code: &'static str, message: String) -> ApiError {
@@ -409,7 +440,7 @@ async fn run_embed(
         ));
     }
     let (reply, rx) = oneshot::channel();
-    let target = Target::of(&body.adapter, &body.split, &body.subject);
+    let target = Target::of(&body.adapter, &body.split, &body.subject, &body.route);
     let tokens = ids.iter().map(|t| t.len() as u64).sum();
     let routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Embed(EmbedJob {
@@ -435,8 +466,10 @@ async fn run_embed(
 pub async fn embed(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
-    ApiJson(body): ApiJson<EmbedBody>,
+    headers: axum::http::HeaderMap,
+    ApiJson(mut body): ApiJson<EmbedBody>,
 ) -> Response {
+    body.route = route_header(&headers);
     let start = Instant::now();
     let id = new_response_id();
     match run_embed(&state, &tenant, body, "embed", &id).await {
@@ -463,8 +496,10 @@ pub async fn embed(
 pub async fn classify(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
-    ApiJson(body): ApiJson<EmbedBody>,
+    headers: axum::http::HeaderMap,
+    ApiJson(mut body): ApiJson<EmbedBody>,
 ) -> Response {
+    body.route = route_header(&headers);
     let start = Instant::now();
     let id = new_response_id();
     let result = async {
@@ -543,6 +578,9 @@ pub struct GenerateBody {
     pub stream: bool,
     /// Texts and token ids that end the generation; neither is part of the output.
     pub end_at: Option<EndAtBody>,
+    /// The `Switchyard-Route` header, when the request carried one (not a body field).
+    #[serde(skip)]
+    pub route: Option<String>,
 }
 
 /// `end_at` in a generate request.
@@ -667,8 +705,10 @@ impl GenerateBody {
 pub async fn generate(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
-    ApiJson(body): ApiJson<GenerateBody>,
+    headers: axum::http::HeaderMap,
+    ApiJson(mut body): ApiJson<GenerateBody>,
 ) -> Response {
+    body.route = route_header(&headers);
     let start = Instant::now();
     let id = new_response_id();
     let stream = body.stream;
@@ -846,7 +886,7 @@ async fn start_generation(
         ));
     }
     let (tx, rx) = mpsc::unbounded_channel();
-    let target = Target::of(&body.adapter, &body.split, &body.subject);
+    let target = Target::of(&body.adapter, &body.split, &body.subject, &body.route);
     // The most the generation can use: its prompt and max_tokens; what it does not generate is
     // given back when it ends.
     let tokens = (prompt_ids.len() + limit) as u64;

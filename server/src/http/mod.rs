@@ -69,6 +69,38 @@ pub struct AppState {
     /// Background threads whose death makes the server unfit for traffic (the store watcher):
     /// each is a name and a flag that is true while the thread runs.
     pub vital_threads: Vec<(&'static str, Arc<AtomicBool>)>,
+    /// This server's name among replicas (`server.replica`, else the host name): every response
+    /// carries it in the [`REPLICA_HEADER`] header.
+    pub replica: axum::http::HeaderValue,
+}
+
+/// The response header that names the replica that answered.
+pub const REPLICA_HEADER: &str = "Switchyard-Replica";
+
+/// The replica name a server goes by: the configured one, else the machine's host name.
+pub fn replica_name(configured: Option<&str>) -> axum::http::HeaderValue {
+    let name = configured.map(str::to_owned).unwrap_or_else(|| {
+        std::fs::read_to_string("/proc/sys/kernel/hostname")
+            .map(|h| h.trim().to_owned())
+            .unwrap_or_default()
+    });
+    axum::http::HeaderValue::from_str(&name)
+        .ok()
+        .filter(|_| !name.is_empty())
+        .unwrap_or_else(|| axum::http::HeaderValue::from_static("switchyard"))
+}
+
+/// Names the replica on every response, errors and panics included.
+async fn name_replica(
+    State(state): State<SharedState>,
+    req: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> axum::response::Response {
+    let mut response = next.run(req).await;
+    response
+        .headers_mut()
+        .insert(REPLICA_HEADER, state.replica.clone());
+    response
 }
 
 impl AppState {
@@ -151,6 +183,7 @@ pub fn router(state: SharedState) -> Router {
             )
         })
         .layer(from_fn(gate::catch_panic))
+        .layer(from_fn_with_state(state.clone(), name_replica))
         .with_state(state)
 }
 
