@@ -1,0 +1,276 @@
+//! Three replicas of the real `switchyard serve` sharing one adapter store, behind a real nginx
+//! running the committed `deploy/nginx/switchyard.conf` (only its addresses replaced): a publish
+//! through one replica is served by every replica, each adapter's requests land on one replica
+//! (the `Switchyard-Route` header hashed on a ring), every answer names its replica, a header that
+//! disagrees with the body is refused, and when the replica serving an adapter is killed with
+//! SIGKILL under load, nginx passes its requests to another and no client request fails. All
+//! traffic stays on 127.0.0.1; every loop is bounded in count and time.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use serde_json::{Value, json};
+use switchyard_tests::fixtures;
+use switchyard_tests::server::{Server, ServerSetup};
+
+/// nginx from Debian's package, as scripts/test unpacks it into target/tools (or one on PATH).
+fn nginx_bin() -> PathBuf {
+    let repo = Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap();
+    let unpacked = repo.join("target/tools/usr/sbin/nginx");
+    if unpacked.is_file() {
+        return unpacked;
+    }
+    for dir in std::env::var("PATH").unwrap_or_default().split(':') {
+        let p = Path::new(dir).join("nginx");
+        if p.is_file() {
+            return p;
+        }
+    }
+    panic!(
+        "nginx is not installed: scripts/test unpacks it (scripts/unpack-deb nginx nginx-common) into {}",
+        unpacked.display()
+    );
+}
+
+/// A free port on 127.0.0.1 (bound, then released for nginx to take).
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+/// nginx on the committed config, with `replicas` and `listen` as its addresses.
+struct Nginx {
+    child: Child,
+    url: String,
+    dir: tempfile::TempDir,
+}
+
+impl Nginx {
+    fn start(replicas: &[String]) -> Self {
+        let repo = Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap();
+        let committed = std::fs::read_to_string(repo.join("deploy/nginx/switchyard.conf")).unwrap();
+        let port = free_port();
+        let mut servers = replicas.iter();
+        let config: String = committed
+            .lines()
+            .map(|line| {
+                let t = line.trim_start();
+                if t.starts_with("server 127.0.0.1:707") {
+                    let addr = servers.next().expect("a replica per server line");
+                    line.replace(&t[7..21], addr)
+                } else if t == "listen 127.0.0.1:7070;" {
+                    line.replace("127.0.0.1:7070", &format!("127.0.0.1:{port}"))
+                } else {
+                    line.to_owned()
+                }
+            })
+            .collect::<Vec<_>>()
+            .join("\n");
+        assert!(servers.next().is_none(), "every replica has a server line");
+        let dir = tempfile::tempdir().unwrap();
+        let conf = dir.path().join("nginx.conf");
+        std::fs::write(&conf, config).unwrap();
+        let log = std::fs::File::create(dir.path().join("nginx.log")).unwrap();
+        let child = Command::new(nginx_bin())
+            .arg("-p")
+            .arg(dir.path())
+            .arg("-c")
+            .arg(&conf)
+            .arg("-e")
+            .arg(dir.path().join("error.log"))
+            .arg("-g")
+            .arg("daemon off;")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(log)
+            .spawn()
+            .expect("start nginx");
+        let nginx = Nginx {
+            child,
+            url: format!("http://127.0.0.1:{port}"),
+            dir,
+        };
+        let start = Instant::now();
+        while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
+            assert!(
+                start.elapsed() < Duration::from_secs(10),
+                "nginx did not listen: {}",
+                nginx.log()
+            );
+            std::thread::sleep(Duration::from_millis(20));
+        }
+        nginx
+    }
+
+    fn log(&self) -> String {
+        std::fs::read_to_string(self.dir.path().join("error.log")).unwrap_or_default()
+            + &std::fs::read_to_string(self.dir.path().join("nginx.log")).unwrap_or_default()
+    }
+}
+
+impl Drop for Nginx {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// One answer through the front: status, the replica that served it, the body.
+struct Answer {
+    status: u16,
+    replica: Option<String>,
+    body: Value,
+}
+
+fn embed(agent: &ureq::Agent, url: &str, adapter: &str, route: Option<&str>) -> Answer {
+    let mut req = agent
+        .post(format!("{url}/embed"))
+        .header("Content-Type", "application/json");
+    if let Some(r) = route {
+        req = req.header("Switchyard-Route", r);
+    }
+    let body = json!({"adapter": adapter, "texts": ["Is the rear wheel trued yet?"]});
+    match req.send(body.to_string()) {
+        Ok(mut resp) => {
+            let replica = resp
+                .headers()
+                .get("switchyard-replica")
+                .map(|v| v.to_str().unwrap().to_owned());
+            let status = resp.status().as_u16();
+            let text = resp.body_mut().read_to_string().unwrap_or_default();
+            Answer {
+                status,
+                replica,
+                body: serde_json::from_str(&text).unwrap_or(Value::String(text)),
+            }
+        }
+        Err(e) => Answer {
+            status: 0,
+            replica: None,
+            body: Value::String(e.to_string()),
+        },
+    }
+}
+
+fn agent() -> ureq::Agent {
+    ureq::Agent::config_builder()
+        .http_status_as_error(false)
+        .timeout_global(Some(Duration::from_secs(60)))
+        .build()
+        .into()
+}
+
+#[test]
+fn replicas_behind_nginx_keep_adapters_apart_and_survive_a_killed_replica() {
+    let store = tempfile::tempdir().unwrap();
+    let start = |name: &str| -> Server {
+        ServerSetup::encoder()
+            .set("server", "replica", &format!("{name:?}"))
+            .set("store", "dir", &format!("{:?}", store.path()))
+            .start()
+    };
+    let mut replicas: Vec<Server> = ["north-1", "north-2", "north-3"]
+        .iter()
+        .map(|n| start(n))
+        .collect();
+    let addrs: Vec<String> = replicas
+        .iter()
+        .map(|r| r.url("").trim_start_matches("http://").to_owned())
+        .collect();
+    let nginx = Nginx::start(&addrs);
+    let agent = agent();
+
+    // Twelve adapters, published through the first replica only.
+    let package = fixtures().join("minilm-qv-a.safetensors");
+    let names: Vec<String> = (0..12).map(|i| format!("route-{i}")).collect();
+    for name in &names {
+        replicas[0].publish(name, &package);
+    }
+    // Every replica serves each of them within 2 s (its store watcher polls every 250 ms).
+    for (r, replica) in replicas.iter().enumerate() {
+        for name in &names {
+            let begin = Instant::now();
+            loop {
+                let a = embed(&agent, &replica.url(""), name, None);
+                if a.status == 200 {
+                    break;
+                }
+                assert!(
+                    begin.elapsed() < Duration::from_secs(2),
+                    "replica {r} does not serve {name} 2 s after the publish: {}",
+                    a.body
+                );
+                std::thread::sleep(Duration::from_millis(50));
+            }
+        }
+    }
+
+    // Affinity: 10 requests per adapter through nginx, each adapter on one replica.
+    let mut placed: BTreeMap<&str, BTreeSet<String>> = BTreeMap::new();
+    for name in &names {
+        for _ in 0..10 {
+            let a = embed(&agent, &nginx.url, name, Some(name));
+            assert_eq!(a.status, 200, "{}; nginx: {}", a.body, nginx.log());
+            let replica = a.replica.expect("every answer names its replica");
+            placed.entry(name).or_default().insert(replica);
+        }
+    }
+    for (name, at) in &placed {
+        assert_eq!(at.len(), 1, "{name} was served by {at:?}");
+    }
+    let used: BTreeSet<&String> = placed.values().flatten().collect();
+    assert!(used.len() >= 2, "12 adapters all on {used:?}");
+
+    // The body decides: a header naming another adapter is refused, naming both.
+    let a = embed(&agent, &nginx.url, "route-0", Some("route-1"));
+    assert_eq!(a.status, 400, "{}", a.body);
+    assert_eq!(a.body["error"]["code"], "route_mismatch");
+    assert!(a.replica.is_some(), "an error names its replica too");
+
+    // Kill the replica that serves route-0 under load: no client request fails.
+    let victim_name = placed["route-0"].iter().next().unwrap().clone();
+    let victim = ["north-1", "north-2", "north-3"]
+        .iter()
+        .position(|n| *n == victim_name)
+        .unwrap();
+    let answers = std::thread::scope(|scope| {
+        let load = scope.spawn(|| {
+            let agent = self::agent();
+            let begin = Instant::now();
+            let mut answers = Vec::new();
+            while begin.elapsed() < Duration::from_secs(4) && answers.len() < 2_000 {
+                let name = &names[answers.len() % names.len()];
+                let a = embed(&agent, &nginx.url, name, Some(name));
+                answers.push((name.clone(), a.status, a.replica));
+            }
+            answers
+        });
+        std::thread::sleep(Duration::from_secs(1));
+        replicas[victim].signal_kill();
+        load.join().unwrap()
+    });
+    let failed: Vec<_> = answers.iter().filter(|(_, s, _)| *s != 200).collect();
+    assert!(
+        failed.is_empty(),
+        "{} of {} requests failed during the kill: {:?}; nginx: {}",
+        failed.len(),
+        answers.len(),
+        &failed[..failed.len().min(5)],
+        nginx.log()
+    );
+    // After the kill route-0 is served by another replica.
+    let after = embed(&agent, &nginx.url, "route-0", Some("route-0"));
+    assert_eq!(after.status, 200);
+    assert_ne!(after.replica.as_deref(), Some(victim_name.as_str()));
+    replicas[victim].kill();
+    assert!(
+        answers.len() > 20,
+        "the load ran: {} requests",
+        answers.len()
+    );
+}
