@@ -259,6 +259,11 @@ pub struct RunArgs {
     /// Seed of the schedule and of created adapters.
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
+    /// Send each request's adapter in the Switchyard-Route header too (for a front such as
+    /// deploy/nginx/switchyard.conf that routes by adapter); the report then says how each
+    /// adapter's requests spread over the replicas that answered.
+    #[arg(long)]
+    pub route_header: bool,
     /// Folder for report.json, report.html and the charts.
     #[arg(long, default_value = "load-report")]
     pub out: PathBuf,
@@ -421,7 +426,8 @@ impl RunArgs {
 pub fn run(args: &RunArgs, command_line: &str) -> anyhow::Result<Report> {
     let targets = args.target_names();
     let zipf = Zipf::new(targets.len(), args.zipf).map_err(anyhow::Error::msg)?;
-    let client = Client::new(&args.url, args.key.clone(), args.admin_token.clone())?;
+    let client = Client::new(&args.url, args.key.clone(), args.admin_token.clone())?
+        .with_route_header(args.route_header);
     client.check_ready()?;
     if args.create_adapters {
         let model = args
@@ -492,6 +498,15 @@ pub fn run(args: &RunArgs, command_line: &str) -> anyhow::Result<Report> {
         .collect();
     if scenario.records.is_empty() {
         bail!("no request was measured: the warm-up took the whole run");
+    }
+    if let Some(spread) = scenario.replica_spread() {
+        eprintln!(
+            "replicas: {} answered, {} of {} adapters each on one replica, {} of requests on their adapter's most used replica",
+            spread["requests_by_replica"],
+            spread["adapters_on_one_replica"],
+            spread["adapters"],
+            spread["requests_on_their_adapters_top_replica"]
+        );
     }
     let pacing = match workload.pacing {
         Pacing::Closed { clients } => format!("a closed loop of {clients} clients"),

@@ -51,12 +51,17 @@ pub struct Answer {
     pub error: Option<String>,
     /// The `Retry-After` header of a refusal, in whole seconds.
     pub retry_after_s: Option<u64>,
+    /// The `Switchyard-Replica` header: which replica answered (behind a front of several).
+    pub replica: Option<String>,
 }
 
 /// A blocking HTTP client of one server, with the credentials of a run.
 #[derive(Debug, Clone)]
 pub struct Client {
     url: String,
+    /// Send each inference request's target in the `Switchyard-Route` header too, for a front
+    /// that routes by adapter.
+    route_header: bool,
     key: Option<String>,
     admin_token: Option<String>,
     agent: ureq::Agent,
@@ -81,10 +86,17 @@ impl Client {
             .into();
         Ok(Self {
             url,
+            route_header: false,
             key,
             admin_token,
             agent,
         })
+    }
+
+    /// The same client, sending (or not) the `Switchyard-Route` header.
+    pub fn with_route_header(mut self, on: bool) -> Self {
+        self.route_header = on;
+        self
     }
 
     pub fn url(&self) -> &str {
@@ -124,19 +136,26 @@ impl Client {
         if let Some(key) = &self.key {
             request = request.header("Authorization", format!("Bearer {key}"));
         }
+        if self.route_header {
+            request = request.header("Switchyard-Route", target);
+        }
         let result = request.send(body.to_string()).and_then(|mut resp| {
             let status = resp.status().as_u16();
-            let retry_after = resp
-                .headers()
-                .get("retry-after")
-                .and_then(|v| v.to_str().ok())
-                .and_then(|v| v.trim().parse().ok());
+            let header = |name: &str| {
+                resp.headers()
+                    .get(name)
+                    .and_then(|v| v.to_str().ok())
+                    .map(str::to_owned)
+            };
+            let retry_after = header("retry-after").and_then(|v| v.trim().parse().ok());
+            let replica = header("switchyard-replica");
             let text = resp.body_mut().read_to_string()?;
-            Ok((status, text, retry_after))
+            Ok((status, text, retry_after, replica))
         });
         match result {
-            Ok((status, text, retry_after_s)) => Answer {
+            Ok((status, text, retry_after_s, replica)) => Answer {
                 retry_after_s,
+                replica,
                 ..read_answer(status, &text)
             },
             Err(e) => Answer {
@@ -147,6 +166,7 @@ impl Client {
                 merged: None,
                 error: Some(e.to_string()),
                 retry_after_s: None,
+                replica: None,
             },
         }
     }
@@ -227,6 +247,7 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
             merged: body["merged"].as_bool(),
             error: None,
             retry_after_s: None,
+            replica: None,
         }
     } else {
         Answer {
@@ -241,6 +262,7 @@ pub fn read_answer(status: u16, text: &str) -> Answer {
                     .map_or_else(|| text.chars().take(200).collect(), str::to_owned),
             ),
             retry_after_s: None,
+            replica: None,
         }
     }
 }
@@ -265,6 +287,7 @@ mod tests {
                 merged: Some(true),
                 error: None,
                 retry_after_s: None,
+                replica: None,
             }
         );
         let refused = read_answer(

@@ -62,6 +62,8 @@ pub struct Record {
     pub error: Option<String>,
     /// The `Retry-After` of a refusal, in whole seconds.
     pub retry_after_s: Option<u64>,
+    /// The replica that answered, when the answer named one.
+    pub replica: Option<String>,
     pub warmup: bool,
 }
 
@@ -110,6 +112,7 @@ impl Shared {
             merged: answer.merged,
             error: answer.error,
             retry_after_s: answer.retry_after_s,
+            replica: answer.replica,
             warmup,
         };
         if !warmup {

@@ -376,6 +376,7 @@ mod tests {
             merged: Some(false),
             error: None,
             retry_after_s: None,
+            replica: None,
             warmup: false,
         };
         let run = RunRecords {

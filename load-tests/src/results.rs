@@ -96,6 +96,45 @@ impl Scenario {
             .then(|| flags.iter().filter(|&&m| m).count() as f64 / flags.len() as f64)
     }
 
+    /// How answered requests spread over replicas, when answers named them (a run through a
+    /// front of several): requests per replica, and per adapter the share of its requests that
+    /// its most used replica served (the adapter affinity). `None` when no answer named one.
+    pub fn replica_spread(&self) -> Option<Value> {
+        let mut by_replica: BTreeMap<&str, usize> = BTreeMap::new();
+        let mut by_target: BTreeMap<usize, BTreeMap<&str, usize>> = BTreeMap::new();
+        for r in self.records.iter().filter(|r| r.ok()) {
+            let Some(replica) = r.replica.as_deref() else {
+                continue;
+            };
+            *by_replica.entry(replica).or_default() += 1;
+            *by_target
+                .entry(r.target)
+                .or_default()
+                .entry(replica)
+                .or_default() += 1;
+        }
+        if by_replica.is_empty() {
+            return None;
+        }
+        let (mut on_top, mut total) = (0usize, 0usize);
+        let mut shares: Vec<f64> = Vec::new();
+        for counts in by_target.values() {
+            let n: usize = counts.values().sum();
+            let top = counts.values().copied().max().unwrap_or(0);
+            on_top += top;
+            total += n;
+            shares.push(top as f64 / n as f64);
+        }
+        shares.sort_by(f64::total_cmp);
+        Some(json!({
+            "requests_by_replica": by_replica,
+            "adapters": by_target.len(),
+            "adapters_on_one_replica": shares.iter().filter(|&&s| s == 1.0).count(),
+            "least_top_replica_share": shares.first().map(|s| round3(*s)),
+            "requests_on_their_adapters_top_replica": round3(on_top as f64 / total as f64),
+        }))
+    }
+
     pub fn to_json(&self) -> Value {
         let errors: serde_json::Map<String, Value> = self
             .errors()
@@ -122,6 +161,7 @@ impl Scenario {
             "swap_ms_from_answers": LatencySummary::of(&self.swap_ms()).map(|l| l.to_json()),
             "swap_from_metrics": swap,
             "merged_share": self.merged_share(),
+            "replicas": self.replica_spread(),
             "latency_cdf": curve,
         })
     }
@@ -145,6 +185,7 @@ mod tests {
             merged: (status == 200).then_some(sent_s > 1.5),
             error: None,
             retry_after_s: None,
+            replica: None,
             warmup,
         }
     }

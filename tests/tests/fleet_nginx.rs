@@ -232,6 +232,65 @@ fn replicas_behind_nginx_keep_adapters_apart_and_survive_a_killed_replica() {
     assert_eq!(a.body["error"]["code"], "route_mismatch");
     assert!(a.replica.is_some(), "an error names its replica too");
 
+    // The load generator through the front: 100 adapters at Zipf 1.0, each request routed by
+    // its adapter. At least 95% of every adapter's requests land on one replica, and the factor
+    // bytes the run brought in, summed over the replicas, stay within 1.2x those adapters' bytes
+    // held once (they are not loaded everywhere).
+    let factors = |r: &Server| -> f64 {
+        let page = r
+            .get("/metrics", switchyard_tests::server::Auth::Admin)
+            .body;
+        page.lines()
+            .find_map(|l| l.strip_prefix("switchyard_resident_bytes{tier=\"factors\"} "))
+            .map_or(0.0, |v| v.trim().parse().unwrap())
+    };
+    let before: f64 = replicas.iter().map(factors).sum();
+    let out = tempfile::tempdir().unwrap();
+    let model = switchyard_tests::base_model_dir();
+    let run = Command::new(switchyard_tests::switchyard_load_bin())
+        .args(["run", "--url", &nginx.url, "--route-header"])
+        .args(["--admin-token", switchyard_tests::server::ADMIN_TOKEN])
+        .args(["--adapter-prefix", "fleet-", "--adapter-count", "100"])
+        .args(["--create-adapters", "--model", model.to_str().unwrap()])
+        .args(["--zipf", "1.0", "--texts", "1", "--clients", "2"])
+        .args(["--count", "600", "--warmup", "0"])
+        .arg("--out")
+        .arg(out.path())
+        .output()
+        .expect("run switchyard-load");
+    assert!(
+        run.status.success(),
+        "switchyard-load run failed:\n{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    let report: Value =
+        serde_json::from_str(&std::fs::read_to_string(out.path().join("report.json")).unwrap())
+            .unwrap();
+    let scenario = &report["scenarios"][0];
+    assert_eq!(scenario["errors_by_status"], json!({}), "{scenario}");
+    let spread = &scenario["replicas"];
+    let least = spread["least_top_replica_share"].as_f64().unwrap();
+    assert!(
+        least >= 0.95,
+        "an adapter's requests spread over replicas: {spread}"
+    );
+    assert_eq!(
+        spread["requests_by_replica"].as_object().unwrap().len(),
+        3,
+        "{spread}"
+    );
+    let touched = spread["adapters"].as_u64().unwrap() as f64;
+    // Rank 8 on attn.q and attn.v of MiniLM: `switchyard plan` gives 294,912 bytes each.
+    let brought = replicas.iter().map(factors).sum::<f64>() - before;
+    assert!(
+        brought <= 1.2 * touched * 294_912.0,
+        "{brought} factor bytes for {touched} adapters: loaded on several replicas"
+    );
+    eprintln!(
+        "fleet: {spread}; factor bytes brought in {brought} for {touched} adapters ({:.3} of once)",
+        brought / (touched * 294_912.0)
+    );
+
     // Kill the replica that serves route-0 under load: no client request fails.
     let victim_name = placed["route-0"].iter().next().unwrap().clone();
     let victim = ["north-1", "north-2", "north-3"]

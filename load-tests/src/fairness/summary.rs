@@ -454,6 +454,7 @@ mod tests {
             merged: None,
             error: error.map(str::to_owned),
             retry_after_s,
+            replica: None,
             warmup: false,
         }
     }

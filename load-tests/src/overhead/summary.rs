@@ -229,6 +229,7 @@ mod tests {
                 merged: Some(false),
                 error: None,
                 retry_after_s: None,
+                replica: None,
                 warmup: false,
             })
             .collect();
