@@ -1,16 +1,18 @@
-//! The experiment store on a real SQLite file: split edits keep or start arm records by what the
+//! The experiment stores on a real SQLite file and on a real PostgreSQL server (one suite, run
+//! against both, each test on a fresh cluster): split edits keep or start arm records by what the
 //! arm serves, a deleted and recreated split inherits nothing, everything survives reopening the
-//! file, outcomes count days later until their response record is pruned, another tenant's
-//! outcome is refused as an unknown one, and an earlier version's `splits.json` moves in once.
-
-use std::sync::Arc;
+//! store, outcomes count days later until their response record is pruned, another tenant's
+//! outcome is refused as an unknown one, outcomes and response records written at once through
+//! two connections (two replicas) are all counted, and an earlier version's `splits.json` moves
+//! in once.
 
 use switchyard_server::experiments::legacy;
 use switchyard_server::experiments::{
-    ExperimentStore, OutcomeRefused, OutcomeReport, OutcomeValue, ServedResponse, SplitState,
-    SqliteStore,
+    ExperimentStore, OutcomeRefused, OutcomeReport, OutcomeValue, PostgresStore, ServedResponse,
+    SplitState, SqliteStore,
 };
 use switchyard_server::splits::{ArmSpec, SplitSpec};
+use switchyard_tests::postgres::Postgres;
 
 const DAY_MS: i64 = 24 * 3600 * 1000;
 /// A fixed "now", so the tests move time by hand.
@@ -36,8 +38,54 @@ fn open(dir: &tempfile::TempDir) -> SqliteStore {
     SqliteStore::open(&dir.path().join("experiments.sqlite")).unwrap()
 }
 
+/// Where a test's store lives: a SQLite file in a folder, or a fresh PostgreSQL cluster.
+enum Place {
+    Sqlite(tempfile::TempDir),
+    Postgres(Postgres),
+}
+
+impl Place {
+    fn sqlite() -> Self {
+        Place::Sqlite(tempfile::tempdir().unwrap())
+    }
+
+    fn postgres() -> Self {
+        Place::Postgres(Postgres::start())
+    }
+
+    /// A new connection to the store (each one is what a replica holds).
+    fn open(&self) -> Box<dyn ExperimentStore> {
+        match self {
+            Place::Sqlite(dir) => Box::new(open(dir)),
+            Place::Postgres(pg) => Box::new(PostgresStore::open(&pg.url()).unwrap()),
+        }
+    }
+}
+
+/// `#[test]`s running `body` on SQLite and on PostgreSQL.
+macro_rules! on_both {
+    ($body:ident, $sqlite:ident, $postgres:ident) => {
+        #[test]
+        fn $sqlite() {
+            $body(&Place::sqlite());
+        }
+
+        #[test]
+        fn $postgres() {
+            $body(&Place::postgres());
+        }
+    };
+}
+
 /// Records that arm `arm` (by position) of `split` answered `id` for `tenant` at `served_ms`.
-fn serve(store: &SqliteStore, split: &str, arm: usize, id: &str, tenant: &str, served_ms: i64) {
+fn serve(
+    store: &dyn ExperimentStore,
+    split: &str,
+    arm: usize,
+    id: &str,
+    tenant: &str,
+    served_ms: i64,
+) {
     let state = store.split(split).unwrap().unwrap();
     store
         .record_responses(&[ServedResponse {
@@ -51,7 +99,7 @@ fn serve(store: &SqliteStore, split: &str, arm: usize, id: &str, tenant: &str, s
 }
 
 fn outcome(
-    store: &SqliteStore,
+    store: &dyn ExperimentStore,
     id: &str,
     tenant: &str,
     value: OutcomeValue,
@@ -66,14 +114,18 @@ fn outcome(
         .map(|r| (r.split, r.arm))
 }
 
-fn state(store: &SqliteStore, split: &str) -> SplitState {
+fn state(store: &dyn ExperimentStore, split: &str) -> SplitState {
     store.split(split).unwrap().unwrap()
 }
 
-#[test]
-fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
-    let dir = tempfile::tempdir().unwrap();
-    let store = open(&dir);
+on_both!(
+    split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes,
+    split_edits_keep_records_on_sqlite,
+    split_edits_keep_records_on_postgres
+);
+
+fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes(place: &Place) {
+    let store = place.open();
     let first = store
         .put_split(
             &spec(
@@ -87,11 +139,11 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
         )
         .unwrap();
     assert!(first.created);
-    serve(&store, "fork-test", 0, "r-1", "north", NOW);
-    serve(&store, "fork-test", 1, "r-2", "north", NOW);
-    serve(&store, "fork-test", 1, "r-3", "north", NOW);
+    serve(&*store, "fork-test", 0, "r-1", "north", NOW);
+    serve(&*store, "fork-test", 1, "r-2", "north", NOW);
+    serve(&*store, "fork-test", 1, "r-3", "north", NOW);
     assert_eq!(
-        outcome(&store, "r-2", "north", OutcomeValue::Number(4.0)).unwrap(),
+        outcome(&*store, "r-2", "north", OutcomeValue::Number(4.0)).unwrap(),
         ("fork-test".to_owned(), "candidate".to_owned())
     );
 
@@ -112,7 +164,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
     assert_eq!(reweighted.record.generation, first.record.generation);
     assert_eq!(reweighted.record.arms[0].id, first.record.arms[1].id);
     assert_eq!(reweighted.record.arms[1].id, first.record.arms[0].id);
-    let s = state(&store, "fork-test");
+    let s = state(&*store, "fork-test");
     assert_eq!(
         (s.arms[0].requests, s.arms[0].numeric.count()),
         (2, 1),
@@ -134,7 +186,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
         )
         .unwrap();
     assert_ne!(changed.record.arms[0].id, first.record.arms[1].id);
-    let s = state(&store, "fork-test");
+    let s = state(&*store, "fork-test");
     assert_eq!(s.arms[0].requests, 0, "counts do not carry over: {s:?}");
     assert_eq!(s.arms[0].numeric.count(), 0);
     assert_eq!(s.replaced.len(), 1);
@@ -146,10 +198,10 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
 
     // r-3 was answered by the old candidate record: its outcome lands there, not on the new one.
     assert_eq!(
-        outcome(&store, "r-3", "north", OutcomeValue::Number(2.0)).unwrap(),
+        outcome(&*store, "r-3", "north", OutcomeValue::Number(2.0)).unwrap(),
         ("fork-test".to_owned(), "candidate".to_owned())
     );
-    let s = state(&store, "fork-test");
+    let s = state(&*store, "fork-test");
     assert_eq!(s.arms[0].numeric.count(), 0);
     assert_eq!(s.replaced[0].numeric.count(), 2);
     assert_eq!(s.replaced[0].numeric.mean(), Some(3.0));
@@ -175,20 +227,24 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes() {
             NOW,
         )
         .unwrap();
-    let s = state(&store, "fork-test");
+    let s = state(&*store, "fork-test");
     assert_ne!(s.arms[0].arm.id, changed.record.arms[0].id);
     assert_eq!(s.replaced.len(), 2);
 }
 
-#[test]
-fn a_deleted_and_recreated_split_inherits_no_responses() {
-    let dir = tempfile::tempdir().unwrap();
-    let store = open(&dir);
+on_both!(
+    a_deleted_and_recreated_split_inherits_no_responses,
+    a_recreated_split_inherits_nothing_on_sqlite,
+    a_recreated_split_inherits_nothing_on_postgres
+);
+
+fn a_deleted_and_recreated_split_inherits_no_responses(place: &Place) {
+    let store = place.open();
     let definition = spec("gears", vec![arm("only", "base", None, 1.0)]);
     let old = store.put_split(&definition, NOW).unwrap();
-    serve(&store, "gears", 0, "r-old", "north", NOW);
-    serve(&store, "gears", 0, "r-old-2", "north", NOW);
-    outcome(&store, "r-old", "north", OutcomeValue::YesNo(true)).unwrap();
+    serve(&*store, "gears", 0, "r-old", "north", NOW);
+    serve(&*store, "gears", 0, "r-old-2", "north", NOW);
+    outcome(&*store, "r-old", "north", OutcomeValue::YesNo(true)).unwrap();
 
     assert!(store.delete_split("gears").unwrap());
     assert!(!store.delete_split("gears").unwrap());
@@ -196,11 +252,11 @@ fn a_deleted_and_recreated_split_inherits_no_responses() {
     assert!(new.created);
     assert!(new.record.generation > old.record.generation);
     assert_ne!(new.record.arms[0].id, old.record.arms[0].id);
-    let s = state(&store, "gears");
+    let s = state(&*store, "gears");
     assert_eq!((s.arms[0].requests, s.arms[0].yes_no.count()), (0, 0));
     assert!(s.replaced.is_empty());
     assert!(matches!(
-        outcome(&store, "r-old-2", "north", OutcomeValue::YesNo(true)),
+        outcome(&*store, "r-old-2", "north", OutcomeValue::YesNo(true)),
         Err(OutcomeRefused::UnknownResponse)
     ));
     // A response assigned before the delete but written after it is dropped, not attached to the
@@ -215,10 +271,10 @@ fn a_deleted_and_recreated_split_inherits_no_responses() {
         }])
         .unwrap();
     assert!(matches!(
-        outcome(&store, "r-late", "north", OutcomeValue::YesNo(true)),
+        outcome(&*store, "r-late", "north", OutcomeValue::YesNo(true)),
         Err(OutcomeRefused::UnknownResponse)
     ));
-    assert_eq!(state(&store, "gears").arms[0].requests, 0);
+    assert_eq!(state(&*store, "gears").arms[0].requests, 0);
 }
 
 #[test]
@@ -254,64 +310,78 @@ fn splits_outcomes_and_response_records_survive_reopening_the_database() {
     assert_eq!(state(&store, "tone").arms[0].numeric.mean(), Some(2.5));
 }
 
-#[test]
-fn outcomes_days_after_the_answer_still_count_until_the_record_is_pruned() {
-    let dir = tempfile::tempdir().unwrap();
-    let store = open(&dir);
+on_both!(
+    outcomes_days_after_the_answer_still_count_until_the_record_is_pruned,
+    late_outcomes_count_until_pruned_on_sqlite,
+    late_outcomes_count_until_pruned_on_postgres
+);
+
+fn outcomes_days_after_the_answer_still_count_until_the_record_is_pruned(place: &Place) {
+    let store = place.open();
     store
         .put_split(&spec("late", vec![arm("only", "base", None, 1.0)]), NOW)
         .unwrap();
-    serve(&store, "late", 0, "r-10-days", "north", NOW - 10 * DAY_MS);
-    serve(&store, "late", 0, "r-40-days", "north", NOW - 40 * DAY_MS);
-    serve(&store, "late", 0, "r-2-days", "north", NOW - 2 * DAY_MS);
+    serve(&*store, "late", 0, "r-10-days", "north", NOW - 10 * DAY_MS);
+    serve(&*store, "late", 0, "r-40-days", "north", NOW - 40 * DAY_MS);
+    serve(&*store, "late", 0, "r-2-days", "north", NOW - 2 * DAY_MS);
     // Kept for 30 days: only the 40-day-old record goes.
     assert_eq!(store.prune_responses(NOW - 30 * DAY_MS).unwrap(), 1);
-    outcome(&store, "r-10-days", "north", OutcomeValue::YesNo(true)).unwrap();
+    outcome(&*store, "r-10-days", "north", OutcomeValue::YesNo(true)).unwrap();
     assert!(matches!(
-        outcome(&store, "r-40-days", "north", OutcomeValue::YesNo(true)),
+        outcome(&*store, "r-40-days", "north", OutcomeValue::YesNo(true)),
         Err(OutcomeRefused::UnknownResponse)
     ));
     // Pruning a record keeps the outcomes already in the tally.
     assert_eq!(store.prune_responses(NOW - DAY_MS).unwrap(), 2);
-    let s = state(&store, "late");
+    let s = state(&*store, "late");
     assert_eq!((s.arms[0].requests, s.arms[0].yes_no.count()), (3, 1));
     assert!(matches!(
-        outcome(&store, "r-2-days", "north", OutcomeValue::YesNo(true)),
+        outcome(&*store, "r-2-days", "north", OutcomeValue::YesNo(true)),
         Err(OutcomeRefused::UnknownResponse)
     ));
 }
 
-#[test]
-fn another_tenants_outcome_is_refused_as_an_unknown_response() {
-    let dir = tempfile::tempdir().unwrap();
-    let store = open(&dir);
+on_both!(
+    another_tenants_outcome_is_refused_as_an_unknown_response,
+    another_tenants_outcome_is_refused_on_sqlite,
+    another_tenants_outcome_is_refused_on_postgres
+);
+
+fn another_tenants_outcome_is_refused_as_an_unknown_response(place: &Place) {
+    let store = place.open();
     store
         .put_split(&spec("shared", vec![arm("only", "base", None, 1.0)]), NOW)
         .unwrap();
-    serve(&store, "shared", 0, "r-north", "north", NOW);
+    serve(&*store, "shared", 0, "r-north", "north", NOW);
     assert!(matches!(
-        outcome(&store, "r-north", "south", OutcomeValue::Number(1.0)),
+        outcome(&*store, "r-north", "south", OutcomeValue::Number(1.0)),
         Err(OutcomeRefused::UnknownResponse)
     ));
     assert!(matches!(
-        outcome(&store, "r-nobody", "south", OutcomeValue::Number(1.0)),
+        outcome(&*store, "r-nobody", "south", OutcomeValue::Number(1.0)),
         Err(OutcomeRefused::UnknownResponse)
     ));
-    outcome(&store, "r-north", "north", OutcomeValue::Number(1.0)).unwrap();
+    outcome(&*store, "r-north", "north", OutcomeValue::Number(1.0)).unwrap();
     // A value beyond the bound is refused and uses nothing up.
-    serve(&store, "shared", 0, "r-big", "north", NOW);
+    serve(&*store, "shared", 0, "r-big", "north", NOW);
     assert!(matches!(
-        outcome(&store, "r-big", "north", OutcomeValue::Number(2e15)),
+        outcome(&*store, "r-big", "north", OutcomeValue::Number(2e15)),
         Err(OutcomeRefused::Invalid(_))
     ));
-    outcome(&store, "r-big", "north", OutcomeValue::Number(2.0)).unwrap();
-    assert_eq!(state(&store, "shared").arms[0].numeric.count(), 2);
+    outcome(&*store, "r-big", "north", OutcomeValue::Number(2.0)).unwrap();
+    assert_eq!(state(&*store, "shared").arms[0].numeric.count(), 2);
 }
 
-#[test]
-fn concurrent_outcomes_and_response_records_are_all_counted() {
-    let dir = tempfile::tempdir().unwrap();
-    let store = Arc::new(open(&dir));
+on_both!(
+    concurrent_outcomes_and_response_records_are_all_counted,
+    concurrent_writes_all_count_on_sqlite,
+    concurrent_writes_all_count_on_postgres
+);
+
+/// Four threads over two connections (two replicas on one store).
+fn concurrent_outcomes_and_response_records_are_all_counted(place: &Place) {
+    let stores = [place.open(), place.open()];
+    let store = stores[0].as_ref();
     store
         .put_split(
             &spec(
@@ -321,10 +391,10 @@ fn concurrent_outcomes_and_response_records_are_all_counted() {
             NOW,
         )
         .unwrap();
-    let s = state(&store, "busy");
+    let s = state(store, "busy");
     std::thread::scope(|scope| {
         for t in 0..4 {
-            let (store, s) = (&store, &s);
+            let (store, s) = (stores[t % 2].as_ref(), &s);
             scope.spawn(move || {
                 for i in 0..50 {
                     let arm = &s.arms[i % 2].arm;
@@ -343,7 +413,7 @@ fn concurrent_outcomes_and_response_records_are_all_counted() {
             });
         }
     });
-    let s = state(&store, "busy");
+    let s = state(store, "busy");
     for (index, line) in s.arms.iter().enumerate() {
         assert_eq!(line.requests, 100, "arm {index}");
         assert_eq!(line.numeric.count(), 100, "arm {index}");

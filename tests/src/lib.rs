@@ -5,6 +5,7 @@
 //! embeddings and the closeness rule.
 
 pub mod embeddings;
+pub mod postgres;
 pub mod server;
 
 use std::path::{Path, PathBuf};

@@ -20,7 +20,7 @@ use switchyard_config::{LogFormat, Overrides, Settings};
 use switchyard_kernels::WeightFormat;
 
 use crate::engine::{Backbone, Engine, EngineConfig};
-use crate::experiments::{Experiments, SqliteStore, legacy};
+use crate::experiments::{Experiments, PostgresStore, SqliteStore, legacy, postgres};
 use crate::http::auth::{Tenants, tenant_limits};
 use crate::http::error::ApiError;
 use crate::http::{AppState, Bounds, SharedState, router};
@@ -345,18 +345,33 @@ fn yield_to_the_engine(niceness: Option<i32>) {
     let _ = niceness;
 }
 
+/// How often a replica reads the split definitions of a shared experiment database again.
+const SHARED_RELOAD: Duration = Duration::from_secs(1);
+
 /// Opens the experiment database (moving an earlier version's `splits.json` into it once) and
 /// loads the splits.
 fn open_experiments(settings: &Settings, store_dir: &Path) -> anyhow::Result<Experiments> {
     let path = settings
         .experiments_database_path()
         .unwrap_or_else(|| store_dir.join("experiments.sqlite"));
+    let keep = Duration::from_secs(settings.keep_responses_days * 24 * 3600);
+    if let Some(url) = path.to_str().filter(|p| postgres::is_postgres_url(p)) {
+        // Shared by the replicas of a fleet: definitions are read again every second.
+        let store = PostgresStore::open(url).with_context(|| {
+            format!(
+                "opening the experiment database {}",
+                postgres::without_password(url)
+            )
+        })?;
+        legacy::migrate(store_dir, &store)?;
+        tracing::info!(database = %store.shown(), keep_responses_days = settings.keep_responses_days, "experiments opened (shared; split definitions read again every second)");
+        return Experiments::open(Arc::new(store), Some(keep), Some(SHARED_RELOAD));
+    }
     let store = SqliteStore::open(&path)
         .with_context(|| format!("opening the experiment database {}", path.display()))?;
     legacy::migrate(store_dir, &store)?;
-    let keep = Duration::from_secs(settings.keep_responses_days * 24 * 3600);
     tracing::info!(database = %path.display(), keep_responses_days = settings.keep_responses_days, "experiments opened");
-    Experiments::open(Arc::new(store), Some(keep))
+    Experiments::open(Arc::new(store), Some(keep), None)
 }
 
 fn rayon_threads(n: usize) -> anyhow::Result<()> {

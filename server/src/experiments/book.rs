@@ -83,10 +83,23 @@ pub struct EditGuard<'a>(#[allow(dead_code)] MutexGuard<'a, ()>);
 /// The splits of this server.
 pub struct Experiments {
     store: Arc<dyn ExperimentStore>,
-    live: RwLock<BTreeMap<String, LiveSplit>>,
-    edits: Mutex<()>,
+    live: Arc<RwLock<BTreeMap<String, LiveSplit>>>,
+    edits: Arc<Mutex<()>>,
     log: ResponseLog,
     pruner: Option<Pruner>,
+    refresher: Option<Pruner>,
+}
+
+/// The split definitions in `store`, as assignment needs them.
+fn load_live(store: &dyn ExperimentStore) -> anyhow::Result<BTreeMap<String, LiveSplit>> {
+    let mut live = BTreeMap::new();
+    for state in store.splits()? {
+        let record = state.record();
+        let split = LiveSplit::from_record(&record)
+            .map_err(|e| anyhow::anyhow!("stored split {:?}: {e}", record.name))?;
+        live.insert(record.name, split);
+    }
+    Ok(live)
 }
 
 impl std::fmt::Debug for Experiments {
@@ -97,28 +110,40 @@ impl std::fmt::Debug for Experiments {
 
 impl Experiments {
     /// Loads the splits of `store`, starts the response log, and (with `keep_responses`) prunes
-    /// response records older than that now and every hour.
+    /// response records older than that now and every hour. With `reload_every` (a store that
+    /// other replicas write too) the definitions are read again at that interval, so a split
+    /// created or edited through another replica is assigned here as well.
     pub fn open(
         store: Arc<dyn ExperimentStore>,
         keep_responses: Option<Duration>,
+        reload_every: Option<Duration>,
     ) -> anyhow::Result<Self> {
-        let mut live = BTreeMap::new();
-        for state in store.splits()? {
-            let record = state.record();
-            let split = LiveSplit::from_record(&record)
-                .map_err(|e| anyhow::anyhow!("stored split {:?}: {e}", record.name))?;
-            live.insert(record.name, split);
-        }
+        let live = Arc::new(RwLock::new(load_live(store.as_ref())?));
+        let edits = Arc::new(Mutex::new(()));
         let log = ResponseLog::start(store.clone())?;
         let pruner = keep_responses
             .map(|keep| Pruner::start(store.clone(), keep))
             .transpose()?;
+        let refresher = reload_every
+            .map(|every| {
+                let (store, live, edits) = (store.clone(), live.clone(), edits.clone());
+                Pruner::every("switchyard-splits", every, move || {
+                    // Under the edit lock, so a local edit is never overwritten by an older read.
+                    let _edit = edits.lock();
+                    match load_live(store.as_ref()) {
+                        Ok(fresh) => *live.write() = fresh,
+                        Err(e) => tracing::warn!(error = %e, "reading the shared splits failed; keeping the last ones"),
+                    }
+                })
+            })
+            .transpose()?;
         Ok(Self {
             store,
-            live: RwLock::new(live),
-            edits: Mutex::new(()),
+            live,
+            edits,
             log,
             pruner,
+            refresher,
         })
     }
 
@@ -239,10 +264,14 @@ impl Drop for Experiments {
         if let Some(pruner) = self.pruner.take() {
             pruner.stop();
         }
+        if let Some(refresher) = self.refresher.take() {
+            refresher.stop();
+        }
     }
 }
 
-/// The background thread that prunes old response records.
+/// A background thread: the one that prunes old response records, or the one that reads the
+/// shared split definitions again.
 struct Pruner {
     stop: mpsc::Sender<()>,
     thread: JoinHandle<()>,
@@ -267,6 +296,29 @@ impl Pruner {
                     ) {
                         return;
                     }
+                }
+            })?;
+        Ok(Self { stop, thread })
+    }
+
+    /// A thread named `name` that runs `work` now and then every `every` until stopped.
+    fn every(
+        name: &str,
+        every: Duration,
+        mut work: impl FnMut() + Send + 'static,
+    ) -> std::io::Result<Self> {
+        let (stop, stopped) = mpsc::channel::<()>();
+        let thread = std::thread::Builder::new()
+            .name(name.into())
+            .spawn(move || {
+                loop {
+                    if !matches!(
+                        stopped.recv_timeout(every),
+                        Err(mpsc::RecvTimeoutError::Timeout)
+                    ) {
+                        return;
+                    }
+                    work();
                 }
             })?;
         Ok(Self { stop, thread })

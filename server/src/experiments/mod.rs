@@ -27,11 +27,13 @@
 pub mod arms;
 pub mod book;
 pub mod legacy;
+pub mod postgres;
 pub mod records;
 pub mod responses;
 pub mod sqlite;
 
 pub use book::{Experiments, SplitEditError};
+pub use postgres::PostgresStore;
 pub use records::{
     ArmRecord, ArmTally, OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome,
     ServedResponse, SplitRecord, SplitState,
