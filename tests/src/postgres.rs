@@ -11,6 +11,7 @@ use std::time::{Duration, Instant};
 pub struct Postgres {
     child: Child,
     port: u16,
+    bin: PathBuf,
     dir: tempfile::TempDir,
 }
 
@@ -97,7 +98,12 @@ impl Postgres {
             .stderr(log)
             .spawn()
             .expect("start postgres");
-        let pg = Postgres { child, port, dir };
+        let pg = Postgres {
+            child,
+            port,
+            bin,
+            dir,
+        };
         let begin = Instant::now();
         loop {
             if let Ok(mut c) = postgres::Client::connect(&pg.url_of("postgres"), postgres::NoTls) {
@@ -137,7 +143,15 @@ impl Postgres {
 
 impl Drop for Postgres {
     fn drop(&mut self) {
-        // SIGTERM is PostgreSQL's "smart" shutdown; a test needs no more care than SIGKILL.
+        // Through pg_ctl: under root the child is `runuser`, and killing it leaves the server
+        // running. An immediate stop is all a test's throwaway cluster needs.
+        let _ = command(&self.bin.join("pg_ctl"))
+            .arg("-D")
+            .arg(self.dir.path().join("data"))
+            .args(["stop", "-m", "immediate", "-w"])
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .status();
         let _ = self.child.kill();
         let _ = self.child.wait();
     }
