@@ -19,8 +19,8 @@ use common::{spec, tagged};
 /// A store on one backend, with what keeps it alive.
 struct Backend {
     store: Store,
-    _server: Option<S3Server>,
-    _dir: tempfile::TempDir,
+    server: Option<S3Server>,
+    dir: tempfile::TempDir,
 }
 
 fn on_disk() -> Backend {
@@ -28,8 +28,8 @@ fn on_disk() -> Backend {
     let store = Store::create(&dir.path().join("store"), Limits::default()).unwrap();
     Backend {
         store,
-        _server: None,
-        _dir: dir,
+        server: None,
+        dir,
     }
 }
 
@@ -45,8 +45,8 @@ fn on_object_store() -> Backend {
     .unwrap();
     Backend {
         store,
-        _server: Some(server),
-        _dir: dir,
+        server: Some(server),
+        dir,
     }
 }
 
@@ -290,10 +290,10 @@ fn two_stores_on_one_backend_see_each_others_changes(backend: Backend) {
     let second = match first.cache_stats() {
         None => Store::open(first.root(), Limits::default()).unwrap(),
         Some(_) => {
-            let server = backend._server.as_ref().unwrap();
+            let server = backend.server.as_ref().unwrap();
             Store::open_remote(
                 &server.config("fleet/store"),
-                &backend._dir.path().join("second-cache"),
+                &backend.dir.path().join("second-cache"),
                 64 << 20,
                 Limits::default(),
             )

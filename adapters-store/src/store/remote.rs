@@ -78,6 +78,7 @@ impl RemoteConfig {
 pub(crate) struct Remote {
     objects: Arc<dyn ObjectStore>,
     runtime: tokio::runtime::Runtime,
+    bucket: String,
     prefix: String,
     url: String,
     pub(crate) cache: PackageCache,
@@ -133,6 +134,7 @@ impl Remote {
         let remote = Self {
             objects: Arc::new(objects),
             runtime,
+            bucket: config.bucket.clone(),
             prefix: config.prefix.trim_matches('/').to_owned(),
             url,
             cache,
@@ -185,18 +187,10 @@ impl Remote {
 
     fn error(&self, key: &Path, action: &'static str, source: object_store::Error) -> StoreError {
         StoreError::Remote {
-            location: format!("s3://{}/{key}", self.bucket_name()),
+            location: format!("s3://{}/{key}", self.bucket),
             action,
             source: Box::new(source),
         }
-    }
-
-    fn bucket_name(&self) -> &str {
-        self.url
-            .trim_start_matches("s3://")
-            .split('/')
-            .next()
-            .unwrap_or("")
     }
 
     pub(crate) fn store_path(&self) -> PathBuf {
@@ -235,10 +229,10 @@ impl Remote {
         Ok(self.read_pointer(name)?.pointer)
     }
 
-    /// Reads the pointer, lets `change` compute the next one (`Ok(None)`: nothing to write), and
-    /// replaces it conditionally; on a lost race, reads again and re-applies `change`. Returns
-    /// the pointer as it was when the write (or the decision not to write) happened, and the
-    /// pointer written.
+    /// Reads the pointer, lets `change` compute the next one (`None`: nothing to write) and what
+    /// to answer, and replaces the pointer conditionally on the e-tag it was read with; on a lost
+    /// race, reads again and re-applies `change` (which re-checks its preconditions against the
+    /// pointer now there). Answers what the `change` whose write succeeded answered.
     fn update_pointer<T>(
         &self,
         name: &AdapterName,
@@ -329,6 +323,8 @@ impl Remote {
         if new_file {
             self.put_version(name, version, bytes)?;
         }
+        // If the flip fails (a conflict, the store unreachable) the version object stays: no
+        // pointer names it, `adapter list` shows it, and a retry finds it in place.
         let (replaced, unchanged) = self.update_pointer(name, |old| {
             let replaced = old.map(|p| p.live.clone()).filter(|live| live != version);
             let next = Pointer::next_live(old, version);
