@@ -53,6 +53,7 @@ fn a_version_published_through_one_replica_is_served_by_the_other_within_two_sec
     ] {
         assert!(page.contains(line), "{line} missing from\n{page}");
     }
+    switchyard_tests::assert_promtool_accepts(&page);
     // The secret key is in neither replica's log.
     for server in [&a, &b] {
         let log = std::fs::read_to_string(server.dir().join("server.log")).unwrap();
