@@ -27,7 +27,6 @@ use switchyard_kernels::PackedWeight;
 use crate::events::{EventBus, Residency, StageTimings, SwapEvent, SwapKind, Tier};
 use crate::fingerprint::BaseSpec;
 use crate::names::AdapterName;
-use crate::package::AdapterPackage;
 use crate::site::Site;
 use crate::store::Store;
 use crate::sync::{Arc, AtomicU64, Mutex, Ordering};
@@ -593,12 +592,11 @@ impl Inner {
     fn load(&self, key: &Key) -> Result<(Adapter, StageTimings), RegistryError> {
         self.loads.fetch_add(1, Ordering::Relaxed);
         let limits = *self.store.limits();
-        let path = self.store.version_path(&key.0, &key.1)?;
-        let file = path.display().to_string();
         let start = Instant::now();
         // Reading streams the file through the structural checks (see `package::bytes`), so
-        // `read` covers both; `validate` is the check against the base.
-        let pkg = AdapterPackage::load(&path, &limits)?;
+        // `read` covers both; `validate` is the check against the base. From an object store
+        // `read` includes fetching the file into the package cache on a miss.
+        let (pkg, file) = self.store.load_package(&key.0, &key.1)?;
         let read = start.elapsed();
         pkg.validate(&file, &self.spec, &limits)?;
         let validate = start.elapsed() - read;

@@ -11,20 +11,35 @@
 //! file is in place and synced before any pointer names it. Readers take no lock: the rename
 //! guarantees they see one whole pointer, and the pointer only ever names versions on disk.
 //! Retiring the live version is refused, and retiring an older one drops it from the history.
+//!
+//! The same operations run against an S3-compatible object store ([`remote`]), for several
+//! replicas sharing one store: there the pointer is replaced by a conditional write instead of
+//! under a lock, and reads go through a byte-bounded local cache of package files ([`cache`]).
+//! [`Store::open`] and [`Store::create`] give the disk store, [`Store::open_remote`] the other.
 
+mod cache;
 mod fsio;
 mod pointer;
+mod remote;
 
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::time::SystemTime;
 
 use crate::fingerprint::BaseSpec;
 use crate::names::{AdapterName, NameError, is_version};
-use crate::package::{AdapterPackage, Limits, PackageBytes, PackageError, PackageMeta};
+use crate::package::{
+    AdapterPackage, Limits, PackageBytes, PackageError, PackageMeta, content_version,
+};
 use crate::site::Site;
 
+pub use cache::CacheStats;
 pub use fsio::{LOCK_FILE, TEMP_PREFIX};
 pub use pointer::{HISTORY_LEN, Pointer};
+pub use remote::{CONFLICT_ATTEMPTS, RemoteConfig};
+
+use cache::PackageCache;
+use remote::Remote;
 
 use fsio::{AdapterLock, remove_stale_temps, replace_atomically, sync_dir};
 
@@ -73,6 +88,18 @@ pub enum StoreError {
     },
     #[error(transparent)]
     Package(#[from] PackageError),
+    #[error("{location}: {action}: {source}")]
+    Remote {
+        location: String,
+        action: &'static str,
+        source: Box<object_store::Error>,
+    },
+    #[error(
+        "adapter {name:?} was changed by another writer {attempts} times while this change was applied; nothing was changed, try again"
+    )]
+    Conflict { name: String, attempts: usize },
+    #[error("{location}: {problem}")]
+    CorruptObject { location: String, problem: String },
 }
 
 impl StoreError {
@@ -122,11 +149,13 @@ pub struct VersionDetails {
     pub targets: Vec<Site>,
 }
 
-/// The store rooted at one folder.
+/// The store: a folder on local disk, or an object store (with a local cache folder).
 #[derive(Debug, Clone)]
 pub struct Store {
+    /// The store folder; for an object store, the package cache folder.
     root: PathBuf,
     limits: Limits,
+    remote: Option<Arc<Remote>>,
 }
 
 impl Store {
@@ -140,7 +169,40 @@ impl Store {
         Ok(Self {
             root: root.to_owned(),
             limits,
+            remote: None,
         })
+    }
+
+    /// Opens the store on an object store, with a local cache of package files in `cache_dir`
+    /// (created when missing) holding at most `cache_bytes`. Fails when the bucket cannot be
+    /// listed, so a wrong endpoint, bucket or key shows at start.
+    pub fn open_remote(
+        config: &RemoteConfig,
+        cache_dir: &Path,
+        cache_bytes: u64,
+        limits: Limits,
+    ) -> Result<Self, StoreError> {
+        let cache = PackageCache::open(cache_dir, cache_bytes)?;
+        let remote = Remote::open(config, cache)?;
+        tracing::info!(store = %remote.url(), cache = %cache_dir.display(), cache_bytes, "object store opened");
+        Ok(Self {
+            root: cache_dir.to_owned(),
+            limits,
+            remote: Some(Arc::new(remote)),
+        })
+    }
+
+    /// The package cache's counters; `None` for a disk store, which needs no cache.
+    pub fn cache_stats(&self) -> Option<CacheStats> {
+        self.remote.as_ref().map(|r| r.cache_stats())
+    }
+
+    /// Where the store is, for messages: its folder, or `s3://bucket/prefix`.
+    pub fn location(&self) -> String {
+        match &self.remote {
+            Some(r) => r.url().to_owned(),
+            None => self.root.display().to_string(),
+        }
     }
 
     /// Opens a store folder, creating it (and its parents) when missing.
@@ -153,6 +215,7 @@ impl Store {
         Self::open(root, limits)
     }
 
+    /// The store folder; for an object store, its local package cache folder.
     pub fn root(&self) -> &Path {
         &self.root
     }
@@ -169,7 +232,8 @@ impl Store {
         self.adapter_dir(name).join(POINTER_FILE)
     }
 
-    /// Path of one version's file (which may not exist).
+    /// Path of one version's file on local disk (which may not exist; for an object store, the
+    /// place in the cache).
     pub fn version_path(&self, name: &AdapterName, version: &str) -> Result<PathBuf, StoreError> {
         check_version(version)?;
         Ok(self
@@ -204,6 +268,11 @@ impl Store {
             pkg.validate(source, base, &self.limits)?;
         }
         drop(pkg);
+        if let Some(remote) = &self.remote {
+            let published = remote.publish(name, &version, &bytes)?;
+            tracing::info!(adapter = %name, version = %published.version, new_file = published.new_file, store = %remote.url(), "published");
+            return Ok(published);
+        }
         let dir = self.adapter_dir(name);
         let new_dir = !dir.is_dir();
         if new_dir {
@@ -250,15 +319,9 @@ impl Store {
                 .as_ref()
                 .map(|p| p.live.clone())
                 .filter(|live| live != version);
-            let unchanged = old.as_ref().is_some_and(|p| p.live == version);
-            if !unchanged {
-                let next = match &old {
-                    Some(p) => p.flipped_to(version),
-                    None => Pointer {
-                        live: version.to_owned(),
-                        previous: Vec::new(),
-                    },
-                };
+            let next = Pointer::next_live(old.as_ref(), version);
+            let unchanged = next.is_none();
+            if let Some(next) = next {
                 self.write_pointer(name, &next)?;
             }
             Ok((replaced, unchanged))
@@ -286,6 +349,10 @@ impl Store {
     /// [`TEMP_PREFIX`]...) in every adapter folder, each under its adapter's lock so that no
     /// writer of another process is mid-write. Returns how many it removed.
     pub fn remove_unfinished_writes(&self) -> Result<usize, StoreError> {
+        if self.remote.is_some() {
+            // Object writes are whole or absent; the cache cleaned its own folder on opening.
+            return Ok(0);
+        }
         let entries = std::fs::read_dir(&self.root).map_err(|source| StoreError::Io {
             path: self.root.clone(),
             action: "listing the store",
@@ -305,6 +372,9 @@ impl Store {
 
     /// The adapter's pointer, or `None` when the adapter has never been published.
     pub fn pointer(&self, name: &AdapterName) -> Result<Option<Pointer>, StoreError> {
+        if let Some(remote) = &self.remote {
+            return remote.pointer(name);
+        }
         let path = self.pointer_path(name);
         match std::fs::read_to_string(&path) {
             Ok(text) => Pointer::parse(&text, &path).map(Some),
@@ -326,44 +396,51 @@ impl Store {
 
     /// Makes a stored version live; the version live before heads the rollback history.
     pub fn set_live(&self, name: &AdapterName, version: &str) -> Result<Pointer, StoreError> {
+        if let Some(remote) = &self.remote {
+            check_version(version)?;
+            return remote.set_live(name, version, || self.unknown_version(name, version));
+        }
         let dir = self.existing_dir(name)?;
         let _lock = AdapterLock::acquire(&dir)?;
         self.require_version(name, version)?;
         let old = self.pointer(name)?;
-        let next = match old {
-            Some(p) if p.live == version => return Ok(p),
-            Some(p) => p.flipped_to(version),
-            None => Pointer {
-                live: version.to_owned(),
-                previous: Vec::new(),
-            },
-        };
-        self.write_pointer(name, &next)?;
-        Ok(next)
+        match Pointer::next_live(old.as_ref(), version) {
+            Some(next) => {
+                self.write_pointer(name, &next)?;
+                Ok(next)
+            }
+            None => Ok(old.expect("an unchanged pointer exists")),
+        }
     }
 
     /// Makes the most recent earlier live version live again and drops it from the history.
     pub fn rollback(&self, name: &AdapterName) -> Result<Pointer, StoreError> {
+        if let Some(remote) = &self.remote {
+            return remote.rollback(
+                name,
+                || self.unknown(name),
+                |v| self.unknown_version(name, v),
+            );
+        }
         let dir = self.existing_dir(name)?;
         let _lock = AdapterLock::acquire(&dir)?;
         let old = self.pointer(name)?.ok_or_else(|| self.unknown(name))?;
-        let mut history = old.previous.into_iter();
-        let Some(target) = history.next() else {
-            return Err(StoreError::NothingToRollBack {
+        let next = old
+            .rolled_back()
+            .ok_or_else(|| StoreError::NothingToRollBack {
                 name: name.to_string(),
-            });
-        };
-        self.require_version(name, &target)?;
-        let next = Pointer {
-            live: target,
-            previous: history.collect(),
-        };
+            })?;
+        self.require_version(name, &next.live)?;
         self.write_pointer(name, &next)?;
         Ok(next)
     }
 
     /// Deletes a stored version that is not live, and drops it from the rollback history.
     pub fn retire(&self, name: &AdapterName, version: &str) -> Result<(), StoreError> {
+        if let Some(remote) = &self.remote {
+            check_version(version)?;
+            return remote.retire(name, version, || self.unknown_version(name, version));
+        }
         let dir = self.existing_dir(name)?;
         let _lock = AdapterLock::acquire(&dir)?;
         let path = self.require_version(name, version)?;
@@ -374,11 +451,7 @@ impl Store {
                     version: version.to_owned(),
                 });
             }
-            if p.previous.iter().any(|v| v == version) {
-                let next = Pointer {
-                    live: p.live.clone(),
-                    previous: p.previous.into_iter().filter(|v| v != version).collect(),
-                };
+            if let Some(next) = p.without_history(version) {
                 self.write_pointer(name, &next)?;
             }
         }
@@ -392,6 +465,9 @@ impl Store {
 
     /// Every adapter with a pointer, in name order.
     pub fn names(&self) -> Result<Vec<AdapterName>, StoreError> {
+        if let Some(remote) = &self.remote {
+            return remote.names();
+        }
         let entries = std::fs::read_dir(&self.root).map_err(|source| StoreError::Io {
             path: self.root.clone(),
             action: "listing the store",
@@ -408,6 +484,9 @@ impl Store {
 
     /// Every stored version of `name`, oldest first.
     pub fn versions(&self, name: &AdapterName) -> Result<Vec<VersionInfo>, StoreError> {
+        if let Some(remote) = &self.remote {
+            return remote.versions(name)?.ok_or_else(|| self.unknown(name));
+        }
         let dir = self.existing_dir(name)?;
         let pointer = self.pointer(name)?;
         let entries = std::fs::read_dir(&dir).map_err(|source| StoreError::Io {
@@ -441,18 +520,78 @@ impl Store {
 
     /// One stored version with its metadata and targets.
     pub fn show(&self, name: &AdapterName, version: &str) -> Result<VersionDetails, StoreError> {
-        let path = self.require_version(name, version)?;
+        self.has_version(name, version)?
+            .then_some(())
+            .ok_or_else(|| self.unknown_version(name, version))?;
         let info = self
             .versions(name)?
             .into_iter()
             .find(|v| v.version == version)
             .ok_or_else(|| self.unknown_version(name, version))?;
-        let (pkg, _) = AdapterPackage::read(&path, &self.limits)?;
+        let (pkg, _) = self.read_package(name, version)?;
         Ok(VersionDetails {
             info,
             targets: pkg.targets(),
             meta: pkg.meta,
         })
+    }
+
+    /// Whether `name` has a stored `version`.
+    pub fn has_version(&self, name: &AdapterName, version: &str) -> Result<bool, StoreError> {
+        check_version(version)?;
+        match &self.remote {
+            Some(remote) => remote.has_version(name, version),
+            None => Ok(self.version_path(name, version)?.is_file()),
+        }
+    }
+
+    /// Reads and structurally checks one stored version (not against a base: that is
+    /// [`AdapterPackage::validate`]); returns the package and the content version of its bytes.
+    /// From an object store the bytes come through the package cache.
+    pub fn read_package(
+        &self,
+        name: &AdapterName,
+        version: &str,
+    ) -> Result<(AdapterPackage, String), StoreError> {
+        let path = self.version_path(name, version)?;
+        match &self.remote {
+            None => {
+                if !path.is_file() {
+                    return Err(self.unknown_version(name, version));
+                }
+                Ok(AdapterPackage::read(&path, &self.limits)?)
+            }
+            Some(remote) => {
+                let bytes =
+                    remote.read_version(name, version, || self.unknown_version(name, version))?;
+                let file = format!("{}/{name}@{version}", remote.url());
+                let pkg = AdapterPackage::from_bytes(&bytes, &file, &self.limits)?;
+                Ok((pkg, content_version(&bytes)))
+            }
+        }
+    }
+
+    /// Reads one stored version for loading, as [`Store::read_package`] does but without
+    /// hashing a local file again; returns the package and how errors name its file.
+    pub fn load_package(
+        &self,
+        name: &AdapterName,
+        version: &str,
+    ) -> Result<(AdapterPackage, String), StoreError> {
+        let path = self.version_path(name, version)?;
+        match &self.remote {
+            None => {
+                let file = path.display().to_string();
+                Ok((AdapterPackage::load(&path, &self.limits)?, file))
+            }
+            Some(remote) => {
+                let bytes =
+                    remote.read_version(name, version, || self.unknown_version(name, version))?;
+                let file = format!("{}/{name}@{version}", remote.url());
+                let pkg = AdapterPackage::from_bytes(&bytes, &file, &self.limits)?;
+                Ok((pkg, file))
+            }
+        }
     }
 
     fn write_pointer(&self, name: &AdapterName, pointer: &Pointer) -> Result<(), StoreError> {
@@ -482,7 +621,7 @@ impl Store {
     fn unknown(&self, name: &AdapterName) -> StoreError {
         StoreError::UnknownAdapter {
             name: name.to_string(),
-            store: self.root.clone(),
+            store: self.store_path(),
         }
     }
 
@@ -490,7 +629,14 @@ impl Store {
         StoreError::UnknownVersion {
             name: name.to_string(),
             version: version.to_owned(),
-            store: self.root.clone(),
+            store: self.store_path(),
+        }
+    }
+
+    fn store_path(&self) -> PathBuf {
+        match &self.remote {
+            Some(r) => r.store_path(),
+            None => self.root.clone(),
         }
     }
 }

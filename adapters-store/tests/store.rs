@@ -1,17 +1,77 @@
-//! The on-disk store: publish, list, show, set live, rollback and retire as a user sees them, the
+//! The adapter store: publish, list, show, set live, rollback and retire as a user sees them, the
 //! name rules, and concurrent publishers that must never leave a torn file or a pointer to a
-//! version that is not there.
+//! version that is not there. One suite, run against both backends: every test that takes a
+//! [`Backend`] runs once on local disk (`disk::`) and once on a real S3-compatible server
+//! (`object::`, an `s3s-fs` process on 127.0.0.1). The disk store's own file layout (pointer file,
+//! temporary files) is tested at the end.
 
 mod common;
 
-use std::path::Path;
 use std::sync::{Arc, Barrier};
 
 use switchyard_adapters::package::{Limits, content_version};
 use switchyard_adapters::store::{POINTER_FILE, Store, StoreError, TEMP_PREFIX};
-use switchyard_adapters::{AdapterName, AdapterPackage, PackageBytes};
+use switchyard_adapters::{AdapterName, PackageBytes};
 
+use common::s3::S3Server;
 use common::{spec, tagged};
+
+/// A store on one backend, with what keeps it alive.
+struct Backend {
+    store: Store,
+    server: Option<S3Server>,
+    dir: tempfile::TempDir,
+}
+
+fn on_disk() -> Backend {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::create(&dir.path().join("store"), Limits::default()).unwrap();
+    Backend {
+        store,
+        server: None,
+        dir,
+    }
+}
+
+fn on_object_store() -> Backend {
+    let server = S3Server::start();
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::open_remote(
+        &server.config("fleet/store"),
+        &dir.path().join("cache"),
+        64 << 20,
+        Limits::default(),
+    )
+    .unwrap();
+    Backend {
+        store,
+        server: Some(server),
+        dir,
+    }
+}
+
+/// Runs each named test once per backend.
+macro_rules! on_both_backends {
+    ($($test:ident),* $(,)?) => {
+        mod disk {
+            $(#[test] fn $test() { super::$test(super::on_disk()) })*
+        }
+        mod object {
+            $(#[test] fn $test() { super::$test(super::on_object_store()) })*
+        }
+    };
+}
+
+on_both_backends!(
+    publish_makes_the_version_live_and_keeps_history_for_rollback,
+    republishing_the_same_bytes_writes_nothing_and_flips_nothing,
+    retire_is_refused_while_live_and_drops_the_version_from_history,
+    unknown_names_versions_and_bad_versions_are_clear_errors,
+    publishing_an_invalid_package_leaves_the_store_untouched,
+    show_reads_the_package_metadata,
+    concurrent_publishers_never_leave_a_torn_file_or_a_dangling_pointer,
+    two_stores_on_one_backend_see_each_others_changes,
+);
 
 fn name(n: &str) -> AdapterName {
     AdapterName::new(n).unwrap()
@@ -28,9 +88,8 @@ fn new_store() -> (tempfile::TempDir, Store) {
     (dir, store)
 }
 
-#[test]
-fn publish_makes_the_version_live_and_keeps_history_for_rollback() {
-    let (_dir, store) = new_store();
+fn publish_makes_the_version_live_and_keeps_history_for_rollback(backend: Backend) {
+    let store = &backend.store;
     let n = name("support-bot");
     let v1 = store.publish(&n, bytes(1.0), "v1", Some(&spec())).unwrap();
     assert_eq!(v1.replaced, None);
@@ -40,10 +99,11 @@ fn publish_makes_the_version_live_and_keeps_history_for_rollback() {
     assert_eq!(store.live(&n).unwrap(), v2.version);
 
     // The version is the content hash of the stored file, and the file is the package.
-    let path = store.version_path(&n, &v2.version).unwrap();
-    let on_disk = std::fs::read(&path).unwrap();
-    assert_eq!(content_version(&on_disk), v2.version);
-    assert_eq!(on_disk, tagged(4, 2.0).to_bytes().unwrap());
+    let published = tagged(4, 2.0).to_bytes().unwrap();
+    assert_eq!(content_version(&published), v2.version);
+    let (stored, hash) = store.read_package(&n, &v2.version).unwrap();
+    assert_eq!(hash, v2.version);
+    assert_eq!(stored.to_bytes().unwrap(), published);
 
     let listed = store.versions(&n).unwrap();
     assert_eq!(listed.len(), 2);
@@ -70,9 +130,8 @@ fn publish_makes_the_version_live_and_keeps_history_for_rollback() {
     assert_eq!(again.previous, vec![v1.version.clone()]);
 }
 
-#[test]
-fn republishing_the_same_bytes_writes_nothing_and_flips_nothing() {
-    let (_dir, store) = new_store();
+fn republishing_the_same_bytes_writes_nothing_and_flips_nothing(backend: Backend) {
+    let store = &backend.store;
     let n = name("a");
     let first = store.publish(&n, bytes(1.0), "v1", None).unwrap();
     let second = store.publish(&n, bytes(1.0), "v1 again", None).unwrap();
@@ -82,9 +141,8 @@ fn republishing_the_same_bytes_writes_nothing_and_flips_nothing() {
     assert!(store.pointer(&n).unwrap().unwrap().previous.is_empty());
 }
 
-#[test]
-fn retire_is_refused_while_live_and_drops_the_version_from_history() {
-    let (_dir, store) = new_store();
+fn retire_is_refused_while_live_and_drops_the_version_from_history(backend: Backend) {
+    let store = &backend.store;
     let n = name("a");
     let v1 = store.publish(&n, bytes(1.0), "v1", None).unwrap().version;
     let v2 = store.publish(&n, bytes(2.0), "v2", None).unwrap().version;
@@ -92,7 +150,7 @@ fn retire_is_refused_while_live_and_drops_the_version_from_history() {
     assert!(matches!(e, StoreError::RetireLive { .. }));
     assert!(e.to_string().contains("is live"), "{e}");
     store.retire(&n, &v1).unwrap();
-    assert!(!store.version_path(&n, &v1).unwrap().exists());
+    assert!(!store.has_version(&n, &v1).unwrap());
     assert!(store.pointer(&n).unwrap().unwrap().previous.is_empty());
     assert!(matches!(
         store.rollback(&n),
@@ -104,9 +162,8 @@ fn retire_is_refused_while_live_and_drops_the_version_from_history() {
     ));
 }
 
-#[test]
-fn unknown_names_versions_and_bad_versions_are_clear_errors() {
-    let (_dir, store) = new_store();
+fn unknown_names_versions_and_bad_versions_are_clear_errors(backend: Backend) {
+    let store = &backend.store;
     let n = name("nobody");
     let e = store.live(&n).unwrap_err().to_string();
     assert!(e.contains("no adapter \"nobody\""), "{e}");
@@ -120,9 +177,8 @@ fn unknown_names_versions_and_bad_versions_are_clear_errors() {
     assert!(e.contains("is not a version"), "{e}");
 }
 
-#[test]
-fn publishing_an_invalid_package_leaves_the_store_untouched() {
-    let (_dir, store) = new_store();
+fn publishing_an_invalid_package_leaves_the_store_untouched(backend: Backend) {
+    let store = &backend.store;
     let n = name("a");
     let good = store.publish(&n, bytes(1.0), "v1", Some(&spec())).unwrap();
     let mut other_base = spec();
@@ -134,6 +190,8 @@ fn publishing_an_invalid_package_leaves_the_store_untouched() {
     assert_eq!(store.live(&n).unwrap(), good.version);
     assert_eq!(store.versions(&n).unwrap().len(), 1);
 }
+
+// The disk store's own layout.
 
 #[test]
 fn a_corrupt_pointer_is_reported_with_its_path_and_line() {
@@ -149,9 +207,8 @@ fn a_corrupt_pointer_is_reported_with_its_path_and_line() {
     );
 }
 
-#[test]
-fn show_reads_the_package_metadata() {
-    let (_dir, store) = new_store();
+fn show_reads_the_package_metadata(backend: Backend) {
+    let store = &backend.store;
     let n = name("a");
     let v = store.publish(&n, bytes(1.5), "v1", None).unwrap().version;
     let details = store.show(&n, &v).unwrap();
@@ -160,28 +217,27 @@ fn show_reads_the_package_metadata() {
     assert_eq!(details.targets, tagged(4, 1.5).targets());
 }
 
-fn assert_store_is_whole(store: &Store, n: &AdapterName, dir: &Path) {
+fn assert_store_is_whole(store: &Store, n: &AdapterName) {
     let live = store.live(n).unwrap();
-    let path = store.version_path(n, &live).unwrap();
-    let (_, version) = AdapterPackage::read(&path, &Limits::default()).unwrap();
+    let (_, version) = store.read_package(n, &live).unwrap();
     assert_eq!(version, live, "the live file is whole");
     for v in store.versions(n).unwrap() {
-        let p = store.version_path(n, &v.version).unwrap();
-        let (_, version) = AdapterPackage::read(&p, &Limits::default()).unwrap();
+        let (_, version) = store.read_package(n, &v.version).unwrap();
         assert_eq!(version, v.version, "every stored file is whole");
     }
-    for entry in std::fs::read_dir(dir.join(n.as_str())).unwrap() {
-        let file = entry.unwrap().file_name().to_string_lossy().into_owned();
-        assert!(
-            !file.starts_with(TEMP_PREFIX),
-            "temporary file {file} left behind"
-        );
+    if store.cache_stats().is_none() {
+        for entry in std::fs::read_dir(store.root().join(n.as_str())).unwrap() {
+            let file = entry.unwrap().file_name().to_string_lossy().into_owned();
+            assert!(
+                !file.starts_with(TEMP_PREFIX),
+                "temporary file {file} left behind"
+            );
+        }
     }
 }
 
-#[test]
-fn concurrent_publishers_never_leave_a_torn_file_or_a_dangling_pointer() {
-    let (_dir, store) = new_store();
+fn concurrent_publishers_never_leave_a_torn_file_or_a_dangling_pointer(backend: Backend) {
+    let store = backend.store.clone();
     let n = name("contended");
     let threads = 8;
     let per_thread = 6;
@@ -211,9 +267,8 @@ fn concurrent_publishers_never_leave_a_torn_file_or_a_dangling_pointer() {
             let mut seen = 0;
             while seen < 200 {
                 if let Ok(live) = store.live(&n) {
-                    // Whatever the pointer names is on disk, whole.
-                    let p = store.version_path(&n, &live).unwrap();
-                    let (_, v) = AdapterPackage::read(&p, &Limits::default()).unwrap();
+                    // Whatever the pointer names is stored, whole.
+                    let (_, v) = store.read_package(&n, &live).unwrap();
                     assert_eq!(v, live);
                     seen += 1;
                 }
@@ -225,7 +280,39 @@ fn concurrent_publishers_never_leave_a_torn_file_or_a_dangling_pointer() {
     }
     reader.join().unwrap();
     assert_eq!(store.versions(&n).unwrap().len(), threads * per_thread);
-    assert_store_is_whole(&store, &n, store.root());
+    assert_store_is_whole(&store, &n);
+}
+
+/// What one replica publishes, sets live, rolls back or retires, another replica's store on the
+/// same backend sees at its next read.
+fn two_stores_on_one_backend_see_each_others_changes(backend: Backend) {
+    let first = &backend.store;
+    let second = match first.cache_stats() {
+        None => Store::open(first.root(), Limits::default()).unwrap(),
+        Some(_) => {
+            let server = backend.server.as_ref().unwrap();
+            Store::open_remote(
+                &server.config("fleet/store"),
+                &backend.dir.path().join("second-cache"),
+                64 << 20,
+                Limits::default(),
+            )
+            .unwrap()
+        }
+    };
+    let n = name("shared");
+    let v1 = first.publish(&n, bytes(1.0), "v1", None).unwrap().version;
+    assert_eq!(second.live(&n).unwrap(), v1);
+    assert_eq!(second.names().unwrap(), vec![n.clone()]);
+    let v2 = second.publish(&n, bytes(2.0), "v2", None).unwrap();
+    assert_eq!(v2.replaced.as_deref(), Some(v1.as_str()));
+    assert_eq!(first.live(&n).unwrap(), v2.version);
+    let (pkg, _) = first.read_package(&n, &v2.version).unwrap();
+    assert_eq!(pkg.meta.description, "tag 2");
+    first.rollback(&n).unwrap();
+    assert_eq!(second.live(&n).unwrap(), v1);
+    second.retire(&n, &v2.version).unwrap();
+    assert_eq!(first.versions(&n).unwrap().len(), 1);
 }
 
 #[test]

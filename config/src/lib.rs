@@ -56,8 +56,14 @@ pub struct Settings {
     /// The format the base model's weights are held in once loaded (`[model] weights`):
     /// converted at load from the checkpoint's own dtype.
     pub model_weights: WeightFormat,
-    /// Root of the adapter store (`<store>/<name>/<version>.safetensors`).
+    /// Root of the adapter store (`<store>/<name>/<version>.safetensors`); with an object store,
+    /// the folder of its local package cache.
     pub store_dir: Option<PathBuf>,
+    /// The S3-compatible object store holding the adapters (`[store] bucket` and the keys beside
+    /// it); `None`: the store is the folder `store_dir`.
+    pub object_store: Option<ObjectStoreSettings>,
+    /// Bytes of package files the local cache keeps when the store is an object store.
+    pub store_cache_bytes: u64,
     /// Compute threads for the model; 0 means one per core.
     pub threads: usize,
     /// Most rows (sequences) one forward pass may carry.
@@ -135,6 +141,40 @@ pub struct Settings {
     pub assignment_alarm_p: f64,
 }
 
+/// Where the object store is and how to reach it. The secret key never appears in `{:?}` or in
+/// the rendered settings.
+#[derive(Clone, PartialEq, Eq)]
+pub struct ObjectStoreSettings {
+    pub bucket: String,
+    /// The S3 endpoint (`http://127.0.0.1:9000`, say); `None` for Amazon S3.
+    pub endpoint: Option<String>,
+    /// Key prefix under which the store lives; empty for the bucket's root.
+    pub prefix: String,
+    pub region: String,
+    /// SigV4 credentials; when unset the client looks in the usual places (instance metadata).
+    pub access_key_id: Option<String>,
+    pub secret_access_key: Option<String>,
+}
+
+impl fmt::Debug for ObjectStoreSettings {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("ObjectStoreSettings")
+            .field("bucket", &self.bucket)
+            .field("endpoint", &self.endpoint)
+            .field("prefix", &self.prefix)
+            .field("region", &self.region)
+            .field("access_key_id", &self.access_key_id)
+            .field(
+                "secret_access_key",
+                &self.secret_access_key.as_deref().map(rules::redacted),
+            )
+            .finish()
+    }
+}
+
+/// The region asked of the object store when `[store] region` is not set.
+pub const DEFAULT_STORE_REGION: &str = "us-east-1";
+
 /// One `[[tenants]]` entry.
 #[derive(Clone, PartialEq)]
 pub struct TenantSettings {
@@ -190,6 +230,8 @@ impl Default for Settings {
             model_dir: None,
             model_weights: WeightFormat::F32,
             store_dir: None,
+            object_store: None,
+            store_cache_bytes: 4 * GIB,
             threads: 0,
             max_batch_rows: 32,
             step_tokens: 256,
@@ -359,6 +401,12 @@ impl Settings {
                 },
             },
             store_dir: dir(src, &read::STORE_DIR, overrides.store_dir.as_deref())?,
+            object_store: object_store(src)?,
+            store_cache_bytes: src.whole(
+                &read::STORE_CACHE_BYTES,
+                d.store_cache_bytes,
+                MIB..=1 << 50,
+            )?,
             threads: size(src.whole(&read::THREADS, d.threads as u64, 0..=1024)?),
             max_batch_rows: size(src.whole(
                 &read::MAX_BATCH_ROWS,
@@ -501,6 +549,53 @@ fn dir(
     Ok(src.text(key, false)?.map(|(text, _)| PathBuf::from(text)))
 }
 
+/// `[store] bucket` and the keys that only mean something beside it.
+fn object_store(src: &Sources<'_>) -> Result<Option<ObjectStoreSettings>, ConfigError> {
+    let bucket = src.text(&read::STORE_BUCKET, false)?;
+    let endpoint = src.text(&read::STORE_ENDPOINT, false)?;
+    if let Some((text, origin)) = &endpoint
+        && !(text.starts_with("http://") || text.starts_with("https://"))
+    {
+        return Err(ConfigError::invalid(
+            origin.label(&read::STORE_ENDPOINT),
+            text.as_str(),
+            "expected an http:// or https:// URL, such as http://127.0.0.1:9000",
+        ));
+    }
+    let prefix = src.text(&read::STORE_PREFIX, false)?;
+    let region = src.text(&read::STORE_REGION, false)?;
+    let access_key_id = src.text(&read::STORE_ACCESS_KEY_ID, false)?;
+    let secret_access_key = src.text(&read::STORE_SECRET_ACCESS_KEY, true)?;
+    let Some((bucket, _)) = bucket else {
+        let beside = [
+            (&read::STORE_ENDPOINT, endpoint.is_some()),
+            (&read::STORE_PREFIX, prefix.is_some()),
+            (&read::STORE_REGION, region.is_some()),
+            (&read::STORE_ACCESS_KEY_ID, access_key_id.is_some()),
+            (&read::STORE_SECRET_ACCESS_KEY, secret_access_key.is_some()),
+        ];
+        if let Some((key, _)) = beside.iter().find(|(_, set)| *set) {
+            return Err(ConfigError::Missing {
+                key: read::STORE_BUCKET.dotted(),
+                rule: format!(
+                    "{} is set, which only applies to an object store; name its bucket in [store] bucket or {}",
+                    key.dotted(),
+                    read::STORE_BUCKET.env
+                ),
+            });
+        }
+        return Ok(None);
+    };
+    Ok(Some(ObjectStoreSettings {
+        bucket,
+        endpoint: endpoint.map(|(text, _)| text),
+        prefix: prefix.map(|(text, _)| text).unwrap_or_default(),
+        region: region.map_or_else(|| DEFAULT_STORE_REGION.to_owned(), |(text, _)| text),
+        access_key_id: access_key_id.map(|(text, _)| text),
+        secret_access_key: secret_access_key.map(|(text, _)| text),
+    }))
+}
+
 /// The admin token follows the API key rule, and differs from every tenant's key: one string
 /// must not be both a tenant's key and the key to the admin API.
 fn admin_token(
@@ -552,6 +647,8 @@ impl fmt::Debug for Settings {
             .field("model_dir", &self.model_dir)
             .field("model_weights", &self.model_weights)
             .field("store_dir", &self.store_dir)
+            .field("object_store", &self.object_store)
+            .field("store_cache_bytes", &self.store_cache_bytes)
             .field("threads", &self.threads)
             .field("max_batch_rows", &self.max_batch_rows)
             .field("step_tokens", &self.step_tokens)

@@ -44,6 +44,23 @@ pub(crate) const MODEL_DIR: SettingKey = SettingKey::new("model", "dir", "SWITCH
 pub(crate) const MODEL_WEIGHTS: SettingKey =
     SettingKey::new("model", "weights", "SWITCHYARD_MODEL_WEIGHTS");
 pub(crate) const STORE_DIR: SettingKey = SettingKey::new("store", "dir", "SWITCHYARD_STORE_DIR");
+pub(crate) const STORE_BUCKET: SettingKey =
+    SettingKey::new("store", "bucket", "SWITCHYARD_STORE_BUCKET");
+pub(crate) const STORE_ENDPOINT: SettingKey =
+    SettingKey::new("store", "endpoint", "SWITCHYARD_STORE_ENDPOINT");
+pub(crate) const STORE_PREFIX: SettingKey =
+    SettingKey::new("store", "prefix", "SWITCHYARD_STORE_PREFIX");
+pub(crate) const STORE_REGION: SettingKey =
+    SettingKey::new("store", "region", "SWITCHYARD_STORE_REGION");
+pub(crate) const STORE_ACCESS_KEY_ID: SettingKey =
+    SettingKey::new("store", "access_key_id", "SWITCHYARD_STORE_ACCESS_KEY_ID");
+pub(crate) const STORE_SECRET_ACCESS_KEY: SettingKey = SettingKey::new(
+    "store",
+    "secret_access_key",
+    "SWITCHYARD_STORE_SECRET_ACCESS_KEY",
+);
+pub(crate) const STORE_CACHE_BYTES: SettingKey =
+    SettingKey::new("store", "cache_bytes", "SWITCHYARD_STORE_CACHE_BYTES");
 pub(crate) const THREADS: SettingKey =
     SettingKey::new("engine", "threads", "SWITCHYARD_ENGINE_THREADS");
 pub(crate) const MAX_BATCH_ROWS: SettingKey = SettingKey::new(
@@ -173,6 +190,13 @@ pub const KEYS: &[SettingKey] = &[
     MODEL_DIR,
     MODEL_WEIGHTS,
     STORE_DIR,
+    STORE_BUCKET,
+    STORE_ENDPOINT,
+    STORE_PREFIX,
+    STORE_REGION,
+    STORE_ACCESS_KEY_ID,
+    STORE_SECRET_ACCESS_KEY,
+    STORE_CACHE_BYTES,
     THREADS,
     MAX_BATCH_ROWS,
     STEP_TOKENS,

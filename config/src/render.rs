@@ -80,6 +80,41 @@ pub(crate) fn render(s: &Settings) -> String {
         Some(dir) => page.line(&read::STORE_DIR, path(dir)),
         None => page.unset(&read::STORE_DIR, "no adapter store is configured"),
     }
+    match &s.object_store {
+        Some(o) => {
+            page.line(&read::STORE_BUCKET, quoted(&o.bucket));
+            match &o.endpoint {
+                Some(url) => page.line(&read::STORE_ENDPOINT, quoted(url)),
+                None => page.unset(&read::STORE_ENDPOINT, "Amazon S3"),
+            }
+            page.line(&read::STORE_PREFIX, quoted(&o.prefix));
+            page.line(&read::STORE_REGION, quoted(&o.region));
+            match &o.access_key_id {
+                Some(id) => page.line(&read::STORE_ACCESS_KEY_ID, quoted(id)),
+                None => page.unset(&read::STORE_ACCESS_KEY_ID, "the client's own defaults"),
+            }
+            match &o.secret_access_key {
+                Some(secret) => {
+                    page.line(&read::STORE_SECRET_ACCESS_KEY, quoted(&redacted(secret)))
+                }
+                None => page.unset(&read::STORE_SECRET_ACCESS_KEY, "the client's own defaults"),
+            }
+        }
+        None => {
+            let local = "the store is the local folder [store] dir";
+            for key in [
+                &read::STORE_BUCKET,
+                &read::STORE_ENDPOINT,
+                &read::STORE_PREFIX,
+                &read::STORE_REGION,
+                &read::STORE_ACCESS_KEY_ID,
+                &read::STORE_SECRET_ACCESS_KEY,
+            ] {
+                page.unset(key, local);
+            }
+        }
+    }
+    page.line(&read::STORE_CACHE_BYTES, s.store_cache_bytes);
     page.line(&read::THREADS, s.threads);
     page.line(&read::MAX_BATCH_ROWS, s.max_batch_rows);
     page.line(&read::STEP_TOKENS, s.step_tokens);

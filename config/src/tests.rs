@@ -166,6 +166,21 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::KEEP_RESPONSES_DAYS, "7", "7"),
         (&read::MIXING_VARIANCE, "0.25", "0.25"),
         (&read::ASSIGNMENT_ALARM_P, "0.01", "0.01"),
+        (&read::STORE_BUCKET, "\"adapters\"", "adapters"),
+        (
+            &read::STORE_ENDPOINT,
+            "\"http://127.0.0.1:9000\"",
+            "http://127.0.0.1:9000",
+        ),
+        (&read::STORE_PREFIX, "\"fleet\"", "fleet"),
+        (&read::STORE_REGION, "\"eu-west-1\"", "eu-west-1"),
+        (&read::STORE_ACCESS_KEY_ID, "\"key-id\"", "key-id"),
+        (
+            &read::STORE_SECRET_ACCESS_KEY,
+            "\"secret-0123456789\"",
+            "secret-0123456789",
+        ),
+        (&read::STORE_CACHE_BYTES, "1048576", "1048576"),
     ];
     assert_eq!(values.len(), KEYS.len(), "a key in KEYS is missing here");
     let mut file = String::new();
@@ -184,6 +199,15 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         model_dir: Some("m".into()),
         model_weights: WeightFormat::parse("int4-g64").unwrap(),
         store_dir: Some("s".into()),
+        object_store: Some(ObjectStoreSettings {
+            bucket: "adapters".into(),
+            endpoint: Some("http://127.0.0.1:9000".into()),
+            prefix: "fleet".into(),
+            region: "eu-west-1".into(),
+            access_key_id: Some("key-id".into()),
+            secret_access_key: Some("secret-0123456789".into()),
+        }),
+        store_cache_bytes: 1 << 20,
         threads: 3,
         max_batch_rows: 7,
         step_tokens: 77,
@@ -920,4 +944,39 @@ fn empty_key_was_refused_without_naming_it() {
     assert!(err.contains("`\"\"`"), "{err}");
     let err = refusal("[engine]\n\"\" = 30\n", &[]);
     assert!(err.contains("`engine.\"\"`"), "{err}");
+}
+
+#[test]
+fn object_store_keys_need_a_bucket_and_keep_the_secret_out_of_sight() {
+    let err = refusal(
+        "[store]\ndir = \"cache\"\nendpoint = \"http://127.0.0.1:9000\"\n",
+        &[],
+    );
+    assert!(
+        err.contains("store.bucket") && err.contains("store.endpoint"),
+        "{err}"
+    );
+    let err = refusal(
+        "[store]\nbucket = \"b\"\nendpoint = \"127.0.0.1:9000\"\n",
+        &[],
+    );
+    assert!(
+        err.contains("store.endpoint") && err.contains("http://"),
+        "{err}"
+    );
+    let s = load_text(
+        "[store]\ndir = \"cache\"\nbucket = \"adapters\"\n",
+        &[("SWITCHYARD_STORE_SECRET_ACCESS_KEY", "very-secret-value-42")],
+    )
+    .unwrap();
+    let o = s.object_store.as_ref().unwrap();
+    assert_eq!(o.region, DEFAULT_STORE_REGION);
+    assert_eq!(o.prefix, "");
+    assert_eq!(s.store_cache_bytes, 4 << 30, "the default cache budget");
+    let page = s.render_effective();
+    let debug = format!("{s:?}");
+    for shown in [&page, &debug] {
+        assert!(!shown.contains("very-secret-value-42"), "{shown}");
+        assert!(shown.contains("<redacted, 20 chars>"), "{shown}");
+    }
 }

@@ -17,6 +17,7 @@ use prometheus_client::metrics::gauge::Gauge;
 use prometheus_client::metrics::histogram::{Histogram, exponential_buckets};
 use prometheus_client::registry::Registry;
 use switchyard_adapters::events::{SwapEvent, SwapKind, Tier};
+use switchyard_adapters::store::CacheStats;
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct RequestLabels {
@@ -97,10 +98,15 @@ pub struct Metrics {
     pub process_resident_bytes: Gauge,
     pub base_weights: Family<BaseLabels, Gauge>,
     pub base_weight_bytes: Gauge,
+    pub package_cache_fetched_bytes: Counter,
+    pub package_cache_limit_bytes: Gauge,
     /// Adapter names that have their own request series; at most `adapter_series` of them.
     labelled_adapters: Mutex<HashSet<String>>,
     adapter_series: usize,
 }
+
+/// The tier label of the package cache, the local disk tier in front of an object store.
+pub const DISK_TIER: &str = "disk";
 
 /// The label value of requests to adapters beyond the bounded set.
 pub const OTHER_ADAPTERS: &str = "other";
@@ -141,7 +147,7 @@ impl Metrics {
         let resident_bytes = Family::<TierLabels, Gauge<i64, AtomicI64Compat>>::default();
         registry.register(
             "resident_bytes",
-            "Bytes held by each residency tier (factors, merged)",
+            "Bytes held by each residency tier (disk: the package cache of an object store; factors, merged)",
             resident_bytes.clone(),
         );
         let cache = Family::<CacheLabels, Counter>::default();
@@ -230,6 +236,18 @@ impl Metrics {
             "Bytes the base model's weights hold in their format",
             base_weight_bytes.clone(),
         );
+        let package_cache_fetched_bytes = Counter::default();
+        registry.register(
+            "package_cache_fetched_bytes",
+            "Bytes of package files fetched from the object store into the local cache",
+            package_cache_fetched_bytes.clone(),
+        );
+        let package_cache_limit_bytes = Gauge::default();
+        registry.register(
+            "package_cache_limit_bytes",
+            "The byte budget of the local package cache of an object store",
+            package_cache_limit_bytes.clone(),
+        );
         Self {
             registry: Mutex::new(registry),
             requests,
@@ -250,6 +268,8 @@ impl Metrics {
             process_resident_bytes,
             base_weights,
             base_weight_bytes,
+            package_cache_fetched_bytes,
+            package_cache_limit_bytes,
             labelled_adapters: Mutex::new(HashSet::new()),
             adapter_series,
         }
@@ -349,6 +369,35 @@ impl Metrics {
                 outcome: outcome.to_owned(),
             })
             .inc();
+    }
+
+    /// Brings the package cache's series (an object store's local disk tier) up to `stats`:
+    /// `cache_events{tier="disk"}`, `resident_bytes{tier="disk"}`, the bytes fetched from the
+    /// object store and the cache's budget. The cache counts on its own; this copies its totals.
+    pub fn set_package_cache(&self, stats: &CacheStats) {
+        for (outcome, total) in [
+            ("hit", stats.hits),
+            ("miss", stats.misses),
+            ("eviction", stats.evictions),
+        ] {
+            let counter = self.cache.get_or_create(&CacheLabels {
+                tier: DISK_TIER.to_owned(),
+                outcome: outcome.to_owned(),
+            });
+            counter.inc_by(total.saturating_sub(counter.get()));
+        }
+        self.resident_bytes
+            .get_or_create(&TierLabels {
+                tier: DISK_TIER.to_owned(),
+            })
+            .set(i64::try_from(stats.bytes).unwrap_or(i64::MAX));
+        self.package_cache_fetched_bytes.inc_by(
+            stats
+                .fetched_bytes
+                .saturating_sub(self.package_cache_fetched_bytes.get()),
+        );
+        self.package_cache_limit_bytes
+            .set(i64::try_from(stats.max_bytes).unwrap_or(i64::MAX));
     }
 
     /// Records one swap event from the registry.

@@ -164,3 +164,34 @@ pub fn switchyard_ok(args: &[&str], cwd: &Path) -> String {
     );
     String::from_utf8(out.stdout).unwrap()
 }
+
+/// Asserts that `promtool check metrics` (Debian's `prometheus` package, which scripts/test
+/// unpacks) reports nothing on a `/metrics` page.
+pub fn assert_promtool_accepts(page: &str) {
+    use std::io::Write;
+    use std::process::{Command, Stdio};
+
+    let mut promtool = Command::new("promtool")
+        .args(["check", "metrics"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("promtool is not installed: `apt-get install prometheus` (scripts/test does it)");
+    promtool
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(page.as_bytes())
+        .unwrap();
+    let out = promtool.wait_with_output().unwrap();
+    let report = format!(
+        "{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        out.status.success() && report.trim().is_empty(),
+        "promtool check metrics reported:\n{report}\non:\n{page}"
+    );
+}

@@ -40,6 +40,44 @@ impl Pointer {
         }
     }
 
+    /// The pointer after `version` is set live over `old` (`None`: no pointer yet), or `None`
+    /// when `version` is live already and nothing changes. Publish and set-live share it, on
+    /// every backend.
+    pub fn next_live(old: Option<&Pointer>, version: &str) -> Option<Pointer> {
+        match old {
+            Some(p) if p.live == version => None,
+            Some(p) => Some(p.flipped_to(version)),
+            None => Some(Pointer {
+                live: version.to_owned(),
+                previous: Vec::new(),
+            }),
+        }
+    }
+
+    /// The pointer after a rollback: the most recent earlier live version is live again and
+    /// leaves the history. `None` when there is nothing to roll back to.
+    pub fn rolled_back(&self) -> Option<Pointer> {
+        let mut history = self.previous.iter().cloned();
+        let live = history.next()?;
+        Some(Pointer {
+            live,
+            previous: history.collect(),
+        })
+    }
+
+    /// The pointer with `version` dropped from the history, or `None` when it is not there.
+    pub fn without_history(&self, version: &str) -> Option<Pointer> {
+        self.previous.iter().any(|v| v == version).then(|| Pointer {
+            live: self.live.clone(),
+            previous: self
+                .previous
+                .iter()
+                .filter(|v| *v != version)
+                .cloned()
+                .collect(),
+        })
+    }
+
     /// The text written to the pointer file.
     pub fn render(&self) -> String {
         let mut text = format!("live {}\n", self.live);

@@ -101,3 +101,4 @@ pub fn whole_tag(adapter: &switchyard_adapters::Adapter) -> f32 {
     assert_eq!(sites, LAYERS * 2, "every targeted site present");
     tag
 }
+pub mod s3;

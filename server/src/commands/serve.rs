@@ -15,7 +15,7 @@ use axum::middleware::Next;
 use axum::response::{IntoResponse, Response};
 use switchyard_adapters::package::Limits;
 use switchyard_adapters::registry::{Registry, RegistryConfig};
-use switchyard_adapters::store::Store;
+use switchyard_adapters::store::{RemoteConfig, Store};
 use switchyard_config::{LogFormat, Overrides, Settings};
 use switchyard_kernels::WeightFormat;
 
@@ -184,8 +184,28 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         std::fs::create_dir_all(&store_dir)
             .with_context(|| format!("creating the store folder {}", store_dir.display()))?;
     }
-    let store = Store::open(&store_dir, Limits::default())
-        .with_context(|| format!("opening the store {}", store_dir.display()))?;
+    let store = match &settings.object_store {
+        None => Store::open(&store_dir, Limits::default())
+            .with_context(|| format!("opening the store {}", store_dir.display()))?,
+        Some(o) => {
+            let config = RemoteConfig {
+                endpoint: o.endpoint.clone(),
+                bucket: o.bucket.clone(),
+                prefix: o.prefix.clone(),
+                region: o.region.clone(),
+                access_key_id: o.access_key_id.clone(),
+                secret_access_key: o.secret_access_key.clone(),
+            };
+            // The store folder holds the package cache (and, by default, the experiments).
+            Store::open_remote(
+                &config,
+                &store_dir.join("package-cache"),
+                settings.store_cache_bytes,
+                Limits::default(),
+            )
+            .with_context(|| format!("opening the object store {}", config.url()))?
+        }
+    };
     let unfinished = store
         .remove_unfinished_writes()
         .with_context(|| format!("cleaning the store {}", store_dir.display()))?;

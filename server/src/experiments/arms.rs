@@ -75,14 +75,14 @@ pub fn check_arms(store: &Store, split: &Split) -> Result<(), ArmProblem> {
         }
         if let Some(version) = &arm.version {
             let field = format!("arms[{index}].version");
-            let path =
+            let stored =
                 store
-                    .version_path(&name, version)
+                    .has_version(&name, version)
                     .map_err(|e| ArmProblem::InvalidVersion {
                         field: field.clone(),
                         problem: e.to_string(),
                     })?;
-            if !path.is_file() {
+            if !stored {
                 return Err(ArmProblem::UnknownVersion {
                     field,
                     adapter: arm.adapter.clone(),

@@ -38,6 +38,10 @@ fn store_error(e: StoreError) -> ApiError {
         StoreError::UnknownVersion { .. } => ApiError::not_found("unknown_version", text),
         StoreError::NothingToRollBack { .. } => ApiError::conflict("no_previous_version", text),
         StoreError::RetireLive { .. } => ApiError::conflict("version_is_live", text),
+        StoreError::Conflict { .. } => ApiError::conflict("store_contended", text),
+        StoreError::Remote { .. } => {
+            ApiError::new(StatusCode::SERVICE_UNAVAILABLE, "store_unreachable", text)
+        }
         StoreError::Io { .. } if e.is_storage_full() => {
             ApiError::new(StatusCode::INSUFFICIENT_STORAGE, "store_full", text)
         }

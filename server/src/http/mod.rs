@@ -218,6 +218,9 @@ async fn ready(State(state): State<SharedState>) -> impl IntoResponse {
 
 async fn metrics(State(state): State<SharedState>) -> impl IntoResponse {
     state.metrics.queue_depth.set(state.engine.queued() as i64);
+    if let Some(stats) = state.registry.store().cache_stats() {
+        state.metrics.set_package_cache(&stats);
+    }
     (
         [(
             axum::http::header::CONTENT_TYPE,
