@@ -101,6 +101,12 @@ test("signing in shows the base model and every adapter with its tier", async ()
   const north = listing.adapters.find((a) => a.name === "north-routing");
   assert.equal(await row("north-routing").locator("[data-col=live]").getAttribute("title"), north.live);
   assert.equal(await row("north-routing").locator("[data-col=requests]").textContent(), "1");
+  // Swap stages, counted as /metrics counts them: north-routing's first request read it.
+  const metrics = await (await fetch(base + "/metrics", { headers: { Authorization: `Bearer ${token}` } })).text();
+  const reads = Number(/^switchyard_swap_seconds_count\{stage="read"\} (\S+)$/m.exec(metrics)[1]);
+  assert.ok(reads >= 1, metrics);
+  await page.locator(`#swaps tr[data-stage=read] [data-col=count]`, { hasText: String(reads) }).waitFor({ timeout: 3000 });
+  assert.equal(await page.locator("#swaps tr[data-stage=read] svg rect").count(), 18, "one bar per finite bucket (18, from 0.1 ms doubling)");
   // Memory against its budget, from the same listing.
   const factors = await page.locator("#memory [data-tier=factors]").textContent();
   assert.match(factors, /of /);

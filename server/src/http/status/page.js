@@ -168,9 +168,72 @@ function render(adapters, splits, readouts, metrics) {
   $("queue-chart").replaceChildren(sparkline(view.history.map((h) => h.queue), "queued requests", "var(--blue)"));
 
   renderMemory(mem);
+  renderSwaps(metrics);
   view.last = [adapters.adapters, requests, errors];
   renderAdapters(...view.last);
   renderSplits(splits, readouts);
+}
+
+// Histogram families of /metrics by one label: {value: {buckets: [[le, cumulative]], sum, count}}.
+function histograms(metrics, name, label) {
+  const out = {};
+  const get = (m) => (out[label ? m.labels[label] : ""] ||= { buckets: [], sum: 0, count: 0 });
+  for (const m of metrics) {
+    if (m.name === name + "_bucket") get(m).buckets.push([Number(m.labels.le), m.value]);
+    else if (m.name === name + "_sum") get(m).sum = m.value;
+    else if (m.name === name + "_count") get(m).count = m.value;
+  }
+  return out;
+}
+
+function seconds(x) {
+  if (!Number.isFinite(x)) return "-";
+  return x < 1 ? (x * 1000).toFixed(x < 0.01 ? 2 : 1) + " ms" : x.toFixed(2) + " s";
+}
+
+const mean = (h) => (h && h.count ? h.sum / h.count : NaN);
+
+// One histogram's bucket counts (not cumulative) as bars, one per finite bucket.
+function histogramBars(h, label) {
+  const finite = h.buckets.filter(([le]) => Number.isFinite(le)).sort((a, b) => a[0] - b[0]);
+  const counts = finite.map(([, c], i) => c - (i ? finite[i - 1][1] : 0));
+  const w = 180, hgt = 28, bw = w / Math.max(1, counts.length);
+  const max = Math.max(1, ...counts);
+  return svg("svg", { viewBox: `0 0 ${w} ${hgt}`, role: "img", "aria-label": label },
+    svg("title", {}, label),
+    svg("line", { x1: 0, y1: hgt - 0.5, x2: w, y2: hgt - 0.5, stroke: "#d8d4ca" }),
+    ...counts.map((c, i) => svg("rect", { x: (i * bw + 0.5).toFixed(1), width: Math.max(1, bw - 1).toFixed(1),
+      y: (hgt - 1 - (c / max) * (hgt - 2)).toFixed(1), height: ((c / max) * (hgt - 2)).toFixed(1), fill: "#0072b2" })));
+}
+
+function renderSwaps(metrics) {
+  const stages = histograms(metrics, "switchyard_swap_seconds", "stage");
+  const order = ["read", "validate", "convert", "load", "merge"];
+  const names = [...order.filter((s) => stages[s]), ...Object.keys(stages).filter((s) => !order.includes(s))];
+  $("swaps").tBodies[0].replaceChildren(...names.map((stage) => {
+    const h = stages[stage];
+    return el("tr", { "data-stage": stage },
+      el("th", { scope: "row" }, stage),
+      el("td", { class: "num", "data-col": "count" }, h.count),
+      el("td", { class: "num", "data-col": "mean" }, seconds(mean(h))),
+      el("td", { class: "chart hist" }, histogramBars(h, `${stage}: ${h.count} swaps`)));
+  }));
+  const one = (name) => histograms(metrics, name, null)[""];
+  const rows = one("switchyard_batch_rows");
+  $("batch-rows").textContent = rows && rows.count ? (rows.sum / rows.count).toFixed(2) : "-";
+  $("first-token").textContent = seconds(mean(one("switchyard_first_token_seconds")));
+  $("request-time").textContent = seconds(mean(one("switchyard_request_seconds")));
+  const cache = { hit: 0, miss: 0, eviction: 0 };
+  for (const m of metrics) {
+    if (m.name === "switchyard_cache_events_total" && m.labels.outcome in cache) cache[m.labels.outcome] += m.value;
+  }
+  $("cache-use").textContent = `${cache.miss} / ${cache.hit}`;
+  $("evictions").textContent = String(cache.eviction);
+  const last = view.history[view.history.length - 1];
+  if (last) last.evictions = cache.eviction;
+  const perPoll = view.history.map((h, i) => (i && h.evictions !== undefined && view.history[i - 1].evictions !== undefined
+    ? h.evictions - view.history[i - 1].evictions : 0));
+  $("eviction-chart").replaceChildren(sparkline(perPoll, "evictions per second", "var(--vermillion)"));
 }
 
 function sparkline(values, label, colour) {
@@ -178,10 +241,10 @@ function sparkline(values, label, colour) {
   const max = Math.max(1, ...values);
   const step = values.length > 1 ? w / (values.length - 1) : w;
   const points = values.map((v, i) => (i * step).toFixed(1) + "," + (h - 2 - (v / max) * (h - 4)).toFixed(1)).join(" ");
-  return svg("svg", { viewBox: `0 0 ${w} ${h}`, role: "img", "aria-label": label },
+  return svg("svg", { viewBox: `0 0 ${w} ${h}`, role: "img", "aria-label": label, class: "spark", preserveAspectRatio: "none" },
     svg("title", {}, label + ", last " + values.length + " readings, highest " + max),
-    svg("line", { x1: 0, y1: h - 1, x2: w, y2: h - 1, stroke: "#d8d4ca" }),
-    svg("polyline", { points, fill: "none", stroke: colour, "stroke-width": 2 }));
+    svg("line", { x1: 0, y1: h - 1, x2: w, y2: h - 1, stroke: "#d8d4ca", "vector-effect": "non-scaling-stroke" }),
+    svg("polyline", { points, fill: "none", stroke: colour, "stroke-width": 2, "vector-effect": "non-scaling-stroke" }));
 }
 
 function renderMemory(mem) {
