@@ -11,9 +11,10 @@ import { chromium } from "playwright-core";
 
 const base = process.env.SWITCHYARD_STATUS_URL;
 const token = process.env.SWITCHYARD_ADMIN_TOKEN;
+const tenantKey = process.env.SWITCHYARD_TENANT_KEY;
 const fixtures = process.env.SWITCHYARD_FIXTURES;
 const screenshots = process.env.SWITCHYARD_STATUS_SCREENSHOTS;
-assert.ok(base && token && fixtures, "run through `cargo test -p switchyard-tests --test status_page`");
+assert.ok(base && token && tenantKey && fixtures, "run through `cargo test -p switchyard-tests --test status_page`");
 assert.equal(new URL(base).hostname, "127.0.0.1");
 
 // The issue's bound: a publish, flip or rollback shows on the page within 2 s.
@@ -37,7 +38,7 @@ async function admin(method, route, body, contentType) {
 async function embed(target) {
   const resp = await fetch(base + "/embed", {
     method: "POST",
-    headers: { "Content-Type": "application/json" },
+    headers: { "Content-Type": "application/json", Authorization: `Bearer ${tenantKey}` },
     body: JSON.stringify({ ...target, texts: ["the gate opens at nine"] }),
   });
   const text = await resp.text();
@@ -101,6 +102,10 @@ test("signing in shows the base model and every adapter with its tier", async ()
   const north = listing.adapters.find((a) => a.name === "north-routing");
   assert.equal(await row("north-routing").locator("[data-col=live]").getAttribute("title"), north.live);
   assert.equal(await row("north-routing").locator("[data-col=requests]").textContent(), "1");
+  // The tenants whose patterns reach each adapter, in the configuration's order.
+  assert.equal(await row("north-routing").locator("[data-col=tenants]").textContent(),
+    "ridge-north (north-*); ridge-all (*-routing)");
+  assert.equal(await row("south-routing").locator("[data-col=tenants]").textContent(), "ridge-all (*-routing)");
   // Swap stages, counted as /metrics counts them: north-routing's first request read it.
   const metrics = await (await fetch(base + "/metrics", { headers: { Authorization: `Bearer ${token}` } })).text();
   const reads = Number(/^switchyard_swap_seconds_count\{stage="read"\} (\S+)$/m.exec(metrics)[1]);
@@ -166,7 +171,7 @@ test("a split's outcomes change its readout on the page", async () => {
     counts[arm] += 1;
     const resp = await fetch(base + "/outcomes", {
       method: "POST",
-      headers: { "Content-Type": "application/json" },
+      headers: { "Content-Type": "application/json", Authorization: `Bearer ${tenantKey}` },
       body: JSON.stringify({ response_id: answer.id, value }),
     });
     assert.equal(resp.status, 200, await resp.text());

@@ -15,11 +15,14 @@ use std::time::{Duration, Instant};
 
 use serde_json::json;
 use switchyard_tests::fixtures;
-use switchyard_tests::server::{ADMIN_TOKEN, ServerSetup};
+use switchyard_tests::server::{ADMIN_TOKEN, Auth, ServerSetup};
 
 /// The whole browser run (seven steps, the slowest about 20 split requests to a debug build)
 /// takes well under a minute here; past this it is killed and the test fails.
 const BROWSER_RUN_LIMIT: Duration = Duration::from_secs(300);
+
+/// The key of tenant `ridge-all`, which the browser script sends its requests and outcomes with.
+const TENANT_KEY: &str = "ridge-all-key-0123456789";
 
 fn browser_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("browser")
@@ -38,14 +41,19 @@ fn status_page_shows_adapters_swaps_and_readouts_live_in_headless_chromium() {
         "tests/browser has no node_modules: `npm ci` there (scripts/test does it)"
     );
 
-    let server = ServerSetup::encoder().start();
+    // Two tenants: the page names, per adapter, the tenants whose patterns reach it.
+    let server = ServerSetup::encoder()
+        .tenant("ridge-north", "ridge-north-key-0123456789", &["north-*"])
+        .tenant("ridge-all", TENANT_KEY, &["*-routing", "*-trial"])
+        .start();
     server.publish("north-routing", &fixtures().join("minilm-qv-a.safetensors"));
     server.publish("south-routing", &fixtures().join("minilm-qv-a.safetensors"));
     // One request brings north-routing's factors into memory; south-routing stays on disk.
     server
-        .embed(
-            json!({"adapter": "north-routing"}),
-            &["the gate opens at nine"],
+        .post(
+            "/embed",
+            Auth::Bearer(TENANT_KEY),
+            &json!({"adapter": "north-routing", "texts": ["the gate opens at nine"]}),
         )
         .ok_json();
 
@@ -55,6 +63,7 @@ fn status_page_shows_adapters_swaps_and_readouts_live_in_headless_chromium() {
         .current_dir(browser_dir())
         .env("SWITCHYARD_STATUS_URL", url.trim_end_matches('/'))
         .env("SWITCHYARD_ADMIN_TOKEN", ADMIN_TOKEN)
+        .env("SWITCHYARD_TENANT_KEY", TENANT_KEY)
         .env("SWITCHYARD_FIXTURES", fixtures())
         .env("SWITCHYARD_CHROMIUM", &chromium)
         .stdin(Stdio::null())
@@ -128,9 +137,6 @@ fn status_page_assets_answer_without_a_token_and_hold_no_data() {
     // The whole page, uncompressed; the README states its weight.
     assert!(total < 40_000, "the status page weighs {total} bytes");
     server
-        .get(
-            "/admin/adapters",
-            switchyard_tests::server::Auth::Bearer("wrong"),
-        )
+        .get("/admin/adapters", Auth::Bearer("wrong"))
         .assert_error(403, "admin_token_wrong");
 }

@@ -284,6 +284,7 @@ function adapterRows(adapters, requests, errors) {
       residentTiers: a.resident.map((r) => `${shortVersion(r.version)} ${r.tier}`),
       bytes: a.resident.reduce((s, r) => s + r.bytes, 0),
       pinned: a.pinned,
+      tenants: (a.tenants || []).map((t) => `${t.tenant} (${t.patterns.join(", ")})`).join("; "),
       requests: req,
       errors: errors[a.name] || 0,
       rate: Math.max(0, req - before) / spanMin,
@@ -294,7 +295,7 @@ function adapterRows(adapters, requests, errors) {
 function renderAdapters(adapters, requests, errors) {
   const rows = adapterRows(adapters, requests, errors);
   const f = view.filter.trim().toLowerCase();
-  const shown = rows.filter((r) => !f || [r.name, r.live, r.tier, ...r.others].some((s) => s.toLowerCase().includes(f)));
+  const shown = rows.filter((r) => !f || [r.name, r.live, r.tier, r.tenants, ...r.others].some((s) => s.toLowerCase().includes(f)));
   const key = view.sortKey;
   const value = (r) => (key === "others" ? r.others.length : key === "tier" ? TIER_RANK[r.tier] : r[key]);
   shown.sort((a, b) => {
@@ -313,11 +314,12 @@ function renderAdapters(adapters, requests, errors) {
       el("span", { class: "tier tier-" + r.tier }, r.tier)),
     el("td", { class: "num", "data-col": "bytes" }, bytes(r.bytes)),
     el("td", { "data-col": "pinned" }, r.pinned ? "pinned" : "no"),
+    el("td", { "data-col": "tenants" }, r.tenants || "no tenant"),
     el("td", { class: "num", "data-col": "requests" }, r.requests),
     el("td", { class: "num", "data-col": "errors" }, r.errors),
     el("td", { class: "num", "data-col": "rate" }, r.rate.toFixed(1)))));
   if (!shown.length) {
-    body.append(el("tr", {}, el("td", { colspan: 9 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
+    body.append(el("tr", {}, el("td", { colspan: 10 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
   }
 }
 
