@@ -117,7 +117,7 @@ test("signing in shows the base model and every adapter with its tier", async ()
   assert.match(factors, /of /);
 });
 
-test("a publish and a rollback show on the page within 2 s", async () => {
+test("a publish, a rollback and a flip show on the page within 2 s", async () => {
   const before = (await admin("GET", "/admin/adapters")).adapters.find((a) => a.name === "north-routing").live;
   const bytes = await readFile(path.join(fixtures, "minilm-qv-b.safetensors"));
   const published = await admin("PUT", "/admin/adapters/north-routing", bytes, "application/octet-stream");
@@ -132,6 +132,13 @@ test("a publish and a rollback show on the page within 2 s", async () => {
   const t1 = Date.now();
   await row("north-routing").locator(`[data-col=live][title="${before}"]`).waitFor({ timeout: LIVE_WITHIN_MS });
   assert.ok(Date.now() - t1 <= LIVE_WITHIN_MS, `rollback shown after ${Date.now() - t1} ms`);
+
+  await admin("POST", "/admin/adapters/north-routing/live", JSON.stringify({ version: published.version }),
+    "application/json");
+  const t2 = Date.now();
+  await row("north-routing").locator(`[data-col=live][title="${published.version}"]`)
+    .waitFor({ timeout: LIVE_WITHIN_MS });
+  assert.ok(Date.now() - t2 <= LIVE_WITHIN_MS, `flip shown after ${Date.now() - t2} ms`);
 });
 
 test("the adapters table filters and sorts, by keyboard too", async () => {
