@@ -7,13 +7,16 @@ import assert from "node:assert/strict";
 import { readFile, mkdtemp, rm } from "node:fs/promises";
 import { tmpdir } from "node:os";
 import path from "node:path";
+import { fileURLToPath } from "node:url";
 import { chromium } from "playwright-core";
 
 const base = process.env.SWITCHYARD_STATUS_URL;
 const token = process.env.SWITCHYARD_ADMIN_TOKEN;
 const tenantKey = process.env.SWITCHYARD_TENANT_KEY;
 const fixtures = process.env.SWITCHYARD_FIXTURES;
-const screenshots = process.env.SWITCHYARD_STATUS_SCREENSHOTS;
+// A relative folder is taken from the workspace root, as the README's command gives it.
+const screenshots = process.env.SWITCHYARD_STATUS_SCREENSHOTS &&
+  path.resolve(fileURLToPath(new URL("../..", import.meta.url)), process.env.SWITCHYARD_STATUS_SCREENSHOTS);
 assert.ok(base && token && tenantKey && fixtures, "run through `cargo test -p switchyard-tests --test status_page`");
 assert.equal(new URL(base).hostname, "127.0.0.1");
 
