@@ -105,6 +105,8 @@ test("signing in shows the base model and every adapter with its tier", async ()
   const north = listing.adapters.find((a) => a.name === "north-routing");
   assert.equal(await row("north-routing").locator("[data-col=live]").getAttribute("title"), north.live);
   assert.equal(await row("north-routing").locator("[data-col=requests]").textContent(), "1");
+  assert.equal(await row("north-routing").locator("[data-col=last-used]").textContent(), "before this page opened");
+  assert.equal(await row("south-routing").locator("[data-col=last-used]").textContent(), "never");
   // The tenants whose patterns reach each adapter, in the configuration's order.
   assert.equal(await row("north-routing").locator("[data-col=tenants]").textContent(),
     "ridge-north (north-*); ridge-all (*-routing)");
@@ -192,6 +194,8 @@ test("a split's outcomes change its readout on the page", async () => {
   await interval.waitFor({ timeout: LIVE_WITHIN_MS });
   assert.ok(Date.now() - t0 <= LIVE_WITHIN_MS);
   assert.equal(await split.locator('tr[data-arm="candidate"] [data-col=outcomes]').textContent(), "10");
+  // Split traffic reached south-routing while the page watched.
+  assert.match(await row("south-routing").locator("[data-col=last-used]").textContent(), /^\d+ s ago$/);
   const readout = await admin("GET", "/admin/splits/north-trial/readout");
   const compared = readout.arms[1].numeric.versus_first_always_valid;
   const difference = Number(await interval.getAttribute("data-difference"));

@@ -15,6 +15,7 @@ const view = {
   sortDir: 1,
   filter: "",
   history: [], // {t, queue, factors, merged, requests: {adapter: count}}
+  lastSeen: {}, // adapter: when this page last saw its request count grow
   timer: null,
   generation: 0,
 };
@@ -49,6 +50,11 @@ function bytes(n) {
   let x = n;
   while (x >= 1024 && i < units.length - 1) { x /= 1024; i += 1; }
   return (i === 0 ? x : x.toFixed(x < 10 ? 2 : 1)) + " " + units[i];
+}
+
+function ago(t) {
+  const s = Math.max(0, Math.round((Date.now() - t) / 1000));
+  return s < 60 ? `${s} s ago` : s < 3600 ? `${Math.floor(s / 60)} min ago` : `${Math.floor(s / 3600)} h ago`;
 }
 
 function shortVersion(v) { return v ? v.slice(0, 12) : "-"; }
@@ -156,6 +162,10 @@ function render(adapters, splits, readouts, metrics) {
     }
   }
   const mem = adapters.memory;
+  const previous = view.history[view.history.length - 1];
+  for (const [a, n] of Object.entries(requests)) {
+    if (previous && n > (previous.requests[a] || 0)) view.lastSeen[a] = now;
+  }
   view.history.push({ t: now, queue, factors: mem.factors.bytes, merged: mem.merged.bytes, requests });
   while (view.history.length && view.history[0].t < now - HISTORY_MS) view.history.shift();
 
@@ -288,6 +298,7 @@ function adapterRows(adapters, requests, errors) {
       requests: req,
       errors: errors[a.name] || 0,
       rate: Math.max(0, req - before) / spanMin,
+      lastUsed: view.lastSeen[a.name] || 0,
     };
   });
 }
@@ -317,9 +328,10 @@ function renderAdapters(adapters, requests, errors) {
     el("td", { "data-col": "tenants" }, r.tenants || "no tenant"),
     el("td", { class: "num", "data-col": "requests" }, r.requests),
     el("td", { class: "num", "data-col": "errors" }, r.errors),
-    el("td", { class: "num", "data-col": "rate" }, r.rate.toFixed(1)))));
+    el("td", { class: "num", "data-col": "rate" }, r.rate.toFixed(1)),
+    el("td", { "data-col": "last-used" }, r.lastUsed ? ago(r.lastUsed) : r.requests ? "before this page opened" : "never"))));
   if (!shown.length) {
-    body.append(el("tr", {}, el("td", { colspan: 10 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
+    body.append(el("tr", {}, el("td", { colspan: 11 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
   }
 }
 
