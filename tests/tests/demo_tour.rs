@@ -45,6 +45,11 @@ fn the_demo_tour_runs_every_step_against_a_real_server() {
             "the tour did not print {expected:?}:\n{stdout}"
         );
     }
+    // The demo names the status page's address.
+    assert!(
+        stderr.contains("== status page: http://127.0.0.1:") && stderr.contains("/status"),
+        "the demo did not print the status page's address:\n{stderr}"
+    );
     // --no-serve stops the server instead of waiting for Ctrl-C.
     assert!(!stdout.contains("keeps serving"), "{stdout}");
 }

@@ -217,7 +217,7 @@ pub async fn unpin(
 }
 
 /// `GET /admin/adapters`: every adapter in the store with its versions, which is live, what is
-/// resident in which tier, and the bytes each tier holds.
+/// resident in which tier, the tenants whose patterns reach it, and the bytes each tier holds.
 pub async fn list(
     State(state): State<SharedState>,
     headers: HeaderMap,
@@ -232,6 +232,7 @@ pub async fn list(
         ),
         "weight_bytes": state.backbone.weight_bytes(),
     });
+    let shared = state.clone();
     blocking(&state, move |r| {
         let names = r.store().names().map_err(store_error)?;
         let entries = r.entries();
@@ -251,6 +252,9 @@ pub async fn list(
                 "pinned": pinned.contains(&name),
                 "versions": versions.iter().map(|v| json!({"version": v.version, "bytes": v.bytes})).collect::<Vec<_>>(),
                 "resident": resident,
+                "tenants": shared.tenants.reaching(name.as_str()).into_iter()
+                    .map(|(tenant, patterns)| json!({"tenant": tenant, "patterns": patterns}))
+                    .collect::<Vec<_>>(),
             }));
         }
         let res = r.residency();

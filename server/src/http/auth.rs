@@ -115,6 +115,24 @@ impl Tenants {
         self.open.is_some()
     }
 
+    /// Each tenant that may address `adapter`, with the patterns of its that match the name; the
+    /// open tenant (`default`, pattern `*`) when none is configured. The status page shows it.
+    pub fn reaching(&self, adapter: &str) -> Vec<(&str, Vec<&str>)> {
+        self.open
+            .iter()
+            .chain(&self.tenants)
+            .filter_map(|t| {
+                let matching: Vec<&str> = t
+                    .patterns
+                    .iter()
+                    .filter(|p| pattern_matches(p, adapter))
+                    .map(String::as_str)
+                    .collect();
+                (!matching.is_empty()).then_some((t.name.as_str(), matching))
+            })
+            .collect()
+    }
+
     /// The tenant whose key the `Authorization` header carries (`Bearer <key>`).
     pub fn authenticate(
         &self,
@@ -408,6 +426,24 @@ mod tests {
                 "{pattern} ~ {name}"
             );
         }
+    }
+
+    #[test]
+    fn reaching_names_each_tenant_whose_patterns_match_with_those_patterns() {
+        let tenants = ridgeline();
+        assert_eq!(
+            tenants.reaching("north-routing"),
+            vec![("ridgeline-north", vec!["north-*"])]
+        );
+        assert_eq!(
+            tenants.reaching("south-urgency"),
+            vec![("ridgeline-south", vec!["south-*"])]
+        );
+        assert!(tenants.reaching("west-routing").is_empty());
+        assert_eq!(
+            Tenants::new(&[]).reaching("west-routing"),
+            vec![(OPEN_TENANT, vec!["*"])]
+        );
     }
 
     #[test]

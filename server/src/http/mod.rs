@@ -5,6 +5,7 @@
 //! - [`inference`]: `POST /embed`, `/classify`, `/generate` (JSON or SSE), `/outcomes`
 //! - [`admin`]: adapter versions, live pointer, rollback, retire, pins, listing
 //! - [`splits`]: A/B splits, their assignment and readout
+//! - [`status`]: the status page (`GET /status`), whose script reads the admin API
 //! - `GET /health/live`, `/health/ready`, `/metrics`
 
 pub mod admin;
@@ -14,6 +15,7 @@ pub mod extract;
 pub mod gate;
 pub mod inference;
 pub mod splits;
+pub mod status;
 
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -167,6 +169,9 @@ pub fn router(state: SharedState) -> Router {
         .merge(metrics)
         .route("/health/live", get(live))
         .route("/health/ready", get(ready))
+        .route("/status", get(status::page))
+        .route("/status/page.css", get(status::style))
+        .route("/status/page.js", get(status::script))
         .layer(DefaultBodyLimit::max(bounds.inference_body_bytes))
         .merge(upload)
         .fallback(|| async {
