@@ -12,9 +12,9 @@
 //! guarantees they see one whole pointer, and the pointer only ever names versions on disk.
 //! Retiring the live version is refused, and retiring an older one drops it from the history.
 //!
-//! The same operations run against an S3-compatible object store ([`remote`]), for several
+//! The same operations run against an S3-compatible object store (`store::remote`), for several
 //! replicas sharing one store: there the pointer is replaced by a conditional write instead of
-//! under a lock, and reads go through a byte-bounded local cache of package files ([`cache`]).
+//! under a lock, and reads go through a byte-bounded local cache of package files (`store::cache`).
 //! [`Store::open`] and [`Store::create`] give the disk store, [`Store::open_remote`] the other.
 
 mod cache;
