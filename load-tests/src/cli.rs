@@ -3,7 +3,7 @@
 //! their own servers. Flags are
 //! checked as they are parsed, so a bad value is refused with the flag and the value named.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, bail};
@@ -164,16 +164,7 @@ pub fn soak(args: &SoakArgs, command_line: &str) -> anyhow::Result<crate::soak::
             args.adapters
         );
     }
-    if !args.server_bin.is_file() {
-        bail!(
-            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
-            args.server_bin.display()
-        );
-    }
-    // The server runs in its own folder: paths must not depend on this one.
-    let absolute = |p: &PathBuf, flag: &str| {
-        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
-    };
+    check_server_bin(&args.server_bin)?;
     crate::soak::run_soak(&crate::soak::SoakSettings {
         server_bin: absolute(&args.server_bin, "--server-bin")?,
         model_dir: absolute(&args.model, "--model")?,
@@ -579,16 +570,7 @@ pub fn run(args: &RunArgs, command_line: &str) -> anyhow::Result<Report> {
 
 /// `switchyard-load overhead`.
 pub fn overhead(args: &OverheadArgs, command_line: &str) -> anyhow::Result<Report> {
-    if !args.server_bin.is_file() {
-        bail!(
-            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
-            args.server_bin.display()
-        );
-    }
-    // The servers run in their own folders: paths must not depend on this one.
-    let absolute = |p: &PathBuf, flag: &str| {
-        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
-    };
+    check_server_bin(&args.server_bin)?;
     run_overhead(&OverheadSettings {
         server_bin: absolute(&args.server_bin, "--server-bin")?,
         model_dir: absolute(&args.model, "--model")?,
@@ -602,20 +584,29 @@ pub fn overhead(args: &OverheadArgs, command_line: &str) -> anyhow::Result<Repor
     })
 }
 
+/// Refuses a `--server-bin` that is not a file, saying how to build one.
+fn check_server_bin(bin: &Path) -> anyhow::Result<()> {
+    if !bin.is_file() {
+        bail!(
+            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
+            bin.display()
+        );
+    }
+    Ok(())
+}
+
+/// `p` made absolute, naming `flag` when it cannot be: a scenario's servers run in their own
+/// folders, so paths must not depend on this one.
+fn absolute(p: &Path, flag: &str) -> anyhow::Result<PathBuf> {
+    std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
+}
+
 /// `switchyard-load serving`.
 pub fn serving(
     args: &ServingArgs,
     command_line: &str,
 ) -> anyhow::Result<crate::serving::ServingReport> {
-    if !args.server_bin.is_file() {
-        bail!(
-            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
-            args.server_bin.display()
-        );
-    }
-    let absolute = |p: &PathBuf, flag: &str| {
-        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
-    };
+    check_server_bin(&args.server_bin)?;
     crate::serving::run_serving(&crate::serving::ServingSettings {
         server_bin: absolute(&args.server_bin, "--server-bin")?,
         model_dir: absolute(&args.model, "--model")?,
@@ -631,15 +622,7 @@ pub fn serving(
 
 /// `switchyard-load fairness`.
 pub fn fairness(args: &FairnessArgs, command_line: &str) -> anyhow::Result<Report> {
-    if !args.server_bin.is_file() {
-        bail!(
-            "--server-bin {} is not a file (build it: cargo build --release -p switchyard-server)",
-            args.server_bin.display()
-        );
-    }
-    let absolute = |p: &PathBuf, flag: &str| {
-        std::fs::canonicalize(p).with_context(|| format!("{flag} {}", p.display()))
-    };
+    check_server_bin(&args.server_bin)?;
     run_fairness(&FairnessSettings {
         server_bin: absolute(&args.server_bin, "--server-bin")?,
         model_dir: absolute(&args.model, "--model")?,

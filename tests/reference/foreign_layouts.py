@@ -36,7 +36,7 @@ from pathlib import Path
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 os.environ.setdefault("CUDA_VISIBLE_DEVICES", "")
 
-import peft  # noqa: E402
+import peft as training_library  # noqa: E402
 import torch  # noqa: E402
 from peft import LoraConfig, get_peft_model  # noqa: E402
 from sentence_transformers import SentenceTransformer  # noqa: E402
@@ -121,7 +121,7 @@ def main() -> None:
     torch.set_num_threads(g.THREADS)
     torch.use_deterministic_algorithms(True)
     out = {
-        "generated_by": g.versions() | {"lora_library": peft.__version__,
+        "generated_by": g.versions() | {"training_library": training_library.__version__,
                                         "script": "tests/reference/foreign_layouts.py"},
         "minilm": minilm(),
         "tiny_llama": tiny_llama(),

@@ -115,6 +115,19 @@ pub fn without_password(url: &str) -> String {
     }
 }
 
+/// A read-only transaction that sees one snapshot for all its queries.
+fn snapshot<'a>(
+    client: &'a mut Client,
+    action: &'static str,
+) -> Result<Transaction<'a>, ExperimentError> {
+    client
+        .build_transaction()
+        .isolation_level(postgres::IsolationLevel::RepeatableRead)
+        .read_only(true)
+        .start()
+        .map_err(db(action))
+}
+
 fn count(n: i64) -> u64 {
     u64::try_from(n).unwrap_or(0)
 }
@@ -339,12 +352,7 @@ impl ExperimentStore for PostgresStore {
     fn splits(&self) -> Result<Vec<SplitState>, ExperimentError> {
         let mut client = self.client.lock();
         // One snapshot for the list and every split's arms.
-        let mut tx = client
-            .build_transaction()
-            .isolation_level(postgres::IsolationLevel::RepeatableRead)
-            .read_only(true)
-            .start()
-            .map_err(db("listing splits"))?;
+        let mut tx = snapshot(&mut client, "listing splits")?;
         let names: Vec<(i64, String)> = tx
             .query("SELECT generation, name FROM splits ORDER BY name", &[])
             .map_err(db("listing splits"))?
@@ -361,12 +369,7 @@ impl ExperimentStore for PostgresStore {
 
     fn split(&self, name: &str) -> Result<Option<SplitState>, ExperimentError> {
         let mut client = self.client.lock();
-        let mut tx = client
-            .build_transaction()
-            .isolation_level(postgres::IsolationLevel::RepeatableRead)
-            .read_only(true)
-            .start()
-            .map_err(db("reading a split"))?;
+        let mut tx = snapshot(&mut client, "reading a split")?;
         let generation: Option<i64> = tx
             .query_opt("SELECT generation FROM splits WHERE name = $1", &[&name])
             .map_err(db("reading a split"))?
