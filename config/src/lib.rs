@@ -116,6 +116,9 @@ pub struct Settings {
     pub metrics_public: bool,
     /// Most distinct adapter names the request metrics label; the rest count as `other`.
     pub metrics_adapter_series: usize,
+    /// How often the server samples its memory per tier, queue and running counts for
+    /// `GET /admin/history` (the status page's last hour), in milliseconds.
+    pub history_interval_ms: u64,
     /// API keys, the adapters each tenant may use and its quota; empty means open (no keys
     /// asked).
     pub tenants: Vec<TenantSettings>,
@@ -254,6 +257,7 @@ impl Default for Settings {
             admin_token: None,
             metrics_public: false,
             metrics_adapter_series: 100,
+            history_interval_ms: 10_000,
             tenants: Vec::new(),
             log_format: LogFormat::Human,
             log_filter: "info".to_owned(),
@@ -484,6 +488,12 @@ impl Settings {
                 d.metrics_adapter_series as u64,
                 1..=10_000,
             )?),
+            // 100 ms (a test's pace) to 10 minutes; the last hour is kept either way.
+            history_interval_ms: src.whole(
+                &read::HISTORY_INTERVAL_MS,
+                d.history_interval_ms,
+                100..=600_000,
+            )?,
             tenants,
             log_format: match src.text(&read::LOG_FORMAT, false)? {
                 None => d.log_format,
@@ -674,6 +684,7 @@ impl fmt::Debug for Settings {
             )
             .field("metrics_public", &self.metrics_public)
             .field("metrics_adapter_series", &self.metrics_adapter_series)
+            .field("history_interval_ms", &self.history_interval_ms)
             .field("tenants", &self.tenants)
             .field("log_format", &self.log_format)
             .field("log_filter", &self.log_filter)

@@ -160,6 +160,11 @@ pub(crate) const METRICS_ADAPTER_SERIES: SettingKey = SettingKey::new(
     "adapter_series",
     "SWITCHYARD_METRICS_ADAPTER_SERIES",
 );
+pub(crate) const HISTORY_INTERVAL_MS: SettingKey = SettingKey::new(
+    "metrics",
+    "history_interval_ms",
+    "SWITCHYARD_METRICS_HISTORY_INTERVAL_MS",
+);
 pub(crate) const LOG_FORMAT: SettingKey = SettingKey::new("log", "format", "SWITCHYARD_LOG_FORMAT");
 pub(crate) const LOG_FILTER: SettingKey = SettingKey::new("log", "filter", "SWITCHYARD_LOG");
 pub(crate) const EXPERIMENTS_DATABASE: SettingKey =
@@ -221,6 +226,7 @@ pub const KEYS: &[SettingKey] = &[
     ADMIN_TOKEN,
     METRICS_PUBLIC,
     METRICS_ADAPTER_SERIES,
+    HISTORY_INTERVAL_MS,
     LOG_FORMAT,
     LOG_FILTER,
     EXPERIMENTS_DATABASE,

@@ -153,6 +153,7 @@ pub(crate) fn render(s: &Settings) -> String {
     }
     page.line(&read::METRICS_PUBLIC, s.metrics_public);
     page.line(&read::METRICS_ADAPTER_SERIES, s.metrics_adapter_series);
+    page.line(&read::HISTORY_INTERVAL_MS, s.history_interval_ms);
     page.line(&read::LOG_FORMAT, quoted(s.log_format.as_str()));
     page.line(&read::LOG_FILTER, quoted(&s.log_filter));
     match s.experiments_database_path() {

@@ -56,6 +56,7 @@ fn defaults_apply_without_file_or_environment() {
     );
     assert!(!s.metrics_public);
     assert_eq!(s.metrics_adapter_series, 100);
+    assert_eq!(s.history_interval_ms, 10_000);
     assert_eq!(s.factor_budget_bytes, 1 << 30);
     assert_eq!(s.merged_budget_bytes, 2 << 30);
     assert_eq!((s.promote_share, s.promote_window_rows), (0.9, 512));
@@ -160,6 +161,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         ),
         (&read::METRICS_PUBLIC, "true", "true"),
         (&read::METRICS_ADAPTER_SERIES, "7", "7"),
+        (&read::HISTORY_INTERVAL_MS, "500", "500"),
         (&read::LOG_FORMAT, "\"json\"", "json"),
         (&read::LOG_FILTER, "\"debug\"", "debug"),
         (&read::EXPERIMENTS_DATABASE, "\"e.sqlite\"", "e.sqlite"),
@@ -234,6 +236,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         admin_token: Some("admin-token-0123456789".into()),
         metrics_public: true,
         metrics_adapter_series: 7,
+        history_interval_ms: 500,
         tenants: Vec::new(),
         log_format: LogFormat::Json,
         log_filter: "debug".into(),
@@ -312,6 +315,11 @@ fn each_range_is_enforced_at_both_ends() {
             "[metrics]\nadapter_series = 0",
             "metrics.adapter_series",
             "0",
+        ),
+        (
+            "[metrics]\nhistory_interval_ms = 50",
+            "metrics.history_interval_ms",
+            "50",
         ),
         (
             "[residency]\nfactor_budget_bytes = 0",

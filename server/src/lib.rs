@@ -5,6 +5,7 @@
 pub mod commands;
 pub mod engine;
 pub mod experiments;
+pub mod history;
 pub mod http;
 pub mod metrics;
 pub mod model;

@@ -66,6 +66,13 @@ pub struct PromptLabels {
     pub source: String,
 }
 
+/// Whether a request's adapter had to be brought into the factor tier for it (`cold`) or was
+/// resident (`warm`).
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct StartLabels {
+    pub start: String,
+}
+
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct ArmLabels {
     pub split: String,
@@ -88,6 +95,7 @@ pub struct Metrics {
     pub batch_rows: Histogram,
     pub first_token_seconds: Histogram,
     pub request_seconds: Histogram,
+    pub adapter_answer_seconds: Family<StartLabels, Histogram, fn() -> Histogram>,
     pub generated_tokens: Counter,
     pub prompt_tokens: Family<PromptLabels, Counter>,
     pub prefix_cache_bytes: Gauge,
@@ -103,6 +111,8 @@ pub struct Metrics {
     /// Adapter names that have their own request series; at most `adapter_series` of them.
     labelled_adapters: Mutex<HashSet<String>>,
     adapter_series: usize,
+    /// Evictions from the factor and merged tiers so far (the package cache counts its own).
+    evictions: AtomicU64,
 }
 
 /// The tier label of the package cache, the local disk tier in front of an object store.
@@ -175,6 +185,17 @@ impl Metrics {
             "request_seconds",
             "Time from admission to the last byte of the answer",
             request_seconds.clone(),
+        );
+        let adapter_answer_seconds =
+            Family::<StartLabels, Histogram, fn() -> Histogram>::new_with_constructor(
+                seconds_histogram,
+            );
+        registry.register(
+            "adapter_answer_seconds",
+            "Time from arrival to the answer (a generation: to its first token) of requests \
+             served by an adapter, by whether its factors were loaded for the request (cold) or \
+             resident (warm)",
+            adapter_answer_seconds.clone(),
         );
         let generated_tokens = Counter::default();
         registry.register(
@@ -258,6 +279,7 @@ impl Metrics {
             batch_rows,
             first_token_seconds,
             request_seconds,
+            adapter_answer_seconds,
             generated_tokens,
             prompt_tokens,
             prefix_cache_bytes,
@@ -272,6 +294,7 @@ impl Metrics {
             package_cache_limit_bytes,
             labelled_adapters: Mutex::new(HashSet::new()),
             adapter_series,
+            evictions: AtomicU64::new(0),
         }
     }
 
@@ -400,6 +423,21 @@ impl Metrics {
             .set(i64::try_from(stats.max_bytes).unwrap_or(i64::MAX));
     }
 
+    /// Evictions from the factor and merged tiers so far.
+    pub fn evictions(&self) -> u64 {
+        self.evictions.load(std::sync::atomic::Ordering::Relaxed)
+    }
+
+    /// Records how long a request served by an adapter took to its answer (a generation: to
+    /// its first token); `resident`: its adapter was resident when it arrived.
+    pub fn adapter_answer(&self, resident: bool, took: std::time::Duration) {
+        self.adapter_answer_seconds
+            .get_or_create(&StartLabels {
+                start: if resident { "warm" } else { "cold" }.to_owned(),
+            })
+            .observe(took.as_secs_f64());
+    }
+
     /// Records one swap event from the registry.
     pub fn record_swap(&self, event: &SwapEvent) {
         let stage = |s: &str, d: std::time::Duration| {
@@ -420,7 +458,11 @@ impl Metrics {
                 );
             }
             SwapKind::Merged => stage("merge", event.timings.merge),
-            SwapKind::Evicted { tier } => self.cache_event(*tier, "eviction"),
+            SwapKind::Evicted { tier } => {
+                self.cache_event(*tier, "eviction");
+                self.evictions
+                    .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+            }
             _ => {}
         }
         for (tier, r) in [

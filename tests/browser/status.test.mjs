@@ -105,8 +105,15 @@ test("signing in shows the base model and every adapter with its tier", async ()
   const north = listing.adapters.find((a) => a.name === "north-routing");
   assert.equal(await row("north-routing").locator("[data-col=live]").getAttribute("title"), north.live);
   assert.equal(await row("north-routing").locator("[data-col=requests]").textContent(), "1");
-  assert.equal(await row("north-routing").locator("[data-col=last-used]").textContent(), "before this page opened");
+  // Last use comes from the server, so a request before the page opened shows.
+  assert.match(await row("north-routing").locator("[data-col=last-used]").textContent(), /^\d+ s ago$/);
   assert.equal(await row("south-routing").locator("[data-col=last-used]").textContent(), "never");
+  // The last hour's charts start from the server's samples (the Rust test waited for at least
+  // five before starting this script), not from the page's first poll.
+  const readings = Number(/last (\d+) readings/.exec(await page.textContent("#queue-chart title"))[1]);
+  assert.ok(readings >= 5, `the queue chart has ${readings} readings right after sign-in`);
+  const memoryReadings = await page.textContent("#memory [data-tier=factors] svg.spark title");
+  assert.ok(Number(/last (\d+) readings/.exec(memoryReadings)[1]) >= 5, memoryReadings);
   // The tenants whose patterns reach each adapter, in the configuration's order.
   assert.equal(await row("north-routing").locator("[data-col=tenants]").textContent(),
     "ridge-north (north-*); ridge-all (*-routing)");
@@ -117,6 +124,15 @@ test("signing in shows the base model and every adapter with its tier", async ()
   assert.ok(reads >= 1, metrics);
   await page.locator(`#swaps tr[data-stage=read] [data-col=count]`, { hasText: String(reads) }).waitFor({ timeout: 3000 });
   assert.equal(await page.locator("#swaps tr[data-stage=read] svg rect").count(), 18, "one bar per finite bucket (18, from 0.1 ms doubling)");
+  // Cold against warm answers, counted as /metrics counts them: north-routing's one request
+  // loaded it (cold); none found an adapter resident yet.
+  const cold = Number(/^switchyard_adapter_answer_seconds_count\{start="cold"\} (\S+)$/m.exec(metrics)[1]);
+  assert.equal(cold, 1);
+  assert.equal(await page.textContent("#timings tr[data-measure=cold] [data-col=count]"), "1");
+  assert.equal(await page.textContent("#timings tr[data-measure=warm] [data-col=count]"), "0");
+  assert.equal(await page.locator("#timings tr[data-measure=cold] svg rect").count(), 18);
+  assert.equal(await page.locator("#timings tr[data-measure=batch-rows] svg rect").count(), 12,
+    "rows per pass: one bar per finite bucket (12, from 1 doubling)");
   // Memory against its budget, from the same listing.
   const factors = await page.locator("#memory [data-tier=factors]").textContent();
   assert.match(factors, /of /);

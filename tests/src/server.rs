@@ -493,6 +493,18 @@ impl Server {
         self.agent = agent();
     }
 
+    /// Starts the server again after [`Server::kill`] on its old address (a restarted replica
+    /// keeps its place behind a front that names it by address).
+    pub fn start_again_at_same_address(&mut self) {
+        assert!(self.child.is_none(), "the server is still running");
+        let mut env = self.env.clone();
+        env.push(("SWITCHYARD_LISTEN".to_owned(), self.addr.clone()));
+        let (child, addr) = spawn(self.dir.path(), &self.config, &env);
+        assert_eq!(addr, self.addr, "the restarted server listens elsewhere");
+        self.child = Some(child);
+        self.agent = agent();
+    }
+
     /// Kills the server with SIGKILL and starts it again on the same config and store.
     pub fn crash_and_restart(&mut self) {
         self.kill();

@@ -28,6 +28,126 @@ fn browser_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("browser")
 }
 
+fn history_samples(server: &switchyard_tests::server::Server) -> Vec<serde_json::Value> {
+    server.get("/admin/history", Auth::Admin).ok_json()["samples"]
+        .as_array()
+        .unwrap()
+        .clone()
+}
+
+fn metric(page: &str, series: &str) -> f64 {
+    page.lines()
+        .find_map(|l| l.strip_prefix(series)?.strip_prefix(' '))
+        .map_or(0.0, |v| v.trim().parse().unwrap())
+}
+
+/// What the page's last-hour charts and its cold/warm row read: `GET /admin/history` samples
+/// memory per tier against its budget, the queue and the running counts at the configured
+/// interval, `since_ms` keeps the newer ones, a bad query is refused by name, each adapter's last
+/// use is listed, and an adapter's first request counts as cold, the next as warm.
+#[test]
+fn the_server_keeps_its_last_hour_of_samples_and_each_adapters_last_use() {
+    let server = ServerSetup::encoder()
+        .set("metrics", "history_interval_ms", "100")
+        .start();
+    server.publish("north-routing", &fixtures().join("minilm-qv-a.safetensors"));
+    server.publish("south-routing", &fixtures().join("minilm-qv-a.safetensors"));
+    let before = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_millis() as u64;
+    for _ in 0..2 {
+        server
+            .embed(
+                json!({"adapter": "north-routing"}),
+                &["the gate opens at nine"],
+            )
+            .ok_json();
+    }
+    let listing = server.get("/admin/adapters", Auth::Admin).ok_json();
+    let factors = listing["memory"]["factors"]["bytes"].as_u64().unwrap();
+    assert!(factors > 0, "{listing}");
+    let used = |name: &str| {
+        listing["adapters"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|a| a["name"] == name)
+            .unwrap()["last_used_ms"]
+            .clone()
+    };
+    let north = used("north-routing")
+        .as_u64()
+        .expect("north-routing was used");
+    assert!(north >= before, "{north} < {before}");
+    assert_eq!(used("south-routing"), serde_json::Value::Null);
+
+    // A sample taken after the requests shows them, and the factor bytes the listing shows.
+    let begin = Instant::now();
+    let sample = loop {
+        let samples = history_samples(&server);
+        if let Some(s) = samples.iter().find(|s| s["requests"].as_u64() >= Some(2)) {
+            break s.clone();
+        }
+        assert!(begin.elapsed() < Duration::from_secs(10), "{samples:?}");
+        std::thread::sleep(Duration::from_millis(50));
+    };
+    assert_eq!(sample["factors_bytes"].as_u64(), Some(factors), "{sample}");
+    assert!(sample["factors_budget_bytes"].as_u64().unwrap() >= factors);
+    assert_eq!(sample["loads"], 1, "{sample}");
+    assert_eq!(sample["errors"], 0, "{sample}");
+    assert!(sample["queued"].is_u64(), "{sample}");
+    assert!(
+        sample.get("disk_bytes").is_none(),
+        "a local store has no disk tier: {sample}"
+    );
+
+    // since_ms keeps only later samples; the answer names its interval.
+    let all = server.get("/admin/history", Auth::Admin).ok_json();
+    assert_eq!(all["interval_ms"], 100);
+    assert_eq!(all["kept"], 36_000);
+    let samples = all["samples"].as_array().unwrap();
+    assert!(samples.len() >= 2, "{all}");
+    let cut = samples[samples.len() - 2]["at_ms"].as_u64().unwrap();
+    let later = server
+        .get(&format!("/admin/history?since_ms={cut}"), Auth::Admin)
+        .ok_json();
+    assert!(
+        later["samples"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .all(|s| s["at_ms"].as_u64().unwrap() > cut),
+        "{later}"
+    );
+    server
+        .get("/admin/history?since_ms=noon", Auth::Admin)
+        .assert_error(400, "invalid_query");
+    server
+        .get("/admin/history?from=3", Auth::Admin)
+        .assert_error(400, "invalid_query");
+    server
+        .get("/admin/history", Auth::None)
+        .assert_error(401, "admin_token_required");
+
+    // The first request loaded north-routing (cold), the second found it resident (warm).
+    let page = server.get("/metrics", Auth::Admin).body;
+    assert_eq!(
+        metric(
+            &page,
+            r#"switchyard_adapter_answer_seconds_count{start="cold"}"#
+        ),
+        1.0
+    );
+    assert_eq!(
+        metric(
+            &page,
+            r#"switchyard_adapter_answer_seconds_count{start="warm"}"#
+        ),
+        1.0
+    );
+}
+
 #[test]
 fn status_page_shows_adapters_swaps_and_readouts_live_in_headless_chromium() {
     let chromium =
@@ -42,7 +162,9 @@ fn status_page_shows_adapters_swaps_and_readouts_live_in_headless_chromium() {
     );
 
     // Two tenants: the page names, per adapter, the tenants whose patterns reach it.
+    // Samples every 200 ms, so the history holds several before the page opens.
     let server = ServerSetup::encoder()
+        .set("metrics", "history_interval_ms", "200")
         .tenant("ridge-north", "ridge-north-key-0123456789", &["north-*"])
         .tenant("ridge-all", TENANT_KEY, &["*-routing", "*-trial"])
         .start();
@@ -56,6 +178,15 @@ fn status_page_shows_adapters_swaps_and_readouts_live_in_headless_chromium() {
             &json!({"adapter": "north-routing", "texts": ["the gate opens at nine"]}),
         )
         .ok_json();
+    // The page opens with the server's history of the time before it (at least 5 samples).
+    let begin = Instant::now();
+    while history_samples(&server).len() < 5 {
+        assert!(
+            begin.elapsed() < Duration::from_secs(10),
+            "no history samples"
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
 
     let url = server.url("");
     let mut child = Command::new("node")

@@ -292,6 +292,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
         ready: AtomicBool::new(true),
         vital_threads,
         replica: crate::http::replica_name(settings.replica.as_deref()),
+        history: crate::history::History::new(Duration::from_millis(settings.history_interval_ms)),
     });
     let niceness = http_niceness();
     let runtime = tokio::runtime::Builder::new_multi_thread()
@@ -407,6 +408,7 @@ async fn serve(state: SharedState, listen: SocketAddr, grace: Duration) -> anyho
         (state.clone(), inflight.clone()),
         track,
     ));
+    tokio::spawn(crate::http::recent::sample_every(state.clone()));
     let listener = tokio::net::TcpListener::bind(listen)
         .await
         .with_context(|| format!("binding {listen}"))?;

@@ -858,6 +858,9 @@ impl Worker {
                         first_token: None,
                         total: j.admitted.elapsed(),
                     };
+                    if let Some(h) = &j.adapter {
+                        self.metrics.adapter_answer(h.was_resident(), timings.total);
+                    }
                     let _ = j.reply.send(Ok(EmbedOutput {
                         embeddings: mine,
                         timings,
@@ -1261,6 +1264,9 @@ impl Sequence {
             let d = self.job.admitted.elapsed();
             self.first_token = Some(d);
             metrics.first_token_seconds.observe(d.as_secs_f64());
+            if let Some(h) = &self.job.adapter {
+                metrics.adapter_answer(h.was_resident(), d);
+            }
         }
         metrics.generated_tokens.inc();
         self.job.ticket.permit.spend(1);

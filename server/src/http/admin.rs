@@ -252,6 +252,7 @@ pub async fn list(
                 "pinned": pinned.contains(&name),
                 "versions": versions.iter().map(|v| json!({"version": v.version, "bytes": v.bytes})).collect::<Vec<_>>(),
                 "resident": resident,
+                "last_used_ms": shared.history.last_used(name.as_str()),
                 "tenants": shared.tenants.reaching(name.as_str()).into_iter()
                     .map(|(tenant, patterns)| json!({"tenant": tenant, "patterns": patterns}))
                     .collect::<Vec<_>>(),

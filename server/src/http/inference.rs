@@ -317,6 +317,8 @@ fn finish(
     start: Instant,
 ) {
     state.metrics.count_request(endpoint, served_by, status);
+    let adapter = served_by.split_once('@').map(|(name, _)| name);
+    state.history.request(adapter, status);
     tracing::info!(
         id,
         endpoint,

@@ -14,6 +14,7 @@ pub mod error;
 pub mod extract;
 pub mod gate;
 pub mod inference;
+pub mod recent;
 pub mod splits;
 pub mod status;
 
@@ -74,6 +75,8 @@ pub struct AppState {
     /// This server's name among replicas (`server.replica`, else the host name): every response
     /// carries it in the [`REPLICA_HEADER`] header.
     pub replica: axum::http::HeaderValue,
+    /// The last hour of samples and each adapter's last use (`GET /admin/history`).
+    pub history: crate::history::History,
 }
 
 /// The response header that names the replica that answered.
@@ -154,6 +157,7 @@ pub fn router(state: SharedState) -> Router {
             put(admin::pin).delete(admin::unpin),
         )
         .route("/admin/splits", get(splits::list))
+        .route("/admin/history", get(recent::history))
         .route(
             "/admin/splits/{name}",
             put(splits::put_split).delete(splits::delete_split),

@@ -1,5 +1,7 @@
 // The status page's script: signs in with the admin token (kept in sessionStorage only), polls
 // this server's admin API and /metrics once a second, and draws tables and small SVG charts.
+// The last hour's charts come from the server's own samples (/admin/history: fetched whole on
+// sign-in, then only the new ones), so they cover the hour before the page was opened too.
 // It builds every element with createElement and textContent, never from HTML strings, so a
 // name in the store cannot inject markup. Nothing is fetched from anywhere but this origin.
 "use strict";
@@ -14,8 +16,9 @@ const view = {
   sortKey: "name",
   sortDir: 1,
   filter: "",
-  history: [], // {t, queue, factors, merged, requests: {adapter: count}}
-  lastSeen: {}, // adapter: when this page last saw its request count grow
+  history: [], // {t, requests: {adapter: count}}: this page's own readings, for rates
+  samples: [], // the server's samples of the last hour (GET /admin/history), oldest first
+  sampleMs: 0, // the interval the server samples at
   timer: null,
   generation: 0,
 };
@@ -101,6 +104,7 @@ function showBoard() {
   $("board").hidden = false;
   $("sign-out").hidden = false;
   view.history = [];
+  view.samples = [];
   view.generation += 1;
   poll(view.generation);
 }
@@ -124,12 +128,17 @@ function parseMetrics(text) {
 async function poll(generation) {
   const started = Date.now();
   try {
-    const [adapters, splits, metricsText] = await Promise.all([
+    const last = view.samples[view.samples.length - 1];
+    const [adapters, splits, metricsText, recent] = await Promise.all([
       api("/admin/adapters"), api("/admin/splits"), api("/metrics", true),
+      api("/admin/history" + (last ? "?since_ms=" + last.at_ms : "")),
     ]);
     const readouts = await Promise.all(splits.splits.map((s) =>
       api("/admin/splits/" + encodeURIComponent(s.name) + "/readout").catch(() => null)));
     if (generation !== view.generation) return;
+    view.sampleMs = recent.interval_ms;
+    view.samples.push(...recent.samples);
+    while (view.samples.length && view.samples[0].at_ms < recent.now_ms - HISTORY_MS) view.samples.shift();
     render(adapters, splits.splits, readouts, parseMetrics(metricsText));
     $("freshness").textContent = "updated " + new Date().toLocaleTimeString();
   } catch (err) {
@@ -162,12 +171,8 @@ function render(adapters, splits, readouts, metrics) {
     }
   }
   const mem = adapters.memory;
-  const previous = view.history[view.history.length - 1];
-  for (const [a, n] of Object.entries(requests)) {
-    if (previous && n > (previous.requests[a] || 0)) view.lastSeen[a] = now;
-  }
-  view.history.push({ t: now, queue, factors: mem.factors.bytes, merged: mem.merged.bytes, requests });
-  while (view.history.length && view.history[0].t < now - HISTORY_MS) view.history.shift();
+  view.history.push({ t: now, requests });
+  while (view.history.length && view.history[0].t < now - 2 * 60 * 1000) view.history.shift();
 
   const base = adapters.base;
   $("base-weights").textContent = base.weights;
@@ -175,9 +180,10 @@ function render(adapters, splits, readouts, metrics) {
   $("base-library").textContent = base.library || "none: our own kernels only";
   $("base-bytes").textContent = bytes(base.weight_bytes);
   $("queue-depth").textContent = String(queue);
-  $("queue-chart").replaceChildren(sparkline(view.history.map((h) => h.queue), "queued requests", "var(--blue)"));
+  $("queue-chart").replaceChildren(sparkline([...view.samples.map((s) => s.queued), queue],
+    "queued requests over the last hour", "var(--blue)"));
 
-  renderMemory(mem);
+  renderMemory(mem, metrics);
   renderSwaps(metrics);
   view.last = [adapters.adapters, requests, errors];
   renderAdapters(...view.last);
@@ -233,17 +239,33 @@ function renderSwaps(metrics) {
   $("batch-rows").textContent = rows && rows.count ? (rows.sum / rows.count).toFixed(2) : "-";
   $("first-token").textContent = seconds(mean(one("switchyard_first_token_seconds")));
   $("request-time").textContent = seconds(mean(one("switchyard_request_seconds")));
+  const starts = histograms(metrics, "switchyard_adapter_answer_seconds", "start");
+  const measures = [
+    ["first-token", "First token", one("switchyard_first_token_seconds"), seconds],
+    ["request", "Request, admission to answer", one("switchyard_request_seconds"), seconds],
+    ["cold", "Adapter answer, cold (loaded for it)", starts.cold, seconds],
+    ["warm", "Adapter answer, warm (resident)", starts.warm, seconds],
+    ["batch-rows", "Rows per forward pass", rows, (x) => (Number.isFinite(x) ? x.toFixed(2) : "-")],
+  ];
+  $("timings").tBodies[0].replaceChildren(...measures.map(([key, label, h, show]) => {
+    const count = h ? h.count : 0;
+    return el("tr", { "data-measure": key },
+      el("th", { scope: "row" }, label),
+      el("td", { class: "num", "data-col": "count" }, count),
+      el("td", { class: "num", "data-col": "mean" }, show(mean(h))),
+      el("td", { class: "chart hist" }, h ? histogramBars(h, `${label}: ${count}`) : "no data yet"));
+  }));
   const cache = { hit: 0, miss: 0, eviction: 0 };
   for (const m of metrics) {
     if (m.name === "switchyard_cache_events_total" && m.labels.outcome in cache) cache[m.labels.outcome] += m.value;
   }
   $("cache-use").textContent = `${cache.miss} / ${cache.hit}`;
   $("evictions").textContent = String(cache.eviction);
-  const last = view.history[view.history.length - 1];
-  if (last) last.evictions = cache.eviction;
-  const perPoll = view.history.map((h, i) => (i && h.evictions !== undefined && view.history[i - 1].evictions !== undefined
-    ? h.evictions - view.history[i - 1].evictions : 0));
-  $("eviction-chart").replaceChildren(sparkline(perPoll, "evictions per second", "var(--vermillion)"));
+  const s = view.samples;
+  const perSample = s.map((x, i) => (i ? Math.max(0, x.evictions - s[i - 1].evictions) : 0));
+  const every = Math.round(view.sampleMs / 1000);
+  $("eviction-chart").replaceChildren(sparkline(perSample, `evictions per ${every} s, over the last hour`,
+    "var(--vermillion)"));
 }
 
 function sparkline(values, label, colour) {
@@ -257,10 +279,18 @@ function sparkline(values, label, colour) {
     svg("polyline", { points, fill: "none", stroke: colour, "stroke-width": 2, "vector-effect": "non-scaling-stroke" }));
 }
 
-function renderMemory(mem) {
+function renderMemory(mem, metrics) {
   const box = $("memory");
   box.replaceChildren();
-  for (const [tier, colour] of [["factors", "var(--blue)"], ["merged", "var(--orange)"]]) {
+  const tiers = [["factors", "var(--blue)"], ["merged", "var(--orange)"]];
+  // The package cache in front of an object store, when there is one.
+  const disk = metrics.find((m) => m.name === "switchyard_resident_bytes" && m.labels.tier === "disk");
+  const diskLimit = metrics.find((m) => m.name === "switchyard_package_cache_limit_bytes");
+  if (disk && diskLimit && diskLimit.value > 0) {
+    mem = { ...mem, disk: { bytes: disk.value, budget_bytes: diskLimit.value, entries: null } };
+    tiers.unshift(["disk", "var(--sky)"]);
+  }
+  for (const [tier, colour] of tiers) {
     const t = mem[tier];
     const share = t.budget_bytes > 0 ? Math.min(1, t.bytes / t.budget_bytes) : 0;
     const w = 300, h = 18;
@@ -268,12 +298,14 @@ function renderMemory(mem) {
       "aria-label": `${tier}: ${bytes(t.bytes)} of ${bytes(t.budget_bytes)}` },
       svg("rect", { x: 0, y: 0, width: w, height: h, fill: "#eeebe4", stroke: "#5b6169" }),
       svg("rect", { x: 0, y: 0, width: (share * w).toFixed(1), height: h, fill: colour }));
-    const history = sparkline(view.history.map((x) => x[tier]), tier + " bytes over the last hour", colour);
+    const history = sparkline([...view.samples.map((x) => x[tier + "_bytes"] ?? 0), t.bytes],
+      tier + " bytes over the last hour", colour);
     box.append(el("div", { class: "bar-row", "data-tier": tier },
       el("span", { class: "bar-label" }, el("span", { class: "tier tier-" + tier }, tier)),
       el("div", { class: "chart" }, bar),
       el("span", { class: "bar-note" },
-        `${bytes(t.bytes)} of ${bytes(t.budget_bytes)} (${(share * 100).toFixed(1)}%), ${t.entries} held`),
+        `${bytes(t.bytes)} of ${bytes(t.budget_bytes)} (${(share * 100).toFixed(1)}%)` +
+          (t.entries === null ? "" : `, ${t.entries} held`)),
       el("div", { class: "chart bar-note" }, history)));
   }
 }
@@ -298,7 +330,7 @@ function adapterRows(adapters, requests, errors) {
       requests: req,
       errors: errors[a.name] || 0,
       rate: Math.max(0, req - before) / spanMin,
-      lastUsed: view.lastSeen[a.name] || 0,
+      lastUsed: a.last_used_ms || 0,
     };
   });
 }
@@ -329,7 +361,8 @@ function renderAdapters(adapters, requests, errors) {
     el("td", { class: "num", "data-col": "requests" }, r.requests),
     el("td", { class: "num", "data-col": "errors" }, r.errors),
     el("td", { class: "num", "data-col": "rate" }, r.rate.toFixed(1)),
-    el("td", { "data-col": "last-used" }, r.lastUsed ? ago(r.lastUsed) : r.requests ? "before this page opened" : "never"))));
+    el("td", { "data-col": "last-used", title: r.lastUsed ? new Date(r.lastUsed).toISOString() : "no request since the server started" },
+      r.lastUsed ? ago(r.lastUsed) : "never"))));
   if (!shown.length) {
     body.append(el("tr", {}, el("td", { colspan: 11 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
   }
