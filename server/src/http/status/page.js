@@ -242,10 +242,10 @@ function renderSwaps(metrics) {
   const starts = histograms(metrics, "switchyard_adapter_answer_seconds", "start");
   const measures = [
     ["first-token", "First token", one("switchyard_first_token_seconds"), seconds],
-    ["request", "Request, admission to answer", one("switchyard_request_seconds"), seconds],
-    ["cold", "Adapter answer, cold (loaded for it)", starts.cold, seconds],
-    ["warm", "Adapter answer, warm (resident)", starts.warm, seconds],
-    ["batch-rows", "Rows per forward pass", rows, (x) => (Number.isFinite(x) ? x.toFixed(2) : "-")],
+    ["request", "Whole generation", one("switchyard_request_seconds"), seconds],
+    ["cold", "Cold answer (adapter loaded for it)", starts.cold, seconds],
+    ["warm", "Warm answer (adapter resident)", starts.warm, seconds],
+    ["batch-rows", "Rows per pass", rows, (x) => (Number.isFinite(x) ? x.toFixed(2) : "-")],
   ];
   $("timings").tBodies[0].replaceChildren(...measures.map(([key, label, h, show]) => {
     const count = h ? h.count : 0;
