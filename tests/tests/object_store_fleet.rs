@@ -14,12 +14,15 @@ use switchyard_tests::fixtures;
 use switchyard_tests::server::{Auth, Server, ServerSetup};
 
 fn replica(server: &s3::S3Server) -> Server {
+    // A TOML string; Rust's `{:?}` quotes these plain values the same way.
+    let text = |value: &str| format!("{value:?}");
     ServerSetup::encoder()
-        .set("store", "bucket", &format!("{:?}", s3::BUCKET))
-        .set("store", "endpoint", &format!("{:?}", server.endpoint()))
-        .set("store", "prefix", "\"fleet\"")
-        .set("store", "access_key_id", &format!("{:?}", s3::ACCESS_KEY))
-        .env("SWITCHYARD_STORE_SECRET_ACCESS_KEY", s3::SECRET_KEY)
+        .set("store", "bucket", &text(server.bucket()))
+        .set("store", "endpoint", &text(server.endpoint()))
+        .set("store", "prefix", &text(&server.key("fleet")))
+        .set("store", "region", &text(server.region()))
+        .set("store", "access_key_id", &text(server.access_key()))
+        .env("SWITCHYARD_STORE_SECRET_ACCESS_KEY", server.secret_key())
         .start()
 }
 
@@ -57,6 +60,6 @@ fn a_version_published_through_one_replica_is_served_by_the_other_within_two_sec
     // The secret key is in neither replica's log.
     for server in [&a, &b] {
         let log = std::fs::read_to_string(server.dir().join("server.log")).unwrap();
-        assert!(!log.contains(s3::SECRET_KEY), "{log}");
+        assert!(!log.contains(s3.secret_key()), "{log}");
     }
 }

@@ -8,7 +8,7 @@ use std::collections::BTreeMap;
 use std::sync::Arc;
 use std::sync::mpsc;
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::Registry;
@@ -88,6 +88,29 @@ pub struct Experiments {
     log: ResponseLog,
     pruner: Option<Pruner>,
     refresher: Option<Pruner>,
+    /// On a shared store, when a request last named a split this replica did not know and the
+    /// definitions were read again for it (at most once per [`MISS_RELOAD_GAP`]).
+    miss_reloaded: Option<Mutex<Option<Instant>>>,
+}
+
+/// The shortest time between two reads of the shared definitions that requests naming an
+/// unknown split cause, so a flood of such requests costs the database little.
+const MISS_RELOAD_GAP: Duration = Duration::from_millis(100);
+
+/// Reads the definitions again into `live`, under the edit lock so that a local edit is never
+/// overwritten by an older read.
+fn reload_live(
+    store: &dyn ExperimentStore,
+    live: &RwLock<BTreeMap<String, LiveSplit>>,
+    edits: &Mutex<()>,
+) {
+    let _edit = edits.lock();
+    match load_live(store) {
+        Ok(fresh) => *live.write() = fresh,
+        Err(e) => {
+            tracing::warn!(error = %e, "reading the shared splits failed; keeping the last ones")
+        }
+    }
 }
 
 /// The split definitions in `store`, as assignment needs them.
@@ -128,12 +151,7 @@ impl Experiments {
             .map(|every| {
                 let (store, live, edits) = (store.clone(), live.clone(), edits.clone());
                 Pruner::every("switchyard-splits", every, move || {
-                    // Under the edit lock, so a local edit is never overwritten by an older read.
-                    let _edit = edits.lock();
-                    match load_live(store.as_ref()) {
-                        Ok(fresh) => *live.write() = fresh,
-                        Err(e) => tracing::warn!(error = %e, "reading the shared splits failed; keeping the last ones"),
-                    }
+                    reload_live(store.as_ref(), &live, &edits)
                 })
             })
             .transpose()?;
@@ -143,8 +161,28 @@ impl Experiments {
             edits,
             log,
             pruner,
+            miss_reloaded: reload_every.map(|_| Mutex::new(None)),
             refresher,
         })
+    }
+
+    /// On a store other replicas share, reads the split definitions again because a request
+    /// named `name`, which this replica does not know (another replica may have just created
+    /// it); true when `name` is known afterwards. At most once per 100 ms; false at once on a
+    /// store of this replica's own. Blocking: call it off the async threads.
+    pub fn reload_for_unknown(&self, name: &str) -> bool {
+        let Some(last) = &self.miss_reloaded else {
+            return false;
+        };
+        {
+            let mut last = last.lock();
+            if last.is_some_and(|t| t.elapsed() < MISS_RELOAD_GAP) {
+                return self.live.read().contains_key(name);
+            }
+            *last = Some(Instant::now());
+        }
+        reload_live(self.store.as_ref(), &self.live, &self.edits);
+        self.live.read().contains_key(name)
     }
 
     /// Picks an arm of split `name` for a request; `None` when there is no such split.

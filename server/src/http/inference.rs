@@ -139,10 +139,20 @@ async fn route(
             if !tenant.may_use(s) {
                 return Err(forbidden(format!("this key may not use split {s:?}")));
             }
-            let assigned = state
-                .splits
-                .assign(s, subject)
-                .ok_or_else(|| ApiError::unknown_split(s))?;
+            let mut assigned = state.splits.assign(s, subject);
+            if assigned.is_none() {
+                // Another replica may have created it a moment ago: read the shared
+                // definitions once more before refusing.
+                let (shared, name) = (state.clone(), s.to_owned());
+                let known =
+                    tokio::task::spawn_blocking(move || shared.splits.reload_for_unknown(&name))
+                        .await
+                        .unwrap_or(false);
+                if known {
+                    assigned = state.splits.assign(s, subject);
+                }
+            }
+            let assigned = assigned.ok_or_else(|| ApiError::unknown_split(s))?;
             let arm = assigned.arm.clone();
             if arm.adapter != "base" && !tenant.may_use(&arm.adapter) {
                 return Err(forbidden(format!(
