@@ -85,13 +85,13 @@ impl History {
     }
 
     /// Counts an answered inference request; `adapter` is the adapter that served it (none
-    /// for the base model or a request refused before routing).
+    /// for the base model or a request refused before routing). Only an answer without an
+    /// error counts as the adapter's use.
     pub fn request(&self, adapter: Option<&str>, status: u16) {
         self.requests.fetch_add(1, Ordering::Relaxed);
         if status >= 400 {
             self.errors.fetch_add(1, Ordering::Relaxed);
-        }
-        if let Some(name) = adapter {
+        } else if let Some(name) = adapter {
             let mut used = self
                 .last_used
                 .lock()
@@ -182,7 +182,8 @@ mod tests {
         h.request(Some("north-routing"), 200);
         h.request(None, 429);
         h.request(Some("north-routing"), 500);
-        assert_eq!(h.counts(), (3, 2));
+        h.request(Some("north-urgency"), 500);
+        assert_eq!(h.counts(), (4, 3));
         let at = h.last_used("north-routing").unwrap();
         assert!(at.abs_diff(now_ms()) < 60_000);
         assert_eq!(h.last_used("north-urgency"), None);

@@ -136,6 +136,17 @@ test("signing in shows the base model and every adapter with its tier", async ()
   // Memory against its budget, from the same listing.
   const factors = await page.locator("#memory [data-tier=factors]").textContent();
   assert.match(factors, /of /);
+  // A request refused before it ran counts as an error of the adapter it named, per minute too.
+  const refused = await fetch(base + "/embed", {
+    method: "POST",
+    headers: { "Content-Type": "application/json", Authorization: `Bearer ${tenantKey}` },
+    body: JSON.stringify({ adapter: "north-routing", texts: [] }),
+  });
+  assert.equal(refused.status, 400, await refused.text());
+  await row("north-routing").locator("[data-col=errors]", { hasText: "1" }).waitFor({ timeout: 3000 });
+  await page.waitForFunction(() => Number(document.querySelector(
+    '#adapters tbody tr[data-adapter="north-routing"] [data-col=error-rate]').textContent) > 0, null, { timeout: 3000 });
+  assert.equal(await row("south-routing").locator("[data-col=error-rate]").textContent(), "0.0");
 });
 
 test("a publish, a rollback and a flip show on the page within 2 s", async () => {
@@ -206,14 +217,17 @@ test("a split's outcomes change its readout on the page", async () => {
   }
   assert.deepEqual(counts, { incumbent: 10, candidate: 10 });
   const t0 = Date.now();
-  const interval = split.locator('svg[data-intervals="1"] g[data-arm="candidate"]');
+  const readout = await admin("GET", "/admin/splits/north-trial/readout");
+  const compared = readout.arms[1].numeric.versus_first_always_valid;
+  // The page may still show a poll from before the last outcome (a fixed-sample interval while
+  // an arm had fewer than 10): wait for the one that counts all 20.
+  const interval = split.locator(
+    `svg[data-intervals="1"] g[data-arm="candidate"][data-difference="${compared.difference}"]`);
   await interval.waitFor({ timeout: LIVE_WITHIN_MS });
   assert.ok(Date.now() - t0 <= LIVE_WITHIN_MS);
   assert.equal(await split.locator('tr[data-arm="candidate"] [data-col=outcomes]').textContent(), "10");
   // Split traffic reached south-routing while the page watched.
   assert.match(await row("south-routing").locator("[data-col=last-used]").textContent(), /^\d+ s ago$/);
-  const readout = await admin("GET", "/admin/splits/north-trial/readout");
-  const compared = readout.arms[1].numeric.versus_first_always_valid;
   const difference = Number(await interval.getAttribute("data-difference"));
   assert.ok(Math.abs(difference - 2) < 0.2, `difference ${difference}`);
   assert.equal(difference, compared.difference);

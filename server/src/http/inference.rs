@@ -14,6 +14,7 @@ use axum::response::{IntoResponse, Response};
 use axum::{Extension, Json};
 use serde::Deserialize;
 use serde_json::{Value, json};
+use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 
@@ -317,6 +318,34 @@ fn arm_json(routed: &Routed) -> Value {
     }
 }
 
+/// Logs and counts a request answered with an error before any adapter served it (refused by a
+/// bound, a quota or a check, or unknown): counted under the adapter it named, when it named a
+/// well-formed one, so each adapter's error rate includes its refusals (the series stay bounded
+/// by `metrics.adapter_series`).
+fn finish_refused(
+    state: &SharedState,
+    endpoint: &str,
+    id: &str,
+    asked: Option<&str>,
+    status: u16,
+    start: Instant,
+) {
+    let label = asked
+        .filter(|a| *a == "base" || AdapterName::new(a).is_ok())
+        .unwrap_or("-");
+    state.metrics.count_request(endpoint, label, status);
+    state.history.request(None, status);
+    tracing::info!(
+        id,
+        endpoint,
+        served_by = "-",
+        adapter = label,
+        status,
+        total_ms = ms(start.elapsed()),
+        "request"
+    );
+}
+
 /// Logs the one line a request gets, and counts it.
 fn finish(
     state: &SharedState,
@@ -484,6 +513,7 @@ pub async fn embed(
     body.route = route_header(&headers);
     let start = Instant::now();
     let id = new_response_id();
+    let asked = body.adapter.clone();
     match run_embed(&state, &tenant, body, "embed", &id).await {
         Ok((routed, out)) => {
             finish(&state, "embed", &id, &routed.served_by, 200, start);
@@ -498,7 +528,14 @@ pub async fn embed(
             .into_response()
         }
         Err(e) => {
-            finish(&state, "embed", &id, "-", e.status.as_u16(), start);
+            finish_refused(
+                &state,
+                "embed",
+                &id,
+                asked.as_deref(),
+                e.status.as_u16(),
+                start,
+            );
             e.into_response()
         }
     }
@@ -514,6 +551,7 @@ pub async fn classify(
     body.route = route_header(&headers);
     let start = Instant::now();
     let id = new_response_id();
+    let asked = body.adapter.clone();
     let result = async {
         if body.adapter.as_deref() == Some("base") {
             return Err(ApiError::bad_request(
@@ -563,7 +601,14 @@ pub async fn classify(
             .into_response()
         }
         Err(e) => {
-            finish(&state, "classify", &id, "-", e.status.as_u16(), start);
+            finish_refused(
+                &state,
+                "classify",
+                &id,
+                asked.as_deref(),
+                e.status.as_u16(),
+                start,
+            );
             e.into_response()
         }
     }
@@ -724,9 +769,17 @@ pub async fn generate(
     let start = Instant::now();
     let id = new_response_id();
     let stream = body.stream;
+    let asked = body.adapter.clone();
     match start_generation(&state, &tenant, body, &id).await {
         Err(e) => {
-            finish(&state, "generate", &id, "-", e.status.as_u16(), start);
+            finish_refused(
+                &state,
+                "generate",
+                &id,
+                asked.as_deref(),
+                e.status.as_u16(),
+                start,
+            );
             e.into_response()
         }
         Ok((routed, rx)) if stream => stream_answer(state, id, routed, rx, start).into_response(),

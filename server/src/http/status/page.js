@@ -16,7 +16,7 @@ const view = {
   sortKey: "name",
   sortDir: 1,
   filter: "",
-  history: [], // {t, requests: {adapter: count}}: this page's own readings, for rates
+  history: [], // {t, requests, errors: {adapter: count}}: this page's own readings, for rates
   samples: [], // the server's samples of the last hour (GET /admin/history), oldest first
   sampleMs: 0, // the interval the server samples at
   timer: null,
@@ -171,7 +171,7 @@ function render(adapters, splits, readouts, metrics) {
     }
   }
   const mem = adapters.memory;
-  view.history.push({ t: now, requests });
+  view.history.push({ t: now, requests, errors });
   while (view.history.length && view.history[0].t < now - 2 * 60 * 1000) view.history.shift();
 
   const base = adapters.base;
@@ -318,6 +318,8 @@ function adapterRows(adapters, requests, errors) {
     const top = live.reduce((best, r) => (TIER_RANK[r.tier] > TIER_RANK[best] ? r.tier : best), "disk");
     const req = requests[a.name] || 0;
     const before = hourAgo && hourAgo.requests[a.name] ? hourAgo.requests[a.name] : 0;
+    const err = errors[a.name] || 0;
+    const errBefore = hourAgo && hourAgo.errors[a.name] ? hourAgo.errors[a.name] : 0;
     return {
       name: a.name,
       live: a.live || "",
@@ -328,8 +330,9 @@ function adapterRows(adapters, requests, errors) {
       pinned: a.pinned,
       tenants: (a.tenants || []).map((t) => `${t.tenant} (${t.patterns.join(", ")})`).join("; "),
       requests: req,
-      errors: errors[a.name] || 0,
+      errors: err,
       rate: Math.max(0, req - before) / spanMin,
+      errorRate: Math.max(0, err - errBefore) / spanMin,
       lastUsed: a.last_used_ms || 0,
     };
   });
@@ -361,10 +364,11 @@ function renderAdapters(adapters, requests, errors) {
     el("td", { class: "num", "data-col": "requests" }, r.requests),
     el("td", { class: "num", "data-col": "errors" }, r.errors),
     el("td", { class: "num", "data-col": "rate" }, r.rate.toFixed(1)),
+    el("td", { class: "num", "data-col": "error-rate" }, r.errorRate.toFixed(1)),
     el("td", { "data-col": "last-used", title: r.lastUsed ? new Date(r.lastUsed).toISOString() : "no request since the server started" },
       r.lastUsed ? ago(r.lastUsed) : "never"))));
   if (!shown.length) {
-    body.append(el("tr", {}, el("td", { colspan: 11 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
+    body.append(el("tr", {}, el("td", { colspan: 12 }, rows.length ? "No adapter matches the filter." : "The store holds no adapters.")));
   }
 }
 
