@@ -132,7 +132,9 @@ impl ServerSetup {
     }
 }
 
-fn agent() -> ureq::Agent {
+/// An HTTP client that hands back every status as a response (no status is an error), with the
+/// tests' time limit per request; for tests that talk to something other than one [`Server`].
+pub fn agent() -> ureq::Agent {
     ureq::Agent::config_builder()
         .http_status_as_error(false)
         .timeout_global(Some(REQUEST_TIMEOUT))

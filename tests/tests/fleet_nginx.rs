@@ -14,7 +14,7 @@ use std::time::{Duration, Instant};
 
 use serde_json::{Value, json};
 use switchyard_tests::fixtures;
-use switchyard_tests::server::{Server, ServerSetup};
+use switchyard_tests::server::{Server, ServerSetup, agent};
 
 /// nginx from Debian's package, as scripts/test unpacks it into target/tools (or one on PATH).
 fn nginx_bin() -> PathBuf {
@@ -170,14 +170,6 @@ fn embed(agent: &ureq::Agent, url: &str, adapter: &str, route: Option<&str>) -> 
     }
 }
 
-fn agent() -> ureq::Agent {
-    ureq::Agent::config_builder()
-        .http_status_as_error(false)
-        .timeout_global(Some(Duration::from_secs(60)))
-        .build()
-        .into()
-}
-
 #[test]
 fn replicas_behind_nginx_keep_adapters_apart_and_survive_a_killed_replica() {
     let store = tempfile::tempdir().unwrap();
@@ -313,7 +305,7 @@ fn replicas_behind_nginx_keep_adapters_apart_and_survive_a_killed_replica() {
     let killed_at = std::sync::OnceLock::new();
     let answers = std::thread::scope(|scope| {
         let load = scope.spawn(|| {
-            let agent = self::agent();
+            let agent = switchyard_tests::server::agent();
             let begin = Instant::now();
             let mut answers = Vec::new();
             while begin.elapsed() < Duration::from_secs(4) && answers.len() < 2_000 {

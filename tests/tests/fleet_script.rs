@@ -14,6 +14,7 @@ use std::sync::mpsc;
 use std::time::{Duration, Instant};
 
 use serde_json::{Value, json};
+use switchyard_tests::server::agent;
 /// The example config's tenant key and admin token, which scripts/fleet serves with.
 const TENANT_KEY: &str = "example-north-key-not-a-secret";
 const ADMIN_TOKEN: &str = "example-admin-token-change-me";
@@ -116,14 +117,6 @@ fn banner(fleet: &mut Fleet) -> BTreeMap<String, String> {
         }
     }
     fields
-}
-
-fn agent() -> ureq::Agent {
-    ureq::Agent::config_builder()
-        .http_status_as_error(false)
-        .timeout_global(Some(Duration::from_secs(60)))
-        .build()
-        .into()
 }
 
 /// Status, `Switchyard-Replica` and body of one request.
