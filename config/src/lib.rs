@@ -142,6 +142,9 @@ pub struct Settings {
     /// A split readout flags its requests per arm as not matching the weights below this
     /// chi-square p-value (`[experiments] assignment_alarm_p`).
     pub assignment_alarm_p: f64,
+    /// How often the splits' rollout policies are checked and acted on
+    /// (`[experiments] rollout_check_ms`).
+    pub rollout_check_ms: u64,
 }
 
 /// Where the object store is and how to reach it. The secret key never appears in `{:?}` or in
@@ -267,6 +270,7 @@ impl Default for Settings {
             keep_responses_days: 30,
             mixing_variance: 0.1,
             assignment_alarm_p: 0.001,
+            rollout_check_ms: 1000,
         }
     }
 }
@@ -536,6 +540,12 @@ impl Settings {
                 d.assignment_alarm_p,
                 |x| (!(x > 0.0 && x <= 0.5)).then_some("must be above 0 and at most 0.5"),
             )?,
+            // 50 ms (a test's pace) to 10 minutes.
+            rollout_check_ms: src.whole(
+                &read::ROLLOUT_CHECK_MS,
+                d.rollout_check_ms,
+                50..=600_000,
+            )?,
         })
     }
 }
@@ -694,6 +704,7 @@ impl fmt::Debug for Settings {
             .field("keep_responses_days", &self.keep_responses_days)
             .field("mixing_variance", &self.mixing_variance)
             .field("assignment_alarm_p", &self.assignment_alarm_p)
+            .field("rollout_check_ms", &self.rollout_check_ms)
             .finish()
     }
 }

@@ -184,6 +184,11 @@ pub(crate) const ASSIGNMENT_ALARM_P: SettingKey = SettingKey::new(
     "assignment_alarm_p",
     "SWITCHYARD_EXPERIMENTS_ASSIGNMENT_ALARM_P",
 );
+pub(crate) const ROLLOUT_CHECK_MS: SettingKey = SettingKey::new(
+    "experiments",
+    "rollout_check_ms",
+    "SWITCHYARD_EXPERIMENTS_ROLLOUT_CHECK_MS",
+);
 
 /// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
 /// setting that is not scalar; it comes from the file only.
@@ -233,6 +238,7 @@ pub const KEYS: &[SettingKey] = &[
     KEEP_RESPONSES_DAYS,
     MIXING_VARIANCE,
     ASSIGNMENT_ALARM_P,
+    ROLLOUT_CHECK_MS,
 ];
 
 /// Keys of earlier releases and what replaced them, so an old file gets a pointer to the new key

@@ -169,6 +169,7 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::KEEP_RESPONSES_DAYS, s.keep_responses_days);
     page.line(&read::MIXING_VARIANCE, s.mixing_variance);
     page.line(&read::ASSIGNMENT_ALARM_P, s.assignment_alarm_p);
+    page.line(&read::ROLLOUT_CHECK_MS, s.rollout_check_ms);
 
     let mut text = page.text;
     if s.tenants.is_empty() {

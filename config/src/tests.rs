@@ -168,6 +168,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::KEEP_RESPONSES_DAYS, "7", "7"),
         (&read::MIXING_VARIANCE, "0.25", "0.25"),
         (&read::ASSIGNMENT_ALARM_P, "0.01", "0.01"),
+        (&read::ROLLOUT_CHECK_MS, "250", "250"),
         (&read::STORE_BUCKET, "\"adapters\"", "adapters"),
         (
             &read::STORE_ENDPOINT,
@@ -246,6 +247,7 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         keep_responses_days: 7,
         mixing_variance: 0.25,
         assignment_alarm_p: 0.01,
+        rollout_check_ms: 250,
     };
     assert_eq!(from_file, expected);
 }
@@ -375,6 +377,11 @@ fn each_range_is_enforced_at_both_ends() {
             "[experiments]\nassignment_alarm_p = 0.6",
             "experiments.assignment_alarm_p",
             "0.6",
+        ),
+        (
+            "[experiments]\nrollout_check_ms = 10",
+            "experiments.rollout_check_ms",
+            "10",
         ),
         ("[experiments]\ndatabase = \"\"", "experiments.database", ""),
     ];

@@ -246,7 +246,7 @@ fn put_split(name: &str, body: &[u8]) {
     // What the handler writes to the experiment store, read back from it: the same split.
     let store = experiments();
     let put = store
-        .put_split(split.spec(), 0)
+        .put_split(split.spec(), None, 0)
         .unwrap_or_else(|e| panic!("a valid split is written: {e}"));
     assert_eq!(put.record.split().as_ref(), Ok(&split), "as written");
     let stored = store

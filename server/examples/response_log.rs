@@ -69,6 +69,7 @@ fn main() {
                     weight: 1.0,
                 }],
             },
+            None,
             0,
         )
         .unwrap();
@@ -80,7 +81,7 @@ fn main() {
     // the file's size as well), then every mode runs in each round, so drift hits all alike.
     for i in 0..200 {
         let row = served(generation, arm_id, "warm", i);
-        store.record_responses(&[row]).unwrap();
+        store.record_responses(&[row], &[]).unwrap();
     }
     let modes = [0usize, 1, 4, 16];
     let mut waits: Vec<Vec<Duration>> = vec![Vec::new(); modes.len()];
@@ -93,7 +94,7 @@ fn main() {
                     .map(|i| {
                         let t = Instant::now();
                         let row = served(generation, arm_id, &format!("single-{round}"), i);
-                        store.record_responses(&[row]).unwrap();
+                        store.record_responses(&[row], &[]).unwrap();
                         t.elapsed()
                     })
                     .collect()

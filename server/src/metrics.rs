@@ -79,6 +79,15 @@ pub struct ArmLabels {
     pub arm: String,
 }
 
+/// A rollout action: the split, what was done (`promoted`, `flipped`, `rolled_back`, `paused`,
+/// `resumed`) and by whom (`policy` or `operator`).
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct RolloutLabels {
+    pub split: String,
+    pub action: String,
+    pub by: String,
+}
+
 fn seconds_histogram() -> Histogram {
     // 0.1 ms to ~13 s.
     Histogram::new(exponential_buckets(0.0001, 2.0, 18))
@@ -101,6 +110,7 @@ pub struct Metrics {
     pub prefix_cache_bytes: Gauge,
     pub engine_restarts: Counter,
     pub arm_requests: Family<ArmLabels, Counter>,
+    pub rollout_actions: Family<RolloutLabels, Counter>,
     pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
     pub process_resident_bytes: Gauge,
@@ -227,6 +237,12 @@ impl Metrics {
             "Requests assigned to each arm of each split",
             arm_requests.clone(),
         );
+        let rollout_actions = Family::<RolloutLabels, Counter>::default();
+        registry.register(
+            "rollout_actions",
+            "Actions this replica took on split rollouts, by split, action and who decided (policy or operator)",
+            rollout_actions.clone(),
+        );
         let refusals = Family::<RefusalLabels, Counter>::default();
         registry.register(
             "refusals",
@@ -285,6 +301,7 @@ impl Metrics {
             prefix_cache_bytes,
             engine_restarts,
             arm_requests,
+            rollout_actions,
             refusals,
             swap_events_dropped,
             process_resident_bytes,
@@ -383,6 +400,30 @@ impl Metrics {
                 arm: arm.clone(),
             });
         }
+        for action in ["promoted", "flipped", "rolled_back", "paused", "resumed"] {
+            for by in ["policy", "operator"] {
+                self.rollout_actions.remove(&RolloutLabels {
+                    split: split.to_owned(),
+                    action: action.to_owned(),
+                    by: by.to_owned(),
+                });
+            }
+        }
+    }
+
+    /// Counts a rollout action this replica took.
+    pub fn count_rollout(&self, split: &str, event: &crate::splits::rollout::RolloutEvent) {
+        let by = match event.by {
+            crate::splits::rollout::Actor::Policy => "policy",
+            crate::splits::rollout::Actor::Operator => "operator",
+        };
+        self.rollout_actions
+            .get_or_create(&RolloutLabels {
+                split: split.to_owned(),
+                action: event.action.as_str().to_owned(),
+                by: by.to_owned(),
+            })
+            .inc();
     }
 
     pub fn cache_event(&self, tier: Tier, outcome: &str) {

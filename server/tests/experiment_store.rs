@@ -88,13 +88,16 @@ fn serve(
 ) {
     let state = store.split(split).unwrap().unwrap();
     store
-        .record_responses(&[ServedResponse {
-            response_id: id.to_owned(),
-            generation: state.generation,
-            arm_id: state.arms[arm].arm.id,
-            tenant: tenant.to_owned(),
-            served_ms,
-        }])
+        .record_responses(
+            &[ServedResponse {
+                response_id: id.to_owned(),
+                generation: state.generation,
+                arm_id: state.arms[arm].arm.id,
+                tenant: tenant.to_owned(),
+                served_ms,
+            }],
+            &[],
+        )
         .unwrap();
 }
 
@@ -135,6 +138,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes(plac
                     arm("candidate", "fork-advice-v2", Some("00000000000000aa"), 0.2),
                 ],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -157,6 +161,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes(plac
                     arm("incumbent", "fork-advice", None, 0.5),
                 ],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -182,6 +187,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes(plac
                     arm("incumbent", "fork-advice", None, 0.5),
                 ],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -224,6 +230,7 @@ fn split_edits_start_a_new_arm_record_only_when_what_the_arm_serves_changes(plac
                     arm("incumbent", "fork-advice", None, 0.5),
                 ],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -241,14 +248,14 @@ on_both!(
 fn a_deleted_and_recreated_split_inherits_no_responses(place: &Place) {
     let store = place.open();
     let definition = spec("gears", vec![arm("only", "base", None, 1.0)]);
-    let old = store.put_split(&definition, NOW).unwrap();
+    let old = store.put_split(&definition, None, NOW).unwrap();
     serve(&*store, "gears", 0, "r-old", "north", NOW);
     serve(&*store, "gears", 0, "r-old-2", "north", NOW);
     outcome(&*store, "r-old", "north", OutcomeValue::YesNo(true)).unwrap();
 
     assert!(store.delete_split("gears").unwrap());
     assert!(!store.delete_split("gears").unwrap());
-    let new = store.put_split(&definition, NOW).unwrap();
+    let new = store.put_split(&definition, None, NOW).unwrap();
     assert!(new.created);
     assert!(new.record.generation > old.record.generation);
     assert_ne!(new.record.arms[0].id, old.record.arms[0].id);
@@ -262,13 +269,16 @@ fn a_deleted_and_recreated_split_inherits_no_responses(place: &Place) {
     // A response assigned before the delete but written after it is dropped, not attached to the
     // new split.
     store
-        .record_responses(&[ServedResponse {
-            response_id: "r-late".to_owned(),
-            generation: old.record.generation,
-            arm_id: old.record.arms[0].id,
-            tenant: "north".to_owned(),
-            served_ms: NOW,
-        }])
+        .record_responses(
+            &[ServedResponse {
+                response_id: "r-late".to_owned(),
+                generation: old.record.generation,
+                arm_id: old.record.arms[0].id,
+                tenant: "north".to_owned(),
+                served_ms: NOW,
+            }],
+            &[],
+        )
         .unwrap();
     assert!(matches!(
         outcome(&*store, "r-late", "north", OutcomeValue::YesNo(true)),
@@ -288,6 +298,7 @@ fn splits_outcomes_and_response_records_survive_reopening_the_database() {
                     "tone",
                     vec![arm("a", "tone-a", None, 1.0), arm("b", "base", None, 2.0)],
                 ),
+                None,
                 NOW,
             )
             .unwrap();
@@ -319,7 +330,11 @@ on_both!(
 fn outcomes_days_after_the_answer_still_count_until_the_record_is_pruned(place: &Place) {
     let store = place.open();
     store
-        .put_split(&spec("late", vec![arm("only", "base", None, 1.0)]), NOW)
+        .put_split(
+            &spec("late", vec![arm("only", "base", None, 1.0)]),
+            None,
+            NOW,
+        )
         .unwrap();
     serve(&*store, "late", 0, "r-10-days", "north", NOW - 10 * DAY_MS);
     serve(&*store, "late", 0, "r-40-days", "north", NOW - 40 * DAY_MS);
@@ -350,7 +365,11 @@ on_both!(
 fn another_tenants_outcome_is_refused_as_an_unknown_response(place: &Place) {
     let store = place.open();
     store
-        .put_split(&spec("shared", vec![arm("only", "base", None, 1.0)]), NOW)
+        .put_split(
+            &spec("shared", vec![arm("only", "base", None, 1.0)]),
+            None,
+            NOW,
+        )
         .unwrap();
     serve(&*store, "shared", 0, "r-north", "north", NOW);
     assert!(matches!(
@@ -388,6 +407,7 @@ fn concurrent_outcomes_and_response_records_are_all_counted(place: &Place) {
                 "busy",
                 vec![arm("a", "base", None, 1.0), arm("b", "base-b", None, 1.0)],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -400,13 +420,16 @@ fn concurrent_outcomes_and_response_records_are_all_counted(place: &Place) {
                     let arm = &s.arms[i % 2].arm;
                     let id = format!("r-{t}-{i}");
                     store
-                        .record_responses(&[ServedResponse {
-                            response_id: id.clone(),
-                            generation: s.generation,
-                            arm_id: arm.id,
-                            tenant: "north".to_owned(),
-                            served_ms: NOW,
-                        }])
+                        .record_responses(
+                            &[ServedResponse {
+                                response_id: id.clone(),
+                                generation: s.generation,
+                                arm_id: arm.id,
+                                tenant: "north".to_owned(),
+                                served_ms: NOW,
+                            }],
+                            &[],
+                        )
                         .unwrap();
                     outcome(store, &id, "north", OutcomeValue::Number(i as f64)).unwrap();
                 }
@@ -459,6 +482,7 @@ fn an_earlier_versions_splits_json_is_moved_in_once() {
                 "fork-test",
                 vec![arm("incumbent", "fork-advice", None, 1.0)],
             ),
+            None,
             NOW,
         )
         .unwrap();
@@ -472,7 +496,11 @@ fn the_database_keeps_a_write_ahead_log_that_another_connection_reads() {
     let path = dir.path().join("experiments.sqlite");
     let store = SqliteStore::open(&path).unwrap();
     store
-        .put_split(&spec("wal", vec![arm("only", "base", None, 1.0)]), NOW)
+        .put_split(
+            &spec("wal", vec![arm("only", "base", None, 1.0)]),
+            None,
+            NOW,
+        )
         .unwrap();
     // Read with a connection of its own, as another process would.
     let conn = rusqlite::Connection::open(&path).unwrap();
@@ -506,7 +534,7 @@ fn split_weight_moved_by_one_ulp_when_saved_and_read_back_from_the_store() {
     let arms: Vec<ArmSpec> = serde_json::from_str(body).unwrap();
     let written = switchyard_server::splits::Split::new(spec("fork", arms)).unwrap();
     let dir = tempfile::tempdir().unwrap();
-    open(&dir).put_split(written.spec(), NOW).unwrap();
+    open(&dir).put_split(written.spec(), None, NOW).unwrap();
     let read = open(&dir)
         .split("fork")
         .unwrap()
@@ -531,4 +559,180 @@ fn split_weight_moved_by_one_ulp_when_saved_and_read_back_from_the_store() {
             written.assign_subject(&subject).index
         );
     }
+}
+
+on_both!(
+    rollouts_act_once_keep_their_history_and_tally_how_requests_ended,
+    rollouts_on_sqlite,
+    rollouts_on_postgres
+);
+
+/// A rollout policy is kept with its split; a change is written only over the state it was
+/// decided on, so of two replicas acting on one reading exactly one acts; the history, the
+/// weights and the finished/error/latency tallies survive reopening; a PUT with the same policy
+/// keeps the progress, one without removes it.
+fn rollouts_act_once_keep_their_history_and_tally_how_requests_ended(place: &Place) {
+    use switchyard_server::experiments::FinishedRequest;
+    use switchyard_server::splits::rollout::{
+        Actor, Rollout, RolloutAction, RolloutEvent, RolloutPolicy, RolloutStatus,
+    };
+    let policy: RolloutPolicy = serde_json::from_value(serde_json::json!({
+        "candidate": "candidate",
+        "min_requests": 10,
+        "guards": {"error_rate": 0.02},
+        "steps": [0.5],
+    }))
+    .unwrap();
+    let definition = spec(
+        "gears",
+        vec![
+            arm("incumbent", "gears", Some("00000000000000aa"), 0.9),
+            arm("candidate", "gears", Some("00000000000000bb"), 0.1),
+        ],
+    );
+    let (a, b) = (place.open(), place.open());
+    a.put_split(&definition, Some(&policy), NOW).unwrap();
+    let read = state(&*a, "gears");
+    let rollout = read.rollout.clone().expect("the policy is kept");
+    assert_eq!(rollout.state.status, RolloutStatus::Watching);
+    assert_eq!(read.events.len(), 1);
+    assert_eq!(read.events[0].action, RolloutAction::Started);
+    assert!((read.events[0].candidate_share - 0.1).abs() < 1e-12);
+
+    // How requests ended, from two replicas.
+    let ids = (read.arms[0].arm.id, read.arms[1].arm.id);
+    let ended = |arm_id: i64, failed: bool, latency_ms: f64| FinishedRequest {
+        arm_id,
+        failed,
+        latency_ms,
+    };
+    a.record_responses(&[], &[ended(ids.1, true, 12.0), ended(ids.1, false, 30.0)])
+        .unwrap();
+    b.record_responses(&[], &[ended(ids.1, false, 31.0), ended(ids.0, false, 5.0)])
+        .unwrap();
+    let read = state(&*b, "gears");
+    let cand = &read.arms[1].health;
+    assert_eq!((cand.finished, cand.errors), (3, 1));
+    assert_eq!(cand.latency.count(), 3);
+    assert!(cand.latency.quantile(0.99).unwrap() >= 31.0);
+    assert_eq!(read.arms[0].health.finished, 1);
+
+    // Both replicas decide on the same reading; only the first change is written.
+    let mut promoted = rollout.clone();
+    promoted.state.step = 1;
+    promoted.state.revision += 1;
+    let event = |action| RolloutEvent {
+        at_ms: NOW + 1,
+        action,
+        by: Actor::Policy,
+        candidate_share: 0.5,
+        reason: "test".into(),
+    };
+    let wrote_a = a
+        .change_rollout(
+            "gears",
+            read.generation,
+            &rollout,
+            &promoted,
+            Some(&[0.5, 0.5]),
+            &event(RolloutAction::Promoted),
+        )
+        .unwrap();
+    let mut rolled: Rollout = rollout.clone();
+    rolled.state.status = RolloutStatus::RolledBack;
+    rolled.state.revision += 1;
+    let wrote_b = b
+        .change_rollout(
+            "gears",
+            read.generation,
+            &rollout,
+            &rolled,
+            Some(&[1.0, 0.0]),
+            &event(RolloutAction::RolledBack),
+        )
+        .unwrap();
+    assert_eq!((wrote_a, wrote_b), (true, false));
+    // A stale generation never matches either.
+    assert!(
+        !a.change_rollout(
+            "gears",
+            read.generation + 1000,
+            &promoted,
+            &rolled,
+            None,
+            &event(RolloutAction::RolledBack)
+        )
+        .unwrap()
+    );
+
+    drop((a, b));
+    let reopened = place.open();
+    let read = state(&*reopened, "gears");
+    assert_eq!(read.rollout.as_ref().unwrap(), &promoted);
+    assert_eq!(
+        read.events.iter().map(|e| e.action).collect::<Vec<_>>(),
+        vec![RolloutAction::Started, RolloutAction::Promoted]
+    );
+    assert_eq!(
+        read.arms
+            .iter()
+            .map(|a| a.arm.spec.weight)
+            .collect::<Vec<_>>(),
+        vec![0.5, 0.5]
+    );
+    assert_eq!(read.arms[1].health.errors, 1, "tallies kept");
+
+    // The same policy again keeps the progress; none removes it; a new one starts afresh.
+    let edited = spec(
+        "gears",
+        read.arms.iter().map(|a| a.arm.spec.clone()).collect(),
+    );
+    reopened.put_split(&edited, Some(&policy), NOW + 2).unwrap();
+    assert_eq!(state(&*reopened, "gears").rollout.unwrap(), promoted);
+    reopened.put_split(&edited, None, NOW + 3).unwrap();
+    assert!(state(&*reopened, "gears").rollout.is_none());
+    let mut other = policy.clone();
+    other.min_requests = 20;
+    reopened.put_split(&edited, Some(&other), NOW + 4).unwrap();
+    let read = state(&*reopened, "gears");
+    assert_eq!(read.rollout.unwrap().state.step, 0);
+    assert_eq!(read.events.last().unwrap().action, RolloutAction::Started);
+
+    // Deleting the split takes its history and latency rows with it.
+    assert!(reopened.delete_split("gears").unwrap());
+    reopened.put_split(&definition, None, NOW + 5).unwrap();
+    let read = state(&*reopened, "gears");
+    assert!(read.events.is_empty() && read.arms[1].health.latency.count() == 0);
+}
+
+/// A database written by the version before rollouts (schema 1) is upgraded in place: its
+/// splits, arm records and outcomes are kept, and rollouts work on it.
+#[test]
+fn a_version_one_sqlite_file_is_upgraded_in_place() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("experiments.sqlite");
+    {
+        // The version-1 schema, as that version created it, with one split and one outcome.
+        let conn = rusqlite::Connection::open(&path).unwrap();
+        conn.execute_batch(
+            "CREATE TABLE splits (generation INTEGER PRIMARY KEY AUTOINCREMENT, name TEXT NOT NULL UNIQUE, created_ms INTEGER NOT NULL, updated_ms INTEGER NOT NULL);
+             CREATE TABLE arms (id INTEGER PRIMARY KEY AUTOINCREMENT, generation INTEGER NOT NULL REFERENCES splits (generation), position INTEGER, name TEXT NOT NULL, adapter TEXT NOT NULL, version TEXT, weight REAL NOT NULL, requests INTEGER NOT NULL DEFAULT 0, numeric_count INTEGER NOT NULL DEFAULT 0, numeric_shift REAL NOT NULL DEFAULT 0, numeric_mean REAL NOT NULL DEFAULT 0, numeric_m2 REAL NOT NULL DEFAULT 0, yes_no_count INTEGER NOT NULL DEFAULT 0, yes_no_yes INTEGER NOT NULL DEFAULT 0, UNIQUE (generation, position));
+             CREATE INDEX arms_by_generation ON arms (generation);
+             CREATE TABLE responses (id TEXT NOT NULL PRIMARY KEY, generation INTEGER NOT NULL, arm_id INTEGER NOT NULL, tenant TEXT NOT NULL, served_ms INTEGER NOT NULL, outcome_number REAL, outcome_yes_no INTEGER, outcome_ms INTEGER);
+             INSERT INTO splits (name, created_ms, updated_ms) VALUES ('old', 1, 1);
+             INSERT INTO arms (generation, position, name, adapter, version, weight, requests, yes_no_count, yes_no_yes) VALUES (1, 0, 'only', 'base', NULL, 1.0, 7, 5, 4);
+             PRAGMA user_version = 1;",
+        )
+        .unwrap();
+    }
+    let store = SqliteStore::open(&path).unwrap();
+    let read = state(&store, "old");
+    assert_eq!(read.arms[0].requests, 7);
+    assert_eq!(read.arms[0].yes_no.successes(), 4);
+    assert!(read.rollout.is_none() && read.arms[0].health.finished == 0);
+    let version: i64 = rusqlite::Connection::open(&path)
+        .unwrap()
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(version, 2);
 }

@@ -280,6 +280,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
             mixing_variance: settings.mixing_variance,
             assignment_alarm_p: settings.assignment_alarm_p,
         },
+        rollout_check: Duration::from_millis(settings.rollout_check_ms),
         bounds: Bounds {
             inference_body_bytes: settings.inference_body_bytes,
             upload_body_bytes: settings.upload_body_bytes,
@@ -409,6 +410,7 @@ async fn serve(state: SharedState, listen: SocketAddr, grace: Duration) -> anyho
         track,
     ));
     tokio::spawn(crate::http::recent::sample_every(state.clone()));
+    tokio::spawn(crate::http::splits::check_rollouts_every(state.clone()));
     let listener = tokio::net::TcpListener::bind(listen)
         .await
         .with_context(|| format!("binding {listen}"))?;

@@ -13,6 +13,7 @@ use std::time::{Duration, Instant};
 use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::Registry;
 
+use crate::splits::rollout::{PolicyError, RolloutPolicy};
 use crate::splits::{ArmSpec, NumericTally, Split, SplitError};
 use crate::sync::{Mutex, MutexGuard, RwLock};
 
@@ -21,7 +22,7 @@ use super::records::{
     OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome, ServedResponse,
     SplitRecord, SplitState,
 };
-use super::responses::{Receipt, ResponseLog};
+use super::responses::{ArmWatch, Receipt, ResponseLog};
 use super::{ExperimentError, ExperimentStore, now_ms};
 
 /// How often old response records are pruned.
@@ -61,6 +62,8 @@ pub enum SplitEditError {
     #[error(transparent)]
     Arm(#[from] ArmProblem),
     #[error(transparent)]
+    Policy(#[from] PolicyError),
+    #[error(transparent)]
     Store(#[from] ExperimentError),
 }
 
@@ -82,9 +85,9 @@ pub struct EditGuard<'a>(#[allow(dead_code)] MutexGuard<'a, ()>);
 
 /// The splits of this server.
 pub struct Experiments {
-    store: Arc<dyn ExperimentStore>,
+    pub(super) store: Arc<dyn ExperimentStore>,
     live: Arc<RwLock<BTreeMap<String, LiveSplit>>>,
-    edits: Arc<Mutex<()>>,
+    pub(super) edits: Arc<Mutex<()>>,
     log: ResponseLog,
     pruner: Option<Pruner>,
     refresher: Option<Pruner>,
@@ -132,6 +135,11 @@ impl std::fmt::Debug for Experiments {
 }
 
 impl Experiments {
+    /// Reads the split definitions again into memory (after a rollout changed weights).
+    pub(super) fn reload(&self) {
+        reload_live(self.store.as_ref(), &self.live, &self.edits);
+    }
+
     /// Loads the splits of `store`, starts the response log, and (with `keep_responses`) prunes
     /// response records older than that now and every hour. With `reload_every` (a store that
     /// other replicas write too) the definitions are read again at that interval, so a split
@@ -209,12 +217,26 @@ impl Experiments {
         })
     }
 
-    /// Creates or changes a split (validated by [`Split::new`]), after checking that every arm serves something `registry`'s
+    /// Starts watching a request that arm record `arm_id` serves (see [`ArmWatch`]).
+    pub fn watch(&self, arm_id: i64) -> Option<ArmWatch> {
+        self.log.watch(arm_id)
+    }
+
+    /// Creates or changes a split (validated by [`Split::new`]), with its rollout policy (checked
+    /// against the split) or none, after checking that every arm serves something `registry`'s
     /// store has; durable when it returns. The registry is told which versions arms hold.
-    pub fn put_split(&self, split: Split, registry: &Registry) -> Result<PutSplit, SplitEditError> {
+    pub fn put_split(
+        &self,
+        split: Split,
+        rollout: Option<&RolloutPolicy>,
+        registry: &Registry,
+    ) -> Result<PutSplit, SplitEditError> {
+        if let Some(policy) = rollout {
+            policy.check(&split)?;
+        }
         let _edit = self.edits.lock();
         check_arms(registry.store(), &split)?;
-        let put = self.store.put_split(split.spec(), now_ms())?;
+        let put = self.store.put_split(split.spec(), rollout, now_ms())?;
         let live = LiveSplit::from_record(&put.record)?;
         self.live.write().insert(put.record.name.clone(), live);
         self.keep_arm_versions(registry);

@@ -32,7 +32,7 @@ pub fn migrate(store_dir: &Path, store: &dyn ExperimentStore) -> anyhow::Result<
     for spec in specs {
         let split = Split::new(spec).with_context(|| format!("a split in {}", path.display()))?;
         if store.split(split.name())?.is_none() {
-            store.put_split(split.spec(), now_ms())?;
+            store.put_split(split.spec(), None, now_ms())?;
             moved += 1;
         }
     }

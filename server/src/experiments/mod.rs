@@ -14,6 +14,8 @@
 //! - [`Experiments`] ([`book`]) is what the HTTP layer talks to: it keeps the current definitions
 //!   in memory for assignment on every request, writes through the store, and prunes old response
 //!   records in the background.
+//! - [`rollouts`] runs the guarded rollouts of splits that carry a policy: every check reads the
+//!   tallies, decides, and acts through the store and the registry.
 //! - [`legacy`] reads the `splits.json` of earlier versions once and moves it into the store.
 //!
 //! Identity. A split record has a generation (an id a store never hands out twice), so a split
@@ -30,15 +32,18 @@ pub mod legacy;
 pub mod postgres;
 pub mod records;
 pub mod responses;
+pub mod rollouts;
 pub mod sqlite;
 
 pub use book::{Experiments, SplitEditError};
 pub use postgres::PostgresStore;
 pub use records::{
-    ArmRecord, ArmTally, OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome,
-    ServedResponse, SplitRecord, SplitState,
+    ArmRecord, ArmTally, FinishedRequest, OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit,
+    RecordedOutcome, ServedResponse, SplitRecord, SplitState,
 };
 pub use sqlite::SqliteStore;
+
+use crate::splits::rollout::{Rollout, RolloutEvent, RolloutPolicy};
 
 /// Why a store operation failed.
 #[derive(Debug, thiserror::Error)]
@@ -68,21 +73,43 @@ pub trait ExperimentStore: Send + Sync + 'static {
     fn split(&self, name: &str) -> Result<Option<SplitState>, ExperimentError>;
 
     /// Creates split `spec.name` with a new generation, or changes its arms, deciding which arm
-    /// records go on by [`arms::plan_arms`], in one transaction.
+    /// records go on by [`arms::plan_arms`], in one transaction. `rollout` replaces the split's
+    /// rollout policy: a policy equal to the stored one keeps its progress, a new one starts
+    /// afresh (with a `started` entry in its history), `None` removes it.
     fn put_split(
         &self,
         spec: &crate::splits::SplitSpec,
+        rollout: Option<&RolloutPolicy>,
         now_ms: i64,
     ) -> Result<PutSplit, ExperimentError>;
+
+    /// Changes a split's rollout, only if it still reads `expected` (so that of two replicas
+    /// acting on one reading, one acts): writes `new`, sets the current arms' weights to
+    /// `weights` when given, and appends `event` to its history, in one transaction. False when
+    /// the rollout (or the split's generation) changed meanwhile and nothing was written.
+    fn change_rollout(
+        &self,
+        name: &str,
+        generation: i64,
+        expected: &Rollout,
+        new: &Rollout,
+        weights: Option<&[f64]>,
+        event: &RolloutEvent,
+    ) -> Result<bool, ExperimentError>;
 
     /// Deletes a split with all its arm records and response records; false when there was no
     /// such split.
     fn delete_split(&self, name: &str) -> Result<bool, ExperimentError>;
 
     /// Records which arm record answered each response, and counts the requests of each arm
-    /// record, in one transaction. A response whose arm record no longer exists (its split was
+    /// record, and adds how requests ended (`finished`: errors and latencies) to their arm
+    /// records, in one transaction. A record whose arm record no longer exists (its split was
     /// deleted meanwhile) is skipped.
-    fn record_responses(&self, served: &[ServedResponse]) -> Result<(), ExperimentError>;
+    fn record_responses(
+        &self,
+        served: &[ServedResponse],
+        finished: &[FinishedRequest],
+    ) -> Result<(), ExperimentError>;
 
     /// Records an outcome on the arm record that served the response, in one transaction with
     /// marking the response as having its outcome. A response served to another tenant is

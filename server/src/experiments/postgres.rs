@@ -13,6 +13,7 @@
 //! The connection string is a `postgres://` URL (`experiments.database`); its password is never
 //! logged.
 
+use crate::splits::rollout::{ArmHealth, Rollout, RolloutEvent, RolloutPolicy};
 use crate::splits::{ArmSpec, BinaryTally, NumericParts, NumericTally, SplitSpec};
 use crate::sync::Mutex;
 
@@ -20,13 +21,14 @@ use postgres::{Client, NoTls, Transaction};
 
 use super::arms::plan_arms;
 use super::records::{
-    ArmRecord, ArmTally, OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome,
-    ServedResponse, SplitRecord, SplitState,
+    ArmRecord, ArmTally, EVENTS_KEPT_IN_STATE, FinishedRequest, OutcomeRefused, OutcomeReport,
+    OutcomeValue, PutSplit, RecordedOutcome, ServedResponse, SplitRecord, SplitState,
 };
+use super::sqlite::{next_rollout, started_event, sum_finished};
 use super::{ExperimentError, ExperimentStore};
 
 /// The schema version this code writes and reads.
-const SCHEMA_VERSION: i64 = 1;
+const SCHEMA_VERSION: i64 = 2;
 
 /// Any number that names this schema's creation lock (`pg_advisory_xact_lock`).
 const SCHEMA_LOCK: i64 = 0x5357_5943_4859_4152;
@@ -37,7 +39,8 @@ CREATE TABLE splits (
     generation BIGSERIAL PRIMARY KEY,
     name TEXT NOT NULL UNIQUE,
     created_ms BIGINT NOT NULL,
-    updated_ms BIGINT NOT NULL
+    updated_ms BIGINT NOT NULL,
+    rollout TEXT
 );
 CREATE TABLE arms (
     id BIGSERIAL PRIMARY KEY,
@@ -54,6 +57,8 @@ CREATE TABLE arms (
     numeric_m2 DOUBLE PRECISION NOT NULL DEFAULT 0,
     yes_no_count BIGINT NOT NULL DEFAULT 0,
     yes_no_yes BIGINT NOT NULL DEFAULT 0,
+    finished BIGINT NOT NULL DEFAULT 0,
+    errors BIGINT NOT NULL DEFAULT 0,
     UNIQUE (generation, position)
 );
 CREATE INDEX arms_by_generation ON arms (generation);
@@ -69,6 +74,30 @@ CREATE TABLE responses (
 );
 CREATE INDEX responses_by_served ON responses (served_ms);
 CREATE INDEX responses_by_generation ON responses (generation);
+";
+
+/// What version 2 added to version 1.
+const V2_UPGRADE: &str = "
+ALTER TABLE splits ADD COLUMN rollout TEXT;
+ALTER TABLE arms ADD COLUMN finished BIGINT NOT NULL DEFAULT 0;
+ALTER TABLE arms ADD COLUMN errors BIGINT NOT NULL DEFAULT 0;
+";
+
+/// The tables version 2 added.
+const V2_TABLES: &str = "
+CREATE TABLE arm_latency (
+    arm_id BIGINT NOT NULL,
+    bucket BIGINT NOT NULL,
+    n BIGINT NOT NULL,
+    PRIMARY KEY (arm_id, bucket)
+);
+CREATE TABLE rollout_events (
+    id BIGSERIAL PRIMARY KEY,
+    generation BIGINT NOT NULL,
+    at_ms BIGINT NOT NULL,
+    body TEXT NOT NULL
+);
+CREATE INDEX rollout_events_by_generation ON rollout_events (generation);
 ";
 
 /// How many response records one pruning transaction deletes.
@@ -138,7 +167,7 @@ fn stored_count(n: u64) -> i64 {
 
 /// The columns [`arm_tally`] reads, in its order.
 const ARM_COLUMNS: &str = "id, name, adapter, version, weight, requests, numeric_count, \
-     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position";
+     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors";
 
 fn arm_tally(row: &postgres::Row) -> Result<(ArmTally, bool), ExperimentError> {
     let tally = ArmTally {
@@ -161,6 +190,11 @@ fn arm_tally(row: &postgres::Row) -> Result<(ArmTally, bool), ExperimentError> {
         yes_no: BinaryTally::from_counts(count(row.get(10)), count(row.get(11))).map_err(|e| {
             ExperimentError::Corrupt(format!("arm record {}: {e}", row.get::<_, i64>(0)))
         })?,
+        health: ArmHealth {
+            finished: count(row.get(13)),
+            errors: count(row.get(14)),
+            ..ArmHealth::default()
+        },
     };
     let position: Option<i64> = row.get(12);
     Ok((tally, position.is_some()))
@@ -185,16 +219,65 @@ fn load_state(
         name,
         arms: Vec::new(),
         replaced: Vec::new(),
+        rollout: None,
+        events: Vec::new(),
     };
+    let mut latency: std::collections::HashMap<i64, Vec<(u16, u64)>> = Default::default();
+    for row in client
+        .query(
+            "SELECT l.arm_id, l.bucket, l.n FROM arm_latency l JOIN arms a ON a.id = l.arm_id \
+             WHERE a.generation = $1",
+            &[&generation],
+        )
+        .map_err(db("reading latencies"))?
+    {
+        latency.entry(row.get(0)).or_default().push((
+            u16::try_from(row.get::<_, i64>(1)).unwrap_or(u16::MAX),
+            count(row.get(2)),
+        ));
+    }
     for row in &rows {
-        let (tally, current) = arm_tally(row)?;
+        let (mut tally, current) = arm_tally(row)?;
+        for (bucket, n) in latency.remove(&tally.arm.id).unwrap_or_default() {
+            tally.health.latency.add(bucket, n);
+        }
         if current {
             state.arms.push(tally);
         } else {
             state.replaced.push(tally);
         }
     }
+    let rollout: Option<String> = client
+        .query_opt(
+            "SELECT rollout FROM splits WHERE generation = $1",
+            &[&generation],
+        )
+        .map_err(db("reading a rollout"))?
+        .and_then(|r| r.get(0));
+    state.rollout = rollout.as_deref().map(parse_rollout).transpose()?;
+    for row in client
+        .query(
+            "SELECT body FROM rollout_events WHERE generation = $1 ORDER BY id DESC LIMIT $2",
+            &[&generation, &(EVENTS_KEPT_IN_STATE as i64)],
+        )
+        .map_err(db("reading a rollout's history"))?
+    {
+        state.events.push(
+            serde_json::from_str(row.get::<_, &str>(0))
+                .map_err(|e| ExperimentError::Corrupt(format!("a rollout event: {e}")))?,
+        );
+    }
+    state.events.reverse();
     Ok(state)
+}
+
+fn parse_rollout(text: &str) -> Result<Rollout, ExperimentError> {
+    serde_json::from_str(text)
+        .map_err(|e| ExperimentError::Corrupt(format!("a split's rollout: {e}")))
+}
+
+fn json_text<T: serde::Serialize>(value: &T) -> String {
+    serde_json::to_string(value).expect("rollout records serialise")
 }
 
 fn current_arms(
@@ -241,17 +324,25 @@ impl PostgresStore {
             .map_err(db("reading the schema version"))?
             .get(0);
         if exists {
-            let version: i64 = tx
+            let mut version: i64 = tx
                 .query_one("SELECT version FROM switchyard_schema", &[])
                 .map_err(db("reading the schema version"))?
                 .get(0);
+            if version == 1 {
+                tx.batch_execute(&format!(
+                    "{V2_UPGRADE} {V2_TABLES} UPDATE switchyard_schema SET version = 2;"
+                ))
+                .map_err(db("upgrading the schema to version 2"))?;
+                tracing::info!(database = %shown, "experiment database upgraded to schema version 2 (rollouts)");
+                version = 2;
+            }
             if version != SCHEMA_VERSION {
                 return Err(ExperimentError::Corrupt(format!(
                     "{shown} has schema version {version}; this switchyard reads version {SCHEMA_VERSION}"
                 )));
             }
         } else {
-            tx.batch_execute(SCHEMA)
+            tx.batch_execute(&format!("{SCHEMA} {V2_TABLES}"))
                 .map_err(db("creating the schema"))?;
             tx.execute(
                 "INSERT INTO switchyard_schema (version) VALUES ($1)",
@@ -275,6 +366,7 @@ impl PostgresStore {
     fn put_split_in(
         tx: &mut Transaction<'_>,
         spec: &SplitSpec,
+        rollout: Option<&RolloutPolicy>,
         now_ms: i64,
     ) -> Result<PutSplit, ExperimentError> {
         // Creating the row if missing and locking it either way: two replicas creating one split
@@ -337,6 +429,33 @@ impl PostgresStore {
                 spec: arm.clone(),
             });
         }
+        // The split row is locked (inserted or updated above), so its rollout is read and
+        // written without another replica's change in between.
+        let stored: Option<String> = tx
+            .query_one(
+                "SELECT rollout FROM splits WHERE generation = $1",
+                &[&generation],
+            )
+            .map_err(db("reading a rollout"))?
+            .get(0);
+        let stored = stored.as_deref().map(parse_rollout).transpose()?;
+        let (next, started) = next_rollout(stored, rollout);
+        tx.execute(
+            "UPDATE splits SET rollout = $2 WHERE generation = $1",
+            &[&generation, &next.as_ref().map(json_text)],
+        )
+        .map_err(db("writing a rollout"))?;
+        if started && let Some(policy) = rollout {
+            tx.execute(
+                "INSERT INTO rollout_events (generation, at_ms, body) VALUES ($1, $2, $3)",
+                &[
+                    &generation,
+                    &now_ms,
+                    &json_text(&started_event(spec, policy, now_ms)),
+                ],
+            )
+            .map_err(db("writing a rollout's history"))?;
+        }
         Ok(PutSplit {
             record: SplitRecord {
                 generation,
@@ -381,12 +500,17 @@ impl ExperimentStore for PostgresStore {
         Ok(state)
     }
 
-    fn put_split(&self, spec: &SplitSpec, now_ms: i64) -> Result<PutSplit, ExperimentError> {
+    fn put_split(
+        &self,
+        spec: &SplitSpec,
+        rollout: Option<&RolloutPolicy>,
+        now_ms: i64,
+    ) -> Result<PutSplit, ExperimentError> {
         let mut client = self.client.lock();
         let mut tx = client
             .transaction()
             .map_err(db("beginning a transaction"))?;
-        let put = Self::put_split_in(&mut tx, spec, now_ms)?;
+        let put = Self::put_split_in(&mut tx, spec, rollout, now_ms)?;
         tx.commit().map_err(db("committing a split edit"))?;
         Ok(put)
     }
@@ -408,6 +532,8 @@ impl ExperimentStore for PostgresStore {
         };
         for statement in [
             "DELETE FROM responses WHERE generation = $1",
+            "DELETE FROM rollout_events WHERE generation = $1",
+            "DELETE FROM arm_latency WHERE arm_id IN (SELECT id FROM arms WHERE generation = $1)",
             "DELETE FROM arms WHERE generation = $1",
             "DELETE FROM splits WHERE generation = $1",
         ] {
@@ -418,8 +544,63 @@ impl ExperimentStore for PostgresStore {
         Ok(true)
     }
 
-    fn record_responses(&self, served: &[ServedResponse]) -> Result<(), ExperimentError> {
-        if served.is_empty() {
+    fn change_rollout(
+        &self,
+        name: &str,
+        generation: i64,
+        expected: &Rollout,
+        new: &Rollout,
+        weights: Option<&[f64]>,
+        event: &RolloutEvent,
+    ) -> Result<bool, ExperimentError> {
+        let mut client = self.client.lock();
+        let mut tx = client
+            .transaction()
+            .map_err(db("beginning a transaction"))?;
+        // The split row locked: of two replicas acting on one reading, the second waits here
+        // and then reads the first one's rollout, which no longer matches.
+        let stored = tx
+            .query_opt(
+                "SELECT rollout FROM splits WHERE name = $1 AND generation = $2 FOR UPDATE",
+                &[&name, &generation],
+            )
+            .map_err(db("reading a rollout"))?
+            .and_then(|r| r.get::<_, Option<String>>(0));
+        let Some(stored) = stored else {
+            return Ok(false);
+        };
+        if parse_rollout(&stored)? != *expected {
+            return Ok(false);
+        }
+        if let Some(weights) = weights {
+            for (position, weight) in weights.iter().enumerate() {
+                tx.execute(
+                    "UPDATE arms SET weight = $3 WHERE generation = $1 AND position = $2",
+                    &[&generation, &(position as i64), weight],
+                )
+                .map_err(db("changing arm weights"))?;
+            }
+        }
+        tx.execute(
+            "UPDATE splits SET rollout = $2, updated_ms = $3 WHERE generation = $1",
+            &[&generation, &json_text(new), &event.at_ms],
+        )
+        .map_err(db("writing a rollout"))?;
+        tx.execute(
+            "INSERT INTO rollout_events (generation, at_ms, body) VALUES ($1, $2, $3)",
+            &[&generation, &event.at_ms, &json_text(event)],
+        )
+        .map_err(db("writing a rollout's history"))?;
+        tx.commit().map_err(db("committing a rollout change"))?;
+        Ok(true)
+    }
+
+    fn record_responses(
+        &self,
+        served: &[ServedResponse],
+        finished: &[FinishedRequest],
+    ) -> Result<(), ExperimentError> {
+        if served.is_empty() && finished.is_empty() {
             return Ok(());
         }
         let mut client = self.client.lock();
@@ -434,9 +615,13 @@ impl ExperimentStore for PostgresStore {
                  ON CONFLICT (id) DO NOTHING",
             )
             .map_err(db("recording responses"))?;
-        let counted = tx
-            .prepare("UPDATE arms SET requests = requests + 1 WHERE id = $1")
-            .map_err(db("counting requests"))?;
+        // Every arm row is updated once, in the order of its id (and the latency rows after, in
+        // theirs), so two replicas writing batches over the same arms never deadlock.
+        let (per_arm, per_bucket) = sum_finished(finished);
+        let mut changes: std::collections::BTreeMap<i64, (u64, u64, u64)> = per_arm
+            .into_iter()
+            .map(|(arm, (n, failed))| (arm, (0, n, failed)))
+            .collect();
         for r in served {
             let inserted = tx
                 .execute(
@@ -451,9 +636,37 @@ impl ExperimentStore for PostgresStore {
                 )
                 .map_err(db("recording responses"))?;
             if inserted == 1 {
-                tx.execute(&counted, &[&r.arm_id])
-                    .map_err(db("counting requests"))?;
+                changes.entry(r.arm_id).or_default().0 += 1;
             }
+        }
+        let counted = tx
+            .prepare(
+                "UPDATE arms SET requests = requests + $2, finished = finished + $3, \
+                 errors = errors + $4 WHERE id = $1",
+            )
+            .map_err(db("counting requests"))?;
+        for (arm, (requests, n, failed)) in changes {
+            tx.execute(
+                &counted,
+                &[
+                    &arm,
+                    &stored_count(requests),
+                    &stored_count(n),
+                    &stored_count(failed),
+                ],
+            )
+            .map_err(db("counting requests"))?;
+        }
+        let timed = tx
+            .prepare(
+                "INSERT INTO arm_latency (arm_id, bucket, n) SELECT $1, $2, $3 \
+                 WHERE EXISTS (SELECT 1 FROM arms WHERE id = $1) \
+                 ON CONFLICT (arm_id, bucket) DO UPDATE SET n = arm_latency.n + EXCLUDED.n",
+            )
+            .map_err(db("recording latencies"))?;
+        for ((arm, bucket), n) in per_bucket {
+            tx.execute(&timed, &[&arm, &i64::from(bucket), &stored_count(n)])
+                .map_err(db("recording latencies"))?;
         }
         tx.commit().map_err(db("committing response records"))
     }

@@ -1,6 +1,7 @@
 //! What goes in and out of an [`ExperimentStore`](super::ExperimentStore): plain data, no
 //! database types.
 
+use crate::splits::rollout::{ArmHealth, Rollout, RolloutEvent};
 use crate::splits::{ArmSpec, BinaryTally, NumericTally, OutcomeError, Split, SplitSpec};
 
 use super::ExperimentError;
@@ -53,6 +54,8 @@ pub struct ArmTally {
     pub requests: u64,
     pub numeric: NumericTally,
     pub yes_no: BinaryTally,
+    /// How its requests ended: errors and latencies, for the rollout guards.
+    pub health: ArmHealth,
 }
 
 /// A split with the tallies of its arm records.
@@ -65,7 +68,14 @@ pub struct SplitState {
     /// Arm records an edit replaced or removed, oldest first; outcomes for responses they
     /// served still land on them.
     pub replaced: Vec<ArmTally>,
+    /// The rollout policy and its progress, when the split carries one.
+    pub rollout: Option<Rollout>,
+    /// The rollout's history, oldest first (the last [`EVENTS_KEPT_IN_STATE`] entries).
+    pub events: Vec<RolloutEvent>,
 }
+
+/// How many of a rollout's history entries a [`SplitState`] carries.
+pub const EVENTS_KEPT_IN_STATE: usize = 100;
 
 impl SplitState {
     pub fn record(&self) -> SplitRecord {
@@ -86,6 +96,15 @@ pub struct ServedResponse {
     /// The tenant the response was served to; only it may post the outcome.
     pub tenant: String,
     pub served_ms: i64,
+}
+
+/// How a request served by an arm record ended.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FinishedRequest {
+    pub arm_id: i64,
+    pub failed: bool,
+    /// From the arm's assignment to the end of the answer, in milliseconds.
+    pub latency_ms: f64,
 }
 
 /// An outcome: a number (within [`crate::splits::MAX_OUTCOME_MAGNITUDE`]) or yes/no.

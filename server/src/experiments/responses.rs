@@ -13,14 +13,54 @@ use std::thread::JoinHandle;
 use tokio::sync::oneshot;
 
 use super::ExperimentStore;
-use super::records::ServedResponse;
+use super::records::{FinishedRequest, ServedResponse};
 
 /// The most records one transaction carries.
 const MAX_BATCH: usize = 1024;
 
-struct Pending {
-    served: ServedResponse,
-    done: oneshot::Sender<Result<(), String>>,
+enum Pending {
+    Served {
+        served: ServedResponse,
+        done: oneshot::Sender<Result<(), String>>,
+    },
+    /// How a request ended; nobody waits for it.
+    Finished(FinishedRequest),
+}
+
+/// Watches one request an arm record serves, from its assignment: [`ArmWatch::finish`] records
+/// how it ended and how long it took (the evidence of a rollout's error and latency guards).
+/// Dropped unfinished (the request failed on a path that returned early), it counts as failed;
+/// [`ArmWatch::abandon`] drops it without a record (the client went away).
+#[derive(Debug)]
+pub struct ArmWatch {
+    sender: mpsc::Sender<Pending>,
+    arm_id: i64,
+    started: std::time::Instant,
+    ended: std::sync::atomic::AtomicBool,
+}
+
+impl ArmWatch {
+    /// Records the request as answered (`failed` false) or failed; only the first call counts.
+    pub fn finish(&self, failed: bool) {
+        if !self.ended.swap(true, std::sync::atomic::Ordering::SeqCst) {
+            let _ = self.sender.send(Pending::Finished(FinishedRequest {
+                arm_id: self.arm_id,
+                failed,
+                latency_ms: self.started.elapsed().as_secs_f64() * 1e3,
+            }));
+        }
+    }
+
+    /// Ends the watch without a record.
+    pub fn abandon(&self) {
+        self.ended.store(true, std::sync::atomic::Ordering::SeqCst);
+    }
+}
+
+impl Drop for ArmWatch {
+    fn drop(&mut self) {
+        self.finish(true);
+    }
 }
 
 /// The answer to one [`ResponseLog::record`]: ready once the record is durable (or failed).
@@ -71,30 +111,46 @@ impl ResponseLog {
     /// Queues one record; the receipt says when it is durable.
     pub fn record(&self, served: ServedResponse) -> Receipt {
         let (done, receipt) = oneshot::channel();
-        let pending = Pending { served, done };
+        let pending = Pending::Served { served, done };
         if let Some(sender) = &self.sender
-            && let Err(mpsc::SendError(pending)) = sender.send(pending)
+            && let Err(mpsc::SendError(Pending::Served { done, .. })) = sender.send(pending)
         {
-            let _ = pending
-                .done
-                .send(Err("the response log stopped".to_owned()));
+            let _ = done.send(Err("the response log stopped".to_owned()));
         }
         Receipt(receipt)
+    }
+
+    /// Starts watching a request arm record `arm_id` serves; `None` once the log stopped.
+    pub fn watch(&self, arm_id: i64) -> Option<ArmWatch> {
+        Some(ArmWatch {
+            sender: self.sender.clone()?,
+            arm_id,
+            started: std::time::Instant::now(),
+            ended: std::sync::atomic::AtomicBool::new(false),
+        })
     }
 }
 
 fn write_batches(store: &dyn ExperimentStore, receiver: &mpsc::Receiver<Pending>) {
     while let Ok(first) = receiver.recv() {
-        let mut rows = vec![first.served];
-        let mut waiting = vec![first.done];
-        while rows.len() < MAX_BATCH {
+        let (mut rows, mut waiting, mut finished) = (Vec::new(), Vec::new(), Vec::new());
+        let mut take = |pending: Pending| match pending {
+            Pending::Served { served, done } => {
+                rows.push(served);
+                waiting.push(done);
+            }
+            Pending::Finished(f) => finished.push(f),
+        };
+        take(first);
+        for _ in 1..MAX_BATCH {
             let Ok(next) = receiver.try_recv() else { break };
-            rows.push(next.served);
-            waiting.push(next.done);
+            take(next);
         }
-        let result = store.record_responses(&rows).map_err(|e| e.to_string());
+        let result = store
+            .record_responses(&rows, &finished)
+            .map_err(|e| e.to_string());
         if let Err(e) = &result {
-            tracing::error!(records = rows.len(), error = %e, "response records were not written");
+            tracing::error!(records = rows.len(), finished = finished.len(), error = %e, "response records were not written");
         }
         for done in waiting {
             let _ = done.send(result.clone());
@@ -104,7 +160,8 @@ fn write_batches(store: &dyn ExperimentStore, receiver: &mpsc::Receiver<Pending>
 
 impl Drop for ResponseLog {
     fn drop(&mut self) {
-        // Closing the channel lets the writer finish what is queued and return.
+        // Closing the channel lets the writer finish what is queued and return (once the
+        // watches of requests still running, which hold senders too, have ended).
         drop(self.sender.take());
         if let Some(writer) = self.writer.take() {
             let _ = writer.join();

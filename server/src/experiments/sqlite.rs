@@ -8,15 +8,18 @@
 //! (`BEGIN IMMEDIATE`), so a read-check-write such as an outcome never races another writer;
 //! reads go through a second connection, which the log lets run beside a write.
 //!
-//! Schema (version 1, kept in `PRAGMA user_version`):
+//! Schema (version 2, kept in `PRAGMA user_version`; a version-1 file is upgraded in place):
 //!
 //! ```text
-//! splits     generation (never reused: AUTOINCREMENT), name (unique), created_ms, updated_ms
-//! arms       id (never reused), generation, position (NULL once an edit replaced the record),
-//!            name, adapter, version, weight, requests, the numeric tally (count, shift, mean,
-//!            m2), the yes/no tally (count, yes)
-//! responses  id, generation, arm_id, tenant, served_ms, the outcome (number or yes/no) and
-//!            when it came (outcome_ms, NULL until then)
+//! splits          generation (never reused: AUTOINCREMENT), name (unique), created_ms,
+//!                 updated_ms, rollout (JSON: policy and progress; NULL without one; v2)
+//! arms            id (never reused), generation, position (NULL once an edit replaced the
+//!                 record), name, adapter, version, weight, requests, the numeric tally (count,
+//!                 shift, mean, m2), the yes/no tally (count, yes), finished and errors (v2)
+//! responses       id, generation, arm_id, tenant, served_ms, the outcome (number or yes/no)
+//!                 and when it came (outcome_ms, NULL until then)
+//! arm_latency     arm_id, bucket, n: the latency histogram of each arm record (v2)
+//! rollout_events  id, generation, at_ms, body (JSON): a rollout's history (v2)
 //! ```
 
 use std::path::{Path, PathBuf};
@@ -24,25 +27,29 @@ use std::time::Duration;
 
 use rusqlite::{Connection, OptionalExtension, Transaction, TransactionBehavior, params};
 
+use crate::splits::rollout::{
+    Actor, ArmHealth, Rollout, RolloutAction, RolloutEvent, RolloutPolicy, RolloutState,
+};
 use crate::splits::{ArmSpec, BinaryTally, NumericParts, NumericTally, SplitSpec};
 use crate::sync::Mutex;
 
 use super::arms::plan_arms;
 use super::records::{
-    ArmRecord, ArmTally, OutcomeRefused, OutcomeReport, OutcomeValue, PutSplit, RecordedOutcome,
-    ServedResponse, SplitRecord, SplitState,
+    ArmRecord, ArmTally, EVENTS_KEPT_IN_STATE, FinishedRequest, OutcomeRefused, OutcomeReport,
+    OutcomeValue, PutSplit, RecordedOutcome, ServedResponse, SplitRecord, SplitState,
 };
 use super::{ExperimentError, ExperimentStore};
 
 /// The schema version this code writes and reads.
-const SCHEMA_VERSION: i64 = 1;
+const SCHEMA_VERSION: i64 = 2;
 
 const SCHEMA: &str = "
 CREATE TABLE splits (
     generation INTEGER PRIMARY KEY AUTOINCREMENT,
     name TEXT NOT NULL UNIQUE,
     created_ms INTEGER NOT NULL,
-    updated_ms INTEGER NOT NULL
+    updated_ms INTEGER NOT NULL,
+    rollout TEXT
 );
 CREATE TABLE arms (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -59,6 +66,8 @@ CREATE TABLE arms (
     numeric_m2 REAL NOT NULL DEFAULT 0,
     yes_no_count INTEGER NOT NULL DEFAULT 0,
     yes_no_yes INTEGER NOT NULL DEFAULT 0,
+    finished INTEGER NOT NULL DEFAULT 0,
+    errors INTEGER NOT NULL DEFAULT 0,
     UNIQUE (generation, position)
 );
 CREATE INDEX arms_by_generation ON arms (generation);
@@ -74,6 +83,30 @@ CREATE TABLE responses (
 );
 CREATE INDEX responses_by_served ON responses (served_ms);
 CREATE INDEX responses_by_generation ON responses (generation);
+";
+
+/// What version 2 added to version 1.
+const V2_UPGRADE: &str = "
+ALTER TABLE splits ADD COLUMN rollout TEXT;
+ALTER TABLE arms ADD COLUMN finished INTEGER NOT NULL DEFAULT 0;
+ALTER TABLE arms ADD COLUMN errors INTEGER NOT NULL DEFAULT 0;
+";
+
+/// The tables version 2 added.
+const V2_TABLES: &str = "
+CREATE TABLE arm_latency (
+    arm_id INTEGER NOT NULL,
+    bucket INTEGER NOT NULL,
+    n INTEGER NOT NULL,
+    PRIMARY KEY (arm_id, bucket)
+);
+CREATE TABLE rollout_events (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    generation INTEGER NOT NULL,
+    at_ms INTEGER NOT NULL,
+    body TEXT NOT NULL
+);
+CREATE INDEX rollout_events_by_generation ON rollout_events (generation);
 ";
 
 /// How many response records one pruning transaction deletes, so that pruning never holds the
@@ -150,9 +183,21 @@ fn migrate(conn: &mut Connection, path: &Path) -> Result<(), ExperimentError> {
         .map_err(db("reading the schema version"))?;
     match version {
         0 => {
-            tx.execute_batch(&format!("{SCHEMA} PRAGMA user_version = {SCHEMA_VERSION};"))
-                .map_err(db("creating the schema"))?;
+            tx.execute_batch(&format!(
+                "{SCHEMA} {V2_TABLES} PRAGMA user_version = {SCHEMA_VERSION};"
+            ))
+            .map_err(db("creating the schema"))?;
             tx.commit().map_err(db("creating the schema"))
+        }
+        1 => {
+            tx.execute_batch(&format!(
+                "{V2_UPGRADE} {V2_TABLES} PRAGMA user_version = {SCHEMA_VERSION};"
+            ))
+            .map_err(db("upgrading the schema to version 2"))?;
+            tx.commit()
+                .map_err(db("upgrading the schema to version 2"))?;
+            tracing::info!(path = %path.display(), "experiment database upgraded to schema version 2 (rollouts)");
+            Ok(())
         }
         SCHEMA_VERSION => Ok(()),
         other => Err(ExperimentError::Corrupt(format!(
@@ -177,7 +222,7 @@ fn stored_count(n: u64) -> i64 {
 
 /// The columns [`arm_tally`] reads, in its order.
 const ARM_COLUMNS: &str = "id, name, adapter, version, weight, requests, numeric_count, \
-     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position";
+     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors";
 
 /// One `arms` row selected with [`ARM_COLUMNS`], and whether it is current.
 fn arm_tally(row: &rusqlite::Row<'_>) -> rusqlite::Result<(ArmTally, bool, i64, i64)> {
@@ -199,6 +244,11 @@ fn arm_tally(row: &rusqlite::Row<'_>) -> rusqlite::Result<(ArmTally, bool, i64, 
             squared_deviations: row.get(9)?,
         }),
         yes_no: BinaryTally::new(),
+        health: ArmHealth {
+            finished: count(row.get(13)?),
+            errors: count(row.get(14)?),
+            ..ArmHealth::default()
+        },
     };
     let position: Option<i64> = row.get(12)?;
     Ok((tally, position.is_some(), row.get(10)?, row.get(11)?))
@@ -224,18 +274,149 @@ fn load_state(
         name,
         arms: Vec::new(),
         replaced: Vec::new(),
+        rollout: None,
+        events: Vec::new(),
     };
+    let mut latency: std::collections::HashMap<i64, Vec<(u16, u64)>> = Default::default();
+    {
+        let mut buckets = conn
+            .prepare_cached(
+                "SELECT l.arm_id, l.bucket, l.n FROM arm_latency l JOIN arms a ON a.id = l.arm_id \
+                 WHERE a.generation = ?1",
+            )
+            .map_err(db("reading latencies"))?;
+        let rows = buckets
+            .query_map([generation], |r| {
+                Ok((
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, i64>(2)?,
+                ))
+            })
+            .map_err(db("reading latencies"))?;
+        for row in rows {
+            let (arm, bucket, n) = row.map_err(db("reading latencies"))?;
+            latency
+                .entry(arm)
+                .or_default()
+                .push((u16::try_from(bucket).unwrap_or(u16::MAX), count(n)));
+        }
+    }
     for row in rows {
         let (mut tally, current, yes_no_count, yes_no_yes) = row.map_err(db("reading arms"))?;
         tally.yes_no = BinaryTally::from_counts(count(yes_no_count), count(yes_no_yes))
             .map_err(|e| ExperimentError::Corrupt(format!("arm record {}: {e}", tally.arm.id)))?;
+        for (bucket, n) in latency.remove(&tally.arm.id).unwrap_or_default() {
+            tally.health.latency.add(bucket, n);
+        }
         if current {
             state.arms.push(tally);
         } else {
             state.replaced.push(tally);
         }
     }
+    let rollout: Option<String> = conn
+        .query_row(
+            "SELECT rollout FROM splits WHERE generation = ?1",
+            [generation],
+            |r| r.get(0),
+        )
+        .optional()
+        .map_err(db("reading a rollout"))?
+        .flatten();
+    state.rollout = rollout.as_deref().map(parse_rollout).transpose()?;
+    let mut events = conn
+        .prepare_cached(
+            "SELECT body FROM rollout_events WHERE generation = ?1 ORDER BY id DESC LIMIT ?2",
+        )
+        .map_err(db("reading a rollout's history"))?;
+    let bodies = events
+        .query_map(params![generation, EVENTS_KEPT_IN_STATE as i64], |r| {
+            r.get::<_, String>(0)
+        })
+        .map_err(db("reading a rollout's history"))?;
+    for body in bodies {
+        let body = body.map_err(db("reading a rollout's history"))?;
+        state.events.push(
+            serde_json::from_str(&body)
+                .map_err(|e| ExperimentError::Corrupt(format!("a rollout event: {e}")))?,
+        );
+    }
+    state.events.reverse();
     Ok(state)
+}
+
+fn parse_rollout(text: &str) -> Result<Rollout, ExperimentError> {
+    serde_json::from_str(text)
+        .map_err(|e| ExperimentError::Corrupt(format!("a split's rollout: {e}")))
+}
+
+fn rollout_text(rollout: &Rollout) -> String {
+    serde_json::to_string(rollout).expect("a rollout serialises")
+}
+
+fn event_text(event: &RolloutEvent) -> String {
+    serde_json::to_string(event).expect("a rollout event serialises")
+}
+
+/// What `put_split` writes in the rollout column for `policy`, given what is there: the same
+/// policy keeps its progress; a new one starts afresh and is returned as started.
+pub(super) fn next_rollout(
+    stored: Option<Rollout>,
+    policy: Option<&RolloutPolicy>,
+) -> (Option<Rollout>, bool) {
+    match (stored, policy) {
+        (_, None) => (None, false),
+        (Some(old), Some(p)) if old.policy == *p => (Some(old), false),
+        (_, Some(p)) => (
+            Some(Rollout {
+                policy: p.clone(),
+                state: RolloutState::start(),
+            }),
+            true,
+        ),
+    }
+}
+
+/// The history entry of a policy set by an operator.
+pub(super) fn started_event(spec: &SplitSpec, policy: &RolloutPolicy, now_ms: i64) -> RolloutEvent {
+    let total: f64 = spec.arms.iter().map(|a| a.weight).sum();
+    let share = spec
+        .arms
+        .iter()
+        .find(|a| a.name == policy.candidate)
+        .map(|a| if total > 0.0 { a.weight / total } else { 0.0 })
+        .unwrap_or(0.0);
+    RolloutEvent {
+        at_ms: now_ms,
+        action: RolloutAction::Started,
+        by: Actor::Operator,
+        candidate_share: share,
+        reason: "rollout policy set".into(),
+    }
+}
+
+/// Finished requests and failures per arm record.
+pub(super) type FinishedPerArm = std::collections::BTreeMap<i64, (u64, u64)>;
+/// Finished requests per (arm record, latency bucket).
+pub(super) type FinishedPerBucket = std::collections::BTreeMap<(i64, u16), u64>;
+
+/// Adds up finished requests per arm record and per (arm record, latency bucket).
+pub(super) fn sum_finished(finished: &[FinishedRequest]) -> (FinishedPerArm, FinishedPerBucket) {
+    let mut per_arm = FinishedPerArm::new();
+    let mut per_bucket = FinishedPerBucket::new();
+    for f in finished {
+        let slot = per_arm.entry(f.arm_id).or_default();
+        slot.0 += 1;
+        slot.1 += u64::from(f.failed);
+        *per_bucket
+            .entry((
+                f.arm_id,
+                crate::splits::rollout::LatencyHistogram::bucket_of(f.latency_ms),
+            ))
+            .or_default() += 1;
+    }
+    (per_arm, per_bucket)
 }
 
 /// The current arm records of a split.
@@ -296,18 +477,29 @@ impl ExperimentStore for SqliteStore {
             .transpose()
     }
 
-    fn put_split(&self, spec: &SplitSpec, now_ms: i64) -> Result<PutSplit, ExperimentError> {
+    fn put_split(
+        &self,
+        spec: &SplitSpec,
+        rollout: Option<&RolloutPolicy>,
+        now_ms: i64,
+    ) -> Result<PutSplit, ExperimentError> {
         let mut conn = self.writer.lock();
         let tx = begin(&mut conn)?;
-        let existing: Option<i64> = tx
+        let existing: Option<(i64, Option<String>)> = tx
             .query_row(
-                "SELECT generation FROM splits WHERE name = ?1",
+                "SELECT generation, rollout FROM splits WHERE name = ?1",
                 [&spec.name],
-                |r| r.get(0),
+                |r| Ok((r.get(0)?, r.get(1)?)),
             )
             .optional()
             .map_err(db("reading a split"))?;
-        let (generation, created) = match existing {
+        let stored = existing
+            .as_ref()
+            .and_then(|(_, r)| r.as_deref())
+            .map(parse_rollout)
+            .transpose()?;
+        let (next, started) = next_rollout(stored, rollout);
+        let (generation, created) = match existing.map(|(g, _)| g) {
             Some(generation) => {
                 tx.execute(
                     "UPDATE splits SET updated_ms = ?2 WHERE generation = ?1",
@@ -365,6 +557,22 @@ impl ExperimentStore for SqliteStore {
                 spec: arm.clone(),
             });
         }
+        tx.execute(
+            "UPDATE splits SET rollout = ?2 WHERE generation = ?1",
+            params![generation, next.as_ref().map(rollout_text)],
+        )
+        .map_err(db("writing a rollout"))?;
+        if started && let Some(policy) = rollout {
+            tx.execute(
+                "INSERT INTO rollout_events (generation, at_ms, body) VALUES (?1, ?2, ?3)",
+                params![
+                    generation,
+                    now_ms,
+                    event_text(&started_event(spec, policy, now_ms))
+                ],
+            )
+            .map_err(db("writing a rollout's history"))?;
+        }
         tx.commit().map_err(db("committing a split edit"))?;
         Ok(PutSplit {
             record: SplitRecord {
@@ -392,6 +600,8 @@ impl ExperimentStore for SqliteStore {
         };
         for statement in [
             "DELETE FROM responses WHERE generation = ?1",
+            "DELETE FROM rollout_events WHERE generation = ?1",
+            "DELETE FROM arm_latency WHERE arm_id IN (SELECT id FROM arms WHERE generation = ?1)",
             "DELETE FROM arms WHERE generation = ?1",
             "DELETE FROM splits WHERE generation = ?1",
         ] {
@@ -402,8 +612,60 @@ impl ExperimentStore for SqliteStore {
         Ok(true)
     }
 
-    fn record_responses(&self, served: &[ServedResponse]) -> Result<(), ExperimentError> {
-        if served.is_empty() {
+    fn change_rollout(
+        &self,
+        name: &str,
+        generation: i64,
+        expected: &Rollout,
+        new: &Rollout,
+        weights: Option<&[f64]>,
+        event: &RolloutEvent,
+    ) -> Result<bool, ExperimentError> {
+        let mut conn = self.writer.lock();
+        let tx = begin(&mut conn)?;
+        let stored: Option<Option<String>> = tx
+            .query_row(
+                "SELECT rollout FROM splits WHERE name = ?1 AND generation = ?2",
+                params![name, generation],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(db("reading a rollout"))?;
+        let Some(Some(stored)) = stored else {
+            return Ok(false);
+        };
+        if parse_rollout(&stored)? != *expected {
+            return Ok(false);
+        }
+        if let Some(weights) = weights {
+            for (position, weight) in weights.iter().enumerate() {
+                tx.execute(
+                    "UPDATE arms SET weight = ?3 WHERE generation = ?1 AND position = ?2",
+                    params![generation, position as i64, weight],
+                )
+                .map_err(db("changing arm weights"))?;
+            }
+        }
+        tx.execute(
+            "UPDATE splits SET rollout = ?2, updated_ms = ?3 WHERE generation = ?1",
+            params![generation, rollout_text(new), event.at_ms],
+        )
+        .map_err(db("writing a rollout"))?;
+        tx.execute(
+            "INSERT INTO rollout_events (generation, at_ms, body) VALUES (?1, ?2, ?3)",
+            params![generation, event.at_ms, event_text(event)],
+        )
+        .map_err(db("writing a rollout's history"))?;
+        tx.commit().map_err(db("committing a rollout change"))?;
+        Ok(true)
+    }
+
+    fn record_responses(
+        &self,
+        served: &[ServedResponse],
+        finished: &[FinishedRequest],
+    ) -> Result<(), ExperimentError> {
+        if served.is_empty() && finished.is_empty() {
             return Ok(());
         }
         let mut conn = self.writer.lock();
@@ -436,6 +698,29 @@ impl ExperimentStore for SqliteStore {
                         .execute([r.arm_id])
                         .map_err(db("counting requests"))?;
                 }
+            }
+            let (per_arm, per_bucket) = sum_finished(finished);
+            let mut ended = tx
+                .prepare_cached(
+                    "UPDATE arms SET finished = finished + ?2, errors = errors + ?3 WHERE id = ?1",
+                )
+                .map_err(db("counting finished requests"))?;
+            for (arm, (n, failed)) in per_arm {
+                ended
+                    .execute(params![arm, stored_count(n), stored_count(failed)])
+                    .map_err(db("counting finished requests"))?;
+            }
+            let mut timed = tx
+                .prepare_cached(
+                    "INSERT INTO arm_latency (arm_id, bucket, n) SELECT ?1, ?2, ?3 \
+                     WHERE EXISTS (SELECT 1 FROM arms WHERE id = ?1) \
+                     ON CONFLICT (arm_id, bucket) DO UPDATE SET n = n + excluded.n",
+                )
+                .map_err(db("recording latencies"))?;
+            for ((arm, bucket), n) in per_bucket {
+                timed
+                    .execute(params![arm, i64::from(bucket), stored_count(n)])
+                    .map_err(db("recording latencies"))?;
             }
         }
         tx.commit().map_err(db("committing response records"))

@@ -20,7 +20,7 @@ use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::end_at::EndAt;
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
-use crate::experiments::responses::Receipt;
+use crate::experiments::responses::{ArmWatch, Receipt};
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
@@ -36,6 +36,25 @@ pub struct Routed {
     pub swap: Duration,
     /// Through a split: says when the record of which arm answered is on disk.
     pub recorded: Option<Receipt>,
+    /// Through a split: records how the request ended and how long it took, for the arm's
+    /// rollout guards (counted as failed if dropped unfinished).
+    pub watch: Option<ArmWatch>,
+}
+
+impl Routed {
+    /// Records that the request was answered.
+    fn answered(&self) {
+        if let Some(w) = &self.watch {
+            w.finish(false);
+        }
+    }
+
+    /// Records that the request failed after it was routed.
+    fn failed(&self) {
+        if let Some(w) = &self.watch {
+            w.finish(true);
+        }
+    }
 }
 
 fn random_id(prefix: &str) -> String {
@@ -122,6 +141,7 @@ async fn route(
         ));
     }
     let mut recorded = None;
+    let mut watch = None;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
             return Err(ApiError::bad_request(
@@ -154,6 +174,9 @@ async fn route(
                 }
             }
             let assigned = assigned.ok_or_else(|| ApiError::unknown_split(s))?;
+            // From here on a failure is the arm's: the watch counts it unless the request is
+            // answered.
+            watch = state.splits.watch(assigned.arm_id);
             let arm = assigned.arm.clone();
             if arm.adapter != "base" && !tenant.may_use(&arm.adapter) {
                 return Err(forbidden(format!(
@@ -187,6 +210,7 @@ async fn route(
             split: split_arm,
             swap: Duration::ZERO,
             recorded,
+            watch,
         });
     }
     if !tenant.may_use(&name) {
@@ -212,6 +236,7 @@ async fn route(
         split: split_arm,
         swap: start.elapsed(),
         recorded,
+        watch,
     })
 }
 
@@ -516,6 +541,7 @@ pub async fn embed(
     let asked = body.adapter.clone();
     match run_embed(&state, &tenant, body, "embed", &id).await {
         Ok((routed, out)) => {
+            routed.answered();
             finish(&state, "embed", &id, &routed.served_by, 200, start);
             Json(json!({
                 "id": id,
@@ -590,6 +616,7 @@ pub async fn classify(
     .await;
     match result {
         Ok((routed, timings, results)) => {
+            routed.answered();
             finish(&state, "classify", &id, &routed.served_by, 200, start);
             Json(json!({
                 "id": id,
@@ -812,6 +839,7 @@ async fn whole_answer(
                 timings,
                 ..
             }) => {
+                routed.answered();
                 finish(state, "generate", id, &routed.served_by, 200, start);
                 return Json(json!({
                     "id": id,
@@ -830,6 +858,7 @@ async fn whole_answer(
             None => break ApiError::internal("the engine dropped a generation"),
         }
     };
+    routed.failed();
     finish(
         state,
         "generate",
@@ -997,6 +1026,7 @@ fn stream_answer(
                     timings,
                     ..
                 } => {
+                    routed.answered();
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
                     let e = Event::default().event("done").json_data(json!({
                         "id": id,
@@ -1013,6 +1043,7 @@ fn stream_answer(
                 }
                 GenEvent::Failed(err) => {
                     let err = ApiError::from(err);
+                    routed.failed();
                     finish(
                         &state,
                         "generate",
@@ -1029,7 +1060,11 @@ fn stream_answer(
                 }
             };
             if tx.send(event.expect("json")).is_err() {
-                // The client went away: dropping rx tells the engine to stop this sequence.
+                // The client went away: dropping rx tells the engine to stop this sequence. Not
+                // the arm's failure, so its guards do not count it.
+                if let Some(w) = &routed.watch {
+                    w.abandon();
+                }
                 return;
             }
         }

@@ -66,6 +66,8 @@ pub struct AppState {
     pub splits: crate::experiments::Experiments,
     /// The parameters of split readouts (`[experiments]` in the configuration).
     pub readout: crate::splits::ReadoutSettings,
+    /// How often rollout policies are checked (`[experiments] rollout_check_ms`).
+    pub rollout_check: std::time::Duration,
     pub bounds: Bounds,
     /// False once shutdown began.
     pub ready: AtomicBool,
@@ -163,6 +165,7 @@ pub fn router(state: SharedState) -> Router {
             put(splits::put_split).delete(splits::delete_split),
         )
         .route("/admin/splits/{name}/readout", get(splits::readout))
+        .route("/admin/splits/{name}/rollout", post(splits::rollout_action))
         .route_layer(from_fn_with_state(state.clone(), gate::admin));
     let metrics = Router::new()
         .route("/metrics", get(metrics))

@@ -9,6 +9,7 @@ use serde::Deserialize;
 use serde_json::{Value, json};
 
 use crate::experiments::arms::ArmProblem;
+use crate::experiments::rollouts::{OperatorAction, RolloutRefused, reading};
 use crate::experiments::{
     ArmTally, ExperimentError, OutcomeRefused, OutcomeValue, SplitEditError, SplitState,
 };
@@ -16,6 +17,7 @@ use crate::http::SharedState;
 use crate::http::admin::require_admin;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
+use crate::splits::rollout::RolloutPolicy;
 use crate::splits::{
     ArmSpec, BinaryTally, NumericTally, ReadoutSettings, Split, SplitSpec, always_valid_numeric,
     always_valid_proportion, assignment_check, binary_readout, numeric_readout, sequential,
@@ -61,6 +63,7 @@ fn edit_error(e: SplitEditError) -> ApiError {
             ApiError::bad_request("invalid_split", text)
         }
         SplitEditError::Arm(ArmProblem::Store { .. }) => ApiError::internal(text),
+        SplitEditError::Policy(_) => ApiError::bad_request("invalid_rollout", text),
         SplitEditError::Store(e) => store_failed(e),
     }
 }
@@ -77,17 +80,26 @@ fn unknown_split(name: &str) -> ApiError {
 #[serde(deny_unknown_fields)]
 pub struct SplitBody {
     pub arms: Vec<ArmSpec>,
+    /// A guarded rollout of the second arm (see [`crate::splits::rollout`]); absent: none.
+    #[serde(default)]
+    pub rollout: Option<RolloutPolicy>,
 }
 
 /// The split a `PUT /admin/splits/{name}` body defines, validated (the fuzz target
 /// `http_bodies` runs this too); whether its adapters and versions exist is checked when the
 /// split is written.
 pub fn split_from_body(name: &str, body: SplitBody) -> Result<Split, ApiError> {
-    Split::new(SplitSpec {
+    let split = Split::new(SplitSpec {
         name: name.to_owned(),
         arms: body.arms,
     })
-    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))
+    .map_err(|e| ApiError::bad_request("invalid_split", e.to_string()))?;
+    if let Some(policy) = &body.rollout {
+        policy
+            .check(&split)
+            .map_err(|e| ApiError::bad_request("invalid_rollout", e.to_string()))?;
+    }
+    Ok(split)
 }
 
 /// `PUT /admin/splits/{name}`: creates or changes a split. An arm that keeps its name and what it
@@ -100,16 +112,21 @@ pub async fn put_split(
     ApiJson(body): ApiJson<SplitBody>,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     require_admin(&state, &headers)?;
+    let policy = body.rollout.clone();
     let split = split_from_body(&name, body)?;
+    let kept = policy.clone();
     let put = blocking(&state, move |state| {
         state
             .splits
-            .put_split(split, &state.registry)
+            .put_split(split, kept.as_ref(), &state.registry)
             .map_err(edit_error)
     })
     .await?;
     let mut answer = serde_json::to_value(put.record.spec()).expect("a split serialises");
     answer["generation"] = json!(put.record.generation);
+    if let Some(policy) = policy {
+        answer["rollout"] = json!(policy);
+    }
     let status = if put.created {
         StatusCode::CREATED
     } else {
@@ -164,6 +181,10 @@ pub async fn list(
             let mut v = serde_json::to_value(s.record().spec()).expect("a split serialises");
             v["generation"] = json!(s.generation);
             v["requests"] = json!(s.arms.iter().map(|a| a.requests).collect::<Vec<_>>());
+            if let Some(r) = &s.rollout {
+                v["rollout"] = json!(r.policy);
+                v["rollout_status"] = json!(r.state.status);
+            }
             v
         })
         .collect();
@@ -222,12 +243,20 @@ fn readout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
     let check = assignment_check(&requests, &weights, settings.assignment_alarm_p);
     let (numeric, binary) = (numeric_readout(&numeric), binary_readout(&binary));
     let arm_line = |a: &ArmTally| {
+        let h = &a.health;
         json!({
             "arm": a.arm.spec.name,
             "adapter": a.arm.spec.adapter,
             "version": a.arm.spec.version,
             "weight": a.arm.spec.weight,
             "requests": a.requests,
+            "finished": h.finished,
+            "errors": h.errors,
+            "error_share": (h.finished > 0).then(|| h.errors as f64 / h.finished as f64),
+            "latency_ms": {
+                "p50": h.latency.quantile(0.5),
+                "p99": h.latency.quantile(0.99),
+            },
         })
     };
     let arms: Vec<Value> = split
@@ -268,7 +297,103 @@ fn readout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
         "assignment_check": check,
         "arms": arms,
         "replaced_arms": replaced,
+        "rollout": rollout_json(split, settings),
     })
+}
+
+/// The rollout part of a readout: policy, progress, each guard's reading (always-valid), what
+/// the policy would do now, and the history; `null` without a policy.
+fn rollout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
+    let Some(rollout) = &split.rollout else {
+        return Value::Null;
+    };
+    let now = reading(split, settings);
+    json!({
+        "policy": rollout.policy,
+        "status": rollout.state.status,
+        "step": rollout.state.step,
+        "steps": rollout.policy.steps.len(),
+        "guards": now.as_ref().map(|r| json!(r.guards)),
+        "guards_validity": crate::splits::Validity::AlwaysValid,
+        "next": now.map(|r| r.decision.describe()),
+        "history": split.events,
+    })
+}
+
+/// Checks every split's rollout policy every `rollout_check` and carries out what it says, off
+/// the async workers; runs until the server stops.
+pub async fn check_rollouts_every(state: SharedState) {
+    let mut tick = tokio::time::interval(state.rollout_check);
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    loop {
+        tick.tick().await;
+        let shared = state.clone();
+        let applied = tokio::task::spawn_blocking(move || {
+            shared
+                .splits
+                .run_rollouts(&shared.registry, &shared.readout)
+        })
+        .await
+        .unwrap_or_default();
+        for done in applied {
+            state.metrics.count_rollout(&done.split, &done.event);
+        }
+    }
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RolloutBody {
+    pub action: OperatorAction,
+    /// Why, for the history; default: the action by an operator.
+    pub reason: Option<String>,
+}
+
+/// The longest reason an operator may give.
+const MAX_REASON_BYTES: usize = 1000;
+
+/// `POST /admin/splits/{name}/rollout` with `{"action": "pause" | "resume" | "promote" |
+/// "roll_back", "reason": "..."}`: a person's override of a split's rollout, recorded in its
+/// history like an automatic action. Answers the history entry.
+pub async fn rollout_action(
+    State(state): State<SharedState>,
+    headers: HeaderMap,
+    Path(name): Path<String>,
+    ApiJson(body): ApiJson<RolloutBody>,
+) -> Result<Json<Value>, ApiError> {
+    require_admin(&state, &headers)?;
+    if body
+        .reason
+        .as_ref()
+        .is_some_and(|r| r.len() > MAX_REASON_BYTES)
+    {
+        return Err(ApiError::bad_request(
+            "invalid_field",
+            format!("field `reason`: at most {MAX_REASON_BYTES} bytes"),
+        ));
+    }
+    let lookup = name.clone();
+    let applied = blocking(&state, move |state| {
+        state
+            .splits
+            .operator_rollout(&lookup, body.action, body.reason, &state.registry)
+            .map_err(|e| {
+                let text = e.to_string();
+                match e {
+                    RolloutRefused::UnknownSplit(_) => ApiError::not_found("unknown_split", text),
+                    RolloutRefused::NoPolicy(_) => ApiError::conflict("no_rollout", text),
+                    RolloutRefused::NotApplicable { .. } => {
+                        ApiError::conflict("rollout_not_applicable", text)
+                    }
+                    RolloutRefused::Raced => ApiError::conflict("rollout_changed", text),
+                    RolloutRefused::Live(_) => ApiError::internal(text),
+                    RolloutRefused::Store(e) => store_failed(e),
+                }
+            })
+    })
+    .await?;
+    state.metrics.count_rollout(&applied.split, &applied.event);
+    Ok(Json(json!({"split": name, "event": applied.event})))
 }
 
 #[derive(Debug, Deserialize)]

@@ -7,7 +7,8 @@
 //! arm's mean or proportion with its 95% interval, and its difference to the first arm with an
 //! interval and a p-value, valid when read once at a planned sample size. [`sequential`] adds
 //! the always-valid figures (a confidence sequence and a p-value that stay valid however often
-//! the readout is read), and [`ratio_check`] tests the requests per arm against the weights.
+//! the readout is read), [`ratio_check`] tests the requests per arm against the weights, and
+//! [`rollout`] decides what a split's guarded rollout does next (roll back, promote, flip live).
 //! None of these parts knows about HTTP or the registry; the HTTP layer keeps the splits and
 //! tallies and calls in here.
 
@@ -15,6 +16,7 @@ pub mod assign;
 #[cfg(test)]
 mod peeking;
 pub mod ratio_check;
+pub mod rollout;
 pub mod sequential;
 pub mod stats;
 
