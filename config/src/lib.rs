@@ -145,6 +145,11 @@ pub struct Settings {
     /// How often the splits' rollout policies are checked and acted on
     /// (`[experiments] rollout_check_ms`).
     pub rollout_check_ms: u64,
+    /// The most shadow requests running at once (`[experiments] shadow_max_in_flight`).
+    pub shadow_max_in_flight: u64,
+    /// Shadow work starts only while the engine's queue holds at most this many jobs
+    /// (`[experiments] shadow_max_queued`).
+    pub shadow_max_queued: u64,
 }
 
 /// Where the object store is and how to reach it. The secret key never appears in `{:?}` or in
@@ -271,6 +276,8 @@ impl Default for Settings {
             mixing_variance: 0.1,
             assignment_alarm_p: 0.001,
             rollout_check_ms: 1000,
+            shadow_max_in_flight: 2,
+            shadow_max_queued: 0,
         }
     }
 }
@@ -546,6 +553,16 @@ impl Settings {
                 d.rollout_check_ms,
                 50..=600_000,
             )?,
+            shadow_max_in_flight: src.whole(
+                &read::SHADOW_MAX_IN_FLIGHT,
+                d.shadow_max_in_flight,
+                1..=64,
+            )?,
+            shadow_max_queued: src.whole(
+                &read::SHADOW_MAX_QUEUED,
+                d.shadow_max_queued,
+                0..=10_000,
+            )?,
         })
     }
 }
@@ -705,6 +722,8 @@ impl fmt::Debug for Settings {
             .field("mixing_variance", &self.mixing_variance)
             .field("assignment_alarm_p", &self.assignment_alarm_p)
             .field("rollout_check_ms", &self.rollout_check_ms)
+            .field("shadow_max_in_flight", &self.shadow_max_in_flight)
+            .field("shadow_max_queued", &self.shadow_max_queued)
             .finish()
     }
 }

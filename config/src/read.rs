@@ -189,6 +189,16 @@ pub(crate) const ROLLOUT_CHECK_MS: SettingKey = SettingKey::new(
     "rollout_check_ms",
     "SWITCHYARD_EXPERIMENTS_ROLLOUT_CHECK_MS",
 );
+pub(crate) const SHADOW_MAX_IN_FLIGHT: SettingKey = SettingKey::new(
+    "experiments",
+    "shadow_max_in_flight",
+    "SWITCHYARD_EXPERIMENTS_SHADOW_MAX_IN_FLIGHT",
+);
+pub(crate) const SHADOW_MAX_QUEUED: SettingKey = SettingKey::new(
+    "experiments",
+    "shadow_max_queued",
+    "SWITCHYARD_EXPERIMENTS_SHADOW_MAX_QUEUED",
+);
 
 /// Every scalar key, in the order the rendered settings list them. `[[tenants]]` is the one
 /// setting that is not scalar; it comes from the file only.
@@ -239,6 +249,8 @@ pub const KEYS: &[SettingKey] = &[
     MIXING_VARIANCE,
     ASSIGNMENT_ALARM_P,
     ROLLOUT_CHECK_MS,
+    SHADOW_MAX_IN_FLIGHT,
+    SHADOW_MAX_QUEUED,
 ];
 
 /// Keys of earlier releases and what replaced them, so an old file gets a pointer to the new key

@@ -170,6 +170,8 @@ pub(crate) fn render(s: &Settings) -> String {
     page.line(&read::MIXING_VARIANCE, s.mixing_variance);
     page.line(&read::ASSIGNMENT_ALARM_P, s.assignment_alarm_p);
     page.line(&read::ROLLOUT_CHECK_MS, s.rollout_check_ms);
+    page.line(&read::SHADOW_MAX_IN_FLIGHT, s.shadow_max_in_flight);
+    page.line(&read::SHADOW_MAX_QUEUED, s.shadow_max_queued);
 
     let mut text = page.text;
     if s.tenants.is_empty() {

@@ -169,6 +169,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         (&read::MIXING_VARIANCE, "0.25", "0.25"),
         (&read::ASSIGNMENT_ALARM_P, "0.01", "0.01"),
         (&read::ROLLOUT_CHECK_MS, "250", "250"),
+        (&read::SHADOW_MAX_IN_FLIGHT, "3", "3"),
+        (&read::SHADOW_MAX_QUEUED, "5", "5"),
         (&read::STORE_BUCKET, "\"adapters\"", "adapters"),
         (
             &read::STORE_ENDPOINT,
@@ -248,6 +250,8 @@ fn every_scalar_key_is_read_from_the_file_and_from_its_variable() {
         mixing_variance: 0.25,
         assignment_alarm_p: 0.01,
         rollout_check_ms: 250,
+        shadow_max_in_flight: 3,
+        shadow_max_queued: 5,
     };
     assert_eq!(from_file, expected);
 }
@@ -382,6 +386,11 @@ fn each_range_is_enforced_at_both_ends() {
             "[experiments]\nrollout_check_ms = 10",
             "experiments.rollout_check_ms",
             "10",
+        ),
+        (
+            "[experiments]\nshadow_max_in_flight = 0",
+            "experiments.shadow_max_in_flight",
+            "0",
         ),
         ("[experiments]\ndatabase = \"\"", "experiments.database", ""),
     ];

@@ -208,7 +208,7 @@ fn put_split(name: &str, body: &[u8]) {
     };
     let split = match split_from_body(name, body) {
         Ok(split) => split,
-        Err(e) => return refused(&e, &["invalid_split"]),
+        Err(e) => return refused(&e, &["invalid_split", "invalid_rollout"]),
     };
     assert_eq!(split.name(), name);
     assert!(check_name("name", name).is_ok() && name != "base");
@@ -223,6 +223,10 @@ fn put_split(name: &str, body: &[u8]) {
             "arm names are unique"
         );
         assert!(arm.weight.is_finite() && arm.weight >= 0.0);
+        if let Some(share) = arm.shadow {
+            assert!(i > 0 && share > 0.0 && share <= 1.0 && arm.weight == 0.0);
+            assert!(arm.version.is_some(), "a shadow arm holds a version");
+        }
         if let Some(v) = &arm.version {
             assert!(arm.adapter != "base");
             assert_eq!(v.len(), 16, "a version is 16 hex digits");

@@ -67,6 +67,7 @@ fn main() {
                     adapter: "base".to_owned(),
                     version: None,
                     weight: 1.0,
+                    shadow: None,
                 }],
             },
             None,

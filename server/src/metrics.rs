@@ -88,6 +88,13 @@ pub struct RolloutLabels {
     pub by: String,
 }
 
+/// A shadow request: the split and what became of it (`ran`, `skipped_busy`, `failed`).
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ShadowLabels {
+    pub split: String,
+    pub result: String,
+}
+
 fn seconds_histogram() -> Histogram {
     // 0.1 ms to ~13 s.
     Histogram::new(exponential_buckets(0.0001, 2.0, 18))
@@ -111,6 +118,7 @@ pub struct Metrics {
     pub engine_restarts: Counter,
     pub arm_requests: Family<ArmLabels, Counter>,
     pub rollout_actions: Family<RolloutLabels, Counter>,
+    pub shadow_requests: Family<ShadowLabels, Counter>,
     pub refusals: Family<RefusalLabels, Counter>,
     pub swap_events_dropped: Counter<u64, AtomicU64>,
     pub process_resident_bytes: Gauge,
@@ -243,6 +251,12 @@ impl Metrics {
             "Actions this replica took on split rollouts, by split, action and who decided (policy or operator)",
             rollout_actions.clone(),
         );
+        let shadow_requests = Family::<ShadowLabels, Counter>::default();
+        registry.register(
+            "shadow_requests",
+            "Requests mirrored to a split's shadow arm, by split and result (ran, skipped_busy: the server was busy, failed); never part of the request counts",
+            shadow_requests.clone(),
+        );
         let refusals = Family::<RefusalLabels, Counter>::default();
         registry.register(
             "refusals",
@@ -302,6 +316,7 @@ impl Metrics {
             engine_restarts,
             arm_requests,
             rollout_actions,
+            shadow_requests,
             refusals,
             swap_events_dropped,
             process_resident_bytes,
@@ -400,6 +415,12 @@ impl Metrics {
                 arm: arm.clone(),
             });
         }
+        for result in ["ran", "skipped_busy", "failed"] {
+            self.shadow_requests.remove(&ShadowLabels {
+                split: split.to_owned(),
+                result: result.to_owned(),
+            });
+        }
         for action in ["promoted", "flipped", "rolled_back", "paused", "resumed"] {
             for by in ["policy", "operator"] {
                 self.rollout_actions.remove(&RolloutLabels {
@@ -409,6 +430,16 @@ impl Metrics {
                 });
             }
         }
+    }
+
+    /// Counts a shadow request of `split` by what became of it.
+    pub fn count_shadow(&self, split: &str, result: &str) {
+        self.shadow_requests
+            .get_or_create(&ShadowLabels {
+                split: split.to_owned(),
+                result: result.to_owned(),
+            })
+            .inc();
     }
 
     /// Counts a rollout action this replica took.

@@ -24,6 +24,7 @@ fn arm(name: &str, adapter: &str, version: Option<&str>, weight: f64) -> ArmSpec
         adapter: adapter.to_owned(),
         version: version.map(str::to_owned),
         weight,
+        shadow: None,
     }
 }
 

@@ -1,7 +1,7 @@
 //! The README's first command, `scripts/demo`, run the way the test suite runs it: with the debug
 //! binary, on a free port, the tour only (`--no-serve`). If any step of the tour stops getting
 //! the answer it shows (a classification, a live flip with no failed request, a split readout,
-//! the swap metrics), the tour exits 1 and this test fails, so the demo cannot silently rot.
+//! a rushed version rolled back by its rollout policy, the swap metrics), the tour exits 1 and this test fails, so the demo cannot silently rot.
 
 use std::process::Command;
 
@@ -36,6 +36,8 @@ fn the_demo_tour_runs_every_step_against_a_real_server() {
         "A/B split north-routing-trial",
         "incumbent",
         "candidate",
+        "guarded rollout north-routing-rollout",
+        "history: rolled_back by policy",
         "swap stage",
         "memory held, tier",
         "The tour is done",

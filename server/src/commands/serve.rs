@@ -261,7 +261,16 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
             shared_batch_rows: settings.shared_batch_rows,
             promote_share: settings.promote_share,
             promote_window_rows: settings.promote_window_rows,
-            tenants: tenant_limits(&settings),
+            tenants: {
+                // The tenants' lanes, then shadow traffic's, with no quota of its own (its
+                // budget is checked before a shadow job is queued).
+                let mut lanes = tenant_limits(&settings);
+                lanes.push(crate::engine::TenantLimits {
+                    name: SHADOW_LANE.to_owned(),
+                    quota: Default::default(),
+                });
+                lanes
+            },
         },
         metrics.clone(),
     );
@@ -281,6 +290,12 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
             assignment_alarm_p: settings.assignment_alarm_p,
         },
         rollout_check: Duration::from_millis(settings.rollout_check_ms),
+        shadow: crate::http::ShadowBudget {
+            lane: tenant_limits(&settings).len(),
+            max_in_flight: settings.shadow_max_in_flight as usize,
+            max_queued: settings.shadow_max_queued as usize,
+            in_flight: Default::default(),
+        },
         bounds: Bounds {
             inference_body_bytes: settings.inference_body_bytes,
             upload_body_bytes: settings.upload_body_bytes,
@@ -366,6 +381,9 @@ fn yield_to_the_engine(niceness: Option<i32>) {
     #[cfg(not(target_os = "linux"))]
     let _ = niceness;
 }
+
+/// The engine lane shadow traffic queues in, as metrics name it.
+const SHADOW_LANE: &str = "shadow-traffic";
 
 /// How often a replica reads the split definitions of a shared experiment database again.
 const SHARED_RELOAD: Duration = Duration::from_secs(1);

@@ -2,7 +2,8 @@
 //! only, as any client would: it classifies one message with each demo adapter, shows one tenant
 //! kept away from another's adapter, publishes a new version of an adapter and flips it live while
 //! requests keep flowing (and counts that none failed), runs an A/B split with outcomes and prints
-//! its readout, and ends with the metrics of swap latency and memory held. Every step checks what
+//! its readout, lets a guarded rollout roll a rushed version back by itself, and ends with the
+//! metrics of swap latency and memory held. Every step checks what
 //! it got, so the tour fails loudly (exit 1) when the server stops doing what the demo shows.
 
 use std::collections::BTreeMap;
@@ -25,7 +26,8 @@ pub struct TourArgs {
     /// The server's config file: the tour reads the admin token and the tenant keys from it.
     #[arg(long, default_value = "config/switchyard.example.toml")]
     pub config: PathBuf,
-    /// Folder of the demo adapter packages (routing, urgency, sentiment, routing-retrained).
+    /// Folder of the demo adapter packages (routing, urgency, sentiment, routing-retrained,
+    /// routing-rushed).
     #[arg(long, default_value = "demo/adapters")]
     pub adapters: PathBuf,
     /// Folder of the labelled demo messages; the A/B split sends routing-traffic.jsonl.
@@ -203,6 +205,7 @@ pub fn run(args: &TourArgs, out: &mut impl Write) -> anyhow::Result<()> {
     classify_each(&client, &creds, out)?;
     let (old, new) = flip_live(&client, &creds, args, out)?;
     split_readout(&client, &creds, args, &old, &new, out)?;
+    guarded_rollout(&client, &creds, args, &new, out)?;
     show_metrics(&client, &creds, out)?;
     writeln!(
         out,
@@ -489,6 +492,165 @@ fn split_readout(
         counted as usize == sample.len(),
         "the readout counts {counted} outcomes, {} were posted",
         sample.len()
+    );
+    Ok(())
+}
+
+/// Step 4: a rushed version (one epoch at five times the step size) is published, so it goes live, and rolled out
+/// against the good one under a policy with an outcome guard; the server rolls it back by itself
+/// once its answers are right less often with always-valid confidence, and sets the live
+/// version back.
+fn guarded_rollout(
+    client: &Client,
+    creds: &Credentials,
+    args: &TourArgs,
+    good: &str,
+    out: &mut impl Write,
+) -> anyhow::Result<()> {
+    let split = "north-routing-rollout";
+    let (name, good_version) = good.rsplit_once('@').context("served_by has no version")?;
+    heading(
+        out,
+        &format!("guarded rollout {split}: a rushed version of {name} rolls itself back"),
+    )?;
+    let file = args.adapters.join("routing-rushed.safetensors");
+    let bytes = std::fs::read(&file).with_context(|| format!("reading {}", file.display()))?;
+    let reply = client.call(
+        "PUT",
+        &format!("/admin/adapters/{name}"),
+        Some(&creds.admin),
+        Some(("application/octet-stream", bytes)),
+    )?;
+    let published = client.expect(reply, 201, &format!("publishing {}", file.display()))?;
+    let rushed = published["version"].as_str().unwrap_or_default().to_owned();
+    writeln!(
+        out,
+        "  published {} as version {rushed}: it is live now",
+        file.display()
+    )?;
+    let policy = json!({
+        "candidate": "candidate",
+        "min_requests": 30,
+        "step_requests": 200,
+        "guards": {
+            "error_rate": 0.05,
+            "outcome": {"kind": "yes_no", "better": "higher", "margin": 0.05},
+        },
+        "steps": [0.5],
+        "roll_back_live": true,
+    });
+    let spec = json!({
+        "arms": [
+            {"name": "incumbent", "adapter": name, "version": good_version, "weight": 0.5},
+            {"name": "candidate", "adapter": name, "version": rushed, "weight": 0.5},
+        ],
+        "rollout": policy,
+    });
+    let reply = client.call(
+        "PUT",
+        &format!("/admin/splits/{split}"),
+        Some(&creds.admin),
+        Some(("application/json", serde_json::to_vec(&spec)?)),
+    )?;
+    client.expect(reply, 201, &format!("creating split {split}"))?;
+    writeln!(
+        out,
+        "  policy: {}",
+        serde_json::to_string(&policy).unwrap_or_default()
+    )?;
+    let rows = read_labelled(&args.data.join("routing-traffic.jsonl"))?;
+    ensure!(!rows.is_empty(), "no routing traffic");
+    let readout = |client: &Client| -> anyhow::Result<Value> {
+        let reply = client.call(
+            "GET",
+            &format!("/admin/splits/{split}/readout"),
+            Some(&creds.admin),
+            None,
+        )?;
+        client.expect(reply, 200, "the rollout readout")
+    };
+    // Traffic with outcomes until the policy acts (the server checks it every second).
+    let limit = 600;
+    let (mut sent, mut failed) = (0usize, 0usize);
+    let mut last = Value::Null;
+    let start = Instant::now();
+    while sent < limit {
+        let row = &rows[sent % rows.len()];
+        let reply = client.post_json(
+            "/classify",
+            Some(&creds.owner),
+            &json!({"split": split, "texts": [row.text]}),
+        )?;
+        sent += 1;
+        if reply.status != 200 {
+            failed += 1;
+            continue;
+        }
+        let v = reply.json()?;
+        let right = v["results"][0]["label"].as_str() == Some(row.label.as_str());
+        let outcome = client.post_json(
+            "/outcomes",
+            Some(&creds.owner),
+            &json!({"response_id": v["id"], "value": right}),
+        )?;
+        client.expect(outcome, 200, "posting an outcome")?;
+        if sent % 10 == 0 {
+            last = readout(client)?;
+            if last["rollout"]["status"] == "rolled_back" {
+                break;
+            }
+        }
+    }
+    // The last requests may have met the check between two readouts: wait for it briefly.
+    let waited = Instant::now();
+    while last["rollout"]["status"] != "rolled_back" && waited.elapsed() < Duration::from_secs(5) {
+        std::thread::sleep(Duration::from_millis(250));
+        last = readout(client)?;
+    }
+    ensure!(
+        last["rollout"]["status"] == "rolled_back",
+        "the policy did not roll the rushed version back within {sent} requests: {}",
+        last["rollout"]
+    );
+    writeln!(
+        out,
+        "  {sent} labelled messages sent through the split in {:.1} s ({failed} failed); outcome = the label was right",
+        start.elapsed().as_secs_f64()
+    )?;
+    for arm in last["arms"].as_array().context("readout has no arms")? {
+        let s = &arm["yes_no"]["summary"];
+        writeln!(
+            out,
+            "  {:<10} {:<18} right {:>3}/{:<3} = {:>5.1}%",
+            arm["arm"].as_str().unwrap_or("?"),
+            arm["version"].as_str().unwrap_or("live"),
+            s["successes"],
+            s["count"],
+            s["proportion"].as_f64().unwrap_or(f64::NAN) * 100.0,
+        )?;
+    }
+    for event in last["rollout"]["history"].as_array().into_iter().flatten() {
+        writeln!(
+            out,
+            "  history: {:<11} by {:<8} candidate share {:.2}: {}",
+            event["action"].as_str().unwrap_or("?"),
+            event["by"].as_str().unwrap_or("?"),
+            event["candidate_share"].as_f64().unwrap_or(f64::NAN),
+            event["reason"].as_str().unwrap_or("")
+        )?;
+    }
+    let reply = client.call("GET", "/admin/adapters", Some(&creds.admin), None)?;
+    let list = client.expect(reply, 200, "listing adapters")?;
+    let live = list["adapters"]
+        .as_array()
+        .and_then(|a| a.iter().find(|x| x["name"] == name))
+        .and_then(|x| x["live"].as_str())
+        .unwrap_or_default()
+        .to_owned();
+    writeln!(out, "  live version of {name} set back to {live}")?;
+    ensure!(
+        live == good_version,
+        "the live version is {live}, not {good_version}, after the rollback"
     );
     Ok(())
 }

@@ -13,9 +13,13 @@ use crate::splits::{ArmSpec, BASE_MODEL, Split};
 
 use super::records::ArmRecord;
 
-/// Whether `old` and `new` serve the same thing under the same name.
+/// Whether `old` and `new` serve the same thing under the same name, both as answering arms or
+/// both as shadows (a shadow's outcomes are agreement figures, not outcomes).
 pub fn same_treatment(old: &ArmSpec, new: &ArmSpec) -> bool {
-    old.name == new.name && old.adapter == new.adapter && old.version == new.version
+    old.name == new.name
+        && old.adapter == new.adapter
+        && old.version == new.version
+        && old.shadow.is_some() == new.shadow.is_some()
 }
 
 /// For each arm of the edited split, the id of the current arm record it continues, or `None`
@@ -104,6 +108,7 @@ mod tests {
             adapter: adapter.to_owned(),
             version: version.map(str::to_owned),
             weight,
+            shadow: None,
         }
     }
 

@@ -52,6 +52,18 @@ pub struct Assigned {
     pub generation: i64,
     pub arm_id: i64,
     pub arm: ArmSpec,
+    /// When the arm is the split's first and the split has a shadow arm: the shadow arm, to
+    /// mirror this request through with its share.
+    pub shadow: Option<ShadowArm>,
+}
+
+/// A split's shadow arm, as a request of its first arm needs it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShadowArm {
+    pub arm_id: i64,
+    pub arm: ArmSpec,
+    /// The share of the first arm's requests to mirror.
+    pub share: f64,
 }
 
 /// Why a split definition was refused.
@@ -198,11 +210,30 @@ impl Experiments {
         let live = self.live.read();
         let entry = live.get(name)?;
         let assignment = entry.split.assign(subject, &mut rand::rng());
+        let shadow = (assignment.index == 0)
+            .then(|| {
+                entry.split.arms().iter().enumerate().find_map(|(i, arm)| {
+                    Some(ShadowArm {
+                        arm_id: entry.arm_ids[i],
+                        arm: arm.clone(),
+                        share: arm.shadow?,
+                    })
+                })
+            })
+            .flatten();
         Some(Assigned {
             generation: entry.generation,
             arm_id: entry.arm_ids[assignment.index],
             arm: assignment.arm.clone(),
+            shadow,
         })
+    }
+
+    /// Records how a shadow arm's answer agreed with the first arm's (blocking).
+    pub fn record_agreement(&self, arm_id: i64, value: OutcomeValue) {
+        if let Err(e) = self.store.record_agreement(arm_id, value) {
+            tracing::warn!(arm_id, error = %e, "a shadow agreement was not recorded");
+        }
     }
 
     /// Records that `assigned` answers response `response_id` for `tenant`; the receipt says when

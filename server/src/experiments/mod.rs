@@ -116,6 +116,10 @@ pub trait ExperimentStore: Send + Sync + 'static {
     /// refused exactly as an unknown one is.
     fn record_outcome(&self, report: &OutcomeReport) -> Result<RecordedOutcome, OutcomeRefused>;
 
+    /// Adds `value` to the tally of arm record `arm_id` directly, with no response behind it: how
+    /// a shadow arm's answer agreed with the first arm's. False when the arm record is gone.
+    fn record_agreement(&self, arm_id: i64, value: OutcomeValue) -> Result<bool, OutcomeRefused>;
+
     /// Deletes the records of responses served before `served_before_ms`; returns how many.
     /// Their outcomes, where posted, stay in the tallies.
     fn prune_responses(&self, served_before_ms: i64) -> Result<u64, ExperimentError>;

@@ -59,6 +59,7 @@ CREATE TABLE arms (
     yes_no_yes BIGINT NOT NULL DEFAULT 0,
     finished BIGINT NOT NULL DEFAULT 0,
     errors BIGINT NOT NULL DEFAULT 0,
+    shadow DOUBLE PRECISION,
     UNIQUE (generation, position)
 );
 CREATE INDEX arms_by_generation ON arms (generation);
@@ -81,6 +82,7 @@ const V2_UPGRADE: &str = "
 ALTER TABLE splits ADD COLUMN rollout TEXT;
 ALTER TABLE arms ADD COLUMN finished BIGINT NOT NULL DEFAULT 0;
 ALTER TABLE arms ADD COLUMN errors BIGINT NOT NULL DEFAULT 0;
+ALTER TABLE arms ADD COLUMN shadow DOUBLE PRECISION;
 ";
 
 /// The tables version 2 added.
@@ -167,7 +169,7 @@ fn stored_count(n: u64) -> i64 {
 
 /// The columns [`arm_tally`] reads, in its order.
 const ARM_COLUMNS: &str = "id, name, adapter, version, weight, requests, numeric_count, \
-     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors";
+     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors, shadow";
 
 fn arm_tally(row: &postgres::Row) -> Result<(ArmTally, bool), ExperimentError> {
     let tally = ArmTally {
@@ -178,6 +180,7 @@ fn arm_tally(row: &postgres::Row) -> Result<(ArmTally, bool), ExperimentError> {
                 adapter: row.get(2),
                 version: row.get(3),
                 weight: row.get(4),
+                shadow: row.get(15),
             },
         },
         requests: count(row.get(5)),
@@ -286,7 +289,7 @@ fn current_arms(
 ) -> Result<Vec<ArmRecord>, ExperimentError> {
     let rows = tx
         .query(
-            "SELECT id, name, adapter, version, weight FROM arms \
+            "SELECT id, name, adapter, version, weight, shadow FROM arms \
              WHERE generation = $1 AND position IS NOT NULL ORDER BY position",
             &[&generation],
         )
@@ -300,6 +303,7 @@ fn current_arms(
                 adapter: row.get(2),
                 version: row.get(3),
                 weight: row.get(4),
+                shadow: row.get(5),
             },
         })
         .collect())
@@ -402,16 +406,16 @@ impl PostgresStore {
             let id = match keep {
                 Some(id) => {
                     tx.execute(
-                        "UPDATE arms SET position = $2, weight = $3 WHERE id = $1",
-                        &[&id, &position, &arm.weight],
+                        "UPDATE arms SET position = $2, weight = $3, shadow = $4 WHERE id = $1",
+                        &[&id, &position, &arm.weight, &arm.shadow],
                     )
                     .map_err(db("updating an arm"))?;
                     id
                 }
                 None => tx
                     .query_one(
-                        "INSERT INTO arms (generation, position, name, adapter, version, weight) \
-                         VALUES ($1, $2, $3, $4, $5, $6) RETURNING id",
+                        "INSERT INTO arms (generation, position, name, adapter, version, weight, shadow) \
+                         VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
                         &[
                             &generation,
                             &position,
@@ -419,6 +423,7 @@ impl PostgresStore {
                             &arm.adapter,
                             &arm.version,
                             &arm.weight,
+                            &arm.shadow,
                         ],
                     )
                     .map_err(db("adding an arm"))?
@@ -753,6 +758,57 @@ impl ExperimentStore for PostgresStore {
         }
         tx.commit().map_err(db("committing an outcome"))?;
         Ok(outcome)
+    }
+
+    fn record_agreement(&self, arm_id: i64, value: OutcomeValue) -> Result<bool, OutcomeRefused> {
+        let mut client = self.client.lock();
+        let mut tx = client
+            .transaction()
+            .map_err(db("beginning a transaction"))?;
+        let Some(row) = tx
+            .query_opt(
+                "SELECT numeric_count, numeric_shift, numeric_mean, numeric_m2 FROM arms \
+                 WHERE id = $1 FOR UPDATE",
+                &[&arm_id],
+            )
+            .map_err(db("reading an arm"))?
+        else {
+            return Ok(false);
+        };
+        match value {
+            OutcomeValue::Number(x) => {
+                let mut tally = NumericTally::from_parts(NumericParts {
+                    count: count(row.get(0)),
+                    shift: row.get(1),
+                    shifted_mean: row.get(2),
+                    squared_deviations: row.get(3),
+                });
+                tally.record(x)?;
+                let p = tally.parts();
+                tx.execute(
+                    "UPDATE arms SET numeric_count = $2, numeric_shift = $3, numeric_mean = $4, \
+                     numeric_m2 = $5 WHERE id = $1",
+                    &[
+                        &arm_id,
+                        &stored_count(p.count),
+                        &p.shift,
+                        &p.shifted_mean,
+                        &p.squared_deviations,
+                    ],
+                )
+                .map_err(db("recording an agreement"))?;
+            }
+            OutcomeValue::YesNo(yes) => {
+                tx.execute(
+                    "UPDATE arms SET yes_no_count = yes_no_count + 1, \
+                     yes_no_yes = yes_no_yes + $2 WHERE id = $1",
+                    &[&arm_id, &i64::from(yes)],
+                )
+                .map_err(db("recording an agreement"))?;
+            }
+        }
+        tx.commit().map_err(db("committing an agreement"))?;
+        Ok(true)
     }
 
     fn prune_responses(&self, served_before_ms: i64) -> Result<u64, ExperimentError> {

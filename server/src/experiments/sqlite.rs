@@ -15,7 +15,8 @@
 //!                 updated_ms, rollout (JSON: policy and progress; NULL without one; v2)
 //! arms            id (never reused), generation, position (NULL once an edit replaced the
 //!                 record), name, adapter, version, weight, requests, the numeric tally (count,
-//!                 shift, mean, m2), the yes/no tally (count, yes), finished and errors (v2)
+//!                 shift, mean, m2), the yes/no tally (count, yes), finished, errors and the
+//!                 shadow share (v2)
 //! responses       id, generation, arm_id, tenant, served_ms, the outcome (number or yes/no)
 //!                 and when it came (outcome_ms, NULL until then)
 //! arm_latency     arm_id, bucket, n: the latency histogram of each arm record (v2)
@@ -68,6 +69,7 @@ CREATE TABLE arms (
     yes_no_yes INTEGER NOT NULL DEFAULT 0,
     finished INTEGER NOT NULL DEFAULT 0,
     errors INTEGER NOT NULL DEFAULT 0,
+    shadow REAL,
     UNIQUE (generation, position)
 );
 CREATE INDEX arms_by_generation ON arms (generation);
@@ -90,6 +92,7 @@ const V2_UPGRADE: &str = "
 ALTER TABLE splits ADD COLUMN rollout TEXT;
 ALTER TABLE arms ADD COLUMN finished INTEGER NOT NULL DEFAULT 0;
 ALTER TABLE arms ADD COLUMN errors INTEGER NOT NULL DEFAULT 0;
+ALTER TABLE arms ADD COLUMN shadow REAL;
 ";
 
 /// The tables version 2 added.
@@ -222,7 +225,7 @@ fn stored_count(n: u64) -> i64 {
 
 /// The columns [`arm_tally`] reads, in its order.
 const ARM_COLUMNS: &str = "id, name, adapter, version, weight, requests, numeric_count, \
-     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors";
+     numeric_shift, numeric_mean, numeric_m2, yes_no_count, yes_no_yes, position, finished, errors, shadow";
 
 /// One `arms` row selected with [`ARM_COLUMNS`], and whether it is current.
 fn arm_tally(row: &rusqlite::Row<'_>) -> rusqlite::Result<(ArmTally, bool, i64, i64)> {
@@ -234,6 +237,7 @@ fn arm_tally(row: &rusqlite::Row<'_>) -> rusqlite::Result<(ArmTally, bool, i64, 
                 adapter: row.get(2)?,
                 version: row.get(3)?,
                 weight: row.get(4)?,
+                shadow: row.get(15)?,
             },
         },
         requests: count(row.get(5)?),
@@ -423,7 +427,7 @@ pub(super) fn sum_finished(finished: &[FinishedRequest]) -> (FinishedPerArm, Fin
 fn current_arms(tx: &Transaction<'_>, generation: i64) -> Result<Vec<ArmRecord>, ExperimentError> {
     let mut statement = tx
         .prepare_cached(
-            "SELECT id, name, adapter, version, weight FROM arms \
+            "SELECT id, name, adapter, version, weight, shadow FROM arms \
              WHERE generation = ?1 AND position IS NOT NULL ORDER BY position",
         )
         .map_err(db("reading arms"))?;
@@ -436,6 +440,7 @@ fn current_arms(tx: &Transaction<'_>, generation: i64) -> Result<Vec<ArmRecord>,
                     adapter: row.get(2)?,
                     version: row.get(3)?,
                     weight: row.get(4)?,
+                    shadow: row.get(5)?,
                 },
             })
         })
@@ -529,23 +534,24 @@ impl ExperimentStore for SqliteStore {
             let id = match keep {
                 Some(id) => {
                     tx.execute(
-                        "UPDATE arms SET position = ?2, weight = ?3 WHERE id = ?1",
-                        params![id, position, arm.weight],
+                        "UPDATE arms SET position = ?2, weight = ?3, shadow = ?4 WHERE id = ?1",
+                        params![id, position, arm.weight, arm.shadow],
                     )
                     .map_err(db("updating an arm"))?;
                     id
                 }
                 None => {
                     tx.execute(
-                        "INSERT INTO arms (generation, position, name, adapter, version, weight) \
-                         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                        "INSERT INTO arms (generation, position, name, adapter, version, weight, shadow) \
+                         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
                         params![
                             generation,
                             position,
                             arm.name,
                             arm.adapter,
                             arm.version,
-                            arm.weight
+                            arm.weight,
+                            arm.shadow
                         ],
                     )
                     .map_err(db("adding an arm"))?;
@@ -806,6 +812,58 @@ impl ExperimentStore for SqliteStore {
         }
         tx.commit().map_err(db("committing an outcome"))?;
         Ok(outcome)
+    }
+
+    fn record_agreement(&self, arm_id: i64, value: OutcomeValue) -> Result<bool, OutcomeRefused> {
+        let mut conn = self.writer.lock();
+        let tx = begin(&mut conn)?;
+        let parts = tx
+            .query_row(
+                "SELECT numeric_count, numeric_shift, numeric_mean, numeric_m2 FROM arms WHERE id = ?1",
+                [arm_id],
+                |row| {
+                    Ok(NumericParts {
+                        count: count(row.get(0)?),
+                        shift: row.get(1)?,
+                        shifted_mean: row.get(2)?,
+                        squared_deviations: row.get(3)?,
+                    })
+                },
+            )
+            .optional()
+            .map_err(db("reading an arm"))?;
+        let Some(parts) = parts else {
+            return Ok(false);
+        };
+        match value {
+            OutcomeValue::Number(x) => {
+                let mut tally = NumericTally::from_parts(parts);
+                tally.record(x)?;
+                let p = tally.parts();
+                tx.execute(
+                    "UPDATE arms SET numeric_count = ?2, numeric_shift = ?3, numeric_mean = ?4, \
+                     numeric_m2 = ?5 WHERE id = ?1",
+                    params![
+                        arm_id,
+                        stored_count(p.count),
+                        p.shift,
+                        p.shifted_mean,
+                        p.squared_deviations
+                    ],
+                )
+                .map_err(db("recording an agreement"))?;
+            }
+            OutcomeValue::YesNo(yes) => {
+                tx.execute(
+                    "UPDATE arms SET yes_no_count = yes_no_count + 1, \
+                     yes_no_yes = yes_no_yes + ?2 WHERE id = ?1",
+                    params![arm_id, i64::from(yes)],
+                )
+                .map_err(db("recording an agreement"))?;
+            }
+        }
+        tx.commit().map_err(db("committing an agreement"))?;
+        Ok(true)
     }
 
     fn prune_responses(&self, served_before_ms: i64) -> Result<u64, ExperimentError> {

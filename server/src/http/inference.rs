@@ -20,10 +20,12 @@ use tokio::sync::{mpsc, oneshot};
 
 use crate::engine::end_at::EndAt;
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
+use crate::experiments::book::ShadowArm;
 use crate::experiments::responses::{ArmWatch, Receipt};
 use crate::http::auth::Tenant;
 use crate::http::error::ApiError;
 use crate::http::extract::ApiJson;
+use crate::http::shadow::{self, Mirror, MirrorInput};
 use crate::http::{Bounds, SharedState};
 use crate::model::chat::ChatMessage;
 use crate::model::sampling::SamplingParams;
@@ -39,6 +41,10 @@ pub struct Routed {
     /// Through a split: records how the request ended and how long it took, for the arm's
     /// rollout guards (counted as failed if dropped unfinished).
     pub watch: Option<ArmWatch>,
+    /// The split's shadow arm, when this request (of its first arm) was drawn to be mirrored.
+    pub shadow: Option<ShadowArm>,
+    /// The request's inputs for its mirror, kept when it is mirrored.
+    pub mirror: Option<MirrorInput>,
 }
 
 impl Routed {
@@ -53,6 +59,17 @@ impl Routed {
     fn failed(&self) {
         if let Some(w) = &self.watch {
             w.finish(true);
+        }
+    }
+
+    /// After the answer: runs the request through the split's shadow arm when it was drawn,
+    /// with `make` building the mirror from the kept inputs and the answer.
+    fn mirror(&self, state: &SharedState, make: impl FnOnce(MirrorInput) -> Option<Mirror>) {
+        if let (Some(shadow), Some((split, _)), Some(input)) =
+            (&self.shadow, &self.split, self.mirror.clone())
+            && let Some(mirror) = make(input)
+        {
+            shadow::run(state, split, shadow.clone(), mirror);
         }
     }
 }
@@ -142,6 +159,7 @@ async fn route(
     }
     let mut recorded = None;
     let mut watch = None;
+    let mut mirrored = None;
     let (name, version, split_arm) = match (adapter, split) {
         (Some(_), Some(_)) => {
             return Err(ApiError::bad_request(
@@ -177,6 +195,9 @@ async fn route(
             // From here on a failure is the arm's: the watch counts it unless the request is
             // answered.
             watch = state.splits.watch(assigned.arm_id);
+            if shadow::draw(assigned.shadow.as_ref()) {
+                mirrored = assigned.shadow.clone();
+            }
             let arm = assigned.arm.clone();
             if arm.adapter != "base" && !tenant.may_use(&arm.adapter) {
                 return Err(forbidden(format!(
@@ -211,6 +232,8 @@ async fn route(
             swap: Duration::ZERO,
             recorded,
             watch,
+            shadow: mirrored,
+            mirror: None,
         });
     }
     if !tenant.may_use(&name) {
@@ -237,6 +260,8 @@ async fn route(
         swap: start.elapsed(),
         recorded,
         watch,
+        shadow: mirrored,
+        mirror: None,
     })
 }
 
@@ -508,7 +533,9 @@ async fn run_embed(
     let (reply, rx) = oneshot::channel();
     let target = Target::of(&body.adapter, &body.split, &body.subject, &body.route);
     let tokens = ids.iter().map(|t| t.len() as u64).sum();
-    let routed = admit(state, tenant, target, id, tokens, |a| {
+    // Kept for a shadow arm's mirror (only a split request can be mirrored).
+    let kept = body.split.is_some().then(|| ids.clone());
+    let mut routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Embed(EmbedJob {
             ticket: a.ticket,
             ids,
@@ -520,6 +547,9 @@ async fn run_embed(
         })
     })
     .await?;
+    if routed.shadow.is_some() {
+        routed.mirror = kept.map(MirrorInput::Texts);
+    }
     // The engine finishes every job it holds, also when shutting down; a reply that never
     // comes means the batch failed inside the engine (logged there).
     let out = rx
@@ -543,6 +573,13 @@ pub async fn embed(
         Ok((routed, out)) => {
             routed.answered();
             finish(&state, "embed", &id, &routed.served_by, 200, start);
+            routed.mirror(&state, |input| match input {
+                MirrorInput::Texts(ids) => Some(Mirror::Embed {
+                    ids,
+                    answer: out.embeddings.clone(),
+                }),
+                MirrorInput::Prompt { .. } => None,
+            });
             Json(json!({
                 "id": id,
                 "served_by": routed.served_by,
@@ -618,6 +655,16 @@ pub async fn classify(
         Ok((routed, timings, results)) => {
             routed.answered();
             finish(&state, "classify", &id, &routed.served_by, 200, start);
+            routed.mirror(&state, |input| match input {
+                MirrorInput::Texts(ids) => Some(Mirror::Classify {
+                    ids,
+                    labels: results
+                        .iter()
+                        .map(|r| r["label"].as_str().unwrap_or_default().to_owned())
+                        .collect(),
+                }),
+                MirrorInput::Prompt { .. } => None,
+            });
             Json(json!({
                 "id": id,
                 "served_by": routed.served_by,
@@ -841,6 +888,7 @@ async fn whole_answer(
             }) => {
                 routed.answered();
                 finish(state, "generate", id, &routed.served_by, 200, start);
+                routed.mirror(state, |input| generate_mirror(input, &tokens));
                 return Json(json!({
                     "id": id,
                     "served_by": routed.served_by,
@@ -984,7 +1032,13 @@ async fn start_generation(
     // The most the generation can use: its prompt and max_tokens; what it does not generate is
     // given back when it ends.
     let tokens = (prompt_ids.len() + limit) as u64;
-    let routed = admit(state, tenant, target, id, tokens, |a| {
+    let kept = body.split.is_some().then(|| MirrorInput::Prompt {
+        prompt_ids: prompt_ids.clone(),
+        sampling,
+        limit,
+        end_at: end_at.clone(),
+    });
+    let mut routed = admit(state, tenant, target, id, tokens, |a| {
         Job::Generate(GenerateJob {
             ticket: a.ticket,
             prompt_ids,
@@ -999,6 +1053,9 @@ async fn start_generation(
         })
     })
     .await?;
+    if routed.shadow.is_some() {
+        routed.mirror = kept;
+    }
     Ok((routed, rx))
 }
 
@@ -1011,11 +1068,18 @@ fn stream_answer(
 ) -> Sse<impl futures_util::Stream<Item = Result<Event, Infallible>>> {
     let routed = Arc::new(routed);
     let stream = async_stream_of(move |tx: mpsc::UnboundedSender<Event>| async move {
+        // The token ids sent, for a shadow arm's mirror.
+        let mut streamed = Vec::new();
         while let Some(ev) = rx.recv().await {
             let event = match ev {
-                GenEvent::Token { id: t, text } => Event::default()
-                    .event("token")
-                    .json_data(json!({"text": text, "token_id": t})),
+                GenEvent::Token { id: t, text } => {
+                    if routed.shadow.is_some() {
+                        streamed.push(t);
+                    }
+                    Event::default()
+                        .event("token")
+                        .json_data(json!({"text": text, "token_id": t}))
+                }
                 GenEvent::Done {
                     finish: reason,
                     ended_by,
@@ -1028,6 +1092,7 @@ fn stream_answer(
                 } => {
                     routed.answered();
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
+                    routed.mirror(&state, |input| generate_mirror(input, &streamed));
                     let e = Event::default().event("done").json_data(json!({
                         "id": id,
                         "tail": tail,
@@ -1070,6 +1135,25 @@ fn stream_answer(
         }
     });
     Sse::new(stream).keep_alive(KeepAlive::default())
+}
+
+/// The mirror of a generation whose answer was `tokens`.
+fn generate_mirror(input: MirrorInput, tokens: &[u32]) -> Option<Mirror> {
+    match input {
+        MirrorInput::Prompt {
+            prompt_ids,
+            sampling,
+            limit,
+            end_at,
+        } => Some(Mirror::Generate {
+            prompt_ids,
+            sampling,
+            limit,
+            end_at,
+            answer: tokens.to_vec(),
+        }),
+        MirrorInput::Texts(_) => None,
+    }
 }
 
 /// A stream fed by a task; when the client disconnects the stream is dropped, the task's sends

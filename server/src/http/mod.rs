@@ -15,6 +15,7 @@ pub mod extract;
 pub mod gate;
 pub mod inference;
 pub mod recent;
+pub mod shadow;
 pub mod splits;
 pub mod status;
 
@@ -68,6 +69,8 @@ pub struct AppState {
     pub readout: crate::splits::ReadoutSettings,
     /// How often rollout policies are checked (`[experiments] rollout_check_ms`).
     pub rollout_check: std::time::Duration,
+    /// Shadow traffic's lane and budget.
+    pub shadow: ShadowBudget,
     pub bounds: Bounds,
     /// False once shutdown began.
     pub ready: AtomicBool,
@@ -79,6 +82,18 @@ pub struct AppState {
     pub replica: axum::http::HeaderValue,
     /// The last hour of samples and each adapter's last use (`GET /admin/history`).
     pub history: crate::history::History,
+}
+
+/// Where shadow work runs and how much of it may (`[experiments] shadow_max_in_flight`,
+/// `shadow_max_queued`).
+#[derive(Debug)]
+pub struct ShadowBudget {
+    /// The engine lane shadow jobs queue in: the one after every tenant's.
+    pub lane: usize,
+    pub max_in_flight: usize,
+    /// Shadow work starts only while the engine's queue holds at most this many jobs.
+    pub max_queued: usize,
+    pub in_flight: std::sync::atomic::AtomicUsize,
 }
 
 /// The response header that names the replica that answered.

@@ -257,6 +257,13 @@ fn readout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
                 "p50": h.latency.quantile(0.5),
                 "p99": h.latency.quantile(0.99),
             },
+            // A shadow arm answers nobody: its `requests`, `finished` and latencies stay 0, and
+            // its outcomes are how its answers agreed with the first arm's.
+            "shadow": a.arm.spec.shadow.map(|share| json!({
+                "share": share,
+                "numeric": "agreement per mirrored request: mean cosine of the embeddings (embed) or share of agreeing token positions (generate)",
+                "yes_no": "whether every text got the same label (classify)",
+            })),
         })
     };
     let arms: Vec<Value> = split

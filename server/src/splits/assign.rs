@@ -50,6 +50,11 @@ pub struct ArmSpec {
     pub version: Option<String>,
     /// Relative weight, finite and at least 0; weights need not sum to 1.
     pub weight: f64,
+    /// Marks a shadow arm: it answers nobody (its weight is 0); instead this share (in (0, 1])
+    /// of the first arm's requests is also run through it, and how its answers agree with the
+    /// first arm's is recorded as its outcomes.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shadow: Option<f64>,
 }
 
 /// A split definition that was refused; each variant names the field it refers to.
@@ -87,6 +92,11 @@ pub enum SplitError {
         value: String,
         first: usize,
     },
+    #[error("{field}: {problem}")]
+    InvalidShadow {
+        field: String,
+        problem: &'static str,
+    },
 }
 
 impl SplitError {
@@ -98,7 +108,8 @@ impl SplitError {
             | Self::InvalidVersion { field, .. }
             | Self::VersionOnBase { field }
             | Self::InvalidWeight { field, .. }
-            | Self::DuplicateArm { field, .. } => field,
+            | Self::DuplicateArm { field, .. }
+            | Self::InvalidShadow { field, .. } => field,
             Self::ArmCount { .. } | Self::NoPositiveWeight | Self::WeightSumOverflow => "arms",
         }
     }
@@ -159,6 +170,18 @@ impl Split {
                     first,
                 });
             }
+        }
+        if let Some(second) = spec
+            .arms
+            .iter()
+            .enumerate()
+            .filter(|(_, a)| a.shadow.is_some())
+            .nth(1)
+        {
+            return Err(SplitError::InvalidShadow {
+                field: format!("arms[{}].shadow", second.0),
+                problem: "a split may have one shadow arm",
+            });
         }
         if !spec.arms.iter().map(|a| a.weight).sum::<f64>().is_finite() {
             return Err(SplitError::WeightSumOverflow);
@@ -230,6 +253,25 @@ fn check_arm(index: usize, arm: &ArmSpec) -> Result<(), SplitError> {
             value: arm.weight,
         });
     }
+    if let Some(share) = arm.shadow {
+        let problem = if index == 0 {
+            Some("the first arm is the one a shadow arm mirrors; it cannot be a shadow itself")
+        } else if !(share.is_finite() && share > 0.0 && share <= 1.0) {
+            Some("the share of the first arm's requests to mirror must be above 0 and at most 1")
+        } else if arm.weight != 0.0 {
+            Some("a shadow arm answers nobody: its weight must be 0")
+        } else if arm.version.is_none() {
+            Some("a shadow arm must hold a version of an adapter (`version`)")
+        } else {
+            None
+        };
+        if let Some(problem) = problem {
+            return Err(SplitError::InvalidShadow {
+                field: format!("arms[{index}].shadow"),
+                problem,
+            });
+        }
+    }
     Ok(())
 }
 
@@ -288,6 +330,7 @@ mod tests {
             adapter: adapter.to_owned(),
             version: None,
             weight,
+            shadow: None,
         }
     }
 

@@ -711,6 +711,7 @@ mod tests {
             adapter: "desk".into(),
             version: Some("00000000000000aa".into()),
             weight: 0.9,
+            shadow: None,
         }];
         for i in 1..arms {
             list.push(ArmSpec {
@@ -722,6 +723,7 @@ mod tests {
                 adapter: "desk".into(),
                 version: Some("00000000000000bb".into()),
                 weight: 0.1,
+                shadow: None,
             });
         }
         Split::new(SplitSpec {
