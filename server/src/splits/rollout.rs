@@ -975,4 +975,63 @@ mod tests {
         assert_eq!(readings[0].status, "crossed");
         assert_eq!(readings[0].candidate_better, Some(false));
     }
+
+    /// The guard's promise under a controller that checks after every request: seeded A/A
+    /// rollouts (both arms fail 2% of requests) read after each of 1,000 requests roll the
+    /// candidate back (wrongly) in at most 5%; with a true effect (the candidate fails 20%) the
+    /// guard acts in every run, and the median number of candidate requests it needed is
+    /// printed (`cargo test -p switchyard-server --lib guard_simulation -- --nocapture`).
+    #[test]
+    fn guard_simulation_false_rollbacks_stay_under_five_percent_and_true_ones_are_found() {
+        use rand::{Rng, SeedableRng};
+        use rand_chacha::ChaCha8Rng;
+        const RUNS: usize = 2_000;
+        const REQUESTS: usize = 1_000;
+        let guards = Guards {
+            error_rate: Some(0.0),
+            ..Guards::default()
+        };
+        let (n, b) = (NumericTally::new(), BinaryTally::new());
+        let run = |seed: u64, candidate_failure: f64| -> Option<u64> {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed);
+            let (mut inc, mut cand) = (ArmHealth::default(), ArmHealth::default());
+            for _ in 0..REQUESTS {
+                let (arm, p) = if rng.random::<bool>() {
+                    (&mut cand, candidate_failure)
+                } else {
+                    (&mut inc, 0.02)
+                };
+                arm.finished += 1;
+                arm.errors += u64::from(rng.random::<f64>() < p);
+                if inc.finished >= MIN_OUTCOMES_PER_ARM && cand.finished >= MIN_OUTCOMES_PER_ARM {
+                    let r = read_guards(
+                        &guards,
+                        evidence(&inc, &n, &b),
+                        evidence(&cand, &n, &b),
+                        0.1,
+                    );
+                    if r[0].crossed() {
+                        return Some(cand.finished);
+                    }
+                }
+            }
+            None
+        };
+        let false_alarms = (0..RUNS as u64).filter(|&s| run(s, 0.02).is_some()).count();
+        let mut needed: Vec<u64> = (0..RUNS as u64)
+            .filter_map(|s| run(1_000_000 + s, 0.2))
+            .collect();
+        needed.sort_unstable();
+        let share = false_alarms as f64 / RUNS as f64;
+        println!(
+            "guard simulation: A/A rolled back in {share:.4} of {RUNS} runs read after every request; \
+             a candidate failing 20% against 2% was rolled back in {} of {RUNS}, after a median of {} \
+             candidate requests (90th percentile {})",
+            needed.len(),
+            needed[needed.len() / 2],
+            needed[needed.len() * 9 / 10]
+        );
+        assert!(share <= 0.05, "false rollbacks {share}");
+        assert_eq!(needed.len(), RUNS, "the guard missed a true effect");
+    }
 }
