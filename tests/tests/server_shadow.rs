@@ -1,7 +1,7 @@
 //! Shadow traffic through the real server: a split's shadow arm answers nobody, a share of the
 //! first arm's requests is run through it after the answer, and how the answers agree lands in
 //! the readout as the shadow arm's outcomes (embedding cosine, label agreement, token
-//! agreement). Answers are never changed, and under load shadow work is skipped and counted.
+//! agreement, first divergence). Answers are never changed, and under load shadow work is skipped and counted.
 
 use std::time::{Duration, Instant};
 
@@ -201,11 +201,17 @@ fn a_shadow_arm_of_a_decoder_measures_token_agreement() {
     generate(&server, true);
     wait_for_shadows(&server, 2);
     let r = readout(&server);
-    let same = &r["arms"][1]["numeric"]["summary"];
-    assert_eq!(same["count"], 2);
+    let exact = &r["arms"][1]["yes_no"]["summary"];
     assert_eq!(
-        same["mean"], 1.0,
-        "greedy decoding of the same version agrees on every token"
+        (exact["count"].as_u64(), exact["successes"].as_u64()),
+        (Some(2), Some(2)),
+        "greedy decoding of the same version gives the same tokens: {exact}"
+    );
+    let first = &r["arms"][1]["numeric"]["summary"];
+    assert_eq!(first["count"], 2);
+    assert_eq!(
+        first["mean"], 12.0,
+        "identical outputs: the divergence is at their length (max_tokens)"
     );
 
     let reply = server.request(
@@ -218,9 +224,19 @@ fn a_shadow_arm_of_a_decoder_measures_token_agreement() {
     generate(&server, false);
     wait_for_shadows(&server, 3);
     let r = readout(&server);
-    let other = &r["arms"][1]["numeric"]["summary"];
-    println!("token agreement of another version: {}", other["mean"]);
-    assert_eq!(other["count"], 1);
-    let share = other["mean"].as_f64().unwrap();
-    assert!((0.0..=1.0).contains(&share), "{other}");
+    // A new arm record: the shadow now serves another version.
+    let exact = &r["arms"][1]["yes_no"]["summary"];
+    let first = &r["arms"][1]["numeric"]["summary"];
+    println!("another version: same tokens {exact}, first divergence {first}");
+    assert_eq!(
+        (exact["count"].as_u64(), first["count"].as_u64()),
+        (Some(1), Some(1))
+    );
+    let position = first["mean"].as_f64().unwrap();
+    assert!((0.0..=12.0).contains(&position), "{first}");
+    assert_eq!(
+        exact["successes"].as_u64() == Some(1),
+        position == 12.0,
+        "same tokens exactly when they never diverge"
+    );
 }

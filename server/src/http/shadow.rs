@@ -4,8 +4,9 @@
 //!
 //! - `/embed`: the cosine of each text's two embeddings, averaged over the texts (a number);
 //! - `/classify`: whether every text got the same label (yes/no);
-//! - `/generate`: the share of token positions that agree up to the longer output (a number),
-//!   and the first position where they differ (logged and counted).
+//! - `/generate`: whether the two outputs are the same tokens (yes/no), and the first position
+//!   where they differ (a number: the tokens that agree before it; the output's length when
+//!   they are the same); the share of agreeing positions is logged at debug.
 //!
 //! Shadow work runs in an engine lane of its own, behind the tenants' lanes, only while the
 //! queue holds at most `experiments.shadow_max_queued` jobs and at most
@@ -81,14 +82,16 @@ pub fn run(state: &SharedState, split: &str, shadow: ShadowArm, mirror: Mirror) 
         let result = mirror_once(&state, &shadow, mirror).await;
         state.shadow.in_flight.fetch_sub(1, Ordering::SeqCst);
         match result {
-            Ok((value, note)) => {
+            Ok((values, note)) => {
                 count(&state, &split, "ran");
                 if let Some(note) = note {
                     tracing::debug!(split, shadow_arm = %shadow.arm.name, note, "shadow answer");
                 }
                 let shared = state.clone();
                 let _ = tokio::task::spawn_blocking(move || {
-                    shared.splits.record_agreement(shadow.arm_id, value)
+                    for value in values {
+                        shared.splits.record_agreement(shadow.arm_id, value);
+                    }
                 })
                 .await;
             }
@@ -132,7 +135,7 @@ async fn mirror_once(
     state: &SharedState,
     shadow: &ShadowArm,
     mirror: Mirror,
-) -> Result<(OutcomeValue, Option<String>), String> {
+) -> Result<(Vec<OutcomeValue>, Option<String>), String> {
     let (adapter, version) = (
         shadow.arm.adapter.clone(),
         shadow.arm.version.clone().unwrap_or_default(),
@@ -155,7 +158,7 @@ async fn mirror_once(
                 .map(|(a, b)| cosine(a, b))
                 .sum::<f64>()
                 / n;
-            Ok((OutcomeValue::Number(mean), None))
+            Ok((vec![OutcomeValue::Number(mean)], None))
         }
         Mirror::Classify { ids, labels } => {
             let head = handle
@@ -169,7 +172,7 @@ async fn mirror_once(
                 let best = crate::model::sampling::argmax(&scores) as usize;
                 head.labels.get(best) == Some(label)
             });
-            Ok((OutcomeValue::YesNo(same), None))
+            Ok((vec![OutcomeValue::YesNo(same)], None))
         }
         Mirror::Generate {
             prompt_ids,
@@ -209,8 +212,12 @@ async fn mirror_once(
                 }
             }
             let (share, first) = token_agreement(&answer, &tokens);
+            let divergence = first.unwrap_or(answer.len());
             Ok((
-                OutcomeValue::Number(share),
+                vec![
+                    OutcomeValue::YesNo(first.is_none()),
+                    OutcomeValue::Number(divergence as f64),
+                ],
                 Some(match first {
                     Some(i) => format!("tokens agree on {share:.3}; first differ at {i}"),
                     None => "tokens identical".to_owned(),

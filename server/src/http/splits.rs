@@ -261,8 +261,8 @@ fn readout_json(split: &SplitState, settings: &ReadoutSettings) -> Value {
             // its outcomes are how its answers agreed with the first arm's.
             "shadow": a.arm.spec.shadow.map(|share| json!({
                 "share": share,
-                "numeric": "agreement per mirrored request: mean cosine of the embeddings (embed) or share of agreeing token positions (generate)",
-                "yes_no": "whether every text got the same label (classify)",
+                "numeric": "per mirrored request: mean cosine of the embeddings (embed), or the first token position where the outputs differ (generate; the output's length when they agree)",
+                "yes_no": "per mirrored request: whether every text got the same label (classify), or whether the outputs are the same tokens (generate)",
             })),
         })
     };
