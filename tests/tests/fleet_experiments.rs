@@ -101,3 +101,105 @@ fn replicas_on_one_postgres_share_splits_outcomes_and_readouts() {
         .sum();
     assert_eq!(requests, 41, "{a}");
 }
+
+/// Two replicas on one PostgreSQL both check the rollout every 50 ms; the candidate (a version
+/// without the classification head, failing every classification) is rolled back exactly once,
+/// by one of them, and both replicas then send the split's traffic to the incumbent.
+#[test]
+fn replicas_on_one_postgres_roll_a_candidate_back_exactly_once() {
+    let pg = Postgres::start();
+    let store = tempfile::tempdir().unwrap();
+    let start = |name: &str| -> Server {
+        ServerSetup::encoder()
+            .set("server", "replica", &format!("{name:?}"))
+            .set("store", "dir", &format!("{:?}", store.path()))
+            .set("experiments", "database", &format!("{:?}", pg.url()))
+            .set("experiments", "rollout_check_ms", "50")
+            .start()
+    };
+    let (east, west) = (start("east-1"), start("west-1"));
+    let root = switchyard_tests::workspace_root();
+    let v1 = east.publish("desk", &root.join("demo/adapters/routing.safetensors"));
+    let v2 = east.publish("desk", &fixtures().join("minilm-qv-a.safetensors"));
+    let split = json!({
+        "arms": [
+            {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 1},
+            {"name": "candidate", "adapter": "desk", "version": v2, "weight": 1},
+        ],
+        "rollout": {"candidate": "candidate", "min_requests": 20, "guards": {"error_rate": 0.05}, "steps": [0.75]},
+    });
+    let created = east.request(
+        "PUT",
+        "/admin/splits/desk-rollout",
+        Auth::Admin,
+        Some(("application/json", split.to_string().as_bytes())),
+    );
+    assert_eq!(created.status, 201, "{}", created.body);
+    let status = |server: &Server| -> String {
+        server
+            .get("/admin/splits/desk-rollout/readout", Auth::Admin)
+            .ok_json()["rollout"]["status"]
+            .as_str()
+            .unwrap()
+            .to_owned()
+    };
+    let mut sent = 0;
+    while status(&east) != "rolled_back" {
+        assert!(sent < 1000, "not rolled back after {sent} requests");
+        let server = if sent % 2 == 0 { &east } else { &west };
+        let reply = server.post(
+            "/classify",
+            Auth::None,
+            &json!({"split": "desk-rollout", "texts": ["my chain keeps slipping"]}),
+        );
+        assert!(
+            reply.status == 200 || reply.error_code() == "not_a_classifier",
+            "{}",
+            reply.body
+        );
+        sent += 1;
+    }
+    // Let both replicas check a few more times: neither may act again.
+    std::thread::sleep(std::time::Duration::from_millis(500));
+    let readout = west
+        .get("/admin/splits/desk-rollout/readout", Auth::Admin)
+        .ok_json();
+    let actions: Vec<&str> = readout["rollout"]["history"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["action"].as_str().unwrap())
+        .collect();
+    assert_eq!(actions, ["started", "rolled_back"], "{readout:#}");
+    let counted = |server: &Server| -> f64 {
+        server
+            .get("/metrics", Auth::Admin)
+            .body
+            .lines()
+            .find(|l| {
+                l.starts_with("switchyard_rollout_actions_total{split=\"desk-rollout\",action=\"rolled_back\"")
+            })
+            .and_then(|l| l.rsplit_once(' '))
+            .map(|(_, v)| v.parse().unwrap())
+            .unwrap_or(0.0)
+    };
+    assert_eq!(
+        counted(&east) + counted(&west),
+        1.0,
+        "exactly one replica acted"
+    );
+    // Both replicas read the new weights (each reloads the shared definitions every second).
+    std::thread::sleep(std::time::Duration::from_millis(1200));
+    for server in [&east, &west] {
+        for _ in 0..10 {
+            let answer = server
+                .post(
+                    "/classify",
+                    Auth::None,
+                    &json!({"split": "desk-rollout", "texts": ["my chain keeps slipping"]}),
+                )
+                .ok_json();
+            assert_eq!(answer["split"]["arm"], "incumbent");
+        }
+    }
+}

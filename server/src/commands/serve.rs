@@ -271,6 +271,7 @@ pub fn run(opts: &ServeOptions) -> anyhow::Result<()> {
                 });
                 lanes
             },
+            background_lanes: 1,
         },
         metrics.clone(),
     );

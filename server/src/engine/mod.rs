@@ -104,8 +104,22 @@ pub struct EngineConfig {
     pub promote_share: f64,
     pub promote_window_rows: usize,
     /// Each tenant's name and quota, by tenant index
-    /// ([`crate::http::auth::tenant_limits`]).
+    /// ([`crate::http::auth::tenant_limits`]), then the background lanes.
     pub tenants: Vec<TenantLimits>,
+    /// How many of the last `tenants` are background lanes (shadow traffic) that answer nobody:
+    /// they get a queue lane, but neither a share of the queue's per-tenant bound nor a say in
+    /// whether the server counts as shared by several tenants.
+    pub background_lanes: usize,
+}
+
+impl EngineConfig {
+    /// The tenants that send requests, background lanes left out (at least 1).
+    fn answering_tenants(&self) -> usize {
+        self.tenants
+            .len()
+            .saturating_sub(self.background_lanes)
+            .max(1)
+    }
 }
 
 /// One tenant as the engine knows it: a name for the metrics, and its quota.
@@ -350,12 +364,13 @@ impl Engine {
         metrics: Arc<Metrics>,
     ) -> Engine {
         let tenants = config.tenants.len().max(1);
+        let answering = config.answering_tenants();
         // A tenant back from idle may have one full batch of rows (or, generating, as many
         // tokens) served ahead of the others' backlog: a clump of a light tenant's requests then
         // goes before a flood's backlog instead of taking turns with it, batch by batch.
         let queue = Arc::new(FairQueue::new(
             tenants,
-            QueueLimits::shared(config.queue_depth, tenants)
+            QueueLimits::shared(config.queue_depth, answering)
                 .with_burst(config.max_batch_rows as u64),
         ));
         let mut limits = config.tenants.clone();
@@ -754,7 +769,7 @@ impl Worker {
     /// throughput (4 rows against 32: 0.6 to 0.75 of the requests answered, on 2 cores). A single
     /// job larger than the batch runs alone, in chunks.
     fn run_encoder(&mut self, e: &Embedder) {
-        let rows = if self.config.tenants.len() > 1 {
+        let rows = if self.config.answering_tenants() > 1 {
             self.config
                 .shared_batch_rows
                 .min(self.config.max_batch_rows)
