@@ -8,18 +8,31 @@ use switchyard_tests::fixtures;
 use switchyard_tests::postgres::Postgres;
 use switchyard_tests::server::{Auth, Server, ServerSetup};
 
+/// A replica named `name` on the adapter store in `store` and the experiments in `pg`, with
+/// `more` settings.
+fn replica(
+    name: &str,
+    store: &tempfile::TempDir,
+    pg: &Postgres,
+    more: impl Fn(ServerSetup) -> ServerSetup,
+) -> Server {
+    more(
+        ServerSetup::encoder()
+            .set("server", "replica", &format!("{name:?}"))
+            .set("store", "dir", &format!("{:?}", store.path()))
+            .set("experiments", "database", &format!("{:?}", pg.url())),
+    )
+    .start()
+}
+
 #[test]
 fn replicas_on_one_postgres_share_splits_outcomes_and_readouts() {
     let pg = Postgres::start();
     let store = tempfile::tempdir().unwrap();
-    let start = |name: &str| -> Server {
-        ServerSetup::encoder()
-            .set("server", "replica", &format!("{name:?}"))
-            .set("store", "dir", &format!("{:?}", store.path()))
-            .set("experiments", "database", &format!("{:?}", pg.url()))
-            .start()
-    };
-    let (east, west) = (start("east-1"), start("west-1"));
+    let (east, west) = (
+        replica("east-1", &store, &pg, |s| s),
+        replica("west-1", &store, &pg, |s| s),
+    );
     assert!(
         east.log().contains("experiments opened (shared"),
         "{}",
@@ -109,15 +122,11 @@ fn replicas_on_one_postgres_share_splits_outcomes_and_readouts() {
 fn replicas_on_one_postgres_roll_a_candidate_back_exactly_once() {
     let pg = Postgres::start();
     let store = tempfile::tempdir().unwrap();
-    let start = |name: &str| -> Server {
-        ServerSetup::encoder()
-            .set("server", "replica", &format!("{name:?}"))
-            .set("store", "dir", &format!("{:?}", store.path()))
-            .set("experiments", "database", &format!("{:?}", pg.url()))
-            .set("experiments", "rollout_check_ms", "50")
-            .start()
-    };
-    let (east, west) = (start("east-1"), start("west-1"));
+    let every_50_ms = |s: ServerSetup| s.set("experiments", "rollout_check_ms", "50");
+    let (east, west) = (
+        replica("east-1", &store, &pg, every_50_ms),
+        replica("west-1", &store, &pg, every_50_ms),
+    );
     let root = switchyard_tests::workspace_root();
     let v1 = east.publish("desk", &root.join("demo/adapters/routing.safetensors"));
     let v2 = east.publish("desk", &fixtures().join("minilm-qv-a.safetensors"));

@@ -41,6 +41,23 @@ fn two_versions(server: &Server, candidate: &std::path::Path) -> (String, String
     (v1, v2)
 }
 
+/// [`two_versions`] with the retrained routing classifier (a second version with a head, so it
+/// fails nothing) as the candidate, and the incumbent set live again, so that a flip at the end
+/// is the policy's doing.
+fn retrained_with_incumbent_live(server: &Server) -> (String, String) {
+    let (v1, v2) = two_versions(
+        server,
+        &workspace_root().join("demo/adapters/routing-retrained.safetensors"),
+    );
+    let set = server.post(
+        "/admin/adapters/desk/live",
+        Auth::Admin,
+        &json!({"version": v1}),
+    );
+    assert_eq!(set.status, 200, "{}", set.body);
+    (v1, v2)
+}
+
 fn put_split(server: &Server, body: &Value) -> switchyard_tests::server::Reply {
     server.request(
         "PUT",
@@ -278,18 +295,7 @@ fn a_candidate_failing_a_fifth_of_its_requests_is_rolled_back_by_the_policy_with
 fn a_sound_candidate_is_promoted_step_by_step_then_flipped_live_and_a_person_can_pause_and_override()
  {
     let server = server();
-    // The retrained classifier: a second version with a head, so it fails nothing.
-    let (v1, v2) = two_versions(
-        &server,
-        &workspace_root().join("demo/adapters/routing-retrained.safetensors"),
-    );
-    // Put the incumbent back live: the flip at the end must be the policy's doing.
-    let set = server.post(
-        "/admin/adapters/desk/live",
-        Auth::Admin,
-        &json!({"version": v1}),
-    );
-    assert_eq!(set.status, 200, "{}", set.body);
+    let (v1, v2) = retrained_with_incumbent_live(&server);
     let put = put_split(
         &server,
         &json!({
@@ -457,16 +463,7 @@ fn bad_policies_and_overrides_are_refused_by_name() {
 #[test]
 fn a_candidate_that_is_right_more_often_is_promoted_by_its_outcomes_and_flipped_live() {
     let server = server();
-    let (v1, v2) = two_versions(
-        &server,
-        &workspace_root().join("demo/adapters/routing-retrained.safetensors"),
-    );
-    let set = server.post(
-        "/admin/adapters/desk/live",
-        Auth::Admin,
-        &json!({"version": v1}),
-    );
-    assert_eq!(set.status, 200, "{}", set.body);
+    let (v1, v2) = retrained_with_incumbent_live(&server);
     let put = put_split(
         &server,
         &json!({

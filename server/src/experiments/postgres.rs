@@ -472,6 +472,45 @@ impl PostgresStore {
     }
 }
 
+/// Adds `value` to the tally of arm record `arm_id` (its row locked), whose numeric tally reads
+/// `parts`, inside `tx` (`action` names the write in an error).
+fn add_to_arm(
+    tx: &mut Transaction<'_>,
+    arm_id: i64,
+    parts: NumericParts,
+    value: OutcomeValue,
+    action: &'static str,
+) -> Result<(), OutcomeRefused> {
+    match value {
+        OutcomeValue::Number(x) => {
+            let mut tally = NumericTally::from_parts(parts);
+            tally.record(x)?;
+            let p = tally.parts();
+            tx.execute(
+                "UPDATE arms SET numeric_count = $2, numeric_shift = $3, numeric_mean = $4, \
+                 numeric_m2 = $5 WHERE id = $1",
+                &[
+                    &arm_id,
+                    &stored_count(p.count),
+                    &p.shift,
+                    &p.shifted_mean,
+                    &p.squared_deviations,
+                ],
+            )
+            .map_err(db(action))?;
+        }
+        OutcomeValue::YesNo(yes) => {
+            tx.execute(
+                "UPDATE arms SET yes_no_count = yes_no_count + 1, \
+                 yes_no_yes = yes_no_yes + $2 WHERE id = $1",
+                &[&arm_id, &i64::from(yes)],
+            )
+            .map_err(db(action))?;
+        }
+    }
+    Ok(())
+}
+
 impl ExperimentStore for PostgresStore {
     fn splits(&self) -> Result<Vec<SplitState>, ExperimentError> {
         let mut client = self.client.lock();
@@ -719,43 +758,18 @@ impl ExperimentStore for PostgresStore {
         if recorded {
             return Err(OutcomeRefused::AlreadyRecorded);
         }
+        add_to_arm(&mut tx, arm_id, parts, report.value, "recording an outcome")?;
         match report.value {
-            OutcomeValue::Number(value) => {
-                let mut tally = NumericTally::from_parts(parts);
-                tally.record(value)?;
-                let p = tally.parts();
-                tx.execute(
-                    "UPDATE arms SET numeric_count = $2, numeric_shift = $3, numeric_mean = $4, \
-                     numeric_m2 = $5 WHERE id = $1",
-                    &[
-                        &arm_id,
-                        &stored_count(p.count),
-                        &p.shift,
-                        &p.shifted_mean,
-                        &p.squared_deviations,
-                    ],
-                )
-                .map_err(db("recording an outcome"))?;
-                tx.execute(
-                    "UPDATE responses SET outcome_number = $2, outcome_ms = $3 WHERE id = $1",
-                    &[&report.response_id, &value, &report.now_ms],
-                )
-                .map_err(db("recording an outcome"))?;
-            }
-            OutcomeValue::YesNo(yes) => {
-                tx.execute(
-                    "UPDATE arms SET yes_no_count = yes_no_count + 1, \
-                     yes_no_yes = yes_no_yes + $2 WHERE id = $1",
-                    &[&arm_id, &i64::from(yes)],
-                )
-                .map_err(db("recording an outcome"))?;
-                tx.execute(
-                    "UPDATE responses SET outcome_yes_no = $2, outcome_ms = $3 WHERE id = $1",
-                    &[&report.response_id, &yes, &report.now_ms],
-                )
-                .map_err(db("recording an outcome"))?;
-            }
+            OutcomeValue::Number(value) => tx.execute(
+                "UPDATE responses SET outcome_number = $2, outcome_ms = $3 WHERE id = $1",
+                &[&report.response_id, &value, &report.now_ms],
+            ),
+            OutcomeValue::YesNo(yes) => tx.execute(
+                "UPDATE responses SET outcome_yes_no = $2, outcome_ms = $3 WHERE id = $1",
+                &[&report.response_id, &yes, &report.now_ms],
+            ),
         }
+        .map_err(db("recording an outcome"))?;
         tx.commit().map_err(db("committing an outcome"))?;
         Ok(outcome)
     }
@@ -775,38 +789,13 @@ impl ExperimentStore for PostgresStore {
         else {
             return Ok(false);
         };
-        match value {
-            OutcomeValue::Number(x) => {
-                let mut tally = NumericTally::from_parts(NumericParts {
-                    count: count(row.get(0)),
-                    shift: row.get(1),
-                    shifted_mean: row.get(2),
-                    squared_deviations: row.get(3),
-                });
-                tally.record(x)?;
-                let p = tally.parts();
-                tx.execute(
-                    "UPDATE arms SET numeric_count = $2, numeric_shift = $3, numeric_mean = $4, \
-                     numeric_m2 = $5 WHERE id = $1",
-                    &[
-                        &arm_id,
-                        &stored_count(p.count),
-                        &p.shift,
-                        &p.shifted_mean,
-                        &p.squared_deviations,
-                    ],
-                )
-                .map_err(db("recording an agreement"))?;
-            }
-            OutcomeValue::YesNo(yes) => {
-                tx.execute(
-                    "UPDATE arms SET yes_no_count = yes_no_count + 1, \
-                     yes_no_yes = yes_no_yes + $2 WHERE id = $1",
-                    &[&arm_id, &i64::from(yes)],
-                )
-                .map_err(db("recording an agreement"))?;
-            }
-        }
+        let parts = NumericParts {
+            count: count(row.get(0)),
+            shift: row.get(1),
+            shifted_mean: row.get(2),
+            squared_deviations: row.get(3),
+        };
+        add_to_arm(&mut tx, arm_id, parts, value, "recording an agreement")?;
         tx.commit().map_err(db("committing an agreement"))?;
         Ok(true)
     }
