@@ -690,6 +690,29 @@ fn rollouts_act_once_keep_their_history_and_tally_how_requests_ended(place: &Pla
     );
     reopened.put_split(&edited, Some(&policy), NOW + 2).unwrap();
     assert_eq!(state(&*reopened, "gears").rollout.unwrap(), promoted);
+    // The same policy over a candidate that now serves another version starts afresh, with a
+    // later revision, so a decision taken on the old state can no longer be written.
+    let mut other_version = edited.clone();
+    other_version.arms[1].version = Some("00000000000000cc".into());
+    reopened
+        .put_split(&other_version, Some(&policy), NOW + 2)
+        .unwrap();
+    let restarted = state(&*reopened, "gears").rollout.unwrap();
+    assert_eq!(restarted.state.step, 0);
+    assert!(restarted.state.revision > promoted.state.revision);
+    assert!(
+        !reopened
+            .change_rollout(
+                "gears",
+                read.generation,
+                &promoted,
+                &rolled,
+                None,
+                &event(RolloutAction::RolledBack)
+            )
+            .unwrap()
+    );
+    reopened.put_split(&edited, Some(&policy), NOW + 2).unwrap();
     reopened.put_split(&edited, None, NOW + 3).unwrap();
     assert!(state(&*reopened, "gears").rollout.is_none());
     let mut other = policy.clone();

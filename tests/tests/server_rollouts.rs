@@ -196,8 +196,14 @@ fn a_candidate_failing_a_fifth_of_its_requests_is_rolled_back_by_the_policy_with
     assert_eq!(
         status_of(&after),
         "rolled_back",
-        "not rolled back after {} requests: {after:#}",
-        answers.len()
+        "not rolled back after {} requests: {after:#}\nthe server's warnings and errors:\n{}",
+        answers.len(),
+        server
+            .log()
+            .lines()
+            .filter(|l| l.contains(" WARN ") || l.contains(" ERROR ") || l.contains("panicked"))
+            .collect::<Vec<_>>()
+            .join("\n")
     );
 
     // Every request got an answer: 200, or the candidate's own defect on a classification.
@@ -300,15 +306,15 @@ fn a_sound_candidate_is_promoted_step_by_step_then_flipped_live_and_a_person_can
         &server,
         &json!({
             "arms": [
-                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 0.9},
-                {"name": "candidate", "adapter": "desk", "version": v2, "weight": 0.1},
+                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 0.7},
+                {"name": "candidate", "adapter": "desk", "version": v2, "weight": 0.3},
             ],
             "rollout": {
                 "candidate": "candidate",
                 "min_requests": 20,
                 "step_requests": 30,
                 "guards": {"error_rate": 0.05},
-                "steps": [0.25, 0.5],
+                "steps": [0.5, 0.7],
             },
         }),
     );
@@ -359,11 +365,11 @@ fn a_sound_candidate_is_promoted_step_by_step_then_flipped_live_and_a_person_can
         })
         .collect();
     let expected: Vec<(String, String, f64)> = [
-        ("started", "operator", 0.1),
-        ("paused", "operator", 0.1),
-        ("resumed", "operator", 0.1),
-        ("promoted", "policy", 0.25),
+        ("started", "operator", 0.3),
+        ("paused", "operator", 0.3),
+        ("resumed", "operator", 0.3),
         ("promoted", "policy", 0.5),
+        ("promoted", "policy", 0.7),
         ("flipped", "policy", 1.0),
     ]
     .iter()

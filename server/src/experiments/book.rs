@@ -34,11 +34,14 @@ struct LiveSplit {
     split: Split,
     /// The arm record of each arm, in the split's order.
     arm_ids: Vec<i64>,
+    /// Whether the split carries a rollout policy (the rollout checks read only those).
+    has_rollout: bool,
 }
 
 impl LiveSplit {
-    fn from_record(record: &SplitRecord) -> Result<Self, SplitError> {
+    fn from_record(record: &SplitRecord, has_rollout: bool) -> Result<Self, SplitError> {
         Ok(Self {
+            has_rollout,
             generation: record.generation,
             split: record.split()?,
             arm_ids: record.arms.iter().map(|a| a.id).collect(),
@@ -133,7 +136,7 @@ fn load_live(store: &dyn ExperimentStore) -> anyhow::Result<BTreeMap<String, Liv
     let mut live = BTreeMap::new();
     for state in store.splits()? {
         let record = state.record();
-        let split = LiveSplit::from_record(&record)
+        let split = LiveSplit::from_record(&record, state.rollout.is_some())
             .map_err(|e| anyhow::anyhow!("stored split {:?}: {e}", record.name))?;
         live.insert(record.name, split);
     }
@@ -147,6 +150,16 @@ impl std::fmt::Debug for Experiments {
 }
 
 impl Experiments {
+    /// The splits that carry a rollout policy, as this replica last read them.
+    pub(super) fn rollout_splits(&self) -> Vec<String> {
+        self.live
+            .read()
+            .iter()
+            .filter(|(_, s)| s.has_rollout)
+            .map(|(name, _)| name.clone())
+            .collect()
+    }
+
     /// Reads the split definitions again into memory (after a rollout changed weights).
     pub(super) fn reload(&self) {
         reload_live(self.store.as_ref(), &self.live, &self.edits);
@@ -268,7 +281,7 @@ impl Experiments {
         let _edit = self.edits.lock();
         check_arms(registry.store(), &split)?;
         let put = self.store.put_split(split.spec(), rollout, now_ms())?;
-        let live = LiveSplit::from_record(&put.record)?;
+        let live = LiveSplit::from_record(&put.record, rollout.is_some())?;
         self.live.write().insert(put.record.name.clone(), live);
         self.keep_arm_versions(registry);
         Ok(put)

@@ -74,8 +74,9 @@ pub trait ExperimentStore: Send + Sync + 'static {
 
     /// Creates split `spec.name` with a new generation, or changes its arms, deciding which arm
     /// records go on by [`arms::plan_arms`], in one transaction. `rollout` replaces the split's
-    /// rollout policy: a policy equal to the stored one keeps its progress, a new one starts
-    /// afresh (with a `started` entry in its history), `None` removes it.
+    /// rollout policy: a policy equal to the stored one over the same arm records keeps its
+    /// progress; a new one, or one whose arms now serve something else, starts afresh (with a
+    /// `started` entry in its history); `None` removes it.
     fn put_split(
         &self,
         spec: &crate::splits::SplitSpec,

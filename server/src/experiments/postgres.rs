@@ -395,6 +395,7 @@ impl PostgresStore {
             }
         };
         let plan = plan_arms(&current_arms(tx, generation)?, &spec.arms);
+        let arms_kept = plan.iter().all(Option::is_some);
         tx.execute(
             "UPDATE arms SET position = NULL WHERE generation = $1",
             &[&generation],
@@ -444,7 +445,7 @@ impl PostgresStore {
             .map_err(db("reading a rollout"))?
             .get(0);
         let stored = stored.as_deref().map(parse_rollout).transpose()?;
-        let (next, started) = next_rollout(stored, rollout);
+        let (next, started) = next_rollout(stored, rollout, arms_kept);
         tx.execute(
             "UPDATE splits SET rollout = $2 WHERE generation = $1",
             &[&generation, &next.as_ref().map(json_text)],

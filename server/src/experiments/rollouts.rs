@@ -103,17 +103,20 @@ fn status_name(status: RolloutStatus) -> &'static str {
 }
 
 impl Experiments {
-    /// Applies what every split's rollout policy says now; returns the actions taken. Blocking.
+    /// Applies what every split's rollout policy says now; returns the actions taken. Reads only
+    /// the splits that carry a policy (as the in-memory definitions say; on a shared database
+    /// they are read again every second). Blocking.
     pub fn run_rollouts(&self, registry: &Registry, settings: &ReadoutSettings) -> Vec<Applied> {
-        let splits = match self.store.splits() {
-            Ok(splits) => splits,
-            Err(e) => {
-                tracing::warn!(error = %e, "reading splits for their rollouts failed");
-                return Vec::new();
-            }
-        };
         let mut applied = Vec::new();
-        for split in splits {
+        for name in self.rollout_splits() {
+            let split = match self.store.split(&name) {
+                Ok(Some(split)) => split,
+                Ok(None) => continue,
+                Err(e) => {
+                    tracing::warn!(split = %name, error = %e, "reading a split for its rollout failed");
+                    continue;
+                }
+            };
             let Some(reading) = reading(&split, settings) else {
                 continue;
             };

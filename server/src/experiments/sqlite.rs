@@ -364,21 +364,29 @@ fn event_text(event: &RolloutEvent) -> String {
 }
 
 /// What `put_split` writes in the rollout column for `policy`, given what is there: the same
-/// policy keeps its progress; a new one starts afresh and is returned as started.
+/// policy over the same arm records (`arms_kept`) keeps its progress; a new policy, or the same
+/// one over an arm that now serves something else, starts afresh and is returned as started.
+/// A restart still counts up the revision, so a decision taken on the old state never matches
+/// the new one.
 pub(super) fn next_rollout(
     stored: Option<Rollout>,
     policy: Option<&RolloutPolicy>,
+    arms_kept: bool,
 ) -> (Option<Rollout>, bool) {
     match (stored, policy) {
         (_, None) => (None, false),
-        (Some(old), Some(p)) if old.policy == *p => (Some(old), false),
-        (_, Some(p)) => (
-            Some(Rollout {
-                policy: p.clone(),
-                state: RolloutState::start(),
-            }),
-            true,
-        ),
+        (Some(old), Some(p)) if old.policy == *p && arms_kept => (Some(old), false),
+        (old, Some(p)) => {
+            let mut state = RolloutState::start();
+            state.revision = old.map_or(0, |o| o.state.revision + 1);
+            (
+                Some(Rollout {
+                    policy: p.clone(),
+                    state,
+                }),
+                true,
+            )
+        }
     }
 }
 
@@ -542,7 +550,6 @@ impl ExperimentStore for SqliteStore {
             .and_then(|(_, r)| r.as_deref())
             .map(parse_rollout)
             .transpose()?;
-        let (next, started) = next_rollout(stored, rollout);
         let (generation, created) = match existing.map(|(g, _)| g) {
             Some(generation) => {
                 tx.execute(
@@ -562,6 +569,7 @@ impl ExperimentStore for SqliteStore {
             }
         };
         let plan = plan_arms(&current_arms(&tx, generation)?, &spec.arms);
+        let (next, started) = next_rollout(stored, rollout, plan.iter().all(Option::is_some));
         tx.execute(
             "UPDATE arms SET position = NULL WHERE generation = ?1",
             [generation],

@@ -424,7 +424,9 @@ pub struct GuardReading {
     pub margin: f64,
     /// Always-valid p-value of "crossed" (1 while the data point the other way).
     pub p_value: Option<f64>,
-    /// `too_few` (not enough data), `clear` or `crossed`.
+    /// `too_few` (not enough data), `crossed` (worse by more than the margin, with always-valid
+    /// confidence), `clear` (within the margin with the same confidence; for the latency guard,
+    /// at most 1% of requests slow so far) or `undecided` (neither yet).
     pub status: &'static str,
     /// For the outcome guard: whether the candidate is better with always-valid confidence.
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -434,6 +436,10 @@ pub struct GuardReading {
 impl GuardReading {
     pub fn crossed(&self) -> bool {
         self.status == "crossed"
+    }
+
+    pub fn clear(&self) -> bool {
+        self.status == "clear"
     }
 }
 
@@ -458,36 +464,35 @@ pub fn read_guards(
 ) -> Vec<GuardReading> {
     let mut out = Vec::new();
     if let Some(margin) = guards.error_rate {
-        let errors = |h: &ArmHealth| BinaryTally::from_counts(h.finished, h.errors.min(h.finished));
-        let (Ok(i), Ok(c)) = (errors(incumbent.health), errors(candidate.health)) else {
-            return out;
+        let share = |h: &ArmHealth| {
+            (h.finished > 0).then(|| h.errors.min(h.finished) as f64 / h.finished as f64)
         };
-        let cmp = always_valid_proportion(&c, &i, mixing_variance);
-        let (p_value, status) = match cmp.and_then(|c| c.interval.map(|iv| (c, iv))) {
-            None => {
-                // No interval: too few, or no variance at all (no arm has any error, or every
-                // request of both failed). A candidate failing everything while the incumbent
-                // fails nothing has variance 0 too: that is a crossing beyond doubt.
-                let enough = c.count() >= MIN_OUTCOMES_PER_ARM && i.count() >= MIN_OUTCOMES_PER_ARM;
-                let worse = c.proportion().unwrap_or(0.0) - i.proportion().unwrap_or(0.0) > margin;
-                match (enough, worse) {
-                    (true, true) => (Some(0.0), "crossed"),
-                    (true, false) => (Some(1.0), "clear"),
-                    _ => (None, "too_few"),
+        let (p_value, status) = match error_difference(incumbent.health, candidate.health) {
+            Some((difference, se, m)) => match mixture_half_width(m, mixing_variance, alpha()) {
+                Some(width) => {
+                    let (low, high) = (difference - width * se, difference + width * se);
+                    let p = if difference > margin {
+                        mixture_p_value((difference - margin) / se, m, mixing_variance)
+                    } else {
+                        Some(1.0)
+                    };
+                    let status = if low > margin {
+                        "crossed"
+                    } else if high < margin {
+                        "clear"
+                    } else {
+                        "undecided"
+                    };
+                    (p, status)
                 }
-            }
-            Some((cmp, interval)) => {
-                let crossed = interval.low > margin;
-                (
-                    shifted_p(cmp.difference - margin, cmp, mixing_variance),
-                    if crossed { "crossed" } else { "clear" },
-                )
-            }
+                None => (None, "too_few"),
+            },
+            None => (None, "too_few"),
         };
         out.push(GuardReading {
             guard: "error_rate",
-            incumbent: i.proportion(),
-            candidate: c.proportion(),
+            incumbent: share(incumbent.health),
+            candidate: share(candidate.health),
             margin,
             p_value,
             status,
@@ -512,7 +517,14 @@ pub fn read_guards(
                 } else {
                     1.0
                 };
-                (Some(p), if p < alpha() { "crossed" } else { "clear" })
+                let status = if p < alpha() {
+                    "crossed"
+                } else if share <= SLOW_SHARE {
+                    "clear"
+                } else {
+                    "undecided"
+                };
+                (Some(p), status)
             }
             _ => (None, "too_few"),
         };
@@ -553,14 +565,20 @@ pub fn read_guards(
                 } else {
                     (-iv.high, -iv.low)
                 };
-                let crossed = high < -guard.margin;
+                let status = if high < -guard.margin {
+                    "crossed"
+                } else if low > -guard.margin {
+                    "clear"
+                } else {
+                    "undecided"
+                };
                 (
                     shifted_p(
                         -(sign * cmp.difference) - guard.margin,
                         cmp,
                         mixing_variance,
                     ),
-                    if crossed { "crossed" } else { "clear" },
+                    status,
                     Some(low > 0.0),
                 )
             }
@@ -576,6 +594,28 @@ pub fn read_guards(
         });
     }
     out
+}
+
+/// The difference of the error shares (candidate − incumbent), its standard error and the
+/// effective count; `None` while either arm has fewer than [`MIN_OUTCOMES_PER_ARM`] finished
+/// requests. Each arm's variance is floored at that of one failure in its `n` requests
+/// (`(1/n)(1 − 1/n)/n`), so that two arms without a single failure do not read as known exactly:
+/// an arm that has failed nothing in 50 requests is not known to fail less than 1 in 100.
+fn error_difference(incumbent: &ArmHealth, candidate: &ArmHealth) -> Option<(f64, f64, f64)> {
+    let arm = |h: &ArmHealth| {
+        if h.finished < MIN_OUTCOMES_PER_ARM {
+            return None;
+        }
+        let n = h.finished as f64;
+        let p = h.errors.min(h.finished) as f64 / n;
+        let floor = (1.0 / n) * (1.0 - 1.0 / n);
+        Some((p, n, (p * (1.0 - p)).max(floor) / n))
+    };
+    let ((p0, n0, v0), (p1, n1, v1)) = (arm(incumbent)?, arm(candidate)?);
+    let se = (v0 + v1).sqrt();
+    // n1·n0/(n1 + n0), as in the readout's comparisons.
+    let m = n1 / (1.0 + n1 / n0);
+    (se.is_finite() && se > 0.0).then_some((p1 - p0, se, m))
 }
 
 /// The always-valid p-value that the (oriented) difference exceeds the margin, given the
@@ -688,6 +728,23 @@ pub fn decide(
             figure(r.incumbent),
             figure(r.candidate)
         ));
+    }
+    let pending: Vec<String> = readings
+        .iter()
+        .filter(|r| !r.clear())
+        .map(|r| {
+            format!(
+                "{} {} (incumbent {}, candidate {}, margin {})",
+                r.guard,
+                r.status.replace('_', " "),
+                figure(r.incumbent),
+                figure(r.candidate),
+                r.margin
+            )
+        })
+        .collect();
+    if !pending.is_empty() {
+        return Decision::Wait(format!("guards not yet clear: {}", pending.join("; ")));
     }
     let why = format!(
         "step {} held {held} candidate requests with every guard clear",
@@ -854,6 +911,48 @@ mod tests {
         }
     }
 
+    /// Not crossed is not clear: at a small sample a candidate failing a fifth of its requests
+    /// (or one that has failed nothing yet) is undecided, and nothing is promoted until every
+    /// guard reads clear.
+    #[test]
+    fn a_small_sample_is_undecided_and_promotes_nothing() {
+        let (n, b) = (NumericTally::new(), BinaryTally::new());
+        let mut rollout = Rollout {
+            policy: policy(),
+            state: RolloutState::start(),
+        };
+        rollout.policy.min_requests = 40;
+        rollout.policy.guards.error_rate = Some(0.05);
+        let inc = health(40, 0, 20.0);
+        for cand in [health(40, 8, 20.0), health(40, 0, 20.0)] {
+            let readings = read_guards(
+                &rollout.policy.guards,
+                evidence(&inc, &n, &b),
+                evidence(&cand, &n, &b),
+                0.1,
+            );
+            assert_eq!(readings[0].status, "undecided", "{readings:?}");
+            match decide(
+                &rollout,
+                evidence(&inc, &n, &b),
+                evidence(&cand, &n, &b),
+                &readings,
+            ) {
+                Decision::Wait(why) => assert!(why.contains("guards not yet clear"), "{why}"),
+                other => panic!("{other:?}"),
+            }
+        }
+        // With enough requests and no failure on either side the error guard clears.
+        let (inc, cand) = (health(150, 0, 20.0), health(150, 0, 20.0));
+        let readings = read_guards(
+            &rollout.policy.guards,
+            evidence(&inc, &n, &b),
+            evidence(&cand, &n, &b),
+            0.1,
+        );
+        assert_eq!(readings[0].status, "clear", "{readings:?}");
+    }
+
     #[test]
     fn a_slow_candidate_crosses_the_latency_guard_and_a_sound_one_is_promoted_then_flipped() {
         let (n, b) = (NumericTally::new(), BinaryTally::new());
@@ -935,14 +1034,15 @@ mod tests {
             ),
             Decision::RollBack(_)
         ));
-        // Equal: clear, but not better, so no promotion.
+        // Equal: not crossed, but neither better nor yet within the margin with confidence
+        // (the interval is ±0.075 wide at 300 each), so no promotion.
         let readings = read_guards(
             &rollout.policy.guards,
             evidence(&h, &n, &inc),
             evidence(&h, &n, &inc),
             0.1,
         );
-        assert_eq!(readings[0].status, "clear");
+        assert_eq!(readings[0].status, "undecided");
         assert!(matches!(
             decide(&rollout, evidence(&h, &n, &inc), evidence(&h, &n, &inc), &readings),
             Decision::Wait(w) if w.contains("not yet better")
