@@ -67,6 +67,22 @@ fn put_split(server: &Server, body: &Value) -> switchyard_tests::server::Reply {
     )
 }
 
+/// Creates the split with arms `incumbent` (version `v1`) and `candidate` (`v2`) at
+/// `weights` carrying `rollout`, and checks that it was created.
+fn put_rollout(server: &Server, v1: &str, v2: &str, weights: [f64; 2], rollout: Value) {
+    let put = put_split(
+        server,
+        &json!({
+            "arms": [
+                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": weights[0]},
+                {"name": "candidate", "adapter": "desk", "version": v2, "weight": weights[1]},
+            ],
+            "rollout": rollout,
+        }),
+    );
+    assert_eq!(put.status, 201, "{}", put.body);
+}
+
 fn readout(server: &Server) -> Value {
     server
         .get(&format!("/admin/splits/{SPLIT}/readout"), Auth::Admin)
@@ -172,23 +188,19 @@ fn a_candidate_failing_a_fifth_of_its_requests_is_rolled_back_by_the_policy_with
     let (v1, v2) = two_versions(&server, &fixtures().join("minilm-qv-a.safetensors"));
     assert_eq!(live_version(&server, "desk"), v2, "an upload goes live");
     let min_requests = 40;
-    let put = put_split(
+    put_rollout(
         &server,
-        &json!({
-            "arms": [
-                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 0.5},
-                {"name": "candidate", "adapter": "desk", "version": v2, "weight": 0.5},
-            ],
-            "rollout": {
-                "candidate": "candidate",
-                "min_requests": min_requests,
-                "guards": {"error_rate": 0.05, "latency_p99_ms": 2000},
-                "steps": [0.75],
-                "roll_back_live": true,
-            },
+        &v1,
+        &v2,
+        [0.5, 0.5],
+        json!({
+            "candidate": "candidate",
+            "min_requests": min_requests,
+            "guards": {"error_rate": 0.05, "latency_p99_ms": 2000},
+            "steps": [0.75],
+            "roll_back_live": true,
         }),
     );
-    assert_eq!(put.status, 201, "{}", put.body);
     let started = Instant::now();
     let answers = traffic_until(&server, |r| status_of(r) == "rolled_back");
     let took = started.elapsed();
@@ -302,23 +314,19 @@ fn a_sound_candidate_is_promoted_step_by_step_then_flipped_live_and_a_person_can
  {
     let server = server();
     let (v1, v2) = retrained_with_incumbent_live(&server);
-    let put = put_split(
+    put_rollout(
         &server,
-        &json!({
-            "arms": [
-                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 0.7},
-                {"name": "candidate", "adapter": "desk", "version": v2, "weight": 0.3},
-            ],
-            "rollout": {
-                "candidate": "candidate",
-                "min_requests": 20,
-                "step_requests": 30,
-                "guards": {"error_rate": 0.05},
-                "steps": [0.5, 0.7],
-            },
+        &v1,
+        &v2,
+        [0.7, 0.3],
+        json!({
+            "candidate": "candidate",
+            "min_requests": 20,
+            "step_requests": 30,
+            "guards": {"error_rate": 0.05},
+            "steps": [0.5, 0.7],
         }),
     );
-    assert_eq!(put.status, 201, "{}", put.body);
 
     // Paused, nothing acts however much traffic comes.
     let paused = server.post(
@@ -470,26 +478,22 @@ fn bad_policies_and_overrides_are_refused_by_name() {
 fn a_candidate_that_is_right_more_often_is_promoted_by_its_outcomes_and_flipped_live() {
     let server = server();
     let (v1, v2) = retrained_with_incumbent_live(&server);
-    let put = put_split(
+    put_rollout(
         &server,
-        &json!({
-            "arms": [
-                {"name": "incumbent", "adapter": "desk", "version": v1, "weight": 0.7},
-                {"name": "candidate", "adapter": "desk", "version": v2, "weight": 0.3},
-            ],
-            "rollout": {
-                "candidate": "candidate",
-                "min_requests": 30,
-                "step_requests": 30,
-                "guards": {
-                    "error_rate": 0.05,
-                    "outcome": {"kind": "yes_no", "better": "higher", "margin": 0.05},
-                },
-                "steps": [0.5, 0.7],
+        &v1,
+        &v2,
+        [0.7, 0.3],
+        json!({
+            "candidate": "candidate",
+            "min_requests": 30,
+            "step_requests": 30,
+            "guards": {
+                "error_rate": 0.05,
+                "outcome": {"kind": "yes_no", "better": "higher", "margin": 0.05},
             },
+            "steps": [0.5, 0.7],
         }),
     );
-    assert_eq!(put.status, 201, "{}", put.body);
     let traffic: Vec<(String, String)> =
         std::fs::read_to_string(workspace_root().join("demo/data/routing-traffic.jsonl"))
             .unwrap()

@@ -25,8 +25,8 @@ use std::collections::BTreeMap;
 use serde::{Deserialize, Serialize};
 
 use super::sequential::{
-    MIN_OUTCOMES_PER_ARM, always_valid_numeric, always_valid_proportion, mixture_half_width,
-    mixture_p_value,
+    AlwaysValidComparison, MIN_OUTCOMES_PER_ARM, always_valid_numeric, always_valid_proportion,
+    comparison, mixture_half_width, mixture_p_value,
 };
 use super::stats::{BinaryTally, CONFIDENCE_LEVEL, NumericTally};
 use super::{BASE_MODEL, Split};
@@ -467,27 +467,22 @@ pub fn read_guards(
         let share = |h: &ArmHealth| {
             (h.finished > 0).then(|| h.errors.min(h.finished) as f64 / h.finished as f64)
         };
-        let (p_value, status) = match error_difference(incumbent.health, candidate.health) {
-            Some((difference, se, m)) => match mixture_half_width(m, mixing_variance, alpha()) {
-                Some(width) => {
-                    let (low, high) = (difference - width * se, difference + width * se);
-                    let p = if difference > margin {
-                        mixture_p_value((difference - margin) / se, m, mixing_variance)
-                    } else {
-                        Some(1.0)
-                    };
-                    let status = if low > margin {
-                        "crossed"
-                    } else if high < margin {
-                        "clear"
-                    } else {
-                        "undecided"
-                    };
-                    (p, status)
-                }
-                None => (None, "too_few"),
-            },
+        let cmp = error_comparison(incumbent.health, candidate.health, mixing_variance);
+        let (p_value, status) = match cmp.and_then(|c| c.interval.map(|iv| (c, iv))) {
             None => (None, "too_few"),
+            Some((cmp, iv)) => {
+                let status = if iv.low > margin {
+                    "crossed"
+                } else if iv.high < margin {
+                    "clear"
+                } else {
+                    "undecided"
+                };
+                (
+                    shifted_p(cmp.difference - margin, cmp, mixing_variance),
+                    status,
+                )
+            }
         };
         out.push(GuardReading {
             guard: "error_rate",
@@ -596,35 +591,37 @@ pub fn read_guards(
     out
 }
 
-/// The difference of the error shares (candidate − incumbent), its standard error and the
-/// effective count; `None` while either arm has fewer than [`MIN_OUTCOMES_PER_ARM`] finished
-/// requests. Each arm's variance is floored at that of one failure in its `n` requests
-/// (`(1/n)(1 − 1/n)/n`), so that two arms without a single failure do not read as known exactly:
-/// an arm that has failed nothing in 50 requests is not known to fail less than 1 in 100.
-fn error_difference(incumbent: &ArmHealth, candidate: &ArmHealth) -> Option<(f64, f64, f64)> {
+/// The always-valid comparison of the error shares (candidate − incumbent); no interval while
+/// either arm has fewer than [`MIN_OUTCOMES_PER_ARM`] finished requests. Each arm's variance is
+/// floored at that of one failure in its `n` requests (`(1/n)(1 − 1/n)/n`), so that two arms
+/// without a single failure do not read as known exactly: an arm that has failed nothing in 50
+/// requests is not known to fail less than 1 in 100.
+fn error_comparison(
+    incumbent: &ArmHealth,
+    candidate: &ArmHealth,
+    mixing_variance: f64,
+) -> Option<AlwaysValidComparison> {
     let arm = |h: &ArmHealth| {
-        if h.finished < MIN_OUTCOMES_PER_ARM {
-            return None;
-        }
         let n = h.finished as f64;
         let p = h.errors.min(h.finished) as f64 / n;
-        let floor = (1.0 / n) * (1.0 - 1.0 / n);
-        Some((p, n, (p * (1.0 - p)).max(floor) / n))
+        (p, (p * (1.0 - p)).max((1.0 / n) * (1.0 - 1.0 / n)) / n)
     };
-    let ((p0, n0, v0), (p1, n1, v1)) = (arm(incumbent)?, arm(candidate)?);
-    let se = (v0 + v1).sqrt();
-    // n1·n0/(n1 + n0), as in the readout's comparisons.
-    let m = n1 / (1.0 + n1 / n0);
-    (se.is_finite() && se > 0.0).then_some((p1 - p0, se, m))
+    if incumbent.finished == 0 || candidate.finished == 0 {
+        return None;
+    }
+    let ((p0, v0), (p1, v1)) = (arm(incumbent), arm(candidate));
+    comparison(
+        p1 - p0,
+        Some(v0 + v1),
+        candidate.finished,
+        incumbent.finished,
+        mixing_variance,
+    )
 }
 
 /// The always-valid p-value that the (oriented) difference exceeds the margin, given the
 /// comparison's standard error: `excess` is `difference − margin` in the bad direction.
-fn shifted_p(
-    excess: f64,
-    cmp: super::sequential::AlwaysValidComparison,
-    mixing_variance: f64,
-) -> Option<f64> {
+fn shifted_p(excess: f64, cmp: AlwaysValidComparison, mixing_variance: f64) -> Option<f64> {
     let interval = cmp.interval?;
     let half = (interval.high - interval.low) / 2.0;
     let width = mixture_half_width(cmp.effective_count, mixing_variance, alpha())?;

@@ -143,7 +143,10 @@ pub fn always_valid_proportion(
     )
 }
 
-fn comparison(
+/// The always-valid comparison of a difference with its variance, `n1` and `n0` the two arms'
+/// counts: what [`always_valid_numeric`] and [`always_valid_proportion`] share, and what a
+/// caller with a variance of its own (the rollout's error guard) calls.
+pub(crate) fn comparison(
     difference: f64,
     variance: Option<f64>,
     n1: u64,
