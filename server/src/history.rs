@@ -17,7 +17,7 @@ pub const SPAN: Duration = Duration::from_secs(3600);
 
 /// One sample. Byte and count fields are whole numbers; the counts only grow (a chart shows
 /// their differences between samples).
-#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct Sample {
     /// When it was taken, in milliseconds since the Unix epoch.
     pub at_ms: u64,

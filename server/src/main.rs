@@ -123,6 +123,10 @@ enum Command {
     /// new version live under traffic, run an A/B split with outcomes, and show the swap metrics.
     /// Exits 1 if any step gets an answer it did not expect.
     Tour(tour::TourArgs),
+    /// Print the HTTP API's description (OpenAPI 3.1 JSON): every endpoint, its request and
+    /// answer schemas, its error codes and its credential. The server answers the same document
+    /// at GET /reference/http-api.json; docs/http-api.json is a copy.
+    DescribeApi,
     /// Work with config files.
     Config {
         #[command(subcommand)]
@@ -259,6 +263,13 @@ fn main() {
         Command::Adapter { command } => adapter::run(&command, io::stdout().lock()),
         Command::Plan(args) => plan::run(&args, io::stdout().lock()),
         Command::Tour(args) => tour::run(&args, &mut io::stdout().lock()),
+        Command::DescribeApi => {
+            use std::io::Write;
+            io::stdout()
+                .lock()
+                .write_all(switchyard_server::http::description::describe_json().as_bytes())
+                .map_err(anyhow::Error::from)
+        }
         Command::Serve { .. } => unreachable!("handled above"),
         Command::Config {
             command: ConfigCommand::Check { file },

@@ -26,7 +26,7 @@ pub struct Applied {
 }
 
 /// A person's instruction to a rollout (`POST /admin/splits/{name}/rollout`).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum OperatorAction {
     /// Stop automatic actions.

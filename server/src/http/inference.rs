@@ -12,11 +12,12 @@ use axum::http::StatusCode;
 use axum::response::sse::{Event, KeepAlive, Sse};
 use axum::response::{IntoResponse, Response};
 use axum::{Extension, Json};
-use serde::Deserialize;
-use serde_json::{Value, json};
+use serde::{Deserialize, Serialize};
+use serde_json::Value;
 use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
+use utoipa::ToSchema;
 
 use crate::engine::end_at::EndAt;
 use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
@@ -352,20 +353,180 @@ fn ms(d: Duration) -> f64 {
     (d.as_secs_f64() * 1e6).round() / 1e3
 }
 
-/// The `elapsed_ms` object of an answer: where the request's time went, in milliseconds.
-fn elapsed_json(t: &Timings) -> Value {
-    let mut v = json!({"queue": ms(t.queue), "swap": ms(t.swap), "total": ms(t.total)});
-    if let Some(f) = t.first_token {
-        v["first_token"] = json!(ms(f));
-    }
-    v
+/// Where a request's time went, in milliseconds.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct Elapsed {
+    /// Waiting in the engine's queue.
+    pub queue: f64,
+    /// Bringing the adapter in (0 when it was resident).
+    pub swap: f64,
+    /// From admission to the answer.
+    pub total: f64,
+    /// Generations only: from admission to the first token.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub first_token: Option<f64>,
 }
 
-fn arm_json(routed: &Routed) -> Value {
-    match &routed.split {
-        Some((split, arm)) => json!({"split": split, "arm": arm}),
-        None => Value::Null,
+impl Elapsed {
+    fn of(t: &Timings) -> Self {
+        Self {
+            queue: ms(t.queue),
+            swap: ms(t.swap),
+            total: ms(t.total),
+            first_token: t.first_token.map(ms),
+        }
     }
+}
+
+/// The split and arm that served a request sent through a split.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct ServedArm {
+    pub split: String,
+    pub arm: String,
+}
+
+fn served_arm(routed: &Routed) -> Option<ServedArm> {
+    routed.split.as_ref().map(|(split, arm)| ServedArm {
+        split: split.clone(),
+        arm: arm.clone(),
+    })
+}
+
+/// The answer of `POST /embed`.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct EmbedAnswer {
+    /// This response's id: what `POST /outcomes` takes when a split served it.
+    pub id: String,
+    /// `adapter@version`, or `base`.
+    pub served_by: String,
+    /// The split and arm, when the request named a split; else null.
+    pub split: Option<ServedArm>,
+    /// Whether the adapter ran merged into the base weights.
+    pub merged: bool,
+    /// One unit-length embedding per text, in order.
+    pub embeddings: Vec<Vec<f32>>,
+    pub elapsed_ms: Elapsed,
+}
+
+/// One text's classification.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct Classified {
+    /// The label with the highest score.
+    pub label: String,
+    /// Every label of the head with its score (softmax probabilities).
+    pub scores: std::collections::BTreeMap<String, f32>,
+}
+
+/// The answer of `POST /classify`.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct ClassifyAnswer {
+    pub id: String,
+    pub served_by: String,
+    pub split: Option<ServedArm>,
+    /// One result per text, in order.
+    pub results: Vec<Classified>,
+    pub elapsed_ms: Elapsed,
+}
+
+/// How a generation ended.
+#[derive(Debug, Serialize, ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum Finish {
+    /// The model's end-of-sequence token.
+    Eos,
+    /// `max_tokens` reached.
+    Limit,
+    /// One of `end_at.token_ids`.
+    EndToken,
+    /// One of `end_at.texts`.
+    EndText,
+}
+
+impl Finish {
+    fn of(reason: &str) -> Self {
+        match reason {
+            "eos" => Self::Eos,
+            "end_token" => Self::EndToken,
+            "end_text" => Self::EndText,
+            _ => Self::Limit,
+        }
+    }
+}
+
+/// Token counts of a generation.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct Counts {
+    pub prompt_tokens: usize,
+    /// Prompt tokens whose KV cache came from the prefix cache instead of a prefill.
+    pub reused_prompt_tokens: usize,
+    /// Tokens generated, not counting an end-of-sequence token.
+    pub output_tokens: usize,
+}
+
+/// The end text (a string) or end token id (an integer) that ended a generation.
+#[derive(Debug, Serialize, ToSchema)]
+#[serde(untagged)]
+pub enum EndedBy {
+    Text(String),
+    Token(u32),
+}
+
+fn ended_by_of(v: Option<Value>) -> Option<EndedBy> {
+    match v? {
+        Value::String(s) => Some(EndedBy::Text(s)),
+        Value::Number(n) => n
+            .as_u64()
+            .and_then(|n| u32::try_from(n).ok())
+            .map(EndedBy::Token),
+        _ => None,
+    }
+}
+
+/// The answer of `POST /generate` without `stream`.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct GenerateAnswer {
+    pub id: String,
+    pub served_by: String,
+    pub split: Option<ServedArm>,
+    /// The output, decoded as a whole (without the end text that ended it).
+    pub text: String,
+    /// The generated token ids, in order.
+    pub token_ids: Vec<u32>,
+    pub finish: Finish,
+    /// What ended it, when `finish` is `end_text` or `end_token`; else null.
+    pub ended_by: Option<EndedBy>,
+    pub counts: Counts,
+    pub elapsed_ms: Elapsed,
+}
+
+/// The data of a `token` event of a streamed generation.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct TokenEvent {
+    /// The text this token adds (may be empty while a character is incomplete).
+    pub text: String,
+    pub token_id: u32,
+}
+
+/// The data of the `done` event that ends a streamed generation.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct DoneEvent {
+    pub id: String,
+    /// Text not yet sent in a `token` event (usually empty).
+    pub tail: String,
+    pub served_by: String,
+    pub split: Option<ServedArm>,
+    pub finish: Finish,
+    pub ended_by: Option<EndedBy>,
+    pub counts: Counts,
+    pub elapsed_ms: Elapsed,
+}
+
+/// The data of the `error` event that ends a streamed generation which failed after it began.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct ErrorEvent {
+    #[schema(schema_with = crate::http::error::error_code_schema)]
+    pub code: &'static str,
+    pub message: String,
 }
 
 /// Logs and counts a request answered with an error before any adapter served it (refused by a
@@ -418,12 +579,21 @@ fn finish(
     );
 }
 
-#[derive(Debug, Deserialize)]
+/// The body of `POST /embed` and `POST /classify`: name an adapter (or `base`), or a split and
+/// the subject whose assignment is sticky; neither means the base model.
+#[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
+#[schema(example = json!({"adapter": "north-routing", "texts": ["the rear brake squeals"]}))]
 pub struct EmbedBody {
+    /// An adapter name, or `base`; the tenant's key must reach it.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub adapter: Option<String>,
+    /// A split name, instead of `adapter`.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub split: Option<String>,
+    /// With `split`: who the request is for; the same subject always gets the same arm.
     pub subject: Option<String>,
+    /// The texts, at most `bounds.texts_per_request` of them.
     pub texts: Vec<String>,
     /// The `Switchyard-Route` header, when the request carried one (not a body field).
     #[serde(skip)]
@@ -559,6 +729,18 @@ async fn run_embed(
 }
 
 /// `POST /embed`: one unit-length embedding per text.
+#[utoipa::path(
+    post,
+    path = "/embed",
+    operation_id = "embed",
+    tag = "inference",
+    params(
+        ("Switchyard-Route" = Option<String>, Header, description = "The routing key a front hashed on; when sent it must name the body's adapter or split"),
+    ),
+    request_body = EmbedBody,
+    responses((status = 200, description = "One embedding per text", body = EmbedAnswer)),
+    security(("tenant_key" = [])),
+)]
 pub async fn embed(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
@@ -580,14 +762,14 @@ pub async fn embed(
                 }),
                 MirrorInput::Prompt { .. } => None,
             });
-            Json(json!({
-                "id": id,
-                "served_by": routed.served_by,
-                "split": arm_json(&routed),
-                "merged": out.merged,
-                "embeddings": out.embeddings,
-                "elapsed_ms": elapsed_json(&out.timings),
-            }))
+            Json(EmbedAnswer {
+                split: served_arm(&routed),
+                id,
+                served_by: routed.served_by,
+                merged: out.merged,
+                embeddings: out.embeddings,
+                elapsed_ms: Elapsed::of(&out.timings),
+            })
             .into_response()
         }
         Err(e) => {
@@ -605,6 +787,18 @@ pub async fn embed(
 }
 
 /// `POST /classify`: a label and per-label scores per text, from the adapter's head.
+#[utoipa::path(
+    post,
+    path = "/classify",
+    operation_id = "classify",
+    tag = "inference",
+    params(
+        ("Switchyard-Route" = Option<String>, Header, description = "The routing key a front hashed on; when sent it must name the body's adapter or split"),
+    ),
+    request_body = EmbedBody,
+    responses((status = 200, description = "A label and scores per text", body = ClassifyAnswer)),
+    security(("tenant_key" = [])),
+)]
 pub async fn classify(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
@@ -633,19 +827,16 @@ pub async fn classify(
                     format!("{} carries no classification head", routed.served_by),
                 )
             })?;
-        let results: Vec<Value> = out
+        let results: Vec<Classified> = out
             .embeddings
             .iter()
             .map(|e| {
                 let scores = crate::model::classify::scores(e, &head).unwrap_or_default();
                 let best = crate::model::sampling::argmax(&scores) as usize;
-                let map: serde_json::Map<String, Value> = head
-                    .labels
-                    .iter()
-                    .cloned()
-                    .zip(scores.iter().map(|s| json!(s)))
-                    .collect();
-                json!({"label": head.labels.get(best), "scores": map})
+                Classified {
+                    label: head.labels.get(best).cloned().unwrap_or_default(),
+                    scores: head.labels.iter().cloned().zip(scores).collect(),
+                }
             })
             .collect();
         Ok((routed, out.timings, results))
@@ -658,20 +849,17 @@ pub async fn classify(
             routed.mirror(&state, |input| match input {
                 MirrorInput::Texts(ids) => Some(Mirror::Classify {
                     ids,
-                    labels: results
-                        .iter()
-                        .map(|r| r["label"].as_str().unwrap_or_default().to_owned())
-                        .collect(),
+                    labels: results.iter().map(|r| r.label.clone()).collect(),
                 }),
                 MirrorInput::Prompt { .. } => None,
             });
-            Json(json!({
-                "id": id,
-                "served_by": routed.served_by,
-                "split": arm_json(&routed),
-                "results": results,
-                "elapsed_ms": elapsed_json(&timings),
-            }))
+            Json(ClassifyAnswer {
+                split: served_arm(&routed),
+                id,
+                served_by: routed.served_by,
+                results,
+                elapsed_ms: Elapsed::of(&timings),
+            })
             .into_response()
         }
         Err(e) => {
@@ -691,20 +879,33 @@ pub async fn classify(
 /// Tokens a generation produces when the request gives no `max_tokens` (or the bound, if lower).
 pub const DEFAULT_MAX_TOKENS: usize = 64;
 
-#[derive(Debug, Deserialize)]
+/// The body of `POST /generate`: `prompt` or `messages`, and the adapter or split as for
+/// `/embed`.
+#[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
+#[schema(example = json!({"prompt": "The chain slipped because", "max_tokens": 8}))]
 pub struct GenerateBody {
+    /// An adapter name, or `base`; the tenant's key must reach it.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub adapter: Option<String>,
+    /// A split name, instead of `adapter`.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub split: Option<String>,
+    /// With `split`: who the request is for; the same subject always gets the same arm.
     pub subject: Option<String>,
     /// The prompt text, or (instead) `messages`.
     pub prompt: Option<String>,
     /// A conversation, rendered with the checkpoint's chat template.
     pub messages: Option<Vec<ChatMessage>>,
+    /// Most tokens to generate (default 64, at most `bounds.generated_tokens`).
     pub max_tokens: Option<usize>,
+    /// Sampling temperature; absent or 0: greedy.
     pub temperature: Option<f64>,
+    /// Nucleus sampling: keep the smallest set of tokens whose probability reaches this.
     pub top_p: Option<f64>,
+    /// The same seed gives the same output.
     pub seed: Option<u64>,
+    /// Answer as server-sent events (`token`, then `done` or `error`) instead of one JSON object.
     #[serde(default)]
     pub stream: bool,
     /// Texts and token ids that end the generation; neither is part of the output.
@@ -715,7 +916,7 @@ pub struct GenerateBody {
 }
 
 /// `end_at` in a generate request.
-#[derive(Debug, Default, Deserialize)]
+#[derive(Debug, Default, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct EndAtBody {
     #[serde(default)]
@@ -833,6 +1034,21 @@ impl GenerateBody {
 
 /// `POST /generate`: a continuation, as one JSON answer or (with `"stream": true`) an SSE
 /// stream of `token` events closed by a `done` event with counts and elapsed times.
+#[utoipa::path(
+    post,
+    path = "/generate",
+    operation_id = "generate",
+    tag = "inference",
+    params(
+        ("Switchyard-Route" = Option<String>, Header, description = "The routing key a front hashed on; when sent it must name the body's adapter or split"),
+    ),
+    request_body = GenerateBody,
+    responses((status = 200, description = "The generation: one JSON object, or with `stream` server-sent events: `token` events (data: TokenEvent), then one `done` (data: DoneEvent) or `error` (data: ErrorEvent)", content(
+        (GenerateAnswer = "application/json"),
+        (String = "text/event-stream"),
+    ))),
+    security(("tenant_key" = [])),
+)]
 pub async fn generate(
     State(state): State<SharedState>,
     Extension(tenant): Extension<Arc<Tenant>>,
@@ -889,17 +1105,21 @@ async fn whole_answer(
                 routed.answered();
                 finish(state, "generate", id, &routed.served_by, 200, start);
                 routed.mirror(state, |input| generate_mirror(input, &tokens));
-                return Json(json!({
-                    "id": id,
-                    "served_by": routed.served_by,
-                    "split": arm_json(routed),
-                    "text": text,
-                    "token_ids": tokens,
-                    "finish": reason,
-                    "ended_by": ended_by,
-                    "counts": {"prompt_tokens": prompt_tokens, "reused_prompt_tokens": reused_tokens, "output_tokens": output_tokens},
-                    "elapsed_ms": elapsed_json(&timings),
-                }))
+                return Json(GenerateAnswer {
+                    id: id.to_owned(),
+                    served_by: routed.served_by.clone(),
+                    split: served_arm(routed),
+                    text,
+                    token_ids: tokens,
+                    finish: Finish::of(reason),
+                    ended_by: ended_by_of(ended_by),
+                    counts: Counts {
+                        prompt_tokens,
+                        reused_prompt_tokens: reused_tokens,
+                        output_tokens,
+                    },
+                    elapsed_ms: Elapsed::of(&timings),
+                })
                 .into_response();
             }
             Some(GenEvent::Failed(e)) => break ApiError::from(e),
@@ -1078,7 +1298,7 @@ fn stream_answer(
                     }
                     Event::default()
                         .event("token")
-                        .json_data(json!({"text": text, "token_id": t}))
+                        .json_data(TokenEvent { text, token_id: t })
                 }
                 GenEvent::Done {
                     finish: reason,
@@ -1093,16 +1313,20 @@ fn stream_answer(
                     routed.answered();
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
                     routed.mirror(&state, |input| generate_mirror(input, &streamed));
-                    let e = Event::default().event("done").json_data(json!({
-                        "id": id,
-                        "tail": tail,
-                        "served_by": routed.served_by,
-                        "split": arm_json(&routed),
-                        "finish": reason,
-                        "ended_by": ended_by,
-                        "counts": {"prompt_tokens": prompt_tokens, "reused_prompt_tokens": reused_tokens, "output_tokens": output_tokens},
-                        "elapsed_ms": elapsed_json(&timings),
-                    }));
+                    let e = Event::default().event("done").json_data(DoneEvent {
+                        id: id.clone(),
+                        tail,
+                        served_by: routed.served_by.clone(),
+                        split: served_arm(&routed),
+                        finish: Finish::of(reason),
+                        ended_by: ended_by_of(ended_by),
+                        counts: Counts {
+                            prompt_tokens,
+                            reused_prompt_tokens: reused_tokens,
+                            output_tokens,
+                        },
+                        elapsed_ms: Elapsed::of(&timings),
+                    });
                     let _ = tx.send(e.expect("json"));
                     return;
                 }
@@ -1117,9 +1341,10 @@ fn stream_answer(
                         err.status.as_u16(),
                         start,
                     );
-                    let e = Event::default()
-                        .event("error")
-                        .json_data(json!({"code": err.code, "message": err.message}));
+                    let e = Event::default().event("error").json_data(ErrorEvent {
+                        code: err.code,
+                        message: err.message,
+                    });
                     let _ = tx.send(e.expect("json"));
                     return;
                 }

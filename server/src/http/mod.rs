@@ -10,6 +10,7 @@
 
 pub mod admin;
 pub mod auth;
+pub mod description;
 pub mod error;
 pub mod extract;
 pub mod gate;
@@ -28,7 +29,6 @@ use axum::extract::{DefaultBodyLimit, State};
 use axum::http::StatusCode;
 use axum::middleware::{from_fn, from_fn_with_state};
 use axum::response::IntoResponse;
-use axum::routing::{delete, get, post, put};
 use switchyard_adapters::registry::Registry;
 
 use crate::engine::{Backbone, Engine};
@@ -151,62 +151,36 @@ pub type SharedState = Arc<AppState>;
 /// 500 instead of dropping the connection.
 pub fn router(state: SharedState) -> Router {
     let bounds = state.bounds.clone();
-    let inference = Router::new()
-        .route("/embed", post(inference::embed))
-        .route("/classify", post(inference::classify))
-        .route("/generate", post(inference::generate))
-        .route("/outcomes", post(splits::post_outcome))
+    let inference = description::inference_routes()
         .route_layer(from_fn_with_state(state.clone(), gate::tenant));
-    let upload = Router::new()
-        .route("/admin/adapters/{name}", put(admin::upload))
+    let upload = description::upload_routes()
         .route_layer(DefaultBodyLimit::max(bounds.upload_body_bytes))
         .route_layer(from_fn_with_state(state.clone(), gate::admin));
-    let admin = Router::new()
-        .route("/admin/adapters", get(admin::list))
-        .route("/admin/adapters/{name}/live", post(admin::set_live))
-        .route("/admin/adapters/{name}/rollback", post(admin::rollback))
-        .route(
-            "/admin/adapters/{name}/versions/{version}",
-            delete(admin::retire),
-        )
-        .route(
-            "/admin/adapters/{name}/pin",
-            put(admin::pin).delete(admin::unpin),
-        )
-        .route("/admin/splits", get(splits::list))
-        .route("/admin/history", get(recent::history))
-        .route(
-            "/admin/splits/{name}",
-            put(splits::put_split).delete(splits::delete_split),
-        )
-        .route("/admin/splits/{name}/readout", get(splits::readout))
-        .route("/admin/splits/{name}/rollout", post(splits::rollout_action))
-        .route_layer(from_fn_with_state(state.clone(), gate::admin));
-    let metrics = Router::new()
-        .route("/metrics", get(metrics))
-        .route_layer(from_fn_with_state(state.clone(), gate::metrics));
-    Router::new()
+    let admin =
+        description::admin_routes().route_layer(from_fn_with_state(state.clone(), gate::admin));
+    let metrics =
+        description::metrics_routes().route_layer(from_fn_with_state(state.clone(), gate::metrics));
+    let (routes, _) = utoipa_axum::router::OpenApiRouter::new()
         .merge(inference)
         .merge(admin)
         .merge(metrics)
-        .route("/health/live", get(live))
-        .route("/health/ready", get(ready))
-        .route("/status", get(status::page))
-        .route("/status/page.css", get(status::style))
-        .route("/status/page.js", get(status::script))
+        .merge(description::open_routes())
+        .split_for_parts();
+    let (upload, _) = upload.split_for_parts();
+    routes
         .layer(DefaultBodyLimit::max(bounds.inference_body_bytes))
         .merge(upload)
         .fallback(|| async {
             error::ApiError::not_found(
                 "no_such_endpoint",
-                "no such endpoint; see the README for the API",
+                "no such endpoint; see the README or GET /reference/http-api.json for the API",
             )
         })
         .method_not_allowed_fallback(|| async {
             error::ApiError::new(
                 StatusCode::METHOD_NOT_ALLOWED,
                 "method_not_allowed",
-                "this endpoint does not take that method; see the README for the API",
+                "this endpoint does not take that method; see the README or GET /reference/http-api.json for the API",
             )
         })
         .layer(from_fn(gate::catch_panic))
@@ -216,6 +190,8 @@ pub fn router(state: SharedState) -> Router {
 
 /// Alive unless the engine stopped for good after repeated panics: then only a new process can
 /// compute again, and a supervisor that restarts on a failed liveness check should do so.
+#[utoipa::path(get, path = "/health/live", operation_id = "liveness", tag = "operations",
+    responses((status = 200, description = "The process can compute (`alive`)", content_type = "text/plain", body = String)))]
 async fn live(State(state): State<SharedState>) -> impl IntoResponse {
     if state.engine.has_stopped() {
         error::ApiError::new(
@@ -229,6 +205,9 @@ async fn live(State(state): State<SharedState>) -> impl IntoResponse {
     }
 }
 
+/// Ready unless shutting down or a vital thread stopped.
+#[utoipa::path(get, path = "/health/ready", operation_id = "readiness", tag = "operations",
+    responses((status = 200, description = "The server takes new work (`ready`)", content_type = "text/plain", body = String)))]
 async fn ready(State(state): State<SharedState>) -> impl IntoResponse {
     let problems = state.health_problems();
     if problems.is_empty() {
@@ -243,6 +222,11 @@ async fn ready(State(state): State<SharedState>) -> impl IntoResponse {
     }
 }
 
+/// The Prometheus text format.
+#[utoipa::path(get, path = "/metrics", operation_id = "metrics", tag = "operations",
+    responses((status = 200, description = "Every metric in the Prometheus text format", content_type = "text/plain", body = String)),
+    security((), ("admin_token" = [])),
+)]
 async fn metrics(State(state): State<SharedState>) -> impl IntoResponse {
     state.metrics.queue_depth.set(state.engine.queued() as i64);
     if let Some(stats) = state.registry.store().cache_stats() {

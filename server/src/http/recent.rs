@@ -6,7 +6,8 @@ use std::time::Duration;
 use axum::Json;
 use axum::extract::{RawQuery, State};
 use axum::http::{HeaderMap, StatusCode};
-use serde_json::{Value, json};
+use serde::Serialize;
+use utoipa::ToSchema;
 
 use super::SharedState;
 use super::admin::require_admin;
@@ -61,7 +62,9 @@ fn since_ms(query: Option<&str>) -> Result<Option<u64>, ApiError> {
     for pair in query.split('&') {
         match pair.split_once('=') {
             Some(("since_ms", value)) => {
-                since = Some(value.parse::<u64>().map_err(|_| {
+                // At most i64::MAX, as the description's int64 says (a time in milliseconds
+                // since the epoch is far below it).
+                since = Some(value.parse::<i64>().ok().and_then(|v| u64::try_from(v).ok()).ok_or_else(|| {
                     refused(format!(
                         "since_ms must be a whole number of milliseconds since the Unix epoch, not {value:?}"
                     ))
@@ -78,13 +81,35 @@ fn since_ms(query: Option<&str>) -> Result<Option<u64>, ApiError> {
     Ok(since)
 }
 
+/// The answer of `GET /admin/history`.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct HistoryAnswer {
+    /// How often a sample is taken.
+    pub interval_ms: u64,
+    /// How many samples are kept (an hour's worth).
+    pub kept: usize,
+    /// The server's clock now, in milliseconds since the Unix epoch.
+    pub now_ms: u64,
+    /// Oldest first.
+    pub samples: Vec<Sample>,
+}
+
 /// `GET /admin/history`: the samples of the last hour, oldest first, with the interval they
 /// were taken at; `?since_ms=N` keeps only those taken after N (a page that has the rest).
+#[utoipa::path(
+    get,
+    path = "/admin/history",
+    operation_id = "recent_history",
+    tag = "operations",
+    params(("since_ms" = Option<u64>, Query, description = "Only samples taken after this time (milliseconds since the Unix epoch)")),
+    responses((status = 200, description = "The samples of the last hour", body = HistoryAnswer)),
+    security(("admin_token" = [])),
+)]
 pub async fn history(
     State(state): State<SharedState>,
     headers: HeaderMap,
     RawQuery(query): RawQuery,
-) -> Result<Json<Value>, ApiError> {
+) -> Result<Json<HistoryAnswer>, ApiError> {
     require_admin(&state, &headers)?;
     let since = since_ms(query.as_deref())?;
     let interval: Duration = state.history.interval();
@@ -92,12 +117,12 @@ pub async fn history(
     if let Some(after) = since {
         samples.retain(|s| s.at_ms > after);
     }
-    Ok(Json(json!({
-        "interval_ms": interval.as_millis() as u64,
-        "kept": state.history.capacity(),
-        "now_ms": now_ms(),
-        "samples": samples,
-    })))
+    Ok(Json(HistoryAnswer {
+        interval_ms: interval.as_millis() as u64,
+        kept: state.history.capacity(),
+        now_ms: now_ms(),
+        samples,
+    }))
 }
 
 #[cfg(test)]

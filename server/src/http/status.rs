@@ -31,16 +31,22 @@ fn asset(content_type: &'static str, body: &'static str) -> impl IntoResponse {
 }
 
 /// `GET /status`.
+#[utoipa::path(get, path = "/status", operation_id = "status_page", tag = "operations",
+    responses((status = 200, description = "The status page; it asks for the admin token and reads the admin API with it", content_type = "text/html", body = String)))]
 pub async fn page() -> impl IntoResponse {
     asset("text/html; charset=utf-8", PAGE_HTML)
 }
 
 /// `GET /status/page.css`.
+#[utoipa::path(get, path = "/status/page.css", operation_id = "status_page_style", tag = "operations",
+    responses((status = 200, description = "The status page's style sheet", content_type = "text/css", body = String)))]
 pub async fn style() -> impl IntoResponse {
     asset("text/css; charset=utf-8", PAGE_CSS)
 }
 
 /// `GET /status/page.js`.
+#[utoipa::path(get, path = "/status/page.js", operation_id = "status_page_script", tag = "operations",
+    responses((status = 200, description = "The status page's script", content_type = "text/javascript", body = String)))]
 pub async fn script() -> impl IntoResponse {
     asset("text/javascript; charset=utf-8", PAGE_JS)
 }

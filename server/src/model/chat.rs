@@ -17,7 +17,7 @@ use anyhow::Context;
 use serde::{Deserialize, Serialize};
 
 /// One message of a conversation.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ChatMessage {
     pub role: String,

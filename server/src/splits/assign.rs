@@ -30,7 +30,7 @@ pub use switchyard_names::NameProblem;
 pub const MAX_ARMS: usize = 16;
 
 /// A split as a client defines it.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct SplitSpec {
     pub name: String,
@@ -38,7 +38,7 @@ pub struct SplitSpec {
 }
 
 /// One arm of a split: the adapter it serves and its weight.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ArmSpec {
     pub name: String,

@@ -24,7 +24,7 @@ use serde::Serialize;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
 /// What the assignment check found.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct AssignmentCheck {
     /// Requests per arm, in the split's order.
     pub requests: Vec<u64>,

@@ -136,7 +136,7 @@ pub struct ArmHealth {
 }
 
 /// What a guarded outcome is: numbers or yes/no.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum OutcomeKind {
     Number,
@@ -144,7 +144,7 @@ pub enum OutcomeKind {
 }
 
 /// Which way an outcome is better.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum Better {
     #[default]
@@ -155,7 +155,7 @@ pub enum Better {
 /// The outcome guard: the candidate is rolled back when its outcome is worse than the
 /// incumbent's by more than `margin` (in the outcome's units; for yes/no, a share such as 0.02),
 /// and, where promotion waits for it, counts as winning when it is better at all.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct OutcomeGuard {
     pub kind: OutcomeKind,
@@ -166,7 +166,7 @@ pub struct OutcomeGuard {
 }
 
 /// The guards of a rollout; each is optional.
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Guards {
     /// Rolled back when the candidate's error share is above the incumbent's by more than this
@@ -182,7 +182,7 @@ pub struct Guards {
 }
 
 /// The rollout policy a split may carry (`rollout` in `PUT /admin/splits/{name}`).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RolloutPolicy {
     /// The arm being rolled out: the split's second arm (the first is the incumbent).
@@ -324,7 +324,7 @@ impl RolloutPolicy {
 }
 
 /// Where a rollout is.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum RolloutStatus {
     /// Guards and promotion act.
@@ -368,7 +368,7 @@ pub struct Rollout {
 }
 
 /// What happened to a rollout.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum RolloutAction {
     Started,
@@ -393,7 +393,7 @@ impl RolloutAction {
 }
 
 /// Who acted.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum Actor {
     /// The server, by the policy.
@@ -403,7 +403,7 @@ pub enum Actor {
 }
 
 /// One entry of a rollout's history.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct RolloutEvent {
     pub at_ms: i64,
     pub action: RolloutAction,
@@ -415,7 +415,7 @@ pub struct RolloutEvent {
 }
 
 /// How one guard reads now.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct GuardReading {
     /// `error_rate`, `latency_p99_ms` or `outcome`.
     pub guard: &'static str,

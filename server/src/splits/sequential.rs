@@ -78,7 +78,7 @@ impl Default for ReadoutSettings {
 }
 
 /// Which guarantee a comparison's interval and p-value carry.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum Validity {
     /// Valid when read once, at a sample size fixed in advance.
@@ -88,7 +88,7 @@ pub enum Validity {
 }
 
 /// One arm's difference to the first arm, with the always-valid interval and p-value.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct AlwaysValidComparison {
     /// Always [`Validity::AlwaysValid`]: says which kind the figures are.
     pub validity: Validity,

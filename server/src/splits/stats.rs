@@ -59,7 +59,7 @@ pub const CONFIDENCE_LEVEL: f64 = 0.95;
 pub const MAX_OUTCOME_MAGNITUDE: f64 = 1e15;
 
 /// A confidence interval, `low <= high`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Interval {
     pub low: f64,
     pub high: f64,
@@ -283,7 +283,7 @@ impl BinaryTally {
 }
 
 /// What one arm's numeric outcomes say on their own.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct NumericSummary {
     pub count: u64,
     /// `None` without outcomes.
@@ -295,7 +295,7 @@ pub struct NumericSummary {
 }
 
 /// One arm's numeric outcomes against the first arm's: Welch's t-test of `mean_i − mean_0`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct WelchComparison {
     /// Always [`Validity::FixedSample`]: says which kind the figures are.
     pub validity: Validity,
@@ -312,7 +312,7 @@ pub struct WelchComparison {
 }
 
 /// What one arm's yes/no outcomes say on their own.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct BinarySummary {
     pub count: u64,
     pub successes: u64,
@@ -323,7 +323,7 @@ pub struct BinarySummary {
 }
 
 /// One arm's yes/no outcomes against the first arm's.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct ProportionComparison {
     /// Always [`Validity::FixedSample`]: says which kind the figures are.
     pub validity: Validity,
@@ -339,7 +339,7 @@ pub struct ProportionComparison {
 }
 
 /// One arm's line of a numeric readout.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct NumericArmReadout {
     pub summary: NumericSummary,
     /// `None` for the first arm itself, and for an arm when either it or the first arm has no
@@ -348,7 +348,7 @@ pub struct NumericArmReadout {
 }
 
 /// One arm's line of a yes/no readout.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct BinaryArmReadout {
     pub summary: BinarySummary,
     /// `None` for the first arm itself, and for an arm when either it or the first arm has no
