@@ -883,7 +883,7 @@ pub const DEFAULT_MAX_TOKENS: usize = 64;
 /// `/embed`.
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
-#[schema(example = json!({"prompt": "The chain slipped because", "max_tokens": 8}))]
+#[schema(example = json!({"adapter": "base", "prompt": "The chain slipped because", "max_tokens": 8}))]
 pub struct GenerateBody {
     /// An adapter name, or `base`; the tenant's key must reach it.
     #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
@@ -976,6 +976,14 @@ impl GenerateBody {
             return Err(ApiError::bad_request(
                 "invalid_max_tokens",
                 format!("max_tokens {limit} is out of range: expected 1 to {most}"),
+            ));
+        }
+        // The description says int64, as most clients' integers are: a larger seed is refused
+        // rather than taken silently.
+        if let Some(seed) = self.seed.filter(|&s| s > i64::MAX as u64) {
+            return Err(ApiError::bad_request(
+                "invalid_sampling",
+                format!("seed {seed} is out of range: expected 0 to {}", i64::MAX),
             ));
         }
         let sampling = SamplingParams {
@@ -1391,4 +1399,38 @@ where
     let (tx, rx) = mpsc::unbounded_channel();
     tokio::spawn(f(tx));
     futures_util::StreamExt::map(tokio_stream::wrappers::UnboundedReceiverStream::new(rx), Ok)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn bounds() -> Bounds {
+        Bounds {
+            inference_body_bytes: 1 << 20,
+            upload_body_bytes: 1 << 20,
+            text_bytes: 1000,
+            prompt_tokens: 100,
+            generated_tokens: 100,
+            texts_per_request: 8,
+            timeout: Duration::from_secs(10),
+        }
+    }
+
+    /// Found by the API fuzzer: a seed above the int64 range the description gives was taken.
+    #[test]
+    fn a_seed_beyond_int64_is_refused_naming_the_range() {
+        let body = |seed: u64| -> GenerateBody {
+            serde_json::from_value(serde_json::json!({"prompt": "the chain", "seed": seed}))
+                .unwrap()
+        };
+        assert!(body(i64::MAX as u64).check(&bounds()).is_ok());
+        let refused = body(1 << 63).check(&bounds()).unwrap_err();
+        assert_eq!(refused.code, "invalid_sampling");
+        assert!(
+            refused.message.contains("9223372036854775807"),
+            "{}",
+            refused.message
+        );
+    }
 }

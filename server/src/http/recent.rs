@@ -139,6 +139,10 @@ mod tests {
         );
         let bad = since_ms(Some("since_ms=yesterday")).unwrap_err();
         assert!(bad.message.contains("\"yesterday\""), "{}", bad.message);
+        // Found by the API fuzzer: the description's int64 ends at i64::MAX.
+        assert!(since_ms(Some("since_ms=9223372036854775807")).is_ok());
+        let over = since_ms(Some("since_ms=9223372036854775808")).unwrap_err();
+        assert_eq!(over.code, "invalid_query");
         let unknown = since_ms(Some("from=3")).unwrap_err();
         assert!(unknown.message.contains("\"from\""), "{}", unknown.message);
     }

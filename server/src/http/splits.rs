@@ -82,6 +82,8 @@ fn unknown_split(name: &str) -> ApiError {
 #[derive(Debug, Clone, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct SplitBody {
+    /// 1 to 16 arms; the first is the reference every readout compares with.
+    #[schema(min_items = 1, max_items = 16)]
     pub arms: Vec<ArmSpec>,
     /// A guarded rollout of the second arm (see [`crate::splits::rollout`]); absent: none.
     #[serde(default)]

@@ -41,19 +41,25 @@ pub struct SplitSpec {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ArmSpec {
+    /// The arm's name, unique in its split.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub name: String,
     /// An adapter name, or [`BASE_MODEL`] for the base model alone.
+    #[schema(pattern = r"^[a-z0-9]+(-[a-z0-9]+)*$", max_length = 64)]
     pub adapter: String,
     /// Holds the arm to one version of its adapter; otherwise the arm follows the live version.
     /// Whether the version exists is the registry's check, not this module's.
     #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(pattern = r"^[0-9a-f]{16}$")]
     pub version: Option<String>,
     /// Relative weight, finite and at least 0; weights need not sum to 1.
+    #[schema(minimum = 0.0)]
     pub weight: f64,
     /// Marks a shadow arm: it answers nobody (its weight is 0); instead this share (in (0, 1])
     /// of the first arm's requests is also run through it, and how its answers agree with the
     /// first arm's is recorded as its outcomes.
     #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(exclusive_minimum = 0.0, maximum = 1.0)]
     pub shadow: Option<f64>,
 }
 
