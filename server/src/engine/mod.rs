@@ -268,30 +268,32 @@ pub struct EmbedJob {
 /// What a generation sends back, token by token.
 #[derive(Debug, Clone)]
 pub enum GenEvent {
-    Token {
-        id: u32,
-        text: String,
-    },
-    Done {
-        finish: &'static str,
-        /// The end text or end token id that ended the generation (`finish` is `end_text` or
-        /// `end_token`).
-        ended_by: Option<serde_json::Value>,
-        /// The whole output decoded at once (cut before an end text that ended it): what the
-        /// non-streamed answer returns.
-        text: String,
-        /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
-        /// back in case the next token completed it (usually empty).
-        tail: String,
-        prompt_tokens: usize,
-        /// Prompt tokens whose KV cache came from the prefix cache instead of a prefill.
-        reused_tokens: usize,
-        /// Tokens generated, not counting an end-of-sequence token (which is not part of the
-        /// output): the length of the answer's `token_ids`.
-        output_tokens: usize,
-        timings: Timings,
-    },
+    Token { id: u32, text: String },
+    Done(Finished),
     Failed(EngineError),
+}
+
+/// How a generation ended: the engine's last event of a generation that did not fail.
+#[derive(Debug, Clone)]
+pub struct Finished {
+    /// `eos`, `limit`, `end_token` or `end_text`.
+    pub finish: &'static str,
+    /// The end text or end token id that ended the generation (`finish` is `end_text` or
+    /// `end_token`).
+    pub ended_by: Option<serde_json::Value>,
+    /// The whole output decoded at once (cut before an end text that ended it): what the
+    /// non-streamed answer returns.
+    pub text: String,
+    /// Text not yet sent in a `Token` event: a trailing incomplete character that was held
+    /// back in case the next token completed it (usually empty).
+    pub tail: String,
+    pub prompt_tokens: usize,
+    /// Prompt tokens whose KV cache came from the prefix cache instead of a prefill.
+    pub reused_tokens: usize,
+    /// Tokens generated, not counting an end-of-sequence token (which is not part of the
+    /// output): the length of the answer's `token_ids`.
+    pub output_tokens: usize,
+    pub timings: Timings,
 }
 
 pub struct GenerateJob {
@@ -1341,7 +1343,7 @@ impl Sequence {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
         let text = text.unwrap_or_else(|| g.decode(self.detok.ids()).unwrap_or_default());
-        let _ = self.job.events.send(GenEvent::Done {
+        let _ = self.job.events.send(GenEvent::Done(Finished {
             finish: reason,
             ended_by: (!ended_by.is_null()).then_some(ended_by),
             tail: unsent_tail(&text, &self.sent_text),
@@ -1357,7 +1359,7 @@ impl Sequence {
                 first_token: self.first_token,
                 total,
             },
-        });
+        }));
     }
 
     fn fail(self, message: String) {

@@ -20,7 +20,7 @@ use tokio::sync::{mpsc, oneshot};
 use utoipa::ToSchema;
 
 use crate::engine::end_at::EndAt;
-use crate::engine::{Backbone, EmbedJob, GenEvent, GenerateJob, Job, Ticket, Timings};
+use crate::engine::{Backbone, EmbedJob, Finished, GenEvent, GenerateJob, Job, Ticket, Timings};
 use crate::experiments::book::ShadowArm;
 use crate::experiments::responses::{ArmWatch, Receipt};
 use crate::http::auth::Tenant;
@@ -482,21 +482,47 @@ fn ended_by_of(v: Option<Value>) -> Option<EndedBy> {
     }
 }
 
-/// The answer of `POST /generate` without `stream`.
+/// What a finished generation's answer says of it, streamed or not.
 #[derive(Debug, Serialize, ToSchema)]
-pub struct GenerateAnswer {
+pub struct Ending {
     pub id: String,
     pub served_by: String,
     pub split: Option<ServedArm>,
-    /// The output, decoded as a whole (without the end text that ended it).
-    pub text: String,
-    /// The generated token ids, in order.
-    pub token_ids: Vec<u32>,
     pub finish: Finish,
     /// What ended it, when `finish` is `end_text` or `end_token`; else null.
     pub ended_by: Option<EndedBy>,
     pub counts: Counts,
     pub elapsed_ms: Elapsed,
+}
+
+impl Ending {
+    /// How the generation `id` that `routed` served ended.
+    fn of(id: &str, routed: &Routed, done: &Finished) -> Self {
+        Self {
+            id: id.to_owned(),
+            served_by: routed.served_by.clone(),
+            split: served_arm(routed),
+            finish: Finish::of(done.finish),
+            ended_by: ended_by_of(done.ended_by.clone()),
+            counts: Counts {
+                prompt_tokens: done.prompt_tokens,
+                reused_prompt_tokens: done.reused_tokens,
+                output_tokens: done.output_tokens,
+            },
+            elapsed_ms: Elapsed::of(&done.timings),
+        }
+    }
+}
+
+/// The answer of `POST /generate` without `stream`.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct GenerateAnswer {
+    #[serde(flatten)]
+    pub ending: Ending,
+    /// The output, decoded as a whole (without the end text that ended it).
+    pub text: String,
+    /// The generated token ids, in order.
+    pub token_ids: Vec<u32>,
 }
 
 /// The data of a `token` event of a streamed generation.
@@ -510,15 +536,10 @@ pub struct TokenEvent {
 /// The data of the `done` event that ends a streamed generation.
 #[derive(Debug, Serialize, ToSchema)]
 pub struct DoneEvent {
-    pub id: String,
+    #[serde(flatten)]
+    pub ending: Ending,
     /// Text not yet sent in a `token` event (usually empty).
     pub tail: String,
-    pub served_by: String,
-    pub split: Option<ServedArm>,
-    pub finish: Finish,
-    pub ended_by: Option<EndedBy>,
-    pub counts: Counts,
-    pub elapsed_ms: Elapsed,
 }
 
 /// The data of the `error` event that ends a streamed generation which failed after it began.
@@ -1100,33 +1121,14 @@ async fn whole_answer(
     let failure = loop {
         match rx.recv().await {
             Some(GenEvent::Token { id: t, .. }) => tokens.push(t),
-            Some(GenEvent::Done {
-                finish: reason,
-                ended_by,
-                text,
-                prompt_tokens,
-                reused_tokens,
-                output_tokens,
-                timings,
-                ..
-            }) => {
+            Some(GenEvent::Done(done)) => {
                 routed.answered();
                 finish(state, "generate", id, &routed.served_by, 200, start);
                 routed.mirror(state, |input| generate_mirror(input, &tokens));
                 return Json(GenerateAnswer {
-                    id: id.to_owned(),
-                    served_by: routed.served_by.clone(),
-                    split: served_arm(routed),
-                    text,
+                    ending: Ending::of(id, routed, &done),
+                    text: done.text,
                     token_ids: tokens,
-                    finish: Finish::of(reason),
-                    ended_by: ended_by_of(ended_by),
-                    counts: Counts {
-                        prompt_tokens,
-                        reused_prompt_tokens: reused_tokens,
-                        output_tokens,
-                    },
-                    elapsed_ms: Elapsed::of(&timings),
                 })
                 .into_response();
             }
@@ -1308,32 +1310,13 @@ fn stream_answer(
                         .event("token")
                         .json_data(TokenEvent { text, token_id: t })
                 }
-                GenEvent::Done {
-                    finish: reason,
-                    ended_by,
-                    tail,
-                    prompt_tokens,
-                    reused_tokens,
-                    output_tokens,
-                    timings,
-                    ..
-                } => {
+                GenEvent::Done(done) => {
                     routed.answered();
                     finish(&state, "generate", &id, &routed.served_by, 200, start);
                     routed.mirror(&state, |input| generate_mirror(input, &streamed));
                     let e = Event::default().event("done").json_data(DoneEvent {
-                        id: id.clone(),
-                        tail,
-                        served_by: routed.served_by.clone(),
-                        split: served_arm(&routed),
-                        finish: Finish::of(reason),
-                        ended_by: ended_by_of(ended_by),
-                        counts: Counts {
-                            prompt_tokens,
-                            reused_prompt_tokens: reused_tokens,
-                            output_tokens,
-                        },
-                        elapsed_ms: Elapsed::of(&timings),
+                        ending: Ending::of(&id, &routed, &done),
+                        tail: done.tail,
                     });
                     let _ = tx.send(e.expect("json"));
                     return;

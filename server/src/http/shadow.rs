@@ -206,7 +206,7 @@ async fn mirror_once(
             loop {
                 match rx.recv().await {
                     Some(GenEvent::Token { id, .. }) => tokens.push(id),
-                    Some(GenEvent::Done { .. }) => break,
+                    Some(GenEvent::Done(_)) => break,
                     Some(GenEvent::Failed(e)) => return Err(e.to_string()),
                     None => return Err("the engine dropped the shadow generation".into()),
                 }
