@@ -348,3 +348,47 @@ fn the_fuzzer_finds_no_server_error_and_no_answer_off_the_description() {
         "/generate",
     );
 }
+
+/// `/generate`'s answers fit the schemas the description gives them, checked by jsonschema
+/// (tests/api/check_events.py): a whole answer, one that an end token ended (`ended_by` set),
+/// and a streamed one, event by event (`token` events, then `done`).
+#[test]
+fn generate_answers_fit_their_described_schemas_whole_and_streamed() {
+    let creds = example_credentials();
+    let server = server_with(ServerSetup::tiny_decoder(), &creds);
+    let dir = tempfile::tempdir().unwrap();
+    let check = |answer: &str, kind: &str| {
+        let file = dir.path().join(format!("{kind}.txt"));
+        std::fs::write(&file, answer).unwrap();
+        let out = Command::new(venv_tool("python"))
+            .arg(workspace_root().join("tests/api/check_events.py"))
+            .arg(committed())
+            .arg(&file)
+            .arg(kind)
+            .output()
+            .unwrap();
+        let said = String::from_utf8_lossy(&out.stdout).into_owned()
+            + &String::from_utf8_lossy(&out.stderr);
+        println!("{kind}: {}", said.trim());
+        assert!(out.status.success(), "{kind}: {said}\nanswer: {answer}");
+    };
+    let body = json!({"adapter": "base", "prompt": "The chain slipped because", "max_tokens": 6});
+    let whole = server.post("/generate", Auth::Bearer(&creds.key), &body);
+    assert_eq!(whole.status, 200, "{}", whole.body);
+    check(&whole.body, "whole");
+
+    let third = whole.json()["token_ids"][2].as_u64().unwrap();
+    let mut ended = body.clone();
+    ended["end_at"] = json!({"token_ids": [third]});
+    let ended = server.post("/generate", Auth::Bearer(&creds.key), &ended);
+    assert_eq!(ended.json()["finish"], "end_token", "{}", ended.body);
+    assert_eq!(ended.json()["ended_by"], third, "{}", ended.body);
+    check(&ended.body, "whole");
+
+    let mut streamed = body.clone();
+    streamed["stream"] = json!(true);
+    let stream = server.post("/generate", Auth::Bearer(&creds.key), &streamed);
+    assert_eq!(stream.status, 200, "{}", stream.body);
+    assert!(stream.body.contains("event: done"), "{}", stream.body);
+    check(&stream.body, "stream");
+}
