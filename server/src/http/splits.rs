@@ -81,6 +81,10 @@ fn unknown_split(name: &str) -> ApiError {
 /// refused (400 `invalid_field`, naming the field), so a misspelt key is never silently ignored.
 #[derive(Debug, Clone, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
+#[schema(example = json!({"arms": [
+    {"name": "incumbent", "adapter": "base", "weight": 1.0},
+    {"name": "candidate", "adapter": "north-routing", "weight": 1.0},
+]}))]
 pub struct SplitBody {
     /// 1 to 16 arms; the first is the reference every readout compares with.
     #[schema(min_items = 1, max_items = 16)]
@@ -548,6 +552,7 @@ pub async fn check_rollouts_every(state: SharedState) {
 /// The body of `POST /admin/splits/{name}/rollout`.
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
+#[schema(example = json!({"action": "pause", "reason": "checking the candidate's labels by hand"}))]
 pub struct RolloutBody {
     pub action: OperatorAction,
     /// Why, for the history; default: the action by an operator.
@@ -624,6 +629,7 @@ pub struct RolloutApplied {
 /// The body of `POST /outcomes`.
 #[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
+#[schema(example = json!({"response_id": "r-915f53db37d6863e88cd7409", "value": true}))]
 pub struct OutcomeBody {
     /// The `id` of an answer a split served to this tenant.
     pub response_id: String,
