@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Creates tests/api/.venv with the pinned Python tools the API-description test runs: an OpenAPI
 # validator (openapi-spec-validator), the property-based API fuzzer (schemathesis) and the JSON
-# Schema validator check_events.py uses (jsonschema).
+# Schema validator check_answers.py uses (jsonschema).
 # Idempotent: a venv that already has exactly these versions is left alone.
 set -euo pipefail
 
@@ -10,7 +10,7 @@ venv=$here/.venv
 pins=(
     "schemathesis==4.32.5"
     "openapi-spec-validator==0.9.0"
-    # check_events.py validates /generate answers with it (schemathesis uses it too).
+    # check_answers.py validates answers with it (schemathesis uses it too).
     "jsonschema==4.26.0"
 )
 

@@ -349,33 +349,63 @@ fn the_fuzzer_finds_no_server_error_and_no_answer_off_the_description() {
     );
 }
 
+/// Checks answers against the description with tests/api/check_answers.py (jsonschema), each
+/// in a file of its own in a temporary folder.
+struct Checker {
+    dir: tempfile::TempDir,
+    checked: std::cell::Cell<usize>,
+}
+
+impl Checker {
+    fn new() -> Self {
+        Self {
+            dir: tempfile::tempdir().unwrap(),
+            checked: std::cell::Cell::new(0),
+        }
+    }
+
+    fn run(&self, args: &[&str], answer: &str) {
+        let n = self.checked.get();
+        self.checked.set(n + 1);
+        let file = self.dir.path().join(format!("answer-{n}.txt"));
+        std::fs::write(&file, answer).unwrap();
+        let out = Command::new(venv_tool("python"))
+            .arg(workspace_root().join("tests/api/check_answers.py"))
+            .arg(committed())
+            .args(args)
+            .arg(&file)
+            .output()
+            .unwrap();
+        let said = String::from_utf8_lossy(&out.stdout).into_owned()
+            + &String::from_utf8_lossy(&out.stderr);
+        println!("{}", said.trim());
+        assert!(out.status.success(), "{said}\nanswer: {answer}");
+    }
+
+    /// `reply`, the answer to `method path` (as the description spells the path), fits the
+    /// schema documented for its status.
+    fn answer(&self, method: &str, path: &str, reply: &switchyard_tests::server::Reply) {
+        let status = reply.status.to_string();
+        self.run(&["answer", method, path, &status], &reply.body);
+    }
+
+    fn stream(&self, body: &str) {
+        self.run(&["stream"], body);
+    }
+}
+
 /// `/generate`'s answers fit the schemas the description gives them, checked by jsonschema
-/// (tests/api/check_events.py): a whole answer, one that an end token ended (`ended_by` set),
+/// (tests/api/check_answers.py): a whole answer, one that an end token ended (`ended_by` set),
 /// and a streamed one, event by event (`token` events, then `done`).
 #[test]
 fn generate_answers_fit_their_described_schemas_whole_and_streamed() {
     let creds = example_credentials();
     let server = server_with(ServerSetup::tiny_decoder(), &creds);
-    let dir = tempfile::tempdir().unwrap();
-    let check = |answer: &str, kind: &str| {
-        let file = dir.path().join(format!("{kind}.txt"));
-        std::fs::write(&file, answer).unwrap();
-        let out = Command::new(venv_tool("python"))
-            .arg(workspace_root().join("tests/api/check_events.py"))
-            .arg(committed())
-            .arg(&file)
-            .arg(kind)
-            .output()
-            .unwrap();
-        let said = String::from_utf8_lossy(&out.stdout).into_owned()
-            + &String::from_utf8_lossy(&out.stderr);
-        println!("{kind}: {}", said.trim());
-        assert!(out.status.success(), "{kind}: {said}\nanswer: {answer}");
-    };
+    let check = Checker::new();
     let body = json!({"adapter": "base", "prompt": "The chain slipped because", "max_tokens": 6});
     let whole = server.post("/generate", Auth::Bearer(&creds.key), &body);
     assert_eq!(whole.status, 200, "{}", whole.body);
-    check(&whole.body, "whole");
+    check.answer("POST", "/generate", &whole);
 
     let third = whole.json()["token_ids"][2].as_u64().unwrap();
     let mut ended = body.clone();
@@ -383,12 +413,141 @@ fn generate_answers_fit_their_described_schemas_whole_and_streamed() {
     let ended = server.post("/generate", Auth::Bearer(&creds.key), &ended);
     assert_eq!(ended.json()["finish"], "end_token", "{}", ended.body);
     assert_eq!(ended.json()["ended_by"], third, "{}", ended.body);
-    check(&ended.body, "whole");
+    check.answer("POST", "/generate", &ended);
 
     let mut streamed = body.clone();
     streamed["stream"] = json!(true);
     let stream = server.post("/generate", Auth::Bearer(&creds.key), &streamed);
     assert_eq!(stream.status, 200, "{}", stream.body);
     assert!(stream.body.contains("event: done"), "{}", stream.body);
-    check(&stream.body, "stream");
+    check.stream(&stream.body);
+}
+
+/// The answers the fuzzer rarely reaches, with real data in them, fit their schemas: a split
+/// of two versions under a rollout policy, 40 requests through it with numeric and yes/no
+/// outcomes, its readout (every statistic filled in, the guards read), the split and adapter
+/// listings, the history, a rollout action, and refusals.
+#[test]
+fn answers_full_of_real_data_fit_their_described_schemas() {
+    let creds = example_credentials();
+    let server = server_with(
+        ServerSetup::encoder().set("metrics", "history_interval_ms", "100"),
+        &creds,
+    );
+    let check = Checker::new();
+    let admin = Auth::Bearer(&creds.admin_token);
+    let tenant = Auth::Bearer(&creds.key);
+    let mut versions = Vec::new();
+    for fixture in ["minilm-qv-a.safetensors", "minilm-qv-b.safetensors"] {
+        let package = std::fs::read(fixtures().join(fixture)).unwrap();
+        let published = server.request(
+            "PUT",
+            "/admin/adapters/north-routing",
+            admin,
+            Some(("application/octet-stream", &package)),
+        );
+        assert_eq!(published.status, 201, "{}", published.body);
+        check.answer("PUT", "/admin/adapters/{name}", &published);
+        versions.push(published.json()["version"].as_str().unwrap().to_owned());
+    }
+    let split = json!({
+        "arms": [
+            {"name": "incumbent", "adapter": "north-routing", "version": versions[0], "weight": 1.0},
+            {"name": "candidate", "adapter": "north-routing", "version": versions[1], "weight": 1.0},
+        ],
+        "rollout": {
+            "candidate": "candidate",
+            "min_requests": 1000,
+            "guards": {"error_rate": 0.05, "latency_p99_ms": 2000,
+                       "outcome": {"kind": "yes_no", "better": "higher", "margin": 0.1}},
+            "steps": [0.75],
+        },
+    });
+    let put = server.request(
+        "PUT",
+        "/admin/splits/north-test",
+        admin,
+        Some(("application/json", split.to_string().as_bytes())),
+    );
+    assert_eq!(put.status, 201, "{}", put.body);
+    check.answer("PUT", "/admin/splits/{name}", &put);
+
+    for i in 0..40 {
+        let body = json!({"split": "north-test", "subject": format!("rider-{i}"),
+                          "texts": ["the rear brake squeals"]});
+        let reply = server.post("/embed", tenant, &body);
+        assert_eq!(reply.status, 200, "{}", reply.body);
+        if i == 0 {
+            check.answer("POST", "/embed", &reply);
+        }
+        let id = reply.json()["id"].as_str().unwrap().to_owned();
+        let value = if i % 2 == 0 {
+            json!(i % 3 == 0)
+        } else {
+            json!(0.5 + (i % 7) as f64 / 10.0)
+        };
+        let outcome = server.post(
+            "/outcomes",
+            tenant,
+            &json!({"response_id": id, "value": value}),
+        );
+        assert_eq!(outcome.status, 200, "{}", outcome.body);
+        if i < 2 {
+            check.answer("POST", "/outcomes", &outcome);
+        }
+    }
+    let readout = server.get("/admin/splits/north-test/readout", admin);
+    let data = readout.json();
+    assert!(
+        data["arms"][1]["numeric"]["versus_first"]["interval"].is_object(),
+        "{data}"
+    );
+    assert!(
+        data["arms"][1]["yes_no"]["versus_first_always_valid"].is_object(),
+        "{data}"
+    );
+    assert!(data["rollout"]["guards"].is_array(), "{data}");
+    check.answer("GET", "/admin/splits/{name}/readout", &readout);
+
+    let paused = server.post(
+        "/admin/splits/north-test/rollout",
+        admin,
+        &json!({"action": "pause", "reason": "reading the labels by hand"}),
+    );
+    assert_eq!(paused.status, 200, "{}", paused.body);
+    check.answer("POST", "/admin/splits/{name}/rollout", &paused);
+    check.answer(
+        "GET",
+        "/admin/splits/{name}/readout",
+        &server.get("/admin/splits/north-test/readout", admin),
+    );
+    check.answer("GET", "/admin/splits", &server.get("/admin/splits", admin));
+    check.answer(
+        "GET",
+        "/admin/adapters",
+        &server.get("/admin/adapters", admin),
+    );
+    std::thread::sleep(std::time::Duration::from_millis(300));
+    check.answer(
+        "GET",
+        "/admin/history",
+        &server.get("/admin/history", admin),
+    );
+    let pinned = server.request("PUT", "/admin/adapters/north-routing/pin", admin, None);
+    check.answer("PUT", "/admin/adapters/{name}/pin", &pinned);
+    let refused = server.post(
+        "/embed",
+        tenant,
+        &json!({"adapter": "south-routing", "texts": ["x"]}),
+    );
+    assert_eq!(refused.status, 403, "{}", refused.body);
+    check.answer("POST", "/embed", &refused);
+    let busy = server.request(
+        "DELETE",
+        &format!("/admin/adapters/north-routing/versions/{}", versions[1]),
+        admin,
+        None,
+    );
+    assert_eq!(busy.status, 409, "{}", busy.body);
+    check.answer("DELETE", "/admin/adapters/{name}/versions/{version}", &busy);
 }

@@ -1,11 +1,14 @@
-"""Checks a /generate answer against the API description with jsonschema (PyPI), the validator
-schemathesis itself uses: a streamed answer's events (`token`, then `done` or `error`), each
-event's data against the schema the description names for it, or a whole answer against the
-operation's application/json schema.
+"""Checks answers against the API description with jsonschema (PyPI), the validator
+schemathesis itself uses:
 
-    check_events.py DESCRIPTION.json ANSWER_FILE stream|whole
+    check_answers.py DESCRIPTION.json stream FILE
+        a streamed /generate answer: its events (`token`, then `done` or `error`), each event's
+        data against the schema the description names for it;
+    check_answers.py DESCRIPTION.json answer METHOD PATH STATUS FILE
+        a JSON answer against the application/json schema the operation METHOD PATH (as the
+        description spells the path, `{name}` and all) documents for STATUS.
 
-Prints one line per checked part; exits 1 naming the first part that does not fit.
+Prints one line per check; exits 1 naming the first part that does not fit.
 """
 
 import json
@@ -45,18 +48,19 @@ def fail(message):
     sys.exit(1)
 
 
-def main():
-    doc = json.load(open(sys.argv[1]))
-    answer = open(sys.argv[2]).read()
-    kind = sys.argv[3]
-    if kind == "whole":
-        content = doc["paths"]["/generate"]["post"]["responses"]["200"]["content"]
-        ref = content["application/json"]["schema"]["$ref"]
-        errors = list(validator(doc, ref).iter_errors(json.loads(answer)))
-        if errors:
-            fail(f"whole answer: {errors[0].message} at {list(errors[0].path)}")
-        print(f"whole answer fits {ref}")
-        return
+def check_answer(doc, method, path, status, answer):
+    operation = doc["paths"][path][method.lower()]
+    response = operation["responses"].get(status)
+    if response is None:
+        fail(f"{method} {path}: status {status} is not documented")
+    ref = response["content"]["application/json"]["schema"]["$ref"]
+    errors = list(validator(doc, ref).iter_errors(json.loads(answer)))
+    if errors:
+        fail(f"{method} {path} {status}: {errors[0].message} at {list(errors[0].path)}")
+    print(f"{method} {path} {status} fits {ref}")
+
+
+def check_stream(doc, answer):
     seen = events(answer)
     if not seen:
         fail("no events in the stream")
@@ -71,6 +75,15 @@ def main():
         if errors:
             fail(f"event {i} ({name}): {errors[0].message} at {list(errors[0].path)}")
     print(f"{len(seen)} events ({names.count('token')} token, then {names[-1]}) fit their schemas")
+
+
+def main():
+    doc = json.load(open(sys.argv[1]))
+    if sys.argv[2] == "stream":
+        check_stream(doc, open(sys.argv[3]).read())
+    else:
+        method, path, status, file = sys.argv[3:7]
+        check_answer(doc, method, path, status, open(file).read())
 
 
 main()
