@@ -273,14 +273,25 @@ pub enum GenEvent {
     Failed(EngineError),
 }
 
+/// Why a generation stopped.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Stop {
+    /// The model's end-of-sequence token.
+    Eos,
+    /// `max_tokens` reached.
+    Limit,
+    /// The request's deadline passed mid-generation: the output so far.
+    Deadline,
+    /// One of the request's end token ids was sampled.
+    EndToken(u32),
+    /// One of the request's end texts appeared in the output.
+    EndText(String),
+}
+
 /// How a generation ended: the engine's last event of a generation that did not fail.
 #[derive(Debug, Clone)]
 pub struct Finished {
-    /// `eos`, `limit`, `end_token` or `end_text`.
-    pub finish: &'static str,
-    /// The end text or end token id that ended the generation (`finish` is `end_text` or
-    /// `end_token`).
-    pub ended_by: Option<serde_json::Value>,
+    pub stop: Stop,
     /// The whole output decoded at once (cut before an end text that ended it): what the
     /// non-streamed answer returns.
     pub text: String,
@@ -954,7 +965,7 @@ impl Worker {
                     tracing::debug!("client disconnected; generation stopped and its cache freed");
                     false
                 } else if now > s.job.deadline {
-                    s.finish("deadline", g, &self.metrics);
+                    s.end(Stop::Deadline, None, g, &self.metrics);
                     false
                 } else {
                     true
@@ -1289,11 +1300,11 @@ impl Sequence {
         self.job.ticket.permit.spend(1);
         self.last = token;
         if eos.contains(&token) {
-            self.finish("eos", g, metrics);
+            self.end(Stop::Eos, None, g, metrics);
             return false;
         }
         if self.job.end_at.token_ids.contains(&token) {
-            self.end(("end_token", token.into()), None, g, metrics);
+            self.end(Stop::EndToken(token), None, g, metrics);
             return false;
         }
         let decode = |ids: &[u32]| g.decode(ids).unwrap_or_default();
@@ -1317,35 +1328,22 @@ impl Sequence {
         if let Some(index) = ended {
             let text = self.job.end_at.texts[index].clone();
             let sent = self.sent_text.clone();
-            self.end(("end_text", text.into()), Some(sent), g, metrics);
+            self.end(Stop::EndText(text), Some(sent), g, metrics);
             return false;
         }
         if self.detok.ids().len() >= self.job.limit {
-            self.finish("limit", g, metrics);
+            self.end(Stop::Limit, None, g, metrics);
             return false;
         }
         true
     }
 
-    fn finish(&self, reason: &'static str, g: &Generator, metrics: &Metrics) {
-        self.end((reason, serde_json::Value::Null), None, g, metrics)
-    }
-
-    /// Sends the `Done` event: `text` is the output when an end text cut it (what was sent),
-    /// otherwise the whole output decoded at once.
-    fn end(
-        &self,
-        (reason, ended_by): (&'static str, serde_json::Value),
-        text: Option<String>,
-        g: &Generator,
-        metrics: &Metrics,
-    ) {
+    fn end(&self, stop: Stop, text: Option<String>, g: &Generator, metrics: &Metrics) {
         let total = self.job.admitted.elapsed();
         metrics.request_seconds.observe(total.as_secs_f64());
         let text = text.unwrap_or_else(|| g.decode(self.detok.ids()).unwrap_or_default());
         let _ = self.job.events.send(GenEvent::Done(Finished {
-            finish: reason,
-            ended_by: (!ended_by.is_null()).then_some(ended_by),
+            stop,
             tail: unsent_tail(&text, &self.sent_text),
             text,
             prompt_tokens: self.job.prompt_ids.len(),

@@ -13,14 +13,15 @@ use axum::response::sse::{Event, KeepAlive, Sse};
 use axum::response::{IntoResponse, Response};
 use axum::{Extension, Json};
 use serde::{Deserialize, Serialize};
-use serde_json::Value;
 use switchyard_adapters::AdapterName;
 use switchyard_adapters::registry::{AdapterHandle, RegistryError};
 use tokio::sync::{mpsc, oneshot};
 use utoipa::ToSchema;
 
 use crate::engine::end_at::EndAt;
-use crate::engine::{Backbone, EmbedJob, Finished, GenEvent, GenerateJob, Job, Ticket, Timings};
+use crate::engine::{
+    Backbone, EmbedJob, Finished, GenEvent, GenerateJob, Job, Stop, Ticket, Timings,
+};
 use crate::experiments::book::ShadowArm;
 use crate::experiments::responses::{ArmWatch, Receipt};
 use crate::http::auth::Tenant;
@@ -436,6 +437,8 @@ pub enum Finish {
     Eos,
     /// `max_tokens` reached.
     Limit,
+    /// The request's deadline passed mid-generation: the output so far.
+    Deadline,
     /// One of `end_at.token_ids`.
     EndToken,
     /// One of `end_at.texts`.
@@ -443,12 +446,13 @@ pub enum Finish {
 }
 
 impl Finish {
-    fn of(reason: &str) -> Self {
-        match reason {
-            "eos" => Self::Eos,
-            "end_token" => Self::EndToken,
-            "end_text" => Self::EndText,
-            _ => Self::Limit,
+    fn of(stop: &Stop) -> Self {
+        match stop {
+            Stop::Eos => Self::Eos,
+            Stop::Limit => Self::Limit,
+            Stop::Deadline => Self::Deadline,
+            Stop::EndToken(_) => Self::EndToken,
+            Stop::EndText(_) => Self::EndText,
         }
     }
 }
@@ -471,14 +475,13 @@ pub enum EndedBy {
     Token(u32),
 }
 
-fn ended_by_of(v: Option<Value>) -> Option<EndedBy> {
-    match v? {
-        Value::String(s) => Some(EndedBy::Text(s)),
-        Value::Number(n) => n
-            .as_u64()
-            .and_then(|n| u32::try_from(n).ok())
-            .map(EndedBy::Token),
-        _ => None,
+impl EndedBy {
+    fn of(stop: &Stop) -> Option<Self> {
+        match stop {
+            Stop::EndToken(id) => Some(Self::Token(*id)),
+            Stop::EndText(text) => Some(Self::Text(text.clone())),
+            Stop::Eos | Stop::Limit | Stop::Deadline => None,
+        }
     }
 }
 
@@ -502,8 +505,8 @@ impl Ending {
             id: id.to_owned(),
             served_by: routed.served_by.clone(),
             split: served_arm(routed),
-            finish: Finish::of(done.finish),
-            ended_by: ended_by_of(done.ended_by.clone()),
+            finish: Finish::of(&done.stop),
+            ended_by: EndedBy::of(&done.stop),
             counts: Counts {
                 prompt_tokens: done.prompt_tokens,
                 reused_prompt_tokens: done.reused_tokens,
@@ -1397,6 +1400,27 @@ mod tests {
             generated_tokens: 100,
             texts_per_request: 8,
             timeout: Duration::from_secs(10),
+        }
+    }
+
+    /// Each way the engine stops a generation reads as the `finish` the README lists (a
+    /// deadline once read as `limit` while the answers were being typed), with `ended_by` only
+    /// for an end token or end text.
+    #[test]
+    fn every_stop_reads_as_its_documented_finish_and_ended_by() {
+        for (stop, finish, ended_by) in [
+            (Stop::Eos, "eos", serde_json::Value::Null),
+            (Stop::Limit, "limit", serde_json::Value::Null),
+            (Stop::Deadline, "deadline", serde_json::Value::Null),
+            (Stop::EndToken(7), "end_token", serde_json::json!(7)),
+            (
+                Stop::EndText("##".into()),
+                "end_text",
+                serde_json::json!("##"),
+            ),
+        ] {
+            assert_eq!(serde_json::json!(Finish::of(&stop)), finish, "{stop:?}");
+            assert_eq!(serde_json::json!(EndedBy::of(&stop)), ended_by, "{stop:?}");
         }
     }
 
