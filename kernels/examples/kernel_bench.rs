@@ -16,7 +16,8 @@
 //!
 //! Our kernels alone: oneDNN, where it is loaded, is turned off here (`scripts/bench-onednn`
 //! compares the two). Paths this CPU lacks are listed as not run. Run: `cargo run --release -p switchyard-kernels
-//! --example kernel-bench` (add `-- --repeats N`, or `-- --only TEXT` for the rows whose
+//! --example kernel-bench` (add `-- --repeats N`, `-- --decode-mb N` to cycle N MB of decode
+//! weights instead of 512, or `-- --only TEXT` for the rows whose
 //! description holds TEXT). Every figure is the median of the repeats; the paths of one row
 //! alternate within each repeat, so load on a shared machine hits them alike.
 
@@ -171,6 +172,12 @@ fn main() {
         .and_then(|v| v.parse().ok())
         .unwrap_or(7usize);
     let only = flag(&args, "--only").unwrap_or_default();
+    // The decode rows cycle through this many MB of weights: 512 reads them from memory, a
+    // few MB from the caches (what the kernel's arithmetic allows).
+    let decode_mb: usize = flag(&args, "--decode-mb").map_or(512, |v| {
+        v.parse()
+            .unwrap_or_else(|_| panic!("--decode-mb takes a whole number of MB, not {v:?}"))
+    });
     // Our kernels alone: products oneDNN would take stay ours (scripts/bench-onednn compares).
     switchyard_kernels::onednn::set_enabled(false);
     let paths: Vec<Path> = Path::ALL.into_iter().filter(|p| p.available()).collect();
@@ -195,7 +202,7 @@ fn main() {
     drop(big);
     let peak = |path: Path| match path {
         Path::Avx2 => (!p8.is_empty()).then(|| median(p8.clone())),
-        Path::Avx512 | Path::Avx512Bf16 | Path::Amx => {
+        Path::Avx512 | Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx => {
             (!p16.is_empty()).then(|| median(p16.clone()))
         }
         Path::Portable => None,
@@ -317,8 +324,8 @@ fn main() {
         "int4-g64-zero-f32",
     ];
     println!(
-        "\ndecode, one row through a 2048 x 2048 weight from memory: GB/s of resident bytes per path \
-         (fraction of the read bandwidth, {bandwidth:.1} GB/s)"
+        "\ndecode, one row through a 2048 x 2048 weight, {decode_mb} MB of them cycled: GB/s of \
+         resident bytes per path (fraction of the read bandwidth, {bandwidth:.1} GB/s)"
     );
     print!("{:<20} {:>9}", "format", "bytes");
     for p in &paths {
@@ -336,11 +343,11 @@ fn main() {
         let format = WeightFormat::parse(name).unwrap();
         let one = PackedWeight::pack_as(&w, n, k, format).unwrap();
         let bytes = one.resident_bytes();
-        let ws = vec![one; (512 << 20) / bytes];
+        let ws = vec![one; ((decode_mb << 20) / bytes).max(1)];
         let mut rates = vec![Vec::new(); paths.len()];
         for _ in 0..repeats {
             for (r, &path) in rates.iter_mut().zip(&paths) {
-                let secs = seconds_per_call(path, &ws, &x, &mut y, 1, ws.len() * 2);
+                let secs = seconds_per_call(path, &ws, &x, &mut y, 1, (ws.len() * 2).max(200));
                 r.push(bytes as f64 / secs / 1e9);
             }
         }

@@ -2,12 +2,12 @@
 //! micro-kernel serves each weight format on that path.
 //!
 //! A path is an instruction-set level. It is detected once, at first use, unless
-//! `SWITCHYARD_KERNELS` names one (`portable`, `avx2`, `avx512`, `avx512-bf16`, `amx`): an unknown
-//! name, or a path this CPU cannot run, is refused with a message that lists the valid names
-//! (see [`chosen`]). Adding an instruction set is one new micro-kernel file under `micro/` and
+//! `SWITCHYARD_KERNELS` names one (`portable`, `avx2`, `avx512`, `avx512-vnni`, `avx512-bf16`,
+//! `amx`): an unknown name, or a path this CPU cannot run, is refused with a message that lists
+//! the valid names (see [`chosen`]). Adding an instruction set is one new micro-kernel file under `micro/` and
 //! one line of `micro_kernel`.
 
-use crate::micro::{self, MicroKernel};
+use crate::micro::{self, Inputs, MicroKernel};
 use crate::pack::FormatKind;
 
 /// An instruction-set level the kernels can run at, lowest first.
@@ -20,10 +20,15 @@ pub enum Path {
     Avx2,
     /// AVX-512F (f32 tiles of up to 12 rows, weights converted in registers).
     Avx512,
-    /// AVX-512F plus AVX-512-BF16: bf16 weights multiplied by `vdpbf16ps`, with each row's
+    /// AVX-512F, AVX-512BW, AVX-512-VBMI and AVX-512-VNNI (Ice Lake, Sapphire Rapids and
+    /// Zen 4 have all four; Cascade Lake lacks VBMI and runs `avx512`): int4 weights
+    /// multiplied by `vpdpbusd` (four byte products per lane and instruction) against each
+    /// row's inputs rounded to int8 in groups of 32 (every other format as on `avx512`).
+    Avx512Vnni,
+    /// `avx512-vnni` plus AVX-512-BF16: bf16 weights multiplied by `vdpbf16ps`, with each row's
     /// inputs rounded to bf16 (every other format as on `avx512`).
     Avx512Bf16,
-    /// AVX-512-BF16 plus Intel's tile unit (AMX): bf16 weights multiplied 16 rows by 16 columns
+    /// `avx512-bf16` plus Intel's tile unit (AMX): bf16 weights multiplied 16 rows by 16 columns
     /// by 32 inputs per instruction once a product has at least 8 rows (fewer, and every other
     /// format, as on `avx512-bf16`). Needs the operating system's leave to use the tile state,
     /// which the process asks for on first use.
@@ -47,10 +52,11 @@ pub enum PathError {
 
 impl Path {
     /// Every path, lowest first.
-    pub const ALL: [Path; 5] = [
+    pub const ALL: [Path; 6] = [
         Path::Portable,
         Path::Avx2,
         Path::Avx512,
+        Path::Avx512Vnni,
         Path::Avx512Bf16,
         Path::Amx,
     ];
@@ -61,6 +67,7 @@ impl Path {
             Path::Portable => "portable",
             Path::Avx2 => "avx2",
             Path::Avx512 => "avx512",
+            Path::Avx512Vnni => "avx512-vnni",
             Path::Avx512Bf16 => "avx512-bf16",
             Path::Amx => "amx",
         }
@@ -77,12 +84,33 @@ impl Path {
             Path::Portable => &[],
             Path::Avx2 => &["avx2", "fma", "f16c"],
             Path::Avx512 => &["avx2", "fma", "f16c", "avx512f"],
-            Path::Avx512Bf16 => &["avx2", "fma", "f16c", "avx512f", "avx512_bf16"],
+            Path::Avx512Vnni => &[
+                "avx2",
+                "fma",
+                "f16c",
+                "avx512f",
+                "avx512bw",
+                "avx512vbmi",
+                "avx512_vnni",
+            ],
+            Path::Avx512Bf16 => &[
+                "avx2",
+                "fma",
+                "f16c",
+                "avx512f",
+                "avx512bw",
+                "avx512vbmi",
+                "avx512_vnni",
+                "avx512_bf16",
+            ],
             Path::Amx => &[
                 "avx2",
                 "fma",
                 "f16c",
                 "avx512f",
+                "avx512bw",
+                "avx512vbmi",
+                "avx512_vnni",
                 "avx512vl",
                 "avx512_bf16",
                 "amx_bf16",
@@ -118,11 +146,12 @@ impl Path {
             .unwrap_or(Path::Portable)
     }
 
-    /// Whether a product with a weight held in `format` rounds its input rows to bf16 on this
-    /// path (bf16 on avx512-bf16 and amx, whose instructions take bf16 on both sides): read
-    /// from the micro-kernel table, so tests and tolerances follow what the kernels do.
-    pub fn rounds_inputs_to_bf16(self, format: crate::WeightFormat) -> bool {
-        micro_kernel(self, format.kind()).bf16_rows
+    /// How a product with a weight held in `format` reads its input rows on this path: as f32,
+    /// rounded to bf16 (bf16 on avx512-bf16 and amx, whose instructions take bf16 on both
+    /// sides) or to int8 in groups (int4 from avx512-vnni up). Read from the micro-kernel
+    /// table, so tests and tolerances follow what the kernels do.
+    pub fn inputs(self, format: crate::WeightFormat) -> Inputs {
+        micro_kernel(self, format.kind()).inputs
     }
 
     /// True when the AVX2+FMA vector pieces (softmax, GELU, layer norm, dot) run.
@@ -146,6 +175,9 @@ fn has_feature(name: &str) -> bool {
             "f16c" => std::arch::is_x86_feature_detected!("f16c"),
             "avx512f" => std::arch::is_x86_feature_detected!("avx512f"),
             "avx512vl" => std::arch::is_x86_feature_detected!("avx512vl"),
+            "avx512bw" => std::arch::is_x86_feature_detected!("avx512bw"),
+            "avx512_vnni" => std::arch::is_x86_feature_detected!("avx512vnni"),
+            "avx512vbmi" => std::arch::is_x86_feature_detected!("avx512vbmi"),
             "avx512_bf16" => std::arch::is_x86_feature_detected!("avx512bf16"),
             "amx_bf16" => crate::matmul::amx::cpu_has_amx_bf16(),
             // The tile instructions, the operating system saving their state, and its leave
@@ -199,16 +231,17 @@ pub(crate) fn micro_kernel(path: Path, format: FormatKind) -> MicroKernel {
         (Path::Avx2, FormatKind::Bf16) => return micro::avx2::BF16,
         (Path::Avx2, FormatKind::Int8) => return micro::avx2::INT8,
         (Path::Avx2, FormatKind::Int4) => return micro::avx2::INT4,
-        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::F32) => {
+        (Path::Avx512 | Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::F32) => {
             return micro::avx512::F32;
         }
-        (Path::Avx512, FormatKind::Bf16) => return micro::avx512::BF16,
+        (Path::Avx512 | Path::Avx512Vnni, FormatKind::Bf16) => return micro::avx512::BF16,
         (Path::Avx512Bf16 | Path::Amx, FormatKind::Bf16) => return micro::avx512bf16::BF16,
-        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::Int8) => {
+        (Path::Avx512 | Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::Int8) => {
             return micro::avx512::INT8;
         }
-        (Path::Avx512 | Path::Avx512Bf16 | Path::Amx, FormatKind::Int4) => {
-            return micro::avx512::INT4;
+        (Path::Avx512, FormatKind::Int4) => return micro::avx512::INT4,
+        (Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::Int4) => {
+            return micro::avx512vnni::INT4;
         }
     }
     let _ = path;
@@ -226,7 +259,8 @@ mod tests {
         }
         let err = Path::parse("avx1024").unwrap_err().to_string();
         assert!(
-            err.contains("\"avx1024\"") && err.contains("portable, avx2, avx512, avx512-bf16, amx"),
+            err.contains("\"avx1024\"")
+                && err.contains("portable, avx2, avx512, avx512-vnni, avx512-bf16, amx"),
             "{err}"
         );
     }

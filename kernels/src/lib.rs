@@ -25,6 +25,7 @@ pub use matmul::{
     RowTerm, add_rank_update, add_rank_update_on, packed_matmul, packed_matmul_on,
     packed_matmul_strided, packed_matmul_with,
 };
+pub use micro::Inputs;
 pub use pack::{PANEL, PackedWeight, QuantError, WeightFormat};
 pub use vector::{
     add_layer_norm_in_place, axpy, dot, dot_portable, erf_fast, exp_fast, gelu_erf_in_place,

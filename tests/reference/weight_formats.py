@@ -35,6 +35,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import generate as g  # noqa: E402  (shares the fixture writers, module maps and versions)
 
 FORMATS = ["bf16", "int8", "int8-g32", "int4", "int4-zero", "int4-g64-zero-f32"]
+# The formats whose products take their inputs rounded to int8 in groups of 32 on switchyard's
+# avx512-vnni, avx512-bf16 and amx paths (`Path::inputs` in kernels/src/dispatch.rs): int4.
+INT8_INPUT_FORMATS = ["int4", "int4-zero", "int4-g64-zero-f32"]
+INPUT_GROUP = 32
 
 F32 = np.float32
 
@@ -90,6 +94,55 @@ def int4(w: np.ndarray, group: int, zero_point: bool, f16: bool) -> np.ndarray:
     return out
 
 
+def int8_inputs(x: torch.Tensor) -> torch.Tensor:
+    """A product's input rows as switchyard rounds them to int8 for the int4 kernels
+    (kernels/src/pack/rows.rs, `quantise_group_int8`): in groups of 32 along each row,
+    `s = amax / 127` in f32, each value `round_half_even(x / s)` clamped to [-127, 127]; an
+    all-zero group stays zero. Returns the values those stand for, `q * s`, in f32."""
+    a = x.detach().to(torch.float32).numpy().astype(F32)
+    rows = a.reshape(-1, a.shape[-1])
+    out = np.empty_like(rows)
+    for lo, hi in groups(rows, INPUT_GROUP):
+        part = rows[:, lo:hi]
+        s = (np.abs(part).max(axis=1) / F32(127)).astype(F32)
+        safe = np.where(s == 0, F32(1), s).astype(F32)[:, None]
+        q = np.clip(np.rint(part / safe), -127, 127).astype(F32)
+        out[:, lo:hi] = q * s[:, None]
+    return torch.from_numpy(out.reshape(a.shape))
+
+
+class Int8Inputs:
+    """Rounds the input of each given linear's own product to int8 groups (`int8_inputs`) while
+    the model runs; an adapter's low-rank term, given as `deltas` (linear -> s B A, f32), still
+    sees the input unrounded, as switchyard's fused term does."""
+
+    def __init__(self, linears, deltas: dict | None = None, jitter=None):
+        """`jitter`: (relative size, torch.Generator) of a random perturbation of each input
+        before it is rounded (for measuring how sensitive the result is to the rounding)."""
+        self.hooks = []
+        self.jitter = jitter
+        deltas = deltas or {}
+        for lin in linears:
+            delta = deltas.get(id(lin))
+            self.hooks.append(lin.register_forward_hook(
+                lambda m, args, _out, d=delta: self.product(m, args[0], d)))
+
+    def product(self, lin, x, delta):
+        xr = x
+        if self.jitter is not None:
+            size, rng = self.jitter
+            xr = x * (1 + size * torch.randn(x.shape, generator=rng))
+        y = torch.nn.functional.linear(int8_inputs(xr), lin.weight, lin.bias)
+        return y if delta is None else y + torch.nn.functional.linear(x, delta)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        for h in self.hooks:
+            h.remove()
+
+
 def rounded(w: torch.Tensor, fmt: str) -> torch.Tensor:
     """The values switchyard holds for the f32 matrix `w` in `fmt`."""
     if fmt == "bf16":
@@ -138,11 +191,49 @@ def minilm(base_dir: Path) -> dict:
                             a["rank"], a["alpha"])
             entry["adapters"][name] = g.f32_list(g.encode(adapted, sentences))
             del adapted
+        if fmt in INT8_INPUT_FORMATS:
+            minilm_int8_inputs(m, ref, sentences, entry)
         cos = (base * torch.tensor(ref["embeddings"])).sum(dim=1)
         print(f"[minilm] {fmt}: least cosine to the f32 embeddings {float(cos.min()):.6f}")
         out[fmt] = entry
         del m
     return out
+
+
+@torch.no_grad()
+def minilm_int8_inputs(m, ref: dict, sentences: list, entry: dict) -> None:
+    """MiniLM (weights already rounded to the format) with every projection's input rounded to
+    int8 groups, alone and with each adapter as an unrounded low-rank term: entry's
+    "embeddings-inputs-int8" and "adapters-inputs-int8"."""
+    linears = g.bert_linears(m)
+    with Int8Inputs(linears.values()):
+        rounded_inputs = g.encode(m, sentences)
+    entry["embeddings-inputs-int8"] = g.f32_list(rounded_inputs)
+    # How far the same computation moves when each input is perturbed by about 1e-6 of itself
+    # before the rounding (what summing in another order does): values near a rounding boundary
+    # then round the other way, a whole step each. The Rust check's bars come from this.
+    rng = torch.Generator().manual_seed(20261205)
+    with Int8Inputs(linears.values(), jitter=(1e-6, rng)):
+        jittered = g.encode(m, sentences)
+    cos = (jittered * rounded_inputs).sum(dim=1) / (jittered.norm(dim=1) * rounded_inputs.norm(dim=1))
+    entry["inputs-int8-jitter"] = {
+        "relative": 1e-6,
+        "least_cosine": float(cos.min()),
+        "max_abs_difference": float((jittered - rounded_inputs).abs().max()),
+    }
+    print(f"[minilm] int8 inputs: jitter of 1e-6 before rounding moves the "
+          f"embeddings to least cosine {float(cos.min()):.6f}, max abs difference "
+          f"{float((jittered - rounded_inputs).abs().max()):.2e}")
+    entry["adapters-inputs-int8"] = {}
+    for name, a in ref["adapters"].items():
+        tensors = adapter_tensors(g.FIXTURES / a["file"])
+        deltas = {}
+        for (i, mod), lin in linears.items():
+            key = f"layers.{i}.{mod}"
+            if key + ".A" in tensors:
+                deltas[id(lin)] = (a["alpha"] / a["rank"]) * (tensors[key + ".B"] @ tensors[key + ".A"])
+        with Int8Inputs(linears.values(), deltas):
+            entry["adapters-inputs-int8"][name] = g.f32_list(g.encode(m, sentences))
 
 
 @torch.no_grad()
@@ -189,6 +280,10 @@ def tiny(name: str) -> dict:
             logits, greedy = inputs_bf16(m, ref["input_ids"], ref["prompt_ids"])
             out[fmt]["logits-inputs-bf16"] = g.f32_list(logits)
             out[fmt]["greedy-inputs-bf16"] = greedy
+        if fmt in INT8_INPUT_FORMATS:
+            with Int8Inputs(list(g.llama_linears(m).values()) + [m.lm_head]):
+                out[fmt]["logits-inputs-int8"] = g.f32_list(g.logits_of(m, ref["input_ids"]))
+                out[fmt]["greedy-inputs-int8"] = g.greedy(m, ref["prompt_ids"])[0]
         del m
     return out
 

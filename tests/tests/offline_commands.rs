@@ -235,7 +235,7 @@ fn an_unknown_kernel_path_is_refused_with_the_valid_names() {
     assert_eq!(out.status.code(), Some(2), "{stderr}");
     assert!(
         stderr.contains("SWITCHYARD_KERNELS=\"avx1024\"")
-            && stderr.contains("portable, avx2, avx512, avx512-bf16, amx"),
+            && stderr.contains("portable, avx2, avx512, avx512-vnni, avx512-bf16, amx"),
         "{stderr}"
     );
 }

@@ -7,8 +7,8 @@ use std::borrow::Cow;
 use super::{BLOCK_K, BLOCK_ROWS, BUFFERS, PACK_PANELS, SHORT_K, SMALL_BLOCK_K};
 use crate::RowTerm;
 use crate::dispatch::{Path, micro_kernel};
-use crate::micro::{MicroKernel, Tile};
-use crate::pack::rows::{ROW_PAD, pack_tile, pack_tile_bf16};
+use crate::micro::{Inputs, MicroKernel, Quads, Tile};
+use crate::pack::rows::{INPUT_GROUP, ROW_PAD, pack_tile, pack_tile_bf16, quantise_tile_int8};
 use crate::pack::{Block, FormatKind, PANEL, PackedWeight};
 
 /// The rows one [`panels_into`] call covers (`first..first + m` of the whole product) and the
@@ -70,6 +70,9 @@ pub(crate) struct Buffers {
     pub(crate) tiles: Vec<TileRows>,
     pub(crate) x: Vec<f32>,
     pub(crate) pairs: Vec<u32>,
+    pub(crate) quads: Vec<u32>,
+    pub(crate) quad_scales: Vec<f32>,
+    pub(crate) quad_sums: Vec<i32>,
     pub(crate) down: Vec<f32>,
     pub(crate) z: Vec<f32>,
     pub(crate) wide: Vec<f32>,
@@ -90,6 +93,10 @@ pub(crate) struct Prepared<'p, 'a, 'b> {
     /// For a kernel that reads bf16 rows: each tile's rows in bf16 pairs, the tile of rows
     /// `i..i + r` from `i * ceil(k / 2)`, pair `j` of its row `ii` at `j * r + ii`.
     pub(crate) pairs: &'p [u32],
+    /// For a kernel that reads int8 rows: each tile's rows in groups (see `micro::Quads`), the
+    /// tile of rows `i..i + r` from `i * groups * INPUT_GROUP / 4` (quads) and `i * groups`
+    /// (scales and sums), `groups` = `ceil(k / INPUT_GROUP)`.
+    pub(crate) quads: Quads<'p>,
     /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
     pub(crate) z: &'p [f32],
     pub(crate) z_stride: usize,
@@ -156,7 +163,28 @@ impl Buffers {
             }
         }
         self.pairs.clear();
-        if run.kernel.bf16_rows {
+        self.quads.clear();
+        self.quad_scales.clear();
+        self.quad_sums.clear();
+        if run.kernel.inputs == Inputs::Int8Groups {
+            let groups = k.div_ceil(INPUT_GROUP);
+            let per = groups * INPUT_GROUP / 4;
+            self.quads.resize(m * per, 0);
+            self.quad_scales.resize(m * groups, 0.0);
+            self.quad_sums.resize(m * groups, 0);
+            for t in &self.tiles {
+                quantise_tile_int8(
+                    t.r,
+                    &mut self.quads[t.i * per..(t.i + t.r) * per],
+                    &mut self.quad_scales[t.i * groups..(t.i + t.r) * groups],
+                    &mut self.quad_sums[t.i * groups..(t.i + t.r) * groups],
+                    &x[t.i * lda..],
+                    lda,
+                    k,
+                );
+            }
+        }
+        if run.kernel.inputs == Inputs::Bf16Pairs {
             let kp = k.div_ceil(2);
             self.pairs.resize(m * kp, 0);
             for t in &self.tiles {
@@ -193,6 +221,7 @@ impl Buffers {
                     a: tile_rows(t),
                     lda: xlda,
                     pairs: &[],
+                    quads: Quads::default(),
                     kb: k,
                     b: Block::F32(panel),
                     next: None,
@@ -218,6 +247,11 @@ impl Buffers {
             x: xs,
             lda: xlda,
             pairs: &self.pairs,
+            quads: Quads {
+                q: &self.quads,
+                scales: &self.quad_scales,
+                sums: &self.quad_sums,
+            },
             z: &self.z,
             z_stride: rank,
             k,
@@ -377,12 +411,32 @@ pub(crate) fn run_panels(
             let start = t.i * k.div_ceil(2) + k0 / 2 * t.r;
             &prep.pairs[start..start + kb.div_ceil(2) * t.r]
         };
+        let quads = if prep.quads.q.is_empty() {
+            Quads::default()
+        } else {
+            assert_eq!(
+                k0 % INPUT_GROUP,
+                0,
+                "an int8-row block starts inside a group"
+            );
+            let groups = k.div_ceil(INPUT_GROUP);
+            let (g0, gb) = (k0 / INPUT_GROUP, kb.div_ceil(INPUT_GROUP));
+            let per = INPUT_GROUP / 4;
+            let q0 = t.i * groups * per + g0 * per * t.r;
+            let s0 = t.i * groups + g0 * t.r;
+            Quads {
+                q: &prep.quads.q[q0..q0 + gb * per * t.r],
+                scales: &prep.quads.scales[s0..s0 + gb * t.r],
+                sums: &prep.quads.sums[s0..s0 + gb * t.r],
+            }
+        };
         let cols = PANEL.min(n - p * PANEL);
         let tile = Tile {
             rows: t.r,
             a,
             lda: prep.lda,
             pairs,
+            quads,
             kb,
             b,
             next,

@@ -9,9 +9,13 @@
 //! most `2 (k + r + 2) eps M`, and the portable path is within `(k + r + 2) eps M` of the exact
 //! sum. The `s x A^T` down product rounds once more per step, which the `+ 2` covers. The
 //! avx512-bf16 and amx paths also round each input to bf16 (relative error up to 2^-9) for a
-//! bf16 weight, so they get `2^-9 M_base` more.
+//! bf16 weight, so they get `2^-9 M_base` more; from avx512-vnni up an int4 weight multiplies
+//! inputs rounded to int8 in groups of 32 (error up to `amax / 254` per input, `amax` the
+//! group's largest magnitude), so those get `sum amax |w| / 254` more.
 
 use super::*;
+use crate::micro::Inputs;
+use crate::pack::rows::INPUT_GROUP;
 use crate::test_values::values;
 
 const EPS: f64 = f32::EPSILON as f64 / 2.0;
@@ -117,25 +121,39 @@ impl Case {
         y
     }
 
-    /// The exact result for the weight as packed (dequantised), in f64, and the magnitudes
-    /// `M` of its base part and of the whole.
-    fn reference(&self, w: &PackedWeight) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+    /// The exact result for the weight as packed (dequantised), in f64; the magnitudes `M` of
+    /// its base part and of the whole; and `sum_q amax(q) |w[q]|` (`amax(q)` the largest
+    /// magnitude in input q's group of [`INPUT_GROUP`]), which bounds what rounding the inputs
+    /// to int8 in groups changes.
+    fn reference(&self, w: &PackedWeight) -> [Vec<f64>; 4] {
         let (m, k, n) = (self.m, self.k, self.n);
         let wd = w.unpack();
         let mut exact = vec![0f64; m * n];
         let mut base = vec![0f64; m * n];
         let mut whole = vec![0f64; m * n];
+        let mut spread = vec![0f64; m * n];
         for i in 0..m {
+            let row = &self.x[i * k..(i + 1) * k];
+            let amax: Vec<f64> = (0..k)
+                .map(|q| {
+                    let g = q / INPUT_GROUP * INPUT_GROUP;
+                    let group = &row[g..(g + INPUT_GROUP).min(k)];
+                    group.iter().fold(0f64, |a, v| a.max(v.abs() as f64))
+                })
+                .collect();
             for j in 0..n {
                 let (mut s, mut mag) = (self.bias[j] as f64, (self.bias[j] as f64).abs());
+                let mut sp = 0f64;
                 for q in 0..k {
-                    let p = self.x[i * k + q] as f64 * wd[j * k + q] as f64;
+                    let p = row[q] as f64 * wd[j * k + q] as f64;
                     s += p;
                     mag += p.abs();
+                    sp += amax[q] * (wd[j * k + q] as f64).abs();
                 }
                 exact[i * n + j] = s;
                 base[i * n + j] = mag;
                 whole[i * n + j] = mag;
+                spread[i * n + j] = sp;
             }
         }
         for (rows, (a, b, scale)) in self.runs.iter().zip(&self.factors) {
@@ -156,16 +174,19 @@ impl Case {
                 }
             }
         }
-        (exact, base, whole)
+        [exact, base, whole, spread]
     }
 }
 
-/// The extra relative rounding a path applies to each base product (its inputs in bf16).
-fn input_rounding(path: Path, format: WeightFormat) -> f64 {
-    if path.rounds_inputs_to_bf16(format) {
-        2f64.powi(-9)
-    } else {
-        0.0
+/// What rounding its inputs lets a path's base product move: 2^-9 of each product's magnitude
+/// for bf16 inputs; half a step, `amax / 254`, of each input times its weight's magnitude for
+/// int8 groups (with 1% for the division that finds each value's step). `base` and `spread` as
+/// [`Case::reference`] gives them.
+fn input_rounding(path: Path, format: WeightFormat, base: f64, spread: f64) -> f64 {
+    match path.inputs(format) {
+        Inputs::F32 => 0.0,
+        Inputs::Bf16Pairs => 2f64.powi(-9) * base,
+        Inputs::Int8Groups => spread / 254.0 * 1.01,
     }
 }
 
@@ -180,7 +201,7 @@ fn check_case(case: &Case, label: &str) {
     let steps = (case.k + max_rank + 2) as f64;
     for format in formats() {
         let w = PackedWeight::pack_as(&case.w, case.n, case.k, format).unwrap();
-        let (exact, base, whole) = case.reference(&w);
+        let [exact, base, whole, spread] = case.reference(&w);
         let portable = case.run(Path::Portable, &w);
         for (i, (&g, &e)) in portable.iter().zip(&exact).enumerate() {
             let tol = steps * EPS * whole[i] + 1e-30;
@@ -194,8 +215,9 @@ fn check_case(case: &Case, label: &str) {
         for &path in paths.iter().filter(|&&p| p != Path::Portable) {
             let got = case.run(path, &w);
             for (i, (&g, &p)) in got.iter().zip(&portable).enumerate() {
-                let tol =
-                    2.0 * steps * EPS * whole[i] + input_rounding(path, format) * base[i] + 1e-30;
+                let tol = 2.0 * steps * EPS * whole[i]
+                    + input_rounding(path, format, base[i], spread[i])
+                    + 1e-30;
                 assert!(
                     (g as f64 - p as f64).abs() <= tol,
                     "{label} {format} {path} at row {} column {}: {g} vs portable {p} \
@@ -462,15 +484,24 @@ fn every_path_adds_onto_the_output_with_and_without_a_bias_for_every_format() {
                                 let base: f64 = (0..k)
                                     .map(|q| (x[i * k + q] as f64 * wd[j * k + q] as f64).abs())
                                     .sum();
+                                let row = &x[i * k..(i + 1) * k];
+                                let spread: f64 = (0..k)
+                                    .map(|q| {
+                                        let g = q / INPUT_GROUP * INPUT_GROUP;
+                                        let amax = row[g..(g + INPUT_GROUP).min(k)]
+                                            .iter()
+                                            .fold(0f64, |a, v| a.max(v.abs() as f64));
+                                        amax * (wd[j * k + q] as f64).abs()
+                                    })
+                                    .sum();
                                 let added = b.map_or(0.0, |b| b[j].abs() as f64)
                                     + if accumulate {
                                         start[i * n + j].abs() as f64
                                     } else {
                                         0.0
                                     };
-                                let tol = (2.0 * (k + 2) as f64 * EPS
-                                    + input_rounding(path, format))
-                                    * base
+                                let tol = 2.0 * (k + 2) as f64 * EPS * base
+                                    + input_rounding(path, format, base, spread)
                                     + 4.0 * EPS * added
                                     + 1e-30;
                                 let (g, p) = (got[i * n + j], portable[i * n + j]);

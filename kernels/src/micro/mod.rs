@@ -14,6 +14,8 @@ pub(crate) mod avx2;
 pub(crate) mod avx512;
 #[cfg(target_arch = "x86_64")]
 pub(crate) mod avx512bf16;
+#[cfg(target_arch = "x86_64")]
+pub(crate) mod avx512vnni;
 
 use crate::pack::{Block, PANEL, ScaleSlice};
 
@@ -23,8 +25,22 @@ use crate::pack::{Block, PANEL, ScaleSlice};
 pub(crate) struct MicroKernel {
     pub rows: usize,
     pub run: fn(&Tile<'_>, &mut [f32]),
-    /// Whether the kernel reads its rows as bf16 pairs ([`Tile::pairs`]) instead of f32.
-    pub bf16_rows: bool,
+    /// How the kernel reads its rows' inputs.
+    pub inputs: Inputs,
+}
+
+/// How a micro-kernel reads its input rows: as they are, or rounded to what its instructions
+/// multiply (which is where a path differs numerically from the portable one).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Inputs {
+    /// f32, as given.
+    F32,
+    /// Rounded to bf16, in pairs: relative error up to 2^-9 per input.
+    Bf16Pairs,
+    /// Rounded to int8 in groups of 32 inputs along the row, each group with its own scale
+    /// (`amax / 127`): error up to half a step, the group's largest magnitude / 254, per
+    /// input.
+    Int8Groups,
 }
 
 /// One register tile's inputs: `c[i, j] (+)= a[i, :kb] . w[:kb, j] (+ z[i, :] . zb[:, j]) (+
@@ -39,6 +55,9 @@ pub(crate) struct Tile<'a> {
     /// With a kernel that reads bf16 rows: the rows' inputs rounded to bf16 in pairs, one
     /// `u32` per pair and row (`pairs[j * rows + i]` holds inputs `2j` and `2j + 1`).
     pub pairs: &'a [u32],
+    /// With a kernel that reads int8 rows: the rows' inputs rounded to int8 in groups (see
+    /// [`Quads`]); the block starts at a group boundary.
+    pub quads: Quads<'a>,
     pub kb: usize,
     /// The weight block (see [`Block`]): 16 columns, whatever the tile's `cols`.
     pub b: Block<'a>,
@@ -54,6 +73,18 @@ pub(crate) struct Tile<'a> {
     pub cols: usize,
     /// Add onto `c` instead of overwriting it.
     pub acc: bool,
+}
+
+/// A tile's rows rounded to int8 in groups of [`crate::pack::rows::INPUT_GROUP`] inputs (a
+/// last short group padded with zeros): `q[u * rows + i]` holds row `i`'s inputs `4u`,
+/// `4u + 2`, `4u + 1` and `4u + 3`, one signed byte each, lowest byte first (the order an int4
+/// pair of pairs widens to); `scales[g * rows + i]` is group `g`'s scale and `sums[g * rows +
+/// i]` the sum of its values.
+#[derive(Clone, Copy, Default)]
+pub(crate) struct Quads<'a> {
+    pub q: &'a [u32],
+    pub scales: &'a [f32],
+    pub sums: &'a [i32],
 }
 
 impl Tile<'_> {

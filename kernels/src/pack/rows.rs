@@ -35,3 +35,57 @@ pub(crate) fn pack_tile_bf16(r: usize, dst: &mut [u32], x: &[f32], lda: usize, k
         }
     }
 }
+
+/// Inputs per group when a kernel reads its rows in int8 (see [`quantise_tile_int8`]).
+pub const INPUT_GROUP: usize = 32;
+
+/// One group's int8 rounding, the rule the Python reference repeats
+/// (tests/reference/weight_formats.py, `int8_inputs`): `s = amax / 127` (f32), each value
+/// `round_ties_even(x / s)` clamped to [-127, 127], all zero when the group is. Returns the
+/// scale and the values' sum.
+pub fn quantise_group_int8(x: &[f32], q: &mut [i8]) -> (f32, i32) {
+    let amax = x.iter().fold(0f32, |m, v| m.max(v.abs()));
+    if amax == 0.0 || !amax.is_finite() {
+        // A NaN or infinite input makes the product's row non-finite on every path; here the
+        // whole group is zero with a NaN scale, which carries that to the output.
+        q.iter_mut().for_each(|v| *v = 0);
+        return (if amax == 0.0 { 0.0 } else { f32::NAN }, 0);
+    }
+    let s = amax / 127.0;
+    let mut sum = 0;
+    for (d, &v) in q.iter_mut().zip(x) {
+        *d = (v / s).round_ties_even().clamp(-127.0, 127.0) as i8;
+        sum += *d as i32;
+    }
+    (s, sum)
+}
+
+/// The first `r` rows of `x` (`lda` apart, `k` inputs each) rounded to int8 in groups of
+/// [`INPUT_GROUP`], for a kernel that reads them so (the layout of `micro::Quads`): `quads` holds
+/// `k.div_ceil(INPUT_GROUP) * INPUT_GROUP / 4 * r` words, `scales` and `sums`
+/// `k.div_ceil(INPUT_GROUP) * r` values.
+pub(crate) fn quantise_tile_int8(
+    r: usize,
+    quads: &mut [u32],
+    scales: &mut [f32],
+    sums: &mut [i32],
+    x: &[f32],
+    lda: usize,
+    k: usize,
+) {
+    let mut q = [0i8; INPUT_GROUP];
+    let per = INPUT_GROUP / 4;
+    for ii in 0..r {
+        let row = &x[ii * lda..ii * lda + k];
+        for (g, chunk) in row.chunks(INPUT_GROUP).enumerate() {
+            q.fill(0);
+            let (s, sum) = quantise_group_int8(chunk, &mut q[..chunk.len()]);
+            scales[g * r + ii] = s;
+            sums[g * r + ii] = sum;
+            for u in 0..per {
+                let b = |o: usize| q[4 * u + o] as u8 as u32;
+                quads[(g * per + u) * r + ii] = b(0) | b(2) << 8 | b(1) << 16 | b(3) << 24;
+            }
+        }
+    }
+}

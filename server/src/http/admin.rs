@@ -336,7 +336,8 @@ pub async fn unpin(
 pub struct BaseModel {
     /// The weight format (`f32`, `bf16`, `int8`, `int4` and their variants).
     pub weights: String,
-    /// The kernel path the products run on (`portable`, `avx2`, `avx512`, `avx512-bf16`, `amx`).
+    /// The kernel path the products run on (`portable`, `avx2`, `avx512`, `avx512-vnni`,
+    /// `avx512-bf16`, `amx`).
     pub kernels: String,
     /// The library that runs some products, when one does (oneDNN); else null.
     pub library: Option<String>,

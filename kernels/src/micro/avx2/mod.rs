@@ -18,7 +18,7 @@ mod int8;
 
 use std::arch::x86_64::*;
 
-use super::{MicroKernel, Tile};
+use super::{Inputs, MicroKernel, Tile};
 use crate::pack::PANEL;
 
 /// Rows per register tile.
@@ -27,22 +27,22 @@ const ROWS: usize = 6;
 pub(crate) const F32: MicroKernel = MicroKernel {
     rows: ROWS,
     run: f32::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const BF16: MicroKernel = MicroKernel {
     rows: ROWS,
     run: bf16::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const INT8: MicroKernel = MicroKernel {
     rows: ROWS,
     run: int8::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const INT4: MicroKernel = MicroKernel {
     rows: ROWS,
     run: int4::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 
 /// 16 f32 lanes as two AVX2 vectors.

@@ -19,7 +19,7 @@ mod int8;
 
 use std::arch::x86_64::*;
 
-use super::{MicroKernel, Tile};
+use super::{Inputs, MicroKernel, Tile};
 use crate::pack::PANEL;
 
 /// Rows per register tile.
@@ -28,22 +28,22 @@ pub(super) const ROWS: usize = 12;
 pub(crate) const F32: MicroKernel = MicroKernel {
     rows: ROWS,
     run: f32::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const BF16: MicroKernel = MicroKernel {
     rows: ROWS,
     run: bf16::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const INT8: MicroKernel = MicroKernel {
     rows: ROWS,
     run: int8::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 pub(crate) const INT4: MicroKernel = MicroKernel {
     rows: ROWS,
     run: int4::run,
-    bf16_rows: false,
+    inputs: Inputs::F32,
 };
 
 /// A reduced format's values, decoded in registers, read in pairs of inputs (bf16 and int4

@@ -14,13 +14,13 @@
 use std::arch::x86_64::*;
 
 use super::avx512::{ROWS, finish};
-use super::{MicroKernel, Tile, for_rows};
+use super::{Inputs, MicroKernel, Tile, for_rows};
 use crate::pack::{Block, PANEL};
 
 pub(crate) const BF16: MicroKernel = MicroKernel {
     rows: ROWS,
     run,
-    bf16_rows: true,
+    inputs: Inputs::Bf16Pairs,
 };
 
 fn run(t: &Tile<'_>, c: &mut [f32]) {

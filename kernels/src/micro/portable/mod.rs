@@ -6,7 +6,7 @@
 mod f32;
 mod reduced;
 
-use super::MicroKernel;
+use super::{Inputs, MicroKernel};
 use crate::pack::FormatKind;
 
 /// Rows per register tile: 6 rows of 16 partial sums.
@@ -20,6 +20,6 @@ pub(crate) fn kernel(format: FormatKind) -> MicroKernel {
             FormatKind::F32 => f32::run,
             _ => reduced::run,
         },
-        bf16_rows: false,
+        inputs: Inputs::F32,
     }
 }
