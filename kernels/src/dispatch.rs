@@ -21,9 +21,9 @@ pub enum Path {
     /// AVX-512F (f32 tiles of up to 12 rows, weights converted in registers).
     Avx512,
     /// AVX-512F, AVX-512BW, AVX-512-VBMI and AVX-512-VNNI (Ice Lake, Sapphire Rapids and
-    /// Zen 4 have all four; Cascade Lake lacks VBMI and runs `avx512`): int4 weights
+    /// Zen 4 have all four; Cascade Lake lacks VBMI and runs `avx512`): int8 and int4 weights
     /// multiplied by `vpdpbusd` (four byte products per lane and instruction) against each
-    /// row's inputs rounded to int8 in groups of 32 (every other format as on `avx512`).
+    /// row's inputs rounded to int8 in groups of 32 (f32 and bf16 as on `avx512`).
     Avx512Vnni,
     /// `avx512-vnni` plus AVX-512-BF16: bf16 weights multiplied by `vdpbf16ps`, with each row's
     /// inputs rounded to bf16 (every other format as on `avx512`).
@@ -148,7 +148,7 @@ impl Path {
 
     /// How a product with a weight held in `format` reads its input rows on this path: as f32,
     /// rounded to bf16 (bf16 on avx512-bf16 and amx, whose instructions take bf16 on both
-    /// sides) or to int8 in groups (int4 from avx512-vnni up). Read from the micro-kernel
+    /// sides) or to int8 in groups (int8 and int4 from avx512-vnni up). Read from the micro-kernel
     /// table, so tests and tolerances follow what the kernels do.
     pub fn inputs(self, format: crate::WeightFormat) -> Inputs {
         micro_kernel(self, format.kind()).inputs
@@ -236,8 +236,9 @@ pub(crate) fn micro_kernel(path: Path, format: FormatKind) -> MicroKernel {
         }
         (Path::Avx512 | Path::Avx512Vnni, FormatKind::Bf16) => return micro::avx512::BF16,
         (Path::Avx512Bf16 | Path::Amx, FormatKind::Bf16) => return micro::avx512bf16::BF16,
-        (Path::Avx512 | Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::Int8) => {
-            return micro::avx512::INT8;
+        (Path::Avx512, FormatKind::Int8) => return micro::avx512::INT8,
+        (Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::Int8) => {
+            return micro::avx512vnni::INT8;
         }
         (Path::Avx512, FormatKind::Int4) => return micro::avx512::INT4,
         (Path::Avx512Vnni | Path::Avx512Bf16 | Path::Amx, FormatKind::Int4) => {

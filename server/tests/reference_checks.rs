@@ -356,9 +356,9 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
         // takes which rows, whole or edge blocks: about 1e-7 here). Where a product rounds its
         // inputs, such a bit can move a value across a rounding boundary. For bf16 weights on
         // avx512-bf16 and amx (inputs to bf16) that is a change of 2^-9 of the value: 3-6e-4
-        // measured on an AMX Xeon, 2e-3 allowed. For int4 weights from avx512-vnni up (inputs
-        // to int8 groups) it is a whole step, 1/127 of the group's largest, and carries as far
-        // as fixtures/weight-formats.json measures for a 1e-6 jitter before the rounding
+        // measured on an AMX Xeon, 2e-3 allowed. For int8 and int4 weights from avx512-vnni up
+        // (inputs to int8 groups) it is a whole step, 1/127 of the group's largest, and carries
+        // as far as fixtures/weight-formats.json measures for a 1e-6 jitter before the rounding
         // ("inputs-int8-jitter", 2.7-3.2e-3): three times that allowed. Every other format and
         // path keeps 1e-5.
         let batch_bar = match path.inputs(format) {
@@ -395,7 +395,7 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
 /// projection and of the output head), so their logits keep the 1e-3 bar; MiniLM's embeddings
 /// have no such reference and are held to cosine 0.9999 and max abs difference 1e-2 there
 /// (printed). Greedy tokens are compared the same way ("greedy-inputs-bf16"). From the
-/// avx512-vnni path up an int4 weight multiplies inputs rounded to int8 in groups of 32; the
+/// avx512-vnni path up an int8 or int4 weight multiplies inputs rounded to int8 in groups of 32; the
 /// reference rounds them alike ("-inputs-int8", the adapters' low-rank terms unrounded as here),
 /// the decoders keep the 1e-3 bar and their greedy tokens, and MiniLM is held to three times
 /// what a 1e-6 jitter before the rounding moves the reference itself ("inputs-int8-jitter").

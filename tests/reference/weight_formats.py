@@ -36,8 +36,8 @@ import generate as g  # noqa: E402  (shares the fixture writers, module maps and
 
 FORMATS = ["bf16", "int8", "int8-g32", "int4", "int4-zero", "int4-g64-zero-f32"]
 # The formats whose products take their inputs rounded to int8 in groups of 32 on switchyard's
-# avx512-vnni, avx512-bf16 and amx paths (`Path::inputs` in kernels/src/dispatch.rs): int4.
-INT8_INPUT_FORMATS = ["int4", "int4-zero", "int4-g64-zero-f32"]
+# avx512-vnni, avx512-bf16 and amx paths (`Path::inputs` in kernels/src/dispatch.rs): int8 and int4.
+INT8_INPUT_FORMATS = ["int8", "int8-g32", "int4", "int4-zero", "int4-g64-zero-f32"]
 INPUT_GROUP = 32
 
 F32 = np.float32

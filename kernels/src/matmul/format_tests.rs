@@ -9,9 +9,9 @@
 //! most `2 (k + r + 2) eps M`, and the portable path is within `(k + r + 2) eps M` of the exact
 //! sum. The `s x A^T` down product rounds once more per step, which the `+ 2` covers. The
 //! avx512-bf16 and amx paths also round each input to bf16 (relative error up to 2^-9) for a
-//! bf16 weight, so they get `2^-9 M_base` more; from avx512-vnni up an int4 weight multiplies
-//! inputs rounded to int8 in groups of 32 (error up to `amax / 254` per input, `amax` the
-//! group's largest magnitude), so those get `sum amax |w| / 254` more.
+//! bf16 weight, so they get `2^-9 M_base` more; from avx512-vnni up an int8 or int4 weight
+//! multiplies inputs rounded to int8 in groups of 32 (error up to `amax / 254` per input, `amax`
+//! the group's largest magnitude), so those get `sum amax |w| / 254` more.
 
 use super::*;
 use crate::micro::Inputs;
