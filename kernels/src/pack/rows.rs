@@ -44,12 +44,16 @@ pub const INPUT_GROUP: usize = 32;
 /// `round_ties_even(x / s)` clamped to [-127, 127], all zero when the group is. Returns the
 /// scale and the values' sum.
 pub fn quantise_group_int8(x: &[f32], q: &mut [i8]) -> (f32, i32) {
-    let amax = x.iter().fold(0f32, |m, v| m.max(v.abs()));
-    if amax == 0.0 || !amax.is_finite() {
+    if x.iter().any(|v| !v.is_finite()) {
         // A NaN or infinite input makes the product's row non-finite on every path; here the
         // whole group is zero with a NaN scale, which carries that to the output.
         q.iter_mut().for_each(|v| *v = 0);
-        return (if amax == 0.0 { 0.0 } else { f32::NAN }, 0);
+        return (f32::NAN, 0);
+    }
+    let amax = x.iter().fold(0f32, |m, v| m.max(v.abs()));
+    if amax == 0.0 {
+        q.iter_mut().for_each(|v| *v = 0);
+        return (0.0, 0);
     }
     let s = amax / 127.0;
     let mut sum = 0;
@@ -73,6 +77,38 @@ pub(crate) fn quantise_tile_int8(
     lda: usize,
     k: usize,
 ) {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx512bw") {
+        for ii in 0..r {
+            // SAFETY: the CPU has AVX-512BW (and with it AVX-512F and AVX2); the slices hold
+            // the tile's groups (the caller sized them by this function's doc).
+            #[allow(unsafe_code)]
+            unsafe {
+                crate::micro::avx512vnni::rows::quantise_row(
+                    &x[ii * lda..ii * lda + k],
+                    r,
+                    ii,
+                    quads,
+                    scales,
+                    sums,
+                );
+            }
+        }
+        return;
+    }
+    quantise_tile_int8_portable(r, quads, scales, sums, x, lda, k);
+}
+
+/// [`quantise_tile_int8`] in plain Rust: the reference the vector version is held to.
+pub(crate) fn quantise_tile_int8_portable(
+    r: usize,
+    quads: &mut [u32],
+    scales: &mut [f32],
+    sums: &mut [i32],
+    x: &[f32],
+    lda: usize,
+    k: usize,
+) {
     let mut q = [0i8; INPUT_GROUP];
     let per = INPUT_GROUP / 4;
     for ii in 0..r {
@@ -87,5 +123,56 @@ pub(crate) fn quantise_tile_int8(
                 quads[(g * per + u) * r + ii] = b(0) | b(2) << 8 | b(1) << 16 | b(3) << 24;
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::test_values::values;
+
+    #[test]
+    fn the_vector_int8_rounding_of_rows_is_the_portable_one_bit_for_bit() {
+        // Inner sizes with short last groups, a zero group, a non-finite group, values on
+        // rounding ties; three rows, so the quads interleave.
+        if !std::arch::is_x86_feature_detected!("avx512bw") {
+            println!("vector int8 rounding: not run: avx512bw absent");
+            return;
+        }
+        for k in [1usize, 5, 31, 32, 33, 64, 100, 384] {
+            let r = 3;
+            let mut x = values(r * k, k as u32);
+            // Row 1's first group: largest magnitude 127/16, so the step is 1/16, and the rest
+            // on whole and half steps (ties, which round to even).
+            for (i, v) in x[k..k + k.min(32)].iter_mut().enumerate() {
+                *v = if i == 0 {
+                    127.0 / 16.0
+                } else {
+                    (i as f32 - 16.0) / 32.0
+                };
+            }
+            if k >= 64 {
+                x[2 * k + 32..2 * k + 64].fill(0.0);
+                x[40] = f32::INFINITY;
+            }
+            let groups = k.div_ceil(INPUT_GROUP);
+            let run = |vector: bool| {
+                let mut quads = vec![0u32; r * groups * INPUT_GROUP / 4];
+                let mut scales = vec![0f32; r * groups];
+                let mut sums = vec![0i32; r * groups];
+                if vector {
+                    quantise_tile_int8(r, &mut quads, &mut scales, &mut sums, &x, k, k);
+                } else {
+                    quantise_tile_int8_portable(r, &mut quads, &mut scales, &mut sums, &x, k, k);
+                }
+                (
+                    quads,
+                    scales.iter().map(|s| s.to_bits()).collect::<Vec<_>>(),
+                    sums,
+                )
+            };
+            assert_eq!(run(true), run(false), "k = {k}");
+        }
+        println!("vector int8 rounding: ran, equal to the portable rounding");
     }
 }

@@ -16,6 +16,7 @@
 
 mod int4;
 mod int8;
+pub(crate) mod rows;
 
 use std::arch::x86_64::*;
 
