@@ -35,6 +35,21 @@ pub enum Path {
     Amx,
 }
 
+/// Every feature a path needs, in the order the paths add them (see [`Path::features`]).
+const FEATURES: [&str; 11] = [
+    "avx2",
+    "fma",
+    "f16c",
+    "avx512f",
+    "avx512bw",
+    "avx512vbmi",
+    "avx512_vnni",
+    "avx512_bf16",
+    "avx512vl",
+    "amx_bf16",
+    "amx_tile",
+];
+
 /// `SWITCHYARD_KERNELS` named no path, or one this CPU cannot run.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 pub enum PathError {
@@ -78,45 +93,18 @@ impl Path {
         Path::ALL.map(Path::name).join(", ")
     }
 
-    /// The CPU features the path needs, as `/proc/cpuinfo` spells them.
+    /// The CPU features the path needs, as `/proc/cpuinfo` spells them: each path needs what
+    /// the one below it does and more, so each is a prefix of [`FEATURES`].
     pub fn features(self) -> &'static [&'static str] {
-        match self {
-            Path::Portable => &[],
-            Path::Avx2 => &["avx2", "fma", "f16c"],
-            Path::Avx512 => &["avx2", "fma", "f16c", "avx512f"],
-            Path::Avx512Vnni => &[
-                "avx2",
-                "fma",
-                "f16c",
-                "avx512f",
-                "avx512bw",
-                "avx512vbmi",
-                "avx512_vnni",
-            ],
-            Path::Avx512Bf16 => &[
-                "avx2",
-                "fma",
-                "f16c",
-                "avx512f",
-                "avx512bw",
-                "avx512vbmi",
-                "avx512_vnni",
-                "avx512_bf16",
-            ],
-            Path::Amx => &[
-                "avx2",
-                "fma",
-                "f16c",
-                "avx512f",
-                "avx512bw",
-                "avx512vbmi",
-                "avx512_vnni",
-                "avx512vl",
-                "avx512_bf16",
-                "amx_bf16",
-                "amx_tile",
-            ],
-        }
+        let n = match self {
+            Path::Portable => 0,
+            Path::Avx2 => 3,
+            Path::Avx512 => 4,
+            Path::Avx512Vnni => 7,
+            Path::Avx512Bf16 => 8,
+            Path::Amx => FEATURES.len(),
+        };
+        &FEATURES[..n]
     }
 
     /// The first feature the path needs that this CPU lacks; `None` when it can run here.

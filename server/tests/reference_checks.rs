@@ -291,6 +291,7 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
     let s = sentences();
     let refs: Vec<&str> = s.iter().map(String::as_str).collect();
     let path = switchyard_kernels::dispatch::active();
+    let formats_fixture = read_json(&fixtures().join("weight-formats.json"));
     for (name, floor, merged_floor) in FORMAT_FLOORS {
         let format = WeightFormat::parse(name).unwrap();
         let e = embedder_as(name);
@@ -365,8 +366,7 @@ fn minilm_in_each_weight_format_stays_close_to_the_f32_references() {
             Inputs::F32 => 1e-5,
             Inputs::Bf16Pairs => 2e-3,
             Inputs::Int8Groups => {
-                let fx = read_json(&fixtures().join("weight-formats.json"));
-                3.0 * fx["minilm"][name]["inputs-int8-jitter"]["max_abs_difference"]
+                3.0 * formats_fixture["minilm"][name]["inputs-int8-jitter"]["max_abs_difference"]
                     .as_f64()
                     .unwrap() as f32
             }
