@@ -94,7 +94,7 @@ impl Path {
     }
 
     /// The CPU features the path needs, as `/proc/cpuinfo` spells them: each path needs what
-    /// the one below it does and more, so each is a prefix of [`FEATURES`].
+    /// the one below it does and more, so each is a prefix of one ordered list.
     pub fn features(self) -> &'static [&'static str] {
         let n = match self {
             Path::Portable => 0,
