@@ -46,13 +46,28 @@ impl<'a, 'b> Part<'a, 'b> {
     }
 }
 
-/// One register tile's rows: local rows `i..i + r` and the index of their low-rank term in the
-/// part's terms, if they have one.
-#[derive(Debug, Clone, Copy)]
+/// One register tile's rows: local rows `i..i + r`. When one low-rank term covers all of
+/// them, `term` is its index in the part's terms and its steps run in the tile's accumulators;
+/// when the rows are mixed (several terms, or a term and rows with none), `split` is the range
+/// of their [`TermRun`]s in [`Prepared::runs`], each added by a small product of its own once
+/// the tile's base product is stored. Either way the base product reads the weight once for
+/// all the tile's rows.
+#[derive(Debug, Clone)]
 pub(crate) struct TileRows {
     i: usize,
     r: usize,
     term: Option<usize>,
+    split: std::ops::Range<usize>,
+}
+
+/// Local rows `i..i + r`, all in the term at `term` in the part's terms, inside one tile;
+/// `whole` when they are the whole tile.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct TermRun {
+    i: usize,
+    r: usize,
+    term: usize,
+    whole: bool,
 }
 
 impl TileRows {
@@ -68,6 +83,7 @@ impl TileRows {
 #[derive(Default)]
 pub(crate) struct Buffers {
     pub(crate) tiles: Vec<TileRows>,
+    pub(crate) runs: Vec<TermRun>,
     pub(crate) x: Vec<f32>,
     pub(crate) pairs: Vec<u32>,
     pub(crate) quads: Vec<u32>,
@@ -84,6 +100,8 @@ pub(crate) struct Buffers {
 pub(crate) struct Prepared<'p, 'a, 'b> {
     pub(crate) part: &'p Part<'a, 'b>,
     pub(crate) tiles: &'p [TileRows],
+    /// The runs of rows that share a term, tile by tile.
+    pub(crate) runs: &'p [TermRun],
     /// The rows packed tile by tile, inner-major: the tile of rows `i..i + r` at
     /// [`TileRows::packed`], its row `ii`'s input `q` at `start + q * r + ii`; or, with `lda`, the
     /// caller's rows as they are, `lda` apart (a product over few panels, where packing would
@@ -97,7 +115,8 @@ pub(crate) struct Prepared<'p, 'a, 'b> {
     /// tile of rows `i..i + r` from `i * groups * INPUT_GROUP / 4` (quads) and `i * groups`
     /// (scales and sums), `groups` = `ceil(k / INPUT_GROUP)`.
     pub(crate) quads: Quads<'p>,
-    /// `s x A^T` for the tiles with a term, packed the same way: the tile at `i * z_stride`.
+    /// `s x A^T` for each term run, packed the same way as rows: the run at `i * z_stride`,
+    /// row `ii`'s step `q` at `q * r + ii`.
     pub(crate) z: &'p [f32],
     pub(crate) z_stride: usize,
     pub(crate) k: usize,
@@ -147,11 +166,35 @@ impl Buffers {
             down_kernel.rows, run.kernel.rows,
             "a path's kernels share one tile height"
         );
+        // Tiles of the kernel's height whatever the terms, so a batch of rows with many
+        // adapters still reads each weight block once per tile, and the term runs in each.
         self.tiles.clear();
+        self.runs.clear();
         let mut i = 0;
         while i < m {
-            let (r, term) = part.run(i, (m - i).min(run.kernel.rows));
-            self.tiles.push(TileRows { i, r, term });
+            let r = (m - i).min(run.kernel.rows);
+            let first = self.runs.len();
+            let mut j = i;
+            while j < i + r {
+                let (len, term) = part.run(j, i + r - j);
+                if let Some(term) = term {
+                    self.runs.push(TermRun {
+                        i: j,
+                        r: len,
+                        term,
+                        whole: false,
+                    });
+                }
+                j += len;
+            }
+            let whole = self.runs.len() == first + 1 && self.runs[first].r == r;
+            let (term, split) = if whole {
+                self.runs[first].whole = true;
+                (Some(self.runs[first].term), first..first)
+            } else {
+                (None, first..self.runs.len())
+            };
+            self.tiles.push(TileRows { i, r, term, split });
             i += r;
         }
         if run.pack {
@@ -197,12 +240,9 @@ impl Buffers {
         } else {
             (x, Some(lda))
         };
-        let tile_rows = |t: &TileRows| match xlda {
-            None => &xs[t.packed(k)],
-            Some(lda) => &xs[t.i * lda..],
-        };
         // The down products, row-major into `down` (rank padded to whole panels), from the
-        // packed rows through the kernel, then scaled and packed like the rows.
+        // rows through the kernel (a run that is a whole tile reads the tile's packed rows,
+        // one inside a mixed tile the caller's), then scaled and packed like the rows.
         let rank = part.terms.iter().map(|t| t.a.out).max().unwrap_or(0);
         let width = rank.div_ceil(PANEL) * PANEL;
         self.down.clear();
@@ -211,15 +251,23 @@ impl Buffers {
             self.down.resize(m * width, 0.0);
             self.z.resize(m * rank, 0.0);
         }
-        for t in self.tiles.iter().filter(|t| t.term.is_some()) {
-            let term = part.terms[t.term.unwrap()];
+        for t in &self.runs {
+            let term = part.terms[t.term];
             let r = term.a.out;
+            let (a, lda_a) = if run.pack && t.whole {
+                (
+                    &self.x[t.i * (k + ROW_PAD)..t.i * (k + ROW_PAD) + t.r * k],
+                    None,
+                )
+            } else {
+                (&x[t.i * lda..], Some(lda))
+            };
             for p in 0..r.div_ceil(PANEL) {
                 let panel = wide_panel(term.a, p, &mut self.wide);
                 let tile = Tile {
                     rows: t.r,
-                    a: tile_rows(t),
-                    lda: xlda,
+                    a,
+                    lda: lda_a,
                     pairs: &[],
                     quads: Quads::default(),
                     kb: k,
@@ -244,6 +292,7 @@ impl Buffers {
         Prepared {
             part,
             tiles: &self.tiles,
+            runs: &self.runs,
             x: xs,
             lda: xlda,
             pairs: &self.pairs,
@@ -333,6 +382,7 @@ pub(crate) fn run_panels(
 ) {
     let (n, k, m) = (w.out, w.inp, prep.m);
     let (panels, accumulate, kernel) = (run.panels.clone(), run.accumulate, run.kernel);
+    let low_kernel = micro_kernel(run.path, FormatKind::F32);
     assert_eq!(k, prep.k, "rows prepared for another inner dimension");
     if panels.is_empty() {
         return;
@@ -387,17 +437,22 @@ pub(crate) fn run_panels(
                col: usize,
                acc: bool,
                out: &mut [f32]| {
-        let low = t.term.filter(|_| k0 + kb == k).map(|at| {
+        // Term `at`'s steps for rows `i..i + r`: their `s x A^T` and its panel p of `B`.
+        let steps = |at: usize, i: usize, r: usize| {
             let term = prep.part.terms[at];
             let rank = term.b.inp;
-            let z = &prep.z[t.i * prep.z_stride..t.i * prep.z_stride + rank * t.r];
+            let z = &prep.z[i * prep.z_stride..i * prep.z_stride + rank * r];
             let zb = if p != last || wide_b[at].is_empty() {
                 &term.b.f32_values()[p * PANEL * rank..(p + 1) * PANEL * rank]
             } else {
                 &wide_b[at][..]
             };
             (z, zb, rank)
-        });
+        };
+        let low = t
+            .term
+            .filter(|_| k0 + kb == k)
+            .map(|at| steps(at, t.i, t.r));
         let a = match prep.lda {
             None => {
                 let start = t.packed(k).start;
@@ -450,6 +505,29 @@ pub(crate) fn run_panels(
             acc,
         };
         (kernel.run)(&tile, &mut out[t.i * stride + col..]);
+        if k0 + kb < k {
+            return;
+        }
+        // A mixed tile's terms, each a product of `rank` steps onto the stored rows (in cache).
+        for run in &prep.runs[t.split.clone()] {
+            let (z, zb, rank) = steps(run.term, run.i, run.r);
+            let tile = Tile {
+                rows: run.r,
+                a: z,
+                lda: None,
+                pairs: &[],
+                quads: Quads::default(),
+                kb: rank,
+                b: Block::F32(zb),
+                next: None,
+                low: None,
+                bias: None,
+                ldc: stride,
+                cols,
+                acc: true,
+            };
+            (low_kernel.run)(&tile, &mut out[run.i * stride + col..]);
+        }
     };
     if k <= SHORT_K {
         // A short inner dimension (merging a low-rank update, k = r; attention heads): the

@@ -161,10 +161,12 @@ pub struct RowTerm<'a> {
 }
 
 /// [`packed_matmul`] plus low-rank terms on runs of rows, fused: each row block computes its
-/// rows' down products `s x A^T` from the same packed rows the base product reads, while they
-/// are in cache, and each register tile of a term's rows runs the term's `r` extra steps
-/// through `B` in the same accumulators as its base product. A term costs its arithmetic and
-/// no pass of its own over the input or the output. The terms' row ranges must not overlap.
+/// rows' down products `s x A^T` from the same rows the base product reads, while they are in
+/// cache. A register tile whose rows all have one term runs the term's `r` extra steps through
+/// `B` in the same accumulators as its base product; a tile of mixed rows (several adapters in
+/// one batch) runs its base product once for all its rows and then each run of rows' `r`
+/// steps onto the 16 columns it just stored, still in L1. A term costs its arithmetic and no
+/// pass of its own over the input or the output. The terms' row ranges must not overlap.
 /// A `bias [out]` is added to every row as the tiles are stored (no pass of its own either).
 /// The factors are f32 whatever the weight's format.
 #[allow(clippy::too_many_arguments)]
