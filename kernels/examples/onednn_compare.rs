@@ -14,9 +14,11 @@
 //! - `oneDNN`: oneDNN on its own terms: f32 `dnnl_sgemm` on the plain row-major weight; bf16
 //!   the matmul primitive with the weight reordered once into the layout it prefers and input
 //!   rows already in bf16 (ours rounds its f32 rows inside the product); int8
-//!   `dnnl_gemm_s8s8s32`, which also needs the input rows quantised to int8 and gives int32
-//!   sums: not the same arithmetic as ours (int8 weights, f32 rows), shown as what an
-//!   int8-input kernel could reach.
+//!   `dnnl_gemm_s8s8s32`, which takes the input rows already in int8 and gives int32 sums, so
+//!   one scale per input row at most. Ours on the `avx512-vnni` paths and above also rounds
+//!   its rows to int8 (inside the product), but with a scale per group of 32 inputs, which a
+//!   single call of that function cannot express; below those paths ours keeps f32 rows. The
+//!   same integer work, then, but not the same rounding of the inputs.
 //!
 //! Run: `scripts/bench-onednn` (or `cargo run --release -p switchyard-kernels --example
 //! onednn-compare -- [--repeats N] [--only TEXT]`).
@@ -414,7 +416,7 @@ fn main() {
             a,
             Vec::new(),
             b,
-            "dnnl_gemm_s8s8s32 (int8 input rows too: not the same arithmetic)",
+            "dnnl_gemm_s8s8s32 (rows in int8 beforehand, one scale per row)",
         );
         std::hint::black_box((&y, &yi));
     }

@@ -122,6 +122,10 @@ where
             let mut s16 = vec![0u16; if f16 { n_scales } else { 0 }];
             let mut zeros = vec![0u8; if zero_point { n_scales } else { 0 }];
             let each = groups * PANEL;
+            assert!(
+                group.is_multiple_of(2) || groups == 1,
+                "an int4 group starts inside a pair"
+            );
             let parts: Vec<_> = per_panel(&mut q, pairs * PANEL, panels)
                 .into_iter()
                 .zip(per_panel(&mut s32, each, panels))
@@ -161,14 +165,16 @@ where
                             if zero_point {
                                 zp[at] = z;
                             }
-                            for (i, &v) in tmp[..vals.len()].iter().enumerate() {
-                                let qi = g * group + i;
-                                qp[qi / 2 * PANEL + c] |= v << (4 * (qi % 2));
+                            // A group starts a pair (groups are 32 or 64 inputs, or one
+                            // group is the whole row): one byte per pair, stored once.
+                            let first = g * group / 2;
+                            let n = vals.len();
+                            for (i, two) in tmp[..n].chunks_exact(2).enumerate() {
+                                qp[(first + i) * PANEL + c] = two[0] | two[1] << 4;
                             }
-                            if vals.len() % 2 == 1 {
+                            if n % 2 == 1 {
                                 // The unused high half of an odd last pair: the zero point.
-                                let qi = g * group + vals.len();
-                                qp[qi / 2 * PANEL + c] |= z << 4;
+                                qp[(first + n / 2) * PANEL + c] = tmp[n - 1] | z << 4;
                             }
                         }
                     }

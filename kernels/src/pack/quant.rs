@@ -123,6 +123,18 @@ fn rint(x: f32) -> f32 {
     }
 }
 
+/// `rint(x).clamp(lo, hi)` for integer bounds of magnitude below 2^22, computed as
+/// `rint(x.clamp(lo, hi))`: rounding to an integer never decreases and keeps integers, so
+/// clamping to integers first gives the same value, and the clamped value always takes the
+/// short path of [`rint`], which lets the quantisers' loops vectorise without a branch. A NaN
+/// `x` (the packer refuses those first) would give `lo` here.
+#[inline(always)]
+fn rint_clamped(x: f32, lo: f32, hi: f32) -> f32 {
+    const MAGIC: f32 = 12_582_912.0;
+    let c = x.max(lo).min(hi);
+    (c + MAGIC) - MAGIC
+}
+
 /// How a checkpoint stores floating-point values: what a loader converts from.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Stored {
@@ -197,19 +209,19 @@ unsafe fn decode_le_avx2(stored: Stored, bytes: &[u8], out: &mut [f32]) {
 #[allow(unsafe_code)]
 #[target_feature(enable = "avx2,fma")]
 unsafe fn quantise_int8_avx2(w: &[f32], q: &mut [i8]) -> f32 {
-    quantise_int8_body(w, q)
+    quantise_int8_body(w, q, true)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[allow(unsafe_code)]
-#[target_feature(enable = "avx2,fma")]
+#[target_feature(enable = "avx2,fma,f16c")]
 unsafe fn quantise_int4_avx2(
     w: &[f32],
     q: &mut [u8],
     zero_point: bool,
     f16: bool,
 ) -> Option<(f32, u16, u8)> {
-    quantise_int4_body(w, q, zero_point, f16)
+    quantise_int4_body(w, q, zero_point, f16, true)
 }
 
 /// The largest magnitude (the values are finite: the packer refuses others first), with eight
@@ -238,30 +250,121 @@ pub fn quantise_int8(w: &[f32], q: &mut [i8]) -> f32 {
             return quantise_int8_avx2(w, q);
         }
     }
-    quantise_int8_body(w, q)
+    quantise_int8_body(w, q, false)
+}
+
+/// `q[i] = rint_clamped(w[i] / s, lo, hi) + add` as a byte (an int8 value's two's complement),
+/// for the first `w.len()` of `q`: eight at a time with AVX2 when `vector` (the caller runs
+/// with AVX2), else one at a time; the same operations either way, so the same bytes.
+#[inline(always)]
+fn round_to_bytes(w: &[f32], q: &mut [u8], s: f32, (lo, hi): (f32, f32), add: f32, vector: bool) {
+    let q = &mut q[..w.len()];
+    let mut done = 0;
+    #[cfg(target_arch = "x86_64")]
+    if vector {
+        // SAFETY: `vector` is only set by the AVX2 builds; both slices hold `w.len()` values.
+        #[allow(unsafe_code)]
+        unsafe {
+            done = round_to_bytes_avx2(w, q, s, (lo, hi), add);
+        }
+    }
+    let _ = vector;
+    for (d, &v) in q[done..].iter_mut().zip(&w[done..]) {
+        *d = (rint_clamped(v / s, lo, hi) + add) as i32 as u8;
+    }
+}
+
+/// The whole eights of [`round_to_bytes`]; returns how many values it did.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn round_to_bytes_avx2(
+    w: &[f32],
+    q: &mut [u8],
+    s: f32,
+    (lo, hi): (f32, f32),
+    add: f32,
+) -> usize {
+    use std::arch::x86_64::*;
+    let n = w.len().min(q.len()) / 8 * 8;
+    let (vs, vlo, vhi, vadd) = (
+        _mm256_set1_ps(s),
+        _mm256_set1_ps(lo),
+        _mm256_set1_ps(hi),
+        _mm256_set1_ps(add),
+    );
+    let magic = _mm256_set1_ps(12_582_912.0);
+    for i in (0..n).step_by(8) {
+        // SAFETY: values i..i + 8 of both slices exist (i + 8 <= n).
+        unsafe {
+            let x = _mm256_div_ps(_mm256_loadu_ps(w.as_ptr().add(i)), vs);
+            // maxps and minps return their second operand for a NaN, as `f32::max` and
+            // `f32::min` return the number.
+            let c = _mm256_min_ps(_mm256_max_ps(x, vlo), vhi);
+            let r = _mm256_add_ps(_mm256_sub_ps(_mm256_add_ps(c, magic), magic), vadd);
+            // Whole numbers within -127..=127 or 0..=15: exact as 32-bit integers, then
+            // narrowed without saturating anything; each 128-bit half's four bytes low.
+            let v = _mm256_cvttps_epi32(r);
+            let v16 = _mm256_packs_epi32(v, v);
+            let v8 = _mm256_packs_epi16(v16, v16);
+            let lo4 = _mm256_cvtsi256_si32(v8) as u32 as u64;
+            let hi4 = _mm256_extract_epi32::<4>(v8) as u32 as u64;
+            q.as_mut_ptr()
+                .add(i)
+                .cast::<u64>()
+                .write_unaligned(lo4 | hi4 << 32);
+        }
+    }
+    n
 }
 
 #[inline(always)]
-fn quantise_int8_body(w: &[f32], q: &mut [i8]) -> f32 {
+fn quantise_int8_body(w: &[f32], q: &mut [i8], vector: bool) -> f32 {
     let s = amax(w) / 127.0;
     if s == 0.0 {
         q.iter_mut().take(w.len()).for_each(|d| *d = 0);
         return s;
     }
-    for (d, &v) in q.iter_mut().zip(w) {
-        *d = rint(v / s).clamp(-127.0, 127.0) as i8;
-    }
+    let bytes = q.as_mut_ptr().cast::<u8>();
+    // SAFETY: i8 and u8 have one layout; the slice is the same memory, borrowed once.
+    #[allow(unsafe_code)]
+    let bytes = unsafe { std::slice::from_raw_parts_mut(bytes, q.len()) };
+    round_to_bytes(w, bytes, s, (-127.0, 127.0), 0.0, vector);
     s
 }
 
-/// The scale as stored: as it is in f32, or rounded to f16 (`None` when it overflows f16).
-fn stored_scale(s: f32, f16: bool) -> Option<(f32, u16)> {
+/// The scale as stored: as it is in f32, or rounded to f16 (`None` when it overflows f16);
+/// with `vector` (the caller runs with F16C) by the F16C instructions, which round the same
+/// way (to nearest, ties to even, subnormals kept).
+#[inline(always)]
+fn stored_scale(s: f32, f16: bool, vector: bool) -> Option<(f32, u16)> {
     if !f16 {
         return Some((s, 0));
     }
+    #[cfg(target_arch = "x86_64")]
+    if vector {
+        // SAFETY: `vector` is only set by the AVX2 builds, which the path with F16C runs.
+        #[allow(unsafe_code)]
+        let (h, back) = unsafe { f16_round_trip_f16c(s) };
+        return back.is_finite().then_some((back, h));
+    }
+    let _ = vector;
     let h = f16_from_f32(s);
     let back = f16_to_f32(h);
     back.is_finite().then_some((back, h))
+}
+
+/// `s` rounded to f16 (nearest, ties to even) and back, by F16C.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "f16c")]
+unsafe fn f16_round_trip_f16c(s: f32) -> (u16, f32) {
+    use std::arch::x86_64::*;
+    let h = _mm_cvtps_ph::<_MM_FROUND_TO_NEAREST_INT>(_mm_set_ss(s));
+    (
+        _mm_extract_epi16::<0>(h) as u16,
+        _mm_cvtss_f32(_mm_cvtph_ps(h)),
+    )
 }
 
 /// One group of int4 values as unsigned 4-bit numbers (symmetric: `q + 8`): the scale as an
@@ -281,7 +384,7 @@ pub fn quantise_int4(
             return quantise_int4_avx2(w, q, zero_point, f16);
         }
     }
-    quantise_int4_body(w, q, zero_point, f16)
+    quantise_int4_body(w, q, zero_point, f16, false)
 }
 
 #[inline(always)]
@@ -290,29 +393,27 @@ fn quantise_int4_body(
     q: &mut [u8],
     zero_point: bool,
     f16: bool,
+    vector: bool,
 ) -> Option<(f32, u16, u8)> {
     if zero_point {
         let lo = w.iter().fold(0f32, |m, &v| m.min(v));
         let hi = w.iter().fold(0f32, |m, &v| m.max(v));
-        let (s, h) = stored_scale((hi - lo) / 15.0, f16)?;
+        let (s, h) = stored_scale((hi - lo) / 15.0, f16, vector)?;
         if s == 0.0 {
             q.iter_mut().for_each(|d| *d = 0);
             return Some((s, h, 0));
         }
         let z = rint(-lo / s).clamp(0.0, 15.0);
-        for (d, &v) in q.iter_mut().zip(w) {
-            *d = (rint(v / s) + z).clamp(0.0, 15.0) as u8;
-        }
+        // `(rint(v / s) + z)` clamped to 0..=15, with the clamp first (see `rint_clamped`).
+        round_to_bytes(w, q, s, (-z, 15.0 - z), z, vector);
         Some((s, h, z as u8))
     } else {
-        let (s, h) = stored_scale(amax(w) / 7.0, f16)?;
+        let (s, h) = stored_scale(amax(w) / 7.0, f16, vector)?;
         if s == 0.0 {
             q.iter_mut().take(w.len()).for_each(|d| *d = 8);
             return Some((s, h, 8));
         }
-        for (d, &v) in q.iter_mut().zip(w) {
-            *d = (rint(v / s).clamp(-8.0, 7.0) + 8.0) as u8;
-        }
+        round_to_bytes(w, q, s, (-8.0, 7.0), 8.0, vector);
         Some((s, h, 8))
     }
 }
@@ -354,8 +455,83 @@ mod tests {
         assert_eq!(f16_from_f32(2f32.powi(-25)), 0);
     }
 
+    /// Whether this CPU runs the loader's AVX2 builds (F16C with them); says so when not.
+    fn vector_builds_run() -> bool {
+        #[cfg(target_arch = "x86_64")]
+        if avx2() {
+            return true;
+        }
+        eprintln!("this CPU lacks AVX2 or F16C: the vector build was not run, only the baseline");
+        false
+    }
+
     #[test]
-    fn rint_rounds_half_to_even_like_the_library_function() {
+    fn the_vector_scale_rounding_to_f16_is_the_portable_one() {
+        if !vector_builds_run() {
+            return;
+        }
+        let mut x = 0x9e37_79b9u32;
+        let mut checked = 0;
+        for i in 0..400_000u32 {
+            x ^= x << 13;
+            x ^= x >> 17;
+            x ^= x << 5;
+            // Positive scales from below the smallest subnormal half to past the largest
+            // half, and every f16 value and midpoint exactly.
+            let v = match i % 3 {
+                0 => f32::from_bits(0x3000_0000 + x % 0x1900_0000),
+                1 => f16_to_f32((x % 0x7c00) as u16),
+                _ => (f16_to_f32((x % 0x7bff) as u16) + f16_to_f32((x % 0x7bff) as u16 + 1)) / 2.0,
+            };
+            assert_eq!(
+                stored_scale(v, true, true),
+                stored_scale(v, true, false),
+                "{v:e}"
+            );
+            checked += 1;
+        }
+        assert_eq!(checked, 400_000);
+    }
+
+    #[test]
+    fn the_vector_rounding_to_bytes_is_the_portable_one() {
+        if !vector_builds_run() {
+            return;
+        }
+        let mut x = 0x2545_f491u32;
+        let mut next = || {
+            x ^= x << 13;
+            x ^= x >> 17;
+            x ^= x << 5;
+            x
+        };
+        for len in [1, 7, 8, 9, 31, 32, 33, 64] {
+            for _ in 0..500 {
+                // Values around the scale's multiples, halves among them (ties), and some far
+                // past the bounds.
+                let w: Vec<f32> = (0..len)
+                    .map(|_| {
+                        (next() % 81) as f32 * 0.25 - 10.0
+                            + if next() % 5 == 0 { 300.0 } else { 0.0 }
+                    })
+                    .collect();
+                let s = [0.5f32, 1.0, 1.5, 0.37][next() as usize % 4];
+                for (bounds, add) in [
+                    ((-8.0, 7.0), 8.0),
+                    ((-3.0, 12.0), 3.0),
+                    ((-127.0, 127.0), 0.0),
+                ] {
+                    let (mut a, mut b) = (vec![0u8; len], vec![0u8; len]);
+                    round_to_bytes(&w, &mut a, s, bounds, add, true);
+                    round_to_bytes(&w, &mut b, s, bounds, add, false);
+                    assert_eq!(a, b, "{w:?} / {s} in {bounds:?} + {add}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn rint_and_the_clamped_rint_round_half_to_even_like_the_library_function() {
         let mut x = 0x2545_f491u32;
         for i in 0..200_000 {
             x ^= x << 13;
@@ -370,6 +546,12 @@ mod tests {
             };
             if v.is_finite() {
                 assert_eq!(rint(v), v.round_ties_even(), "{v}");
+                // The quantisers' clamped rounding: the same integer as rounding, then
+                // clamping (the int4 symmetric, int4 zero-point z = 3, and int8 bounds).
+                for (lo, hi) in [(-8.0, 7.0), (-3.0, 12.0), (-127.0, 127.0)] {
+                    let want = v.round_ties_even().clamp(lo, hi);
+                    assert_eq!(rint_clamped(v, lo, hi), want, "{v} in {lo}..={hi}");
+                }
             }
         }
     }
