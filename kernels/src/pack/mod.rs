@@ -181,7 +181,7 @@ impl PackedWeight {
             return Ok(Self::pack(w, out, inp));
         }
         if format != WeightFormat::Bf16
-            && let Some(at) = w[..out * inp].iter().position(|v| !v.is_finite())
+            && let Some(at) = build::first_not_finite(&w[..out * inp])
         {
             // Checked here in row-major order, so the first offending value is the one named.
             return Err(QuantError::NotFinite {
