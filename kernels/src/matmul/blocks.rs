@@ -145,9 +145,9 @@ fn wide_panel<'w>(w: &'w PackedWeight, p: usize, wide: &'w mut Vec<f32>) -> &'w 
 
 impl Buffers {
     /// Cuts rows `0..m` of `x` (rows `lda` apart, `k` inputs each) into register tiles of the
-    /// run's kernel at the part's term boundaries, packs them if `run.pack` (and in bf16 pairs
-    /// for a kernel that reads those), and computes each tile's `s x A^T` with the path's f32
-    /// kernel.
+    /// run's kernel's height and each tile into runs of rows that share a low-rank term; packs
+    /// the rows as the kernel reads them (f32 if `run.pack`, or bf16 pairs, or int8 groups);
+    /// and computes each run's `s x A^T` with the path's f32 kernel.
     pub(crate) fn prepare<'p, 'a, 'b>(
         &'p mut self,
         x: &'p [f32],
@@ -197,7 +197,10 @@ impl Buffers {
             self.tiles.push(TileRows { i, r, term, split });
             i += r;
         }
-        if run.pack {
+        // A kernel that reads its rows rounded (bf16 pairs, int8 groups) never reads them as
+        // f32 (the down products then read the caller's rows), so only an f32-row kernel packs.
+        let pack = run.pack && run.kernel.inputs == Inputs::F32;
+        if pack {
             // Every value read is overwritten by the packing (the tiles cover rows 0..m).
             self.x.resize(m * (k + ROW_PAD), 0.0);
             for t in &self.tiles {
@@ -235,7 +238,7 @@ impl Buffers {
                 pack_tile_bf16(t.r, dst, &x[t.i * lda..], lda, k);
             }
         }
-        let (xs, xlda): (&[f32], _) = if run.pack {
+        let (xs, xlda): (&[f32], _) = if pack {
             (&self.x, None)
         } else {
             (x, Some(lda))
@@ -254,7 +257,7 @@ impl Buffers {
         for t in &self.runs {
             let term = part.terms[t.term];
             let r = term.a.out;
-            let (a, lda_a) = if run.pack && t.whole {
+            let (a, lda_a) = if pack && t.whole {
                 (
                     &self.x[t.i * (k + ROW_PAD)..t.i * (k + ROW_PAD) + t.r * k],
                     None,
