@@ -193,6 +193,74 @@ fn fused_low_rank_terms_add_to_their_rows_only_on_every_path() {
 }
 
 #[test]
+fn a_tile_of_rows_on_different_adapters_adds_each_rows_own_term_on_every_path() {
+    // A decode batch: every row on its own adapter (adjacent one-row runs, so every tile is
+    // mixed), then runs of two and three rows with a row of no adapter between, and a tile that
+    // one term covers whole next to mixed ones. Each against plain loops, on every path (f32
+    // weights: no path rounds the rows), one row block split across panels and threads (over
+    // 2^20 multiply-adds, where the machine has two threads or more).
+    let (k, n) = (256, 600);
+    let shapes: [&[std::ops::Range<usize>]; 3] = [
+        &[0..1, 1..2, 2..3, 3..4, 4..5, 5..6, 6..7, 7..8],
+        &[0..2, 3..6, 6..8, 8..9],
+        &[0..12, 12..13, 14..20],
+    ];
+    for runs in shapes {
+        let m = runs.last().map_or(0, |r| r.end) + 1;
+        let x = values(m * k, 71);
+        let w = values(n * k, 72);
+        let factors: Vec<(Vec<f32>, Vec<f32>, usize)> = (0..runs.len())
+            .map(|i| {
+                let r = [16, 8, 4][i % 3];
+                (
+                    values(r * k, 73 + i as u32),
+                    values(n * r, 83 + i as u32),
+                    r,
+                )
+            })
+            .collect();
+        let packed: Vec<(PackedWeight, PackedWeight)> = factors
+            .iter()
+            .map(|(a, b, r)| (PackedWeight::pack(a, *r, k), PackedWeight::pack(b, n, *r)))
+            .collect();
+        let terms: Vec<RowTerm<'_>> = runs
+            .iter()
+            .zip(&packed)
+            .enumerate()
+            .map(|(i, (rows, (a, b)))| RowTerm {
+                rows: rows.clone(),
+                a,
+                b,
+                scale: 0.5 + i as f32 * 0.25,
+            })
+            .collect();
+        let mut want = reference_rows(&x, &w, m, k, n);
+        for (i, (rows, (a, b, r))) in runs.iter().zip(&factors).enumerate() {
+            let z = reference_rows(&x[rows.start * k..rows.end * k], a, rows.len(), k, *r);
+            let delta = reference_rows(&z, b, rows.len(), *r, n);
+            for (ii, row) in rows.clone().enumerate() {
+                for j in 0..n {
+                    want[row * n + j] += (0.5 + i as f32 * 0.25) * delta[ii * n + j];
+                }
+            }
+        }
+        let packed_w = PackedWeight::pack(&w, n, k);
+        for path in paths() {
+            let mut got = vec![f32::NAN; m * n];
+            packed_matmul_on(path, &mut got, &x, m, &packed_w, false, None, &terms);
+            for (i, (g, e)) in got.iter().zip(&want).enumerate() {
+                assert!(
+                    (g - e).abs() < 1e-3 * (1.0 + e.abs()),
+                    "{path}, runs {runs:?}, row {} column {}: {g} vs {e}",
+                    i / n,
+                    i % n
+                );
+            }
+        }
+    }
+}
+
+#[test]
 fn fused_terms_and_bias_match_on_every_kernel_path_and_input_layout() {
     // One row block, prepared and run on each kernel path and layout by hand.
     let (m, k, n, r) = (50, 200, 70, 12);
