@@ -44,8 +44,6 @@ pub(super) struct Int4<'a> {
     group: usize,
     first: __m512i,
     second: __m512i,
-    s: __m512,
-    z: __m512,
 }
 
 impl<'a> Int4<'a> {
@@ -76,8 +74,6 @@ impl<'a> Int4<'a> {
             group,
             first,
             second,
-            s: _mm512_setzero_ps(),
-            z: _mm512_set1_ps(8.0),
         }
     }
 }
@@ -95,31 +91,26 @@ impl QuadDecode for Int4<'_> {
 
     #[target_feature(enable = "avx512f,avx2,fma,f16c")]
     #[inline]
-    unsafe fn group(&mut self, gw: usize) {
+    unsafe fn group(&self, gw: usize) -> (__m512, __m512) {
         // SAFETY: the block holds weight group gw's 16 scales and zero points (the caller's
         // contract).
         unsafe {
-            self.s = match self.scales {
+            let s = match self.scales {
                 ScaleSlice::F32(s) => _mm512_loadu_ps(s.as_ptr().add(gw * PANEL)),
                 ScaleSlice::F16(s) => {
                     _mm512_cvtph_ps(_mm256_loadu_si256(s.as_ptr().add(gw * PANEL).cast()))
                 }
             };
-            if let Some(z) = self.zeros {
-                let z = _mm_loadu_si128(z.as_ptr().add(gw * PANEL).cast());
-                self.z = _mm512_cvtepi32_ps(_mm512_cvtepu8_epi32(z));
-            }
+            // Symmetric weights are stored plus 8.
+            let z = match self.zeros {
+                Some(z) => {
+                    let z = _mm_loadu_si128(z.as_ptr().add(gw * PANEL).cast());
+                    _mm512_cvtepi32_ps(_mm512_cvtepu8_epi32(z))
+                }
+                None => _mm512_set1_ps(8.0),
+            };
+            (s, z)
         }
-    }
-
-    #[inline(always)]
-    fn scales(&self) -> __m512 {
-        self.s
-    }
-
-    #[inline(always)]
-    fn zero(&self) -> __m512 {
-        self.z
     }
 
     #[target_feature(enable = "avx512vbmi,avx512bw,avx512f")]

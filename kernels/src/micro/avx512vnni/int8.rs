@@ -34,9 +34,6 @@ pub(super) struct Int8<'a> {
     scales: &'a [f32],
     group: usize,
     pick: __m512i,
-    s: __m512,
-    /// 128: the offset of the unsigned values.
-    z: __m512,
 }
 
 impl<'a> Int8<'a> {
@@ -53,8 +50,6 @@ impl<'a> Int8<'a> {
             group,
             // SAFETY: 64 bytes, one vector.
             pick: unsafe { _mm512_loadu_si512(PICK.as_ptr().cast()) },
-            s: _mm512_setzero_ps(),
-            z: _mm512_set1_ps(128.0),
         }
     }
 
@@ -82,19 +77,15 @@ impl QuadDecode for Int8<'_> {
 
     #[target_feature(enable = "avx512f")]
     #[inline]
-    unsafe fn group(&mut self, gw: usize) {
-        // SAFETY: the block holds weight group gw's 16 scales (the caller's contract).
-        self.s = unsafe { _mm512_loadu_ps(self.scales.as_ptr().add(gw * PANEL)) };
-    }
-
-    #[inline(always)]
-    fn scales(&self) -> __m512 {
-        self.s
-    }
-
-    #[inline(always)]
-    fn zero(&self) -> __m512 {
-        self.z
+    unsafe fn group(&self, gw: usize) -> (__m512, __m512) {
+        // SAFETY: the block holds weight group gw's 16 scales (the caller's contract). The
+        // offset is 128, the unsigned values' shift.
+        unsafe {
+            (
+                _mm512_loadu_ps(self.scales.as_ptr().add(gw * PANEL)),
+                _mm512_set1_ps(128.0),
+            )
+        }
     }
 
     #[target_feature(enable = "avx512vbmi,avx512bw,avx512f")]

@@ -108,15 +108,11 @@ pub(super) trait QuadDecode {
     fn weight_group(&self) -> usize;
     /// The block's first stored byte.
     fn base(&self) -> *const u8;
-    /// Loads weight group `gw`'s scales (and zero points).
+    /// Weight group `gw`'s 16 scales and 16 offsets `z` (as f32).
     ///
     /// # Safety
     /// The block holds group `gw`; AVX-512F is present.
-    unsafe fn group(&mut self, gw: usize);
-    /// The current group's 16 scales.
-    fn scales(&self) -> __m512;
-    /// The current group's 16 offsets `z`, as f32.
-    fn zero(&self) -> __m512;
+    unsafe fn group(&self, gw: usize) -> (__m512, __m512);
     /// Quads `u` and `u + 1`, both whole in the block.
     ///
     /// # Safety
@@ -139,7 +135,7 @@ pub(super) trait QuadDecode {
 /// reads `t.b`.
 #[target_feature(enable = "avx512vnni,avx512vbmi,avx512bw,avx512f,avx2,fma,f16c")]
 #[inline]
-unsafe fn quad_tile<D: QuadDecode, const R: usize>(t: &Tile<'_>, c: &mut [f32], mut d: D) {
+unsafe fn quad_tile<D: QuadDecode, const R: usize>(t: &Tile<'_>, c: &mut [f32], d: D) {
     // With few rows, each row's sums rotate over several chains (four with up to three rows,
     // two with up to seven), so that one chain's latency does not hold up the next step.
     let sets = if R < 4 {
@@ -172,6 +168,7 @@ unsafe fn quad_tile<D: QuadDecode, const R: usize>(t: &Tile<'_>, c: &mut [f32], 
     let streams = t.next.is_none() && sets > 1 && groups >= 8 && D::QUAD_BYTES >= 4 * PANEL;
     let half = groups.div_ceil(2);
     let mut loaded = usize::MAX;
+    let (mut sw, mut zf) = (_mm512_setzero_ps(), _mm512_setzero_ps());
     for step in 0..groups {
         let g = match (streams, step % 2) {
             (false, _) => step,
@@ -182,7 +179,7 @@ unsafe fn quad_tile<D: QuadDecode, const R: usize>(t: &Tile<'_>, c: &mut [f32], 
         if k0 / group != loaded {
             loaded = k0 / group;
             // SAFETY: the block holds the weight group that input k0 lies in.
-            unsafe { d.group(loaded) };
+            (sw, zf) = unsafe { d.group(loaded) };
         }
         let at = g * QUADS * D::QUAD_BYTES;
         for off in (at..at + QUADS * D::QUAD_BYTES).step_by(64) {
@@ -221,7 +218,6 @@ unsafe fn quad_tile<D: QuadDecode, const R: usize>(t: &Tile<'_>, c: &mut [f32], 
                 u += 1;
             }
         }
-        let (sw, zf) = (d.scales(), d.zero());
         for i in 0..R {
             let sum = match sets {
                 1 => acc[0][i],
