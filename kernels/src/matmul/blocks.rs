@@ -60,14 +60,12 @@ pub(crate) struct TileRows {
     split: std::ops::Range<usize>,
 }
 
-/// Local rows `i..i + r`, all in the term at `term` in the part's terms, inside one tile;
-/// `whole` when they are the whole tile.
+/// Local rows `i..i + r`, all in the term at `term` in the part's terms, inside one tile.
 #[derive(Debug, Clone, Copy)]
 pub(crate) struct TermRun {
     i: usize,
     r: usize,
     term: usize,
-    whole: bool,
 }
 
 impl TileRows {
@@ -178,18 +176,12 @@ impl Buffers {
             while j < i + r {
                 let (len, term) = part.run(j, i + r - j);
                 if let Some(term) = term {
-                    self.runs.push(TermRun {
-                        i: j,
-                        r: len,
-                        term,
-                        whole: false,
-                    });
+                    self.runs.push(TermRun { i: j, r: len, term });
                 }
                 j += len;
             }
             let whole = self.runs.len() == first + 1 && self.runs[first].r == r;
             let (term, split) = if whole {
-                self.runs[first].whole = true;
                 (Some(self.runs[first].term), first..first)
             } else {
                 (None, first..self.runs.len())
@@ -244,8 +236,8 @@ impl Buffers {
             (x, Some(lda))
         };
         // The down products, row-major into `down` (rank padded to whole panels), from the
-        // rows through the kernel (a run that is a whole tile reads the tile's packed rows,
-        // one inside a mixed tile the caller's), then scaled and packed like the rows.
+        // caller's rows through the kernel (a panel or two: packing would not pay), then
+        // scaled and packed like the rows.
         let rank = part.terms.iter().map(|t| t.a.out).max().unwrap_or(0);
         let width = rank.div_ceil(PANEL) * PANEL;
         self.down.clear();
@@ -257,20 +249,12 @@ impl Buffers {
         for t in &self.runs {
             let term = part.terms[t.term];
             let r = term.a.out;
-            let (a, lda_a) = if pack && t.whole {
-                (
-                    &self.x[t.i * (k + ROW_PAD)..t.i * (k + ROW_PAD) + t.r * k],
-                    None,
-                )
-            } else {
-                (&x[t.i * lda..], Some(lda))
-            };
             for p in 0..r.div_ceil(PANEL) {
                 let panel = wide_panel(term.a, p, &mut self.wide);
                 let tile = Tile {
                     rows: t.r,
-                    a,
-                    lda: lda_a,
+                    a: &x[t.i * lda..],
+                    lda: Some(lda),
                     pairs: &[],
                     quads: Quads::default(),
                     kb: k,

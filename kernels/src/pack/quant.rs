@@ -107,6 +107,10 @@ pub fn f16_to_f32(h: u16) -> f32 {
     f32::from_bits(bits)
 }
 
+/// 1.5 * 2^23: added to and taken off a value below 2^22 in magnitude, it rounds the value to
+/// an integer, ties to even (see [`rint`]).
+const RINT_MAGIC: f32 = 12_582_912.0;
+
 /// Rounds to the nearest integer, ties to even: `f32::round_ties_even` (numpy's `rint`), written
 /// so that it compiles to two additions on any x86-64 (the baseline target has no rounding
 /// instruction, and the library call costs more than the rest of the quantisation). Adding
@@ -115,9 +119,8 @@ pub fn f16_to_f32(h: u16) -> f32 {
 /// met by the quantisers, whose quotients are at most 127) take the library call.
 #[inline(always)]
 fn rint(x: f32) -> f32 {
-    const MAGIC: f32 = 12_582_912.0;
     if x.abs() < 4_194_304.0 {
-        (x + MAGIC) - MAGIC
+        (x + RINT_MAGIC) - RINT_MAGIC
     } else {
         x.round_ties_even()
     }
@@ -130,9 +133,8 @@ fn rint(x: f32) -> f32 {
 /// `x` (the packer refuses those first) would give `lo` here.
 #[inline(always)]
 fn rint_clamped(x: f32, lo: f32, hi: f32) -> f32 {
-    const MAGIC: f32 = 12_582_912.0;
     let c = x.max(lo).min(hi);
-    (c + MAGIC) - MAGIC
+    (c + RINT_MAGIC) - RINT_MAGIC
 }
 
 /// How a checkpoint stores floating-point values: what a loader converts from.
@@ -293,7 +295,7 @@ unsafe fn round_to_bytes_avx2(
         _mm256_set1_ps(hi),
         _mm256_set1_ps(add),
     );
-    let magic = _mm256_set1_ps(12_582_912.0);
+    let magic = _mm256_set1_ps(RINT_MAGIC);
     for i in (0..n).step_by(8) {
         // SAFETY: values i..i + 8 of both slices exist (i + 8 <= n).
         unsafe {
@@ -471,7 +473,6 @@ mod tests {
             return;
         }
         let mut x = 0x9e37_79b9u32;
-        let mut checked = 0;
         for i in 0..400_000u32 {
             x ^= x << 13;
             x ^= x >> 17;
@@ -488,9 +489,7 @@ mod tests {
                 stored_scale(v, true, false),
                 "{v:e}"
             );
-            checked += 1;
         }
-        assert_eq!(checked, 400_000);
     }
 
     #[test]
