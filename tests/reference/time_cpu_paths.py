@@ -94,7 +94,7 @@ def main() -> None:
         encode()  # warm-up
         addmm()
         enc = [encode() for _ in range(args.rounds)]
-        mm = [addmm() for _ in range(max(args.rounds, 5) * 4)]
+        mm = [addmm() for _ in range(max(args.rounds, 5) * 20)]
         # A bf16 copy after the f32 timings (the copy is not timed).
         bert_bf16 = copy.deepcopy(bert).to(torch.bfloat16)
         encode(bert_bf16)  # warm-up
