@@ -5,9 +5,12 @@
 //! The packed bf16 panel is already in the layout the instruction reads for its second operand
 //! (each 64-byte row of a weight tile holds the pairs of two inputs for 16 columns, see
 //! [`crate::pack`]), so a weight tile is 16 pair rows of a panel, read in place. The input rows
-//! are rounded to bf16 once per call, row-major, padded with zeros to whole tiles; each task
-//! then computes blocks of 32 rows by 2 panels in four sum tiles (2 input tiles and 2 weight
-//! tiles per 32 inputs) and adds the bias and what the output held as it stores them. A
+//! are rounded to bf16 row-major, padded with zeros to whole tiles: by each task for its own
+//! block of 32 rows, just before it uses them, when the work is split by blocks of rows (5-10%
+//! off a bf16 MiniLM batch against rounding every row up front, which wrote and read the rows
+//! through L2 once more), or once per call otherwise. Each task computes blocks of 32 rows by 2
+//! panels in four sum tiles (2 input tiles and 2 weight tiles per 32 inputs) and adds the bias
+//! and what the output held as it stores them. A
 //! product's low-rank terms stay f32: each term's down product `s x A^T` is computed first, on
 //! the AVX-512 path, and each block adds its rows' `z B^T` for its two panels right after
 //! storing them, while they are in cache.
@@ -327,6 +330,8 @@ unsafe impl Send for Out {}
 unsafe impl Sync for Out {}
 
 thread_local! {
+    /// One block's rows in bf16, for a task that rounds its own block.
+    static BLOCK_ROWS: std::cell::RefCell<Vec<u16>> = const { std::cell::RefCell::new(Vec::new()) };
     /// The rows in bf16 and the terms' down products, reused from call to call.
     static SCRATCH: std::cell::RefCell<(Vec<u16>, Vec<f32>)> =
         const { std::cell::RefCell::new((Vec::new(), Vec::new())) };
@@ -360,8 +365,15 @@ pub(crate) fn matmul(
     let panels = n.div_ceil(PANEL);
     let pairs = panels.div_ceil(2);
     let (mut abuf, mut down) = SCRATCH.with_borrow_mut(std::mem::take);
-    abuf.resize(blocks * BLOCK * ld, 0);
-    rows_to_bf16(&mut abuf, ld, x, m, k);
+    let threads = rayon_threads();
+    // Split by blocks of rows (each task one block, every panel): each task rounds its own 32
+    // rows to bf16 just before it multiplies them, while they fit in L1. Otherwise (few rows,
+    // split by panels, or one thread) every row is rounded once up front, here.
+    let by_blocks = threads > 1 && m * n * k >= (1 << 20) && blocks >= 2 * threads;
+    if !by_blocks {
+        abuf.resize(blocks * BLOCK * ld, 0);
+        rows_to_bf16(&mut abuf, ld, x, m, k);
+    }
     // Each panel's tiles; the last step's weights copied into zeros when the panel's pair
     // rows do not fill it (the tile would otherwise read the next panel, or past the end).
     let full = k.div_ceil(2) / 16;
@@ -406,7 +418,6 @@ pub(crate) fn matmul(
         terms.iter().zip(slices.iter_mut()).for_each(down_product);
     }
     let out = Out(y.as_mut_ptr());
-    let a = &abuf[..];
     // Each term's down products, read-only from here on.
     let zs: Vec<&[f32]> = slices.into_iter().map(|z| &*z).collect();
     // The low-rank terms' up products for rows r0..r0 + rows and panels p0..=p1, added to y.
@@ -430,7 +441,12 @@ pub(crate) fn matmul(
     };
     // One block of 32 rows by the panel pair `pp`: computed, then stored with the bias and
     // what the output held.
-    let base = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
+    // `a0`: the block's 32 rows in bf16, `ld` apart.
+    let base = |rb: usize,
+                pp: usize,
+                a0: *const u16,
+                c: &mut [f32; BLOCK * 2 * PANEL],
+                tail: &mut [u32; 512]| {
         let p0 = 2 * pp;
         let p1 = (p0 + 1).min(panels - 1);
         let has_tail = full < steps;
@@ -439,7 +455,6 @@ pub(crate) fn matmul(
             tail_of(p1, &mut tail[16 * PANEL..]);
         }
         let rows = BLOCK.min(m - rb * BLOCK);
-        let a0 = a.as_ptr().wrapping_add(rb * BLOCK * ld);
         let tail = has_tail.then_some(&*tail);
         // A whole block (32 rows, two full panels) goes straight into y, starting from the
         // bias (a tile row read 16 times: stride 0) or from what y holds; any other block goes
@@ -501,8 +516,12 @@ pub(crate) fn matmul(
             }
         }
     };
-    let one = |rb: usize, pp: usize, c: &mut [f32; BLOCK * 2 * PANEL], tail: &mut [u32; 512]| {
-        base(rb, pp, c, tail);
+    let one = |rb: usize,
+               pp: usize,
+               a0: *const u16,
+               c: &mut [f32; BLOCK * 2 * PANEL],
+               tail: &mut [u32; 512]| {
+        base(rb, pp, a0, c, tail);
         if !terms.is_empty() {
             let rows = BLOCK.min(m - rb * BLOCK);
             add_terms(rb * BLOCK, rows, 2 * pp, (2 * pp + 1).min(panels - 1));
@@ -514,20 +533,34 @@ pub(crate) fn matmul(
         // SAFETY: the caller's contract (tiles granted); the configuration is per thread.
         unsafe { configure() };
         for rb in range_rb {
+            let a0 = abuf.as_ptr().wrapping_add(rb * BLOCK * ld);
             for pp in range_pp.clone() {
-                one(rb, pp, &mut c, &mut tail);
+                one(rb, pp, a0, &mut c, &mut tail);
             }
         }
         // SAFETY: as above.
         unsafe { release() };
     };
-    let threads = rayon_threads();
-    if threads <= 1 || m * n * k < (1 << 20) {
+    if by_blocks {
+        (0..blocks).into_par_iter().for_each(|rb| {
+            BLOCK_ROWS.with_borrow_mut(|rows| {
+                rows.resize(BLOCK * ld, 0);
+                let (r0, r1) = (rb * BLOCK, ((rb + 1) * BLOCK).min(m));
+                rows_to_bf16(rows, ld, &x[r0 * k..r1 * k], r1 - r0, k);
+                let mut c = [0f32; BLOCK * 2 * PANEL];
+                let mut tail = [0u32; 512];
+                // SAFETY: the caller's contract (tiles granted); the configuration is per
+                // thread.
+                unsafe { configure() };
+                for pp in 0..pairs {
+                    one(rb, pp, rows.as_ptr(), &mut c, &mut tail);
+                }
+                // SAFETY: as above.
+                unsafe { release() };
+            })
+        });
+    } else if threads <= 1 || m * n * k < (1 << 20) {
         task(0..blocks, 0..pairs);
-    } else if blocks >= 2 * threads {
-        (0..blocks)
-            .into_par_iter()
-            .for_each(|rb| task(rb..rb + 1, 0..pairs));
     } else {
         let per = pairs.div_ceil(threads * 4).max(1);
         (0..pairs.div_ceil(per)).into_par_iter().for_each(|b| {
