@@ -1,10 +1,13 @@
 //! The vector pieces around the projection kernel, on plain slices: dot and axpy (the decoder's
 //! attention), softmax rows, the exact GELU, and the residual add with its layer norm. Each has a
 //! portable body and an AVX2+FMA one (the layer norm and the GELU also an AVX-512F one), chosen
-//! by [`crate::dispatch`].
+//! by [`crate::dispatch`]. `attend.rs`: one encoder attention head.
 
+mod attend;
 #[cfg(test)]
 mod tests;
+
+pub use attend::{AttendScratch, HeadBias, attend_head};
 
 use crate::dispatch::active;
 

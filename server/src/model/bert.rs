@@ -12,8 +12,7 @@ use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
-    PackedWeight, add_layer_norm_in_place, gelu_erf_in_place, packed_matmul_strided,
-    softmax_rows_in_place,
+    AttendScratch, HeadBias, PackedWeight, add_layer_norm_in_place, attend_head, gelu_erf_in_place,
 };
 
 use crate::model::checkpoint::Weights;
@@ -363,11 +362,10 @@ struct ScoreBias<'a> {
 }
 
 /// Multi-head self-attention over `q`, `k`, `v` `[b * t, h]` (heads side by side in each row),
-/// giving the context `[b * t, h]` in the same layout. Per sequence and head: that head's keys
-/// and (transposed) values are packed for the projection kernel, the scores `Q K^T` run through
-/// it straight from the strided query columns, then the scale, key bias and softmax (a
-/// vectorised exp) in place on the score rows, then `P V` through the kernel again, written
-/// straight into that head's columns of the output. Sequences run in parallel, one task each.
+/// giving the context `[b * t, h]` in the same layout. Each sequence and head goes to
+/// [`attend_head`] (scores, scale, bias and softmax, then the probabilities times the values),
+/// which reads the head's columns in place and writes its columns of the output. Sequences run
+/// in parallel, one task each.
 #[allow(clippy::too_many_arguments)]
 fn attention(
     q: &[f32],
@@ -386,36 +384,28 @@ fn attention(
     // Every value is overwritten: each head writes its columns of every row.
     ctx.resize(b * t * h, 0.0);
     let one = |s: usize, out: &mut [f32]| {
-        let mut scores = vec![0f32; t * t];
-        let mut keys = PackedWeight::empty();
-        let mut values = PackedWeight::empty();
-        let key_bias = &bias.keys[s * t..(s + 1) * t];
-        // With a position bias, each query row has its own bias row: that bias plus the keys'.
-        let mut row_bias = vec![0f32; if bias.positions.is_some() { t * t } else { 0 }];
+        let mut scratch = AttendScratch::default();
+        let keys = &bias.keys[s * t..(s + 1) * t];
         let base = s * t * h;
         for hd in 0..heads {
             let off = base + hd * dh;
-            // Keys as a [t, dh] weight, values transposed as a [dh, t] weight.
-            keys.repack_strided(&k[off..], t, dh, h, 1);
-            values.repack_strided(&v[off..], dh, t, 1, h);
-            packed_matmul_strided(&mut scores, t, &q[off..], h, t, &keys, false);
-            match bias.positions {
-                None => softmax_rows_in_place(&mut scores, t, scale, key_bias),
-                Some(positions) => {
-                    let head = &positions[hd * t * t..(hd + 1) * t * t];
-                    for ((r, p), row) in row_bias
-                        .chunks_mut(t)
-                        .zip(head.chunks(t))
-                        .zip(scores.chunks_mut(t))
-                    {
-                        r.iter_mut()
-                            .zip(p.iter().zip(key_bias))
-                            .for_each(|(r, (p, k))| *r = p + k);
-                        softmax_rows_in_place(row, t, scale, r);
-                    }
-                }
-            }
-            packed_matmul_strided(&mut out[hd * dh..], h, &scores, t, t, &values, false);
+            let head_bias = HeadBias {
+                keys,
+                positions: bias.positions.map(|p| &p[hd * t * t..(hd + 1) * t * t]),
+            };
+            attend_head(
+                &q[off..],
+                &k[off..],
+                &v[off..],
+                h,
+                t,
+                dh,
+                scale,
+                head_bias,
+                &mut out[hd * dh..],
+                h,
+                &mut scratch,
+            );
         }
     };
     if b * heads * t * t * dh < 1 << 18 {
