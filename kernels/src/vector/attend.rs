@@ -207,13 +207,9 @@ mod avx512 {
         // The keys transposed, `[dh, tp]`, zeros past `t` so that every score vector is whole.
         let tp = t.div_ceil(16) * 16;
         let kt = &mut scratch.keys_t;
-        kt.clear();
         kt.resize(dh * tp, 0.0);
-        for j in 0..t {
-            for d in 0..dh {
-                kt[d * tp + j] = k[j * ld + d];
-            }
-        }
+        // SAFETY: `k` holds t rows of dh, ld apart (the caller's contract); `kt` dh x tp.
+        unsafe { transpose_keys(k, ld, t, dh, kt, tp) };
         scratch.scores.clear();
         scratch.scores.resize(ROWS * tp, 0.0);
         let mut i0 = 0;
@@ -264,6 +260,41 @@ mod avx512 {
                 }
             }
             i0 += r;
+        }
+    }
+
+    /// `kt[d * tp + j] = k[j * ld + d]` for j < t and d < dh, and zeros in columns t..tp: one
+    /// vector of 16 keys per feature, gathered (a scalar copy took a third of the head's time).
+    ///
+    /// # Safety
+    /// AVX-512F present; `k` holds t rows of dh (ld apart), `kt` dh x tp, tp = t rounded up to
+    /// 16, ld * 15 within `i32`.
+    #[target_feature(enable = "avx512f")]
+    unsafe fn transpose_keys(k: &[f32], ld: usize, t: usize, dh: usize, kt: &mut [f32], tp: usize) {
+        let stride = i32::try_from(ld).expect("attention rows too far apart");
+        let lanes = _mm512_mullo_epi32(
+            _mm512_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 14, 15),
+            _mm512_set1_epi32(stride),
+        );
+        let (k, kt) = (k.as_ptr(), kt.as_mut_ptr());
+        let mut j0 = 0;
+        while j0 < tp {
+            let n = (t - j0).min(16);
+            let mask: __mmask16 = if n == 16 { !0 } else { (1u16 << n) - 1 };
+            for d in 0..dh {
+                // SAFETY: the lanes read are keys j0..j0 + n < t of feature d < dh; the store
+                // is columns j0..j0 + 16 <= tp of row d.
+                unsafe {
+                    let col = _mm512_mask_i32gather_ps::<4>(
+                        _mm512_setzero_ps(),
+                        mask,
+                        lanes,
+                        k.add(j0 * ld + d).cast(),
+                    );
+                    _mm512_storeu_ps(kt.add(d * tp + j0), col);
+                }
+            }
+            j0 += 16;
         }
     }
 

@@ -185,10 +185,13 @@ fn softmax_portable(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) 
 fn softmax_dispatch(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
     #[cfg(target_arch = "x86_64")]
     {
-        // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
         #[allow(unsafe_code)]
-        unsafe {
-            softmax_avx2(scores, width, scale, bias)
+        if use_avx512() {
+            // SAFETY: the active path has AVX-512F, so this CPU does.
+            unsafe { softmax_avx512(scores, width, scale, bias) }
+        } else {
+            // SAFETY: only reached when `use_avx2` saw AVX2 and FMA on this CPU.
+            unsafe { softmax_avx2(scores, width, scale, bias) }
         }
     }
     #[cfg(not(target_arch = "x86_64"))]
@@ -283,6 +286,91 @@ unsafe fn softmax_avx2(scores: &mut [f32], width: usize, scale: f32, bias: &[f32
         }
         let inv = 1.0 / sum;
         row[vec_end..].iter_mut().for_each(|v| *v *= inv);
+    }
+}
+
+/// The softmax rows sixteen lanes at a time, the same steps as [`softmax_avx2`] (and
+/// [`exp_fast`]); a row's last values go through a masked vector. The sums and the maximum
+/// reduce sixteen lanes instead of eight, so a row's sum may differ from the AVX2 one in its
+/// last bit. On a bf16 MiniLM batch the AVX2 softmax took 4.6% of the time.
+#[cfg(target_arch = "x86_64")]
+#[allow(unsafe_code)]
+#[target_feature(enable = "avx512f")]
+unsafe fn softmax_avx512(scores: &mut [f32], width: usize, scale: f32, bias: &[f32]) {
+    use std::arch::x86_64::*;
+    assert!(bias.len() >= width, "bias shorter than a row");
+    let exp16 = |x: __m512| -> __m512 {
+        let x = _mm512_min_ps(
+            _mm512_max_ps(x, _mm512_set1_ps(-87.0)),
+            _mm512_set1_ps(88.0),
+        );
+        // Rounded toward minus infinity, exceptions suppressed: floor.
+        let n = _mm512_roundscale_ps::<0x09>(_mm512_fmadd_ps(
+            x,
+            _mm512_set1_ps(std::f32::consts::LOG2_E),
+            _mm512_set1_ps(0.5),
+        ));
+        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(0.693_145_75), x);
+        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(1.428_606_8e-6), r);
+        let mut p = _mm512_set1_ps(1.0 / 720.0);
+        for c in [1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0] {
+            p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(c));
+        }
+        let bits = _mm512_slli_epi32::<23>(_mm512_add_epi32(
+            _mm512_cvtps_epi32(n),
+            _mm512_set1_epi32(127),
+        ));
+        _mm512_mul_ps(p, _mm512_castsi512_ps(bits))
+    };
+    let sc = _mm512_set1_ps(scale);
+    for row in scores.chunks_mut(width.max(1)) {
+        // A short last row (scores not a whole number of rows) is handled like any other.
+        let len = row.len();
+        let (pr, pb) = (row.as_mut_ptr(), bias.as_ptr());
+        let mask = |j: usize| -> __mmask16 {
+            let left = len - j;
+            if left >= 16 { !0 } else { (1u16 << left) - 1 }
+        };
+        let mut vmax = _mm512_set1_ps(f32::NEG_INFINITY);
+        let mut j = 0;
+        while j < len {
+            let m = mask(j);
+            // SAFETY: the lanes of `m` are values j.. < len <= width <= bias.len().
+            unsafe {
+                let v = _mm512_fmadd_ps(
+                    _mm512_maskz_loadu_ps(m, pr.add(j)),
+                    sc,
+                    _mm512_maskz_loadu_ps(m, pb.add(j)),
+                );
+                _mm512_mask_storeu_ps(pr.add(j), m, v);
+                vmax = _mm512_mask_max_ps(vmax, m, vmax, v);
+            }
+            j += 16;
+        }
+        let vm = _mm512_set1_ps(_mm512_reduce_max_ps(vmax));
+        let mut vsum = _mm512_setzero_ps();
+        let mut j = 0;
+        while j < len {
+            let m = mask(j);
+            // SAFETY: as above.
+            unsafe {
+                let e = exp16(_mm512_sub_ps(_mm512_maskz_loadu_ps(m, pr.add(j)), vm));
+                _mm512_mask_storeu_ps(pr.add(j), m, e);
+                vsum = _mm512_mask_add_ps(vsum, m, vsum, e);
+            }
+            j += 16;
+        }
+        let inv = _mm512_set1_ps(1.0 / _mm512_reduce_add_ps(vsum));
+        let mut j = 0;
+        while j < len {
+            let m = mask(j);
+            // SAFETY: as above.
+            unsafe {
+                let v = _mm512_maskz_loadu_ps(m, pr.add(j));
+                _mm512_mask_storeu_ps(pr.add(j), m, _mm512_mul_ps(v, inv));
+            }
+            j += 16;
+        }
     }
 }
 
