@@ -278,35 +278,75 @@ unsafe fn convert16s(dst: &mut [u16], src: &[f32]) {
     }
 }
 
-/// `dst[c] += z . b[:, c]` for the `dst.len()` columns of a panel of `B` (`b[q * width + c]`,
-/// `width = dst.len()`).
+/// `y[i, c] += z_i . b[:, c]` for `rows` rows (`ldy` apart from `y`) and the `width <= 16`
+/// columns of one panel of `B` (`b[q * width + c]`), each row's `r` down-product values `z_i`
+/// in `z`: one masked 16-wide fused multiply-add per value, four rows at a time sharing each
+/// panel row. One call covers a term's rows of a block (it was one call per row and panel, with
+/// one chain of additions: 5% of a bf16 MiniLM batch with eight mixed adapters, whose cost over
+/// base went from 1.11-1.19x to 1.05-1.08x in alternating scratch runs).
 ///
 /// # Safety
-/// The CPU has AVX-512F.
+/// The CPU has AVX-512F; `y` points at `rows` rows of `width` writable values, `ldy` apart,
+/// that nothing else touches meanwhile; `z` holds `rows * r` values and `b` `r * width`.
 #[target_feature(enable = "avx512f")]
-unsafe fn add_up_product(dst: &mut [f32], z: &[f32], b: &[f32]) {
-    let width = dst.len();
-    if let Ok(dst) = <&mut [f32; PANEL]>::try_from(&mut *dst) {
-        // A whole panel: one 16-wide multiply-add per step.
-        let mut acc = [0f32; PANEL];
-        for (&zq, bq) in z.iter().zip(b.chunks_exact(PANEL)) {
-            let bq: &[f32; PANEL] = bq.try_into().unwrap();
-            for c in 0..PANEL {
-                acc[c] += zq * bq[c];
+unsafe fn add_up_rows(
+    y: *mut f32,
+    ldy: usize,
+    rows: usize,
+    z: &[f32],
+    r: usize,
+    b: &[f32],
+    width: usize,
+) {
+    assert!(
+        width <= PANEL && z.len() >= rows * r && b.len() >= r * width,
+        "up product shapes disagree"
+    );
+    let mask: __mmask16 = if width >= 16 { !0 } else { (1u16 << width) - 1 };
+    /// Rows i0..i0 + R: R independent sums, each panel row loaded once for all of them.
+    ///
+    /// # Safety
+    /// As [`add_up_rows`], with i0 + R <= rows.
+    #[allow(clippy::too_many_arguments)]
+    #[target_feature(enable = "avx512f")]
+    unsafe fn group<const R: usize>(
+        y: *mut f32,
+        ldy: usize,
+        i0: usize,
+        z: *const f32,
+        r: usize,
+        b: *const f32,
+        width: usize,
+        mask: __mmask16,
+    ) {
+        // SAFETY: rows i0..i0 + R of `y` and `z`, and b's r rows (the caller's contract);
+        // masked lanes are not touched.
+        unsafe {
+            let mut acc = [_mm512_setzero_ps(); R];
+            for q in 0..r {
+                let bq = _mm512_maskz_loadu_ps(mask, b.add(q * width));
+                for (ii, a) in acc.iter_mut().enumerate() {
+                    *a = _mm512_fmadd_ps(_mm512_set1_ps(*z.add((i0 + ii) * r + q)), bq, *a);
+                }
+            }
+            for (ii, a) in acc.iter().enumerate() {
+                let d = y.add((i0 + ii) * ldy);
+                _mm512_mask_storeu_ps(d, mask, _mm512_add_ps(_mm512_maskz_loadu_ps(mask, d), *a));
             }
         }
-        for c in 0..PANEL {
-            dst[c] += acc[c];
-        }
-        return;
     }
-    let mut acc = [0f32; PANEL];
-    for (q, &zq) in z.iter().enumerate() {
-        for (a, &bv) in acc[..width].iter_mut().zip(&b[q * width..(q + 1) * width]) {
-            *a += zq * bv;
-        }
+    let (zp, bp) = (z.as_ptr(), b.as_ptr());
+    let mut i = 0;
+    while i + 4 <= rows {
+        // SAFETY: rows i..i + 4 <= rows: the caller's contract and the assertion above.
+        unsafe { group::<4>(y, ldy, i, zp, r, bp, width, mask) };
+        i += 4;
     }
-    dst.iter_mut().zip(&acc).for_each(|(d, a)| *d += a);
+    while i < rows {
+        // SAFETY: row i < rows, as above.
+        unsafe { group::<1>(y, ldy, i, zp, r, bp, width, mask) };
+        i += 1;
+    }
 }
 
 /// The output, shared by the tasks: each writes its own rows and columns.
@@ -314,6 +354,11 @@ unsafe fn add_up_product(dst: &mut [f32], z: &[f32], b: &[f32]) {
 struct Out(*mut f32);
 
 impl Out {
+    /// Element `at` of the output, for a task to write its own elements through.
+    fn at(&self, at: usize) -> *mut f32 {
+        self.0.wrapping_add(at)
+    }
+
     /// `len` elements from element `at`.
     ///
     /// # Safety
@@ -424,18 +469,18 @@ pub(crate) fn matmul(
     let add_terms = |r0: usize, rows: usize, p0: usize, p1: usize| {
         for (t, zt) in terms.iter().zip(&zs) {
             let (lo, hi) = (t.rows.start.max(r0), t.rows.end.min(r0 + rows));
+            if lo >= hi {
+                continue;
+            }
             let r = t.a.out;
-            for i in lo..hi {
-                let z = &zt[(i - t.rows.start) * r..][..r];
-                for p in p0..=p1 {
-                    let (j0, width) = (p * PANEL, t.b.panel_width(p));
-                    let b = &t.b.f32_values()[p * PANEL * r..][..width * r];
-                    // SAFETY: row i < m and columns j0..j0 + width <= n are this task's own
-                    // elements of y (see Out).
-                    let dst = unsafe { out.slice(i * n + j0, width) };
-                    // SAFETY: Path::Amx (checked above) includes AVX-512F.
-                    unsafe { add_up_product(dst, z, b) };
-                }
+            let z = &zt[(lo - t.rows.start) * r..(hi - t.rows.start) * r];
+            for p in p0..=p1 {
+                let (j0, width) = (p * PANEL, t.b.panel_width(p));
+                let b = &t.b.f32_values()[p * PANEL * r..][..width * r];
+                // SAFETY: Path::Amx (checked above) includes AVX-512F; rows lo..hi < m and
+                // columns j0..j0 + width <= n are this task's own elements of y (see Out),
+                // n apart.
+                unsafe { add_up_rows(out.at(lo * n + j0), n, hi - lo, z, r, b, width) };
             }
         }
     };
