@@ -247,13 +247,16 @@ fn every_path_agrees_with_the_portable_path_for_every_format_at_decode_sizes() {
 fn every_path_agrees_with_the_portable_path_for_every_format_with_many_rows() {
     // Full tiles and remainders of both tile heights (6 and 12), one row block and several
     // (72 rows each; the pool splits them), a short inner dimension, odd sizes everywhere;
-    // the last with terms enough work that the amx path splits their down products too.
+    // the last two with terms enough work that the amx path splits their down products too;
+    // the last a long input (1000: 32 steps of the tile unit, the last short) on the amx path's
+    // split by blocks of rows, with a short last block and an odd last panel.
     for &(m, k, n) in &[
         (13, 64, 48),
         (37, 33, 17),
         (150, 384, 37),
         (300, 200, 64),
         (300, 384, 64),
+        (130, 1000, 70),
     ] {
         check_case(&Case::new(m, k, n, false, 3), &format!("{m}x{k}x{n}"));
         check_case(
