@@ -20,13 +20,22 @@ use super::{softmax_rows_in_place, use_avx512};
 use crate::PackedWeight;
 use crate::matmul::packed_matmul_strided;
 
-/// What is added to a head's scaled scores before the softmax.
+/// One attention head over a sequence of `t` tokens: rows `i` of `q`, `k` and `v` start at
+/// `i * ld` and hold the head's `dh` features.
 #[derive(Clone, Copy)]
-pub struct HeadBias<'a> {
+pub struct Head<'a> {
+    pub q: &'a [f32],
+    pub k: &'a [f32],
+    pub v: &'a [f32],
+    pub ld: usize,
+    pub t: usize,
+    pub dh: usize,
+    /// The scores' scale (`1 / sqrt(dh)` in the common attention).
+    pub scale: f32,
     /// `[t]`: added to every query's score of that key (0 for a real token, a large negative
     /// number for padding).
-    pub keys: &'a [f32],
-    /// `[t, t]`: a bias per query and key (a relative position bias), added to `keys`.
+    pub key_bias: &'a [f32],
+    /// `[t, t]`: a bias per query and key (a relative position bias), added to `key_bias`.
     pub positions: Option<&'a [f32]>,
 }
 
@@ -40,59 +49,27 @@ pub struct AttendScratch {
     values: Option<PackedWeight>,
 }
 
-/// One attention head over a sequence of `t` tokens: rows `i` of `q`, `k` and `v` start at
-/// `i * ld` and hold the head's `dh` features; row `i` of the result goes to `out[i * ldo..]`
-/// (`dh` values), nothing else of `out` is written.
+/// `softmax(scale Q K^T + bias) V` for one head: row `i` of the result goes to
+/// `out[i * ldo..]` (`dh` values); nothing else of `out` is written.
 ///
 /// # Panics
 /// When a slice is shorter than its rows need, or a bias does not cover `t` keys.
-#[allow(clippy::too_many_arguments)]
-pub fn attend_head(
-    q: &[f32],
-    k: &[f32],
-    v: &[f32],
-    ld: usize,
-    t: usize,
-    dh: usize,
-    scale: f32,
-    bias: HeadBias<'_>,
-    out: &mut [f32],
-    ldo: usize,
-    scratch: &mut AttendScratch,
-) {
-    attend_head_with(
-        use_avx512(),
-        q,
-        k,
-        v,
-        ld,
-        t,
-        dh,
-        scale,
-        bias,
-        out,
-        ldo,
-        scratch,
-    );
+pub fn attend_head(head: &Head<'_>, out: &mut [f32], ldo: usize, scratch: &mut AttendScratch) {
+    attend_head_with(use_avx512(), head, out, ldo, scratch);
 }
 
 /// [`attend_head`] on the AVX-512 loops (`vector`, which the CPU must have) or through the
 /// projection kernel.
-#[allow(clippy::too_many_arguments)]
 pub(crate) fn attend_head_with(
     vector: bool,
-    q: &[f32],
-    k: &[f32],
-    v: &[f32],
-    ld: usize,
-    t: usize,
-    dh: usize,
-    scale: f32,
-    bias: HeadBias<'_>,
+    head: &Head<'_>,
     out: &mut [f32],
     ldo: usize,
     scratch: &mut AttendScratch,
 ) {
+    let Head {
+        q, k, v, ld, t, dh, ..
+    } = *head;
     if t == 0 || dh == 0 {
         return;
     }
@@ -106,7 +83,7 @@ pub(crate) fn attend_head_with(
         "attention output does not fit its slice"
     );
     assert!(
-        bias.keys.len() >= t && bias.positions.is_none_or(|p| p.len() >= t * t),
+        head.key_bias.len() >= t && head.positions.is_none_or(|p| p.len() >= t * t),
         "attention bias shorter than the sequence"
     );
     #[cfg(target_arch = "x86_64")]
@@ -119,48 +96,38 @@ pub(crate) fn attend_head_with(
         // `dh`, `ld` and `ldo` just above.
         #[allow(unsafe_code)]
         unsafe {
-            avx512::head(q, k, v, ld, t, dh, scale, bias, out, ldo, scratch)
+            avx512::head(head, out, ldo, scratch)
         };
         return;
     }
     let _ = vector;
-    through_kernel(q, k, v, ld, t, dh, scale, bias, out, ldo, scratch);
+    through_kernel(head, out, ldo, scratch);
 }
 
 /// The scores of query row `i` (`row`, `t` values) become probabilities: scale, bias, softmax.
-fn softmax_row(row: &mut [f32], i: usize, scale: f32, bias: HeadBias<'_>, row_bias: &mut Vec<f32>) {
+fn softmax_row(row: &mut [f32], i: usize, head: &Head<'_>, row_bias: &mut Vec<f32>) {
     let t = row.len();
-    match bias.positions {
-        None => softmax_rows_in_place(row, t, scale, &bias.keys[..t]),
+    match head.positions {
+        None => softmax_rows_in_place(row, t, head.scale, &head.key_bias[..t]),
         Some(p) => {
             row_bias.clear();
             row_bias.extend(
                 p[i * t..(i + 1) * t]
                     .iter()
-                    .zip(bias.keys)
+                    .zip(head.key_bias)
                     .map(|(p, k)| p + k),
             );
-            softmax_rows_in_place(row, t, scale, row_bias);
+            softmax_rows_in_place(row, t, head.scale, row_bias);
         }
     }
 }
 
 /// The head through the projection kernel: keys as a `[t, dh]` weight, values transposed as a
 /// `[dh, t]` weight.
-#[allow(clippy::too_many_arguments)]
-fn through_kernel(
-    q: &[f32],
-    k: &[f32],
-    v: &[f32],
-    ld: usize,
-    t: usize,
-    dh: usize,
-    scale: f32,
-    bias: HeadBias<'_>,
-    out: &mut [f32],
-    ldo: usize,
-    scratch: &mut AttendScratch,
-) {
+fn through_kernel(head: &Head<'_>, out: &mut [f32], ldo: usize, scratch: &mut AttendScratch) {
+    let Head {
+        q, k, v, ld, t, dh, ..
+    } = *head;
     let keys = scratch.keys.get_or_insert_with(PackedWeight::empty);
     keys.repack_strided(k, t, dh, ld, 1);
     let values = scratch.values.get_or_insert_with(PackedWeight::empty);
@@ -168,7 +135,7 @@ fn through_kernel(
     scratch.scores.resize(t * t, 0.0);
     packed_matmul_strided(&mut scratch.scores, t, q, ld, t, keys, false);
     for (i, row) in scratch.scores.chunks_mut(t).enumerate() {
-        softmax_row(row, i, scale, bias, &mut scratch.row_bias);
+        softmax_row(row, i, head, &mut scratch.row_bias);
     }
     packed_matmul_strided(out, ldo, &scratch.scores, t, t, values, false);
 }
@@ -176,12 +143,13 @@ fn through_kernel(
 #[cfg(target_arch = "x86_64")]
 #[allow(unsafe_code)]
 mod avx512 {
-    use super::{AttendScratch, HeadBias, softmax_row};
+    use super::{AttendScratch, Head, softmax_row};
     use std::arch::x86_64::*;
 
     /// Query rows per block.
     const ROWS: usize = 4;
-    /// Vectors of 16 keys (scores) or 16 features (context) per row of a register block.
+    /// Vectors of 16 columns (keys for the scores, features for the context) per row of a
+    /// register block.
     const WIDE: usize = 4;
 
     /// See [`super::attend_head`].
@@ -189,21 +157,16 @@ mod avx512 {
     /// # Safety
     /// AVX-512F present; the slices hold the rows `t`, `dh`, `ld` and `ldo` describe and the
     /// bias covers `t` keys (checked by the caller).
-    #[allow(clippy::too_many_arguments)]
     #[target_feature(enable = "avx512f")]
     pub(super) unsafe fn head(
-        q: &[f32],
-        k: &[f32],
-        v: &[f32],
-        ld: usize,
-        t: usize,
-        dh: usize,
-        scale: f32,
-        bias: HeadBias<'_>,
+        head: &Head<'_>,
         out: &mut [f32],
         ldo: usize,
         scratch: &mut AttendScratch,
     ) {
+        let Head {
+            q, k, v, ld, t, dh, ..
+        } = *head;
         // The keys transposed, `[dh, tp]`, zeros past `t` so that every score vector is whole.
         let tp = t.div_ceil(16) * 16;
         let kt = &mut scratch.keys_t;
@@ -216,46 +179,34 @@ mod avx512 {
         while i0 < t {
             let r = ROWS.min(t - i0);
             let qb = &q[i0 * ld..];
-            // SAFETY (both calls): the query rows i0..i0 + r exist (`q` holds t rows, `ld`
-            // apart), `kt` holds dh x tp, `scores` ROWS x tp.
+            // Scores: query rows times the transposed keys, all tp columns.
+            // SAFETY (both calls): the query rows i0..i0 + r exist (`q` holds t rows of dh,
+            // `ld` apart), `kt` holds dh x tp, `scores` ROWS x tp.
             unsafe {
                 if r == ROWS {
-                    scores::<ROWS>(qb, ld, kt, tp, dh, &mut scratch.scores);
+                    product::<ROWS>(qb, ld, kt, tp, dh, tp, &mut scratch.scores, tp);
                 } else {
                     for ii in 0..r {
-                        scores::<1>(
-                            &qb[ii * ld..],
-                            ld,
-                            kt,
-                            tp,
-                            dh,
-                            &mut scratch.scores[ii * tp..],
-                        );
+                        let row = &mut scratch.scores[ii * tp..];
+                        product::<1>(&qb[ii * ld..], ld, kt, tp, dh, tp, row, tp);
                     }
                 }
             }
             for ii in 0..r {
                 let row = &mut scratch.scores[ii * tp..ii * tp + t];
-                softmax_row(row, i0 + ii, scale, bias, &mut scratch.row_bias);
+                softmax_row(row, i0 + ii, head, &mut scratch.row_bias);
             }
             let ob = &mut out[i0 * ldo..];
+            // Context: probabilities times the value rows, dh columns.
             // SAFETY (both calls): the probabilities hold r rows of t (tp apart), `v` t rows of
             // dh (ld apart), `out` rows i0..i0 + r of dh (ldo apart).
             unsafe {
                 if r == ROWS {
-                    context::<ROWS>(&scratch.scores, tp, v, ld, t, dh, ob, ldo);
+                    product::<ROWS>(&scratch.scores, tp, v, ld, t, dh, ob, ldo);
                 } else {
                     for ii in 0..r {
-                        context::<1>(
-                            &scratch.scores[ii * tp..],
-                            tp,
-                            v,
-                            ld,
-                            t,
-                            dh,
-                            &mut ob[ii * ldo..],
-                            ldo,
-                        );
+                        let p = &scratch.scores[ii * tp..];
+                        product::<1>(p, tp, v, ld, t, dh, &mut ob[ii * ldo..], ldo);
                     }
                 }
             }
@@ -298,150 +249,84 @@ mod avx512 {
         }
     }
 
-    /// Scores of `R` query rows (`q`, `ld` apart) against every key: `s[ii * tp + j] = q_ii .
-    /// kt[:, j]` for j in 0..tp.
+    /// `c[ii, 0..width] = sum_kk a[ii * lda + kk] b[kk * ldb..][..width]` for `R` rows: the
+    /// scores (a: query rows, b: the transposed keys) and the context (a: probabilities, b:
+    /// value rows) alike, 64 columns at a time, the last vector masked to `width`.
     ///
     /// # Safety
-    /// AVX-512F present; `q` holds R rows of dh, `kt` dh x tp, `s` R x tp, tp a multiple of 16.
-    #[target_feature(enable = "avx512f")]
-    unsafe fn scores<const R: usize>(
-        q: &[f32],
-        ld: usize,
-        kt: &[f32],
-        tp: usize,
-        dh: usize,
-        s: &mut [f32],
-    ) {
-        let mut j0 = 0;
-        while j0 < tp {
-            // SAFETY: the caller's contract, with j0 + 16 * n <= tp.
-            unsafe {
-                match ((tp - j0) / 16).min(WIDE) {
-                    4 => scores_tile::<R, 4>(q, ld, kt, tp, dh, s, j0),
-                    3 => scores_tile::<R, 3>(q, ld, kt, tp, dh, s, j0),
-                    2 => scores_tile::<R, 2>(q, ld, kt, tp, dh, s, j0),
-                    _ => scores_tile::<R, 1>(q, ld, kt, tp, dh, s, j0),
-                }
-            }
-            j0 += 16 * ((tp - j0) / 16).min(WIDE);
-        }
-    }
-
-    /// [`scores`] for keys j0..j0 + 16 N.
-    ///
-    /// # Safety
-    /// As [`scores`], with j0 + 16 N <= tp.
+    /// AVX-512F present; `a` holds R rows of `kdim` (lda apart), `b` kdim rows of `width`
+    /// (ldb apart), `c` R rows of `width` (ldc apart).
     #[allow(clippy::too_many_arguments)]
     #[target_feature(enable = "avx512f")]
-    unsafe fn scores_tile<const R: usize, const N: usize>(
-        q: &[f32],
-        ld: usize,
-        kt: &[f32],
-        tp: usize,
-        dh: usize,
-        s: &mut [f32],
-        j0: usize,
+    unsafe fn product<const R: usize>(
+        a: &[f32],
+        lda: usize,
+        b: &[f32],
+        ldb: usize,
+        kdim: usize,
+        width: usize,
+        c: &mut [f32],
+        ldc: usize,
     ) {
-        let (q, kt, s) = (q.as_ptr(), kt.as_ptr(), s.as_mut_ptr());
-        // SAFETY (whole block): the offsets stay within the rows the caller's contract names.
-        unsafe {
-            let mut acc = [[_mm512_setzero_ps(); N]; R];
-            for d in 0..dh {
-                let row = kt.add(d * tp + j0);
-                let mut kv = [_mm512_setzero_ps(); N];
-                for (n, x) in kv.iter_mut().enumerate() {
-                    *x = _mm512_loadu_ps(row.add(16 * n));
-                }
-                for (ii, a) in acc.iter_mut().enumerate() {
-                    let qv = _mm512_set1_ps(*q.add(ii * ld + d));
-                    for (lane, &x) in a.iter_mut().zip(&kv) {
-                        *lane = _mm512_fmadd_ps(qv, x, *lane);
-                    }
-                }
-            }
-            for (ii, a) in acc.iter().enumerate() {
-                for (n, lane) in a.iter().enumerate() {
-                    _mm512_storeu_ps(s.add(ii * tp + j0 + 16 * n), *lane);
-                }
-            }
-        }
-    }
-
-    /// Context of `R` rows: `out[ii * ldo + c] = sum_j p[ii * tp + j] v[j * ld + c]` for c in
-    /// 0..dh.
-    ///
-    /// # Safety
-    /// AVX-512F present; `p` holds R rows of t (tp apart), `v` t rows of dh (ld apart), `out`
-    /// R rows of dh (ldo apart).
-    #[allow(clippy::too_many_arguments)]
-    #[target_feature(enable = "avx512f")]
-    unsafe fn context<const R: usize>(
-        p: &[f32],
-        tp: usize,
-        v: &[f32],
-        ld: usize,
-        t: usize,
-        dh: usize,
-        out: &mut [f32],
-        ldo: usize,
-    ) {
+        let (a, b, c) = (a.as_ptr(), b.as_ptr(), c.as_mut_ptr());
         let mut c0 = 0;
-        while c0 < dh {
-            let vectors = (dh - c0).div_ceil(16).min(WIDE);
-            let left = (dh - c0 - 16 * (vectors - 1)).min(16);
-            let last: __mmask16 = if left == 16 { !0 } else { (1u16 << left) - 1 };
-            // SAFETY: the caller's contract; the last vector is masked to the row's end.
+        while c0 < width {
+            let vectors = (width - c0).div_ceil(16).min(WIDE);
+            let left = width - c0 - 16 * (vectors - 1);
+            let last: __mmask16 = if left >= 16 { !0 } else { (1u16 << left) - 1 };
+            let (b, c) = (b.wrapping_add(c0), c.wrapping_add(c0));
+            // SAFETY: the caller's contract; columns c0.. of the block, the last vector
+            // masked to the row's end.
             unsafe {
                 match vectors {
-                    4 => context_tile::<R, 4>(p, tp, v, ld, t, out, ldo, c0, last),
-                    3 => context_tile::<R, 3>(p, tp, v, ld, t, out, ldo, c0, last),
-                    2 => context_tile::<R, 2>(p, tp, v, ld, t, out, ldo, c0, last),
-                    _ => context_tile::<R, 1>(p, tp, v, ld, t, out, ldo, c0, last),
+                    4 => tile::<R, 4>(a, lda, b, ldb, kdim, c, ldc, last),
+                    3 => tile::<R, 3>(a, lda, b, ldb, kdim, c, ldc, last),
+                    2 => tile::<R, 2>(a, lda, b, ldb, kdim, c, ldc, last),
+                    _ => tile::<R, 1>(a, lda, b, ldb, kdim, c, ldc, last),
                 }
             }
             c0 += 16 * vectors;
         }
     }
 
-    /// [`context`] for features c0..c0 + 16 N, the last vector masked by `last`.
+    /// [`product`] for `16 N` columns in registers (`R N` sums), the last vector masked by
+    /// `last`.
     ///
     /// # Safety
-    /// As [`context`], with features c0..c0 + 16 (N - 1) + popcount(last) within dh.
+    /// As [`product`], for the columns of this tile; masked lanes are not read or written.
     #[allow(clippy::too_many_arguments)]
     #[target_feature(enable = "avx512f")]
-    unsafe fn context_tile<const R: usize, const N: usize>(
-        p: &[f32],
-        tp: usize,
-        v: &[f32],
-        ld: usize,
-        t: usize,
-        out: &mut [f32],
-        ldo: usize,
-        c0: usize,
+    unsafe fn tile<const R: usize, const N: usize>(
+        a: *const f32,
+        lda: usize,
+        b: *const f32,
+        ldb: usize,
+        kdim: usize,
+        c: *mut f32,
+        ldc: usize,
         last: __mmask16,
     ) {
-        let (p, v, out) = (p.as_ptr(), v.as_ptr(), out.as_mut_ptr());
         let mask = |n: usize| if n + 1 == N { last } else { !0 };
         // SAFETY (whole block): the offsets stay within the rows the caller's contract names;
         // masked lanes are not read or written.
         unsafe {
             let mut acc = [[_mm512_setzero_ps(); N]; R];
-            for j in 0..t {
-                let row = v.add(j * ld + c0);
-                let mut vv = [_mm512_setzero_ps(); N];
-                for (n, x) in vv.iter_mut().enumerate() {
+            for kk in 0..kdim {
+                let row = b.add(kk * ldb);
+                let mut bv = [_mm512_setzero_ps(); N];
+                for (n, x) in bv.iter_mut().enumerate() {
                     *x = _mm512_maskz_loadu_ps(mask(n), row.add(16 * n));
                 }
-                for (ii, a) in acc.iter_mut().enumerate() {
-                    let pv = _mm512_set1_ps(*p.add(ii * tp + j));
-                    for (lane, &x) in a.iter_mut().zip(&vv) {
-                        *lane = _mm512_fmadd_ps(pv, x, *lane);
+                for (ii, sums) in acc.iter_mut().enumerate() {
+                    let av = _mm512_set1_ps(*a.add(ii * lda + kk));
+                    for (lane, &x) in sums.iter_mut().zip(&bv) {
+                        *lane = _mm512_fmadd_ps(av, x, *lane);
                     }
                 }
             }
-            for (ii, a) in acc.iter().enumerate() {
-                for (n, lane) in a.iter().enumerate() {
-                    _mm512_mask_storeu_ps(out.add(ii * ldo + c0 + 16 * n), mask(n), *lane);
+            for (ii, sums) in acc.iter().enumerate() {
+                for (n, lane) in sums.iter().enumerate() {
+                    _mm512_mask_storeu_ps(c.add(ii * ldc + 16 * n), mask(n), *lane);
                 }
             }
         }
@@ -454,17 +339,18 @@ mod tests {
     use crate::test_values::values;
 
     /// The head in f64 with an exact exp: the definition.
-    #[allow(clippy::too_many_arguments)]
-    fn reference(
-        q: &[f32],
-        k: &[f32],
-        v: &[f32],
-        ld: usize,
-        t: usize,
-        dh: usize,
-        scale: f32,
-        bias: HeadBias<'_>,
-    ) -> Vec<f64> {
+    fn reference(head: &Head<'_>) -> Vec<f64> {
+        let Head {
+            q,
+            k,
+            v,
+            ld,
+            t,
+            dh,
+            scale,
+            key_bias,
+            positions,
+        } = *head;
         let mut out = vec![0f64; t * dh];
         for i in 0..t {
             let s: Vec<f64> = (0..t)
@@ -472,8 +358,7 @@ mod tests {
                     let dot: f64 = (0..dh)
                         .map(|d| q[i * ld + d] as f64 * k[j * ld + d] as f64)
                         .sum();
-                    let b =
-                        bias.keys[j] as f64 + bias.positions.map_or(0.0, |p| p[i * t + j] as f64);
+                    let b = key_bias[j] as f64 + positions.map_or(0.0, |p| p[i * t + j] as f64);
                     dot * scale as f64 + b
                 })
                 .collect();
@@ -525,28 +410,22 @@ mod tests {
                         keys[t - 1] = -10000.0; // a padded key
                     }
                     let positions: Vec<f32> = values(t * t, 5);
-                    let bias = HeadBias {
-                        keys: &keys,
+                    let off = dh;
+                    let head = Head {
+                        q: &q[off..],
+                        k: &k[off..],
+                        v: &v[off..],
+                        ld,
+                        t,
+                        dh,
+                        scale: 0.3,
+                        key_bias: &keys,
                         positions: positioned.then_some(&positions[..]),
                     };
                     let ldo = ld + 3;
                     let mut out = vec![f32::NAN; t * ldo];
-                    let off = dh;
-                    attend_head_with(
-                        vector,
-                        &q[off..],
-                        &k[off..],
-                        &v[off..],
-                        ld,
-                        t,
-                        dh,
-                        0.3,
-                        bias,
-                        &mut out[off..],
-                        ldo,
-                        &mut scratch,
-                    );
-                    let want = reference(&q[off..], &k[off..], &v[off..], ld, t, dh, 0.3, bias);
+                    attend_head_with(vector, &head, &mut out[off..], ldo, &mut scratch);
+                    let want = reference(&head);
                     for i in 0..t {
                         for c in 0..ldo {
                             let got = out[i * ldo + c];

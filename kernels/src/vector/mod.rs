@@ -7,7 +7,7 @@ mod attend;
 #[cfg(test)]
 mod tests;
 
-pub use attend::{AttendScratch, HeadBias, attend_head};
+pub use attend::{AttendScratch, Head, attend_head};
 
 use crate::dispatch::active;
 
@@ -133,24 +133,27 @@ pub fn erf_fast(x: f32) -> f32 {
     x * p / q
 }
 
+/// `ln 2` split in two for [`exp_fast`] and the vector softmax bodies: `LN2_HI` has its low
+/// bits clear, so `n LN2_HI` is exact for the `n` that occur.
+const LN2_HI: f32 = 0.693_145_75;
+const LN2_LO: f32 = 1.428_606_8e-6;
+/// The Taylor coefficients of `e^r` after the leading `1/720`, highest degree first, as
+/// [`exp_fast`] applies them; the vector softmax bodies apply the same list.
+const EXP_TAYLOR: [f32; 6] = [1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0];
+
 /// `e^x` in f32 without a call or a branch, so a loop over a slice vectorises: `x = n ln 2 + r`
 /// with `|r| <= ln 2 / 2`, a degree-6 Taylor polynomial for `e^r` (truncation below 2e-7
 /// relative), and `2^n` built in the exponent bits. Inputs are clamped to [-87, 88], where f32
 /// stays normal, so a masked score of -1e9 gives 1.6e-38 rather than 0.
 #[inline]
 pub fn exp_fast(x: f32) -> f32 {
-    const LN2_HI: f32 = 0.693_145_75;
-    const LN2_LO: f32 = 1.428_606_8e-6;
     let x = x.clamp(-87.0, 88.0);
     let n = (x * std::f32::consts::LOG2_E + 0.5).floor();
     let r = (-n).mul_add(LN2_LO, (-n).mul_add(LN2_HI, x));
     let mut p = 1.0 / 720.0f32;
-    p = p.mul_add(r, 1.0 / 120.0);
-    p = p.mul_add(r, 1.0 / 24.0);
-    p = p.mul_add(r, 1.0 / 6.0);
-    p = p.mul_add(r, 0.5);
-    p = p.mul_add(r, 1.0);
-    p = p.mul_add(r, 1.0);
+    for c in EXP_TAYLOR {
+        p = p.mul_add(r, c);
+    }
     p * f32::from_bits((((n as i32) + 127) as u32) << 23)
 }
 
@@ -217,10 +220,10 @@ unsafe fn softmax_avx2(scores: &mut [f32], width: usize, scale: f32, bias: &[f32
             _mm256_set1_ps(std::f32::consts::LOG2_E),
             _mm256_set1_ps(0.5),
         ));
-        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(0.693_145_75), x);
-        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(1.428_606_8e-6), r);
+        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(LN2_HI), x);
+        let r = _mm256_fnmadd_ps(n, _mm256_set1_ps(LN2_LO), r);
         let mut p = _mm256_set1_ps(1.0 / 720.0);
-        for c in [1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0] {
+        for c in EXP_TAYLOR {
             p = _mm256_fmadd_ps(p, r, _mm256_set1_ps(c));
         }
         let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
@@ -310,10 +313,10 @@ unsafe fn softmax_avx512(scores: &mut [f32], width: usize, scale: f32, bias: &[f
             _mm512_set1_ps(std::f32::consts::LOG2_E),
             _mm512_set1_ps(0.5),
         ));
-        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(0.693_145_75), x);
-        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(1.428_606_8e-6), r);
+        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(LN2_HI), x);
+        let r = _mm512_fnmadd_ps(n, _mm512_set1_ps(LN2_LO), r);
         let mut p = _mm512_set1_ps(1.0 / 720.0);
-        for c in [1.0 / 120.0, 1.0 / 24.0, 1.0 / 6.0, 0.5, 1.0, 1.0] {
+        for c in EXP_TAYLOR {
             p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(c));
         }
         let bits = _mm512_slli_epi32::<23>(_mm512_add_epi32(

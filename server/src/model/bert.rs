@@ -12,7 +12,7 @@ use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
-    AttendScratch, HeadBias, PackedWeight, add_layer_norm_in_place, attend_head, gelu_erf_in_place,
+    AttendScratch, Head, PackedWeight, add_layer_norm_in_place, attend_head, gelu_erf_in_place,
 };
 
 use crate::model::checkpoint::Weights;
@@ -389,23 +389,18 @@ fn attention(
         let base = s * t * h;
         for hd in 0..heads {
             let off = base + hd * dh;
-            let head_bias = HeadBias {
-                keys,
-                positions: bias.positions.map(|p| &p[hd * t * t..(hd + 1) * t * t]),
-            };
-            attend_head(
-                &q[off..],
-                &k[off..],
-                &v[off..],
-                h,
+            let head = Head {
+                q: &q[off..],
+                k: &k[off..],
+                v: &v[off..],
+                ld: h,
                 t,
                 dh,
                 scale,
-                head_bias,
-                &mut out[hd * dh..],
-                h,
-                &mut scratch,
-            );
+                key_bias: keys,
+                positions: bias.positions.map(|p| &p[hd * t * t..(hd + 1) * t * t]),
+            };
+            attend_head(&head, &mut out[hd * dh..], h, &mut scratch);
         }
     };
     if b * heads * t * t * dh < 1 << 18 {
