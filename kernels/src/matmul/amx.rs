@@ -242,7 +242,10 @@ unsafe fn block(
 
 /// Rows `x[m, k]` rounded to bf16 (to nearest even) into `dst`, row `i` at `i * ld`, zeros
 /// from `k` to `ld` and in the rows from `m` to `dst.len() / ld`.
-fn rows_to_bf16(dst: &mut [u16], ld: usize, x: &[f32], m: usize, k: usize) {
+///
+/// Across the rayon pool when `spread` and there are enough of them; a task that rounds its own
+/// block passes `false` (it already is one of the pool's tasks).
+fn rows_to_bf16(dst: &mut [u16], ld: usize, x: &[f32], m: usize, k: usize, spread: bool) {
     use rayon::prelude::*;
     let convert = |(i, row): (usize, &mut [u16])| {
         if i >= m {
@@ -259,7 +262,7 @@ fn rows_to_bf16(dst: &mut [u16], ld: usize, x: &[f32], m: usize, k: usize) {
         }
         row[k..].fill(0);
     };
-    if m * k >= 1 << 16 && rayon_threads() > 1 {
+    if spread && m * k >= 1 << 16 && rayon_threads() > 1 {
         dst.par_chunks_mut(ld).enumerate().for_each(convert);
     } else {
         dst.chunks_mut(ld).enumerate().for_each(convert);
@@ -417,7 +420,7 @@ pub(crate) fn matmul(
     let by_blocks = threads > 1 && m * n * k >= (1 << 20) && blocks >= 2 * threads;
     if !by_blocks {
         abuf.resize(blocks * BLOCK * ld, 0);
-        rows_to_bf16(&mut abuf, ld, x, m, k);
+        rows_to_bf16(&mut abuf, ld, x, m, k, true);
     }
     // Each panel's tiles; the last step's weights copied into zeros when the panel's pair
     // rows do not fill it (the tile would otherwise read the next panel, or past the end).
@@ -591,7 +594,7 @@ pub(crate) fn matmul(
             BLOCK_ROWS.with_borrow_mut(|rows| {
                 rows.resize(BLOCK * ld, 0);
                 let (r0, r1) = (rb * BLOCK, ((rb + 1) * BLOCK).min(m));
-                rows_to_bf16(rows, ld, &x[r0 * k..r1 * k], r1 - r0, k);
+                rows_to_bf16(rows, ld, &x[r0 * k..r1 * k], r1 - r0, k, false);
                 let mut c = [0f32; BLOCK * 2 * PANEL];
                 let mut tail = [0u32; 512];
                 // SAFETY: the caller's contract (tiles granted); the configuration is per

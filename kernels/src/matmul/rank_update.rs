@@ -120,7 +120,8 @@ fn run_rows(
     {
         if path >= Path::Avx512 {
             // SAFETY: the path needs AVX-512F and this CPU has it (asserted by the caller);
-            // the slices hold n rows of w and b and r rows of a (asserted by the caller).
+            // the slices hold n rows of w and b and r rows of a (asserted by the caller), and
+            // `strips` is a's full strips, built by `strip_major` for this path's width.
             #[allow(unsafe_code)]
             unsafe {
                 avx512::rows(w, n, inp, b, a, strips, r)
@@ -200,10 +201,6 @@ mod avx512 {
         strips: &[f32],
         r: usize,
     ) {
-        assert!(
-            strips.len() >= inp / STRIP * STRIP * r,
-            "A's strips are missing"
-        );
         super::by_groups(w, n, inp, b, r, |wp, bp, rows| {
             // SAFETY: `by_groups` hands out rows that exist in `w` and `b`; the features are
             // this function's.
@@ -312,10 +309,6 @@ mod avx2 {
         strips: &[f32],
         r: usize,
     ) {
-        assert!(
-            strips.len() >= inp / STRIP * STRIP * r,
-            "A's strips are missing"
-        );
         super::by_groups(w, n, inp, b, r, |wp, bp, rows| {
             // SAFETY: `by_groups` hands out rows that exist in `w` and `b`; the features are
             // this function's.
