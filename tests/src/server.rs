@@ -277,6 +277,20 @@ impl Server {
         self.dir.path()
     }
 
+    /// From here on, every request goes on a connection of its own. A test that sends bodies the
+    /// server answers without reading (a method a route does not serve, say) needs it: the
+    /// server then closes that connection after its answer, and a request sent on it again
+    /// before the client has seen the close fails with "Peer disconnected".
+    pub fn fresh_connections(&mut self) {
+        self.agent = ureq::Agent::config_builder()
+            .http_status_as_error(false)
+            .timeout_global(Some(REQUEST_TIMEOUT))
+            .max_idle_connections(0)
+            .max_idle_connections_per_host(0)
+            .build()
+            .into();
+    }
+
     /// The process id.
     pub fn pid(&self) -> u32 {
         self.child.as_ref().expect("server running").id()

@@ -151,7 +151,9 @@ fn every_route_served_is_described_and_every_described_route_is_served() {
          server/src/http/description.rs so the description lists it"
     );
     let creds = example_credentials();
-    let server = server_with(ServerSetup::encoder(), &creds);
+    let mut server = server_with(ServerSetup::encoder(), &creds);
+    // Bodies sent to routes that do not take them are answered unread; see fresh_connections.
+    server.fresh_connections();
     let doc: Value = serde_json::from_str(&std::fs::read_to_string(committed()).unwrap()).unwrap();
     let paths = doc["paths"].as_object().unwrap();
     let mut operations = 0;
