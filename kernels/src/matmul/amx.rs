@@ -377,6 +377,34 @@ impl Out {
 unsafe impl Send for Out {}
 unsafe impl Sync for Out {}
 
+/// `len` values of `buf` that start on a 64-byte line (`buf` grown to hold them): a tile row
+/// of input that straddles two lines costs two reads (see `crate::pack::lines`).
+fn on_lines(buf: &mut Vec<u16>, len: usize) -> &mut [u16] {
+    const SLACK: usize = 64 / size_of::<u16>();
+    if buf.len() < len + SLACK {
+        buf.resize(len + SLACK, 0);
+    }
+    let at = buf.as_ptr().align_offset(64);
+    &mut buf[at..at + len]
+}
+
+/// A task's 32 x 32 block of sums and its copy of two panels' last weight tiles, each on a
+/// 64-byte line (tile rows are read and written as whole lines).
+#[repr(C, align(64))]
+struct TaskTiles {
+    c: [f32; BLOCK * 2 * PANEL],
+    tail: [u32; 2 * 16 * PANEL],
+}
+
+impl TaskTiles {
+    fn new() -> Self {
+        Self {
+            c: [0.0; BLOCK * 2 * PANEL],
+            tail: [0; 2 * 16 * PANEL],
+        }
+    }
+}
+
 thread_local! {
     /// One block's rows in bf16, for a task that rounds its own block.
     static BLOCK_ROWS: std::cell::RefCell<Vec<u16>> = const { std::cell::RefCell::new(Vec::new()) };
@@ -418,10 +446,13 @@ pub(crate) fn matmul(
     // rows to bf16 just before it multiplies them, while they fit in L1. Otherwise (few rows,
     // split by panels, or one thread) every row is rounded once up front, here.
     let by_blocks = threads > 1 && m * n * k >= (1 << 20) && blocks >= 2 * threads;
-    if !by_blocks {
-        abuf.resize(blocks * BLOCK * ld, 0);
-        rows_to_bf16(&mut abuf, ld, x, m, k, true);
-    }
+    let rows: &[u16] = if by_blocks {
+        &[]
+    } else {
+        let rows = on_lines(&mut abuf, blocks * BLOCK * ld);
+        rows_to_bf16(rows, ld, x, m, k, true);
+        rows
+    };
     // Each panel's tiles; the last step's weights copied into zeros when the panel's pair
     // rows do not fill it (the tile would otherwise read the next panel, or past the end).
     let full = k.div_ceil(2) / 16;
@@ -494,7 +525,7 @@ pub(crate) fn matmul(
                 pp: usize,
                 a0: *const u16,
                 c: &mut [f32; BLOCK * 2 * PANEL],
-                tail: &mut [u32; 512]| {
+                tail: &mut [u32; 2 * 16 * PANEL]| {
         let p0 = 2 * pp;
         let p1 = (p0 + 1).min(panels - 1);
         let has_tail = full < steps;
@@ -568,7 +599,7 @@ pub(crate) fn matmul(
                pp: usize,
                a0: *const u16,
                c: &mut [f32; BLOCK * 2 * PANEL],
-               tail: &mut [u32; 512]| {
+               tail: &mut [u32; 2 * 16 * PANEL]| {
         base(rb, pp, a0, c, tail);
         if !terms.is_empty() {
             let rows = BLOCK.min(m - rb * BLOCK);
@@ -576,14 +607,13 @@ pub(crate) fn matmul(
         }
     };
     let task = |range_rb: std::ops::Range<usize>, range_pp: std::ops::Range<usize>| {
-        let mut c = [0f32; BLOCK * 2 * PANEL];
-        let mut tail = [0u32; 512];
+        let mut s = TaskTiles::new();
         // SAFETY: the caller's contract (tiles granted); the configuration is per thread.
         unsafe { configure() };
         for rb in range_rb {
-            let a0 = abuf.as_ptr().wrapping_add(rb * BLOCK * ld);
+            let a0 = rows.as_ptr().wrapping_add(rb * BLOCK * ld);
             for pp in range_pp.clone() {
-                one(rb, pp, a0, &mut c, &mut tail);
+                one(rb, pp, a0, &mut s.c, &mut s.tail);
             }
         }
         // SAFETY: as above.
@@ -591,17 +621,16 @@ pub(crate) fn matmul(
     };
     if by_blocks {
         (0..blocks).into_par_iter().for_each(|rb| {
-            BLOCK_ROWS.with_borrow_mut(|rows| {
-                rows.resize(BLOCK * ld, 0);
+            BLOCK_ROWS.with_borrow_mut(|buf| {
+                let rows = on_lines(buf, BLOCK * ld);
                 let (r0, r1) = (rb * BLOCK, ((rb + 1) * BLOCK).min(m));
                 rows_to_bf16(rows, ld, &x[r0 * k..r1 * k], r1 - r0, k, false);
-                let mut c = [0f32; BLOCK * 2 * PANEL];
-                let mut tail = [0u32; 512];
+                let mut s = TaskTiles::new();
                 // SAFETY: the caller's contract (tiles granted); the configuration is per
                 // thread.
                 unsafe { configure() };
                 for pp in 0..pairs {
-                    one(rb, pp, rows.as_ptr(), &mut c, &mut tail);
+                    one(rb, pp, rows.as_ptr(), &mut s.c, &mut s.tail);
                 }
                 // SAFETY: as above.
                 unsafe { release() };

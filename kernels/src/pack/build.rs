@@ -6,7 +6,7 @@
 use rayon::prelude::*;
 
 use super::quant::{self, QuantError};
-use super::{PANEL, ScaleType, Scales, Values, WeightFormat};
+use super::{Lines, PANEL, ScaleType, Scales, Values, WeightFormat};
 
 /// `v` cut into `panels` consecutive parts of `each` values (all empty when `v` is empty, as
 /// the scales of a format that has none).
@@ -70,7 +70,7 @@ where
     let new_buf = || vec![0f32; inp];
     Ok(match format {
         WeightFormat::F32 => {
-            let mut d = vec![0f32; out * inp];
+            let mut d = Lines::<f32>::zeroed(out * inp);
             d.par_chunks_mut((PANEL * inp).max(1))
                 .enumerate()
                 .try_for_each_init(new_buf, |buf, (p, panel)| {
@@ -86,7 +86,7 @@ where
             Values::F32(d)
         }
         WeightFormat::Bf16 => {
-            let mut v = vec![0u32; panels * pairs * PANEL];
+            let mut v = Lines::<u32>::zeroed(panels * pairs * PANEL);
             v.par_chunks_mut((pairs * PANEL).max(1))
                 .enumerate()
                 .take(panels)
@@ -103,8 +103,8 @@ where
             Values::Bf16(v)
         }
         WeightFormat::Int8 { .. } => {
-            let mut q = vec![0i8; panels * inp * PANEL];
-            let mut scales = vec![0f32; panels * groups * PANEL];
+            let mut q = Lines::<i8>::zeroed(panels * inp * PANEL);
+            let mut scales = Lines::<f32>::zeroed(panels * groups * PANEL);
             let parts: Vec<_> = per_panel(&mut q, inp * PANEL, panels)
                 .into_iter()
                 .zip(per_panel(&mut scales, groups * PANEL, panels))
@@ -132,10 +132,10 @@ where
         } => {
             let f16 = scale == ScaleType::F16;
             let n_scales = panels * groups * PANEL;
-            let mut q = vec![0u8; panels * pairs * PANEL];
-            let mut s32 = vec![0f32; if f16 { 0 } else { n_scales }];
-            let mut s16 = vec![0u16; if f16 { n_scales } else { 0 }];
-            let mut zeros = vec![0u8; if zero_point { n_scales } else { 0 }];
+            let mut q = Lines::<u8>::zeroed(panels * pairs * PANEL);
+            let mut s32 = Lines::<f32>::zeroed(if f16 { 0 } else { n_scales });
+            let mut s16 = Lines::<u16>::zeroed(if f16 { n_scales } else { 0 });
+            let mut zeros = Lines::<u8>::zeroed(if zero_point { n_scales } else { 0 });
             let each = groups * PANEL;
             assert!(
                 group.is_multiple_of(2) || groups == 1,

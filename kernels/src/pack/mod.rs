@@ -23,11 +23,14 @@
 
 mod build;
 mod format;
+mod lines;
 pub mod quant;
 pub(crate) mod rows;
 
 pub use format::{FormatKind, Int8Scales, ScaleType, UnknownFormat, WeightFormat};
 pub use quant::QuantError;
+
+use lines::Lines;
 
 /// Output rows per panel of a [`PackedWeight`]: one AVX-512 vector, two AVX2 ones.
 pub const PANEL: usize = 16;
@@ -35,25 +38,25 @@ pub const PANEL: usize = 16;
 /// The values of a [`PackedWeight`], by format.
 #[derive(Clone)]
 pub(crate) enum Values {
-    F32(Vec<f32>),
-    Bf16(Vec<u32>),
+    F32(Lines<f32>),
+    Bf16(Lines<u32>),
     Int8 {
-        q: Vec<i8>,
-        scales: Vec<f32>,
+        q: Lines<i8>,
+        scales: Lines<f32>,
     },
     Int4 {
-        q: Vec<u8>,
+        q: Lines<u8>,
         scales: Scales,
         /// Empty when symmetric.
-        zeros: Vec<u8>,
+        zeros: Lines<u8>,
     },
 }
 
 /// An int4 weight's scales as stored.
 #[derive(Clone)]
 pub(crate) enum Scales {
-    F32(Vec<f32>),
-    F16(Vec<u16>),
+    F32(Lines<f32>),
+    F16(Lines<u16>),
 }
 
 /// One block of one panel (inputs `k0..k0 + kb`, `k0` a multiple of the group), as a
@@ -234,12 +237,10 @@ impl PackedWeight {
             let last = (out - 1) * row_stride + (inp - 1) * col_stride;
             assert!(last < src.len(), "weight view does not fit its slice");
         }
-        let mut data = match std::mem::replace(&mut self.values, Values::F32(Vec::new())) {
-            Values::F32(d) => d,
-            _ => Vec::new(),
+        let mut data = match std::mem::replace(&mut self.values, Values::F32(Lines::new())) {
+            Values::F32(d) if d.len() == out * inp => d,
+            _ => Lines::zeroed(out * inp),
         };
-        data.clear();
-        data.resize(out * inp, 0.0);
         (self.out, self.inp, self.format) = (out, inp, WeightFormat::F32);
         for (p, panel) in data.chunks_mut(PANEL * inp.max(1)).enumerate() {
             let width = PANEL.min(out - p * PANEL);
@@ -272,7 +273,7 @@ impl PackedWeight {
     /// An empty f32 weight, `[0, 0]`, to repack into.
     pub fn empty() -> Self {
         Self {
-            values: Values::F32(Vec::new()),
+            values: Values::F32(Lines::new()),
             format: WeightFormat::F32,
             out: 0,
             inp: 0,
