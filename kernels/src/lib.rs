@@ -22,8 +22,8 @@ pub mod vector;
 
 pub use dispatch::{Path, PathError};
 pub use matmul::{
-    RowTerm, add_rank_update, add_rank_update_on, packed_matmul, packed_matmul_on,
-    packed_matmul_strided, packed_matmul_with,
+    RowTerm, RowsDone, add_rank_update, add_rank_update_on, packed_matmul, packed_matmul_on,
+    packed_matmul_strided, packed_matmul_then, packed_matmul_then_on, packed_matmul_with,
 };
 pub use micro::Inputs;
 pub use pack::{PANEL, PackedWeight, QuantError, WeightFormat};

@@ -141,6 +141,35 @@ fn minilm_tokenisation_matches_the_reference_token_ids() {
 }
 
 #[test]
+fn token_ids_outside_the_vocabulary_and_too_many_positions_are_refused_by_name() {
+    // The embedding stage checks its input before it reads a table row (it runs on plain
+    // slices, not on tensor ops that would check for it).
+    let e = embedder();
+    let device = candle_core::Device::Cpu;
+    let forward = |ids: Vec<u32>, b: usize, t: usize| {
+        let ids = Tensor::from_vec(ids, (b, t), &device).unwrap();
+        let mask = Tensor::ones((b, t), candle_core::DType::U32, &device).unwrap();
+        e.model().forward(&ids, &mask, &RowAdapters::base(b * t))
+    };
+    let vocab = 30522; // MiniLM's vocabulary (its config.json)
+    let err = forward(vec![101, vocab, 102], 1, 3)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        err.contains(&format!("token id {vocab} is outside the vocabulary")),
+        "{err}"
+    );
+    let err = forward(vec![101; 513], 1, 513).unwrap_err().to_string();
+    assert!(
+        err.contains("do not fit the model's 512 positions"),
+        "{err}"
+    );
+    // And a good batch still runs after both.
+    let h = forward(vec![101, 7592, 102, 101, 2088, 102], 2, 3).unwrap();
+    assert_eq!(h.dims(), &[2, 3, 384]);
+}
+
+#[test]
 fn minilm_fingerprint_matches_the_python_computation() {
     assert_eq!(
         embedder().spec().fingerprint,

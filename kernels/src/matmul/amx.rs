@@ -25,7 +25,7 @@
 use std::arch::asm;
 use std::arch::x86_64::*;
 
-use super::{RowTerm, packed_matmul_strided};
+use super::{RowTerm, RowsDone, packed_matmul_strided, rows_done_after};
 use crate::pack::quant::bf16_from_f32;
 use crate::pack::{Block, PANEL, PackedWeight};
 use crate::threads::rayon_threads;
@@ -427,6 +427,7 @@ pub(crate) fn matmul(
     accumulate: bool,
     bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
+    then: Option<RowsDone<'_>>,
 ) {
     use rayon::prelude::*;
     assert!(
@@ -634,6 +635,11 @@ pub(crate) fn matmul(
                 }
                 // SAFETY: as above.
                 unsafe { release() };
+                if let Some(then) = then {
+                    // SAFETY: rows r0..r1 of y, every column: this task's own (see Out), and
+                    // finished.
+                    then(r0, unsafe { out.slice(r0 * n, (r1 - r0) * n) });
+                }
             })
         });
     } else if threads <= 1 || m * n * k < (1 << 20) {
@@ -645,4 +651,7 @@ pub(crate) fn matmul(
         });
     }
     SCRATCH.with_borrow_mut(|s| *s = (abuf, down));
+    if !by_blocks {
+        rows_done_after(y, m, n, then);
+    }
 }

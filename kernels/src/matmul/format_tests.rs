@@ -267,6 +267,70 @@ fn every_path_agrees_with_the_portable_path_for_every_format_with_many_rows() {
 }
 
 #[test]
+fn work_on_finished_rows_runs_once_per_row_after_everything_else_on_every_path() {
+    // `packed_matmul_then_on` must give what the product gives with the hook applied
+    // afterwards: every row handed over exactly once, whole, with its bias and low-rank terms
+    // already in it. Few rows (the panel split), a block's worth and several (the row-block
+    // splits, the amx path's split by blocks of 32 with a short last one), no inputs at all.
+    use std::sync::atomic::{AtomicU32, Ordering};
+    let paths = super::tests::paths();
+    for &(m, k, n, terms) in &[
+        (3, 129, 40, true),
+        (150, 384, 37, true),
+        (300, 384, 64, true),
+        (70, 0, 20, false),
+    ] {
+        let case = Case::new(m, k, n, terms, 5);
+        for format in ["f32", "bf16", "int8", "int4"] {
+            let format = WeightFormat::parse(format).unwrap();
+            let w = PackedWeight::pack_as(&case.w, n, k, format).unwrap();
+            for &path in &paths {
+                let plain = case.run(path, &w);
+                let seen: Vec<AtomicU32> = (0..m).map(|_| AtomicU32::new(0)).collect();
+                let hook = |r0: usize, rows: &mut [f32]| {
+                    assert!(rows.len().is_multiple_of(n), "a partial row");
+                    for (i, row) in rows.chunks_mut(n).enumerate() {
+                        seen[r0 + i].fetch_add(1, Ordering::Relaxed);
+                        for (j, v) in row.iter_mut().enumerate() {
+                            *v = *v * 2.0 + (r0 + i) as f32 - j as f32 * 0.5;
+                        }
+                    }
+                };
+                let mut y = vec![f32::NAN; m * n];
+                let t = case.terms();
+                packed_matmul_then_on(
+                    path,
+                    &mut y,
+                    &case.x,
+                    m,
+                    &w,
+                    false,
+                    Some(&case.bias),
+                    &t,
+                    &hook,
+                );
+                for (i, s) in seen.iter().enumerate() {
+                    let times = s.load(Ordering::Relaxed);
+                    assert_eq!(
+                        times, 1,
+                        "{m}x{k}x{n} {format} {path}: row {i} seen {times} times"
+                    );
+                }
+                for (at, (&g, &p)) in y.iter().zip(&plain).enumerate() {
+                    let want = p * 2.0 + (at / n) as f32 - (at % n) as f32 * 0.5;
+                    assert!(
+                        g == want,
+                        "{m}x{k}x{n} {format} {path} at row {} column {}: {g} vs {want}",
+                        at / n,
+                        at % n
+                    );
+                }
+            }
+        }
+    }
+}
+
+#[test]
 fn quantised_values_follow_the_documented_rules_exactly() {
     // An independent transcription of the rules in pack/quant.rs, in f32 as numpy would do
     // them, against what the packed weight stands for.

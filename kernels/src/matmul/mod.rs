@@ -182,6 +182,68 @@ pub fn packed_matmul_with(
     packed_matmul_on(active(), y, x, m, w, accumulate, bias, terms);
 }
 
+/// Work on finished rows of a product's output, called as `then(first_row, rows)` with
+/// `rows` holding whole rows (`out` values each) once the base product, the bias and every
+/// low-rank term are in them: an activation, or a residual add and a layer norm.
+pub type RowsDone<'a> = &'a (dyn Fn(usize, &mut [f32]) + Sync);
+
+/// [`packed_matmul_with`], then `then` on every row of the output exactly once, in blocks of
+/// rows (any order, across the pool). Where a thread computes whole rows (a block of rows by
+/// every panel: the many-rows split of every path), it runs `then` on them right after, while
+/// they are in its cache, instead of in a pass of its own over the output (a bf16 MiniLM
+/// layer's GELU and two layer norms this way: see DEVELOPERS.md).
+#[allow(clippy::too_many_arguments)]
+pub fn packed_matmul_then(
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+    then: RowsDone<'_>,
+) {
+    product(active(), y, x, m, w, accumulate, bias, terms, Some(then));
+}
+
+/// [`packed_matmul_then`] on a path chosen by the caller.
+///
+/// # Panics
+/// When this CPU cannot run `path`.
+#[allow(clippy::too_many_arguments)]
+pub fn packed_matmul_then_on(
+    path: Path,
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+    then: RowsDone<'_>,
+) {
+    product(path, y, x, m, w, accumulate, bias, terms, Some(then));
+}
+
+/// `then` over `y`'s `m` rows of `n` after a product that did not run it: blocks of 32 rows
+/// across the pool when there are enough of them.
+fn rows_done_after(y: &mut [f32], m: usize, n: usize, then: Option<RowsDone<'_>>) {
+    use rayon::prelude::*;
+    const ROWS: usize = 32;
+    let Some(then) = then else { return };
+    let y = &mut y[..m * n];
+    if n == 0 {
+        return;
+    }
+    if rayon_threads() > 1 && m > ROWS && m * n >= 1 << 15 {
+        y.par_chunks_mut(ROWS * n)
+            .enumerate()
+            .for_each(|(i, rows)| then(i * ROWS, rows));
+    } else {
+        then(0, y);
+    }
+}
+
 /// [`packed_matmul_with`] on a path chosen by the caller (tests and benchmarks compare the
 /// paths side by side).
 ///
@@ -197,6 +259,21 @@ pub fn packed_matmul_on(
     accumulate: bool,
     bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
+) {
+    product(path, y, x, m, w, accumulate, bias, terms, None);
+}
+
+#[allow(clippy::too_many_arguments)]
+fn product(
+    path: Path,
+    y: &mut [f32],
+    x: &[f32],
+    m: usize,
+    w: &PackedWeight,
+    accumulate: bool,
+    bias: Option<&[f32]>,
+    terms: &[RowTerm<'_>],
+    then: Option<RowsDone<'_>>,
 ) {
     use rayon::prelude::*;
     let (n, k) = (w.out, w.inp);
@@ -231,15 +308,17 @@ pub fn packed_matmul_on(
                 (true, None) => {}
             }
         }
+        rows_done_after(y, m, n, then);
         return;
     }
     #[cfg(target_arch = "x86_64")]
     if library_product(path, y, x, m, w, accumulate, bias, terms) {
+        rows_done_after(y, m, n, then);
         return;
     }
     #[cfg(target_arch = "x86_64")]
     if path == Path::Amx && w.format == WeightFormat::Bf16 && m >= amx::MIN_ROWS {
-        amx::matmul(y, x, m, w, accumulate, bias, terms);
+        amx::matmul(y, x, m, w, accumulate, bias, terms, then);
         return;
     }
     let panels = n.div_ceil(PANEL);
@@ -253,6 +332,9 @@ pub fn packed_matmul_on(
         let xb = &x[i * BLOCK_ROWS * k..];
         let run = Run::new(0..panels, accumulate, bias, path, w);
         panels_into(yb, n, xb, k, rows, w, &part, &run);
+        if let Some(then) = then {
+            then(i * BLOCK_ROWS, yb);
+        }
     };
     if threads <= 1 || m * n * k < (1 << 20) {
         for (i, yb) in y.chunks_mut(BLOCK_ROWS * n).enumerate() {
@@ -307,6 +389,7 @@ pub fn packed_matmul_on(
     }
     bufs.out = scratch;
     BUFFERS.with_borrow_mut(|b| *b = bufs);
+    rows_done_after(y, m, n, then);
 }
 
 /// [`packed_matmul`] on strided rows, on the calling thread: `y[i * y_stride + j] (+)=

@@ -60,17 +60,46 @@ fn fast_erf_and_gelu_agree_with_the_series_on_both_paths() {
     // Odd lengths, so the vector loop's remainder runs too.
     let xs: Vec<f32> = (0..1003).map(|i| (i as f32 - 501.0) / 60.0).collect();
     let mut a = xs.clone();
-    let mut b = xs.clone();
     gelu_erf_portable(&mut a);
-    gelu_erf_in_place(&mut b);
-    for ((x, a), b) in xs.iter().zip(&a).zip(&b) {
+    for (x, a) in xs.iter().zip(&a) {
         let x64 = *x as f64;
         let want = 0.5 * x64 * (1.0 + erf_any(x64 / 2f64.sqrt()));
         assert!(
             (*a as f64 - want).abs() < 1e-5 * (1.0 + want.abs()),
             "gelu({x})"
         );
-        assert!((a - b).abs() < 1e-6, "paths differ at {x}");
+    }
+    // The active path and each vector body by name, against the portable loop.
+    let mut bodies = vec!["active path"];
+    for (body, feature) in [
+        ("avx2", use_avx2()),
+        ("avx512", is_x86_feature_detected!("avx512f")),
+    ] {
+        if feature {
+            bodies.push(body);
+        } else {
+            println!("gelu {body}: not run, this CPU (or the forced path) lacks it");
+        }
+    }
+    for body in bodies {
+        let mut b = xs.clone();
+        #[allow(unsafe_code)]
+        match body {
+            // SAFETY (both): the CPU has the body's features (checked above).
+            "avx2" => unsafe { gelu_erf_avx2(&mut b) },
+            "avx512" => unsafe { gelu_erf_avx512(&mut b) },
+            _ => gelu_erf_in_place(&mut b),
+        }
+        for ((x, a), b) in xs.iter().zip(&a).zip(&b) {
+            assert!(
+                (a - b).abs() < 1e-6,
+                "{body} differs from the portable loop at {x}"
+            );
+        }
+        println!(
+            "gelu {body}: {} values agree with the portable loop",
+            xs.len()
+        );
     }
 }
 
@@ -132,31 +161,56 @@ fn fast_exp_and_softmax_agree_with_f64_on_both_paths() {
     }
 }
 #[test]
-fn residual_layer_norm_matches_an_f64_loop_on_both_paths() {
-    let width = 37;
-    let rows = 2000; // enough for the threaded path
-    let x = values(width * rows, 101);
-    let res = values(width * rows, 102);
-    let gamma = values(width, 103);
-    let beta = values(width, 104);
-    let mut want = vec![0f32; x.len()];
-    for r in 0..rows {
-        let v: Vec<f64> = (0..width)
-            .map(|j| x[r * width + j] as f64 + res[r * width + j] as f64)
-            .collect();
-        let mean = v.iter().sum::<f64>() / width as f64;
-        let var = v.iter().map(|a| (a - mean) * (a - mean)).sum::<f64>() / width as f64;
-        for j in 0..width {
-            want[r * width + j] =
-                ((v[j] - mean) / (var + 1e-12).sqrt() * gamma[j] as f64 + beta[j] as f64) as f32;
+fn residual_layer_norm_matches_an_f64_loop_on_every_body() {
+    // Widths with a remainder after the 16-wide vectors (37), none (384, MiniLM's hidden size)
+    // and shorter than one vector (5); rows enough for the threaded path at width 37.
+    for (width, rows) in [(37, 2000), (384, 40), (5, 9)] {
+        let x = values(width * rows, 101);
+        let res = values(width * rows, 102);
+        let gamma = values(width, 103);
+        let beta = values(width, 104);
+        let mut want = vec![0f32; x.len()];
+        for r in 0..rows {
+            let v: Vec<f64> = (0..width)
+                .map(|j| x[r * width + j] as f64 + res[r * width + j] as f64)
+                .collect();
+            let mean = v.iter().sum::<f64>() / width as f64;
+            let var = v.iter().map(|a| (a - mean) * (a - mean)).sum::<f64>() / width as f64;
+            for j in 0..width {
+                want[r * width + j] = ((v[j] - mean) / (var + 1e-12).sqrt() * gamma[j] as f64
+                    + beta[j] as f64) as f32;
+            }
         }
-    }
-    let mut got = x.clone();
-    add_layer_norm_in_place(&mut got, &res, &gamma, &beta, 1e-12);
-    let mut portable = x.clone();
-    norm_rows(&mut portable, &res, &gamma, &beta, 1e-12);
-    for ((g, p), w) in got.iter().zip(&portable).zip(&want) {
-        assert!((g - w).abs() < 1e-4, "{g} vs {w}");
-        assert!((p - w).abs() < 1e-4, "portable {p} vs {w}");
+        let mut bodies = vec!["active path", "portable"];
+        for (body, feature) in [
+            ("avx2", use_avx2()),
+            ("avx512", is_x86_feature_detected!("avx512f")),
+        ] {
+            if feature {
+                bodies.push(body);
+            } else {
+                println!("layer norm {body}: not run, this CPU (or the forced path) lacks it");
+            }
+        }
+        for body in bodies {
+            let mut got = x.clone();
+            #[allow(unsafe_code)]
+            match body {
+                "active path" => add_layer_norm_in_place(&mut got, &res, &gamma, &beta, 1e-12),
+                // SAFETY (both): the CPU has the body's features (checked above).
+                "avx2" => unsafe { norm_rows_avx2(&mut got, &res, &gamma, &beta, 1e-12) },
+                "avx512" => unsafe { norm_rows_avx512(&mut got, &res, &gamma, &beta, 1e-12) },
+                _ => norm_rows(&mut got, &res, &gamma, &beta, 1e-12),
+            }
+            for (i, (g, w)) in got.iter().zip(&want).enumerate() {
+                assert!(
+                    (g - w).abs() < 1e-4,
+                    "{body}, width {width}, row {} column {}: {g} vs {w}",
+                    i / width,
+                    i % width
+                );
+            }
+            println!("layer norm {body}: {rows} rows of {width} agree with f64");
+        }
     }
 }

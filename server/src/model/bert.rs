@@ -8,7 +8,6 @@ use std::collections::BTreeMap;
 use std::sync::Arc;
 
 use candle_core::{DType, Result, Tensor};
-use candle_nn::{Embedding, LayerNorm, Module as _};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
@@ -91,65 +90,79 @@ fn default_ln_eps() -> f64 {
 }
 
 /// The input embeddings: the word table is held in the model's weight format (it is the one
-/// large matrix besides the projections) and read one row per token; the position and token
-/// type tables and the layer norm stay f32.
+/// large matrix besides the projections) and read one row per token; the position table (with
+/// token type 0's row added to it) and the layer norm stay f32.
 struct Embeddings {
     word: Arc<PackedWeight>,
-    position: Embedding,
+    /// `[positions, hidden]`: each position's row plus token type 0's (every token has type 0,
+    /// one segment per input; MPNet has no token types).
+    position: Vec<f32>,
     /// The position id of a sequence's first token.
-    position_offset: u32,
-    /// None for MPNet, which has no token types.
-    token_type: Option<Embedding>,
-    norm: LayerNorm,
+    position_offset: usize,
+    norm: Norm,
 }
 
 impl Embeddings {
     fn new(cfg: &BertConfig, vb: &Weights<'_>) -> Result<Self> {
         let h = cfg.hidden_size;
-        let table = |name: &str, rows: usize| -> Result<Embedding> {
-            Ok(Embedding::new(vb.pp(name).tensor("weight", &[rows, h])?, h))
+        let table = |name: &str, rows: usize| -> Result<Vec<f32>> {
+            vb.pp(name)
+                .tensor("weight", &[rows, h])?
+                .flatten_all()?
+                .to_vec1()
         };
-        let ln = vb.pp("LayerNorm");
+        let mut position = table("position_embeddings", cfg.max_position_embeddings)?;
+        if !cfg.is_mpnet() {
+            let types = table("token_type_embeddings", cfg.type_vocab_size)?;
+            let Some(first) = types.get(..h) else {
+                candle_core::bail!("the token type table has no rows");
+            };
+            for row in position.chunks_mut(h) {
+                row.iter_mut().zip(first).for_each(|(p, t)| *p += t);
+            }
+        }
         Ok(Self {
             word: Arc::new(
                 vb.pp("word_embeddings")
                     .packed("weight", cfg.vocab_size, h)?,
             ),
-            position: table("position_embeddings", cfg.max_position_embeddings)?,
-            position_offset: cfg.position_offset() as u32,
-            token_type: match cfg.is_mpnet() {
-                true => None,
-                false => Some(table("token_type_embeddings", cfg.type_vocab_size)?),
-            },
-            norm: LayerNorm::new(
-                ln.tensor("weight", &[h])?,
-                ln.tensor("bias", &[h])?,
-                cfg.layer_norm_eps,
-            ),
+            position,
+            position_offset: cfg.position_offset(),
+            norm: Norm::load(h, cfg.layer_norm_eps, &vb.pp("LayerNorm"))?,
         })
     }
 
-    /// Every token has type 0 (one segment per input).
-    fn forward(&self, ids: &Tensor) -> Result<Tensor> {
-        let (b, t) = ids.dims2()?;
+    /// `[b * t, hidden]` for the token ids of `b` sequences of `t` (row-major): each token's
+    /// word row plus its position's, layer-normed, one sequence per task across the pool.
+    fn forward(&self, ids: &[u32], b: usize, t: usize) -> Result<Vec<f32>> {
+        use rayon::prelude::*;
         let (vocab, h) = (self.word.out_features(), self.word.in_features());
-        let flat: Vec<u32> = ids.flatten_all()?.to_vec1()?;
-        let mut words = vec![0f32; b * t * h];
-        for (row, &id) in words.chunks_mut(h).zip(&flat) {
-            if id as usize >= vocab {
-                candle_core::bail!("token id {id} is outside the vocabulary of {vocab}");
-            }
-            self.word.row_into(id as usize, row);
+        if let Some(id) = ids.iter().find(|&&id| id as usize >= vocab) {
+            candle_core::bail!("token id {id} is outside the vocabulary of {vocab}");
         }
-        let words = Tensor::from_vec(words, (b, t, h), ids.device())?;
-        let first = self.position_offset;
-        let positions = Tensor::arange(first, first + t as u32, ids.device())?;
-        let words = match &self.token_type {
-            Some(types) => words.broadcast_add(&types.embeddings().get(0)?)?,
-            None => words,
-        };
-        let x = words.broadcast_add(&self.position.forward(&positions)?)?;
-        self.norm.forward(&x)
+        let positions = self.position.len() / h.max(1);
+        if ids.len() != b * t || self.position_offset + t > positions {
+            candle_core::bail!(
+                "{b} x {t} tokens ({} ids) do not fit the model's {} positions",
+                ids.len(),
+                positions.saturating_sub(self.position_offset)
+            );
+        }
+        let pos = &self.position[self.position_offset * h..(self.position_offset + t) * h];
+        let mut x = vec![0f32; b * t * h];
+        if h == 0 || t == 0 {
+            return Ok(x);
+        }
+        let norm = self.norm.after(pos, h)?;
+        x.par_chunks_mut(t * h)
+            .zip(ids.par_chunks(t))
+            .for_each(|(seq, ids)| {
+                for (row, &id) in seq.chunks_mut(h).zip(ids) {
+                    self.word.row_into(id as usize, row);
+                }
+                norm(0, seq);
+            });
+        Ok(x)
     }
 }
 
@@ -195,6 +208,20 @@ enum Activation {
     GeluErf,
     GeluTanh,
     Relu,
+}
+
+impl Activation {
+    /// The activation on `xs` in place.
+    fn apply(self, xs: &mut [f32]) {
+        match self {
+            Activation::GeluErf => gelu_erf_in_place(xs),
+            Activation::GeluTanh => xs.iter_mut().for_each(|v| {
+                let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);
+                *v = 0.5 * *v * (1.0 + u.tanh());
+            }),
+            Activation::Relu => xs.iter_mut().for_each(|v| *v = v.max(0.0)),
+        }
+    }
 }
 
 impl Layer {
@@ -245,34 +272,28 @@ impl Layer {
         adapters: &RowAdapters,
         a: &mut Activations,
     ) -> Result<()> {
-        use rayon::prelude::*;
         let rows = b * t;
         let h = x.len() / rows.max(1);
         self.q.forward_rows_into(x, rows, adapters, &mut a.q)?;
         self.k.forward_rows_into(x, rows, adapters, &mut a.k)?;
         self.v.forward_rows_into(x, rows, adapters, &mut a.v)?;
         attention(&a.q, &a.k, &a.v, bias, b, t, h, self.heads, &mut a.ctx);
+        // The residual adds with their layer norms and the activation run on each block of
+        // rows as the product finishes it, while it is in cache.
+        let attn_norm = self.attn_norm.after(x, h)?;
         self.o
-            .forward_rows_into(&a.ctx, rows, adapters, &mut a.attn)?;
-        self.attn_norm.apply(&mut a.attn, x)?;
-        self.up
-            .forward_rows_into(&a.attn, rows, adapters, &mut a.inner)?;
-        match self.act {
-            Activation::GeluErf => gelu_erf_in_place(&mut a.inner),
-            Activation::GeluTanh => a.inner.par_chunks_mut(1 << 14).for_each(|c| {
-                c.iter_mut().for_each(|v| {
-                    let u = 0.797_884_6 * (*v + 0.044_715 * *v * *v * *v);
-                    *v = 0.5 * *v * (1.0 + u.tanh());
-                })
-            }),
-            Activation::Relu => a
-                .inner
-                .par_chunks_mut(1 << 14)
-                .for_each(|c| c.iter_mut().for_each(|v| *v = v.max(0.0))),
-        }
+            .forward_rows_then(&a.ctx, rows, adapters, &mut a.attn, Some(&attn_norm))?;
+        let act = self.act;
+        self.up.forward_rows_then(
+            &a.attn,
+            rows,
+            adapters,
+            &mut a.inner,
+            Some(&|_, block: &mut [f32]| act.apply(block)),
+        )?;
+        let out_norm = self.out_norm.after(&a.attn, h)?;
         self.down
-            .forward_rows_into(&a.inner, rows, adapters, &mut a.out)?;
-        self.out_norm.apply(&mut a.out, &a.attn)?;
+            .forward_rows_then(&a.inner, rows, adapters, &mut a.out, Some(&out_norm))?;
         Ok(())
     }
 }
@@ -338,17 +359,25 @@ impl Norm {
         })
     }
 
-    /// `x <- LayerNorm(x + residual)`.
-    fn apply(&self, x: &mut [f32], residual: &[f32]) -> Result<()> {
-        if x.len() != residual.len() || !x.len().is_multiple_of(self.gamma.len()) {
+    /// `rows <- LayerNorm(rows + residual)` for rows from `first` of a product's output of
+    /// `width` columns (the hidden size), `residual` holding every row: the work a projection
+    /// runs on its finished rows.
+    fn after<'a>(
+        &'a self,
+        residual: &'a [f32],
+        width: usize,
+    ) -> Result<impl Fn(usize, &mut [f32]) + Sync + 'a> {
+        if width != self.gamma.len() || !residual.len().is_multiple_of(width) {
             candle_core::bail!(
-                "layer norm over {} values with a residual of {}",
-                x.len(),
+                "layer norm over rows of {width} with {} weights and a residual of {}",
+                self.gamma.len(),
                 residual.len()
             );
         }
-        add_layer_norm_in_place(x, residual, &self.gamma, &self.beta, self.eps);
-        Ok(())
+        Ok(move |first: usize, rows: &mut [f32]| {
+            let res = &residual[first * width..first * width + rows.len()];
+            add_layer_norm_in_place(rows, res, &self.gamma, &self.beta, self.eps);
+        })
     }
 }
 
@@ -464,8 +493,10 @@ impl BertModel {
     /// real token, 0 for padding). `adapters` covers `b * t` rows, sequence by sequence.
     pub fn forward(&self, ids: &Tensor, mask: &Tensor, adapters: &RowAdapters) -> Result<Tensor> {
         let _span = tracing::trace_span!("bert_forward").entered();
-        let embedded = self.embeddings.forward(ids)?;
-        let (b, t, h) = embedded.dims3()?;
+        let (b, t) = ids.dims2()?;
+        let h = self.embeddings.word.in_features();
+        let flat: Vec<u32> = ids.flatten_all()?.to_vec1()?;
+        let mut x = self.embeddings.forward(&flat, b, t)?;
         // Additive mask: 0 where a key is a real token, a large negative number where it is padding.
         let key_bias: Vec<f32> = ((mask.to_dtype(DType::F32)? - 1.0)? * 1e9)?
             .reshape(b * t)?
@@ -481,10 +512,6 @@ impl BertModel {
             keys: &key_bias,
             positions: positions.as_deref(),
         };
-        let mut x = embedded
-            .to_dtype(DType::F32)?
-            .flatten_all()?
-            .to_vec1::<f32>()?;
         // Taken out of the thread-local, not borrowed: a rayon wait inside may run other work here.
         let mut acts = ACTIVATIONS.with_borrow_mut(std::mem::take);
         let done = self.layers.iter().try_for_each(|layer| {
@@ -530,10 +557,8 @@ impl BertModel {
     /// the rest in f32.
     pub fn resident_bytes(&self) -> usize {
         let e = &self.embeddings;
-        let small = |t: &Tensor| t.elem_count() * 4;
         let mut n = e.word.resident_bytes()
-            + small(e.position.embeddings())
-            + e.token_type.as_ref().map_or(0, |x| small(x.embeddings()))
+            + e.position.len() * 4
             + self
                 .relative_bias
                 .as_ref()

@@ -14,7 +14,7 @@ use std::sync::Arc;
 use candle_core::{DType, Result, Tensor};
 use switchyard_adapters::tensors::{pack_tensor, unpack_tensor, with_f32};
 use switchyard_adapters::{Adapter, MergedWeights, Site};
-use switchyard_kernels::{PackedWeight, RowTerm, packed_matmul_with};
+use switchyard_kernels::{PackedWeight, RowTerm, RowsDone, packed_matmul_then, packed_matmul_with};
 
 use crate::model::checkpoint::Weights;
 
@@ -251,6 +251,21 @@ impl AdaptedLinear {
         adapters: &RowAdapters,
         y: &mut Vec<f32>,
     ) -> Result<()> {
+        self.forward_rows_then(xs, rows, adapters, y, None)
+    }
+
+    /// [`Self::forward_rows_into`], then `then` on every row of `y`: in the product's own
+    /// tasks, on rows they just finished, where the kernel splits by rows (see
+    /// [`switchyard_kernels::packed_matmul_then`]); an activation or a residual add with a
+    /// layer norm costs no pass of its own over the output then.
+    pub fn forward_rows_then(
+        &self,
+        xs: &[f32],
+        rows: usize,
+        adapters: &RowAdapters,
+        y: &mut Vec<f32>,
+        then: Option<RowsDone<'_>>,
+    ) -> Result<()> {
         let (out_dim, in_dim) = self.shape();
         if rows != adapters.rows || xs.len() != rows * in_dim {
             candle_core::bail!(
@@ -284,7 +299,11 @@ impl AdaptedLinear {
             }
             terms.extend(group.runs.iter().map(|run| lr.term(run.clone())));
         }
-        packed_matmul_with(y, xs, rows, weight, false, self.bias.as_deref(), &terms);
+        let bias = self.bias.as_deref();
+        match then {
+            Some(then) => packed_matmul_then(y, xs, rows, weight, false, bias, &terms, then),
+            None => packed_matmul_with(y, xs, rows, weight, false, bias, &terms),
+        }
         Ok(())
     }
 }
