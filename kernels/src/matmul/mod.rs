@@ -66,6 +66,7 @@ fn library_product(
     accumulate: bool,
     bias: Option<&[f32]>,
     terms: &[RowTerm<'_>],
+    then: Option<RowsDone<'_>>,
 ) -> bool {
     let (n, k) = (w.out, w.inp);
     let fits = w.format == WeightFormat::F32
@@ -88,7 +89,7 @@ fn library_product(
     if ran.is_err() {
         return false;
     }
-    library_terms(y, x, k, n, terms);
+    library_terms(y, x, (m, k, n), terms, then);
     true
 }
 
@@ -96,42 +97,58 @@ fn library_product(
 /// handing it to the pool, few enough that one adapter's batch splits across the threads.
 const TERM_ROWS: usize = 128;
 
-/// Each term's `s (x A^T) B^T` added to its rows of `y` (the base product already there): its
-/// rows cut into tasks of [`TERM_ROWS`], spread over the pool, each task's down product into
-/// a small buffer and its up product straight into its own rows of `y`.
+/// After a library product: each term's `s (x A^T) B^T` added to its rows of `y` (the base
+/// product already there), then `then` on the rows. One pass over the output in blocks of
+/// [`TERM_ROWS`] rows spread over the pool: a block's terms (each down product into a small
+/// buffer, its up product straight into the block's rows), then its hook, while the rows are
+/// in cache. Blocks with neither are skipped.
 #[cfg(target_arch = "x86_64")]
-fn library_terms(y: &mut [f32], x: &[f32], k: usize, n: usize, terms: &[RowTerm<'_>]) {
+fn library_terms(
+    y: &mut [f32],
+    x: &[f32],
+    (m, k, n): (usize, usize, usize),
+    terms: &[RowTerm<'_>],
+    then: Option<RowsDone<'_>>,
+) {
     use rayon::prelude::*;
-    let mut tasks: Vec<(&RowTerm<'_>, std::ops::Range<usize>)> = terms
-        .iter()
-        .flat_map(|t| {
-            t.rows
-                .clone()
-                .step_by(TERM_ROWS)
-                .map(move |r0| (t, r0..(r0 + TERM_ROWS).min(t.rows.end)))
-        })
-        .collect();
-    tasks.sort_by_key(|(_, rows)| rows.start);
-    // The tasks' rows of y, cut apart (terms never overlap, so neither do tasks).
-    let mut parts = Vec::with_capacity(tasks.len());
-    let (mut rest, mut at) = (y, 0);
-    for (_, rows) in &tasks {
-        let (_, tail) = rest.split_at_mut((rows.start - at) * n);
-        let (mine, tail) = tail.split_at_mut(rows.len() * n);
-        parts.push(mine);
-        (rest, at) = (tail, rows.end);
+    if terms.is_empty() && then.is_none() {
+        return;
     }
-    let task = |((t, rows), ys): ((&RowTerm<'_>, std::ops::Range<usize>), &mut [f32])| {
-        let r = t.a.out;
-        let mut z = vec![0f32; rows.len() * r];
-        packed_matmul_strided(&mut z, r, &x[rows.start * k..], k, rows.len(), t.a, false);
-        z.iter_mut().for_each(|v| *v *= t.scale);
-        packed_matmul_strided(ys, n, &z, r, rows.len(), t.b, true);
+    let block = |(b, ys): (usize, &mut [f32])| {
+        let (r0, r1) = (b * TERM_ROWS, (b * TERM_ROWS + ys.len() / n).min(m));
+        let mut z = Vec::new();
+        for t in terms {
+            let (lo, hi) = (t.rows.start.max(r0), t.rows.end.min(r1));
+            if lo >= hi {
+                continue;
+            }
+            let r = t.a.out;
+            z.clear();
+            z.resize((hi - lo) * r, 0.0);
+            packed_matmul_strided(&mut z, r, &x[lo * k..], k, hi - lo, t.a, false);
+            z.iter_mut().for_each(|v| *v *= t.scale);
+            let rows = &mut ys[(lo - r0) * n..(hi - r0) * n];
+            packed_matmul_strided(rows, n, &z, r, hi - lo, t.b, true);
+        }
+        if let Some(then) = then {
+            then(r0, ys);
+        }
     };
-    if tasks.len() > 1 && rayon_threads() > 1 {
-        tasks.into_par_iter().zip(parts).for_each(task);
+    let busy = |(b, _): &(usize, &mut [f32])| {
+        let (r0, r1) = (b * TERM_ROWS, ((b + 1) * TERM_ROWS).min(m));
+        then.is_some() || terms.iter().any(|t| t.rows.start < r1 && t.rows.end > r0)
+    };
+    let y = &mut y[..m * n];
+    if m > TERM_ROWS && rayon_threads() > 1 {
+        y.par_chunks_mut(TERM_ROWS * n)
+            .enumerate()
+            .filter(busy)
+            .for_each(block);
     } else {
-        tasks.into_iter().zip(parts).for_each(task);
+        y.chunks_mut(TERM_ROWS * n)
+            .enumerate()
+            .filter(busy)
+            .for_each(block);
     }
 }
 
@@ -312,8 +329,7 @@ fn product(
         return;
     }
     #[cfg(target_arch = "x86_64")]
-    if library_product(path, y, x, m, w, accumulate, bias, terms) {
-        rows_done_after(y, m, n, then);
+    if library_product(path, y, x, m, w, accumulate, bias, terms, then) {
         return;
     }
     #[cfg(target_arch = "x86_64")]
