@@ -28,6 +28,6 @@ pub use matmul::{
 pub use micro::Inputs;
 pub use pack::{PANEL, PackedWeight, QuantError, WeightFormat};
 pub use vector::{
-    AttendScratch, Head, add_layer_norm_in_place, attend_head, axpy, dot, dot_portable, erf_fast,
-    exp_fast, gelu_erf_in_place, softmax_rows_in_place,
+    AttendScratch, Head, add_layer_norm_in_place, attend_head, attend_head_rounded, axpy, dot,
+    dot_portable, erf_fast, exp_fast, gelu_erf_in_place, prefetch_to_l2, softmax_rows_in_place,
 };

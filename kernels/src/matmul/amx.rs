@@ -127,7 +127,7 @@ const CONFIG: TileConfig = {
 /// # Safety
 /// The CPU has AMX and the process was granted the tile state ([`tiles_granted`]).
 #[target_feature(enable = "avx512f")]
-unsafe fn configure() {
+pub(crate) unsafe fn configure() {
     // SAFETY: CONFIG is 64 readable bytes, aligned; the caller's contract covers the rest.
     unsafe { asm!("ldtilecfg [{0}]", in(reg) &CONFIG, options(nostack, readonly)) }
 }
@@ -136,7 +136,7 @@ unsafe fn configure() {
 ///
 /// # Safety
 /// As [`configure`].
-unsafe fn release() {
+pub(crate) unsafe fn release() {
     // SAFETY: the caller's contract.
     unsafe { asm!("tilerelease", options(nostack, nomem)) }
 }
@@ -144,10 +144,10 @@ unsafe fn release() {
 /// Four sum tiles at `c` (rows `ld` bytes apart): rows 0-15 and 16-31 (`down` elements on) of
 /// columns 0-15 and 16-31.
 #[derive(Clone, Copy)]
-struct Tiles {
-    c: *const f32,
-    ld: usize,
-    down: usize,
+pub(crate) struct Tiles {
+    pub(crate) c: *const f32,
+    pub(crate) ld: usize,
+    pub(crate) down: usize,
 }
 
 impl Tiles {
@@ -167,7 +167,7 @@ impl Tiles {
 /// apart; `b0` and `b1` hold `steps` (or, with a tail, `steps - 1`) tiles of 1 KB; `init` and
 /// `out` describe 16-row tiles of 64 bytes that can be read (and, for `out`, written).
 #[allow(clippy::too_many_arguments)]
-unsafe fn block(
+pub(crate) unsafe fn block(
     a0: *const u16,
     lda: usize,
     b0: *const u32,

@@ -47,6 +47,8 @@ pub struct AttendScratch {
     keys_t: Vec<f32>,
     keys: Option<PackedWeight>,
     values: Option<PackedWeight>,
+    #[cfg(target_arch = "x86_64")]
+    tiles: super::attend_tiles::TileScratch,
 }
 
 /// `softmax(scale Q K^T + bias) V` for one head: row `i` of the result goes to
@@ -58,20 +60,60 @@ pub fn attend_head(head: &Head<'_>, out: &mut [f32], ldo: usize, scratch: &mut A
     attend_head_with(use_avx512(), head, out, ldo, scratch);
 }
 
-/// [`attend_head`] on the AVX-512 loops (`vector`, which the CPU must have) or through the
-/// projection kernel.
-pub(crate) fn attend_head_with(
-    vector: bool,
+/// [`attend_head`] for a model whose weights are bf16. Where the active path is `amx`, on the
+/// tile unit: the queries, keys, values and probabilities are rounded to bf16 (as the bf16
+/// projections round their inputs) and the scores and context summed in f32 (see
+/// `attend_tiles`). Elsewhere exactly [`attend_head`].
+pub fn attend_head_rounded(
     head: &Head<'_>,
     out: &mut [f32],
     ldo: usize,
     scratch: &mut AttendScratch,
 ) {
+    #[cfg(target_arch = "x86_64")]
+    if crate::dispatch::active() == crate::Path::Amx {
+        attend_head_on_tiles(head, out, ldo, scratch);
+        return;
+    }
+    attend_head(head, out, ldo, scratch);
+}
+
+/// [`attend_head_rounded`] on the tile unit, whatever the active path.
+///
+/// # Panics
+/// Where the tile unit is not granted to this process, and as [`attend_head`].
+#[cfg(target_arch = "x86_64")]
+pub(crate) fn attend_head_on_tiles(
+    head: &Head<'_>,
+    out: &mut [f32],
+    ldo: usize,
+    scratch: &mut AttendScratch,
+) {
+    assert!(
+        crate::matmul::amx::tiles_granted(),
+        "the tile unit is not available to this process"
+    );
+    if !checked(head, out, ldo) {
+        return;
+    }
+    // SAFETY: the tiles are granted (asserted above), which needs AMX-BF16, so the CPU has
+    // AVX-512-BF16 too (the path's feature list); the slices were checked against the head.
+    #[allow(unsafe_code)]
+    unsafe {
+        super::attend_tiles::head(head, out, ldo, &mut scratch.tiles)
+    };
+}
+
+/// The slices checked against the head's sizes; `false` when it is empty (nothing to do).
+///
+/// # Panics
+/// When a slice is shorter than its rows need, or a bias does not cover `t` keys.
+fn checked(head: &Head<'_>, out: &[f32], ldo: usize) -> bool {
     let Head {
         q, k, v, ld, t, dh, ..
     } = *head;
     if t == 0 || dh == 0 {
-        return;
+        return false;
     }
     let rows = (t - 1) * ld + dh;
     assert!(
@@ -86,6 +128,21 @@ pub(crate) fn attend_head_with(
         head.key_bias.len() >= t && head.positions.is_none_or(|p| p.len() >= t * t),
         "attention bias shorter than the sequence"
     );
+    true
+}
+
+/// [`attend_head`] on the AVX-512 loops (`vector`, which the CPU must have) or through the
+/// projection kernel.
+pub(crate) fn attend_head_with(
+    vector: bool,
+    head: &Head<'_>,
+    out: &mut [f32],
+    ldo: usize,
+    scratch: &mut AttendScratch,
+) {
+    if !checked(head, out, ldo) {
+        return;
+    }
     #[cfg(target_arch = "x86_64")]
     if vector {
         assert!(
@@ -105,7 +162,7 @@ pub(crate) fn attend_head_with(
 }
 
 /// The scores of query row `i` (`row`, `t` values) become probabilities: scale, bias, softmax.
-fn softmax_row(row: &mut [f32], i: usize, head: &Head<'_>, row_bias: &mut Vec<f32>) {
+pub(super) fn softmax_row(row: &mut [f32], i: usize, head: &Head<'_>, row_bias: &mut Vec<f32>) {
     let t = row.len();
     match head.positions {
         None => softmax_rows_in_place(row, t, head.scale, &head.key_bias[..t]),
@@ -370,6 +427,130 @@ mod tests {
             }
         }
         out
+    }
+
+    /// How far rounding the queries, keys, values and probabilities to bf16 (unit roundoff
+    /// `u = 2^-9`) may move each output of the head, to first order: a score moves by at most
+    /// `e_ij = 2u scale sum_d |q_id k_jd|`, so each probability by at most `2 E_i p_ij` with
+    /// `E_i = max_j e_ij`; the rounded probabilities and values add `u` each. Output `(i, c)`
+    /// moves by at most `sum_j p_ij |v_jc| (2 E_i + 2u)`; 10% more covers the second order.
+    fn bf16_bound(head: &Head<'_>) -> Vec<f64> {
+        let Head {
+            q,
+            k,
+            v,
+            ld,
+            t,
+            dh,
+            scale,
+            key_bias,
+            positions,
+        } = *head;
+        let u = 2f64.powi(-9);
+        let mut bound = vec![0f64; t * dh];
+        for i in 0..t {
+            let mut big = 0f64;
+            let s: Vec<f64> = (0..t)
+                .map(|j| {
+                    let (mut dot, mut mag) = (0f64, 0f64);
+                    for d in 0..dh {
+                        let p = q[i * ld + d] as f64 * k[j * ld + d] as f64;
+                        dot += p;
+                        mag += p.abs();
+                    }
+                    big = big.max(2.0 * u * scale as f64 * mag);
+                    let b = key_bias[j] as f64 + positions.map_or(0.0, |p| p[i * t + j] as f64);
+                    dot * scale as f64 + b
+                })
+                .collect();
+            let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+            let e: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
+            let sum: f64 = e.iter().sum();
+            for c in 0..dh {
+                let spread: f64 = (0..t)
+                    .map(|j| e[j] / sum * (v[j * ld + c] as f64).abs())
+                    .sum();
+                bound[i * dh + c] = 1.1 * spread * (2.0 * big + 2.0 * u);
+            }
+        }
+        bound
+    }
+
+    /// The tile-unit way (bf16 queries, keys, values and probabilities) against the f64
+    /// definition, within what that rounding allows ([`bf16_bound`]), on the cases of the test
+    /// below: partial tiles of rows and features, more than one feature step (64 and 80), a
+    /// padded key, a position bias; and nothing written outside the head's columns.
+    #[test]
+    #[cfg(target_arch = "x86_64")]
+    fn one_head_on_the_tile_unit_matches_the_definition_within_bf16_rounding() {
+        if !crate::matmul::amx::tiles_granted() {
+            println!("attention head, tile unit: not run, this CPU or process lacks AMX-BF16");
+            return;
+        }
+        let mut scratch = AttendScratch::default();
+        let mut worst = 0f64;
+        for &(t, dh) in &[
+            (1, 32),
+            (3, 7),
+            (5, 32),
+            (17, 64),
+            (64, 32),
+            (70, 20),
+            (33, 80),
+        ] {
+            for positioned in [false, true] {
+                let ld = 3 * dh + 1;
+                let (q, k, v) = (
+                    values(t * ld, 1 + t as u32),
+                    values(t * ld, 2 + dh as u32),
+                    values(t * ld, 3),
+                );
+                let mut keys: Vec<f32> = values(t, 4).iter().map(|x| x * 0.5).collect();
+                if t > 2 {
+                    keys[t - 1] = -10000.0;
+                }
+                let positions: Vec<f32> = values(t * t, 5);
+                let off = dh;
+                let head = Head {
+                    q: &q[off..],
+                    k: &k[off..],
+                    v: &v[off..],
+                    ld,
+                    t,
+                    dh,
+                    scale: 0.3,
+                    key_bias: &keys,
+                    positions: positioned.then_some(&positions[..]),
+                };
+                let ldo = ld + 3;
+                let mut out = vec![f32::NAN; t * ldo];
+                attend_head_on_tiles(&head, &mut out[off..], ldo, &mut scratch);
+                let (want, bound) = (reference(&head), bf16_bound(&head));
+                for i in 0..t {
+                    for c in 0..ldo {
+                        let got = out[i * ldo + c];
+                        if c < off || c >= off + dh {
+                            assert!(got.is_nan(), "t {t} dh {dh}: ({i}, {c}) was written");
+                            continue;
+                        }
+                        let at = i * dh + c - off;
+                        let d = (got as f64 - want[at]).abs();
+                        let tol = bound[at] + 1e-5;
+                        worst = worst.max(d / tol);
+                        assert!(
+                            d < tol,
+                            "tiles, t {t} dh {dh} positions {positioned}: ({i}, {c}) {got} \
+                             against {} (tolerance {tol:.2e})",
+                            want[at]
+                        );
+                    }
+                }
+            }
+        }
+        println!(
+            "attention head, tile unit: 14 cases agree with f64 within bf16 rounding (largest \
+             difference {worst:.2} of its bound)"
+        );
     }
 
     /// Both ways of running a head (the AVX-512 loops where this CPU has AVX-512F, and the

@@ -11,7 +11,8 @@ use candle_core::{DType, Result, Tensor};
 use serde::Deserialize;
 use switchyard_adapters::{BaseSpec, Module, Site};
 use switchyard_kernels::{
-    AttendScratch, Head, PackedWeight, add_layer_norm_in_place, attend_head, gelu_erf_in_place,
+    AttendScratch, Head, PackedWeight, WeightFormat, add_layer_norm_in_place, attend_head,
+    attend_head_rounded, gelu_erf_in_place, prefetch_to_l2,
 };
 
 use crate::model::checkpoint::Weights;
@@ -277,7 +278,11 @@ impl Layer {
         self.q.forward_rows_into(x, rows, adapters, &mut a.q)?;
         self.k.forward_rows_into(x, rows, adapters, &mut a.k)?;
         self.v.forward_rows_into(x, rows, adapters, &mut a.v)?;
-        attention(&a.q, &a.k, &a.v, bias, b, t, h, self.heads, &mut a.ctx);
+        // A bf16 model's heads round their inputs to bf16 too, as its projections do (and
+        // run on the tile unit where the path has it).
+        let rounded = self.q.packed_weight().format() == WeightFormat::Bf16;
+        let heads = (self.heads, rounded);
+        attention(&a.q, &a.k, &a.v, bias, b, t, h, heads, &mut a.ctx);
         // The residual adds with their layer norms and the activation run on each block of
         // rows as the product finishes it, while it is in cache.
         let attn_norm = self.attn_norm.after(x, h)?;
@@ -393,8 +398,9 @@ struct ScoreBias<'a> {
 /// Multi-head self-attention over `q`, `k`, `v` `[b * t, h]` (heads side by side in each row),
 /// giving the context `[b * t, h]` in the same layout. Each sequence and head goes to
 /// [`attend_head`] (scores, scale, bias and softmax, then the probabilities times the values),
-/// which reads the head's columns in place and writes its columns of the output. Sequences run
-/// in parallel, one task each.
+/// which reads the head's columns in place and writes its columns of the output; with
+/// `rounded` (a bf16 model) to [`attend_head_rounded`]. Sequences run in parallel, one task
+/// each.
 #[allow(clippy::too_many_arguments)]
 fn attention(
     q: &[f32],
@@ -404,7 +410,7 @@ fn attention(
     b: usize,
     t: usize,
     h: usize,
-    heads: usize,
+    (heads, rounded): (usize, bool),
     ctx: &mut Vec<f32>,
 ) {
     use rayon::prelude::*;
@@ -416,6 +422,11 @@ fn attention(
         let mut scratch = AttendScratch::default();
         let keys = &bias.keys[s * t..(s + 1) * t];
         let base = s * t * h;
+        // The heads read two lines of each row, a row apart; the sequence's rows are one
+        // block in each of q, k and v, asked for all at once.
+        for x in [q, k, v] {
+            prefetch_to_l2(&x[base..base + t * h]);
+        }
         for hd in 0..heads {
             let off = base + hd * dh;
             let head = Head {
@@ -429,7 +440,11 @@ fn attention(
                 key_bias: keys,
                 positions: bias.positions.map(|p| &p[hd * t * t..(hd + 1) * t * t]),
             };
-            attend_head(&head, &mut out[hd * dh..], h, &mut scratch);
+            if rounded {
+                attend_head_rounded(&head, &mut out[hd * dh..], h, &mut scratch);
+            } else {
+                attend_head(&head, &mut out[hd * dh..], h, &mut scratch);
+            }
         }
     };
     if b * heads * t * t * dh < 1 << 18 {
