@@ -699,7 +699,7 @@ pub(crate) fn matmul(
                 }
             })
         });
-    } else if threads <= 1 || m * n * k < (1 << 20) {
+    } else if threads <= 1 || m * n * k < (1 << 25) {
         task(0..blocks, 0..pairs);
     } else {
         let per = pairs.div_ceil(threads * 4).max(1);

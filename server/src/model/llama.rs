@@ -15,7 +15,9 @@ use candle_nn::{Module as _, RmsNorm};
 use serde::Deserialize;
 use switchyard_adapters::tensors::with_f32;
 use switchyard_adapters::{BaseSpec, Module, Site};
-use switchyard_kernels::{PackedWeight, axpy, dot, packed_matmul};
+use switchyard_kernels::{
+    PackedWeight, WeightFormat, axpy, dot, matmul::LIBRARY_ROWS_F32, packed_matmul,
+};
 
 use crate::model::checkpoint::Weights;
 use crate::model::linear::{AdaptedLinear, RowAdapters};
@@ -829,16 +831,21 @@ impl LlamaModel {
             }
         }
         let mut x = Tensor::from_vec(table, (rows, h), &dev)?;
-        for (layer, block) in self.blocks.iter().enumerate() {
-            x = block.forward(
-                layer,
-                &x,
-                &spans,
-                caches,
-                &self.rotary,
-                &positions,
-                adapters,
-            )?;
+        let blocks = |x: &mut Tensor, caches: &mut [&mut KvCache]| -> Result<()> {
+            for (layer, block) in self.blocks.iter().enumerate() {
+                *x = block.forward(layer, x, &spans, caches, &self.rotary, &positions, adapters)?;
+            }
+            Ok(())
+        };
+        // Inside the thread pool, where a parallel section is a fork and a join between its
+        // workers rather than a hand-over from this thread and a wake-up (see the same choice
+        // in `bert`), except where f32 products of many rows go to oneDNN, which is called
+        // from outside the pool.
+        let library = self.lm_head.format() == WeightFormat::F32 && rows >= LIBRARY_ROWS_F32;
+        if library {
+            blocks(&mut x, caches)?;
+        } else {
+            rayon::scope(|_| blocks(&mut x, caches))?;
         }
         for (cache, seq) in caches.iter_mut().zip(tokens) {
             cache.len += seq.len();
