@@ -395,46 +395,13 @@ mod tests {
     use super::*;
     use crate::test_values::values;
 
-    /// The head in f64 with an exact exp: the definition.
-    fn reference(head: &Head<'_>) -> Vec<f64> {
-        let Head {
-            q,
-            k,
-            v,
-            ld,
-            t,
-            dh,
-            scale,
-            key_bias,
-            positions,
-        } = *head;
-        let mut out = vec![0f64; t * dh];
-        for i in 0..t {
-            let s: Vec<f64> = (0..t)
-                .map(|j| {
-                    let dot: f64 = (0..dh)
-                        .map(|d| q[i * ld + d] as f64 * k[j * ld + d] as f64)
-                        .sum();
-                    let b = key_bias[j] as f64 + positions.map_or(0.0, |p| p[i * t + j] as f64);
-                    dot * scale as f64 + b
-                })
-                .collect();
-            let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
-            let e: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
-            let sum: f64 = e.iter().sum();
-            for c in 0..dh {
-                out[i * dh + c] = (0..t).map(|j| e[j] / sum * v[j * ld + c] as f64).sum();
-            }
-        }
-        out
-    }
-
-    /// How far rounding the queries, keys, values and probabilities to bf16 (unit roundoff
-    /// `u = 2^-9`) may move each output of the head, to first order: a score moves by at most
-    /// `e_ij = 2u scale sum_d |q_id k_jd|`, so each probability by at most `2 E_i p_ij` with
-    /// `E_i = max_j e_ij`; the rounded probabilities and values add `u` each. Output `(i, c)`
-    /// moves by at most `sum_j p_ij |v_jc| (2 E_i + 2u)`; 10% more covers the second order.
-    fn bf16_bound(head: &Head<'_>) -> Vec<f64> {
+    /// The head in f64 with an exact exp, the definition; and how far rounding the queries,
+    /// keys, values and probabilities to bf16 (unit roundoff `u = 2^-9`) may move each output,
+    /// to first order: a score moves by at most `e_ij = 2u scale sum_d |q_id k_jd|`, so each
+    /// probability by at most `2 E_i p_ij` with `E_i = max_j e_ij`; the rounded probabilities
+    /// and values add `u` each. Output `(i, c)` moves by at most `sum_j p_ij |v_jc| (2 E_i +
+    /// 2u)`; 10% more covers the second order.
+    fn reference(head: &Head<'_>) -> (Vec<f64>, Vec<f64>) {
         let Head {
             q,
             k,
@@ -447,6 +414,7 @@ mod tests {
             positions,
         } = *head;
         let u = 2f64.powi(-9);
+        let mut out = vec![0f64; t * dh];
         let mut bound = vec![0f64; t * dh];
         for i in 0..t {
             let mut big = 0f64;
@@ -467,28 +435,30 @@ mod tests {
             let e: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
             let sum: f64 = e.iter().sum();
             for c in 0..dh {
-                let spread: f64 = (0..t)
-                    .map(|j| e[j] / sum * (v[j * ld + c] as f64).abs())
-                    .sum();
+                let (mut o, mut spread) = (0f64, 0f64);
+                for j in 0..t {
+                    let (p, vj) = (e[j] / sum, v[j * ld + c] as f64);
+                    o += p * vj;
+                    spread += p * vj.abs();
+                }
+                out[i * dh + c] = o;
                 bound[i * dh + c] = 1.1 * spread * (2.0 * big + 2.0 * u);
             }
         }
-        bound
+        (out, bound)
     }
 
-    /// The tile-unit way (bf16 queries, keys, values and probabilities) against the f64
-    /// definition, within what that rounding allows ([`bf16_bound`]), on the cases of the test
-    /// below: partial tiles of rows and features, more than one feature step (64 and 80), a
-    /// padded key, a position bias; and nothing written outside the head's columns.
-    #[test]
-    #[cfg(target_arch = "x86_64")]
-    fn one_head_on_the_tile_unit_matches_the_definition_within_bf16_rounding() {
-        if !crate::matmul::amx::tiles_granted() {
-            println!("attention head, tile unit: not run, this CPU or process lacks AMX-BF16");
-            return;
-        }
-        let mut scratch = AttendScratch::default();
-        let mut worst = 0f64;
+    /// The test heads, each with and without a per-query position bias: sequences shorter than
+    /// a vector, of whole and partial register blocks and tiles, heads of 32 and 64 features
+    /// and odd ones (masked last vectors, several column blocks and feature steps), a padded
+    /// key. Three heads sit side by side in each row and `run` runs the middle one into rows
+    /// wider than it; what it wrote outside the head's columns fails the test, and `check`
+    /// gets a label, its `t x dh` output, the f64 definition's and the bf16 bound
+    /// ([`reference`]).
+    fn for_each_case(
+        mut run: impl FnMut(&Head<'_>, &mut [f32], usize),
+        mut check: impl FnMut(&str, &[f32], &[f64], &[f64]),
+    ) {
         for &(t, dh) in &[
             (1, 32),
             (3, 7),
@@ -507,7 +477,7 @@ mod tests {
                 );
                 let mut keys: Vec<f32> = values(t, 4).iter().map(|x| x * 0.5).collect();
                 if t > 2 {
-                    keys[t - 1] = -10000.0;
+                    keys[t - 1] = -10000.0; // a padded key
                 }
                 let positions: Vec<f32> = values(t * t, 5);
                 let off = dh;
@@ -524,29 +494,49 @@ mod tests {
                 };
                 let ldo = ld + 3;
                 let mut out = vec![f32::NAN; t * ldo];
-                attend_head_on_tiles(&head, &mut out[off..], ldo, &mut scratch);
-                let (want, bound) = (reference(&head), bf16_bound(&head));
-                for i in 0..t {
-                    for c in 0..ldo {
-                        let got = out[i * ldo + c];
+                run(&head, &mut out[off..], ldo);
+                let label = format!("t {t} dh {dh} positions {positioned}");
+                let mut got = Vec::with_capacity(t * dh);
+                for (i, row) in out.chunks(ldo).enumerate() {
+                    for (c, &g) in row.iter().enumerate() {
                         if c < off || c >= off + dh {
-                            assert!(got.is_nan(), "t {t} dh {dh}: ({i}, {c}) was written");
-                            continue;
+                            assert!(g.is_nan(), "{label}: ({i}, {c}) was written");
+                        } else {
+                            got.push(g);
                         }
-                        let at = i * dh + c - off;
-                        let d = (got as f64 - want[at]).abs();
-                        let tol = bound[at] + 1e-5;
-                        worst = worst.max(d / tol);
-                        assert!(
-                            d < tol,
-                            "tiles, t {t} dh {dh} positions {positioned}: ({i}, {c}) {got} \
-                             against {} (tolerance {tol:.2e})",
-                            want[at]
-                        );
                     }
                 }
+                let (want, bound) = reference(&head);
+                check(&label, &got, &want, &bound);
             }
         }
+    }
+
+    /// The tile-unit way (bf16 queries, keys, values and probabilities) against the f64
+    /// definition, within what that rounding allows (see [`reference`]).
+    #[test]
+    #[cfg(target_arch = "x86_64")]
+    fn one_head_on_the_tile_unit_matches_the_definition_within_bf16_rounding() {
+        if !crate::matmul::amx::tiles_granted() {
+            println!("attention head, tile unit: not run, this CPU or process lacks AMX-BF16");
+            return;
+        }
+        let mut scratch = AttendScratch::default();
+        let mut worst = 0f64;
+        for_each_case(
+            |head, out, ldo| attend_head_on_tiles(head, out, ldo, &mut scratch),
+            |label, got, want, bound| {
+                for (at, (&g, &w)) in got.iter().zip(want).enumerate() {
+                    let d = (g as f64 - w).abs();
+                    let tol = bound[at] + 1e-5;
+                    worst = worst.max(d / tol);
+                    assert!(
+                        d < tol,
+                        "tiles, {label}: output {at} {g} against {w} (tolerance {tol:.2e})"
+                    );
+                }
+            },
+        );
         println!(
             "attention head, tile unit: 14 cases agree with f64 within bf16 rounding (largest \
              difference {worst:.2} of its bound)"
@@ -554,10 +544,8 @@ mod tests {
     }
 
     /// Both ways of running a head (the AVX-512 loops where this CPU has AVX-512F, and the
-    /// projection kernel on the active path) agree with the f64 definition, on sequences
-    /// shorter than a vector, of whole and partial register blocks, heads of 32 and 64
-    /// features and odd ones (masked last vectors, several column blocks), with padded keys
-    /// and a per-query position bias; and write nothing outside the head's columns.
+    /// projection kernel on the active path) agree with the f64 definition on every case of
+    /// [`for_each_case`].
     #[test]
     fn one_head_matches_the_definition_both_ways() {
         let mut ways = vec![false];
@@ -569,63 +557,19 @@ mod tests {
         for vector in ways {
             let mut worst = 0f64;
             let mut scratch = AttendScratch::default();
-            for &(t, dh) in &[
-                (1, 32),
-                (3, 7),
-                (5, 32),
-                (17, 64),
-                (64, 32),
-                (70, 20),
-                (33, 80),
-            ] {
-                for positioned in [false, true] {
-                    // Three heads side by side; the middle one is run.
-                    let ld = 3 * dh + 1;
-                    let (q, k, v) = (
-                        values(t * ld, 1 + t as u32),
-                        values(t * ld, 2 + dh as u32),
-                        values(t * ld, 3),
-                    );
-                    let mut keys: Vec<f32> = values(t, 4).iter().map(|x| x * 0.5).collect();
-                    if t > 2 {
-                        keys[t - 1] = -10000.0; // a padded key
+            for_each_case(
+                |head, out, ldo| attend_head_with(vector, head, out, ldo, &mut scratch),
+                |label, got, want, _| {
+                    for (at, (&g, &w)) in got.iter().zip(want).enumerate() {
+                        let d = (g as f64 - w).abs();
+                        worst = worst.max(d);
+                        assert!(
+                            d < 1e-5,
+                            "vector {vector}, {label}: output {at} {g} against {w}"
+                        );
                     }
-                    let positions: Vec<f32> = values(t * t, 5);
-                    let off = dh;
-                    let head = Head {
-                        q: &q[off..],
-                        k: &k[off..],
-                        v: &v[off..],
-                        ld,
-                        t,
-                        dh,
-                        scale: 0.3,
-                        key_bias: &keys,
-                        positions: positioned.then_some(&positions[..]),
-                    };
-                    let ldo = ld + 3;
-                    let mut out = vec![f32::NAN; t * ldo];
-                    attend_head_with(vector, &head, &mut out[off..], ldo, &mut scratch);
-                    let want = reference(&head);
-                    for i in 0..t {
-                        for c in 0..ldo {
-                            let got = out[i * ldo + c];
-                            if c < off || c >= off + dh {
-                                assert!(got.is_nan(), "t {t} dh {dh}: ({i}, {c}) was written");
-                                continue;
-                            }
-                            let w = want[i * dh + c - off];
-                            let d = (got as f64 - w).abs();
-                            worst = worst.max(d);
-                            assert!(
-                                d < 1e-5,
-                                "vector {vector}, t {t} dh {dh} positions {positioned}: \
-                                 ({i}, {c}) {got} against {w}"
-                            );
-                        }
-                    }
-                }
-            }
+                },
+            );
             println!(
                 "attention head, {}: 14 cases agree with f64 (largest difference {worst:.1e})",
                 if vector {

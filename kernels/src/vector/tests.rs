@@ -3,6 +3,23 @@
 use super::*;
 use crate::test_values::values;
 
+/// `first`, then the vector bodies this CPU can run ("avx2", "avx512"), whatever the active
+/// path; the others printed as not run for `what`.
+fn vector_bodies(first: &[&'static str], what: &str) -> Vec<&'static str> {
+    let mut bodies = first.to_vec();
+    for (body, feature) in [
+        ("avx2", use_avx2()),
+        ("avx512", is_x86_feature_detected!("avx512f")),
+    ] {
+        if feature {
+            bodies.push(body);
+        } else {
+            println!("{what} {body}: not run, this CPU (or the forced path) lacks it");
+        }
+    }
+    bodies
+}
+
 #[test]
 fn dot_and_axpy_match_plain_loops() {
     for len in [0, 1, 7, 8, 31, 32, 33, 128, 301] {
@@ -70,17 +87,7 @@ fn fast_erf_and_gelu_agree_with_the_series_on_both_paths() {
         );
     }
     // The active path and each vector body by name, against the portable loop.
-    let mut bodies = vec!["active path"];
-    for (body, feature) in [
-        ("avx2", use_avx2()),
-        ("avx512", is_x86_feature_detected!("avx512f")),
-    ] {
-        if feature {
-            bodies.push(body);
-        } else {
-            println!("gelu {body}: not run, this CPU (or the forced path) lacks it");
-        }
-    }
+    let bodies = vector_bodies(&["active path"], "gelu");
     for body in bodies {
         let mut b = xs.clone();
         #[allow(unsafe_code)]
@@ -120,17 +127,7 @@ fn fast_exp_and_softmax_agree_with_f64_on_both_paths() {
     bias[3] = -1e9;
     // The portable body, the AVX2 one and the AVX-512 one where the CPU has them (named by
     // the body, whatever the active path).
-    let mut bodies = vec!["portable"];
-    for (body, feature) in [
-        ("avx2", use_avx2()),
-        ("avx512", is_x86_feature_detected!("avx512f")),
-    ] {
-        if feature {
-            bodies.push(body);
-        } else {
-            println!("softmax {body}: not run, this CPU (or the forced path) lacks it");
-        }
-    }
+    let bodies = vector_bodies(&["portable"], "softmax");
     for fast in bodies {
         let mut got = raw.clone();
         #[allow(unsafe_code)]
@@ -181,17 +178,7 @@ fn residual_layer_norm_matches_an_f64_loop_on_every_body() {
                     + beta[j] as f64) as f32;
             }
         }
-        let mut bodies = vec!["active path", "portable"];
-        for (body, feature) in [
-            ("avx2", use_avx2()),
-            ("avx512", is_x86_feature_detected!("avx512f")),
-        ] {
-            if feature {
-                bodies.push(body);
-            } else {
-                println!("layer norm {body}: not run, this CPU (or the forced path) lacks it");
-            }
-        }
+        let bodies = vector_bodies(&["active path", "portable"], "layer norm");
         for body in bodies {
             let mut got = x.clone();
             #[allow(unsafe_code)]
